@@ -1,0 +1,7 @@
+//! The audit trail: content hashes of rows, files and split manifests
+//! ([`hash`]), and the proof that no row content sits in two splits ([`leak`]).
+//!
+//! Nothing here changes data; it only digests and checks.
+
+pub mod hash;
+pub mod leak;

@@ -1,0 +1,204 @@
+//! The model card: a typed [`CardContext`] rendered by minijinja from the
+//! templates in the top-level `templates/` folder, which are embedded in the
+//! binary and can be replaced file by file from a user's templates directory.
+//!
+//! This module computes nothing: every number arrives formatted. HTML output
+//! is auto-escaped; Markdown output escapes through the `md` filter.
+
+use std::path::Path;
+
+use minijinja::{Environment, UndefinedBehavior};
+
+use crate::error::{Error, Result};
+
+/// The built-in templates: (name, text).
+pub const BUILTIN: &[(&str, &str)] = &[
+    ("card.md", include_str!("../../templates/card.md")),
+    ("card.html", include_str!("../../templates/card.html")),
+];
+
+/// One row of a metrics table, all values formatted.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct MetricRow {
+    /// Candidate name.
+    pub candidate: String,
+    /// Whether this is the chosen candidate.
+    pub chosen: bool,
+    /// True positives.
+    pub tp: u64,
+    /// False positives.
+    pub fp: u64,
+    /// False negatives.
+    pub fn_: u64,
+    /// True negatives.
+    pub tn: u64,
+    /// Precision with its 95 % interval.
+    pub precision: String,
+    /// Recall with its 95 % interval.
+    pub recall: String,
+    /// F1.
+    pub f1: String,
+    /// Accuracy (shown only beside its warning).
+    pub accuracy: String,
+}
+
+/// A candidate's operating point.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct ThresholdRow {
+    /// Candidate name.
+    pub candidate: String,
+    /// Whether this is the chosen candidate.
+    pub chosen: bool,
+    /// Free parameters.
+    pub parameters: usize,
+    /// τ.
+    pub tau: String,
+    /// ln ε.
+    pub ln_epsilon: String,
+}
+
+/// Counts of one split.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct SplitRow {
+    /// Split name.
+    pub split: String,
+    /// Normal rows.
+    pub normal: usize,
+    /// Anomalous rows.
+    pub anomaly: usize,
+    /// Manifest hash.
+    pub manifest: String,
+}
+
+/// Everything a card template can use.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct CardContext {
+    /// Card title.
+    pub title: String,
+    /// Owner.
+    pub owner: String,
+    /// Intended use.
+    pub intended_use: String,
+    /// Out-of-scope uses.
+    pub out_of_scope_uses: Vec<String>,
+    /// The safety caution, when the spec declares a safety-relevant use.
+    pub safety_caution: Option<String>,
+    /// Tool and version.
+    pub tool: String,
+    /// Spec file name.
+    pub spec_file: String,
+    /// blake3 of the spec.
+    pub spec_blake3: String,
+    /// Signing key fingerprint.
+    pub key_fingerprint: String,
+    /// Data file as written in the spec.
+    pub data_path: String,
+    /// blake3 of the data file.
+    pub data_blake3: String,
+    /// Rows read.
+    pub data_rows: usize,
+    /// Label column and values, as one sentence.
+    pub label: String,
+    /// Feature names.
+    pub features: Vec<String>,
+    /// How the split was made, as one sentence.
+    pub split_method: String,
+    /// Split counts.
+    pub splits: Vec<SplitRow>,
+    /// Rows that share their content with another row.
+    pub duplicate_rows: usize,
+    /// Rows moved across a cut with their identical rows.
+    pub moved_rows: usize,
+    /// The threshold policy, in words.
+    pub threshold_policy: String,
+    /// The selection rule, in words.
+    pub selection_rule: String,
+    /// The chosen candidate.
+    pub chosen: String,
+    /// Thresholds of all candidates.
+    pub thresholds: Vec<ThresholdRow>,
+    /// Validation metrics of all candidates.
+    pub validation: Vec<MetricRow>,
+    /// Test metrics of the chosen candidate.
+    pub test_chosen: MetricRow,
+    /// Test metrics of the other candidates (not used for selection).
+    pub test_others: Vec<MetricRow>,
+    /// Anomalies in the test split.
+    pub test_anomalies: usize,
+    /// Wall-clock line for the unsigned footer, if recorded.
+    pub wall_clock: Option<String>,
+}
+
+/// Escapes text for Markdown: backslash-escapes the characters that start
+/// inline markup, and turns `<`, `>` and `&` into entities so no HTML gets through.
+pub fn escape_md(s: &str) -> String {
+    let mut out = String::with_capacity(s.len());
+    for c in s.chars() {
+        match c {
+            // The characters that open inline markup, links or table cells; the
+            // texts land inside paragraphs and table cells, never at a line start.
+            '\\' | '`' | '*' | '_' | '[' | ']' | '|' | '~' => {
+                out.push('\\');
+                out.push(c);
+            }
+            '<' => out.push_str("&lt;"),
+            '>' => out.push_str("&gt;"),
+            '&' => out.push_str("&amp;"),
+            '\n' | '\r' => out.push(' '),
+            _ => out.push(c),
+        }
+    }
+    out
+}
+
+fn template_error(name: &str, e: minijinja::Error) -> Error {
+    Error::Template {
+        name: e.name().unwrap_or(name).to_string(),
+        line: e.line(),
+        message: e.to_string().lines().next().unwrap_or("").to_string(),
+    }
+}
+
+/// Renders `card.md` and `card.html`, using `overrides` (a directory) for any
+/// template file it holds.
+pub fn render(ctx: &CardContext, overrides: Option<&Path>) -> Result<(String, String)> {
+    let mut env = Environment::new();
+    env.set_undefined_behavior(UndefinedBehavior::Strict);
+    env.add_filter("md", |s: String| escape_md(&s));
+    for (name, text) in BUILTIN {
+        let text = match overrides.map(|d| d.join(name)) {
+            Some(p) if p.is_file() => {
+                std::fs::read_to_string(&p).map_err(|e| Error::io(&p, "reading template", e))?
+            }
+            _ => text.to_string(),
+        };
+        env.add_template_owned(name.to_string(), text)
+            .map_err(|e| template_error(name, e))?;
+    }
+    let render = |name: &str| -> Result<String> {
+        let t = env
+            .get_template(name)
+            .map_err(|e| template_error(name, e))?;
+        let mut s = t
+            .render(minijinja::value::Serde(ctx))
+            .map_err(|e| template_error(name, e))?;
+        if !s.ends_with('\n') {
+            s.push('\n');
+        }
+        Ok(s)
+    };
+    Ok((render("card.md")?, render("card.html")?))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn markdown_escape_neutralises_markup() {
+        assert_eq!(
+            escape_md("<script>alert(1)</script> | *x*"),
+            "&lt;script&gt;alert(1)&lt;/script&gt; \\| \\*x\\*"
+        );
+    }
+}

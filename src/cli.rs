@@ -1,0 +1,94 @@
+//! The command line: clap types and their conversion into a [`Request`].
+//!
+//! This module opens no files and calls no stage: it only says what was asked.
+
+use std::path::PathBuf;
+
+use clap::{Parser, Subcommand};
+
+use crate::pipeline::RunOptions;
+use crate::Request;
+
+/// Validate density-based anomaly detectors by a declared protocol and publish signed model cards.
+#[derive(Debug, Parser)]
+#[command(name = "anomark", version, about, long_about = None)]
+pub struct Args {
+    /// What to do.
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+/// The subcommands.
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Run a spec: split, fit, choose on validation, open the test set once, write a signed card.
+    Run {
+        /// The spec file (YAML).
+        spec: PathBuf,
+        /// The Ed25519 private key (PKCS#8 PEM) that signs the run.
+        #[arg(long, value_name = "PATH")]
+        key: PathBuf,
+        /// The run directory to create (default: the spec's `output`).
+        #[arg(long, value_name = "DIR")]
+        out: Option<PathBuf>,
+        /// A directory whose card.md / card.html replace the built-in templates.
+        #[arg(long, value_name = "DIR")]
+        templates: Option<PathBuf>,
+        /// Record no wall-clock time, so that two runs are byte-identical.
+        #[arg(long)]
+        no_wall_clock: bool,
+    },
+    /// Check a run directory's signature and every file's hash.
+    Verify {
+        /// The run directory.
+        dir: PathBuf,
+        /// The Ed25519 public key (SPKI PEM).
+        #[arg(long, value_name = "PATH")]
+        pubkey: PathBuf,
+    },
+    /// Make a new Ed25519 key pair.
+    Keygen {
+        /// Where to write the private key (PKCS#8 PEM, mode 0600).
+        #[arg(long, value_name = "PATH")]
+        private: PathBuf,
+        /// Where to write the public key (SPKI PEM).
+        #[arg(long, value_name = "PATH")]
+        public: PathBuf,
+    },
+    /// Print the JSON Schema of the spec.
+    Schema,
+}
+
+impl From<Args> for Request {
+    fn from(args: Args) -> Self {
+        match args.command {
+            Command::Run {
+                spec,
+                key,
+                out,
+                templates,
+                no_wall_clock,
+            } => Request::Run(RunOptions {
+                spec,
+                key,
+                out,
+                templates,
+                no_wall_clock,
+            }),
+            Command::Verify { dir, pubkey } => Request::Verify { dir, pubkey },
+            Command::Keygen { private, public } => Request::Keygen { private, public },
+            Command::Schema => Request::Schema,
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use clap::CommandFactory;
+
+    #[test]
+    fn clap_definition_is_consistent() {
+        Args::command().debug_assert();
+    }
+}

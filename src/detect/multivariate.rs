@@ -1,0 +1,243 @@
+//! Multivariate Gaussian: one normal density over all features, with the mean
+//! and the maximum-likelihood covariance (divisor m) of the training rows.
+//!
+//! s(x) = ½ (d ln 2π + ln |Σ| + (x − μ)ᵀ Σ⁻¹ (x − μ)), with Σ = L Lᵀ by
+//! Cholesky (nalgebra), ln |Σ| = 2 Σ ln Lᵢᵢ, and the quadratic form as ‖z‖²
+//! where L z = x − μ. No density is ever formed outside log space.
+
+use nalgebra::DMatrix;
+use ndarray::ArrayView2;
+
+use super::{ln, means, refuse_constant, Detector, Model, Params, HALF_LN_2PI};
+use crate::error::{Error, Result};
+
+/// Largest condition number of the correlation matrix that is accepted. At
+/// 1e10 the quadratic form keeps about six significant digits in binary64
+/// (relative error ≈ κ·2⁻⁵²); picked for that reason, not tuned on data.
+pub const MAX_CONDITION: f64 = 1e10;
+
+const NAME: &str = "multivariate-gaussian";
+
+/// The multivariate-Gaussian detector.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct MultivariateGaussian;
+
+struct Fitted {
+    d: usize,
+    mean: Vec<f64>,
+    covariance: Vec<Vec<f64>>,
+    /// Lower Cholesky factor, row-major.
+    chol: Vec<f64>,
+    ln_det: f64,
+}
+
+impl Detector for MultivariateGaussian {
+    fn fit(&self, train: ArrayView2<'_, f64>, features: &[String]) -> Result<Box<dyn Model>> {
+        refuse_constant(NAME, train, features)?;
+        let (m, d) = train.dim();
+        if m <= d {
+            return Err(Error::Fit {
+                detector: NAME.into(),
+                message: format!(
+                    "{m} training rows cannot determine a covariance over {d} features \
+                     (more rows than features are needed)"
+                ),
+                features: vec![],
+            });
+        }
+        let mean = means(train);
+        let mut cov = vec![0.0; d * d];
+        let mut c = vec![0.0; d];
+        for row in train.rows() {
+            for (cj, (v, mu)) in c.iter_mut().zip(row.iter().zip(&mean)) {
+                *cj = v - mu;
+            }
+            for i in 0..d {
+                for j in 0..=i {
+                    cov[i * d + j] += c[i] * c[j];
+                }
+            }
+        }
+        for i in 0..d {
+            for j in 0..=i {
+                let v = cov[i * d + j] / m as f64;
+                cov[i * d + j] = v;
+                cov[j * d + i] = v;
+            }
+        }
+        refuse_ill_conditioned(&cov, d, features)?;
+        let sigma = DMatrix::from_row_slice(d, d, &cov);
+        let chol = sigma.cholesky().ok_or_else(|| Error::Fit {
+            detector: NAME.into(),
+            message: "the covariance is not positive definite".into(),
+            features: features.to_vec(),
+        })?;
+        let l = chol.l();
+        let mut flat = vec![0.0; d * d];
+        let mut ln_det = 0.0;
+        for i in 0..d {
+            for j in 0..=i {
+                flat[i * d + j] = l[(i, j)];
+            }
+            ln_det += 2.0 * ln(l[(i, i)]);
+        }
+        Ok(Box::new(Fitted {
+            d,
+            mean,
+            covariance: cov.chunks(d).map(<[f64]>::to_vec).collect(),
+            chol: flat,
+            ln_det,
+        }))
+    }
+}
+
+/// Refuses a covariance whose correlation matrix is singular or nearly so,
+/// naming the features that take part in the near-dependence (the large
+/// entries of the eigenvector of the smallest eigenvalue).
+fn refuse_ill_conditioned(cov: &[f64], d: usize, features: &[String]) -> Result<()> {
+    let sd: Vec<f64> = (0..d).map(|i| cov[i * d + i].sqrt()).collect();
+    let corr = DMatrix::from_fn(d, d, |i, j| cov[i * d + j] / (sd[i] * sd[j]));
+    let eigen = corr.symmetric_eigen();
+    let (mut lo, mut hi) = (0, 0);
+    for k in 0..d {
+        if eigen.eigenvalues[k] < eigen.eigenvalues[lo] {
+            lo = k;
+        }
+        if eigen.eigenvalues[k] > eigen.eigenvalues[hi] {
+            hi = k;
+        }
+    }
+    let (min, max) = (eigen.eigenvalues[lo], eigen.eigenvalues[hi]);
+    if min > 0.0 && max / min <= MAX_CONDITION {
+        return Ok(());
+    }
+    let v = eigen.eigenvectors.column(lo);
+    let largest = v.iter().fold(0.0f64, |a, x| a.max(x.abs()));
+    let mut involved: Vec<(f64, String)> = (0..d)
+        .filter(|&j| v[j].abs() >= 0.1 * largest)
+        .map(|j| (v[j].abs(), features[j].clone()))
+        .collect();
+    involved.sort_by(|a, b| b.0.total_cmp(&a.0).then(a.1.cmp(&b.1)));
+    let condition = if min > 0.0 {
+        format!("{:.3e}", max / min)
+    } else {
+        "infinite".into()
+    };
+    Err(Error::Fit {
+        detector: NAME.into(),
+        message: format!(
+            "the covariance is singular or nearly so (condition number of the correlation \
+             matrix {condition}, limit {MAX_CONDITION:e}): some features are nearly linear \
+             combinations of others; drop one of those named or use independent-gaussian"
+        ),
+        features: involved.into_iter().map(|(_, f)| f).collect(),
+    })
+}
+
+impl Model for Fitted {
+    fn score(&self, x: ArrayView2<'_, f64>) -> Vec<f64> {
+        let d = self.d;
+        let constant = d as f64 * HALF_LN_2PI + 0.5 * self.ln_det;
+        let mut z = vec![0.0; d];
+        x.rows()
+            .into_iter()
+            .map(|row| {
+                // Forward substitution L z = x − μ.
+                let mut q = 0.0;
+                for i in 0..d {
+                    let mut r = row[i] - self.mean[i];
+                    let li = &self.chol[i * d..i * d + i];
+                    for (l, zj) in li.iter().zip(&z[..i]) {
+                        r -= l * zj;
+                    }
+                    z[i] = r / self.chol[i * d + i];
+                    q += z[i] * z[i];
+                }
+                constant + 0.5 * q
+            })
+            .collect()
+    }
+
+    fn params(&self) -> Params {
+        Params::MultivariateGaussian {
+            mean: self.mean.clone(),
+            covariance: self.covariance.clone(),
+            ln_det_covariance: self.ln_det,
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use ndarray::{array, Array2};
+
+    /// Training rows whose mean and ML covariance are exactly μ and Σ: the
+    /// points μ ± √(d)·(columns of a square root of Σ), here built from the
+    /// Cholesky factor: 2d points with mean μ and covariance L Lᵀ.
+    fn rows_with(mu: &[f64], sigma: &[f64]) -> Array2<f64> {
+        let d = mu.len();
+        let l = DMatrix::from_row_slice(d, d, sigma).cholesky().unwrap().l();
+        let s = (d as f64).sqrt();
+        let mut x = Array2::zeros((2 * d, d));
+        for k in 0..d {
+            for i in 0..d {
+                x[(2 * k, i)] = mu[i] + s * l[(i, k)];
+                x[(2 * k + 1, i)] = mu[i] - s * l[(i, k)];
+            }
+        }
+        x
+    }
+
+    /// scipy.stats.multivariate_normal(mean=μ, cov=Σ).logpdf (scipy 1.17.1),
+    /// REFERENCES.md section 8. The score is −logpdf.
+    #[test]
+    fn log_density_matches_scipy() {
+        let mu = [1.0, -2.0, 0.5];
+        let sigma = [2.0, 0.3, -0.4, 0.3, 1.5, 0.2, -0.4, 0.2, 1.0];
+        let x = rows_with(&mu, &sigma);
+        let names: Vec<String> = ["a", "b", "c"].iter().map(|s| s.to_string()).collect();
+        let fitted = MultivariateGaussian.fit(x.view(), &names).unwrap();
+        match fitted.params() {
+            Params::MultivariateGaussian {
+                ln_det_covariance, ..
+            } => assert!((ln_det_covariance - 0.9329511727672624).abs() <= 1e-12),
+            _ => unreachable!(),
+        }
+        let s = fitted.score(array![[0.0, 0.0, 0.0], [1.5, -1.0, 2.0], [1.0, -2.0, 0.5]].view());
+        let want = [5.7346011781298305, 4.758007944455556, 3.22329118599765];
+        for (got, want) in s.iter().zip(want) {
+            assert!((got - want).abs() <= 1e-12, "{got} vs {want}");
+        }
+    }
+
+    #[test]
+    fn collinear_features_are_named() {
+        // c = a + b exactly: singular covariance.
+        let x = array![
+            [1.0, 2.0, 3.0, 0.5],
+            [2.0, 1.0, 3.0, 0.1],
+            [0.0, 4.0, 4.0, 0.9],
+            [3.0, 3.0, 6.0, 0.3],
+            [1.5, 0.5, 2.0, 0.7]
+        ];
+        let names: Vec<String> = ["a", "b", "c", "d"].iter().map(|s| s.to_string()).collect();
+        let e = MultivariateGaussian.fit(x.view(), &names).err().unwrap();
+        let text = e.to_string();
+        assert!(text.contains("singular"), "{text}");
+        for f in ["`a`", "`b`", "`c`"] {
+            assert!(text.contains(f), "{f} missing: {text}");
+        }
+        assert!(!text.contains("`d`"), "{text}");
+    }
+
+    #[test]
+    fn too_few_rows_is_an_error() {
+        let x = array![[1.0, 2.0], [2.0, 1.0]];
+        let e = MultivariateGaussian
+            .fit(x.view(), &["a".into(), "b".into()])
+            .err()
+            .unwrap();
+        assert!(e.to_string().contains("more rows than features"));
+    }
+}

@@ -1,0 +1,366 @@
+//! The one error type of the library, where spec problems are located, and the
+//! exit code each failure maps to.
+//!
+//! This module owns wording and exit codes. It depends on nothing else in the
+//! crate, so every stage can return [`Error`] without pulling in another stage.
+
+use std::fmt;
+use std::path::PathBuf;
+
+/// Where a spec problem is. Lines and columns are 1-based.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Location {
+    /// The spec file, as the user named it.
+    pub file: PathBuf,
+    /// 1-based line.
+    pub line: usize,
+    /// 1-based column.
+    pub column: usize,
+}
+
+impl fmt::Display for Location {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(f, "{}:{}:{}", self.file.display(), self.line, self.column)
+    }
+}
+
+/// The exit codes of the `anomark` binary, documented in the README.
+pub mod exit {
+    /// Success.
+    pub const OK: i32 = 0;
+    /// A verification found a difference (signature, hash or recomputed value).
+    pub const VERIFY_FAILED: i32 = 1;
+    /// A usage error or a spec error: nothing was read beyond the spec.
+    pub const USAGE: i32 = 2;
+    /// The data or the protocol refused the run (bad values, leakage, too few rows,
+    /// a degenerate fit).
+    pub const DATA: i32 = 3;
+    /// A file could not be read or written, or a key is unusable.
+    pub const IO: i32 = 4;
+    /// A bug in anomark.
+    pub const INTERNAL: i32 = 70;
+}
+
+/// Everything that can stop anomark.
+#[derive(Debug)]
+#[non_exhaustive]
+pub enum Error {
+    /// The spec is malformed or inconsistent.
+    Spec {
+        /// Where the problem is.
+        at: Location,
+        /// The dotted field path, such as `split.protocol.seed` (empty for the root).
+        field: String,
+        /// What is wrong, lowercase, without a trailing period.
+        message: String,
+        /// The text of the offending line, for the caret rendering.
+        line_text: String,
+    },
+    /// A data value or column is unusable. `lines` are file line numbers (the
+    /// header is line 1).
+    Data {
+        /// The data file.
+        path: PathBuf,
+        /// The column, when one column is at fault.
+        column: Option<String>,
+        /// What is wrong.
+        message: String,
+        /// The first offending file lines, at most a handful.
+        lines: Vec<u64>,
+        /// How many rows are affected in all.
+        total: usize,
+    },
+    /// The same row content sits in two splits.
+    Leakage {
+        /// The splits that share content, such as `validation` and `test`.
+        splits: (String, String),
+        /// How many distinct contents are shared.
+        overlapping: usize,
+        /// File lines of the first shared rows, one from each split.
+        first: (u64, u64),
+    },
+    /// The protocol cannot be followed with these rows.
+    Protocol {
+        /// What is missing or wrong.
+        message: String,
+    },
+    /// A detector cannot be fitted to the training rows.
+    Fit {
+        /// The detector.
+        detector: String,
+        /// What went wrong.
+        message: String,
+        /// The features involved.
+        features: Vec<String>,
+    },
+    /// A file could not be read or written.
+    Io {
+        /// The file.
+        path: PathBuf,
+        /// What was being done, such as `reading` or `renaming into place`.
+        action: &'static str,
+        /// The cause.
+        source: std::io::Error,
+    },
+    /// The CSV reader failed for a reason other than a bad value.
+    Csv {
+        /// The data file.
+        path: PathBuf,
+        /// The reader's message.
+        message: String,
+    },
+    /// The output directory cannot be used.
+    Output {
+        /// The directory.
+        path: PathBuf,
+        /// Why.
+        message: String,
+    },
+    /// A key file is unusable.
+    Key {
+        /// The key file.
+        path: PathBuf,
+        /// Why.
+        message: String,
+    },
+    /// A template failed to render.
+    Template {
+        /// The template name.
+        name: String,
+        /// 1-based line in the template, when known.
+        line: Option<usize>,
+        /// The engine's message.
+        message: String,
+    },
+    /// `verify` found differences.
+    Verify {
+        /// The run directory.
+        dir: PathBuf,
+        /// Each difference, in the order found.
+        problems: Vec<String>,
+    },
+    /// A bug.
+    Internal {
+        /// What went wrong.
+        message: String,
+    },
+}
+
+impl Error {
+    /// The process exit code for this error.
+    pub fn code(&self) -> i32 {
+        match self {
+            Error::Spec { .. } => exit::USAGE,
+            Error::Data { .. }
+            | Error::Leakage { .. }
+            | Error::Protocol { .. }
+            | Error::Fit { .. }
+            | Error::Csv { .. } => exit::DATA,
+            Error::Io { .. }
+            | Error::Output { .. }
+            | Error::Key { .. }
+            | Error::Template { .. } => exit::IO,
+            Error::Verify { .. } => exit::VERIFY_FAILED,
+            Error::Internal { .. } => exit::INTERNAL,
+        }
+    }
+
+    /// Shorthand for an I/O error on `path`.
+    pub fn io(path: impl Into<PathBuf>, action: &'static str, source: std::io::Error) -> Self {
+        Error::Io {
+            path: path.into(),
+            action,
+            source,
+        }
+    }
+
+    /// Shorthand for a bug report.
+    pub fn internal(message: impl Into<String>) -> Self {
+        Error::Internal {
+            message: message.into(),
+        }
+    }
+}
+
+fn list(names: &[String]) -> String {
+    names
+        .iter()
+        .map(|n| format!("`{n}`"))
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
+fn lines(lines: &[u64], total: usize) -> String {
+    let shown = lines
+        .iter()
+        .map(|l| l.to_string())
+        .collect::<Vec<_>>()
+        .join(", ");
+    if total > lines.len() {
+        format!("lines {shown} and {} more", total - lines.len())
+    } else if lines.len() == 1 {
+        format!("line {shown}")
+    } else {
+        format!("lines {shown}")
+    }
+}
+
+impl fmt::Display for Error {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Error::Spec {
+                at,
+                field,
+                message,
+                line_text,
+            } => {
+                if field.is_empty() {
+                    write!(f, "{at}: {message}")?;
+                } else {
+                    write!(f, "{at}: field `{field}`: {message}")?;
+                }
+                if !line_text.is_empty() {
+                    let gutter = at.line.to_string().len();
+                    let caret_pad: String = line_text
+                        .chars()
+                        .take(at.column.saturating_sub(1))
+                        .map(|c| if c == '\t' { '\t' } else { ' ' })
+                        .collect();
+                    write!(
+                        f,
+                        "\n{:gutter$} |\n{} | {}\n{:gutter$} | {}^",
+                        "", at.line, line_text, "", caret_pad
+                    )?;
+                }
+                Ok(())
+            }
+            Error::Data {
+                path,
+                column,
+                message,
+                lines: l,
+                total,
+            } => {
+                write!(f, "{}: ", path.display())?;
+                if let Some(c) = column {
+                    write!(f, "column `{c}`: ")?;
+                }
+                write!(f, "{message}")?;
+                if !l.is_empty() {
+                    write!(f, " ({})", lines(l, *total))?;
+                }
+                Ok(())
+            }
+            Error::Leakage {
+                splits,
+                overlapping,
+                first,
+            } => write!(
+                f,
+                "leakage: {overlapping} distinct row content(s) appear in both `{}` and `{}` \
+                 (first: line {} and line {}); identical rows must share one split",
+                splits.0, splits.1, first.0, first.1
+            ),
+            Error::Protocol { message } => write!(f, "{message}"),
+            Error::Fit {
+                detector,
+                message,
+                features,
+            } => {
+                write!(f, "detector `{detector}`: {message}")?;
+                if !features.is_empty() {
+                    write!(f, " (features: {})", list(features))?;
+                }
+                Ok(())
+            }
+            Error::Io {
+                path,
+                action,
+                source,
+            } => write!(f, "{action} `{}`: {source}", path.display()),
+            Error::Csv { path, message } => {
+                write!(f, "{}: cannot read as CSV: {message}", path.display())
+            }
+            Error::Output { path, message } => {
+                write!(f, "output `{}`: {message}", path.display())
+            }
+            Error::Key { path, message } => write!(f, "key `{}`: {message}", path.display()),
+            Error::Template {
+                name,
+                line,
+                message,
+            } => match line {
+                Some(l) => write!(f, "template `{name}` line {l}: {message}"),
+                None => write!(f, "template `{name}`: {message}"),
+            },
+            Error::Verify { dir, problems } => {
+                write!(
+                    f,
+                    "verification of `{}` failed: {} problem(s)",
+                    dir.display(),
+                    problems.len()
+                )?;
+                for p in problems {
+                    write!(f, "\n  - {p}")?;
+                }
+                Ok(())
+            }
+            Error::Internal { message } => write!(
+                f,
+                "internal error: {message}; this is a bug in anomark, please report it \
+                 with the spec and the command that produced it"
+            ),
+        }
+    }
+}
+
+impl std::error::Error for Error {
+    fn source(&self) -> Option<&(dyn std::error::Error + 'static)> {
+        match self {
+            Error::Io { source, .. } => Some(source),
+            _ => None,
+        }
+    }
+}
+
+/// The crate's result type.
+pub type Result<T, E = Error> = std::result::Result<T, E>;
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn spec_error_renders_caret_under_column() {
+        let e = Error::Spec {
+            at: Location {
+                file: "spec.yaml".into(),
+                line: 14,
+                column: 7,
+            },
+            field: "split.protocol.seed".into(),
+            message: "expected an integer, found `seven`".into(),
+            line_text: "  seed: seven".into(),
+        };
+        assert_eq!(
+            e.to_string(),
+            "spec.yaml:14:7: field `split.protocol.seed`: expected an integer, found `seven`\n   |\n14 |   seed: seven\n   |       ^"
+        );
+        assert_eq!(e.code(), exit::USAGE);
+    }
+
+    #[test]
+    fn data_error_names_lines() {
+        let e = Error::Data {
+            path: "d.csv".into(),
+            column: Some("x".into()),
+            message: "value is not a number".into(),
+            lines: vec![3, 9],
+            total: 4,
+        };
+        assert_eq!(
+            e.to_string(),
+            "d.csv: column `x`: value is not a number (lines 3, 9 and 2 more)"
+        );
+    }
+}

@@ -1,0 +1,103 @@
+//! anomark validates density-based anomaly detectors by a declared protocol.
+//!
+//! A YAML spec names the data, the features, the split, the candidate
+//! detectors and the threshold policy. One run loads and checks the data, makes
+//! seeded content-hashed splits, refuses leakage, fits each candidate on normal
+//! training rows, picks each threshold and then the detector on validation
+//! only, opens the test split once, and writes a signed run directory: the run
+//! record, the scores and a model card.
+//!
+//! Modules, in pipeline order: [`spec`] → [`data`] → [`audit`] (hashes and the
+//! leakage proof) → [`split`] → [`detect`] → [`threshold`] → [`metrics`] →
+//! [`card`] → [`output`] and [`sign`]; [`pipeline`] runs them, [`cli`] turns
+//! arguments into a [`Request`], and [`error`] holds the one error type.
+
+#![deny(missing_docs)]
+
+pub mod audit;
+pub mod card;
+pub mod cli;
+pub mod data;
+pub mod detect;
+pub mod error;
+pub mod metrics;
+pub mod output;
+pub mod pipeline;
+pub mod record;
+pub mod sign;
+pub mod spec;
+pub mod split;
+pub mod threshold;
+
+pub use error::{Error, Result};
+
+use std::path::PathBuf;
+
+/// One thing the user asked for.
+#[derive(Debug, Clone)]
+pub enum Request {
+    /// Run a spec.
+    Run(pipeline::RunOptions),
+    /// Verify a run directory.
+    Verify {
+        /// The run directory.
+        dir: PathBuf,
+        /// The public key.
+        pubkey: PathBuf,
+    },
+    /// Make a key pair.
+    Keygen {
+        /// Private key path.
+        private: PathBuf,
+        /// Public key path.
+        public: PathBuf,
+    },
+    /// Print the spec's JSON Schema.
+    Schema,
+}
+
+/// What a request produced: text for stdout.
+#[derive(Debug, Clone)]
+pub struct Outcome {
+    /// The lines to print on stdout.
+    pub stdout: String,
+}
+
+fn rate(v: Option<f64>) -> String {
+    v.map_or("n/a".into(), |v| format!("{v:.4}"))
+}
+
+/// Carries out a request.
+pub fn run(request: &Request) -> Result<Outcome> {
+    let stdout = match request {
+        Request::Run(opts) => {
+            let s = pipeline::run(opts)?;
+            format!(
+                "chosen: {} (validation F1 {}, test F1 {})\nwrote: {}\n",
+                s.chosen,
+                rate(s.validation_f1),
+                rate(s.test_f1),
+                s.out.display()
+            )
+        }
+        Request::Verify { dir, pubkey } => {
+            let m = pipeline::verify(dir, pubkey)?;
+            format!(
+                "verified: {} ({} files, signature by {})\n",
+                dir.display(),
+                m.files.len(),
+                m.key_fingerprint
+            )
+        }
+        Request::Keygen { private, public } => {
+            let fp = sign::keygen(private, public)?;
+            format!(
+                "wrote private key {} and public key {}\nfingerprint: {fp}\n",
+                private.display(),
+                public.display()
+            )
+        }
+        Request::Schema => spec::schema_json(),
+    };
+    Ok(Outcome { stdout })
+}

@@ -1,0 +1,203 @@
+//! The run record (`run.json`) and the one place where numbers are formatted
+//! for text outputs.
+//!
+//! Everything here is data: the pipeline fills it, the writers serialise it.
+//! Maps are `BTreeMap`s so that key order never depends on hashing, and floats
+//! are written as the shortest decimal that reads back to the same double
+//! (serde_json's and [`fmt_f64`]'s rule), so the bytes are the same everywhere.
+
+use std::collections::BTreeMap;
+
+use crate::audit::hash::FileDigest;
+use crate::detect::Params;
+use crate::metrics::Metrics;
+use crate::split::{Counts, SplitReport};
+
+/// run.json format version.
+pub const FORMAT: u32 = 1;
+
+/// The tool name and version, as recorded.
+pub fn tool() -> String {
+    format!("anomark {}", env!("CARGO_PKG_VERSION"))
+}
+
+/// A double as the shortest decimal that reads back to the same bits.
+pub fn fmt_f64(v: f64) -> String {
+    if v.is_finite() {
+        // Rust's `Display` for f64 is the shortest round-trip form (no exponent).
+        format!("{v}")
+    } else if v.is_nan() {
+        "NaN".into()
+    } else if v > 0.0 {
+        "inf".into()
+    } else {
+        "-inf".into()
+    }
+}
+
+/// The record of one run.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct RunRecord {
+    /// Format version of this record.
+    pub format: u32,
+    /// The tool and version.
+    pub tool: String,
+    /// The spec.
+    pub spec: SpecRecord,
+    /// Every input file.
+    pub inputs: Vec<InputRecord>,
+    /// The label column and its values.
+    pub label: LabelRecord,
+    /// Feature names, in the order the detectors see them.
+    pub features: Vec<String>,
+    /// The split.
+    pub split: SplitRecord,
+    /// The threshold policy's name.
+    pub threshold_policy: String,
+    /// How the detector was chosen.
+    pub selection: SelectionRecord,
+    /// Every candidate.
+    pub candidates: Vec<CandidateRecord>,
+    /// The only wall-clock field: when the run started and how long it took.
+    /// Null with `--no-wall-clock`; everything else is reproducible to the byte.
+    pub wall_clock: Option<WallClock>,
+}
+
+/// The spec file.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct SpecRecord {
+    /// The spec's file name.
+    pub file: String,
+    /// blake3 of its bytes.
+    pub blake3: String,
+}
+
+/// One input file.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct InputRecord {
+    /// The path as written in the spec.
+    pub path: String,
+    /// Data rows read.
+    pub rows: usize,
+    /// Size and hash.
+    #[serde(flatten)]
+    pub digest: FileDigest,
+}
+
+/// The label column.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct LabelRecord {
+    /// Column name.
+    pub column: String,
+    /// Value meaning normal.
+    pub normal: String,
+    /// Value meaning anomaly.
+    pub anomaly: String,
+}
+
+/// The split, with one manifest hash per split.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct SplitRecord {
+    /// How the split came out.
+    #[serde(flatten)]
+    pub report: SplitReport,
+    /// Split name → the counts the fractions ask for (protocol split only).
+    pub requested: Option<BTreeMap<String, Counts>>,
+    /// Split name → the counts obtained, by label.
+    pub counts: BTreeMap<String, Counts>,
+    /// Split name → blake3 of its manifest (see README, "Content hashes").
+    pub manifest_blake3: BTreeMap<String, String>,
+}
+
+/// The selection rule and its outcome.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct SelectionRecord {
+    /// The rule, in words.
+    pub rule: String,
+    /// The chosen candidate's name.
+    pub chosen: String,
+}
+
+/// One candidate detector.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct CandidateRecord {
+    /// Candidate name.
+    pub name: String,
+    /// Free parameters (the tie rule's notion of simpler).
+    pub parameter_count: usize,
+    /// Fitted parameters.
+    pub params: Params,
+    /// Flag iff s(x) > τ.
+    pub tau: f64,
+    /// ln ε = −τ.
+    pub ln_epsilon: f64,
+    /// Validation metrics at τ.
+    pub validation: Metrics,
+    /// Test metrics at τ.
+    pub test: Metrics,
+    /// `true` for the chosen candidate. The test numbers of every candidate,
+    /// chosen or not, were computed after selection and played no part in it.
+    pub chosen: bool,
+}
+
+/// Wall-clock facts, the record's only non-reproducible field.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct WallClock {
+    /// Start of the run, UTC, RFC 3339.
+    pub started_utc: String,
+    /// Elapsed seconds, to the millisecond.
+    pub seconds: f64,
+}
+
+/// Formats seconds since the Unix epoch as RFC 3339 UTC (to the second).
+pub fn rfc3339(unix_seconds: u64) -> String {
+    let days = (unix_seconds / 86_400) as i64;
+    let secs = unix_seconds % 86_400;
+    // Civil date from days since 1970-01-01 (H. Hinnant's algorithm).
+    let z = days + 719_468;
+    let era = z.div_euclid(146_097);
+    let doe = z.rem_euclid(146_097);
+    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
+    let y = yoe + era * 400;
+    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
+    let mp = (5 * doy + 2) / 153;
+    let d = doy - (153 * mp + 2) / 5 + 1;
+    let m = if mp < 10 { mp + 3 } else { mp - 9 };
+    let y = if m <= 2 { y + 1 } else { y };
+    format!(
+        "{y:04}-{m:02}-{d:02}T{:02}:{:02}:{:02}Z",
+        secs / 3600,
+        secs / 60 % 60,
+        secs % 60
+    )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn rfc3339_known_instants() {
+        // 2000-03-01 is 11017 days after the epoch (common practice, no source:
+        // checked by `date -u -d @951868800`).
+        assert_eq!(rfc3339(0), "1970-01-01T00:00:00Z");
+        assert_eq!(rfc3339(951_868_800), "2000-03-01T00:00:00Z");
+        assert_eq!(rfc3339(1_798_761_599), "2026-12-31T23:59:59Z");
+    }
+
+    #[test]
+    fn floats_round_trip() {
+        for v in [0.1, 1.0 / 3.0, -42.819383059492445, 1e-300, 6.0] {
+            assert_eq!(fmt_f64(v).parse::<f64>().unwrap(), v);
+        }
+        assert_eq!(fmt_f64(6.0), "6");
+    }
+}

@@ -1,0 +1,59 @@
+//! The same spec and data give byte-identical outputs.
+
+use crate::util::{rows, standard};
+
+#[test]
+fn two_runs_give_identical_scores_and_record_apart_from_the_clock() {
+    let r = rows(800, 12, 9);
+    let args = ["run", "spec.yaml", "--key", "key.pem", "--out", "out"];
+    let a = standard(&r).args(args).success();
+    let b = standard(&r).args(args).success();
+    assert_eq!(a.read("out/scores.csv"), b.read("out/scores.csv"));
+    let strip = |mut v: serde_json::Value| {
+        assert!(v["wall-clock"]["started-utc"].is_string());
+        v["wall-clock"] = serde_json::Value::Null;
+        v
+    };
+    assert_eq!(strip(a.json("out/run.json")), strip(b.json("out/run.json")));
+}
+
+#[test]
+fn without_the_clock_every_byte_is_identical_even_the_signature() {
+    let r = rows(800, 12, 10);
+    // The same key in both directories, so the signatures can be compared.
+    let first = standard(&r);
+    let key = std::fs::read(first.path("key.pem")).unwrap();
+    let second = crate::util::Case::new()
+        .file("data.csv", crate::util::csv(&["a", "b", "c"], &r))
+        .file(
+            "spec.yaml",
+            crate::util::spec(&["a", "b", "c"], crate::util::PROTOCOL),
+        )
+        .file("key.pem", &key);
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::set_permissions(
+            second.path("key.pem"),
+            std::fs::Permissions::from_mode(0o600),
+        )
+        .unwrap();
+    }
+    let a = first.run_spec().success();
+    let b = second.run_spec().success();
+    for f in [
+        "run.json",
+        "scores.csv",
+        "card.md",
+        "card.html",
+        "manifest.json",
+        "manifest.sig",
+    ] {
+        assert_eq!(
+            a.read(&format!("out/{f}")),
+            b.read(&format!("out/{f}")),
+            "{f}"
+        );
+    }
+    assert!(a.json("out/run.json")["wall-clock"].is_null());
+}

@@ -1,0 +1,248 @@
+//! One test per kind of bad input: each gives a clear message naming the
+//! file and the field, column or rows, a non-zero exit, and no output.
+
+use crate::util::{csv, rows, spec, standard, Case, PROTOCOL};
+
+fn no_output(d: &crate::util::Done) {
+    assert!(!d.dir.join("out").exists(), "a failed run left output");
+    let leftovers: Vec<_> = std::fs::read_dir(&d.dir)
+        .unwrap()
+        .filter_map(|e| e.ok())
+        .filter(|e| {
+            e.file_name()
+                .to_string_lossy()
+                .starts_with(".anomark-partial")
+        })
+        .collect();
+    assert!(leftovers.is_empty(), "temporary directory left behind");
+}
+
+#[test]
+fn malformed_yaml_names_file_line_and_column() {
+    let bad = spec(&["a", "b", "c"], PROTOCOL).replace("  label:\n", "  label: [\n");
+    let d = standard(&rows(50, 4, 1))
+        .file("spec.yaml", bad)
+        .run_spec()
+        .fails(2, &["spec.yaml:"]);
+    // The caret rendering shows the offending line.
+    assert!(d.stderr.contains(" | "), "{}", d.stderr);
+    no_output(&d);
+}
+
+#[test]
+fn unknown_key_is_refused_with_its_place() {
+    let bad = spec(&["a", "b", "c"], PROTOCOL)
+        .replace("  owner: Tests\n", "  owner: Tests\n  colour: red\n");
+    let d = standard(&rows(50, 4, 1))
+        .file("spec.yaml", bad)
+        .run_spec()
+        .fails(
+            2,
+            &[
+                "spec.yaml:21:",
+                "field `card.colour`",
+                "unknown field `colour`",
+            ],
+        );
+    no_output(&d);
+}
+
+#[test]
+fn wrong_type_names_the_field() {
+    let bad = spec(&["a", "b", "c"], PROTOCOL).replace("seed: 7", "seed: many");
+    standard(&rows(50, 4, 1))
+        .file("spec.yaml", bad)
+        .run_spec()
+        .fails(2, &["spec.yaml:15:", "field `split.protocol.seed`"]);
+}
+
+#[test]
+fn missing_column_names_the_spec_line_and_the_file() {
+    let d = standard(&rows(50, 4, 1))
+        .file("spec.yaml", spec(&["a", "b", "thickness"], PROTOCOL))
+        .run_spec()
+        .fails(
+            2,
+            &[
+                "spec.yaml:12:",
+                "field `data.features[2]`",
+                "column `thickness` is not in",
+                "data.csv",
+                "`a`",
+            ],
+        );
+    no_output(&d);
+}
+
+#[test]
+fn non_numeric_value_names_column_and_lines() {
+    let mut text = csv(&["a", "b", "c"], &rows(50, 4, 1));
+    text = text
+        .lines()
+        .enumerate()
+        .map(|(i, l)| {
+            if i == 7 || i == 9 {
+                let mut f: Vec<&str> = l.split(',').collect();
+                f[2] = "n/a";
+                f.join(",")
+            } else {
+                l.to_string()
+            }
+        })
+        .collect::<Vec<_>>()
+        .join("\n");
+    let d = standard(&rows(50, 4, 1))
+        .file("data.csv", text + "\n")
+        .run_spec()
+        .fails(
+            3,
+            &[
+                "data.csv",
+                "column `b`",
+                "value `n/a` is not a number",
+                "lines 8, 10",
+            ],
+        );
+    no_output(&d);
+}
+
+#[test]
+fn missing_value_names_column_and_line() {
+    let text = csv(&["a", "b", "c"], &rows(50, 4, 1));
+    let text: String = text
+        .lines()
+        .enumerate()
+        .map(|(i, l)| {
+            if i == 5 {
+                let mut f: Vec<&str> = l.split(',').collect();
+                f[3] = "";
+                f.join(",") + "\n"
+            } else {
+                format!("{l}\n")
+            }
+        })
+        .collect();
+    standard(&rows(50, 4, 1))
+        .file("data.csv", text)
+        .run_spec()
+        .fails(3, &["column `c`", "missing", "line 6"]);
+}
+
+#[test]
+fn undeclared_label_value_names_the_rows() {
+    let text = csv(&["a", "b", "c"], &rows(50, 4, 1)).replacen(",normal\n", ",Normal\n", 2);
+    standard(&rows(50, 4, 1))
+        .file("data.csv", text)
+        .run_spec()
+        .fails(
+            3,
+            &[
+                "column `label`",
+                "label `Normal` is neither",
+                "`normal`",
+                "`anomaly`",
+                "lines 2, 3",
+            ],
+        );
+}
+
+#[test]
+fn too_few_anomalies_is_refused() {
+    let d = standard(&rows(100, 1, 1)).run_spec().fails(
+        3,
+        &["split holds", "0 anomalous rows", "at least one of both"],
+    );
+    no_output(&d);
+}
+
+#[test]
+fn zero_variance_feature_is_named() {
+    let r: crate::util::Rows = rows(100, 4, 1)
+        .into_iter()
+        .map(|(id, mut x, a)| {
+            x[2] = 4.0;
+            (id, x, a)
+        })
+        .collect();
+    standard(&r).run_spec().fails(3, &["zero variance", "`c`"]);
+}
+
+#[test]
+fn singular_covariance_names_the_features() {
+    // c = a + b for every row: only the multivariate Gaussian refuses.
+    let r: crate::util::Rows = rows(100, 4, 1)
+        .into_iter()
+        .map(|(id, mut x, a)| {
+            x[2] = x[0] + x[1];
+            (id, x, a)
+        })
+        .collect();
+    let text = csv(&["a", "b", "c"], &r);
+    standard(&r).file("data.csv", text).run_spec().fails(
+        3,
+        &["multivariate-gaussian", "singular", "`a`", "`b`", "`c`"],
+    );
+}
+
+#[test]
+fn existing_output_directory_is_never_overwritten() {
+    let case = standard(&rows(60, 4, 1)).file("out/keep.txt", "mine");
+    case.clone()
+        .run_spec()
+        .fails(4, &["`out`", "already exists"]);
+    assert_eq!(
+        std::fs::read_to_string(case.path("out/keep.txt")).unwrap(),
+        "mine"
+    );
+}
+
+#[test]
+fn a_failure_at_the_last_moment_leaves_nothing() {
+    let d = standard(&rows(60, 4, 1))
+        .env("ANOMARK_FAIL_AT", "before-rename")
+        .run_spec()
+        .fails(70, &["injected failure", "bug"]);
+    no_output(&d);
+}
+
+#[test]
+fn missing_data_file_is_named() {
+    standard(&rows(60, 4, 1))
+        .file(
+            "spec.yaml",
+            spec(&["a", "b", "c"], PROTOCOL).replace("data.csv", "nowhere.csv"),
+        )
+        .run_spec()
+        .fails(4, &["nowhere.csv"]);
+}
+
+#[test]
+fn bad_private_key_is_refused() {
+    let case = standard(&rows(60, 4, 1)).file("bad.pem", "not a key\n");
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::set_permissions(case.path("bad.pem"), std::fs::Permissions::from_mode(0o600))
+            .unwrap();
+    }
+    case.args(["run", "spec.yaml", "--key", "bad.pem", "--out", "out"])
+        .fails(4, &["key `bad.pem`", "PKCS#8"]);
+}
+
+#[cfg(unix)]
+#[test]
+fn private_key_readable_by_others_is_refused() {
+    use std::os::unix::fs::PermissionsExt;
+    let case = standard(&rows(60, 4, 1));
+    std::fs::set_permissions(case.path("key.pem"), std::fs::Permissions::from_mode(0o644)).unwrap();
+    case.run_spec()
+        .fails(4, &["readable by others", "chmod 600"]);
+}
+
+#[test]
+fn missing_spec_is_an_io_error() {
+    Case::new()
+        .keys()
+        .args(["run", "absent.yaml", "--key", "key.pem", "--out", "out"])
+        .fails(4, &["absent.yaml"]);
+}
