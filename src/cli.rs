@@ -38,6 +38,15 @@ pub enum Command {
         #[arg(long)]
         no_wall_clock: bool,
     },
+    /// Check the spec and the data without fitting anything: exit 0 when fine,
+    /// 1 when problems were found, 2 for a usage or spec error.
+    Check {
+        /// The spec file (YAML).
+        spec: PathBuf,
+        /// Print the report as JSON.
+        #[arg(long)]
+        json: bool,
+    },
     /// Check a run directory's signature and every file's hash.
     Verify {
         /// The run directory.
@@ -75,6 +84,7 @@ impl From<Args> for Request {
                 templates,
                 no_wall_clock,
             }),
+            Command::Check { spec, json } => Request::Check { spec, json },
             Command::Verify { dir, pubkey } => Request::Verify { dir, pubkey },
             Command::Keygen { private, public } => Request::Keygen { private, public },
             Command::Schema => Request::Schema,

@@ -1,50 +1,116 @@
-//! Loads the labelled source into a [`Dataset`]: a feature matrix, labels and
-//! stable row ids (the 0-based position of the row in the file).
+//! Loads the sources into a [`Dataset`]: the numeric source columns as a
+//! matrix, labels, stable row ids and the text columns that later stages need.
 //!
 //! This module owns reading and checking values. It knows nothing of splits or
-//! models: the split column, if any, is handed on as text for `split` to judge.
-//! Every refusal names the file, the column and the first offending file lines
-//! (the header is line 1, so data row `i` is line `i + 2`; a quoted field that
-//! spans lines would shift this, and anomark does not count such breaks).
+//! models: the split, group and time columns are handed on as text. Sources are
+//! CSV or Parquet files, globs, or directories of Parquet files (read through
+//! polars' lazy scans). [`inspect`] gathers every value problem; [`load`]
+//! refuses the first one and applies the missing-value policy. Every refusal
+//! names the file, the column and the first offending places: file lines for
+//! CSV (the header is line 1, so data row `i` is line `i + 2`; a quoted field
+//! spanning lines would shift this), 1-based rows for Parquet.
 
+use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
 use ndarray::Array2;
 use polars::prelude::*;
 
-use crate::error::{Error, Location, Result};
-use crate::spec::{Column, Plan, SplitPlan};
+use crate::audit::hash::{self, FileDigest};
+use crate::error::{Error, Result, RowUnit};
+use crate::spec::{Column, MissingPolicy, Plan, SourcePlan};
 
-/// How many offending lines an error lists.
+/// How many offending places an error lists.
 const SHOWN: usize = 5;
 
-/// A row's 0-based position in the source file.
+/// A kept row's index in the [`Dataset`].
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize)]
 pub struct RowId(pub u64);
 
-impl RowId {
-    /// The row's line in the file, counting the header as line 1.
-    pub fn line(self) -> u64 {
-        self.0 + 2
+/// The file format of a source file.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Format {
+    /// Comma-separated text with a header line.
+    Csv,
+    /// Apache Parquet.
+    Parquet,
+}
+
+impl Format {
+    fn unit(self) -> RowUnit {
+        match self {
+            Format::Csv => RowUnit::Line,
+            Format::Parquet => RowUnit::Row,
+        }
+    }
+
+    /// The 1-based place of a 0-based data row: its line for CSV, its row for Parquet.
+    pub fn place(self, row: u64) -> u64 {
+        match self {
+            Format::Csv => row + 2,
+            Format::Parquet => row + 1,
+        }
     }
 }
 
-/// The labelled examples, checked.
+/// One input file.
+#[derive(Debug, Clone)]
+pub struct SourceFile {
+    /// The file on disk.
+    pub path: PathBuf,
+    /// The path relative to the spec's directory, with `/` separators (recorded).
+    pub shown: String,
+    /// Its format.
+    pub format: Format,
+    /// Size and blake3.
+    pub digest: FileDigest,
+    /// Data rows in the file.
+    pub rows: usize,
+}
+
+/// Where a row came from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Origin {
+    /// Index into [`Dataset::files`].
+    pub file: u32,
+    /// 0-based data row within that file.
+    pub row: u64,
+}
+
+/// Rows left out under `missing-values: drop-row`.
+#[derive(Debug, Clone, Default, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct Dropped {
+    /// Dropped normal rows.
+    pub normal: usize,
+    /// Dropped anomalous rows.
+    pub anomaly: usize,
+    /// With a fixed split column: split value → (normal, anomaly) dropped.
+    pub by_split: BTreeMap<String, [usize; 2]>,
+}
+
+/// The examples, read (and, after [`load`], checked).
 #[derive(Debug, Clone)]
 pub struct Dataset {
-    /// The source file.
-    pub path: PathBuf,
-    /// Feature names, in spec order.
-    pub features: Vec<String>,
-    /// Feature values, one row per source row (`n × d`), all finite.
+    /// Every input file, in reading order.
+    pub files: Vec<SourceFile>,
+    /// The numeric source columns, in the plan's order.
+    pub columns: Vec<String>,
+    /// Their values, one row per kept row. After [`load`] all are finite;
+    /// after [`inspect`] a missing or unusable value is NaN.
     pub x: Array2<f64>,
-    /// `true` for a known anomaly, `false` for a normal example.
+    /// `true` for a known anomaly.
     pub is_anomaly: Vec<bool>,
+    /// Where each row came from.
+    pub origin: Vec<Origin>,
     /// The id column's values, when the spec names one.
     pub ids: Option<Vec<String>>,
-    /// The split column's values, when the split comes from a column.
-    pub split_column: Option<Vec<String>>,
+    /// Text columns (split, group, time) by name.
+    pub text: BTreeMap<String, Vec<String>>,
+    /// Rows left out for missing values.
+    pub dropped: Dropped,
 }
 
 impl Dataset {
@@ -57,19 +123,39 @@ impl Dataset {
     pub fn is_empty(&self) -> bool {
         self.is_anomaly.is_empty()
     }
-}
 
-fn data_error(path: &Path, column: &str, message: String, bad: &[usize]) -> Error {
-    Error::Data {
-        path: path.to_path_buf(),
-        column: Some(column.to_string()),
-        message,
-        lines: bad
+    /// The file and 1-based place (line or row) of a row, for messages.
+    pub fn place(&self, r: RowId) -> String {
+        let o = self.origin[r.0 as usize];
+        let f = &self.files[o.file as usize];
+        format!(
+            "{} {} {}",
+            f.shown,
+            f.format.unit().word(),
+            f.format.place(o.row)
+        )
+    }
+
+    /// A data error about `rows` (all assumed from the first row's file, which
+    /// is the one named; rows from other files are counted, not listed).
+    pub fn error(&self, column: &str, message: String, rows: &[RowId]) -> Error {
+        let first = self.origin[rows[0].0 as usize].file;
+        let f = &self.files[first as usize];
+        let places = rows
             .iter()
+            .map(|r| self.origin[r.0 as usize])
+            .filter(|o| o.file == first)
             .take(SHOWN)
-            .map(|&i| RowId(i as u64).line())
-            .collect(),
-        total: bad.len(),
+            .map(|o| f.format.place(o.row))
+            .collect();
+        Error::Data {
+            path: PathBuf::from(&f.shown),
+            column: Some(column.to_string()),
+            message,
+            lines: places,
+            total: rows.len(),
+            unit: f.format.unit(),
+        }
     }
 }
 
@@ -80,245 +166,601 @@ fn csv_error(path: &Path, e: PolarsError) -> Error {
     }
 }
 
-fn read(path: &Path, options: CsvReadOptions) -> Result<DataFrame> {
-    options
-        .try_into_reader_with_file_path(Some(path.to_path_buf()))
-        .and_then(|r| r.finish())
-        .map_err(|e| csv_error(path, e))
+/// Expands a source path: a file, a glob (`*`, `?`, `[`), or a directory
+/// (every `.parquet` file below it, skipping names that start with `.` or `_`,
+/// as distributed engines write them). Sorted, so the order is reproducible.
+fn expand(s: &SourcePlan, plan: &Plan) -> Result<Vec<PathBuf>> {
+    let p = &s.resolved;
+    let not_found = |why: String| plan.error_at(&s.at, &s.field, why);
+    let mut files = if s.written.contains(['*', '?', '[']) {
+        let pattern = p.to_string_lossy().into_owned();
+        let paths = glob::glob(&pattern)
+            .map_err(|e| not_found(format!("`{}` is not a valid glob: {e}", s.written)))?;
+        let mut out = Vec::new();
+        for entry in paths {
+            match entry {
+                Ok(f) if f.is_file() => out.push(f),
+                Ok(_) => {}
+                Err(e) => {
+                    let path = e.path().to_path_buf();
+                    return Err(Error::io(path, "reading", e.into()));
+                }
+            }
+        }
+        if out.is_empty() {
+            return Err(not_found(format!("no file matches `{}`", s.written)));
+        }
+        out
+    } else if p.is_dir() {
+        let mut out = Vec::new();
+        walk_parquet(p, &mut out)?;
+        if out.is_empty() {
+            return Err(not_found(format!(
+                "directory `{}` holds no `.parquet` file",
+                s.written
+            )));
+        }
+        out
+    } else if p.is_file() {
+        vec![p.clone()]
+    } else {
+        return Err(Error::io(
+            p,
+            "reading data",
+            std::io::Error::new(std::io::ErrorKind::NotFound, "no such file or directory"),
+        ));
+    };
+    files.sort();
+    Ok(files)
 }
 
-fn base_options() -> CsvReadOptions {
-    // Only the empty field counts as missing; "NA" and the like are refused as
-    // non-numeric so that nobody's missing-value convention is guessed at.
-    CsvReadOptions::default()
-        .with_has_header(true)
-        .with_raise_if_empty(true)
-}
-
-/// The header's column names.
-fn header(path: &Path) -> Result<Vec<String>> {
-    if let Err(e) = std::fs::metadata(path) {
-        return Err(Error::io(path, "reading data", e));
+fn walk_parquet(dir: &Path, out: &mut Vec<PathBuf>) -> Result<()> {
+    for entry in std::fs::read_dir(dir).map_err(|e| Error::io(dir, "listing", e))? {
+        let entry = entry.map_err(|e| Error::io(dir, "listing", e))?;
+        let name = entry.file_name().to_string_lossy().into_owned();
+        if name.starts_with('.') || name.starts_with('_') {
+            continue;
+        }
+        let p = entry.path();
+        if p.is_dir() {
+            walk_parquet(&p, out)?;
+        } else if name.ends_with(".parquet") {
+            out.push(p);
+        }
     }
-    let df = read(
-        path,
-        base_options()
-            .with_n_rows(Some(0))
-            .with_infer_schema_length(Some(0)),
-    )?;
-    Ok(df
-        .get_column_names()
-        .iter()
-        .map(|s| s.to_string())
-        .collect())
+    Ok(())
 }
 
-fn missing_column(plan: &Plan, c: &Column, present: &[String]) -> Error {
-    let text = String::from_utf8_lossy(&plan.spec_bytes);
-    let line_text = text.lines().nth(c.at.line - 1).unwrap_or("").to_string();
+fn format_of(path: &Path, plan: &Plan, s: &SourcePlan) -> Result<Format> {
+    let ext = path
+        .extension()
+        .and_then(|e| e.to_str())
+        .unwrap_or("")
+        .to_ascii_lowercase();
+    match ext.as_str() {
+        "csv" => Ok(Format::Csv),
+        "parquet" | "pq" => Ok(Format::Parquet),
+        _ => Err(plan.error_at(
+            &s.at,
+            &s.field,
+            format!(
+                "`{}` is neither `.csv` nor `.parquet`; anomark reads those two formats",
+                path.display()
+            ),
+        )),
+    }
+}
+
+fn shown(path: &Path, plan: &Plan) -> String {
+    let base = plan.spec_path.parent().unwrap_or(Path::new(""));
+    let rel = path.strip_prefix(base).unwrap_or(path);
+    rel.components()
+        .map(|c| c.as_os_str().to_string_lossy().into_owned())
+        .collect::<Vec<_>>()
+        .join("/")
+}
+
+fn missing_column(plan: &Plan, c: &Column, file: &str, present: &[String]) -> Error {
     let mut shown: Vec<String> = present.iter().take(12).map(|p| format!("`{p}`")).collect();
     if present.len() > 12 {
         shown.push(format!("and {} more", present.len() - 12));
     }
-    Error::Spec {
-        at: Location { ..c.at.clone() },
-        field: c.field.clone(),
-        message: format!(
-            "column `{}` is not in `{}` (its columns: {})",
+    let hint = crate::spec::closest(&c.name, present.iter().map(String::as_str))
+        .map(|s| format!("; did you mean `{s}`?"))
+        .unwrap_or_default();
+    plan.error_at(
+        &c.at,
+        &c.field,
+        format!(
+            "column `{}` is not in `{file}` (its columns: {}){hint}",
             c.name,
-            plan.data_path.display(),
             shown.join(", ")
         ),
-        line_text,
-    }
+    )
 }
 
-/// Loads and checks the data the plan names.
-pub fn load(plan: &Plan) -> Result<Dataset> {
-    let path = plan.data_path.as_path();
-    let present = header(path)?;
-    let split_col = match &plan.split {
-        SplitPlan::FromColumn(c) => Some(c),
-        SplitPlan::Protocol { .. } => None,
-    };
-    let text_cols: Vec<&Column> = std::iter::once(&plan.label)
-        .chain(plan.id_column.iter())
-        .chain(split_col)
+/// One file's columns as read: numeric columns (None = missing), text columns.
+struct FileFrame {
+    numeric: Vec<Vec<Option<f64>>>,
+    /// Per numeric column, rows whose text is not a number (CSV only).
+    not_number: Vec<Vec<(usize, String)>>,
+    text: Vec<Vec<Option<String>>>,
+    height: usize,
+}
+
+fn read_csv(path: &Path, plan: &Plan, numeric: &[&Column], text: &[&Column]) -> Result<FileFrame> {
+    let base = CsvReadOptions::default()
+        .with_has_header(true)
+        .with_raise_if_empty(true);
+    let header = base
+        .clone()
+        .with_n_rows(Some(0))
+        .with_infer_schema_length(Some(0))
+        .try_into_reader_with_file_path(Some(path.to_path_buf()))
+        .and_then(|r| r.finish())
+        .map_err(|e| csv_error(path, e))?;
+    let present: Vec<String> = header
+        .get_column_names()
+        .iter()
+        .map(|s| s.to_string())
         .collect();
-    for c in plan.features.iter().chain(text_cols.iter().copied()) {
+    for c in numeric.iter().chain(text) {
         if !present.contains(&c.name) {
-            return Err(missing_column(plan, c, &present));
+            return Err(missing_column(plan, c, &shown(path, plan), &present));
         }
     }
-
-    let mut schema = Schema::default();
-    for f in &plan.features {
-        schema.with_column(f.name.as_str().into(), DataType::Float64);
-    }
-    for c in &text_cols {
-        schema.with_column(c.name.as_str().into(), DataType::String);
-    }
-    let wanted: Arc<[PlSmallStr]> = plan
-        .features
+    let wanted: Arc<[PlSmallStr]> = numeric
         .iter()
-        .chain(text_cols.iter().copied())
+        .chain(text)
         .map(|c| PlSmallStr::from_str(&c.name))
         .collect();
-    let typed = read(
-        path,
-        base_options()
-            .with_columns(Some(wanted.clone()))
-            .with_schema_overwrite(Some(Arc::new(schema))),
-    );
-    let df = match typed {
-        Ok(df) => df,
-        // A value that does not parse as a number: read the feature columns as
-        // text to name the rows. Only the failing path pays for this.
-        Err(typed_err) => {
-            diagnose_text(plan, path, &wanted)?;
-            return Err(typed_err);
+    let mut schema = Schema::default();
+    for c in numeric {
+        schema.with_column(c.name.as_str().into(), DataType::Float64);
+    }
+    for c in text {
+        schema.with_column(c.name.as_str().into(), DataType::String);
+    }
+    let typed = base
+        .clone()
+        .with_columns(Some(wanted.clone()))
+        .with_schema_overwrite(Some(Arc::new(schema)))
+        .try_into_reader_with_file_path(Some(path.to_path_buf()))
+        .and_then(|r| r.finish());
+    // "NA" and the like are not guessed to mean missing: only the empty field is.
+    let (df, as_text) = match typed {
+        Ok(df) => (df, false),
+        Err(_) => {
+            // A value that does not parse as a number: read as text to name the rows.
+            let df = base
+                .with_columns(Some(wanted))
+                .with_infer_schema_length(Some(0))
+                .try_into_reader_with_file_path(Some(path.to_path_buf()))
+                .and_then(|r| r.finish())
+                .map_err(|e| csv_error(path, e))?;
+            (df, true)
         }
     };
-
-    let n = df.height();
-    let d = plan.features.len();
-    let mut x = Array2::<f64>::zeros((n, d));
-    for (j, f) in plan.features.iter().enumerate() {
-        let col = df
-            .column(&f.name)
-            .and_then(|c| c.f64().cloned())
-            .map_err(|e| csv_error(path, e))?;
-        let mut missing = Vec::new();
-        let mut non_finite = Vec::new();
-        for (i, v) in col.iter().enumerate() {
-            match v {
-                None => missing.push(i),
-                Some(v) if !v.is_finite() => non_finite.push(i),
-                Some(v) => x[(i, j)] = if v == 0.0 { 0.0 } else { v },
-            }
-        }
-        if !missing.is_empty() {
-            return Err(data_error(
-                path,
-                &f.name,
-                "a feature value is missing".into(),
-                &missing,
-            ));
-        }
-        if !non_finite.is_empty() {
-            return Err(data_error(
-                path,
-                &f.name,
-                "a feature value is not a finite number".into(),
-                &non_finite,
-            ));
-        }
-    }
-
-    let labels = text_column(&df, path, &plan.label.name)?;
-    let mut is_anomaly = Vec::with_capacity(n);
-    let mut bad = Vec::new();
-    for (i, v) in labels.iter().enumerate() {
-        match v.as_deref() {
-            Some(s) if s == plan.normal_value => is_anomaly.push(false),
-            Some(s) if s == plan.anomaly_value => is_anomaly.push(true),
-            _ => {
-                bad.push(i);
-                is_anomaly.push(false);
-            }
-        }
-    }
-    if !bad.is_empty() {
-        let first = labels[bad[0]].as_deref().unwrap_or("");
-        return Err(data_error(
-            path,
-            &plan.label.name,
-            format!(
-                "label `{first}` is neither the normal value `{}` nor the anomaly value `{}`",
-                plan.normal_value, plan.anomaly_value
-            ),
-            &bad,
-        ));
-    }
-
-    let ids = match &plan.id_column {
-        Some(c) => {
-            let v = text_column(&df, path, &c.name)?;
-            let empty: Vec<usize> = (0..n).filter(|&i| v[i].is_none()).collect();
-            if !empty.is_empty() {
-                return Err(data_error(path, &c.name, "an id is missing".into(), &empty));
-            }
-            Some(v.into_iter().map(|s| s.unwrap_or_default()).collect())
-        }
-        None => None,
+    let mut frame = FileFrame {
+        numeric: vec![],
+        not_number: vec![],
+        text: vec![],
+        height: df.height(),
     };
-    let split_column = match split_col {
-        Some(c) => Some(
-            text_column(&df, path, &c.name)?
-                .into_iter()
-                .map(|s| s.unwrap_or_default())
-                .collect(),
-        ),
-        None => None,
-    };
-
-    Ok(Dataset {
-        path: path.to_path_buf(),
-        features: plan.feature_names(),
-        x,
-        is_anomaly,
-        ids,
-        split_column,
-    })
+    for c in numeric {
+        if as_text {
+            let values = text_values(&df, path, &c.name)?;
+            let mut col = Vec::with_capacity(values.len());
+            let mut bad = Vec::new();
+            for (i, v) in values.into_iter().enumerate() {
+                match v.as_deref().map(str::trim) {
+                    None | Some("") => col.push(None),
+                    Some(s) => match s.parse::<f64>() {
+                        Ok(v) => col.push(Some(v)),
+                        Err(_) => {
+                            bad.push((i, s.to_string()));
+                            col.push(Some(f64::NAN));
+                        }
+                    },
+                }
+            }
+            frame.numeric.push(col);
+            frame.not_number.push(bad);
+        } else {
+            frame.numeric.push(f64_values(&df, path, &c.name)?);
+            frame.not_number.push(vec![]);
+        }
+    }
+    for c in text {
+        frame.text.push(text_values(&df, path, &c.name)?);
+    }
+    Ok(frame)
 }
 
-fn text_column(df: &DataFrame, path: &Path, name: &str) -> Result<Vec<Option<String>>> {
-    let col = df
+fn read_parquet(
+    path: &Path,
+    plan: &Plan,
+    numeric: &[&Column],
+    text: &[&Column],
+    types: &mut BTreeMap<String, (DataType, String)>,
+) -> Result<FileFrame> {
+    let ppath = PlRefPath::try_from_path(path).map_err(|e| csv_error(path, e))?;
+    let lf = LazyFrame::scan_parquet(ppath, ScanArgsParquet::default())
+        .map_err(|e| csv_error(path, e))?;
+    let schema = lf
+        .clone()
+        .collect_schema()
+        .map_err(|e| csv_error(path, e))?;
+    let present: Vec<String> = schema.iter_names().map(|s| s.to_string()).collect();
+    let file = shown(path, plan);
+    for c in numeric.iter().chain(text) {
+        let Some(dtype) = schema.get(c.name.as_str()) else {
+            return Err(missing_column(plan, c, &file, &present));
+        };
+        match types.get(&c.name) {
+            Some((first, first_file)) if first != dtype => {
+                return Err(Error::Data {
+                    path: PathBuf::from(&file),
+                    column: Some(c.name.clone()),
+                    message: format!(
+                        "the column's type is `{dtype}` here but `{first}` in `{first_file}`; \
+                         every file must give a column one type"
+                    ),
+                    lines: vec![],
+                    total: 0,
+                    unit: RowUnit::Row,
+                })
+            }
+            Some(_) => {}
+            None => {
+                types.insert(c.name.clone(), (dtype.clone(), file.clone()));
+            }
+        }
+    }
+    for c in numeric {
+        let dtype = &types[&c.name].0;
+        if !dtype.is_primitive_numeric() {
+            return Err(Error::Data {
+                path: PathBuf::from(&file),
+                column: Some(c.name.clone()),
+                message: format!("a feature column must be numeric, this one is `{dtype}`"),
+                lines: vec![],
+                total: 0,
+                unit: RowUnit::Row,
+            });
+        }
+    }
+    let exprs: Vec<Expr> = numeric
+        .iter()
+        .map(|c| col(c.name.as_str()).cast(DataType::Float64))
+        .chain(
+            text.iter()
+                .map(|c| col(c.name.as_str()).cast(DataType::String)),
+        )
+        .collect();
+    let df = lf.select(exprs).collect().map_err(|e| csv_error(path, e))?;
+    let mut frame = FileFrame {
+        numeric: vec![],
+        not_number: vec![],
+        text: vec![],
+        height: df.height(),
+    };
+    for c in numeric {
+        frame.numeric.push(f64_values(&df, path, &c.name)?);
+        frame.not_number.push(vec![]);
+    }
+    for c in text {
+        frame.text.push(text_values(&df, path, &c.name)?);
+    }
+    Ok(frame)
+}
+
+fn f64_values(df: &DataFrame, path: &Path, name: &str) -> Result<Vec<Option<f64>>> {
+    let c = df
+        .column(name)
+        .and_then(|c| c.f64().cloned())
+        .map_err(|e| csv_error(path, e))?;
+    Ok(c.iter().collect())
+}
+
+fn text_values(df: &DataFrame, path: &Path, name: &str) -> Result<Vec<Option<String>>> {
+    let c = df
         .column(name)
         .and_then(|c| c.str().cloned())
         .map_err(|e| csv_error(path, e))?;
-    Ok(col.iter().map(|s| s.map(str::to_string)).collect())
+    Ok(c.iter().map(|s| s.map(str::to_string)).collect())
 }
 
-/// Reads the wanted columns as text and reports the first feature column with
-/// a value that is missing or not a number.
-fn diagnose_text(plan: &Plan, path: &Path, wanted: &Arc<[PlSmallStr]>) -> Result<()> {
-    let df = read(
-        path,
-        base_options()
-            .with_columns(Some(wanted.clone()))
-            .with_infer_schema_length(Some(0)),
-    )?;
-    for f in &plan.features {
-        let values = text_column(&df, path, &f.name)?;
-        let mut missing = Vec::new();
-        let mut not_number = Vec::new();
-        for (i, v) in values.iter().enumerate() {
-            match v.as_deref().map(str::trim) {
-                None | Some("") => missing.push(i),
-                Some(s) => match s.parse::<f64>() {
-                    Ok(v) if v.is_finite() => {}
-                    _ => not_number.push(i),
-                },
+/// What [`inspect`] found.
+#[derive(Debug)]
+pub struct Inspection {
+    /// Every row, with NaN where a value is missing or unusable.
+    pub data: Dataset,
+    /// Per row: some numeric value is missing (empty, null or NaN).
+    pub has_missing: Vec<bool>,
+    /// Missing values per numeric column.
+    pub missing_per_column: Vec<usize>,
+    /// Value problems other than missing values (non-numeric, non-finite,
+    /// undeclared labels, missing ids), in the order found.
+    pub problems: Vec<Error>,
+    /// The first missing-value error per column (a problem unless rows are dropped).
+    pub missing: Vec<Error>,
+}
+
+/// Reads every source and gathers value problems without stopping at the
+/// first. Errors that leave nothing to inspect (a missing file or column, a
+/// type that differs between files, unreadable CSV) are returned as `Err`.
+pub fn inspect(plan: &Plan) -> Result<Inspection> {
+    let numeric: Vec<&Column> = plan.columns.iter().collect();
+    let text_cols = plan.text_columns();
+    let label = plan.label.as_ref();
+
+    let mut files = Vec::new();
+    let mut types = BTreeMap::new();
+    let mut values: Vec<Vec<f64>> = vec![Vec::new(); numeric.len()];
+    let mut text: Vec<Vec<String>> = vec![Vec::new(); text_cols.len()];
+    let mut is_anomaly = Vec::new();
+    let mut origin = Vec::new();
+    let mut has_missing = Vec::new();
+    let mut missing_rows: Vec<Vec<RowId>> = vec![Vec::new(); numeric.len()];
+    let mut non_finite: Vec<Vec<RowId>> = vec![Vec::new(); numeric.len()];
+    let mut not_number: Vec<Vec<(RowId, String)>> = vec![Vec::new(); numeric.len()];
+    let mut bad_label: Vec<(RowId, String)> = Vec::new();
+    let mut empty_text: Vec<Vec<RowId>> = vec![Vec::new(); text_cols.len()];
+
+    for s in &plan.sources {
+        for path in expand(s, plan)? {
+            let format = format_of(&path, plan, s)?;
+            let frame = match format {
+                Format::Csv => read_csv(&path, plan, &numeric, &text_cols)?,
+                Format::Parquet => read_parquet(&path, plan, &numeric, &text_cols, &mut types)?,
+            };
+            let file_index = files.len() as u32;
+            let start = is_anomaly.len();
+            for i in 0..frame.height {
+                let id = RowId((start + i) as u64);
+                origin.push(Origin {
+                    file: file_index,
+                    row: i as u64,
+                });
+                let mut missing = false;
+                for (j, col) in frame.numeric.iter().enumerate() {
+                    let v = match col[i] {
+                        None => {
+                            missing = true;
+                            missing_rows[j].push(id);
+                            f64::NAN
+                        }
+                        Some(v) if v.is_nan() && frame.not_number[j].is_empty() => {
+                            missing = true;
+                            missing_rows[j].push(id);
+                            v
+                        }
+                        Some(v) if v.is_infinite() => {
+                            non_finite[j].push(id);
+                            f64::NAN
+                        }
+                        Some(v) => v,
+                    };
+                    values[j].push(if v == 0.0 { 0.0 } else { v });
+                }
+                has_missing.push(missing);
+                for (k, col) in frame.text.iter().enumerate() {
+                    let v = col[i].clone().unwrap_or_default();
+                    if v.is_empty() {
+                        empty_text[k].push(id);
+                    }
+                    text[k].push(v);
+                }
             }
-        }
-        if !not_number.is_empty() {
-            let first = values[not_number[0]].as_deref().unwrap_or("");
-            return Err(data_error(
+            for (j, bad) in frame.not_number.iter().enumerate() {
+                for (i, v) in bad {
+                    not_number[j].push((RowId((start + i) as u64), v.clone()));
+                }
+            }
+            // Labels.
+            match s.implied {
+                Some(a) => is_anomaly.extend(std::iter::repeat_n(a, frame.height)),
+                None => {
+                    let l = label.expect("a labelled source has a label");
+                    let k = text_cols
+                        .iter()
+                        .position(|c| c.name == l.column.name)
+                        .expect("the label is a text column");
+                    for i in 0..frame.height {
+                        let v = frame.text[k][i].as_deref().unwrap_or("");
+                        if v == l.normal {
+                            is_anomaly.push(false);
+                        } else if v == l.anomaly {
+                            is_anomaly.push(true);
+                        } else {
+                            bad_label.push((RowId((start + i) as u64), v.to_string()));
+                            is_anomaly.push(false);
+                        }
+                    }
+                }
+            }
+            let digest = hash::file(&path)?;
+            files.push(SourceFile {
+                shown: shown(&path, plan),
                 path,
-                &f.name,
-                format!("value `{first}` is not a number"),
-                &not_number,
-            ));
+                format,
+                digest,
+                rows: frame.height,
+            });
         }
-        if !missing.is_empty() {
-            return Err(data_error(
-                path,
-                &f.name,
-                "a feature value is missing".into(),
-                &missing,
+    }
+
+    let n = is_anomaly.len();
+    let d = numeric.len();
+    let mut x = Array2::<f64>::zeros((n, d));
+    for (j, col) in values.iter().enumerate() {
+        for (i, v) in col.iter().enumerate() {
+            x[(i, j)] = *v;
+        }
+    }
+    let mut data = Dataset {
+        files,
+        columns: numeric.iter().map(|c| c.name.clone()).collect(),
+        x,
+        is_anomaly,
+        origin,
+        ids: None,
+        text: BTreeMap::new(),
+        dropped: Dropped::default(),
+    };
+
+    let mut problems = Vec::new();
+    for (j, c) in numeric.iter().enumerate() {
+        if let Some((_, v)) = not_number[j].first() {
+            let rows: Vec<RowId> = not_number[j].iter().map(|r| r.0).collect();
+            problems.push(data.error(&c.name, format!("value `{v}` is not a number"), &rows));
+        }
+        if !non_finite[j].is_empty() {
+            problems.push(data.error(
+                &c.name,
+                "a feature value is infinite".into(),
+                &non_finite[j],
             ));
         }
     }
-    Ok(())
+    if let (Some((_, v)), Some(l)) = (bad_label.first(), label) {
+        let rows: Vec<RowId> = bad_label.iter().map(|r| r.0).collect();
+        problems.push(data.error(
+            &l.column.name,
+            format!(
+                "label `{v}` is neither the normal value `{}` nor the anomaly value `{}`",
+                l.normal, l.anomaly
+            ),
+            &rows,
+        ));
+    }
+    for (k, c) in text_cols.iter().enumerate() {
+        if label.is_some_and(|l| l.column.name == c.name) {
+            continue;
+        }
+        if !empty_text[k].is_empty() {
+            problems.push(data.error(&c.name, "a value is missing".into(), &empty_text[k]));
+        }
+    }
+    let missing = numeric
+        .iter()
+        .enumerate()
+        .filter(|(j, _)| !missing_rows[*j].is_empty())
+        .map(|(j, c)| {
+            data.error(
+                &c.name,
+                "a feature value is missing".into(),
+                &missing_rows[j],
+            )
+        })
+        .collect();
+
+    for (k, c) in text_cols.iter().enumerate() {
+        let v = std::mem::take(&mut text[k]);
+        if plan.id_column.as_ref().is_some_and(|id| id.name == c.name) {
+            data.ids = Some(v);
+        } else if label.is_none_or(|l| l.column.name != c.name) {
+            data.text.insert(c.name.clone(), v);
+        }
+    }
+    Ok(Inspection {
+        data,
+        has_missing,
+        missing_per_column: missing_rows.iter().map(Vec::len).collect(),
+        problems,
+        missing,
+    })
+}
+
+/// Reads and checks the data the plan names: refuses the first value problem,
+/// and drops rows with missing values when the spec says so.
+pub fn load(plan: &Plan) -> Result<Dataset> {
+    let Inspection {
+        data,
+        has_missing,
+        problems,
+        missing,
+        ..
+    } = inspect(plan)?;
+    if let Some(p) = problems.into_iter().next() {
+        return Err(p);
+    }
+    match plan.missing {
+        MissingPolicy::Refuse => match missing.into_iter().next() {
+            Some(e) => Err(e),
+            None => Ok(data),
+        },
+        MissingPolicy::DropRow => Ok(drop_rows(data, &has_missing, plan)),
+    }
+}
+
+/// Leaves out the rows marked in `drop`, counting them by label (and by split
+/// value with a fixed split column).
+pub fn drop_rows(mut data: Dataset, drop: &[bool], plan: &Plan) -> Dataset {
+    if !drop.iter().any(|&d| d) {
+        return data;
+    }
+    let keep: Vec<usize> = (0..data.len()).filter(|&i| !drop[i]).collect();
+    let split_col = match &plan.split {
+        crate::spec::SplitPlan::FromColumn { column, .. } => data.text.get(&column.name).cloned(),
+        _ => None,
+    };
+    let mut dropped = Dropped::default();
+    for i in (0..data.len()).filter(|&i| drop[i]) {
+        let a = data.is_anomaly[i];
+        if a {
+            dropped.anomaly += 1;
+        } else {
+            dropped.normal += 1;
+        }
+        if let Some(s) = &split_col {
+            dropped.by_split.entry(s[i].clone()).or_default()[usize::from(a)] += 1;
+        }
+    }
+    let pick = |v: &Vec<String>| keep.iter().map(|&i| v[i].clone()).collect::<Vec<_>>();
+    Dataset {
+        x: data.x.select(ndarray::Axis(0), &keep),
+        is_anomaly: keep.iter().map(|&i| data.is_anomaly[i]).collect(),
+        origin: keep.iter().map(|&i| data.origin[i]).collect(),
+        ids: data.ids.as_ref().map(pick),
+        text: std::mem::take(&mut data.text)
+            .into_iter()
+            .map(|(k, v)| (k, pick(&v)))
+            .collect(),
+        dropped,
+        files: data.files,
+        columns: data.columns,
+    }
+}
+
+#[cfg(test)]
+impl Dataset {
+    /// A dataset from one in-memory "file" (tests only).
+    pub(crate) fn for_tests(
+        x: Array2<f64>,
+        is_anomaly: Vec<bool>,
+        text: BTreeMap<String, Vec<String>>,
+    ) -> Dataset {
+        let n = is_anomaly.len();
+        Dataset {
+            files: vec![SourceFile {
+                path: "test.csv".into(),
+                shown: "test.csv".into(),
+                format: Format::Csv,
+                digest: FileDigest {
+                    bytes: 0,
+                    blake3: String::new(),
+                },
+                rows: n,
+            }],
+            columns: (0..x.ncols()).map(|j| format!("x{j}")).collect(),
+            x,
+            is_anomaly,
+            origin: (0..n as u64).map(|row| Origin { file: 0, row }).collect(),
+            ids: None,
+            text,
+            dropped: Dropped::default(),
+        }
+    }
 }

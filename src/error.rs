@@ -24,11 +24,32 @@ impl fmt::Display for Location {
     }
 }
 
+/// How a data file's rows are counted in messages: CSV by file line (the
+/// header is line 1), Parquet by 1-based row.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum RowUnit {
+    /// A line of a text file.
+    Line,
+    /// A 1-based row of a columnar file.
+    Row,
+}
+
+impl RowUnit {
+    /// The word for one.
+    pub fn word(self) -> &'static str {
+        match self {
+            RowUnit::Line => "line",
+            RowUnit::Row => "row",
+        }
+    }
+}
+
 /// The exit codes of the `anomark` binary, documented in the README.
 pub mod exit {
     /// Success.
     pub const OK: i32 = 0;
-    /// A verification found a difference (signature, hash or recomputed value).
+    /// A verification found a difference (signature, hash or recomputed
+    /// value), or `check` found problems.
     pub const VERIFY_FAILED: i32 = 1;
     /// A usage error or a spec error: nothing was read beyond the spec.
     pub const USAGE: i32 = 2;
@@ -69,6 +90,8 @@ pub enum Error {
         lines: Vec<u64>,
         /// How many rows are affected in all.
         total: usize,
+        /// Whether `lines` are file lines or rows.
+        unit: RowUnit,
     },
     /// The same row content sits in two splits.
     Leakage {
@@ -76,8 +99,8 @@ pub enum Error {
         splits: (String, String),
         /// How many distinct contents are shared.
         overlapping: usize,
-        /// File lines of the first shared rows, one from each split.
-        first: (u64, u64),
+        /// The first shared rows, one from each split, as file and line or row.
+        first: (String, String),
     },
     /// The protocol cannot be followed with these rows.
     Protocol {
@@ -190,18 +213,19 @@ fn list(names: &[String]) -> String {
         .join(", ")
 }
 
-fn lines(lines: &[u64], total: usize) -> String {
+fn lines(lines: &[u64], total: usize, unit: RowUnit) -> String {
+    let word = unit.word();
     let shown = lines
         .iter()
         .map(|l| l.to_string())
         .collect::<Vec<_>>()
         .join(", ");
     if total > lines.len() {
-        format!("lines {shown} and {} more", total - lines.len())
+        format!("{word}s {shown} and {} more", total - lines.len())
     } else if lines.len() == 1 {
-        format!("line {shown}")
+        format!("{word} {shown}")
     } else {
-        format!("lines {shown}")
+        format!("{word}s {shown}")
     }
 }
 
@@ -240,6 +264,7 @@ impl fmt::Display for Error {
                 message,
                 lines: l,
                 total,
+                unit,
             } => {
                 write!(f, "{}: ", path.display())?;
                 if let Some(c) = column {
@@ -247,7 +272,7 @@ impl fmt::Display for Error {
                 }
                 write!(f, "{message}")?;
                 if !l.is_empty() {
-                    write!(f, " ({})", lines(l, *total))?;
+                    write!(f, " ({})", lines(l, *total, *unit))?;
                 }
                 Ok(())
             }
@@ -258,7 +283,7 @@ impl fmt::Display for Error {
             } => write!(
                 f,
                 "leakage: {overlapping} distinct row content(s) appear in both `{}` and `{}` \
-                 (first: line {} and line {}); identical rows must share one split",
+                 (first: {} and {}); identical rows must share one split",
                 splits.0, splits.1, first.0, first.1
             ),
             Error::Protocol { message } => write!(f, "{message}"),
@@ -357,6 +382,7 @@ mod tests {
             message: "value is not a number".into(),
             lines: vec![3, 9],
             total: 4,
+            unit: RowUnit::Line,
         };
         assert_eq!(
             e.to_string(),

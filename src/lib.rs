@@ -16,10 +16,12 @@
 
 pub mod audit;
 pub mod card;
+pub mod check;
 pub mod cli;
 pub mod data;
 pub mod detect;
 pub mod error;
+pub mod features;
 pub mod metrics;
 pub mod output;
 pub mod pipeline;
@@ -38,6 +40,13 @@ use std::path::PathBuf;
 pub enum Request {
     /// Run a spec.
     Run(pipeline::RunOptions),
+    /// Dry-run a spec.
+    Check {
+        /// The spec file.
+        spec: PathBuf,
+        /// JSON output.
+        json: bool,
+    },
     /// Verify a run directory.
     Verify {
         /// The run directory.
@@ -56,11 +65,13 @@ pub enum Request {
     Schema,
 }
 
-/// What a request produced: text for stdout.
+/// What a request produced: text for stdout and the exit code.
 #[derive(Debug, Clone)]
 pub struct Outcome {
     /// The lines to print on stdout.
     pub stdout: String,
+    /// The exit code (0, or 1 when `check` found problems).
+    pub code: i32,
 }
 
 fn rate(v: Option<f64>) -> String {
@@ -69,7 +80,22 @@ fn rate(v: Option<f64>) -> String {
 
 /// Carries out a request.
 pub fn run(request: &Request) -> Result<Outcome> {
+    let mut code = error::exit::OK;
     let stdout = match request {
+        Request::Check { spec, json } => {
+            let report = check::check(spec)?;
+            if !report.problems.is_empty() {
+                code = error::exit::VERIFY_FAILED;
+            }
+            if *json {
+                let mut s = serde_json::to_string_pretty(&report)
+                    .map_err(|e| Error::internal(format!("serialising the report: {e}")))?;
+                s.push('\n');
+                s
+            } else {
+                check::render_text(&report)
+            }
+        }
         Request::Run(opts) => {
             let s = pipeline::run(opts)?;
             format!(
@@ -99,5 +125,5 @@ pub fn run(request: &Request) -> Result<Outcome> {
         }
         Request::Schema => spec::schema_json(),
     };
-    Ok(Outcome { stdout })
+    Ok(Outcome { stdout, code })
 }

@@ -15,7 +15,7 @@ fn main() -> ExitCode {
             let mut out = std::io::stdout().lock();
             let _ = out.write_all(outcome.stdout.as_bytes());
             let _ = out.flush();
-            ExitCode::SUCCESS
+            ExitCode::from(outcome.code as u8)
         }
         Err(e) => {
             eprintln!("anomark: {e}");

@@ -1,8 +1,13 @@
-//! Pure functions of (scores, labels, threshold): the confusion matrix and the
-//! rates derived from it, with Wilson score intervals.
+//! Pure functions of (scores, labels, threshold): the confusion matrix, the
+//! rates derived from it, the ranking metrics (average precision, ROC AUC),
+//! Wilson and Clopper-Pearson intervals, and a seeded stratified bootstrap.
 //!
 //! No I/O and no formatting. A rate whose denominator is zero is `None`, never
-//! a made-up 0 or 1.
+//! a made-up 0 or 1. The bootstrap draws each replicate from its own ChaCha
+//! stream, so its result is the same bits whatever the number of threads.
+
+use rand_chacha::rand_core::{Rng, SeedableRng};
+use rayon::prelude::*;
 
 /// z for a two-sided 95 % interval: Φ⁻¹(0.975), as used in Newcombe (1998).
 pub const Z_95: f64 = 1.959_963_984_540_054;
@@ -66,6 +71,251 @@ impl Confusion {
     pub fn accuracy(&self) -> Option<f64> {
         ratio(self.tp + self.tn, self.tp + self.fp + self.fn_ + self.tn)
     }
+
+    /// TN / (TN + FP).
+    pub fn specificity(&self) -> Option<f64> {
+        ratio(self.tn, self.tn + self.fp)
+    }
+
+    /// FP / (FP + TN).
+    pub fn false_positive_rate(&self) -> Option<f64> {
+        ratio(self.fp, self.fp + self.tn)
+    }
+
+    /// (recall + specificity) / 2.
+    pub fn balanced_accuracy(&self) -> Option<f64> {
+        Some((self.recall()? + self.specificity()?) / 2.0)
+    }
+
+    /// Fβ = (1 + β²) TP / ((1 + β²) TP + β² FN + FP).
+    pub fn f_beta(&self, beta: f64) -> Option<f64> {
+        let b2 = beta * beta;
+        let num = (1.0 + b2) * self.tp as f64;
+        let den = num + b2 * self.fn_ as f64 + self.fp as f64;
+        (den > 0.0).then(|| num / den)
+    }
+
+    /// Matthews correlation (TP·TN − FP·FN) / √((TP+FP)(TP+FN)(TN+FP)(TN+FN));
+    /// `None` when a margin is empty.
+    pub fn mcc(&self) -> Option<f64> {
+        let (tp, fp, fn_, tn) = (
+            self.tp as f64,
+            self.fp as f64,
+            self.fn_ as f64,
+            self.tn as f64,
+        );
+        let den = (tp + fp) * (tp + fn_) * (tn + fp) * (tn + fn_);
+        (den > 0.0).then(|| (tp * tn - fp * fn_) / den.sqrt())
+    }
+}
+
+/// Clopper-Pearson ("exact") interval for k successes in n trials: the
+/// α/2 and 1 − α/2 quantiles of Beta(k, n − k + 1) and Beta(k + 1, n − k)
+/// (Clopper and Pearson 1934; method 5 of Newcombe 1998). `None` when n = 0.
+pub fn clopper_pearson(k: u64, n: u64, confidence: f64) -> Option<Interval> {
+    if n == 0 {
+        return None;
+    }
+    let alpha = 1.0 - confidence;
+    let (k_f, n_f) = (k as f64, n as f64);
+    let low = if k == 0 {
+        0.0
+    } else {
+        statrs::function::beta::inv_beta_reg(k_f, n_f - k_f + 1.0, alpha / 2.0)
+    };
+    let high = if k == n {
+        1.0
+    } else {
+        statrs::function::beta::inv_beta_reg(k_f + 1.0, n_f - k_f, 1.0 - alpha / 2.0)
+    };
+    Some(Interval { low, high })
+}
+
+/// Scores sorted from high to low with their labels, ties kept as groups:
+/// (number of positives, number of negatives) per distinct score.
+fn groups(scores: &[f64], is_anomaly: &[bool]) -> Vec<(usize, usize, Vec<usize>)> {
+    let mut order: Vec<usize> = (0..scores.len()).collect();
+    order.sort_by(|&a, &b| scores[b].total_cmp(&scores[a]).then(a.cmp(&b)));
+    let mut out: Vec<(usize, usize, Vec<usize>)> = Vec::new();
+    let mut i = 0;
+    while i < order.len() {
+        let s = scores[order[i]];
+        let mut g = (0, 0, Vec::new());
+        while i < order.len() && scores[order[i]].total_cmp(&s).is_eq() {
+            if is_anomaly[order[i]] {
+                g.0 += 1;
+            } else {
+                g.1 += 1;
+            }
+            g.2.push(order[i]);
+            i += 1;
+        }
+        out.push(g);
+    }
+    out
+}
+
+/// Average precision and ROC AUC from weighted groups (weight = how often a
+/// row is drawn), walking the distinct scores from high to low.
+fn ranking(
+    groups: &[(usize, usize, Vec<usize>)],
+    weight: &dyn Fn(usize) -> f64,
+    is_anomaly: &[bool],
+) -> (Option<f64>, Option<f64>) {
+    let (mut p_total, mut n_total) = (0.0, 0.0);
+    let per: Vec<(f64, f64)> = groups
+        .iter()
+        .map(|g| {
+            let (mut p, mut n) = (0.0, 0.0);
+            for &i in &g.2 {
+                if is_anomaly[i] {
+                    p += weight(i);
+                } else {
+                    n += weight(i);
+                }
+            }
+            p_total += p;
+            n_total += n;
+            (p, n)
+        })
+        .collect();
+    let (mut tp, mut fp, mut ap, mut u) = (0.0, 0.0, 0.0, 0.0);
+    let mut neg_above = 0.0;
+    for (p, n) in per {
+        tp += p;
+        fp += n;
+        if p > 0.0 {
+            ap += (p / p_total) * (tp / (tp + fp));
+        }
+        // Positives here beat the negatives below; ties count one half.
+        u += p * (n_total - neg_above - n) + 0.5 * p * n;
+        neg_above += n;
+    }
+    let ap = (p_total > 0.0).then_some(ap);
+    let auc = (p_total > 0.0 && n_total > 0.0).then(|| u / (p_total * n_total));
+    (ap, auc)
+}
+
+/// Average precision as scikit-learn defines it: Σₙ (Rₙ − Rₙ₋₁) Pₙ over the
+/// distinct thresholds, without interpolation (tied scores form one step).
+pub fn average_precision(scores: &[f64], is_anomaly: &[bool]) -> Option<f64> {
+    ranking(&groups(scores, is_anomaly), &|_| 1.0, is_anomaly).0
+}
+
+/// ROC AUC as the Mann-Whitney statistic U / (n₁ n₀), ties counted one half.
+pub fn roc_auc(scores: &[f64], is_anomaly: &[bool]) -> Option<f64> {
+    ranking(&groups(scores, is_anomaly), &|_| 1.0, is_anomaly).1
+}
+
+/// How the bootstrap is drawn.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct BootstrapPlan {
+    /// Replicates (0 turns the bootstrap off).
+    pub replicates: u32,
+    /// The seed.
+    pub seed: u64,
+}
+
+/// Percentile intervals from the stratified bootstrap.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct BootstrapIntervals {
+    /// F1 at the fixed τ.
+    pub f1: Option<Interval>,
+    /// Average precision.
+    pub average_precision: Option<Interval>,
+    /// ROC AUC.
+    pub roc_auc: Option<Interval>,
+}
+
+/// An unbiased draw from 0..n (Lemire's multiply-and-reject).
+fn below_n(rng: &mut rand_chacha::ChaCha8Rng, n: u64) -> u64 {
+    loop {
+        let m = (rng.next_u64() as u128) * (n as u128);
+        let low = m as u64;
+        if low >= n.wrapping_neg() % n {
+            return (m >> 64) as u64;
+        }
+    }
+}
+
+/// The `q` quantile of sorted values, interpolating linearly between order
+/// statistics (numpy's default "linear" method).
+fn quantile(sorted: &[f64], q: f64) -> f64 {
+    let pos = q * (sorted.len() - 1) as f64;
+    let (lo, hi) = (pos.floor() as usize, pos.ceil() as usize);
+    sorted[lo] + (pos - lo as f64) * (sorted[hi] - sorted[lo])
+}
+
+fn interval(mut v: Vec<f64>, confidence: f64) -> Option<Interval> {
+    v.retain(|x| x.is_finite());
+    if v.is_empty() {
+        return None;
+    }
+    v.sort_by(f64::total_cmp);
+    let a = (1.0 - confidence) / 2.0;
+    Some(Interval {
+        low: quantile(&v, a),
+        high: quantile(&v, 1.0 - a),
+    })
+}
+
+/// Stratified bootstrap: each replicate draws the anomalies and the normal
+/// rows separately, with replacement, keeping both counts; replicate `b` uses
+/// ChaCha8 stream `b` of `seed`, so results do not depend on thread count.
+pub fn bootstrap(
+    scores: &[f64],
+    is_anomaly: &[bool],
+    tau: f64,
+    plan: BootstrapPlan,
+    confidence: f64,
+) -> BootstrapIntervals {
+    let none = BootstrapIntervals {
+        f1: None,
+        average_precision: None,
+        roc_auc: None,
+    };
+    let pos: Vec<usize> = (0..scores.len()).filter(|&i| is_anomaly[i]).collect();
+    let neg: Vec<usize> = (0..scores.len()).filter(|&i| !is_anomaly[i]).collect();
+    if plan.replicates == 0 || pos.is_empty() || neg.is_empty() {
+        return none;
+    }
+    let g = groups(scores, is_anomaly);
+    let reps: Vec<(f64, f64, f64)> = (0..plan.replicates)
+        .into_par_iter()
+        .map(|b| {
+            let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(plan.seed);
+            rng.set_stream(u64::from(b));
+            let mut w = vec![0u32; scores.len()];
+            for stratum in [&pos, &neg] {
+                for _ in 0..stratum.len() {
+                    w[stratum[below_n(&mut rng, stratum.len() as u64) as usize]] += 1;
+                }
+            }
+            let mut c = Confusion::default();
+            for (i, &k) in w.iter().enumerate() {
+                let k = u64::from(k);
+                match (scores[i] > tau, is_anomaly[i]) {
+                    (true, true) => c.tp += k,
+                    (true, false) => c.fp += k,
+                    (false, true) => c.fn_ += k,
+                    (false, false) => c.tn += k,
+                }
+            }
+            let (ap, auc) = ranking(&g, &|i| f64::from(w[i]), is_anomaly);
+            (
+                c.f1().unwrap_or(f64::NAN),
+                ap.unwrap_or(f64::NAN),
+                auc.unwrap_or(f64::NAN),
+            )
+        })
+        .collect();
+    BootstrapIntervals {
+        f1: interval(reps.iter().map(|r| r.0).collect(), confidence),
+        average_precision: interval(reps.iter().map(|r| r.1).collect(), confidence),
+        roc_auc: interval(reps.iter().map(|r| r.2).collect(), confidence),
+    }
 }
 
 /// Compares two fractions a/b and c/d exactly (zero denominators count as 0).
@@ -109,7 +359,24 @@ pub fn wilson(k: u64, n: u64, z: f64) -> Option<Interval> {
     Some(Interval { low, high })
 }
 
-/// The metrics reported for one candidate on one split.
+/// Two intervals for one proportion.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct ProportionIntervals {
+    /// Wilson score interval.
+    pub wilson: Option<Interval>,
+    /// Clopper-Pearson interval.
+    pub clopper_pearson: Option<Interval>,
+}
+
+fn proportion(k: u64, n: u64) -> ProportionIntervals {
+    ProportionIntervals {
+        wilson: wilson(k, n, Z_95),
+        clopper_pearson: clopper_pearson(k, n, 0.95),
+    }
+}
+
+/// The metrics reported for one candidate on one split (intervals at 95 %).
 #[derive(Debug, Clone, serde::Serialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct Metrics {
@@ -117,29 +384,65 @@ pub struct Metrics {
     pub confusion: Confusion,
     /// Precision.
     pub precision: Option<f64>,
-    /// 95 % Wilson interval for precision.
-    pub precision_95: Option<Interval>,
-    /// Recall.
+    /// Recall (true-positive rate).
     pub recall: Option<f64>,
-    /// 95 % Wilson interval for recall.
-    pub recall_95: Option<Interval>,
     /// F1.
     pub f1: Option<f64>,
+    /// Fβ with the β of the threshold policy (`max-f-beta`), else null.
+    pub f_beta: Option<f64>,
+    /// Specificity (true-negative rate).
+    pub specificity: Option<f64>,
+    /// False-positive rate.
+    pub false_positive_rate: Option<f64>,
+    /// Balanced accuracy.
+    pub balanced_accuracy: Option<f64>,
+    /// Matthews correlation.
+    pub mcc: Option<f64>,
+    /// Average precision (threshold-free).
+    pub average_precision: Option<f64>,
+    /// ROC AUC (threshold-free; ties count one half).
+    pub roc_auc: Option<f64>,
     /// Accuracy: misleading on skewed labels, reported only beside that warning.
     pub accuracy: Option<f64>,
+    /// Intervals for precision.
+    pub precision_95: ProportionIntervals,
+    /// Intervals for recall.
+    pub recall_95: ProportionIntervals,
+    /// Intervals for the false-positive rate.
+    pub false_positive_rate_95: ProportionIntervals,
+    /// Stratified-bootstrap intervals for F1, average precision and ROC AUC.
+    pub bootstrap_95: BootstrapIntervals,
 }
 
 impl Metrics {
-    /// All metrics of a confusion matrix.
-    pub fn of(c: Confusion) -> Self {
+    /// Every metric of scores against labels at τ.
+    pub fn of(
+        scores: &[f64],
+        is_anomaly: &[bool],
+        tau: f64,
+        beta: Option<f64>,
+        boot: BootstrapPlan,
+    ) -> Self {
+        let c = Confusion::at(scores, is_anomaly, tau);
+        let g = groups(scores, is_anomaly);
+        let (ap, auc) = ranking(&g, &|_| 1.0, is_anomaly);
         Metrics {
             confusion: c,
             precision: c.precision(),
-            precision_95: wilson(c.tp, c.tp + c.fp, Z_95),
             recall: c.recall(),
-            recall_95: wilson(c.tp, c.tp + c.fn_, Z_95),
             f1: c.f1(),
+            f_beta: beta.and_then(|b| c.f_beta(b)),
+            specificity: c.specificity(),
+            false_positive_rate: c.false_positive_rate(),
+            balanced_accuracy: c.balanced_accuracy(),
+            mcc: c.mcc(),
+            average_precision: ap,
+            roc_auc: auc,
             accuracy: c.accuracy(),
+            precision_95: proportion(c.tp, c.tp + c.fp),
+            recall_95: proportion(c.tp, c.tp + c.fn_),
+            false_positive_rate_95: proportion(c.fp, c.fp + c.tn),
+            bootstrap_95: bootstrap(scores, is_anomaly, tau, boot, 0.95),
         }
     }
 }
@@ -194,6 +497,119 @@ mod tests {
             assert!((w.low - lo).abs() <= 1e-12, "{k}/{n} low {}", w.low);
             assert!((w.high - hi).abs() <= 1e-12, "{k}/{n} high {}", w.high);
         }
+    }
+
+    /// Newcombe (1998) Table I, method 5 (Clopper-Pearson), via REFERENCES.md
+    /// section 1 (statsmodels 0.15.0 `proportion_confint(method='beta')`).
+    #[test]
+    fn clopper_pearson_matches_newcombe_table_one() {
+        let cases = [
+            (81, 263, 0.25273674558527126, 0.3676219226013514),
+            (15, 148, 0.05784401008344857, 0.161650490349479),
+            (0, 20, 0.0, 0.16843347098308534),
+            (1, 29, 0.000872646883579922, 0.17764429548872293),
+        ];
+        for (k, n, lo, hi) in cases {
+            let c = clopper_pearson(k, n, 0.95).unwrap();
+            assert!((c.low - lo).abs() <= 1e-9, "{k}/{n} low {}", c.low);
+            assert!((c.high - hi).abs() <= 1e-9, "{k}/{n} high {}", c.high);
+        }
+    }
+
+    /// Exact coverage Σₖ 1{p ∈ CI(k)} Binom(k; n, p), REFERENCES.md section 1
+    /// [LIB]: Wilson n=20, p=0.1 → 0.9568255047155365; C-P → 0.988746865835491.
+    #[test]
+    fn exact_coverage_matches_the_reference() {
+        let coverage = |n: u64, p: f64, ci: &dyn Fn(u64, u64) -> Interval| -> f64 {
+            (0..=n)
+                .map(|k| {
+                    let i = ci(k, n);
+                    let pmf = statrs::function::factorial::binomial(n, k)
+                        * p.powi(k as i32)
+                        * (1.0 - p).powi((n - k) as i32);
+                    if i.low <= p && p <= i.high {
+                        pmf
+                    } else {
+                        0.0
+                    }
+                })
+                .sum()
+        };
+        let w = coverage(20, 0.1, &|k, n| wilson(k, n, Z_95).unwrap());
+        let c = coverage(20, 0.1, &|k, n| clopper_pearson(k, n, 0.95).unwrap());
+        assert!((w - 0.9568255047155365).abs() < 1e-9, "{w}");
+        assert!((c - 0.988746865835491).abs() < 1e-9, "{c}");
+        let c50 = coverage(50, 0.05, &|k, n| clopper_pearson(k, n, 0.95).unwrap());
+        assert!((c50 - 0.9882135522027359).abs() < 1e-9, "{c50}");
+    }
+
+    /// REFERENCES.md section 4 (scikit-learn 1.9.1 on tied scores):
+    /// AP = 31/48, AUC = 37/48.
+    #[test]
+    fn ranking_metrics_match_scikit_learn_on_ties() {
+        let y = [
+            false, false, true, true, false, true, false, false, true, false,
+        ];
+        let s = [0.1, 0.4, 0.35, 0.8, 0.4, 0.7, 0.8, 0.35, 0.8, 0.05];
+        assert!((average_precision(&s, &y).unwrap() - 0.6458333333333333).abs() < 1e-12);
+        assert!((roc_auc(&s, &y).unwrap() - 0.7708333333333334).abs() < 1e-12);
+    }
+
+    /// REFERENCES.md section 5: MCC = 0.7615240523537039, balanced accuracy
+    /// 0.899246231155779, specificity 1987/1990, F2 = 40/51.
+    #[test]
+    fn mcc_and_balanced_accuracy_match_the_formulas() {
+        let c = Confusion {
+            tp: 8,
+            fp: 3,
+            fn_: 2,
+            tn: 1987,
+        };
+        assert!((c.mcc().unwrap() - 0.7615240523537039).abs() < 1e-12);
+        assert!((c.balanced_accuracy().unwrap() - 0.899246231155779).abs() < 1e-12);
+        assert!((c.specificity().unwrap() - 0.9984924623115577).abs() < 1e-12);
+        assert!((c.f_beta(2.0).unwrap() - 0.7843137254901961).abs() < 1e-12);
+        assert!((c.f_beta(0.5).unwrap() - 0.7407407407407407).abs() < 1e-12);
+    }
+
+    /// REFERENCES.md section 11 (a): deterministic invariants of the bootstrap.
+    #[test]
+    fn bootstrap_is_deterministic_and_bounded() {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(3);
+        let n = 300;
+        let y: Vec<bool> = (0..n).map(|i| i % 10 == 0).collect();
+        let s: Vec<f64> = (0..n)
+            .map(|i| (rng.next_u32() % 1000) as f64 / 100.0 + if y[i] { 3.0 } else { 0.0 })
+            .collect();
+        let plan = BootstrapPlan {
+            replicates: 400,
+            seed: 9,
+        };
+        let a = bootstrap(&s, &y, 8.0, plan, 0.95);
+        let b = bootstrap(&s, &y, 8.0, plan, 0.95);
+        assert_eq!(a, b);
+        // The same bits on one thread as on all of them.
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(1)
+            .build()
+            .unwrap();
+        let c = pool.install(|| bootstrap(&s, &y, 8.0, plan, 0.95));
+        assert_eq!(a, c);
+        let auc = a.roc_auc.unwrap();
+        assert!(0.0 <= auc.low && auc.low <= auc.high && auc.high <= 1.0);
+        // Constant scores: AUC is 0.5 in every replicate.
+        let flat = bootstrap(&vec![1.0; n], &y, 0.5, plan, 0.95)
+            .roc_auc
+            .unwrap();
+        assert_eq!((flat.low, flat.high), (0.5, 0.5));
+        // Perfect separation: [1, 1].
+        let sep: Vec<f64> = y.iter().map(|&a| if a { 2.0 } else { 1.0 }).collect();
+        let perfect = bootstrap(&sep, &y, 1.5, plan, 0.95);
+        assert_eq!(perfect.roc_auc.map(|i| (i.low, i.high)), Some((1.0, 1.0)));
+        assert_eq!(
+            perfect.average_precision.map(|i| (i.low, i.high)),
+            Some((1.0, 1.0))
+        );
     }
 
     #[test]

@@ -11,24 +11,43 @@ use std::time::{Instant, SystemTime};
 use ndarray::Array2;
 
 use crate::audit::hash::{self, ContentHash};
-use crate::card::{self, CardContext, MetricRow, SplitRow, ThresholdRow};
+use crate::card::{
+    self, CardContext, FeatureRow, FeatureSetRow, InputRow, MetricRow, SplitRow, ThresholdRow,
+};
 use crate::data::{self, Dataset, RowId};
 use crate::detect::{self, Model};
 use crate::error::{Error, Result};
-use crate::metrics::{cmp_fraction, Confusion, Metrics};
+use crate::features;
+use crate::metrics::{cmp_fraction, Metrics};
 use crate::output::{self, RunFiles};
 use crate::record::{
     self, fmt_f64, CandidateRecord, InputRecord, LabelRecord, RunRecord, SelectionRecord,
     SpecRecord, SplitRecord, WallClock,
 };
-use crate::spec::{self, DetectorKind, Plan, SplitPlan, ThresholdPolicy};
+use crate::spec::{
+    self, DetectorKind, MissingPolicy, Plan, SelectionMetric, SplitPlan, ThresholdPolicy,
+};
 use crate::split::{self, Part};
 use crate::threshold::{self, Choice};
 
 /// The selection rule, in words (also in run.json and the card).
-pub const SELECTION_RULE: &str = "the candidate with the highest validation F1 (compared as exact \
-fractions); ties go to the candidate with fewer free parameters, then to the one listed first in \
-the spec";
+pub fn selection_rule(m: SelectionMetric) -> String {
+    let metric = match m {
+        SelectionMetric::F1 => "F1 (compared as exact fractions)",
+        SelectionMetric::FBeta => "Fβ",
+        SelectionMetric::Precision => "precision",
+        SelectionMetric::Recall => "recall",
+        SelectionMetric::Mcc => "Matthews correlation",
+        SelectionMetric::BalancedAccuracy => "balanced accuracy",
+        SelectionMetric::AveragePrecision => "average precision",
+        SelectionMetric::RocAuc => "ROC AUC",
+    };
+    format!(
+        "the candidate with the highest validation {metric} among those whose threshold policy \
+         is met; ties go to the candidate with fewer free parameters, then to the one listed \
+         first in the spec (feature sets, then detectors); test numbers play no part"
+    )
+}
 
 /// What `anomark run` needs.
 #[derive(Debug, Clone)]
@@ -59,53 +78,91 @@ pub struct RunSummary {
 }
 
 struct Candidate {
+    name: String,
+    set: usize,
     kind: DetectorKind,
     model: Box<dyn Model>,
     choice: Choice,
+    validation: Metrics,
     validation_scores: Vec<f64>,
 }
 
-fn matrix(data: &Dataset, rows: &[RowId]) -> Array2<f64> {
-    let d = data.x.ncols();
-    let mut m = Array2::zeros((rows.len(), d));
-    for (k, r) in rows.iter().enumerate() {
-        m.row_mut(k).assign(&data.x.row(r.0 as usize));
-    }
-    m
-}
-
 fn checked_scores(
-    kind: DetectorKind,
+    name: &str,
     model: &dyn Model,
     x: &Array2<f64>,
     rows: &[RowId],
+    data: &Dataset,
 ) -> Result<Vec<f64>> {
     let s = model.score(x.view());
     if let Some(k) = s.iter().position(|v| v.is_nan()) {
         return Err(Error::Fit {
-            detector: detect::name(kind).into(),
-            message: format!("the score of line {} is not a number", rows[k].line()),
+            detector: name.into(),
+            message: format!("the score of {} is not a number", data.place(rows[k])),
             features: vec![],
         });
     }
     Ok(s)
 }
 
-fn policy_name(p: ThresholdPolicy) -> &'static str {
-    match p {
-        ThresholdPolicy::MaxF1 => {
-            "max-f1 (the threshold with the highest validation F1; among equal F1 the highest τ)"
+/// The policy in words; among equally good cut points the highest τ wins.
+pub fn policy_name(p: ThresholdPolicy) -> String {
+    let s = match p {
+        ThresholdPolicy::MaxF1 => "max-f1: the highest validation F1".to_string(),
+        ThresholdPolicy::MaxFBeta { beta } => {
+            format!("max-f-beta: the highest validation F{}", fmt_f64(beta))
         }
-    }
+        ThresholdPolicy::AlarmBudget {
+            max_false_positive_rate,
+        } => format!(
+            "alarm-budget: the highest validation recall with a false-positive rate of at most {}",
+            fmt_f64(max_false_positive_rate)
+        ),
+        ThresholdPolicy::RecallTarget { min_recall } => format!(
+            "recall-target: the lowest validation false-positive rate with recall at least {}",
+            fmt_f64(min_recall)
+        ),
+        ThresholdPolicy::PrecisionTarget { min_precision } => format!(
+            "precision-target: the highest validation recall with precision at least {}",
+            fmt_f64(min_precision)
+        ),
+        ThresholdPolicy::MinCost {
+            missed_anomaly,
+            false_alarm,
+        } => format!(
+            "min-cost: the lowest validation cost at {} per missed anomaly and {} per false alarm",
+            fmt_f64(missed_anomaly),
+            fmt_f64(false_alarm)
+        ),
+        ThresholdPolicy::Fixed { tau, ln_epsilon } => match (tau, ln_epsilon) {
+            (Some(t), _) => format!("fixed: τ = {} declared in the spec", fmt_f64(t)),
+            (_, Some(l)) => format!("fixed: ln ε = {} declared in the spec", fmt_f64(l)),
+            _ => "fixed".into(),
+        },
+    };
+    format!("{s} (among equally good thresholds, the highest τ)")
 }
 
 fn fmt_rate(v: Option<f64>) -> String {
     v.map_or("n/a".into(), |v| format!("{v:.4}"))
 }
 
+fn fmt_ci(ci: Option<crate::metrics::Interval>) -> String {
+    ci.map_or("n/a".into(), |ci| format!("{:.4}–{:.4}", ci.low, ci.high))
+}
+
 fn metric_row(name: &str, chosen: bool, m: &Metrics) -> MetricRow {
-    let with_ci = |v: Option<f64>, ci: Option<crate::metrics::Interval>| match (v, ci) {
-        (Some(v), Some(ci)) => format!("{v:.4} ({:.4}–{:.4})", ci.low, ci.high),
+    let prop = |v: Option<f64>, ci: &crate::metrics::ProportionIntervals| match v {
+        Some(v) => format!(
+            "{v:.4} (W {}; CP {})",
+            fmt_ci(ci.wilson),
+            fmt_ci(ci.clopper_pearson)
+        ),
+        None => "n/a".into(),
+    };
+    let boot = |v: Option<f64>, ci: Option<crate::metrics::Interval>| match (v, ci) {
+        (Some(v), Some(_)) => format!("{v:.4} ({})", fmt_ci(ci)),
+        (Some(v), None) => format!("{v:.4}"),
         _ => "n/a".into(),
     };
     MetricRow {
@@ -115,9 +172,16 @@ fn metric_row(name: &str, chosen: bool, m: &Metrics) -> MetricRow {
         fp: m.confusion.fp,
         fn_: m.confusion.fn_,
         tn: m.confusion.tn,
-        precision: with_ci(m.precision, m.precision_95),
-        recall: with_ci(m.recall, m.recall_95),
-        f1: fmt_rate(m.f1),
+        precision: prop(m.precision, &m.precision_95),
+        recall: prop(m.recall, &m.recall_95),
+        false_positive_rate: prop(m.false_positive_rate, &m.false_positive_rate_95),
+        f1: boot(m.f1, m.bootstrap_95.f1),
+        f_beta: m.f_beta.map(|v| format!("{v:.4}")),
+        average_precision: boot(m.average_precision, m.bootstrap_95.average_precision),
+        roc_auc: boot(m.roc_auc, m.bootstrap_95.roc_auc),
+        mcc: fmt_rate(m.mcc),
+        balanced_accuracy: fmt_rate(m.balanced_accuracy),
+        specificity: fmt_rate(m.specificity),
         accuracy: fmt_rate(m.accuracy),
     }
 }
@@ -150,48 +214,84 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
     let key = crate::sign::load_private(&opts.key)?;
 
     let data = data::load(&plan)?;
-    let data_digest = hash::file(&plan.data_path)?;
     let hashes = hash::rows(&data.x, &data.is_anomaly);
     let splits = split::assign(&plan.split, &data, &hashes)?;
 
     // Fit and choose on train and validation only.
-    let features = plan.feature_names();
-    let train = matrix(&data, &splits.train);
-    let val_x = matrix(&data, &splits.validation);
     let val_y: Vec<bool> = splits
         .validation
         .iter()
         .map(|r| data.is_anomaly[r.0 as usize])
         .collect();
+    let beta = match plan.threshold {
+        ThresholdPolicy::MaxFBeta { beta } => Some(beta),
+        _ => None,
+    };
+    let mut fitted_sets = Vec::new();
     let mut candidates = Vec::new();
-    for &kind in &plan.detectors {
-        let model = detect::build(kind).fit(train.view(), &features)?;
-        let validation_scores = checked_scores(kind, model.as_ref(), &val_x, &splits.validation)?;
-        let choice = threshold::choose(plan.threshold, &validation_scores, &val_y);
-        candidates.push(Candidate {
-            kind,
-            model,
-            choice,
-            validation_scores,
+    for (si, set) in plan.feature_sets.iter().enumerate() {
+        let fitted = features::fit(set, &data, &splits.train)?;
+        let names = fitted.names();
+        let train = fitted.apply(&data, &splits.train)?;
+        let val_x = fitted.apply(&data, &splits.validation)?;
+        for &kind in &plan.detectors {
+            let name = if set.named {
+                format!("{}/{}", set.name, detect::name(kind))
+            } else {
+                detect::name(kind).to_string()
+            };
+            let model = detect::build(kind)
+                .fit(train.view(), &names)
+                .map_err(|e| in_set(e, set))?;
+            let validation_scores =
+                checked_scores(&name, model.as_ref(), &val_x, &splits.validation, &data)?;
+            let choice = threshold::choose(plan.threshold, &validation_scores, &val_y);
+            let validation =
+                Metrics::of(&validation_scores, &val_y, choice.tau, beta, plan.bootstrap);
+            candidates.push(Candidate {
+                name,
+                set: si,
+                kind,
+                model,
+                choice,
+                validation,
+                validation_scores,
+            });
+        }
+        fitted_sets.push(fitted);
+    }
+    if candidates.iter().all(|c| !c.choice.met) {
+        return Err(Error::Protocol {
+            message: format!(
+                "no candidate meets the threshold policy on validation: {}",
+                candidates
+                    .iter()
+                    .map(|c| format!("{}: {}", c.name, c.choice.note.clone().unwrap_or_default()))
+                    .collect::<Vec<_>>()
+                    .join("; ")
+            ),
         });
     }
-    let d = features.len();
-    let chosen = select(&candidates, d);
+    let chosen = select(&candidates, &fitted_sets, plan.selection);
 
     // Every choice is fixed: open the test split, once.
     let test_rows = splits.test.open();
-    let test_x = matrix(&data, &test_rows);
     let test_y: Vec<bool> = test_rows
         .iter()
         .map(|r| data.is_anomaly[r.0 as usize])
         .collect();
+    let test_x: Vec<Array2<f64>> = fitted_sets
+        .iter()
+        .map(|f| f.apply(&data, &test_rows))
+        .collect::<Result<_>>()?;
     let mut test_scores = Vec::new();
     for c in &candidates {
         test_scores.push(checked_scores(
-            c.kind,
+            &c.name,
             c.model.as_ref(),
-            &test_x,
+            &test_x[c.set],
             &test_rows,
+            &data,
         )?);
     }
 
@@ -210,13 +310,17 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
         .zip(&test_scores)
         .enumerate()
         .map(|(i, (c, ts))| CandidateRecord {
-            name: detect::name(c.kind).into(),
-            parameter_count: detect::parameter_count(c.kind, d),
+            name: c.name.clone(),
+            feature_set: fitted_sets[c.set].set.clone(),
+            detector: detect::name(c.kind).into(),
+            parameter_count: detect::parameter_count(c.kind, fitted_sets[c.set].features.len()),
             params: c.model.params(),
             tau: c.choice.tau,
             ln_epsilon: c.choice.ln_epsilon(),
-            validation: Metrics::of(c.choice.confusion),
-            test: Metrics::of(Confusion::at(ts, &test_y, c.choice.tau)),
+            threshold_met: c.choice.met,
+            threshold_note: c.choice.note.clone(),
+            validation: c.validation.clone(),
+            test: Metrics::of(ts, &test_y, c.choice.tau, beta, plan.bootstrap),
             chosen: i == chosen,
         })
         .collect();
@@ -242,27 +346,37 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
             file: spec_file.clone(),
             blake3: hash::bytes(&plan.spec_bytes),
         },
-        inputs: vec![InputRecord {
-            path: plan.data_path_as_written.clone(),
-            rows: data.len(),
-            digest: data_digest.clone(),
-        }],
-        label: LabelRecord {
-            column: plan.label.name.clone(),
-            normal: plan.normal_value.clone(),
-            anomaly: plan.anomaly_value.clone(),
-        },
-        features: features.clone(),
+        inputs: data
+            .files
+            .iter()
+            .map(|f| InputRecord {
+                path: f.shown.clone(),
+                format: f.format,
+                rows: f.rows,
+                digest: f.digest.clone(),
+            })
+            .collect(),
+        label: plan.label.as_ref().map(|l| LabelRecord {
+            column: l.column.name.clone(),
+            normal: l.normal.clone(),
+            anomaly: l.anomaly.clone(),
+        }),
+        content_columns: data.columns.clone(),
+        missing_values: plan.missing,
+        dropped_rows: data.dropped.clone(),
+        feature_sets: fitted_sets.clone(),
         split: SplitRecord {
             report: splits.report.clone(),
             requested: splits.report.requested.map(by_name),
             counts: by_name(splits.report.counts),
             manifest_blake3: manifests.iter().cloned().collect(),
         },
-        threshold_policy: "max-f1".into(),
+        threshold_policy: plan.threshold,
+        bootstrap: plan.bootstrap,
         selection: SelectionRecord {
-            rule: SELECTION_RULE.into(),
-            chosen: detect::name(candidates[chosen].kind).into(),
+            metric: plan.selection,
+            rule: selection_rule(plan.selection),
+            chosen: candidates[chosen].name.clone(),
         },
         candidates: candidate_records,
         wall_clock,
@@ -283,14 +397,7 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
             &test_scores,
         ),
     );
-    let ctx = card_context(
-        &plan,
-        &rec,
-        &spec_file,
-        &key,
-        &data_digest.blake3,
-        data.len(),
-    );
+    let ctx = card_context(&plan, &rec, &spec_file, &key);
     let (md, html) = card::render(&ctx, opts.templates.as_deref())?;
     files.add("card.md", md.into_bytes());
     files.add("card.html", html.into_bytes());
@@ -305,6 +412,22 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
     })
 }
 
+/// Names the feature set in a detector's error when there are several.
+fn in_set(e: Error, set: &spec::FeatureSetPlan) -> Error {
+    match e {
+        Error::Fit {
+            detector,
+            message,
+            features,
+        } if set.named => Error::Fit {
+            detector: format!("{detector}` on feature set `{}", set.name),
+            message,
+            features,
+        },
+        other => other,
+    }
+}
+
 fn by_name(counts: [split::Counts; 3]) -> std::collections::BTreeMap<String, split::Counts> {
     Part::ALL
         .iter()
@@ -312,17 +435,49 @@ fn by_name(counts: [split::Counts; 3]) -> std::collections::BTreeMap<String, spl
         .collect()
 }
 
-/// The selection rule (see [`SELECTION_RULE`]).
-fn select(candidates: &[Candidate], d: usize) -> usize {
-    let mut best = 0;
-    for (i, c) in candidates.iter().enumerate().skip(1) {
-        let b = &candidates[best];
-        let order = cmp_fraction(
-            c.choice.confusion.f1_fraction(),
-            b.choice.confusion.f1_fraction(),
-        )
-        .then_with(|| detect::parameter_count(b.kind, d).cmp(&detect::parameter_count(c.kind, d)));
-        if order.is_gt() {
+/// The value a candidate is ranked by (`None` ranks lowest).
+fn selection_value(c: &Candidate, m: SelectionMetric) -> Option<f64> {
+    let v = &c.validation;
+    match m {
+        SelectionMetric::F1 => v.f1,
+        SelectionMetric::FBeta => v.f_beta,
+        SelectionMetric::Precision => v.precision,
+        SelectionMetric::Recall => v.recall,
+        SelectionMetric::Mcc => v.mcc,
+        SelectionMetric::BalancedAccuracy => v.balanced_accuracy,
+        SelectionMetric::AveragePrecision => v.average_precision,
+        SelectionMetric::RocAuc => v.roc_auc,
+    }
+}
+
+/// The selection rule (see [`selection_rule`]): validation numbers only.
+fn select(
+    candidates: &[Candidate],
+    sets: &[features::FittedFeatures],
+    m: SelectionMetric,
+) -> usize {
+    let params = |c: &Candidate| detect::parameter_count(c.kind, sets[c.set].features.len());
+    let better = |a: &Candidate, b: &Candidate| -> std::cmp::Ordering {
+        let by_metric = if m == SelectionMetric::F1 {
+            cmp_fraction(
+                a.choice.confusion.f1_fraction(),
+                b.choice.confusion.f1_fraction(),
+            )
+        } else {
+            let (x, y) = (selection_value(a, m), selection_value(b, m));
+            match (x, y) {
+                (Some(x), Some(y)) => x.total_cmp(&y),
+                (Some(_), None) => std::cmp::Ordering::Greater,
+                (None, Some(_)) => std::cmp::Ordering::Less,
+                (None, None) => std::cmp::Ordering::Equal,
+            }
+        };
+        by_metric.then_with(|| params(b).cmp(&params(a)))
+    };
+    // Candidates whose policy is unmet on validation are never selected.
+    let mut best = candidates.iter().position(|c| c.choice.met).unwrap_or(0);
+    for (i, c) in candidates.iter().enumerate().skip(best + 1) {
+        if c.choice.met && better(c, &candidates[best]).is_gt() {
             best = i;
         }
     }
@@ -340,7 +495,7 @@ fn scores_csv(
     out.push_str(",split,label");
     for c in candidates {
         out.push(',');
-        out.push_str(detect::name(c.kind));
+        out.push_str(&csv_field(&c.name));
     }
     out.push('\n');
     let mut lines: Vec<(Part, RowId, Vec<f64>)> = Vec::new();
@@ -374,38 +529,102 @@ fn scores_csv(
     out.into_bytes()
 }
 
+fn fmt_fraction(f: &[f64]) -> String {
+    f.iter().map(|v| fmt_f64(*v)).collect::<Vec<_>>().join("/")
+}
+
+fn split_sentence(plan: &Plan, rec: &RunRecord) -> String {
+    let r = &rec.split.report;
+    match &plan.split {
+        SplitPlan::Protocol { seed, fractions } => format!(
+            "Rows were split by the seeded protocol split (seed {}): normal rows {} to \
+             train/validation/test, known anomalies {} to validation/test and none to train; \
+             identical rows always share a split.",
+            seed.0,
+            fmt_fraction(&fractions.normal),
+            fmt_fraction(&fractions.anomaly)
+        ),
+        SplitPlan::Groups {
+            column,
+            seed,
+            fractions,
+        } => format!(
+            "Rows were split by whole groups of the column “{}” ({} groups, seed {}): normal rows \
+             {} to train/validation/test, known anomalies {} to validation/test; every row of a \
+             group, and every copy of a row, shares one split, and groups holding a known \
+             anomaly never reach train.",
+            column.name,
+            r.groups.unwrap_or(0),
+            seed.0,
+            fmt_fraction(&fractions.normal),
+            fmt_fraction(&fractions.anomaly)
+        ),
+        SplitPlan::Time { column, fractions } => {
+            let cuts = r.time_cuts.clone().unwrap_or_default();
+            let t = |v: Option<String>| v.unwrap_or_else(|| "n/a".into());
+            format!(
+                "Rows were split in time order of the column “{}”: normal rows {} to \
+                 train/validation/test, earliest first (validation from {}, test from {}); known \
+                 anomalies {} to validation/test (test from {}).",
+                column.name,
+                fmt_fraction(&fractions.normal),
+                t(cuts.normal_validation_from),
+                t(cuts.normal_test_from),
+                fmt_fraction(&fractions.anomaly),
+                t(cuts.anomaly_test_from)
+            )
+        }
+        SplitPlan::FromColumn { column, group } => format!(
+            "Rows were split by the column “{}”; no row content appears in two splits{}.",
+            column.name,
+            group
+                .as_ref()
+                .map(|g| format!(", and no group of “{}” does", g.name))
+                .unwrap_or_default()
+        ),
+    }
+}
+
 fn card_context(
     plan: &Plan,
     rec: &RunRecord,
     spec_file: &str,
     key: &ed25519_dalek::SigningKey,
-    data_blake3: &str,
-    rows: usize,
 ) -> CardContext {
     let chosen = rec
         .candidates
         .iter()
         .find(|c| c.chosen)
         .expect("one candidate is chosen");
-    let split_method = match &plan.split {
-        SplitPlan::Protocol {
-            seed,
-            normal,
-            anomaly,
-        } => format!(
-            "Rows were split by the seeded protocol split (seed {}): normal rows {}/{}/{} to \
-             train/validation/test, known anomalies {}/{} to validation/test and none to train; \
-             identical rows always share a split.",
-            seed.0,
-            fmt_f64(normal[0]),
-            fmt_f64(normal[1]),
-            fmt_f64(normal[2]),
-            fmt_f64(anomaly[0]),
-            fmt_f64(anomaly[1])
+    let label = match &plan.label {
+        Some(l) => format!(
+            "Labels come from the column “{}”: “{}” is normal, “{}” is a known anomaly.",
+            l.column.name, l.normal, l.anomaly
         ),
-        SplitPlan::FromColumn(c) => format!(
-            "Rows were split by the column “{}”; no row content appears in two splits.",
-            c.name
+        None => format!(
+            "Labels are implied by the source: rows of “{}” are normal, rows of “{}” are known anomalies.",
+            plan.sources[0].written, plan.sources[1].written
+        ),
+    };
+    let d = &rec.dropped_rows;
+    let missing = match plan.missing {
+        MissingPolicy::Refuse => "Rows with a missing value are refused; none were found.".to_string(),
+        MissingPolicy::DropRow => format!(
+            "Rows with a missing value are left out: {} normal and {} anomalous rows were dropped{}.",
+            d.normal,
+            d.anomaly,
+            if d.by_split.is_empty() {
+                String::new()
+            } else {
+                format!(
+                    " ({})",
+                    d.by_split
+                        .iter()
+                        .map(|(k, v)| format!("{k}: {} normal, {} anomalous", v[0], v[1]))
+                        .collect::<Vec<_>>()
+                        .join("; ")
+                )
+            }
         ),
     };
     CardContext {
@@ -418,15 +637,39 @@ fn card_context(
         spec_file: spec_file.into(),
         spec_blake3: rec.spec.blake3.clone(),
         key_fingerprint: crate::sign::fingerprint(&key.verifying_key()),
-        data_path: plan.data_path_as_written.clone(),
-        data_blake3: data_blake3.into(),
-        data_rows: rows,
-        label: format!(
-            "Labels come from the column “{}”: “{}” is normal, “{}” is a known anomaly.",
-            plan.label.name, plan.normal_value, plan.anomaly_value
-        ),
-        features: rec.features.clone(),
-        split_method,
+        inputs: rec
+            .inputs
+            .iter()
+            .map(|i| InputRow {
+                path: i.path.clone(),
+                rows: i.rows,
+                blake3: i.digest.blake3.clone(),
+            })
+            .collect(),
+        label,
+        missing,
+        feature_sets: rec
+            .feature_sets
+            .iter()
+            .map(|s| FeatureSetRow {
+                name: s.set.clone(),
+                features: s
+                    .features
+                    .iter()
+                    .map(|f| FeatureRow {
+                        name: f.name.clone(),
+                        from: f.from.clone(),
+                        transforms: f
+                            .transforms
+                            .iter()
+                            .map(describe_transform)
+                            .collect::<Vec<_>>()
+                            .join(", then "),
+                    })
+                    .collect(),
+            })
+            .collect(),
+        split_method: split_sentence(plan, rec),
         splits: Part::ALL
             .iter()
             .map(|p| {
@@ -440,9 +683,9 @@ fn card_context(
             })
             .collect(),
         duplicate_rows: rec.split.report.rows_with_duplicates,
-        moved_rows: rec.split.report.rows_moved_with_identical_rows,
-        threshold_policy: policy_name(plan.threshold).into(),
-        selection_rule: format!("{SELECTION_RULE}."),
+        moved_rows: rec.split.report.rows_off_requested_counts,
+        threshold_policy: policy_name(plan.threshold),
+        selection_rule: format!("{}.", selection_rule(plan.selection)),
         chosen: chosen.name.clone(),
         thresholds: rec
             .candidates
@@ -477,6 +720,27 @@ fn card_context(
             )
         }),
     }
+}
+
+fn describe_transform(t: &features::Fitted) -> String {
+    match *t {
+        features::Fitted::Log => "log".into(),
+        features::Fitted::Log1p => "log1p".into(),
+        features::Fitted::Sqrt => "sqrt".into(),
+        features::Fitted::BoxCox { lambda } => format!("Box-Cox (λ = {lambda:.4})"),
+        features::Fitted::YeoJohnson { lambda } => format!("Yeo-Johnson (λ = {lambda:.4})"),
+        features::Fitted::Standardise { mean, sd } => {
+            format!("standardise (mean {}, sd {})", fmt_sig(mean), fmt_sig(sd))
+        }
+    }
+}
+
+/// Six significant digits, for display only.
+fn fmt_sig(v: f64) -> String {
+    format!("{v:.6e}")
+        .parse::<f64>()
+        .map(fmt_f64)
+        .unwrap_or_else(|_| fmt_f64(v))
 }
 
 /// Checks the signature and every file hash of a run directory.

@@ -9,8 +9,11 @@
 use std::collections::BTreeMap;
 
 use crate::audit::hash::FileDigest;
+use crate::data::{Dropped, Format};
 use crate::detect::Params;
+use crate::features::FittedFeatures;
 use crate::metrics::Metrics;
+use crate::spec::{MissingPolicy, ThresholdPolicy};
 use crate::split::{Counts, SplitReport};
 
 /// run.json format version.
@@ -47,14 +50,23 @@ pub struct RunRecord {
     pub spec: SpecRecord,
     /// Every input file.
     pub inputs: Vec<InputRecord>,
-    /// The label column and its values.
-    pub label: LabelRecord,
-    /// Feature names, in the order the detectors see them.
-    pub features: Vec<String>,
+    /// The label column and its values (null when the label is implied by
+    /// separate normal and anomaly sources).
+    pub label: Option<LabelRecord>,
+    /// The source columns that row content hashes cover, in order.
+    pub content_columns: Vec<String>,
+    /// The missing-value policy.
+    pub missing_values: MissingPolicy,
+    /// Rows left out for missing values.
+    pub dropped_rows: Dropped,
+    /// Every feature set with its fitted transforms.
+    pub feature_sets: Vec<FittedFeatures>,
     /// The split.
     pub split: SplitRecord,
-    /// The threshold policy's name.
-    pub threshold_policy: String,
+    /// The threshold policy, as declared.
+    pub threshold_policy: ThresholdPolicy,
+    /// The bootstrap behind the F1, AP and AUC intervals.
+    pub bootstrap: crate::metrics::BootstrapPlan,
     /// How the detector was chosen.
     pub selection: SelectionRecord,
     /// Every candidate.
@@ -78,8 +90,10 @@ pub struct SpecRecord {
 #[derive(Debug, Clone, serde::Serialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct InputRecord {
-    /// The path as written in the spec.
+    /// The path relative to the spec's directory.
     pub path: String,
+    /// CSV or Parquet.
+    pub format: Format,
     /// Data rows read.
     pub rows: usize,
     /// Size and hash.
@@ -106,7 +120,7 @@ pub struct SplitRecord {
     /// How the split came out.
     #[serde(flatten)]
     pub report: SplitReport,
-    /// Split name → the counts the fractions ask for (protocol split only).
+    /// Split name → the counts the fractions ask for (not for `from-column`).
     pub requested: Option<BTreeMap<String, Counts>>,
     /// Split name → the counts obtained, by label.
     pub counts: BTreeMap<String, Counts>,
@@ -118,6 +132,8 @@ pub struct SplitRecord {
 #[derive(Debug, Clone, serde::Serialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct SelectionRecord {
+    /// The validation metric that ranks candidates.
+    pub metric: crate::spec::SelectionMetric,
     /// The rule, in words.
     pub rule: String,
     /// The chosen candidate's name.
@@ -128,8 +144,12 @@ pub struct SelectionRecord {
 #[derive(Debug, Clone, serde::Serialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct CandidateRecord {
-    /// Candidate name.
+    /// Candidate name (`set/detector` with several feature sets).
     pub name: String,
+    /// The feature set.
+    pub feature_set: String,
+    /// The detector.
+    pub detector: String,
     /// Free parameters (the tie rule's notion of simpler).
     pub parameter_count: usize,
     /// Fitted parameters.
@@ -138,6 +158,11 @@ pub struct CandidateRecord {
     pub tau: f64,
     /// ln ε = −τ.
     pub ln_epsilon: f64,
+    /// Whether the policy's constraint is met on validation (unmet
+    /// candidates are never selected).
+    pub threshold_met: bool,
+    /// Why not, with the closest achievable point.
+    pub threshold_note: Option<String>,
     /// Validation metrics at τ.
     pub validation: Metrics,
     /// Test metrics at τ.

@@ -1,16 +1,28 @@
 //! Seeded assignment of rows to train, validation and test.
 //!
-//! No clock and no global randomness: in the protocol split a row's place
-//! depends only on the seed and its content hash. Within each label the
-//! distinct contents are ranked by `blake3(seed, content hash)` and the ranking
-//! is cut at exact counts, so reordering the file changes nothing and identical
-//! rows, which share a rank, cannot straddle two splits. The test rows are
-//! handed on sealed: see [`SealedTest`].
+//! No clock and no global randomness. Four methods:
+//! - `protocol`: within each label the distinct contents are ranked by
+//!   `blake3(seed, content hash)` and the ranking is cut at exact counts, so
+//!   reordering the file changes nothing and identical rows, which share a rank,
+//!   cannot straddle two splits;
+//! - `groups`: the same over whole groups (rows joined by a shared group value
+//!   or a shared content), anomaly-bearing groups first so that no known anomaly
+//!   reaches train;
+//! - `time`: within each label rows are ordered by the time column and cut at
+//!   exact counts, earliest to train, then validation, then test; rows with equal
+//!   times stay together, and a copy of an earlier row joins that row's split;
+//! - `from-column`: the split is read from a column.
+//!
+//! A group or content that meets a cut moves whole; the run reports how many
+//! rows ended up off the requested counts. The test rows are handed on sealed:
+//! see [`SealedTest`].
+
+use std::collections::BTreeMap;
 
 use crate::audit::hash::ContentHash;
 use crate::data::{Dataset, RowId};
 use crate::error::{Error, Result};
-use crate::spec::{Seed, SplitPlan};
+use crate::spec::{Fractions, Seed, SplitPlan};
 
 /// One of the three splits.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize)]
@@ -66,25 +78,41 @@ impl SealedTest {
     }
 }
 
+/// Cut points of a time-ordered split, as the time column's text.
+#[derive(Debug, Clone, Default, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct TimeCuts {
+    /// Earliest normal time in validation.
+    pub normal_validation_from: Option<String>,
+    /// Earliest normal time in test.
+    pub normal_test_from: Option<String>,
+    /// Earliest anomaly time in test.
+    pub anomaly_test_from: Option<String>,
+}
+
 /// How the split came out, for the record.
 #[derive(Debug, Clone, serde::Serialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct SplitReport {
-    /// `protocol` or `from-column`.
+    /// `protocol`, `groups`, `time` or `from-column`.
     pub method: &'static str,
-    /// The seed (protocol split only).
+    /// The seed (protocol and groups).
     pub seed: Option<Seed>,
-    /// The counts the fractions ask for, by split (protocol split only).
+    /// The counts the fractions ask for, by split (not for `from-column`).
     #[serde(skip)]
     pub requested: Option<[Counts; 3]>,
     /// The counts obtained, by split.
     #[serde(skip)]
     pub counts: [Counts; 3],
-    /// Rows that moved across a cut because an identical row was ranked on the
-    /// other side of it.
-    pub rows_moved_with_identical_rows: usize,
+    /// Rows placed beyond the requested counts because a group or identical
+    /// rows met a cut.
+    pub rows_off_requested_counts: usize,
     /// Rows whose content is shared with at least one other row.
     pub rows_with_duplicates: usize,
+    /// Number of groups (groups method, or from-column with a group column).
+    pub groups: Option<usize>,
+    /// Time cut points (time method).
+    pub time_cuts: Option<TimeCuts>,
 }
 
 /// The three splits. Each list is in canonical order (ascending content hash,
@@ -101,11 +129,11 @@ pub struct Splits {
     pub report: SplitReport,
 }
 
-/// The sort key of a content under a seed (see the module docs).
-pub fn rank_key(seed: Seed, row: &ContentHash) -> [u8; 32] {
+/// The sort key of a content (or a group) under a seed.
+pub fn rank_key(seed: Seed, row: &[u8; 32]) -> [u8; 32] {
     let mut h = blake3::Hasher::new();
     h.update(&seed.0.to_le_bytes());
-    h.update(&row.0);
+    h.update(row);
     *h.finalize().as_bytes()
 }
 
@@ -126,7 +154,7 @@ pub fn exact_counts(n: usize, fractions: &[f64]) -> Vec<usize> {
         rb.total_cmp(&ra).then(a.cmp(&b))
     });
     for &i in order.iter().cycle() {
-        if left == 0 {
+        if left == 0 || fractions.iter().all(|f| *f <= 0.0) {
             break;
         }
         if fractions[i] > 0.0 {
@@ -137,135 +165,114 @@ pub fn exact_counts(n: usize, fractions: &[f64]) -> Vec<usize> {
     counts
 }
 
+/// The parts a label may go to, and their fractions.
+fn parts_for(anomaly: bool, f: &Fractions) -> (Vec<Part>, Vec<f64>) {
+    if anomaly {
+        (vec![Part::Validation, Part::Test], f.anomaly.to_vec())
+    } else {
+        (Part::ALL.to_vec(), f.normal.to_vec())
+    }
+}
+
+/// Cumulative cut positions of `counts`.
+fn cuts(counts: &[usize]) -> Vec<usize> {
+    counts
+        .iter()
+        .scan(0, |acc, c| {
+            *acc += c;
+            Some(*acc)
+        })
+        .collect()
+}
+
+/// The index of the part in which position `p` falls.
+fn part_at(cuts: &[usize], p: usize) -> usize {
+    cuts.iter().position(|&c| p < c).unwrap_or(cuts.len() - 1)
+}
+
+fn requested_counts(data: &Dataset, f: &Fractions) -> [Counts; 3] {
+    let mut out = [Counts::default(); 3];
+    for anomaly in [false, true] {
+        let n = data.is_anomaly.iter().filter(|&&a| a == anomaly).count();
+        let (parts, fr) = parts_for(anomaly, f);
+        for (p, c) in parts.iter().zip(exact_counts(n, &fr)) {
+            if anomaly {
+                out[*p as usize].anomaly = c;
+            } else {
+                out[*p as usize].normal = c;
+            }
+        }
+    }
+    out
+}
+
 /// Assigns every row to a split.
 pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Result<Splits> {
     let n = data.len();
-    // Distinct contents with their multiplicity and label (the label is part of
-    // the content, so every row with one hash has the same label).
-    let mut multiplicity = std::collections::BTreeMap::<ContentHash, (usize, bool)>::new();
-    for (h, &a) in hashes.iter().zip(&data.is_anomaly) {
-        multiplicity.entry(*h).or_insert((0, a)).0 += 1;
+    let mut multiplicity = BTreeMap::<ContentHash, usize>::new();
+    for h in hashes {
+        *multiplicity.entry(*h).or_default() += 1;
     }
-    let rows_with_duplicates = hashes.iter().filter(|h| multiplicity[h].0 > 1).count();
+    let rows_with_duplicates = hashes.iter().filter(|h| multiplicity[h] > 1).count();
 
-    let mut part_of = vec![Part::Train; n];
-    let (seed, requested, moved) = match plan {
-        SplitPlan::Protocol {
-            seed,
-            normal,
-            anomaly,
-        } => {
-            let mut requested = [Counts::default(); 3];
-            let mut moved = 0;
-            for label in [false, true] {
-                let (parts, fractions): (Vec<Part>, Vec<f64>) = if label {
-                    (vec![Part::Validation, Part::Test], anomaly.to_vec())
-                } else {
-                    (Part::ALL.to_vec(), normal.to_vec())
-                };
-                let mut groups: Vec<(ContentHash, usize)> = multiplicity
-                    .iter()
-                    .filter(|(_, &(_, a))| a == label)
-                    .map(|(h, &(m, _))| (*h, m))
-                    .collect();
-                let total: usize = groups.iter().map(|g| g.1).sum();
-                let counts = exact_counts(total, &fractions);
-                for (p, c) in parts.iter().zip(&counts) {
-                    let slot = &mut requested[*p as usize];
-                    if label {
-                        slot.anomaly = *c;
-                    } else {
-                        slot.normal = *c;
-                    }
-                }
-                groups.sort_by_cached_key(|(h, _)| (rank_key(*seed, h), *h));
-                // Each group goes whole to the part in which its first row falls.
-                let mut cuts = Vec::with_capacity(counts.len());
-                let mut acc = 0;
-                for c in &counts {
-                    acc += c;
-                    cuts.push(acc);
-                }
-                let mut position = 0;
-                let mut assigned = std::collections::BTreeMap::<ContentHash, Part>::new();
-                for (h, m) in &groups {
-                    let k = cuts
-                        .iter()
-                        .position(|&c| position < c)
-                        .unwrap_or(cuts.len() - 1);
-                    let end = position + m;
-                    if end > cuts[k] {
-                        moved += end - cuts[k];
-                    }
-                    assigned.insert(*h, parts[k]);
-                    position = end;
-                }
-                for (i, h) in hashes.iter().enumerate() {
-                    if data.is_anomaly[i] == label {
-                        part_of[i] = assigned[h];
-                    }
-                }
-            }
-            (Some(*seed), Some(requested), moved)
+    let mut report = SplitReport {
+        method: "",
+        seed: None,
+        requested: None,
+        counts: [Counts::default(); 3],
+        rows_off_requested_counts: 0,
+        rows_with_duplicates,
+        groups: None,
+        time_cuts: None,
+    };
+    let part_of: Vec<Part> = match plan {
+        SplitPlan::Protocol { seed, fractions } => {
+            report.method = "protocol";
+            report.seed = Some(*seed);
+            report.requested = Some(requested_counts(data, fractions));
+            protocol(data, hashes, *seed, fractions)
         }
-        SplitPlan::FromColumn(c) => {
-            let values = data
-                .split_column
-                .as_ref()
-                .ok_or_else(|| Error::internal("split column was not loaded"))?;
-            let mut bad = Vec::new();
-            for (i, v) in values.iter().enumerate() {
-                part_of[i] = match v.as_str() {
-                    "train" => Part::Train,
-                    "validation" => Part::Validation,
-                    "test" => Part::Test,
-                    _ => {
-                        bad.push(i);
-                        Part::Train
-                    }
-                };
-            }
-            if !bad.is_empty() {
-                return Err(Error::Data {
-                    path: data.path.clone(),
-                    column: Some(c.name.clone()),
-                    message: format!(
-                        "split value `{}` is not one of `train`, `validation`, `test`",
-                        values[bad[0]]
-                    ),
-                    lines: bad
+        SplitPlan::Groups {
+            column,
+            seed,
+            fractions,
+        } => {
+            report.method = "groups";
+            report.seed = Some(*seed);
+            report.requested = Some(requested_counts(data, fractions));
+            let groups = &data.text[&column.name];
+            let (parts, count) = by_groups(data, hashes, groups, *seed, fractions);
+            report.groups = Some(count);
+            parts
+        }
+        SplitPlan::Time { column, fractions } => {
+            report.method = "time";
+            report.requested = Some(requested_counts(data, fractions));
+            let times = &data.text[&column.name];
+            let (parts, cuts) = by_time(data, hashes, times, fractions);
+            report.time_cuts = Some(cuts);
+            parts
+        }
+        SplitPlan::FromColumn { column, group } => {
+            report.method = "from-column";
+            let parts = from_column(data, &column.name)?;
+            if let Some(g) = group {
+                let values = &data.text[&g.name];
+                report.groups = Some(
+                    values
                         .iter()
-                        .take(5)
-                        .map(|&i| RowId(i as u64).line())
-                        .collect(),
-                    total: bad.len(),
-                });
+                        .collect::<std::collections::BTreeSet<_>>()
+                        .len(),
+                );
+                crate::audit::leak::check_groups(&parts, values, &g.name, data)?;
             }
-            let known_in_train: Vec<usize> = (0..n)
-                .filter(|&i| data.is_anomaly[i] && part_of[i] == Part::Train)
-                .collect();
-            if !known_in_train.is_empty() {
-                return Err(Error::Data {
-                    path: data.path.clone(),
-                    column: Some(c.name.clone()),
-                    message: "a known anomaly is assigned to `train`; detectors are fitted on \
-                              normal rows only, so known anomalies belong in validation and test"
-                        .into(),
-                    lines: known_in_train
-                        .iter()
-                        .take(5)
-                        .map(|&i| RowId(i as u64).line())
-                        .collect(),
-                    total: known_in_train.len(),
-                });
-            }
-            (None, None, 0)
+            parts
         }
     };
 
     let mut lists: [Vec<RowId>; 3] = Default::default();
     let mut counts = [Counts::default(); 3];
-    for (i, p) in part_of.iter().enumerate() {
+    for (i, p) in part_of.iter().enumerate().take(n) {
         lists[*p as usize].push(RowId(i as u64));
         if data.is_anomaly[i] {
             counts[*p as usize].anomaly += 1;
@@ -276,8 +283,16 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
     for list in lists.iter_mut() {
         list.sort_by_key(|r| (hashes[r.0 as usize], *r));
     }
-    crate::audit::leak::check(&lists, hashes)?;
+    crate::audit::leak::check(&lists, hashes, data)?;
     check_counts(&counts)?;
+    report.counts = counts;
+    if let Some(req) = report.requested {
+        report.rows_off_requested_counts = counts
+            .iter()
+            .zip(&req)
+            .map(|(c, r)| c.normal.saturating_sub(r.normal) + c.anomaly.saturating_sub(r.anomaly))
+            .sum();
+    }
 
     let [train, validation, test] = lists;
     Ok(Splits {
@@ -287,18 +302,272 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
             rows: test,
             counts: counts[2],
         },
-        report: SplitReport {
-            method: match plan {
-                SplitPlan::Protocol { .. } => "protocol",
-                SplitPlan::FromColumn(_) => "from-column",
-            },
-            seed,
-            requested,
-            counts,
-            rows_moved_with_identical_rows: moved,
-            rows_with_duplicates,
-        },
+        report,
     })
+}
+
+fn protocol(data: &Dataset, hashes: &[ContentHash], seed: Seed, f: &Fractions) -> Vec<Part> {
+    // Distinct contents with their multiplicity; the label is part of the content.
+    let mut groups = BTreeMap::<ContentHash, (usize, bool)>::new();
+    for (h, &a) in hashes.iter().zip(&data.is_anomaly) {
+        groups.entry(*h).or_insert((0, a)).0 += 1;
+    }
+    let mut assigned = BTreeMap::<ContentHash, Part>::new();
+    for anomaly in [false, true] {
+        let (parts, fr) = parts_for(anomaly, f);
+        let mut ranked: Vec<(ContentHash, usize)> = groups
+            .iter()
+            .filter(|(_, &(_, a))| a == anomaly)
+            .map(|(h, &(m, _))| (*h, m))
+            .collect();
+        let total = ranked.iter().map(|g| g.1).sum();
+        let cut = cuts(&exact_counts(total, &fr));
+        ranked.sort_by_cached_key(|(h, _)| (rank_key(seed, &h.0), *h));
+        let mut position = 0;
+        for (h, m) in ranked {
+            assigned.insert(h, parts[part_at(&cut, position)]);
+            position += m;
+        }
+    }
+    hashes.iter().map(|h| assigned[h]).collect()
+}
+
+/// Union-find over row indices.
+struct Dsu(Vec<usize>);
+
+impl Dsu {
+    fn find(&mut self, i: usize) -> usize {
+        let mut r = i;
+        while self.0[r] != r {
+            r = self.0[r];
+        }
+        let mut i = i;
+        while self.0[i] != r {
+            let next = self.0[i];
+            self.0[i] = r;
+            i = next;
+        }
+        r
+    }
+    fn join(&mut self, a: usize, b: usize) {
+        let (ra, rb) = (self.find(a), self.find(b));
+        if ra != rb {
+            // The smaller index becomes the root, so the result is order-free.
+            let (lo, hi) = if ra < rb { (ra, rb) } else { (rb, ra) };
+            self.0[hi] = lo;
+        }
+    }
+}
+
+fn by_groups(
+    data: &Dataset,
+    hashes: &[ContentHash],
+    groups: &[String],
+    seed: Seed,
+    f: &Fractions,
+) -> (Vec<Part>, usize) {
+    let n = data.len();
+    let mut dsu = Dsu((0..n).collect());
+    let mut first_of_group = BTreeMap::<&str, usize>::new();
+    let mut first_of_hash = BTreeMap::<ContentHash, usize>::new();
+    for i in 0..n {
+        match first_of_group.get(groups[i].as_str()) {
+            Some(&j) => dsu.join(i, j),
+            None => {
+                first_of_group.insert(groups[i].as_str(), i);
+            }
+        }
+        match first_of_hash.get(&hashes[i]) {
+            Some(&j) => dsu.join(i, j),
+            None => {
+                first_of_hash.insert(hashes[i], i);
+            }
+        }
+    }
+    // A unit's key: the smallest blake3 of its group names, ranked under the seed.
+    struct Unit {
+        key: [u8; 32],
+        normal: usize,
+        anomaly: usize,
+        rows: Vec<usize>,
+    }
+    let mut units = BTreeMap::<usize, Unit>::new();
+    for (i, group) in groups.iter().enumerate() {
+        let root = dsu.find(i);
+        let name_hash = *blake3::hash(group.as_bytes()).as_bytes();
+        let u = units.entry(root).or_insert(Unit {
+            key: name_hash,
+            normal: 0,
+            anomaly: 0,
+            rows: vec![],
+        });
+        u.key = u.key.min(name_hash);
+        if data.is_anomaly[i] {
+            u.anomaly += 1;
+        } else {
+            u.normal += 1;
+        }
+        u.rows.push(i);
+    }
+    let mut units: Vec<Unit> = units.into_values().collect();
+    for u in units.iter_mut() {
+        u.key = rank_key(seed, &u.key);
+    }
+    units.sort_by_key(|u| u.key);
+    let n_units = first_of_group.len();
+
+    let total_anomaly = data.is_anomaly.iter().filter(|&&a| a).count();
+    let total_normal = n - total_anomaly;
+    let mut part_of = vec![Part::Train; n];
+    let mut normal_placed = [0usize; 3];
+    // Units holding a known anomaly go to validation or test only.
+    let cut = cuts(&exact_counts(total_anomaly, &f.anomaly));
+    let mut position = 0;
+    for u in units.iter().filter(|u| u.anomaly > 0) {
+        let p = [Part::Validation, Part::Test][part_at(&cut, position)];
+        position += u.anomaly;
+        normal_placed[p as usize] += u.normal;
+        for &i in &u.rows {
+            part_of[i] = p;
+        }
+    }
+    // The rest fill what remains of the normal targets.
+    let target = exact_counts(total_normal, &f.normal);
+    let remaining: Vec<usize> = (0..3)
+        .map(|k| target[k].saturating_sub(normal_placed[k]))
+        .collect();
+    let cut = cuts(&remaining);
+    let mut position = 0;
+    for u in units.iter().filter(|u| u.anomaly == 0) {
+        let p = Part::ALL[part_at(&cut, position)];
+        position += u.normal;
+        for &i in &u.rows {
+            part_of[i] = p;
+        }
+    }
+    (part_of, n_units)
+}
+
+/// A time value's sort key: numbers by value when every value is a number,
+/// else text order (ISO 8601 dates and times sort correctly as text).
+enum TimeKey<'a> {
+    Number(Vec<f64>),
+    Text(&'a [String]),
+}
+
+impl TimeKey<'_> {
+    fn cmp(&self, a: usize, b: usize) -> std::cmp::Ordering {
+        match self {
+            TimeKey::Number(v) => v[a].total_cmp(&v[b]),
+            TimeKey::Text(t) => t[a].cmp(&t[b]),
+        }
+    }
+}
+
+fn by_time(
+    data: &Dataset,
+    hashes: &[ContentHash],
+    times: &[String],
+    f: &Fractions,
+) -> (Vec<Part>, TimeCuts) {
+    let numbers: Option<Vec<f64>> = times.iter().map(|t| t.trim().parse::<f64>().ok()).collect();
+    let key = match numbers {
+        Some(v) if v.iter().all(|x| x.is_finite()) => TimeKey::Number(v),
+        _ => TimeKey::Text(times),
+    };
+    let mut part_of = vec![Part::Train; data.len()];
+    let mut report = TimeCuts::default();
+    for anomaly in [false, true] {
+        let (parts, fr) = parts_for(anomaly, f);
+        let mut rows: Vec<usize> = (0..data.len())
+            .filter(|&i| data.is_anomaly[i] == anomaly)
+            .collect();
+        rows.sort_by(|&a, &b| {
+            key.cmp(a, b)
+                .then(hashes[a].cmp(&hashes[b]))
+                .then(a.cmp(&b))
+        });
+        let cut = cuts(&exact_counts(rows.len(), &fr));
+        let mut k = 0;
+        while k < rows.len() {
+            // A block of equal times goes whole to the part of its first row.
+            let start = k;
+            while k < rows.len() && key.cmp(rows[start], rows[k]).is_eq() {
+                k += 1;
+            }
+            let p = parts[part_at(&cut, start)];
+            for &i in &rows[start..k] {
+                part_of[i] = p;
+            }
+        }
+        // The earliest time of each later part, for the record.
+        for &i in &rows {
+            let t = Some(times[i].clone());
+            match (anomaly, part_of[i]) {
+                (false, Part::Validation) if report.normal_validation_from.is_none() => {
+                    report.normal_validation_from = t
+                }
+                (false, Part::Test) if report.normal_test_from.is_none() => {
+                    report.normal_test_from = t
+                }
+                (true, Part::Test) if report.anomaly_test_from.is_none() => {
+                    report.anomaly_test_from = t
+                }
+                _ => {}
+            }
+        }
+    }
+    // A copy of an earlier row joins that row's (earlier) split.
+    let mut earliest = BTreeMap::<ContentHash, Part>::new();
+    for (i, h) in hashes.iter().enumerate() {
+        let e = earliest.entry(*h).or_insert(part_of[i]);
+        *e = (*e).min(part_of[i]);
+    }
+    for (i, h) in hashes.iter().enumerate() {
+        part_of[i] = earliest[h];
+    }
+    (part_of, report)
+}
+
+fn from_column(data: &Dataset, column: &str) -> Result<Vec<Part>> {
+    let values = &data.text[column];
+    let mut bad = Vec::new();
+    let mut parts = Vec::with_capacity(values.len());
+    for (i, v) in values.iter().enumerate() {
+        parts.push(match v.as_str() {
+            "train" => Part::Train,
+            "validation" => Part::Validation,
+            "test" => Part::Test,
+            _ => {
+                bad.push(RowId(i as u64));
+                Part::Train
+            }
+        });
+    }
+    if let Some(first) = bad.first() {
+        return Err(data.error(
+            column,
+            format!(
+                "split value `{}` is not one of `train`, `validation`, `test`",
+                values[first.0 as usize]
+            ),
+            &bad,
+        ));
+    }
+    let known_in_train: Vec<RowId> = (0..data.len())
+        .filter(|&i| data.is_anomaly[i] && parts[i] == Part::Train)
+        .map(|i| RowId(i as u64))
+        .collect();
+    if !known_in_train.is_empty() {
+        return Err(data.error(
+            column,
+            "a known anomaly is assigned to `train`; detectors are fitted on normal rows only, \
+             so known anomalies belong in validation and test"
+                .into(),
+            &known_in_train,
+        ));
+    }
+    Ok(parts)
 }
 
 fn check_counts(counts: &[Counts; 3]) -> Result<()> {
@@ -332,6 +601,9 @@ fn check_counts(counts: &[Counts; 3]) -> Result<()> {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::audit::hash;
+    use crate::spec::Column;
+    use proptest::prelude::*;
 
     #[test]
     fn largest_remainder_counts() {
@@ -340,5 +612,178 @@ mod tests {
         assert_eq!(exact_counts(25, &[0.5, 0.5]), [13, 12]);
         assert_eq!(exact_counts(7, &[0.6, 0.2, 0.2]), [4, 2, 1]);
         assert_eq!(exact_counts(3, &[1.0, 0.0, 0.0]), [3, 0, 0]);
+    }
+
+    fn column(name: &str) -> Column {
+        Column {
+            name: name.into(),
+            at: crate::error::Location {
+                file: "s.yaml".into(),
+                line: 1,
+                column: 1,
+            },
+            field: "split".into(),
+        }
+    }
+
+    /// Rows (value, anomaly, group, time) → dataset and hashes.
+    fn dataset(rows: &[(u32, bool, u32, u32)]) -> (Dataset, Vec<ContentHash>) {
+        let x = ndarray::Array2::from_shape_fn((rows.len(), 1), |(i, _)| rows[i].0 as f64);
+        let is_anomaly: Vec<bool> = rows.iter().map(|r| r.1).collect();
+        let mut text = BTreeMap::new();
+        text.insert(
+            "g".to_string(),
+            rows.iter().map(|r| format!("g{}", r.2)).collect(),
+        );
+        text.insert(
+            "t".to_string(),
+            rows.iter().map(|r| format!("{:06}", r.3)).collect(),
+        );
+        let data = Dataset::for_tests(x, is_anomaly, text);
+        let hashes = hash::rows(&data.x, &data.is_anomaly);
+        (data, hashes)
+    }
+
+    fn plans(seed: u64) -> Vec<SplitPlan> {
+        let fractions = Fractions {
+            normal: [0.6, 0.2, 0.2],
+            anomaly: [0.5, 0.5],
+        };
+        vec![
+            SplitPlan::Protocol {
+                seed: Seed(seed),
+                fractions,
+            },
+            SplitPlan::Groups {
+                column: column("g"),
+                seed: Seed(seed),
+                fractions,
+            },
+            SplitPlan::Time {
+                column: column("t"),
+                fractions,
+            },
+        ]
+    }
+
+    fn parts(s: &Splits, test: Vec<RowId>) -> Vec<(RowId, Part)> {
+        let mut v: Vec<(RowId, Part)> = s
+            .train
+            .iter()
+            .map(|r| (*r, Part::Train))
+            .chain(s.validation.iter().map(|r| (*r, Part::Validation)))
+            .chain(test.into_iter().map(|r| (r, Part::Test)))
+            .collect();
+        v.sort();
+        v
+    }
+
+    fn rows_strategy() -> impl Strategy<Value = Vec<(u32, bool, u32, u32)>> {
+        // 40–200 normal rows and 4–20 anomalies; values from a small range so
+        // that identical rows occur; 1–30 groups; times with ties.
+        (40usize..200, 4usize..20).prop_flat_map(|(n, a)| {
+            prop::collection::vec((0u32..150, 0u32..30, 0u32..500), n + a).prop_map(move |v| {
+                v.into_iter()
+                    .enumerate()
+                    .map(|(i, (x, g, t))| (x + if i >= n { 1000 } else { 0 }, i >= n, g, t))
+                    .collect()
+            })
+        })
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig { cases: 64, ..ProptestConfig::default() })]
+
+        /// Every method: each row in exactly one split, no known anomaly in train,
+        /// the same result twice, and identical rows in one split.
+        #[test]
+        fn splits_are_disjoint_deterministic_and_keep_copies_together(rows in rows_strategy(), seed in 0u64..1000) {
+            let (data, hashes) = dataset(&rows);
+            for plan in plans(seed) {
+                let (Ok(a), Ok(b)) = (assign(&plan, &data, &hashes), assign(&plan, &data, &hashes)) else {
+                    continue; // too few rows of a label for this method: refused, not split
+                };
+                let pa = parts(&a, a.test.rows.clone());
+                let pb = parts(&b, b.test.rows.clone());
+                prop_assert_eq!(&pa, &pb);
+                prop_assert_eq!(pa.len(), data.len());
+                for w in pa.windows(2) {
+                    prop_assert!(w[0].0 != w[1].0, "a row in two splits");
+                }
+                let mut seen = BTreeMap::<ContentHash, Part>::new();
+                for (r, p) in &pa {
+                    let i = r.0 as usize;
+                    prop_assert!(!(data.is_anomaly[i] && *p == Part::Train));
+                    let first = *seen.entry(hashes[i]).or_insert(*p);
+                    prop_assert_eq!(first, *p, "identical rows split");
+                }
+                if let SplitPlan::Groups { .. } = plan {
+                    let mut g = BTreeMap::<&str, Part>::new();
+                    for (r, p) in &pa {
+                        let name = data.text["g"][r.0 as usize].as_str();
+                        let first = *g.entry(name).or_insert(*p);
+                        prop_assert_eq!(first, *p, "a group split");
+                    }
+                }
+            }
+        }
+
+        /// With distinct rows (and distinct times), the protocol and time splits
+        /// hit the requested counts to within one row.
+        #[test]
+        fn distinct_rows_get_the_requested_counts(n in 40usize..300, a in 4usize..30, seed in 0u64..1000) {
+            let rows: Vec<(u32, bool, u32, u32)> = (0..n + a)
+                .map(|i| (i as u32, i >= n, i as u32, (i * 7919 % (n + a)) as u32))
+                .collect();
+            let (data, hashes) = dataset(&rows);
+            for plan in plans(seed) {
+                let s = assign(&plan, &data, &hashes).unwrap();
+                let req = s.report.requested.unwrap();
+                for (c, r) in s.report.counts.iter().zip(&req) {
+                    prop_assert!(c.normal.abs_diff(r.normal) <= 1, "{:?} vs {:?}", c, r);
+                    prop_assert!(c.anomaly.abs_diff(r.anomaly) <= 1, "{:?} vs {:?}", c, r);
+                }
+            }
+        }
+
+        /// Reordering the rows changes no row's split (protocol and groups).
+        #[test]
+        fn row_order_does_not_matter(rows in rows_strategy(), seed in 0u64..1000) {
+            let (data, hashes) = dataset(&rows);
+            let mut reversed = rows.clone();
+            reversed.reverse();
+            let (rdata, rhashes) = dataset(&reversed);
+            let n = rows.len();
+            for plan in plans(seed) {
+                let (Ok(a), Ok(b)) = (assign(&plan, &data, &hashes), assign(&plan, &rdata, &rhashes)) else {
+                    continue;
+                };
+                let pa = parts(&a, a.test.rows.clone());
+                let mut pb: Vec<(RowId, Part)> = parts(&b, b.test.rows.clone())
+                    .into_iter()
+                    .map(|(r, p)| (RowId((n - 1) as u64 - r.0), p))
+                    .collect();
+                pb.sort();
+                prop_assert_eq!(pa, pb);
+            }
+        }
+    }
+
+    #[test]
+    fn time_split_puts_train_first() {
+        let rows: Vec<(u32, bool, u32, u32)> =
+            (0..100).map(|i| (i, i >= 90, 0, i * 37 % 100)).collect();
+        let (data, hashes) = dataset(&rows);
+        let plan = &plans(0)[2];
+        let s = assign(plan, &data, &hashes).unwrap();
+        let latest_train = s
+            .train
+            .iter()
+            .map(|r| &data.text["t"][r.0 as usize])
+            .max()
+            .unwrap();
+        let cuts = s.report.time_cuts.clone().unwrap();
+        assert!(latest_train < cuts.normal_validation_from.as_ref().unwrap());
+        assert!(cuts.normal_validation_from < cuts.normal_test_from);
     }
 }

@@ -1,37 +1,41 @@
 //! Threshold policies. The only input is validation scores and labels: the
 //! test split never reaches this module.
 //!
-//! `max-f1` is found exactly: one sort of the validation scores, then a walk
-//! over every distinct cut point, O(n log n). Among cut points with the same
-//! F1 (compared as exact fractions) the one that flags the fewest validation
+//! Every policy is an exact search: one sort of the validation scores, then a
+//! walk over every distinct cut point (O(n log n)). Cut point k flags the rows
+//! whose scores are among the k highest distinct values. Among cut points that
+//! are equally good under a policy the one that flags the fewest validation
 //! rows wins, i.e. the highest τ. The chosen τ is the midpoint between the
 //! lowest flagged validation score and the next lower distinct one, so that
 //! small shifts in a score do not flip a validation decision; when every
-//! validation row is flagged, τ is the largest double below the lowest score.
+//! validation row is flagged, τ is the largest double below the lowest score;
+//! when none is, τ is the highest score.
+//!
+//! A policy that no cut point meets (a precision target above every
+//! achievable precision) returns the closest achievable point with
+//! `met = false` and a note saying so; the pipeline does not select such a
+//! candidate.
 
 use crate::metrics::{cmp_fraction, Confusion};
 use crate::spec::ThresholdPolicy;
 
 /// A chosen operating point.
-#[derive(Debug, Clone, Copy)]
+#[derive(Debug, Clone)]
 pub struct Choice {
     /// Flag iff s(x) > τ.
     pub tau: f64,
     /// The validation confusion matrix at τ.
     pub confusion: Confusion,
+    /// Whether the policy's constraint is met on validation.
+    pub met: bool,
+    /// Why not, with the closest achievable point.
+    pub note: Option<String>,
 }
 
 impl Choice {
     /// ln ε = −τ: the log-density below which a row is flagged.
     pub fn ln_epsilon(&self) -> f64 {
         -self.tau
-    }
-}
-
-/// Chooses τ on validation by the policy.
-pub fn choose(policy: ThresholdPolicy, scores: &[f64], is_anomaly: &[bool]) -> Choice {
-    match policy {
-        ThresholdPolicy::MaxF1 => max_f1(scores, is_anomaly),
     }
 }
 
@@ -57,8 +61,15 @@ fn between(high: f64, low: f64) -> f64 {
     }
 }
 
-/// The τ that maximises F1 on validation (see the module docs for ties).
-pub fn max_f1(scores: &[f64], is_anomaly: &[bool]) -> Choice {
+/// One cut point: its confusion matrix and τ.
+#[derive(Debug, Clone, Copy)]
+struct Cut {
+    c: Confusion,
+    tau: f64,
+}
+
+/// Every distinct cut point, from "flag nothing" to "flag everything".
+fn cut_points(scores: &[f64], is_anomaly: &[bool]) -> Vec<Cut> {
     let mut order: Vec<(f64, bool)> = scores
         .iter()
         .copied()
@@ -67,18 +78,16 @@ pub fn max_f1(scores: &[f64], is_anomaly: &[bool]) -> Choice {
     order.sort_by(|a, b| b.0.total_cmp(&a.0));
     let positives = is_anomaly.iter().filter(|&&a| a).count() as u64;
     let negatives = is_anomaly.len() as u64 - positives;
-
-    let (mut tp, mut fp) = (0u64, 0u64);
-    // Start from "flag nothing".
-    let mut best = (
-        Confusion {
+    let mut cuts = vec![Cut {
+        c: Confusion {
             tp: 0,
             fp: 0,
             fn_: positives,
             tn: negatives,
         },
-        None::<usize>,
-    );
+        tau: order.first().map_or(0.0, |o| o.0),
+    }];
+    let (mut tp, mut fp) = (0u64, 0u64);
     let mut i = 0;
     while i < order.len() {
         let s = order[i].0;
@@ -90,44 +99,147 @@ pub fn max_f1(scores: &[f64], is_anomaly: &[bool]) -> Choice {
             }
             i += 1;
         }
-        let c = Confusion {
-            tp,
-            fp,
-            fn_: positives - tp,
-            tn: negatives - fp,
+        let tau = match order.get(i) {
+            Some(next) => between(s, next.0),
+            None => below(s),
         };
-        if cmp_fraction(c.f1_fraction(), best.0.f1_fraction()).is_gt() {
-            best = (c, Some(i));
-        }
+        cuts.push(Cut {
+            c: Confusion {
+                tp,
+                fp,
+                fn_: positives - tp,
+                tn: negatives - fp,
+            },
+            tau,
+        });
     }
-    let tau = match best.1 {
-        // Nothing flagged: τ at the top score flags nothing.
-        None => order.first().map_or(0.0, |o| o.0),
-        Some(end) => {
-            let lowest_flagged = order[end - 1].0;
-            match order.get(end) {
-                Some(next) => between(lowest_flagged, next.0),
-                None => below(lowest_flagged),
-            }
-        }
-    };
-    Choice {
-        tau,
-        confusion: best.0,
-    }
+    cuts
 }
 
-/// The validation F1 of every candidate cut, by brute force (test helper).
-#[cfg(test)]
-fn brute_force_best_f1(scores: &[f64], is_anomaly: &[bool]) -> (u64, u64) {
-    let mut best = (0, 1);
-    for &t in scores {
-        let c = Confusion::at(scores, is_anomaly, below(t));
-        if cmp_fraction(c.f1_fraction(), best).is_gt() {
-            best = c.f1_fraction();
+/// The index of the best cut under `better` (a strict "is better than"), the
+/// first (highest τ) among equals.
+fn best_by(cuts: &[Cut], better: impl Fn(&Confusion, &Confusion) -> bool) -> usize {
+    let mut best = 0;
+    for (k, cut) in cuts.iter().enumerate().skip(1) {
+        if better(&cut.c, &cuts[best].c) {
+            best = k;
         }
     }
     best
+}
+
+fn rate(num: u64, den: u64) -> f64 {
+    if den == 0 {
+        0.0
+    } else {
+        num as f64 / den as f64
+    }
+}
+
+/// Fβ = (1 + β²) TP / ((1 + β²) TP + β² FN + FP); 0 when TP = 0.
+pub fn f_beta(c: &Confusion, beta: f64) -> f64 {
+    let b2 = beta * beta;
+    let num = (1.0 + b2) * c.tp as f64;
+    let den = num + b2 * c.fn_ as f64 + c.fp as f64;
+    if c.tp == 0 {
+        0.0
+    } else {
+        num / den
+    }
+}
+
+fn chosen(cut: Cut) -> Choice {
+    Choice {
+        tau: cut.tau,
+        confusion: cut.c,
+        met: true,
+        note: None,
+    }
+}
+
+/// Chooses τ on validation by the policy.
+pub fn choose(policy: ThresholdPolicy, scores: &[f64], is_anomaly: &[bool]) -> Choice {
+    let cuts = cut_points(scores, is_anomaly);
+    let recall = |c: &Confusion| (c.tp, c.tp + c.fn_);
+    let fpr = |c: &Confusion| rate(c.fp, c.fp + c.tn);
+    match policy {
+        ThresholdPolicy::MaxF1 => chosen(
+            cuts[best_by(&cuts, |a, b| {
+                cmp_fraction(a.f1_fraction(), b.f1_fraction()).is_gt()
+            })],
+        ),
+        ThresholdPolicy::MaxFBeta { beta } => {
+            chosen(cuts[best_by(&cuts, |a, b| f_beta(a, beta) > f_beta(b, beta))])
+        }
+        ThresholdPolicy::AlarmBudget {
+            max_false_positive_rate: r,
+        } => {
+            // "Flag nothing" has rate 0, so the budget is always met.
+            let ok = |c: &Confusion| fpr(c) <= r;
+            chosen(
+                cuts[best_by(&cuts, |a, b| {
+                    ok(a) && (!ok(b) || cmp_fraction(recall(a), recall(b)).is_gt())
+                })],
+            )
+        }
+        ThresholdPolicy::RecallTarget { min_recall: r } => {
+            // "Flag everything" has recall 1, so the target is always met; the
+            // false-positive rate only grows along the cuts, so the first
+            // feasible cut has the lowest.
+            let k = cuts
+                .iter()
+                .position(|cut| rate(cut.c.tp, cut.c.tp + cut.c.fn_) >= r)
+                .unwrap_or(cuts.len() - 1);
+            chosen(cuts[k])
+        }
+        ThresholdPolicy::PrecisionTarget { min_precision: p } => {
+            let ok = |c: &Confusion| c.tp + c.fp > 0 && rate(c.tp, c.tp + c.fp) >= p;
+            let k = best_by(&cuts, |a, b| {
+                ok(a) && (!ok(b) || cmp_fraction(recall(a), recall(b)).is_gt())
+            });
+            if ok(&cuts[k].c) {
+                return chosen(cuts[k]);
+            }
+            // Unmet: the closest point is the highest precision (then recall).
+            let prec = |c: &Confusion| (c.tp, c.tp + c.fp);
+            let k = best_by(&cuts, |a, b| {
+                cmp_fraction(prec(a), prec(b))
+                    .then(cmp_fraction(recall(a), recall(b)))
+                    .is_gt()
+            });
+            let c = cuts[k].c;
+            Choice {
+                tau: cuts[k].tau,
+                confusion: c,
+                met: false,
+                note: Some(format!(
+                    "precision ≥ {p} cannot be met on validation; the closest point is precision \
+                     {:.4} at recall {:.4}",
+                    rate(c.tp, c.tp + c.fp),
+                    rate(c.tp, c.tp + c.fn_)
+                )),
+            }
+        }
+        ThresholdPolicy::MinCost {
+            missed_anomaly,
+            false_alarm,
+        } => {
+            let cost = |c: &Confusion| missed_anomaly * c.fn_ as f64 + false_alarm * c.fp as f64;
+            chosen(cuts[best_by(&cuts, |a, b| cost(a) < cost(b))])
+        }
+        ThresholdPolicy::Fixed { tau, ln_epsilon } => {
+            let tau = tau.or(ln_epsilon.map(|l| -l)).unwrap_or(0.0);
+            chosen(Cut {
+                c: Confusion::at(scores, is_anomaly, tau),
+                tau,
+            })
+        }
+    }
+}
+
+/// The τ that maximises F1 on validation (see the module docs for ties).
+pub fn max_f1(scores: &[f64], is_anomaly: &[bool]) -> Choice {
+    choose(ThresholdPolicy::MaxF1, scores, is_anomaly)
 }
 
 #[cfg(test)]
@@ -187,22 +299,138 @@ mod tests {
         assert_eq!(c.tau, 3.5);
     }
 
+    /// Brute force: every cut point of every policy, checked against a direct
+    /// evaluation at every candidate τ.
     #[test]
     fn exact_search_equals_brute_force_on_random_data() {
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(11);
+        let policies = [
+            ThresholdPolicy::MaxF1,
+            ThresholdPolicy::MaxFBeta { beta: 2.0 },
+            ThresholdPolicy::AlarmBudget {
+                max_false_positive_rate: 0.1,
+            },
+            ThresholdPolicy::RecallTarget { min_recall: 0.6 },
+            ThresholdPolicy::MinCost {
+                missed_anomaly: 10.0,
+                false_alarm: 1.0,
+            },
+        ];
         for _ in 0..200 {
             let n = 2 + (rng.next_u32() % 40) as usize;
             let s: Vec<f64> = (0..n).map(|_| (rng.next_u32() % 12) as f64 / 4.0).collect();
             let mut y: Vec<bool> = (0..n).map(|_| rng.next_u32() % 4 == 0).collect();
             y[0] = true;
-            let c = max_f1(&s, &y);
-            assert_eq!(
-                Confusion::at(&s, &y, c.tau),
-                c.confusion,
-                "τ reproduces the counts"
-            );
-            assert!(cmp_fraction(c.confusion.f1_fraction(), brute_force_best_f1(&s, &y)).is_eq());
+            y[n - 1] = false;
+            // Candidate τ: above every score, and just below each score.
+            let taus: Vec<f64> = s
+                .iter()
+                .map(|&v| below(v))
+                .chain(std::iter::once(100.0))
+                .collect();
+            let all: Vec<Confusion> = taus.iter().map(|&t| Confusion::at(&s, &y, t)).collect();
+            for p in policies {
+                let c = choose(p, &s, &y);
+                assert_eq!(
+                    Confusion::at(&s, &y, c.tau),
+                    c.confusion,
+                    "τ reproduces the counts"
+                );
+                let r = |c: &Confusion| rate(c.tp, c.tp + c.fn_);
+                let f = |c: &Confusion| rate(c.fp, c.fp + c.tn);
+                match p {
+                    ThresholdPolicy::MaxF1 => assert!(all.iter().all(|a| cmp_fraction(
+                        a.f1_fraction(),
+                        c.confusion.f1_fraction()
+                    )
+                    .is_le())),
+                    ThresholdPolicy::MaxFBeta { beta } => {
+                        assert!(all
+                            .iter()
+                            .all(|a| f_beta(a, beta) <= f_beta(&c.confusion, beta)))
+                    }
+                    ThresholdPolicy::AlarmBudget {
+                        max_false_positive_rate: b,
+                    } => {
+                        assert!(f(&c.confusion) <= b);
+                        assert!(all
+                            .iter()
+                            .filter(|a| f(a) <= b)
+                            .all(|a| r(a) <= r(&c.confusion)));
+                    }
+                    ThresholdPolicy::RecallTarget { min_recall: t } => {
+                        assert!(r(&c.confusion) >= t);
+                        assert!(all
+                            .iter()
+                            .filter(|a| r(a) >= t)
+                            .all(|a| f(a) >= f(&c.confusion)));
+                    }
+                    ThresholdPolicy::MinCost {
+                        missed_anomaly: m,
+                        false_alarm: fa,
+                    } => {
+                        let cost = |a: &Confusion| m * a.fn_ as f64 + fa * a.fp as f64;
+                        assert!(all.iter().all(|a| cost(a) >= cost(&c.confusion)));
+                    }
+                    _ => unreachable!(),
+                }
+            }
         }
+    }
+
+    #[test]
+    fn an_unmet_precision_target_says_so_with_the_closest_point() {
+        let s = [5.0, 4.0, 3.0, 2.0, 1.0];
+        let y = [false, true, false, true, false];
+        let c = choose(
+            ThresholdPolicy::PrecisionTarget { min_precision: 0.9 },
+            &s,
+            &y,
+        );
+        assert!(!c.met);
+        let note = c.note.unwrap();
+        assert!(
+            note.contains("cannot be met") && note.contains("precision 0.5000 at recall 1.0000"),
+            "{note}"
+        );
+        let c = choose(
+            ThresholdPolicy::PrecisionTarget { min_precision: 0.5 },
+            &s,
+            &y,
+        );
+        assert!(c.met);
+        assert_eq!(c.confusion.tp, 2);
+    }
+
+    #[test]
+    fn fixed_threshold_from_ln_epsilon() {
+        let s = [5.0, 4.0, 3.0];
+        let y = [true, false, false];
+        let c = choose(
+            ThresholdPolicy::Fixed {
+                tau: None,
+                ln_epsilon: Some(-4.5),
+            },
+            &s,
+            &y,
+        );
+        assert_eq!(c.tau, 4.5);
+        assert_eq!(c.confusion.tp + c.confusion.fp, 1);
+    }
+
+    /// Fβ formula check against REFERENCES.md section 5 (TP 8, FP 3, FN 2):
+    /// F2 = 40/51, F0.5 = 20/27.
+    #[test]
+    fn f_beta_matches_the_exact_fractions() {
+        let c = Confusion {
+            tp: 8,
+            fp: 3,
+            fn_: 2,
+            tn: 1987,
+        };
+        assert!((f_beta(&c, 2.0) - 0.7843137254901961).abs() <= 1e-12);
+        assert!((f_beta(&c, 0.5) - 0.7407407407407407).abs() <= 1e-12);
+        assert!((f_beta(&c, 1.0) - 0.7619047619047619).abs() <= 1e-12);
     }
 
     #[test]

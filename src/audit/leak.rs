@@ -1,20 +1,21 @@
 //! Proves that no row content sits in two splits, by row id and by content
-//! hash, and refuses the run if it does.
+//! hash, and (with a group column) that no group does; refuses the run if not.
 //!
-//! This runs for every split method: for the protocol split it is a second,
+//! This runs for every split method: for the seeded methods it is a second,
 //! independent check of what the split construction promises.
 
 use std::collections::BTreeMap;
 
 use crate::audit::hash::ContentHash;
-use crate::data::RowId;
+use crate::data::{Dataset, RowId};
 use crate::error::{Error, Result};
+use crate::split::Part;
 
 const NAMES: [&str; 3] = ["train", "validation", "test"];
 
 /// Checks that the three row lists (train, validation, test) share no row id
 /// and no content hash.
-pub fn check(lists: &[Vec<RowId>; 3], hashes: &[ContentHash]) -> Result<()> {
+pub fn check(lists: &[Vec<RowId>; 3], hashes: &[ContentHash], data: &Dataset) -> Result<()> {
     // First part in which each content appears, with its first row there.
     let mut seen: BTreeMap<ContentHash, (usize, RowId)> = BTreeMap::new();
     let mut ids = vec![false; hashes.len()];
@@ -30,7 +31,8 @@ pub fn check(lists: &[Vec<RowId>; 3], hashes: &[ContentHash]) -> Result<()> {
                 )));
             }
             ids[i] = true;
-            here.entry(hashes[i]).or_insert(r);
+            let e = here.entry(hashes[i]).or_insert(r);
+            *e = (*e).min(r);
         }
         for (h, r) in here {
             match seen.get(&h) {
@@ -51,7 +53,46 @@ pub fn check(lists: &[Vec<RowId>; 3], hashes: &[ContentHash]) -> Result<()> {
         return Err(Error::Leakage {
             splits: (NAMES[a].into(), NAMES[b].into()),
             overlapping: count,
-            first: (ra.line(), rb.line()),
+            first: (data.place(ra), data.place(rb)),
+        });
+    }
+    Ok(())
+}
+
+/// Checks that every group (a value of `column`) sits in one split.
+pub fn check_groups(parts: &[Part], groups: &[String], column: &str, data: &Dataset) -> Result<()> {
+    let mut first: BTreeMap<&str, (Part, usize)> = BTreeMap::new();
+    let mut split_groups: BTreeMap<&str, (usize, usize)> = BTreeMap::new();
+    for (i, g) in groups.iter().enumerate() {
+        match first.get(g.as_str()) {
+            Some(&(p, j)) if p != parts[i] => {
+                split_groups.entry(g.as_str()).or_insert((j, i));
+            }
+            Some(_) => {}
+            None => {
+                first.insert(g.as_str(), (parts[i], i));
+            }
+        }
+    }
+    if let Some((g, &(j, i))) = split_groups.iter().next() {
+        return Err(Error::Data {
+            path: data.files[data.origin[j].file as usize]
+                .shown
+                .clone()
+                .into(),
+            column: Some(column.into()),
+            message: format!(
+                "group `{g}` is in both `{}` ({}) and `{}` ({}); {} group(s) span two splits, \
+                 and every row of a group must share one split",
+                parts[j].name(),
+                data.place(RowId(j as u64)),
+                parts[i].name(),
+                data.place(RowId(i as u64)),
+                split_groups.len()
+            ),
+            lines: vec![],
+            total: 0,
+            unit: crate::error::RowUnit::Line,
         });
     }
     Ok(())
@@ -62,6 +103,14 @@ mod tests {
     use super::*;
     use crate::audit::hash::row;
 
+    fn data(n: usize) -> Dataset {
+        Dataset::for_tests(
+            ndarray::Array2::zeros((n, 1)),
+            vec![false; n],
+            BTreeMap::new(),
+        )
+    }
+
     #[test]
     fn shared_content_is_leakage() {
         let hashes = vec![
@@ -70,7 +119,7 @@ mod tests {
             row([1.0], false, 1),
         ];
         let lists = [vec![RowId(1)], vec![RowId(0)], vec![RowId(2)]];
-        match check(&lists, &hashes) {
+        match check(&lists, &hashes, &data(3)) {
             Err(Error::Leakage {
                 splits,
                 overlapping,
@@ -78,7 +127,7 @@ mod tests {
             }) => {
                 assert_eq!(splits, ("validation".into(), "test".into()));
                 assert_eq!(overlapping, 1);
-                assert_eq!(first, (2, 4));
+                assert_eq!(first, ("test.csv line 2".into(), "test.csv line 4".into()));
             }
             other => panic!("expected leakage, got {other:?}"),
         }
@@ -92,6 +141,21 @@ mod tests {
             row([3.0], true, 1),
         ];
         let lists = [vec![RowId(0)], vec![RowId(1)], vec![RowId(2)]];
-        assert!(check(&lists, &hashes).is_ok());
+        assert!(check(&lists, &hashes, &data(3)).is_ok());
+    }
+
+    #[test]
+    fn a_group_in_two_splits_is_refused() {
+        let groups: Vec<String> = ["a", "b", "a"].iter().map(|s| s.to_string()).collect();
+        let parts = [Part::Train, Part::Train, Part::Test];
+        let e = check_groups(&parts, &groups, "die", &data(3))
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.contains(
+                "group `a` is in both `train` (test.csv line 2) and `test` (test.csv line 4)"
+            ),
+            "{e}"
+        );
     }
 }

@@ -32,12 +32,26 @@ pub struct MetricRow {
     pub fn_: u64,
     /// True negatives.
     pub tn: u64,
-    /// Precision with its 95 % interval.
+    /// Precision with its 95 % Wilson (W) and Clopper-Pearson (CP) intervals.
     pub precision: String,
-    /// Recall with its 95 % interval.
+    /// Recall with its 95 % intervals.
     pub recall: String,
-    /// F1.
+    /// False-positive rate with its 95 % intervals.
+    pub false_positive_rate: String,
+    /// F1 with its 95 % bootstrap interval.
     pub f1: String,
+    /// Fβ, when the policy declares β.
+    pub f_beta: Option<String>,
+    /// Average precision with its 95 % bootstrap interval.
+    pub average_precision: String,
+    /// ROC AUC with its 95 % bootstrap interval.
+    pub roc_auc: String,
+    /// Matthews correlation.
+    pub mcc: String,
+    /// Balanced accuracy.
+    pub balanced_accuracy: String,
+    /// Specificity.
+    pub specificity: String,
     /// Accuracy (shown only beside its warning).
     pub accuracy: String,
 }
@@ -70,6 +84,37 @@ pub struct SplitRow {
     pub manifest: String,
 }
 
+/// One input file.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct InputRow {
+    /// Path relative to the spec.
+    pub path: String,
+    /// Data rows.
+    pub rows: usize,
+    /// blake3.
+    pub blake3: String,
+}
+
+/// One feature of a feature set.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct FeatureRow {
+    /// Name.
+    pub name: String,
+    /// What it is computed from.
+    pub from: String,
+    /// Its fitted transforms in words (empty when none).
+    pub transforms: String,
+}
+
+/// A feature set.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct FeatureSetRow {
+    /// Name.
+    pub name: String,
+    /// Features.
+    pub features: Vec<FeatureRow>,
+}
+
 /// Everything a card template can use.
 #[derive(Debug, Clone, serde::Serialize)]
 pub struct CardContext {
@@ -91,23 +136,21 @@ pub struct CardContext {
     pub spec_blake3: String,
     /// Signing key fingerprint.
     pub key_fingerprint: String,
-    /// Data file as written in the spec.
-    pub data_path: String,
-    /// blake3 of the data file.
-    pub data_blake3: String,
-    /// Rows read.
-    pub data_rows: usize,
+    /// Input files.
+    pub inputs: Vec<InputRow>,
     /// Label column and values, as one sentence.
     pub label: String,
-    /// Feature names.
-    pub features: Vec<String>,
+    /// The missing-value policy and what it dropped, as one sentence.
+    pub missing: String,
+    /// Feature sets with their features and fitted transforms.
+    pub feature_sets: Vec<FeatureSetRow>,
     /// How the split was made, as one sentence.
     pub split_method: String,
     /// Split counts.
     pub splits: Vec<SplitRow>,
     /// Rows that share their content with another row.
     pub duplicate_rows: usize,
-    /// Rows moved across a cut with their identical rows.
+    /// Rows off the requested counts because groups or identical rows met a cut.
     pub moved_rows: usize,
     /// The threshold policy, in words.
     pub threshold_policy: String,

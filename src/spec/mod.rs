@@ -7,8 +7,9 @@
 mod raw;
 
 pub use raw::{
-    AnomalyFractions, DetectorKind, NormalFractions, RawCard, RawData, RawLabel, RawProtocol,
-    RawSpec, RawSplit, Scalar, ThresholdPolicy,
+    AnomalyFractions, DetectorKind, MissingPolicy, NormalFractions, OneOrMany, RawCard, RawData,
+    RawFeature, RawFeatureMap, RawFeatureSet, RawFromColumn, RawGroups, RawLabel, RawProtocol,
+    RawSpec, RawSplit, RawTime, Scalar, SelectionMetric, ThresholdPolicy, TransformKind,
 };
 
 use std::cell::RefCell;
@@ -36,6 +37,87 @@ pub struct Column {
     pub field: String,
 }
 
+/// One source path of the spec.
+#[derive(Debug, Clone)]
+pub struct SourcePlan {
+    /// The path as written (a file, a glob or a directory).
+    pub written: String,
+    /// Resolved against the spec's directory.
+    pub resolved: PathBuf,
+    /// Where the spec names it.
+    pub at: Location,
+    /// The field path.
+    pub field: String,
+    /// `None` for a labelled source; `Some(is_anomaly)` when the label is implied.
+    pub implied: Option<bool>,
+}
+
+/// The label column of a labelled source.
+#[derive(Debug, Clone)]
+pub struct LabelPlan {
+    /// The column.
+    pub column: Column,
+    /// The text value meaning normal.
+    pub normal: String,
+    /// The text value meaning anomaly.
+    pub anomaly: String,
+}
+
+/// What a feature is computed from: indices into [`Plan::columns`].
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum FeatureInput {
+    /// A column as it is.
+    Column(usize),
+    /// a / b.
+    Ratio(usize, usize),
+    /// a − b.
+    Difference(usize, usize),
+    /// a · b.
+    Product(usize, usize),
+}
+
+/// One feature of a feature set.
+#[derive(Debug, Clone)]
+pub struct FeaturePlan {
+    /// The feature's name.
+    pub name: String,
+    /// What it is computed from.
+    pub input: FeatureInput,
+    /// Transforms, in order.
+    pub transforms: Vec<TransformKind>,
+    /// Where the spec declares it.
+    pub at: Location,
+}
+
+/// A named feature set.
+#[derive(Debug, Clone)]
+pub struct FeatureSetPlan {
+    /// The set's name (`features` when the spec gives one unnamed set).
+    pub name: String,
+    /// Whether the spec named it (candidates are then called `set/detector`).
+    pub named: bool,
+    /// Its features.
+    pub features: Vec<FeaturePlan>,
+}
+
+impl FeatureSetPlan {
+    /// Feature names, in order.
+    pub fn names(&self) -> Vec<String> {
+        self.features.iter().map(|f| f.name.clone()).collect()
+    }
+}
+
+/// Fractions of the normal (train, validation, test) and anomalous
+/// (validation, test) rows.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Fractions {
+    /// Normal rows: train, validation, test.
+    pub normal: [f64; 3],
+    /// Anomalous rows: validation, test.
+    pub anomaly: [f64; 2],
+}
+
 /// How rows are assigned to splits, resolved.
 #[derive(Debug, Clone)]
 pub enum SplitPlan {
@@ -43,13 +125,32 @@ pub enum SplitPlan {
     Protocol {
         /// The seed.
         seed: Seed,
-        /// Normal fractions train, validation, test.
-        normal: [f64; 3],
-        /// Anomaly fractions validation, test.
-        anomaly: [f64; 2],
+        /// The fractions.
+        fractions: Fractions,
+    },
+    /// Seeded split of whole groups.
+    Groups {
+        /// The group column.
+        column: Column,
+        /// The seed.
+        seed: Seed,
+        /// The fractions.
+        fractions: Fractions,
+    },
+    /// Ordered by a time column.
+    Time {
+        /// The time column.
+        column: Column,
+        /// The fractions.
+        fractions: Fractions,
     },
     /// The split is read from a column.
-    FromColumn(Column),
+    FromColumn {
+        /// The split column.
+        column: Column,
+        /// A group column whose groups must each sit in one split.
+        group: Option<Column>,
+    },
 }
 
 /// The card's text, resolved.
@@ -80,26 +181,29 @@ pub struct Plan {
     pub spec_path: PathBuf,
     /// The spec file's exact bytes (hashed into the run record).
     pub spec_bytes: Vec<u8>,
-    /// The data file, resolved against the spec's directory.
-    pub data_path: PathBuf,
-    /// The data path exactly as written in the spec (recorded; never absolute unless written so).
-    pub data_path_as_written: String,
-    /// The label column.
-    pub label: Column,
-    /// The text value meaning normal.
-    pub normal_value: String,
-    /// The text value meaning anomaly.
-    pub anomaly_value: String,
+    /// The sources: one labelled, or a normal and an anomalous one.
+    pub sources: Vec<SourcePlan>,
+    /// The label column (labelled source only).
+    pub label: Option<LabelPlan>,
     /// The optional id column.
     pub id_column: Option<Column>,
-    /// The feature columns, in order.
-    pub features: Vec<Column>,
+    /// The missing-value policy.
+    pub missing: MissingPolicy,
+    /// Every numeric source column any feature uses, in order of first mention.
+    /// Row content hashes cover exactly these columns and the label.
+    pub columns: Vec<Column>,
+    /// The feature sets, in spec order.
+    pub feature_sets: Vec<FeatureSetPlan>,
     /// The split.
     pub split: SplitPlan,
     /// Candidate detectors, in spec order, without repeats.
     pub detectors: Vec<DetectorKind>,
     /// The threshold policy.
     pub threshold: ThresholdPolicy,
+    /// The validation metric that ranks candidates.
+    pub selection: SelectionMetric,
+    /// The bootstrap behind the F1, AP and AUC intervals.
+    pub bootstrap: crate::metrics::BootstrapPlan,
     /// Card text.
     pub card: CardText,
     /// Default output directory, resolved against the spec's directory.
@@ -107,9 +211,38 @@ pub struct Plan {
 }
 
 impl Plan {
-    /// The feature names, in order.
-    pub fn feature_names(&self) -> Vec<String> {
-        self.features.iter().map(|c| c.name.clone()).collect()
+    /// The text columns the data stage must read: label, id, split, group or time.
+    pub fn text_columns(&self) -> Vec<&Column> {
+        let mut out: Vec<&Column> = Vec::new();
+        out.extend(self.label.as_ref().map(|l| &l.column));
+        out.extend(self.id_column.iter());
+        match &self.split {
+            SplitPlan::Protocol { .. } => {}
+            SplitPlan::Groups { column, .. } | SplitPlan::Time { column, .. } => out.push(column),
+            SplitPlan::FromColumn { column, group } => {
+                out.push(column);
+                out.extend(group.iter());
+            }
+        }
+        out
+    }
+
+    /// The spec text (for caret rendering of errors found later).
+    pub fn spec_text(&self) -> String {
+        String::from_utf8_lossy(&self.spec_bytes).into_owned()
+    }
+
+    /// A spec error at a known place, found after parsing.
+    pub fn error_at(&self, at: &Location, field: &str, message: String) -> Error {
+        let text = self.spec_text();
+        spec_error(
+            &at.file,
+            &text,
+            at.line,
+            at.column,
+            field.to_string(),
+            message,
+        )
     }
 }
 
@@ -208,12 +341,38 @@ fn bare_message(e: &serde_saphyr::Error) -> String {
         }
     }
     let msg = msg.trim_end_matches('.').to_string();
-    // Serde spells "unknown field `x`, expected one of ..." already in our style.
     if msg.is_empty() {
-        "the spec could not be parsed".into()
-    } else {
-        msg
+        return "the spec could not be parsed".into();
     }
+    match suggestion(&msg) {
+        Some(s) => format!("{msg}; did you mean `{s}`?"),
+        None => msg,
+    }
+}
+
+/// For "unknown field `x`, expected one of a, b" (or "unknown variant"), the
+/// expected name closest to `x`, if it is close enough to be a likely typo.
+fn suggestion(msg: &str) -> Option<String> {
+    let rest = msg
+        .strip_prefix("unknown field ")
+        .or_else(|| msg.strip_prefix("unknown variant "))?;
+    let (got, expected) = rest.split_once(", expected ")?;
+    let got = got.trim_matches('`');
+    let expected = expected.strip_prefix("one of ").unwrap_or(expected);
+    closest(
+        got,
+        expected.split(", ").map(|e| e.trim().trim_matches('`')),
+    )
+}
+
+/// The candidate closest to `word` by Jaro-Winkler similarity, if at least
+/// 0.8 (a common cut-off for typos; picked, not tuned).
+pub fn closest<'a>(word: &str, candidates: impl Iterator<Item = &'a str>) -> Option<String> {
+    candidates
+        .map(|c| (strsim::jaro_winkler(word, c), c))
+        .filter(|(score, _)| *score >= 0.8)
+        .max_by(|a, b| a.0.total_cmp(&b.0).then(b.1.cmp(a.1)))
+        .map(|(_, c)| c.to_string())
 }
 
 fn spec_error(
@@ -246,30 +405,50 @@ struct Resolver<'a> {
     text: &'a str,
 }
 
+fn location_of<T>(path: &Path, s: &Spanned<T>) -> Location {
+    let l = s.referenced;
+    Location {
+        file: path.to_path_buf(),
+        line: (l.line() as usize).max(1),
+        column: (l.column() as usize).max(1),
+    }
+}
+
 impl Resolver<'_> {
-    fn at<T>(&self, s: &Spanned<T>) -> (usize, usize) {
-        let l = s.referenced;
-        (l.line() as usize, l.column() as usize)
+    fn loc<T>(&self, s: &Spanned<T>) -> Location {
+        location_of(self.path, s)
     }
 
     fn err<T>(&self, s: &Spanned<T>, field: &str, message: String) -> Error {
-        let (line, column) = self.at(s);
-        spec_error(self.path, self.text, line, column, field.into(), message)
+        let at = self.loc(s);
+        spec_error(
+            self.path,
+            self.text,
+            at.line,
+            at.column,
+            field.into(),
+            message,
+        )
     }
 
     fn column(&self, s: &Spanned<String>, field: String) -> Result<Column> {
-        let name = s.value.trim();
-        if name.is_empty() {
-            return Err(self.err(s, &field, "a column name must not be empty".into()));
+        self.column_at(&s.value, self.loc(s), field)
+    }
+
+    fn column_at(&self, name: &str, at: Location, field: String) -> Result<Column> {
+        if name.trim().is_empty() {
+            return Err(spec_error(
+                self.path,
+                self.text,
+                at.line,
+                at.column,
+                field,
+                "a column name must not be empty".into(),
+            ));
         }
-        let (line, column) = self.at(s);
         Ok(Column {
-            name: s.value.clone(),
-            at: Location {
-                file: self.path.to_path_buf(),
-                line,
-                column,
-            },
+            name: name.to_string(),
+            at,
             field,
         })
     }
@@ -296,6 +475,226 @@ impl Resolver<'_> {
         }
         Ok(())
     }
+
+    fn split_fractions(
+        &self,
+        field: &str,
+        normal: &Option<Spanned<NormalFractions>>,
+        anomaly: &Option<Spanned<AnomalyFractions>>,
+    ) -> Result<Fractions> {
+        let normal = match normal {
+            Some(s) => {
+                let v = s.value;
+                self.fractions(
+                    s,
+                    &format!("{field}.normal"),
+                    &[
+                        ("train", v.train),
+                        ("validation", v.validation),
+                        ("test", v.test),
+                    ],
+                )?;
+                [v.train, v.validation, v.test]
+            }
+            None => [0.6, 0.2, 0.2],
+        };
+        let anomaly = match anomaly {
+            Some(s) => {
+                let v = s.value;
+                self.fractions(
+                    s,
+                    &format!("{field}.anomaly"),
+                    &[("validation", v.validation), ("test", v.test)],
+                )?;
+                [v.validation, v.test]
+            }
+            None => [0.5, 0.5],
+        };
+        Ok(Fractions { normal, anomaly })
+    }
+
+    fn source(
+        &self,
+        s: &Spanned<String>,
+        field: &str,
+        implied: Option<bool>,
+    ) -> Result<SourcePlan> {
+        if s.value.trim().is_empty() {
+            return Err(self.err(s, field, "the data path is empty".into()));
+        }
+        let base = self.path.parent().unwrap_or(Path::new(""));
+        Ok(SourcePlan {
+            written: s.value.clone(),
+            resolved: base.join(&s.value),
+            at: self.loc(s),
+            field: field.into(),
+            implied,
+        })
+    }
+}
+
+/// Collects the numeric source columns in order of first mention.
+struct Columns(Vec<Column>);
+
+impl Columns {
+    fn index(&mut self, c: Column) -> usize {
+        match self.0.iter().position(|d| d.name == c.name) {
+            Some(i) => i,
+            None => {
+                self.0.push(c);
+                self.0.len() - 1
+            }
+        }
+    }
+}
+
+fn transform_name(t: TransformKind) -> &'static str {
+    match t {
+        TransformKind::Log => "log",
+        TransformKind::Log1p => "log1p",
+        TransformKind::Sqrt => "sqrt",
+        TransformKind::BoxCox => "box-cox",
+        TransformKind::YeoJohnson => "yeo-johnson",
+        TransformKind::Standardise => "standardise",
+    }
+}
+
+fn feature(
+    r: &Resolver<'_>,
+    cols: &mut Columns,
+    f: &Spanned<RawFeature>,
+    field: String,
+) -> Result<FeaturePlan> {
+    let at = r.loc(f);
+    let col = |cols: &mut Columns, name: &str, sub: &str| -> Result<usize> {
+        Ok(cols.index(r.column_at(name, at.clone(), format!("{field}{sub}"))?))
+    };
+    let (base_name, input, transforms, explicit) = match &f.value {
+        RawFeature::Column(name) => {
+            let i = col(cols, name, "")?;
+            (name.clone(), FeatureInput::Column(i), vec![], None)
+        }
+        RawFeature::Spelled(m) => {
+            let given = [
+                m.column.is_some(),
+                m.ratio.is_some(),
+                m.difference.is_some(),
+                m.product.is_some(),
+            ];
+            if given.iter().filter(|g| **g).count() != 1 {
+                return Err(r.err(
+                    f,
+                    &field,
+                    "a feature needs exactly one of `column`, `ratio`, `difference`, `product`"
+                        .into(),
+                ));
+            }
+            let pair = |cols: &mut Columns,
+                        p: &[String; 2],
+                        key: &str|
+             -> Result<(usize, usize, String, String)> {
+                if p[0] == p[1] {
+                    return Err(r.err(
+                        f,
+                        &format!("{field}.{key}"),
+                        format!(
+                            "a {key} needs two different columns, found `{}` twice",
+                            p[0]
+                        ),
+                    ));
+                }
+                let a = col(cols, &p[0], &format!(".{key}[0]"))?;
+                let b = col(cols, &p[1], &format!(".{key}[1]"))?;
+                Ok((a, b, p[0].clone(), p[1].clone()))
+            };
+            let (name, input) = if let Some(c) = &m.column {
+                (c.clone(), FeatureInput::Column(col(cols, c, ".column")?))
+            } else if let Some(p) = &m.ratio {
+                let (a, b, x, y) = pair(cols, p, "ratio")?;
+                (format!("{x}/{y}"), FeatureInput::Ratio(a, b))
+            } else if let Some(p) = &m.difference {
+                let (a, b, x, y) = pair(cols, p, "difference")?;
+                (format!("{x}-{y}"), FeatureInput::Difference(a, b))
+            } else {
+                let p = m.product.as_ref().expect("one of four is set");
+                let (a, b, x, y) = pair(cols, p, "product")?;
+                (format!("{x}*{y}"), FeatureInput::Product(a, b))
+            };
+            let transforms = m
+                .transform
+                .as_ref()
+                .map(OneOrMany::to_vec)
+                .unwrap_or_default();
+            if m.transform.is_some() && transforms.is_empty() {
+                return Err(r.err(
+                    f,
+                    &format!("{field}.transform"),
+                    "the transform list is empty".into(),
+                ));
+            }
+            (name, input, transforms, m.name.clone())
+        }
+    };
+    let name = match explicit {
+        Some(n) if n.trim().is_empty() => {
+            return Err(r.err(
+                f,
+                &format!("{field}.name"),
+                "a feature name must not be empty".into(),
+            ))
+        }
+        Some(n) => n,
+        None => transforms
+            .iter()
+            .fold(base_name, |acc, t| format!("{}({acc})", transform_name(*t))),
+    };
+    Ok(FeaturePlan {
+        name,
+        input,
+        transforms,
+        at,
+    })
+}
+
+fn feature_list(
+    r: &Resolver<'_>,
+    cols: &mut Columns,
+    list: &Spanned<Vec<Spanned<RawFeature>>>,
+    field: &str,
+    reserved: &[&Column],
+) -> Result<Vec<FeaturePlan>> {
+    if list.value.is_empty() {
+        return Err(r.err(list, field, "at least one feature is needed".into()));
+    }
+    let mut out: Vec<FeaturePlan> = Vec::new();
+    for (i, f) in list.value.iter().enumerate() {
+        let sub = format!("{field}[{i}]");
+        let p = feature(r, cols, f, sub.clone())?;
+        if out.iter().any(|g| g.name == p.name) {
+            return Err(r.err(f, &sub, format!("feature `{}` is listed twice", p.name)));
+        }
+        for c in reserved {
+            let uses = |i: usize| cols.0[i].name == c.name;
+            let hit = match p.input {
+                FeatureInput::Column(a) => uses(a),
+                FeatureInput::Ratio(a, b)
+                | FeatureInput::Difference(a, b)
+                | FeatureInput::Product(a, b) => uses(a) || uses(b),
+            };
+            if hit {
+                return Err(r.err(
+                    f,
+                    &sub,
+                    format!(
+                        "`{}` is already used as {} and cannot be a feature",
+                        c.name, c.field
+                    ),
+                ));
+            }
+        }
+        out.push(p);
+    }
+    Ok(out)
 }
 
 /// Checks the meaning of a parsed spec and fills in defaults.
@@ -312,107 +711,186 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
         ));
     }
     let base = path.parent().unwrap_or(Path::new(""));
-
     let data = &raw.data;
-    if data.path.value.trim().is_empty() {
-        return Err(r.err(&data.path, "data.path", "the data path is empty".into()));
-    }
-    let data_path = base.join(&data.path.value);
-    let label = r.column(&data.label.column, "data.label.column".into())?;
-    let normal_value = data.label.normal.value.as_text();
-    let anomaly_value = data.label.anomaly.value.as_text();
-    if normal_value == anomaly_value {
-        return Err(r.err(
-            &data.label.anomaly,
-            "data.label.anomaly",
-            format!("the anomaly value `{anomaly_value}` equals the normal value"),
-        ));
-    }
+
+    // Sources and labels.
+    let (sources, label) =
+        match (&data.path, &data.normal_path, &data.anomaly_path) {
+            (Some(p), None, None) => {
+                let l = data.label.as_ref().ok_or_else(|| {
+                    r.err(
+                        p,
+                        "data.label",
+                        "a labelled source needs `label` (column, normal, anomaly)".into(),
+                    )
+                })?;
+                let column = r.column(&l.column, "data.label.column".into())?;
+                let normal = l.normal.value.as_text();
+                let anomaly = l.anomaly.value.as_text();
+                if normal == anomaly {
+                    return Err(r.err(
+                        &l.anomaly,
+                        "data.label.anomaly",
+                        format!("the anomaly value `{anomaly}` equals the normal value"),
+                    ));
+                }
+                (
+                    vec![r.source(p, "data.path", None)?],
+                    Some(LabelPlan {
+                        column,
+                        normal,
+                        anomaly,
+                    }),
+                )
+            }
+            (None, Some(n), Some(a)) => {
+                if let Some(l) = &data.label {
+                    return Err(r.err(
+                    &l.column,
+                    "data.label",
+                    "with `normal-path` and `anomaly-path` the label is implied by the source; \
+                     remove `label`"
+                        .into(),
+                ));
+                }
+                (
+                    vec![
+                        r.source(n, "data.normal-path", Some(false))?,
+                        r.source(a, "data.anomaly-path", Some(true))?,
+                    ],
+                    None,
+                )
+            }
+            (Some(p), _, _) => return Err(r.err(
+                p,
+                "data.path",
+                "give either `path` (one labelled source) or `normal-path` and `anomaly-path`, \
+                 not both"
+                    .into(),
+            )),
+            (None, Some(s), None) | (None, None, Some(s)) => {
+                return Err(r.err(
+                    s,
+                    "data",
+                    "`normal-path` and `anomaly-path` go together".into(),
+                ))
+            }
+            (None, None, None) => return Err(r.err(
+                &raw.format,
+                "data",
+                "no data source: give `data.path`, or `data.normal-path` and `data.anomaly-path`"
+                    .into(),
+            )),
+        };
     let id_column = match &data.id_column {
         Some(s) => Some(r.column(s, "data.id-column".into())?),
         None => None,
     };
-    if data.features.value.is_empty() {
-        return Err(r.err(
-            &data.features,
-            "data.features",
-            "at least one feature column is needed".into(),
-        ));
-    }
-    let mut features: Vec<Column> = Vec::new();
-    for (i, f) in data.features.value.iter().enumerate() {
-        let c = r.column(f, format!("data.features[{i}]"))?;
-        if features.iter().any(|g| g.name == c.name) {
-            return Err(r.err(f, &c.field, format!("feature `{}` is listed twice", c.name)));
-        }
-        if c.name == label.name {
-            return Err(r.err(
-                f,
-                &c.field,
-                format!("`{}` is the label column and cannot be a feature", c.name),
-            ));
-        }
-        if id_column.as_ref().is_some_and(|id| id.name == c.name) {
-            return Err(r.err(
-                f,
-                &c.field,
-                format!("`{}` is the id column and cannot be a feature", c.name),
-            ));
-        }
-        features.push(c);
-    }
 
     let split = match &raw.split {
-        RawSplit::Protocol(p) => {
-            let normal = match &p.normal {
-                Some(s) => {
-                    let v = s.value;
-                    r.fractions(
-                        s,
-                        "split.protocol.normal",
-                        &[
-                            ("train", v.train),
-                            ("validation", v.validation),
-                            ("test", v.test),
-                        ],
-                    )?;
-                    [v.train, v.validation, v.test]
-                }
-                None => [0.6, 0.2, 0.2],
-            };
-            let anomaly = match &p.anomaly {
-                Some(s) => {
-                    let v = s.value;
-                    r.fractions(
-                        s,
-                        "split.protocol.anomaly",
-                        &[("validation", v.validation), ("test", v.test)],
-                    )?;
-                    [v.validation, v.test]
-                }
-                None => [0.5, 0.5],
-            };
-            SplitPlan::Protocol {
-                seed: Seed(p.seed),
-                normal,
-                anomaly,
-            }
-        }
+        RawSplit::Protocol(p) => SplitPlan::Protocol {
+            seed: Seed(p.seed),
+            fractions: r.split_fractions("split.protocol", &p.normal, &p.anomaly)?,
+        },
+        RawSplit::Groups(g) => SplitPlan::Groups {
+            column: r.column(&g.column, "split.groups.column".into())?,
+            seed: Seed(g.seed),
+            fractions: r.split_fractions("split.groups", &g.normal, &g.anomaly)?,
+        },
+        RawSplit::Time(t) => SplitPlan::Time {
+            column: r.column(&t.column, "split.time.column".into())?,
+            fractions: r.split_fractions("split.time", &t.normal, &t.anomaly)?,
+        },
         RawSplit::FromColumn(s) => {
-            let c = r.column(s, "split.from-column".into())?;
-            for other in std::iter::once(&label)
-                .chain(features.iter())
-                .chain(id_column.iter())
-            {
-                if other.name == c.name {
+            let at = r.loc(s);
+            let column = r.column_at(&s.value.0.column, at.clone(), "split.from-column".into())?;
+            let group = match &s.value.0.group_column {
+                Some(g) => Some(r.column_at(g, at, "split.from-column.group-column".into())?),
+                None => None,
+            };
+            SplitPlan::FromColumn { column, group }
+        }
+    };
+
+    // Text columns may not double as one another or as features.
+    let mut text_cols: Vec<&Column> = Vec::new();
+    text_cols.extend(label.as_ref().map(|l| &l.column));
+    text_cols.extend(id_column.iter());
+    match &split {
+        SplitPlan::Protocol { .. } => {}
+        SplitPlan::Groups { column, .. } | SplitPlan::Time { column, .. } => text_cols.push(column),
+        SplitPlan::FromColumn { column, group } => {
+            text_cols.push(column);
+            text_cols.extend(group.iter());
+        }
+    }
+    for (i, a) in text_cols.iter().enumerate() {
+        if let Some(b) = text_cols[..i].iter().find(|b| b.name == a.name) {
+            return Err(r.err_at(a, format!("`{}` is already used as {}", a.name, b.field)));
+        }
+    }
+
+    // Features.
+    let mut cols = Columns(Vec::new());
+    let feature_sets = match (&data.features, &data.feature_sets) {
+        (Some(list), None) => vec![FeatureSetPlan {
+            name: "features".into(),
+            named: false,
+            features: feature_list(&r, &mut cols, list, "data.features", &text_cols)?,
+        }],
+        (None, Some(sets)) => {
+            if sets.value.is_empty() {
+                return Err(r.err(
+                    sets,
+                    "data.feature-sets",
+                    "at least one feature set is needed".into(),
+                ));
+            }
+            let mut out: Vec<FeatureSetPlan> = Vec::new();
+            for (i, set) in sets.value.iter().enumerate() {
+                let field = format!("data.feature-sets[{i}]");
+                let name = set.name.value.trim();
+                if name.is_empty() || name.contains(['/', ',', '"']) {
                     return Err(r.err(
-                        s,
-                        "split.from-column",
-                        format!("`{}` is already used as {}", c.name, other.field),
+                        &set.name,
+                        &format!("{field}.name"),
+                        "a feature-set name must be non-empty, without `/`, `,` or `\"`".into(),
                     ));
                 }
+                if out.iter().any(|o| o.name == name) {
+                    return Err(r.err(
+                        &set.name,
+                        &format!("{field}.name"),
+                        format!("feature set `{name}` is named twice"),
+                    ));
+                }
+                out.push(FeatureSetPlan {
+                    name: name.to_string(),
+                    named: true,
+                    features: feature_list(
+                        &r,
+                        &mut cols,
+                        &set.features,
+                        &format!("{field}.features"),
+                        &text_cols,
+                    )?,
+                });
             }
-            SplitPlan::FromColumn(c)
+            out
+        }
+        (Some(list), Some(_)) => {
+            return Err(r.err(
+                list,
+                "data.features",
+                "give either `features` or `feature-sets`, not both".into(),
+            ))
+        }
+        (None, None) => {
+            return Err(r.err(
+                &raw.format,
+                "data",
+                "no features: give `data.features` or `data.feature-sets`".into(),
+            ))
         }
     };
 
@@ -435,6 +913,25 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
         detectors.push(*d);
     }
 
+    let threshold = match &raw.threshold {
+        None => ThresholdPolicy::MaxF1,
+        Some(t) => {
+            check_policy(&r, t)?;
+            t.value
+        }
+    };
+
+    let selection = raw.selection.map_or(SelectionMetric::F1, |s| s.metric);
+    if selection == SelectionMetric::FBeta && !matches!(threshold, ThresholdPolicy::MaxFBeta { .. })
+    {
+        return Err(r.err(
+            &raw.format,
+            "selection.metric",
+            "`f-beta` ranks by the β of the `max-f-beta` threshold policy; declare that policy"
+                .into(),
+        ));
+    }
+
     let card = &raw.card;
     if card.title.value.trim().is_empty() {
         return Err(r.err(&card.title, "card.title", "the card title is empty".into()));
@@ -452,16 +949,20 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
     Ok(Plan {
         spec_path: path.to_path_buf(),
         spec_bytes: bytes.to_vec(),
-        data_path,
-        data_path_as_written: data.path.value.clone(),
+        sources,
         label,
-        normal_value,
-        anomaly_value,
         id_column,
-        features,
+        missing: data.missing_values,
+        columns: cols.0,
+        feature_sets,
         split,
         detectors,
-        threshold: raw.threshold,
+        threshold,
+        selection,
+        bootstrap: crate::metrics::BootstrapPlan {
+            replicates: raw.bootstrap.map_or(1000, |b| b.replicates),
+            seed: raw.bootstrap.map_or(1, |b| b.seed),
+        },
         card: CardText {
             title: card.title.value.clone(),
             owner: card.owner.clone(),
@@ -471,6 +972,75 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
         },
         output: raw.output.as_ref().map(|o| base.join(&o.value)),
     })
+}
+
+fn check_policy(r: &Resolver<'_>, t: &Spanned<ThresholdPolicy>) -> Result<()> {
+    let unit = |v: f64, name: &str| -> Result<()> {
+        if v.is_finite() && (0.0..=1.0).contains(&v) {
+            Ok(())
+        } else {
+            Err(r.err(
+                t,
+                &format!("threshold.{name}"),
+                format!("`{name}` must lie between 0 and 1, found `{v}`"),
+            ))
+        }
+    };
+    match t.value {
+        ThresholdPolicy::MaxF1 => Ok(()),
+        ThresholdPolicy::MaxFBeta { beta } => {
+            if beta.is_finite() && beta > 0.0 {
+                Ok(())
+            } else {
+                Err(r.err(
+                    t,
+                    "threshold.max-f-beta.beta",
+                    format!("β must be a positive number, found `{beta}`"),
+                ))
+            }
+        }
+        ThresholdPolicy::AlarmBudget {
+            max_false_positive_rate,
+        } => unit(max_false_positive_rate, "max-false-positive-rate"),
+        ThresholdPolicy::RecallTarget { min_recall } => unit(min_recall, "min-recall"),
+        ThresholdPolicy::PrecisionTarget { min_precision } => unit(min_precision, "min-precision"),
+        ThresholdPolicy::MinCost {
+            missed_anomaly,
+            false_alarm,
+        } => {
+            let ok = |c: f64| c.is_finite() && c >= 0.0;
+            if ok(missed_anomaly) && ok(false_alarm) && missed_anomaly + false_alarm > 0.0 {
+                Ok(())
+            } else {
+                Err(r.err(
+                    t,
+                    "threshold.min-cost",
+                    "both costs must be ≥ 0 and not both 0".into(),
+                ))
+            }
+        }
+        ThresholdPolicy::Fixed { tau, ln_epsilon } => match (tau, ln_epsilon) {
+            (Some(v), None) | (None, Some(v)) if v.is_finite() => Ok(()),
+            _ => Err(r.err(
+                t,
+                "threshold.fixed",
+                "give exactly one finite `tau` or `ln-epsilon`".into(),
+            )),
+        },
+    }
+}
+
+impl Resolver<'_> {
+    fn err_at(&self, c: &Column, message: String) -> Error {
+        spec_error(
+            self.path,
+            self.text,
+            c.at.line,
+            c.at.column,
+            c.field.clone(),
+            message,
+        )
+    }
 }
 
 /// The JSON Schema of the spec, as pretty JSON with a trailing newline.
@@ -528,23 +1098,74 @@ card:
     #[test]
     fn good_spec_resolves_with_defaults() {
         let p = parse(Path::new("dir/spec.yaml"), GOOD.as_bytes().to_vec()).unwrap();
-        assert_eq!(p.data_path, Path::new("dir/d.csv"));
-        assert_eq!(p.feature_names(), ["a", "b"]);
+        assert_eq!(p.sources[0].resolved, Path::new("dir/d.csv"));
+        assert_eq!(p.feature_sets.len(), 1);
+        assert_eq!(p.feature_sets[0].names(), ["a", "b"]);
+        assert!(!p.feature_sets[0].named);
         match p.split {
-            SplitPlan::Protocol {
-                seed,
-                normal,
-                anomaly,
-            } => {
+            SplitPlan::Protocol { seed, fractions } => {
                 assert_eq!(seed, Seed(7));
-                assert_eq!(normal, [0.6, 0.2, 0.2]);
-                assert_eq!(anomaly, [0.5, 0.5]);
+                assert_eq!(fractions.normal, [0.6, 0.2, 0.2]);
+                assert_eq!(fractions.anomaly, [0.5, 0.5]);
             }
             _ => panic!("protocol split expected"),
         }
         assert_eq!(p.threshold, ThresholdPolicy::MaxF1);
+        assert_eq!(p.missing, MissingPolicy::Refuse);
         assert!(p.card.safety_caution.is_none());
     }
+
+    #[test]
+    fn derived_features_and_sets_share_one_column_list() {
+        let yaml = GOOD.replace(
+            "  features: [a, b]\n",
+            "  feature-sets:\n    - name: plain\n      features: [a, b]\n    - name: ratio\n      features:\n        - a\n        - {ratio: [b, c], transform: [log, standardise]}\n        - {column: c, transform: box-cox, name: c-bc}\n",
+        );
+        let p = parse(Path::new("s.yaml"), yaml.into_bytes()).unwrap();
+        let cols: Vec<&str> = p.columns.iter().map(|c| c.name.as_str()).collect();
+        assert_eq!(cols, ["a", "b", "c"]);
+        assert_eq!(
+            p.feature_sets[1].names(),
+            ["a", "standardise(log(b/c))", "c-bc"]
+        );
+        assert_eq!(
+            p.feature_sets[1].features[1].input,
+            FeatureInput::Ratio(1, 2)
+        );
+        assert!(p.feature_sets[1].named);
+    }
+
+    #[test]
+    fn separate_sources_imply_the_label() {
+        let yaml = GOOD.replace(
+            "  path: d.csv\n  label:\n    column: y\n    normal: ok\n    anomaly: bad\n",
+            "  normal-path: normal/*.parquet\n  anomaly-path: bad.csv\n",
+        );
+        let p = parse(Path::new("s.yaml"), yaml.into_bytes()).unwrap();
+        assert!(p.label.is_none());
+        assert_eq!(p.sources[0].implied, Some(false));
+        assert_eq!(p.sources[1].implied, Some(true));
+    }
+
+    spec_error!(label_with_separate_sources_is_refused,
+        yaml: GOOD.replace("  path: d.csv\n", "  normal-path: n.csv\n  anomaly-path: a.csv\n"),
+        line: 6, field: "data.label", says: "implied by the source");
+
+    spec_error!(unknown_key_gets_a_suggestion,
+        yaml: GOOD.replace("  owner: o\n", "  owner: o\n  intended-uses: x\n"),
+        line: 16, field: "card.intended-uses", says: "did you mean `intended-use`?");
+
+    spec_error!(derived_feature_needs_one_input,
+        yaml: GOOD.replace("[a, b]", "[a, {ratio: [a, b], column: c}]"),
+        line: 8, field: "data.features[1]", says: "exactly one of");
+
+    spec_error!(ratio_of_a_column_with_itself,
+        yaml: GOOD.replace("[a, b]", "[a, {ratio: [b, b]}]"),
+        line: 8, field: "data.features[1].ratio", says: "two different columns");
+
+    spec_error!(group_split_column_cannot_be_a_feature,
+        yaml: GOOD.replace("  protocol:\n    seed: 7\n", "  groups:\n    column: a\n    seed: 7\n"),
+        line: 8, field: "data.features[0]", says: "`a` is already used as split.groups.column");
 
     spec_error!(unknown_key_is_refused,
         yaml: GOOD.replace("  owner: o\n", "  owner: o\n  colour: red\n"),
@@ -595,10 +1216,18 @@ card:
                 .into_bytes(),
         )
         .unwrap();
+        let l = p.label.unwrap();
+        assert_eq!((l.normal.as_str(), l.anomaly.as_str()), ("0", "1"));
+    }
+
+    #[test]
+    fn closest_name_needs_real_similarity() {
+        let names = ["train", "validation", "test"];
         assert_eq!(
-            (p.normal_value.as_str(), p.anomaly_value.as_str()),
-            ("0", "1")
+            closest("validaton", names.iter().copied()).as_deref(),
+            Some("validation")
         );
+        assert_eq!(closest("zebra", names.iter().copied()), None);
     }
 
     #[test]

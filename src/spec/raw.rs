@@ -2,10 +2,16 @@
 //!
 //! Nothing here checks meaning (fractions that sum to one, distinct columns):
 //! that is [`super::resolve`]'s job. Fields whose later checks need a position
-//! are [`Spanned`], so an error can point at the value itself.
+//! are [`Spanned`], so an error can point at the value itself. Values that may
+//! be written in two forms (a feature as a column name or as a map) have a
+//! hand-written `Deserialize` that reads both without buffering, so that their
+//! positions survive.
+
+use std::fmt;
 
 use schemars::JsonSchema;
-use serde::Deserialize;
+use serde::de::{self, MapAccess, Visitor};
+use serde::{Deserialize, Deserializer};
 use serde_saphyr::Spanned;
 
 /// The spec file as written. Format version 1.
@@ -26,9 +32,16 @@ pub struct RawSpec {
     /// The candidate detectors, compared on validation.
     #[schemars(with = "Vec<DetectorKind>")]
     pub detectors: Spanned<Vec<DetectorKind>>,
-    /// How each candidate's threshold is chosen on validation.
+    /// How each candidate's threshold is chosen on validation (default `max-f1`).
     #[serde(default)]
-    pub threshold: ThresholdPolicy,
+    #[schemars(with = "Option<ThresholdPolicy>")]
+    pub threshold: Option<Spanned<ThresholdPolicy>>,
+    /// The validation metric that ranks the candidates (default F1).
+    #[serde(default)]
+    pub selection: Option<RawSelection>,
+    /// The seeded bootstrap behind the F1, AP and AUC intervals.
+    #[serde(default)]
+    pub bootstrap: Option<RawBootstrap>,
     /// Text for the model card.
     pub card: RawCard,
     /// Default output directory, relative to the spec file (`--out` overrides it).
@@ -37,22 +50,169 @@ pub struct RawSpec {
     pub output: Option<Spanned<String>>,
 }
 
-/// One labelled CSV source.
+/// The sources and the columns that matter.
 #[derive(Debug, Deserialize, JsonSchema)]
 #[serde(rename_all = "kebab-case", deny_unknown_fields)]
 pub struct RawData {
-    /// CSV file, relative to the spec file.
-    #[schemars(with = "String")]
-    pub path: Spanned<String>,
-    /// The label column and its two values.
-    pub label: RawLabel,
+    /// One labelled source: a CSV or Parquet file, a glob such as
+    /// `parts/*.parquet`, or a directory of Parquet files; relative to the spec.
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub path: Option<Spanned<String>>,
+    /// With separate sources: the normal examples (the label is implied).
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub normal_path: Option<Spanned<String>>,
+    /// With separate sources: the known anomalies (the label is implied).
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub anomaly_path: Option<Spanned<String>>,
+    /// The label column and its two values (one labelled source only).
+    #[serde(default)]
+    pub label: Option<RawLabel>,
     /// An optional column that identifies each row (echoed in scores.csv).
     #[serde(default)]
     #[schemars(with = "Option<String>")]
     pub id_column: Option<Spanned<String>>,
-    /// The numeric feature columns, in the order the detectors see them.
-    #[schemars(with = "Vec<String>")]
-    pub features: Spanned<Vec<Spanned<String>>>,
+    /// What to do with a row whose feature value is missing.
+    #[serde(default)]
+    pub missing_values: MissingPolicy,
+    /// The features, in the order the detectors see them (one feature set).
+    #[serde(default)]
+    #[schemars(with = "Option<Vec<FeatureSchema>>")]
+    pub features: Option<Spanned<Vec<Spanned<RawFeature>>>>,
+    /// Several named feature sets, each compared with every detector.
+    #[serde(default)]
+    #[schemars(with = "Option<Vec<RawFeatureSet>>")]
+    pub feature_sets: Option<Spanned<Vec<RawFeatureSet>>>,
+}
+
+/// What to do with a row whose feature value is missing.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum MissingPolicy {
+    /// Stop the run, naming the rows (the default).
+    #[default]
+    Refuse,
+    /// Leave the row out; the counts left out are recorded.
+    DropRow,
+}
+
+/// A named feature set.
+#[derive(Debug, Deserialize, JsonSchema)]
+#[serde(rename_all = "kebab-case", deny_unknown_fields)]
+pub struct RawFeatureSet {
+    /// The set's name, used in candidate names (`set/detector`).
+    #[schemars(with = "String")]
+    pub name: Spanned<String>,
+    /// Its features.
+    #[schemars(with = "Vec<FeatureSchema>")]
+    pub features: Spanned<Vec<Spanned<RawFeature>>>,
+}
+
+/// A feature: a column name, or a map with a column or a derivation and
+/// optional transforms.
+#[derive(Debug, Clone)]
+pub enum RawFeature {
+    /// A numeric column, used as it is.
+    Column(String),
+    /// A column or derived value with optional transforms.
+    Spelled(RawFeatureMap),
+}
+
+/// The schema of [`RawFeature`] (the type itself has a hand-written reader).
+#[derive(JsonSchema)]
+#[serde(untagged)]
+#[allow(dead_code)]
+pub enum FeatureSchema {
+    /// A numeric column, used as it is.
+    Column(String),
+    /// A column or derived value with optional transforms.
+    Spelled(RawFeatureMap),
+}
+
+/// A feature written as a map.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(rename_all = "kebab-case", deny_unknown_fields)]
+pub struct RawFeatureMap {
+    /// The feature's name (default: the column, or `a/b`, `a-b`, `a*b`).
+    #[serde(default)]
+    pub name: Option<String>,
+    /// A numeric column.
+    #[serde(default)]
+    pub column: Option<String>,
+    /// The ratio of two columns, `[numerator, denominator]`.
+    #[serde(default)]
+    pub ratio: Option<[String; 2]>,
+    /// The difference of two columns, `[a, b]` for a − b.
+    #[serde(default)]
+    pub difference: Option<[String; 2]>,
+    /// The product of two columns.
+    #[serde(default)]
+    pub product: Option<[String; 2]>,
+    /// Transforms applied in order, each fitted on the training rows only.
+    #[serde(default)]
+    pub transform: Option<OneOrMany<TransformKind>>,
+}
+
+/// One value or a list of values.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(untagged)]
+pub enum OneOrMany<T> {
+    /// A single value.
+    One(T),
+    /// A list.
+    Many(Vec<T>),
+}
+
+impl<T: Clone> OneOrMany<T> {
+    /// The values as a list.
+    pub fn to_vec(&self) -> Vec<T> {
+        match self {
+            OneOrMany::One(t) => vec![t.clone()],
+            OneOrMany::Many(v) => v.clone(),
+        }
+    }
+}
+
+/// A feature transform.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum TransformKind {
+    /// ln x (x > 0).
+    Log,
+    /// ln(1 + x) (x > −1).
+    Log1p,
+    /// √x (x ≥ 0).
+    Sqrt,
+    /// Box-Cox with λ by maximum likelihood on train (x > 0).
+    BoxCox,
+    /// Yeo-Johnson with λ by maximum likelihood on train (any x).
+    YeoJohnson,
+    /// (x − mean) / standard deviation of train.
+    Standardise,
+}
+
+impl<'de> Deserialize<'de> for RawFeature {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct V;
+        impl<'de> Visitor<'de> for V {
+            type Value = RawFeature;
+            fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+                f.write_str(
+                    "a column name or a map with `column`, `ratio`, `difference` or `product`",
+                )
+            }
+            fn visit_str<E: de::Error>(self, s: &str) -> Result<RawFeature, E> {
+                Ok(RawFeature::Column(s.to_string()))
+            }
+            fn visit_map<A: MapAccess<'de>>(self, map: A) -> Result<RawFeature, A::Error> {
+                RawFeatureMap::deserialize(de::value::MapAccessDeserializer::new(map))
+                    .map(RawFeature::Spelled)
+            }
+        }
+        d.deserialize_any(V)
+    }
 }
 
 /// The label column and which of its values mean normal and anomaly.
@@ -93,18 +253,22 @@ impl Scalar {
     }
 }
 
-/// The split: the seeded protocol split, or a column that fixes it.
+/// The split method.
 #[derive(Debug, Deserialize, JsonSchema)]
 #[serde(rename_all = "kebab-case", deny_unknown_fields)]
 pub enum RawSplit {
     /// Seeded, stratified, content-hashed split of the labelled rows.
     Protocol(RawProtocol),
+    /// Like `protocol`, but every row of a group (a die, a batch) lands in one split.
+    Groups(RawGroups),
+    /// Train before validation before test along a time column.
+    Time(RawTime),
     /// A column whose values are `train`, `validation` or `test`.
-    #[schemars(with = "String")]
-    FromColumn(Spanned<String>),
+    #[schemars(with = "FromColumnSchema")]
+    FromColumn(Spanned<RawFromColumn>),
 }
 
-/// The protocol split's seed and fractions.
+/// The seed and fractions of the protocol split.
 #[derive(Debug, Deserialize, JsonSchema)]
 #[serde(rename_all = "kebab-case", deny_unknown_fields)]
 pub struct RawProtocol {
@@ -118,6 +282,92 @@ pub struct RawProtocol {
     #[serde(default)]
     #[schemars(with = "Option<AnomalyFractions>")]
     pub anomaly: Option<Spanned<AnomalyFractions>>,
+}
+
+/// The group-aware split.
+#[derive(Debug, Deserialize, JsonSchema)]
+#[serde(rename_all = "kebab-case", deny_unknown_fields)]
+pub struct RawGroups {
+    /// The column naming each row's group.
+    #[schemars(with = "String")]
+    pub column: Spanned<String>,
+    /// The seed that alone determines the split.
+    pub seed: u64,
+    /// Fractions of the normal rows (default 0.6 / 0.2 / 0.2).
+    #[serde(default)]
+    #[schemars(with = "Option<NormalFractions>")]
+    pub normal: Option<Spanned<NormalFractions>>,
+    /// Fractions of the anomalous rows (default 0.5 / 0.5).
+    #[serde(default)]
+    #[schemars(with = "Option<AnomalyFractions>")]
+    pub anomaly: Option<Spanned<AnomalyFractions>>,
+}
+
+/// The time-ordered split.
+#[derive(Debug, Deserialize, JsonSchema)]
+#[serde(rename_all = "kebab-case", deny_unknown_fields)]
+pub struct RawTime {
+    /// The time column: numbers, or text that sorts in time order (ISO 8601).
+    #[schemars(with = "String")]
+    pub column: Spanned<String>,
+    /// Fractions of the normal rows, earliest first (default 0.6 / 0.2 / 0.2).
+    #[serde(default)]
+    #[schemars(with = "Option<NormalFractions>")]
+    pub normal: Option<Spanned<NormalFractions>>,
+    /// Fractions of the anomalous rows, earliest to validation (default 0.5 / 0.5).
+    #[serde(default)]
+    #[schemars(with = "Option<AnomalyFractions>")]
+    pub anomaly: Option<Spanned<AnomalyFractions>>,
+}
+
+/// A fixed split: the column, and optionally a group column whose groups must
+/// each sit in one split.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(rename_all = "kebab-case", deny_unknown_fields)]
+pub struct RawFromColumnMap {
+    /// The split column.
+    pub column: String,
+    /// A group column: a group found in two splits is refused.
+    #[serde(default)]
+    pub group_column: Option<String>,
+}
+
+/// The fixed split as written: a column name or a map.
+#[derive(Debug, Clone)]
+pub struct RawFromColumn(pub RawFromColumnMap);
+
+/// The schema of [`RawFromColumn`].
+#[derive(JsonSchema)]
+#[serde(untagged)]
+#[allow(dead_code)]
+pub enum FromColumnSchema {
+    /// The split column.
+    Column(String),
+    /// The split column and a group column.
+    WithGroups(RawFromColumnMap),
+}
+
+impl<'de> Deserialize<'de> for RawFromColumn {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct V;
+        impl<'de> Visitor<'de> for V {
+            type Value = RawFromColumn;
+            fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+                f.write_str("a column name or a map with `column` and `group-column`")
+            }
+            fn visit_str<E: de::Error>(self, s: &str) -> Result<RawFromColumn, E> {
+                Ok(RawFromColumn(RawFromColumnMap {
+                    column: s.to_string(),
+                    group_column: None,
+                }))
+            }
+            fn visit_map<A: MapAccess<'de>>(self, map: A) -> Result<RawFromColumn, A::Error> {
+                RawFromColumnMap::deserialize(de::value::MapAccessDeserializer::new(map))
+                    .map(RawFromColumn)
+            }
+        }
+        d.deserialize_any(V)
+    }
 }
 
 /// Fractions of the normal rows; they must sum to 1.
@@ -153,12 +403,105 @@ pub enum DetectorKind {
 }
 
 /// How a threshold is chosen on validation.
-#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, JsonSchema)]
+#[derive(Debug, Clone, Copy, Default, PartialEq, Deserialize, JsonSchema, serde::Serialize)]
 #[serde(rename_all = "kebab-case", deny_unknown_fields)]
 pub enum ThresholdPolicy {
     /// The threshold with the highest F1 on validation.
     #[default]
     MaxF1,
+    /// The threshold with the highest Fβ (β > 1 weighs recall more).
+    MaxFBeta {
+        /// β > 0.
+        beta: f64,
+    },
+    /// The highest recall whose false-positive rate on validation normals is
+    /// at most the budget.
+    #[serde(rename_all = "kebab-case")]
+    AlarmBudget {
+        /// The largest acceptable false-positive rate, in [0, 1].
+        max_false_positive_rate: f64,
+    },
+    /// The lowest false-positive rate whose recall is at least the target.
+    #[serde(rename_all = "kebab-case")]
+    RecallTarget {
+        /// The smallest acceptable recall, in [0, 1].
+        min_recall: f64,
+    },
+    /// The highest recall whose precision is at least the target.
+    #[serde(rename_all = "kebab-case")]
+    PrecisionTarget {
+        /// The smallest acceptable precision, in [0, 1].
+        min_precision: f64,
+    },
+    /// The lowest expected cost: missed anomalies and false alarms, each at its cost.
+    #[serde(rename_all = "kebab-case")]
+    MinCost {
+        /// Cost of one missed anomaly.
+        missed_anomaly: f64,
+        /// Cost of one false alarm.
+        false_alarm: f64,
+    },
+    /// A threshold declared by the user: τ, or ln ε (= −τ).
+    #[serde(rename_all = "kebab-case")]
+    Fixed {
+        /// τ: flag iff s(x) > τ.
+        #[serde(default)]
+        tau: Option<f64>,
+        /// ln ε: flag iff ln p(x) < ln ε.
+        #[serde(default)]
+        ln_epsilon: Option<f64>,
+    },
+}
+
+/// How candidates are ranked on validation.
+#[derive(Debug, Clone, Copy, Deserialize, JsonSchema)]
+#[serde(rename_all = "kebab-case", deny_unknown_fields)]
+pub struct RawSelection {
+    /// The validation metric; higher is better.
+    pub metric: SelectionMetric,
+}
+
+/// A validation metric that ranks candidates.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum SelectionMetric {
+    /// F1 at each candidate's threshold.
+    #[default]
+    F1,
+    /// Fβ at each candidate's threshold (β of the `max-f-beta` policy).
+    FBeta,
+    /// Precision at each candidate's threshold.
+    Precision,
+    /// Recall at each candidate's threshold.
+    Recall,
+    /// Matthews correlation at each candidate's threshold.
+    Mcc,
+    /// Balanced accuracy at each candidate's threshold.
+    BalancedAccuracy,
+    /// Average precision (threshold-free).
+    AveragePrecision,
+    /// ROC AUC (threshold-free).
+    RocAuc,
+}
+
+/// The bootstrap's size and seed.
+#[derive(Debug, Clone, Copy, Deserialize, JsonSchema)]
+#[serde(rename_all = "kebab-case", deny_unknown_fields)]
+pub struct RawBootstrap {
+    /// Replicates (default 1000; 0 turns the bootstrap intervals off).
+    #[serde(default = "default_replicates")]
+    pub replicates: u32,
+    /// Seed (default 1).
+    #[serde(default = "default_boot_seed")]
+    pub seed: u64,
+}
+
+fn default_replicates() -> u32 {
+    1000
+}
+
+fn default_boot_seed() -> u64 {
+    1
 }
 
 /// Text for the model card.

@@ -100,3 +100,40 @@ fn known_anomaly_in_train_is_refused() {
         .run_spec()
         .fails(3, &["known anomaly", "`train`", "line 53"]);
 }
+
+#[test]
+fn a_group_in_two_fixed_splits_is_refused() {
+    let r = rows(200, 10, 9);
+    let parts = parts_for(&r);
+    // Group = row index / 7: groups straddle the parts that parts_for cycles through.
+    let body = with_split_column(&r, &parts);
+    let mut out = String::new();
+    for (i, line) in body.lines().enumerate() {
+        out.push_str(line);
+        out.push(',');
+        if i == 0 {
+            out.push_str("die");
+        } else {
+            out.push_str(&format!("d{}", (i - 1) / 7));
+        }
+        out.push('\n');
+    }
+    Case::new()
+        .file("data.csv", out)
+        .file(
+            "spec.yaml",
+            spec(
+                &["a", "b", "c"],
+                "  from-column: {column: split, group-column: die}",
+            ),
+        )
+        .keys()
+        .run_spec()
+        .fails(
+            3,
+            &[
+                "column `die`",
+                "group `d0` is in both `validation` (data.csv line 2) and `test` (data.csv line 3)",
+            ],
+        );
+}

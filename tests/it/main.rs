@@ -3,10 +3,15 @@
 
 mod util;
 
+mod check;
 mod cli;
 mod determinism;
 mod errors;
 mod examples;
+mod featuresets;
+mod fuzz;
 mod leakage;
+mod schema;
 mod signing;
+mod sources;
 mod splits;

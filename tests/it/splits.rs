@@ -20,7 +20,7 @@ fn protocol_split_counts_are_exact() {
     assert_eq!(counts["validation"]["anomaly"], 10);
     assert_eq!(counts["test"]["normal"], 2000);
     assert_eq!(counts["test"]["anomaly"], 10);
-    assert_eq!(run["split"]["rows-moved-with-identical-rows"], 0);
+    assert_eq!(run["split"]["rows-off-requested-counts"], 0);
     // scores.csv has one line per validation and test row, plus the header.
     assert_eq!(done.read("out/scores.csv").lines().count(), 1 + 4020);
 }

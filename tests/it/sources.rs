@@ -1,0 +1,195 @@
+//! Sources beyond one CSV: Parquet files, globs, directories as distributed
+//! engines write them, and separate normal and anomaly sources; missing values.
+
+use polars::prelude::*;
+
+use crate::util::{csv, rows, spec, Case, Rows, PROTOCOL};
+
+fn parquet(path: &std::path::Path, r: &[(String, Vec<f64>, bool)], int_c: bool) {
+    let col = |j: usize| r.iter().map(|x| x.1[j]).collect::<Vec<f64>>();
+    let c: Column = if int_c {
+        Column::new(
+            "c".into(),
+            r.iter()
+                .map(|x| (x.1[2] * 1000.0) as i64)
+                .collect::<Vec<_>>(),
+        )
+    } else {
+        Column::new("c".into(), col(2))
+    };
+    let mut df = DataFrame::new(
+        r.len(),
+        vec![
+            Column::new(
+                "id".into(),
+                r.iter().map(|x| x.0.clone()).collect::<Vec<_>>(),
+            ),
+            Column::new("a".into(), col(0)),
+            Column::new("b".into(), col(1)),
+            c,
+            Column::new(
+                "label".into(),
+                r.iter()
+                    .map(|x| if x.2 { "anomaly" } else { "normal" })
+                    .collect::<Vec<_>>(),
+            ),
+        ],
+    )
+    .unwrap();
+    std::fs::create_dir_all(path.parent().unwrap()).unwrap();
+    ParquetWriter::new(std::fs::File::create(path).unwrap())
+        .finish(&mut df)
+        .unwrap();
+}
+
+fn chunks(r: &Rows, k: usize) -> Vec<Rows> {
+    r.chunks(r.len().div_ceil(k)).map(|c| c.to_vec()).collect()
+}
+
+#[test]
+fn a_directory_of_parquet_parts_reads_like_one_csv() {
+    let r = rows(600, 12, 31);
+    let from_csv = Case::new()
+        .file("data.csv", csv(&["a", "b", "c"], &r))
+        .file("spec.yaml", spec(&["a", "b", "c"], PROTOCOL))
+        .keys()
+        .run_spec()
+        .success();
+    let case = Case::new()
+        .file(
+            "spec.yaml",
+            spec(&["a", "b", "c"], PROTOCOL).replace("path: data.csv", "path: parts"),
+        )
+        .file("parts/_SUCCESS", "")
+        .keys();
+    for (k, part) in chunks(&r, 3).iter().enumerate() {
+        parquet(
+            &case.path(&format!("parts/part-{k:05}.parquet")),
+            part,
+            false,
+        );
+    }
+    let d = case.run_spec().success();
+    let (a, b) = (from_csv.json("out/run.json"), d.json("out/run.json"));
+    assert_eq!(a["split"], b["split"], "same contents, same split");
+    assert_eq!(a["candidates"], b["candidates"]);
+    let inputs = b["inputs"].as_array().unwrap();
+    assert_eq!(inputs.len(), 3);
+    assert_eq!(inputs[0]["path"], "parts/part-00000.parquet");
+    assert_eq!(inputs[0]["format"], "parquet");
+    let bytes = std::fs::read(d.dir.join("parts/part-00001.parquet")).unwrap();
+    assert_eq!(inputs[1]["blake3"], blake3::hash(&bytes).to_hex().as_str());
+}
+
+#[test]
+fn a_glob_selects_files_and_separate_sources_imply_labels() {
+    let r = rows(400, 10, 32);
+    let (normal, anomalous): (Rows, Rows) = r.iter().cloned().partition(|x| !x.2);
+    let yaml = spec(&["a", "b", "c"], PROTOCOL).replace(
+        "  path: data.csv\n  id-column: id\n  label:\n    column: label\n    normal: normal\n    anomaly: anomaly\n",
+        "  normal-path: \"normal-*.parquet\"\n  anomaly-path: failed.csv\n  id-column: id\n",
+    );
+    let case = Case::new()
+        .file("spec.yaml", yaml)
+        .file(
+            "failed.csv",
+            csv(&["a", "b", "c"], &anomalous).replace(",anomaly\n", ",\n"),
+        )
+        .file("normal-old.txt", "not data")
+        .keys();
+    for (k, part) in chunks(&normal, 2).iter().enumerate() {
+        parquet(&case.path(&format!("normal-{k}.parquet")), part, false);
+    }
+    let d = case.run_spec().success();
+    let run = d.json("out/run.json");
+    assert!(run["label"].is_null());
+    assert_eq!(run["inputs"].as_array().unwrap().len(), 3);
+    assert_eq!(run["split"]["counts"]["validation"]["anomaly"], 5);
+    assert_eq!(run["split"]["counts"]["train"]["normal"], 240);
+    assert!(d.read("out/card.md").contains("implied by the source"));
+}
+
+#[test]
+fn a_column_whose_type_differs_between_files_is_refused() {
+    let r = rows(300, 10, 33);
+    let case = Case::new()
+        .file(
+            "spec.yaml",
+            spec(&["a", "b", "c"], PROTOCOL).replace("path: data.csv", "path: \"p/*.parquet\""),
+        )
+        .keys();
+    let parts = chunks(&r, 2);
+    parquet(&case.path("p/a.parquet"), &parts[0], false);
+    parquet(&case.path("p/b.parquet"), &parts[1], true);
+    case.run_spec().fails(
+        3,
+        &["p/b.parquet", "column `c`", "`i64`", "`f64`", "p/a.parquet"],
+    );
+}
+
+#[test]
+fn a_glob_that_matches_nothing_names_the_field() {
+    Case::new()
+        .file(
+            "spec.yaml",
+            spec(&["a", "b", "c"], PROTOCOL).replace("path: data.csv", "path: \"none/*.parquet\""),
+        )
+        .keys()
+        .run_spec()
+        .fails(
+            2,
+            &["field `data.path`", "no file matches `none/*.parquet`"],
+        );
+}
+
+fn with_missing(r: &Rows, at: &[usize]) -> String {
+    let mut lines: Vec<String> = csv(&["a", "b", "c"], r)
+        .lines()
+        .map(str::to_string)
+        .collect();
+    for &i in at {
+        let mut f: Vec<String> = lines[i + 1].split(',').map(str::to_string).collect();
+        f[3] = String::new();
+        lines[i + 1] = f.join(",");
+    }
+    lines.join("\n") + "\n"
+}
+
+#[test]
+fn drop_row_leaves_out_missing_values_and_records_the_counts() {
+    let r = rows(500, 12, 34);
+    let yaml = spec(&["a", "b", "c"], PROTOCOL).replace(
+        "  id-column: id\n",
+        "  id-column: id\n  missing-values: drop-row\n",
+    );
+    let d = Case::new()
+        .file("data.csv", with_missing(&r, &[3, 10, 502]))
+        .file("spec.yaml", yaml)
+        .keys()
+        .run_spec()
+        .success();
+    let run = d.json("out/run.json");
+    assert_eq!(run["dropped-rows"]["normal"], 2);
+    assert_eq!(run["dropped-rows"]["anomaly"], 1);
+    assert_eq!(run["missing-values"], "drop-row");
+    let total: u64 = ["train", "validation", "test"]
+        .iter()
+        .map(|p| {
+            let c = &run["split"]["counts"][p];
+            c["normal"].as_u64().unwrap() + c["anomaly"].as_u64().unwrap()
+        })
+        .sum();
+    assert_eq!(total, 512 - 3);
+    assert!(d
+        .read("out/card.md")
+        .contains("2 normal and 1 anomalous rows were dropped"));
+}
+
+#[test]
+fn missing_values_are_refused_by_default() {
+    let r = rows(100, 6, 35);
+    crate::util::standard(&r)
+        .file("data.csv", with_missing(&r, &[3, 10]))
+        .run_spec()
+        .fails(3, &["column `c`", "missing", "lines 5, 12"]);
+}
