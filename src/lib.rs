@@ -26,6 +26,7 @@ pub mod metrics;
 pub mod output;
 pub mod pipeline;
 pub mod record;
+pub mod rng;
 pub mod sign;
 pub mod spec;
 pub mod split;

@@ -6,7 +6,6 @@
 //! a made-up 0 or 1. The bootstrap draws each replicate from its own ChaCha
 //! stream, so its result is the same bits whatever the number of threads.
 
-use rand_chacha::rand_core::{Rng, SeedableRng};
 use rayon::prelude::*;
 
 /// z for a two-sided 95 % interval: Φ⁻¹(0.975), as used in Newcombe (1998).
@@ -229,17 +228,6 @@ pub struct BootstrapIntervals {
     pub roc_auc: Option<Interval>,
 }
 
-/// An unbiased draw from 0..n (Lemire's multiply-and-reject).
-fn below_n(rng: &mut rand_chacha::ChaCha8Rng, n: u64) -> u64 {
-    loop {
-        let m = (rng.next_u64() as u128) * (n as u128);
-        let low = m as u64;
-        if low >= n.wrapping_neg() % n {
-            return (m >> 64) as u64;
-        }
-    }
-}
-
 /// The `q` quantile of sorted values, interpolating linearly between order
 /// statistics (numpy's default "linear" method).
 fn quantile(sorted: &[f64], q: f64) -> f64 {
@@ -285,12 +273,11 @@ pub fn bootstrap(
     let reps: Vec<(f64, f64, f64)> = (0..plan.replicates)
         .into_par_iter()
         .map(|b| {
-            let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(plan.seed);
-            rng.set_stream(u64::from(b));
+            let mut rng = crate::rng::seeded(plan.seed, u64::from(b));
             let mut w = vec![0u32; scores.len()];
             for stratum in [&pos, &neg] {
                 for _ in 0..stratum.len() {
-                    w[stratum[below_n(&mut rng, stratum.len() as u64) as usize]] += 1;
+                    w[stratum[crate::rng::below(&mut rng, stratum.len() as u64) as usize]] += 1;
                 }
             }
             let mut c = Confusion::default();
@@ -450,6 +437,7 @@ impl Metrics {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use rand_chacha::rand_core::{Rng, SeedableRng};
 
     /// REFERENCES.md section 5: TP 8, FP 3, FN 2, TN 1987 (exact fractions;
     /// scikit-learn 1.9.1 agrees within a few ulp).

@@ -272,7 +272,7 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
             ),
         });
     }
-    let chosen = select(&candidates, &fitted_sets, plan.selection);
+    let chosen = select(&candidates, plan.selection);
 
     // Every choice is fixed: open the test split, once.
     let test_rows = splits.test.open();
@@ -313,7 +313,7 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
             name: c.name.clone(),
             feature_set: fitted_sets[c.set].set.clone(),
             detector: detect::name(c.kind).into(),
-            parameter_count: detect::parameter_count(c.kind, fitted_sets[c.set].features.len()),
+            parameter_count: c.model.parameter_count(),
             params: c.model.params(),
             tau: c.choice.tau,
             ln_epsilon: c.choice.ln_epsilon(),
@@ -451,12 +451,8 @@ fn selection_value(c: &Candidate, m: SelectionMetric) -> Option<f64> {
 }
 
 /// The selection rule (see [`selection_rule`]): validation numbers only.
-fn select(
-    candidates: &[Candidate],
-    sets: &[features::FittedFeatures],
-    m: SelectionMetric,
-) -> usize {
-    let params = |c: &Candidate| detect::parameter_count(c.kind, sets[c.set].features.len());
+fn select(candidates: &[Candidate], m: SelectionMetric) -> usize {
+    let params = |c: &Candidate| c.model.parameter_count();
     let better = |a: &Candidate, b: &Candidate| -> std::cmp::Ordering {
         let by_metric = if m == SelectionMetric::F1 {
             cmp_fraction(

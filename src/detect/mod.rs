@@ -8,10 +8,16 @@
 //! bits on every platform.
 
 mod independent;
+mod knn;
+mod mixture;
 mod multivariate;
+mod robust;
 
 pub use independent::IndependentGaussian;
+pub use knn::KnnDistance;
+pub use mixture::GaussianMixture;
 pub use multivariate::MultivariateGaussian;
+pub use robust::{consistency_factor, RobustGaussian};
 
 use ndarray::ArrayView2;
 
@@ -33,6 +39,11 @@ pub trait Model: Send + Sync {
     fn score(&self, x: ArrayView2<'_, f64>) -> Vec<f64>;
     /// The fitted parameters, for the record.
     fn params(&self) -> Params;
+    /// The number of free parameters: the "simpler model" in the selection
+    /// tie rule is the one with fewer.
+    fn parameter_count(&self) -> usize {
+        self.params().count()
+    }
 }
 
 /// Fitted parameters, as recorded in run.json.
@@ -40,6 +51,7 @@ pub trait Model: Send + Sync {
 #[serde(rename_all = "kebab-case", tag = "detector")]
 pub enum Params {
     /// Per-feature mean and maximum-likelihood variance (divisor m).
+    #[serde(rename_all = "kebab-case")]
     IndependentGaussian {
         /// Means, in feature order.
         mean: Vec<f64>,
@@ -47,6 +59,7 @@ pub enum Params {
         variance: Vec<f64>,
     },
     /// Mean, maximum-likelihood covariance (divisor m) and its log-determinant.
+    #[serde(rename_all = "kebab-case")]
     MultivariateGaussian {
         /// Mean vector.
         mean: Vec<f64>,
@@ -55,6 +68,79 @@ pub enum Params {
         /// ln |Σ|.
         ln_det_covariance: f64,
     },
+    /// The reweighted MCD estimate and its raw stage.
+    #[serde(rename_all = "kebab-case")]
+    RobustGaussian {
+        /// Reweighted mean.
+        mean: Vec<f64>,
+        /// Reweighted covariance, consistency-corrected.
+        covariance: Vec<Vec<f64>>,
+        /// ln |Σ| of the reweighted covariance.
+        ln_det_covariance: f64,
+        /// Raw MCD mean (the h rows).
+        raw_mean: Vec<f64>,
+        /// ln |Σ| of the raw MCD covariance (divisor h, before correction).
+        raw_ln_det_covariance: f64,
+        /// h, the rows the MCD covers.
+        support: usize,
+        /// Rows kept by the reweighting step.
+        reweighted_rows: usize,
+        /// Consistency factors of the raw and the reweighted covariance.
+        consistency_factors: [f64; 2],
+    },
+    /// The chosen mixture.
+    #[serde(rename_all = "kebab-case")]
+    GaussianMixture {
+        /// Components.
+        k: usize,
+        /// Mixing weights.
+        weights: Vec<f64>,
+        /// Component means.
+        means: Vec<Vec<f64>>,
+        /// Component covariances.
+        covariances: Vec<Vec<Vec<f64>>>,
+        /// Training log-likelihood.
+        log_likelihood: f64,
+        /// BIC of the chosen k.
+        bic: f64,
+        /// BIC of every k tried (null when no fit).
+        bic_by_k: Vec<(usize, Option<f64>)>,
+    },
+    /// The stored training rows' standardisation (the rows themselves are not recorded).
+    #[serde(rename_all = "kebab-case")]
+    KnnDistance {
+        /// k.
+        k: usize,
+        /// Training rows kept for the search.
+        training_rows: usize,
+        /// Standardisation means.
+        mean: Vec<f64>,
+        /// Standardisation standard deviations.
+        sd: Vec<f64>,
+    },
+}
+
+impl Params {
+    /// Free parameters. A k-nearest-neighbour model keeps every training row,
+    /// so it counts m·d.
+    pub fn count(&self) -> usize {
+        let full = |d: usize| d + d * (d + 1) / 2;
+        match self {
+            Params::IndependentGaussian { mean, .. } => 2 * mean.len(),
+            Params::MultivariateGaussian { mean, .. } | Params::RobustGaussian { mean, .. } => {
+                full(mean.len())
+            }
+            Params::GaussianMixture { k, means, .. } => {
+                let d = means.first().map_or(0, Vec::len);
+                k * full(d) + k - 1
+            }
+            Params::KnnDistance {
+                training_rows,
+                mean,
+                ..
+            } => training_rows * mean.len(),
+        }
+    }
 }
 
 /// The detector's name in specs, files and cards.
@@ -62,15 +148,9 @@ pub fn name(kind: DetectorKind) -> &'static str {
     match kind {
         DetectorKind::IndependentGaussian => "independent-gaussian",
         DetectorKind::MultivariateGaussian => "multivariate-gaussian",
-    }
-}
-
-/// The number of free parameters for `d` features: the "simpler model" in the
-/// selection tie rule is the one with fewer.
-pub fn parameter_count(kind: DetectorKind, d: usize) -> usize {
-    match kind {
-        DetectorKind::IndependentGaussian => 2 * d,
-        DetectorKind::MultivariateGaussian => d + d * (d + 1) / 2,
+        DetectorKind::RobustGaussian { .. } => "robust-gaussian",
+        DetectorKind::GaussianMixture { .. } => "gaussian-mixture",
+        DetectorKind::KnnDistance { .. } => "knn-distance",
     }
 }
 
@@ -79,6 +159,20 @@ pub fn build(kind: DetectorKind) -> Box<dyn Detector> {
     match kind {
         DetectorKind::IndependentGaussian => Box::new(IndependentGaussian),
         DetectorKind::MultivariateGaussian => Box::new(MultivariateGaussian),
+        DetectorKind::RobustGaussian {
+            support_fraction,
+            seed,
+        } => Box::new(RobustGaussian {
+            support_fraction,
+            seed,
+        }),
+        DetectorKind::GaussianMixture {
+            k_min,
+            k_max,
+            seed,
+            covariance_floor,
+        } => Box::new(GaussianMixture::new(k_min, k_max, seed, covariance_floor)),
+        DetectorKind::KnnDistance { k } => Box::new(KnnDistance { k }),
     }
 }
 

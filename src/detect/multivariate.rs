@@ -8,7 +8,7 @@
 use nalgebra::DMatrix;
 use ndarray::ArrayView2;
 
-use super::{ln, means, refuse_constant, Detector, Model, Params, HALF_LN_2PI};
+use super::{ln, refuse_constant, Detector, Model, Params, HALF_LN_2PI};
 use crate::error::{Error, Result};
 
 /// Largest condition number of the correlation matrix that is accepted. At
@@ -22,53 +22,71 @@ const NAME: &str = "multivariate-gaussian";
 #[derive(Debug, Clone, Copy, Default)]
 pub struct MultivariateGaussian;
 
-struct Fitted {
+/// A fitted normal density: mean, covariance and its Cholesky factor. Shared
+/// by every Gaussian-based detector.
+#[derive(Debug, Clone)]
+pub(crate) struct Gaussian {
     d: usize,
-    mean: Vec<f64>,
-    covariance: Vec<Vec<f64>>,
+    pub(crate) mean: Vec<f64>,
+    /// Covariance, row-major.
+    pub(crate) cov: Vec<f64>,
     /// Lower Cholesky factor, row-major.
     chol: Vec<f64>,
-    ln_det: f64,
+    pub(crate) ln_det: f64,
 }
 
-impl Detector for MultivariateGaussian {
-    fn fit(&self, train: ArrayView2<'_, f64>, features: &[String]) -> Result<Box<dyn Model>> {
-        refuse_constant(NAME, train, features)?;
-        let (m, d) = train.dim();
-        if m <= d {
-            return Err(Error::Fit {
-                detector: NAME.into(),
-                message: format!(
-                    "{m} training rows cannot determine a covariance over {d} features \
-                     (more rows than features are needed)"
-                ),
-                features: vec![],
-            });
+/// Mean and maximum-likelihood covariance (divisor Σw) of the rows, each with
+/// weight `w[i]` (all 1 when `w` is `None`), summed in row order.
+pub(crate) fn moments(x: ArrayView2<'_, f64>, w: Option<&[f64]>) -> (Vec<f64>, Vec<f64>) {
+    let (m, d) = x.dim();
+    let weight = |i: usize| w.map_or(1.0, |w| w[i]);
+    let total: f64 = (0..m).map(weight).sum();
+    let mut mean = vec![0.0; d];
+    for (i, row) in x.rows().into_iter().enumerate() {
+        let wi = weight(i);
+        for (s, v) in mean.iter_mut().zip(row.iter()) {
+            *s += wi * v;
         }
-        let mean = means(train);
-        let mut cov = vec![0.0; d * d];
-        let mut c = vec![0.0; d];
-        for row in train.rows() {
-            for (cj, (v, mu)) in c.iter_mut().zip(row.iter().zip(&mean)) {
-                *cj = v - mu;
-            }
-            for i in 0..d {
-                for j in 0..=i {
-                    cov[i * d + j] += c[i] * c[j];
-                }
-            }
+    }
+    for s in mean.iter_mut() {
+        *s /= total;
+    }
+    let mut cov = vec![0.0; d * d];
+    let mut c = vec![0.0; d];
+    for (i, row) in x.rows().into_iter().enumerate() {
+        let wi = weight(i);
+        for (cj, (v, mu)) in c.iter_mut().zip(row.iter().zip(&mean)) {
+            *cj = v - mu;
         }
-        for i in 0..d {
-            for j in 0..=i {
-                let v = cov[i * d + j] / m as f64;
-                cov[i * d + j] = v;
-                cov[j * d + i] = v;
+        for a in 0..d {
+            for b in 0..=a {
+                cov[a * d + b] += wi * c[a] * c[b];
             }
         }
-        refuse_ill_conditioned(&cov, d, features)?;
+    }
+    for a in 0..d {
+        for b in 0..=a {
+            let v = cov[a * d + b] / total;
+            cov[a * d + b] = v;
+            cov[b * d + a] = v;
+        }
+    }
+    (mean, cov)
+}
+
+impl Gaussian {
+    /// Factors the covariance, refusing a singular or ill-conditioned one.
+    pub(crate) fn new(
+        mean: Vec<f64>,
+        cov: Vec<f64>,
+        detector: &str,
+        features: &[String],
+    ) -> Result<Self> {
+        let d = mean.len();
+        refuse_ill_conditioned(&cov, d, features, detector)?;
         let sigma = DMatrix::from_row_slice(d, d, &cov);
         let chol = sigma.cholesky().ok_or_else(|| Error::Fit {
-            detector: NAME.into(),
+            detector: detector.into(),
             message: "the covariance is not positive definite".into(),
             features: features.to_vec(),
         })?;
@@ -81,21 +99,100 @@ impl Detector for MultivariateGaussian {
             }
             ln_det += 2.0 * ln(l[(i, i)]);
         }
-        Ok(Box::new(Fitted {
+        Ok(Gaussian {
             d,
             mean,
-            covariance: cov.chunks(d).map(<[f64]>::to_vec).collect(),
+            cov,
             chol: flat,
             ln_det,
-        }))
+        })
+    }
+
+    /// (x − μ)ᵀ Σ⁻¹ (x − μ), by forward substitution L z = x − μ.
+    pub(crate) fn mahalanobis2(&self, row: &[f64], z: &mut [f64]) -> f64 {
+        let d = self.d;
+        let mut q = 0.0;
+        for i in 0..d {
+            let mut r = row[i] - self.mean[i];
+            let li = &self.chol[i * d..i * d + i];
+            for (l, zj) in li.iter().zip(&z[..i]) {
+                r -= l * zj;
+            }
+            z[i] = r / self.chol[i * d + i];
+            q += z[i] * z[i];
+        }
+        q
+    }
+
+    /// −ln N(x; μ, Σ).
+    pub(crate) fn neg_log_density(&self, row: &[f64], z: &mut [f64]) -> f64 {
+        self.d as f64 * HALF_LN_2PI + 0.5 * self.ln_det + 0.5 * self.mahalanobis2(row, z)
+    }
+
+    /// The covariance as rows.
+    pub(crate) fn covariance_rows(&self) -> Vec<Vec<f64>> {
+        self.cov.chunks(self.d).map(<[f64]>::to_vec).collect()
+    }
+
+    /// −ln N for every row of `x`.
+    pub(crate) fn score_rows(&self, x: ArrayView2<'_, f64>) -> Vec<f64> {
+        let mut z = vec![0.0; self.d];
+        let mut buf = vec![0.0; self.d];
+        x.rows()
+            .into_iter()
+            .map(|row| {
+                for (b, v) in buf.iter_mut().zip(row.iter()) {
+                    *b = *v;
+                }
+                self.neg_log_density(&buf, &mut z)
+            })
+            .collect()
     }
 }
+
+/// Refuses fewer rows than needed for a covariance over `d` features.
+pub(crate) fn refuse_too_few(detector: &str, m: usize, d: usize) -> Result<()> {
+    if m <= d {
+        return Err(Error::Fit {
+            detector: detector.into(),
+            message: format!(
+                "{m} training rows cannot determine a covariance over {d} features \
+                 (more rows than features are needed)"
+            ),
+            features: vec![],
+        });
+    }
+    Ok(())
+}
+
+impl Detector for MultivariateGaussian {
+    fn fit(&self, train: ArrayView2<'_, f64>, features: &[String]) -> Result<Box<dyn Model>> {
+        refuse_constant(NAME, train, features)?;
+        refuse_too_few(NAME, train.nrows(), train.ncols())?;
+        let (mean, cov) = moments(train, None);
+        Ok(Box::new(Fitted(Gaussian::new(mean, cov, NAME, features)?)))
+    }
+}
+
+struct Fitted(Gaussian);
 
 /// Refuses a covariance whose correlation matrix is singular or nearly so,
 /// naming the features that take part in the near-dependence (the large
 /// entries of the eigenvector of the smallest eigenvalue).
-fn refuse_ill_conditioned(cov: &[f64], d: usize, features: &[String]) -> Result<()> {
+fn refuse_ill_conditioned(
+    cov: &[f64],
+    d: usize,
+    features: &[String],
+    detector: &str,
+) -> Result<()> {
     let sd: Vec<f64> = (0..d).map(|i| cov[i * d + i].sqrt()).collect();
+    if let Some(j) = sd.iter().position(|s| !s.is_finite() || *s <= 0.0) {
+        return Err(Error::Fit {
+            detector: detector.into(),
+            message: "a feature has zero variance in the fitted covariance".into(),
+            features: vec![features[j].clone()],
+        });
+    }
     let corr = DMatrix::from_fn(d, d, |i, j| cov[i * d + j] / (sd[i] * sd[j]));
     let eigen = corr.symmetric_eigen();
     let (mut lo, mut hi) = (0, 0);
@@ -124,7 +221,7 @@ fn refuse_ill_conditioned(cov: &[f64], d: usize, features: &[String]) -> Result<
         "infinite".into()
     };
     Err(Error::Fit {
-        detector: NAME.into(),
+        detector: detector.into(),
         message: format!(
             "the covariance is singular or nearly so (condition number of the correlation \
              matrix {condition}, limit {MAX_CONDITION:e}): some features are nearly linear \
@@ -136,33 +233,14 @@ fn refuse_ill_conditioned(cov: &[f64], d: usize, features: &[String]) -> Result<
 
 impl Model for Fitted {
     fn score(&self, x: ArrayView2<'_, f64>) -> Vec<f64> {
-        let d = self.d;
-        let constant = d as f64 * HALF_LN_2PI + 0.5 * self.ln_det;
-        let mut z = vec![0.0; d];
-        x.rows()
-            .into_iter()
-            .map(|row| {
-                // Forward substitution L z = x − μ.
-                let mut q = 0.0;
-                for i in 0..d {
-                    let mut r = row[i] - self.mean[i];
-                    let li = &self.chol[i * d..i * d + i];
-                    for (l, zj) in li.iter().zip(&z[..i]) {
-                        r -= l * zj;
-                    }
-                    z[i] = r / self.chol[i * d + i];
-                    q += z[i] * z[i];
-                }
-                constant + 0.5 * q
-            })
-            .collect()
+        self.0.score_rows(x)
     }
 
     fn params(&self) -> Params {
         Params::MultivariateGaussian {
-            mean: self.mean.clone(),
-            covariance: self.covariance.clone(),
-            ln_det_covariance: self.ln_det,
+            mean: self.0.mean.clone(),
+            covariance: self.0.covariance_rows(),
+            ln_det_covariance: self.0.ln_det,
         }
     }
 }

@@ -8,8 +8,9 @@ mod raw;
 
 pub use raw::{
     AnomalyFractions, DetectorKind, MissingPolicy, NormalFractions, OneOrMany, RawCard, RawData,
-    RawFeature, RawFeatureMap, RawFeatureSet, RawFromColumn, RawGroups, RawLabel, RawProtocol,
-    RawSpec, RawSplit, RawTime, Scalar, SelectionMetric, ThresholdPolicy, TransformKind,
+    RawDetector, RawFeature, RawFeatureMap, RawFeatureSet, RawFromColumn, RawGroups, RawLabel,
+    RawProtocol, RawSpec, RawSplit, RawTime, Scalar, SelectionMetric, ThresholdPolicy,
+    TransformKind,
 };
 
 use std::cell::RefCell;
@@ -901,16 +902,47 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
             "at least one candidate detector is needed".into(),
         ));
     }
-    let mut detectors = Vec::new();
+    let mut detectors: Vec<DetectorKind> = Vec::new();
     for (i, d) in raw.detectors.value.iter().enumerate() {
-        if detectors.contains(d) {
-            return Err(r.err(
-                &raw.detectors,
-                &format!("detectors[{i}]"),
-                format!("detector `{}` is listed twice", crate::detect::name(*d)),
-            ));
+        let field = format!("detectors[{i}]");
+        let kind = d.value.0;
+        let name = crate::detect::name(kind);
+        if detectors.iter().any(|e| crate::detect::name(*e) == name) {
+            return Err(r.err(d, &field, format!("detector `{name}` is listed twice")));
         }
-        detectors.push(*d);
+        let bad = |what: String| Err(r.err(d, &format!("{field}.{name}"), what));
+        match kind {
+            DetectorKind::RobustGaussian {
+                support_fraction: Some(f),
+                ..
+            } if !(f > 0.5 && f <= 1.0) => {
+                return bad(format!(
+                    "`support-fraction` must be above 0.5 and at most 1, found `{f}`"
+                ));
+            }
+            DetectorKind::GaussianMixture {
+                k_min,
+                k_max,
+                covariance_floor,
+                ..
+            } => {
+                if k_min < 1 || k_max < k_min || k_max > 20 {
+                    return bad(format!(
+                        "need 1 ≤ `k-min` ≤ `k-max` ≤ 20, found {k_min} and {k_max}"
+                    ));
+                }
+                if !(covariance_floor >= 0.0 && covariance_floor.is_finite()) {
+                    return bad(format!(
+                        "`covariance-floor` must be ≥ 0, found `{covariance_floor}`"
+                    ));
+                }
+            }
+            DetectorKind::KnnDistance { k } if k < 1 => {
+                return bad("`k` must be at least 1".into());
+            }
+            _ => {}
+        }
+        detectors.push(kind);
     }
 
     let threshold = match &raw.threshold {

@@ -30,8 +30,8 @@ pub struct RawSpec {
     /// How rows are assigned to train, validation and test.
     pub split: RawSplit,
     /// The candidate detectors, compared on validation.
-    #[schemars(with = "Vec<DetectorKind>")]
-    pub detectors: Spanned<Vec<DetectorKind>>,
+    #[schemars(with = "Vec<DetectorSchema>")]
+    pub detectors: Spanned<Vec<Spanned<RawDetector>>>,
     /// How each candidate's threshold is chosen on validation (default `max-f1`).
     #[serde(default)]
     #[schemars(with = "Option<ThresholdPolicy>")]
@@ -392,14 +392,128 @@ pub struct AnomalyFractions {
     pub test: f64,
 }
 
-/// A candidate detector.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Deserialize, JsonSchema)]
+/// A candidate detector: a name (with default settings) or a one-key map of
+/// the name to its settings.
+#[derive(Debug, Clone, Copy, PartialEq, Deserialize, JsonSchema)]
 #[serde(rename_all = "kebab-case", deny_unknown_fields)]
 pub enum DetectorKind {
     /// One Gaussian per feature, features treated as independent.
     IndependentGaussian,
     /// One Gaussian over all features with a full covariance.
     MultivariateGaussian,
+    /// A Gaussian fitted by the Minimum Covariance Determinant (FastMCD).
+    #[serde(rename_all = "kebab-case")]
+    RobustGaussian {
+        /// Share of training rows the MCD covers (default ⌊(m+p+1)/2⌋/m).
+        #[serde(default)]
+        support_fraction: Option<f64>,
+        /// Seed of the random starts (default 1).
+        #[serde(default = "one")]
+        seed: u64,
+    },
+    /// A mixture of Gaussians with full covariances, k chosen by BIC.
+    #[serde(rename_all = "kebab-case")]
+    GaussianMixture {
+        /// Smallest k (default 1).
+        #[serde(default = "one_usize")]
+        k_min: usize,
+        /// Largest k (default 5).
+        #[serde(default = "five")]
+        k_max: usize,
+        /// Seed of the k-means++ starts (default 1).
+        #[serde(default = "one")]
+        seed: u64,
+        /// Variance floor relative to each feature's training variance (default 1e-6).
+        #[serde(default = "floor")]
+        covariance_floor: f64,
+    },
+    /// Distance to the k-th nearest training row, read as a density.
+    KnnDistance {
+        /// k (default 5).
+        #[serde(default = "five")]
+        k: usize,
+    },
+}
+
+fn one() -> u64 {
+    1
+}
+fn one_usize() -> usize {
+    1
+}
+fn five() -> usize {
+    5
+}
+fn floor() -> f64 {
+    1e-6
+}
+
+/// Detector names, for the schema of the plain-name form.
+#[derive(JsonSchema)]
+#[serde(rename_all = "kebab-case")]
+#[allow(dead_code)]
+pub enum DetectorName {
+    /// See [`DetectorKind::IndependentGaussian`].
+    IndependentGaussian,
+    /// See [`DetectorKind::MultivariateGaussian`].
+    MultivariateGaussian,
+    /// See [`DetectorKind::RobustGaussian`].
+    RobustGaussian,
+    /// See [`DetectorKind::GaussianMixture`].
+    GaussianMixture,
+    /// See [`DetectorKind::KnnDistance`].
+    KnnDistance,
+}
+
+/// The schema of a detector entry: a name, or a map with settings.
+#[derive(JsonSchema)]
+#[serde(untagged)]
+#[allow(dead_code)]
+pub enum DetectorSchema {
+    /// A name, with default settings.
+    Name(DetectorName),
+    /// A name with settings.
+    Spelled(DetectorKind),
+}
+
+/// One entry of `detectors`, read from a name or a map.
+#[derive(Debug, Clone, Copy)]
+pub struct RawDetector(pub DetectorKind);
+
+impl<'de> Deserialize<'de> for RawDetector {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct V;
+        impl<'de> Visitor<'de> for V {
+            type Value = RawDetector;
+            fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+                f.write_str("a detector name, or a map from a detector name to its settings")
+            }
+            fn visit_str<E: de::Error>(self, s: &str) -> Result<RawDetector, E> {
+                let kind = match s {
+                    "robust-gaussian" => DetectorKind::RobustGaussian {
+                        support_fraction: None,
+                        seed: one(),
+                    },
+                    "gaussian-mixture" => DetectorKind::GaussianMixture {
+                        k_min: one_usize(),
+                        k_max: five(),
+                        seed: one(),
+                        covariance_floor: floor(),
+                    },
+                    "knn-distance" => DetectorKind::KnnDistance { k: five() },
+                    other => {
+                        DetectorKind::deserialize(de::value::StrDeserializer::<E>::new(other))?
+                    }
+                };
+                Ok(RawDetector(kind))
+            }
+            fn visit_map<A: MapAccess<'de>>(self, map: A) -> Result<RawDetector, A::Error> {
+                DetectorKind::deserialize(de::value::MapAccessDeserializer::new(map))
+                    .map(RawDetector)
+            }
+        }
+        d.deserialize_any(V)
+    }
 }
 
 /// How a threshold is chosen on validation.

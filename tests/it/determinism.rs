@@ -57,3 +57,36 @@ fn without_the_clock_every_byte_is_identical_even_the_signature() {
     }
     assert!(a.json("out/run.json")["wall-clock"].is_null());
 }
+
+/// The bootstrap and the k-nearest-neighbour search run on all cores; one
+/// thread gives the same bytes.
+#[test]
+fn thread_count_does_not_change_a_byte() {
+    let r = rows(500, 12, 11);
+    let yaml = crate::util::spec(&["a", "b", "c"], crate::util::PROTOCOL).replace(
+        "detectors: [independent-gaussian, multivariate-gaussian]",
+        "detectors: [multivariate-gaussian, knn-distance]",
+    );
+    let first = standard(&r).file("spec.yaml", &yaml);
+    let a = first.clone().run_spec().success();
+    let b = first
+        .clone()
+        .args([
+            "run",
+            "spec.yaml",
+            "--key",
+            "key.pem",
+            "--out",
+            "out1",
+            "--no-wall-clock",
+        ])
+        .env("RAYON_NUM_THREADS", "1")
+        .success();
+    for f in ["run.json", "scores.csv", "card.md", "manifest.sig"] {
+        assert_eq!(
+            a.read(&format!("out/{f}")),
+            b.read(&format!("out1/{f}")),
+            "{f}"
+        );
+    }
+}

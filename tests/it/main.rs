@@ -5,6 +5,7 @@ mod util;
 
 mod check;
 mod cli;
+mod detectors;
 mod determinism;
 mod errors;
 mod examples;
