@@ -692,6 +692,7 @@ fn card_context(
                 parameters: c.parameter_count,
                 tau: format!("{:.6}", c.tau),
                 ln_epsilon: format!("{:.6}", c.ln_epsilon),
+                unmet: c.threshold_note.clone(),
             })
             .collect(),
         validation: rec

@@ -69,6 +69,8 @@ pub struct ThresholdRow {
     pub tau: String,
     /// ln ε.
     pub ln_epsilon: String,
+    /// Why the policy is unmet for this candidate (it was then not selectable).
+    pub unmet: Option<String>,
 }
 
 /// Counts of one split.
