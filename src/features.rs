@@ -209,16 +209,6 @@ fn domain(kind: TransformKind) -> Option<Domain> {
     }
 }
 
-fn kind_name(kind: TransformKind) -> &'static str {
-    match kind {
-        TransformKind::Log => "log",
-        TransformKind::Log1p => "log1p",
-        TransformKind::Sqrt => "sqrt",
-        TransformKind::BoxCox => "box-cox",
-        TransformKind::YeoJohnson => "yeo-johnson",
-        TransformKind::Standardise => "standardise",
-    }
-}
 
 impl Fitted {
     fn kind(&self) -> TransformKind {
@@ -262,7 +252,7 @@ fn check_domain(
         if !bad.is_empty() {
             return Err(data.error(
                 name,
-                format!("`{}` cannot take this value: {rule}", kind_name(kind)),
+                format!("`{}` cannot take this value: {rule}", crate::spec::transform_name(kind)),
                 &bad,
             ));
         }

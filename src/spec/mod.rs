@@ -549,7 +549,8 @@ impl Columns {
     }
 }
 
-fn transform_name(t: TransformKind) -> &'static str {
+/// A transform's name in specs and feature names.
+pub fn transform_name(t: TransformKind) -> &'static str {
     match t {
         TransformKind::Log => "log",
         TransformKind::Log1p => "log1p",
