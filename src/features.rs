@@ -209,7 +209,6 @@ fn domain(kind: TransformKind) -> Option<Domain> {
     }
 }
 
-
 impl Fitted {
     fn kind(&self) -> TransformKind {
         match self {
@@ -252,7 +251,10 @@ fn check_domain(
         if !bad.is_empty() {
             return Err(data.error(
                 name,
-                format!("`{}` cannot take this value: {rule}", crate::spec::transform_name(kind)),
+                format!(
+                    "`{}` cannot take this value: {rule}",
+                    crate::spec::transform_name(kind)
+                ),
                 &bad,
             ));
         }

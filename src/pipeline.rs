@@ -346,6 +346,7 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
             file: spec_file.clone(),
             blake3: hash::bytes(&plan.spec_bytes),
         },
+        provenance: crate::audit::provenance::of(&opts.spec),
         inputs: data
             .files
             .iter()

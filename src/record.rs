@@ -48,6 +48,9 @@ pub struct RunRecord {
     pub tool: String,
     /// The spec.
     pub spec: SpecRecord,
+    /// The git commit of the spec's repository and whether its tree was
+    /// dirty (null outside a repository).
+    pub provenance: Option<crate::audit::provenance::Provenance>,
     /// Every input file.
     pub inputs: Vec<InputRecord>,
     /// The label column and its values (null when the label is implied by

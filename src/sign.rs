@@ -154,9 +154,24 @@ pub fn verify_dir(dir: &Path, key: &VerifyingKey) -> Result<Manifest> {
         dir: dir.to_path_buf(),
         problems,
     };
+    // Strict form: the base64 of 64 bytes and one newline, nothing else, so
+    // that no byte of the file can change unnoticed.
+    let body = sig_text
+        .strip_suffix(b"\n")
+        .filter(|b| b.len() == 88 && !b.contains(&b'\n'))
+        .ok_or_else(|| fail(vec![format!("`{SIGNATURE}` is not one line of base64")]))?;
     let sig_bytes = base64::engine::general_purpose::STANDARD
-        .decode(String::from_utf8_lossy(&sig_text).trim())
+        .decode(body)
         .map_err(|e| fail(vec![format!("`{SIGNATURE}` is not base64: {e}")]))?;
+    if base64::engine::general_purpose::STANDARD
+        .encode(&sig_bytes)
+        .as_bytes()
+        != body
+    {
+        return Err(fail(vec![format!(
+            "`{SIGNATURE}` is not in canonical base64"
+        )]));
+    }
     let sig = Signature::from_slice(&sig_bytes).map_err(|_| {
         fail(vec![format!(
             "`{SIGNATURE}` is not a 64-byte Ed25519 signature"

@@ -5,3 +5,4 @@
 
 pub mod hash;
 pub mod leak;
+pub mod provenance;

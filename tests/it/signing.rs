@@ -163,3 +163,43 @@ fn openssl_verifies_the_signature() {
     std::fs::write(case.path("tampered.json"), m).unwrap();
     assert!(!check("tampered.json").status.success());
 }
+
+mod tampering {
+    use proptest::prelude::*;
+
+    fn copy_dir(from: &std::path::Path, to: &std::path::Path) {
+        std::fs::create_dir_all(to).unwrap();
+        for e in std::fs::read_dir(from).unwrap() {
+            let e = e.unwrap();
+            std::fs::copy(e.path(), to.join(e.file_name())).unwrap();
+        }
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig { cases: 64, ..ProptestConfig::default() })]
+
+        /// Any single-byte change to any signed file (the manifest and its
+        /// signature included) is caught by verify.
+        #[test]
+        fn any_single_byte_change_is_caught(file in 0usize..6, pos in any::<prop::sample::Index>(), flip in 1u8..=255) {
+            thread_local! {
+                static RUN: (crate::util::Case, ed25519_dalek::VerifyingKey) = {
+                    let case = super::signed_run();
+                    let key = anomark::sign::load_public(&case.path("key.pub.pem")).unwrap();
+                    (case, key)
+                };
+            }
+            let (out, key) = RUN.with(|(case, key)| (case.path("out"), *key));
+            let key = &key;
+            let names = ["card.html", "card.md", "run.json", "scores.csv", "manifest.json", "manifest.sig"];
+            let work = tempfile::tempdir().unwrap();
+            copy_dir(&out, work.path());
+            let target = work.path().join(names[file]);
+            let mut bytes = std::fs::read(&target).unwrap();
+            let i = pos.index(bytes.len());
+            bytes[i] ^= flip;
+            std::fs::write(&target, bytes).unwrap();
+            prop_assert!(anomark::sign::verify_dir(work.path(), key).is_err(), "{} byte {} not caught", names[file], i);
+        }
+    }
+}

@@ -1,0 +1,98 @@
+//! Ties a run to the version-control state of its spec: when the spec sits in
+//! a git repository, the commit checked out and whether the work tree had
+//! changes. Reads only; a missing git or a spec outside a repository gives
+//! no provenance rather than an error.
+
+use std::path::Path;
+use std::process::Command;
+
+/// The repository state of the spec's directory.
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct Provenance {
+    /// The commit checked out (full hash).
+    pub commit: String,
+    /// Whether tracked or untracked (not ignored) files differed from it.
+    pub dirty: bool,
+}
+
+fn git(dir: &Path, args: &[&str]) -> Option<String> {
+    let out = Command::new("git")
+        .arg("-C")
+        .arg(dir)
+        .args(args)
+        .output()
+        .ok()?;
+    out.status
+        .success()
+        .then(|| String::from_utf8_lossy(&out.stdout).into_owned())
+}
+
+/// The provenance of the spec at `spec`, if it is in a git work tree.
+pub fn of(spec: &Path) -> Option<Provenance> {
+    let dir = match spec.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p,
+        _ => Path::new("."),
+    };
+    let commit = git(dir, &["rev-parse", "--verify", "HEAD"])?
+        .trim()
+        .to_string();
+    if commit.len() < 40 {
+        return None;
+    }
+    let status = git(dir, &["status", "--porcelain"])?;
+    Some(Provenance {
+        commit,
+        dirty: !status.trim().is_empty(),
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn outside_a_repository_there_is_none() {
+        let d = tempfile::tempdir().unwrap();
+        let spec = d.path().join("s.yaml");
+        std::fs::write(&spec, "x").unwrap();
+        assert_eq!(of(&spec), None);
+    }
+
+    #[test]
+    fn inside_a_repository_commit_and_dirt_are_recorded() {
+        if Command::new("git").arg("--version").output().is_err() {
+            eprintln!("skip: git is not installed");
+            return;
+        }
+        let d = tempfile::tempdir().unwrap();
+        let run = |args: &[&str]| {
+            let ok = Command::new("git")
+                .arg("-C")
+                .arg(d.path())
+                .args(args)
+                .output()
+                .unwrap()
+                .status
+                .success();
+            assert!(ok, "git {args:?}");
+        };
+        run(&["init", "-q"]);
+        std::fs::write(d.path().join("s.yaml"), "x").unwrap();
+        run(&["add", "s.yaml"]);
+        run(&[
+            "-c",
+            "user.name=t",
+            "-c",
+            "user.email=t@example.invalid",
+            "commit",
+            "-qm",
+            "t",
+        ]);
+        let p = of(&d.path().join("s.yaml")).unwrap();
+        assert_eq!(p.commit.len(), 40);
+        assert!(!p.dirty);
+        std::fs::write(d.path().join("s.yaml"), "y").unwrap();
+        assert!(of(&d.path().join("s.yaml")).unwrap().dirty);
+    }
+}
