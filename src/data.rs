@@ -341,6 +341,9 @@ fn read_csv(path: &Path, plan: &Plan, numeric: &[&Column], text: &[&Column]) -> 
             (df, true)
         }
     };
+    if !as_text {
+        return typed_frame(&df, path, numeric, text);
+    }
     let mut frame = FileFrame {
         numeric: vec![],
         not_number: vec![],
@@ -348,28 +351,23 @@ fn read_csv(path: &Path, plan: &Plan, numeric: &[&Column], text: &[&Column]) -> 
         height: df.height(),
     };
     for c in numeric {
-        if as_text {
-            let values = text_values(&df, path, &c.name)?;
-            let mut col = Vec::with_capacity(values.len());
-            let mut bad = Vec::new();
-            for (i, v) in values.into_iter().enumerate() {
-                match v.as_deref().map(str::trim) {
-                    None | Some("") => col.push(None),
-                    Some(s) => match s.parse::<f64>() {
-                        Ok(v) => col.push(Some(v)),
-                        Err(_) => {
-                            bad.push((i, s.to_string()));
-                            col.push(Some(f64::NAN));
-                        }
-                    },
-                }
+        let values = text_values(&df, path, &c.name)?;
+        let mut col = Vec::with_capacity(values.len());
+        let mut bad = Vec::new();
+        for (i, v) in values.into_iter().enumerate() {
+            match v.as_deref().map(str::trim) {
+                None | Some("") => col.push(None),
+                Some(s) => match s.parse::<f64>() {
+                    Ok(v) => col.push(Some(v)),
+                    Err(_) => {
+                        bad.push((i, s.to_string()));
+                        col.push(Some(f64::NAN));
+                    }
+                },
             }
-            frame.numeric.push(col);
-            frame.not_number.push(bad);
-        } else {
-            frame.numeric.push(f64_values(&df, path, &c.name)?);
-            frame.not_number.push(vec![]);
         }
+        frame.numeric.push(col);
+        frame.not_number.push(bad);
     }
     for c in text {
         frame.text.push(text_values(&df, path, &c.name)?);
@@ -439,6 +437,16 @@ fn read_parquet(
         )
         .collect();
     let df = lf.select(exprs).collect().map_err(|e| csv_error(path, e))?;
+    typed_frame(&df, path, numeric, text)
+}
+
+/// A frame whose numeric columns are already Float64 and text columns String.
+fn typed_frame(
+    df: &DataFrame,
+    path: &Path,
+    numeric: &[&Column],
+    text: &[&Column],
+) -> Result<FileFrame> {
     let mut frame = FileFrame {
         numeric: vec![],
         not_number: vec![],
@@ -446,11 +454,11 @@ fn read_parquet(
         height: df.height(),
     };
     for c in numeric {
-        frame.numeric.push(f64_values(&df, path, &c.name)?);
+        frame.numeric.push(f64_values(df, path, &c.name)?);
         frame.not_number.push(vec![]);
     }
     for c in text {
-        frame.text.push(text_values(&df, path, &c.name)?);
+        frame.text.push(text_values(df, path, &c.name)?);
     }
     Ok(frame)
 }
