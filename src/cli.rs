@@ -37,6 +37,10 @@ pub enum Command {
         /// Record no wall-clock time, so that two runs are byte-identical.
         #[arg(long)]
         no_wall_clock: bool,
+        /// The final run: open the test split once, after every choice is made on
+        /// validation, and record the opening in the spec's test ledger.
+        #[arg(long)]
+        open_test: bool,
     },
     /// Check the spec and the data without fitting anything: exit 0 when fine,
     /// 1 when problems were found, 2 for a usage or spec error.
@@ -77,12 +81,14 @@ impl From<Args> for Request {
                 out,
                 templates,
                 no_wall_clock,
+                open_test,
             } => Request::Run(RunOptions {
                 spec,
                 key,
                 out,
                 templates,
                 no_wall_clock,
+                open_test,
             }),
             Command::Check { spec, json } => Request::Check { spec, json },
             Command::Verify { dir, pubkey } => Request::Verify { dir, pubkey },

@@ -73,6 +73,8 @@ pub struct Outcome {
     pub stdout: String,
     /// The exit code (0, or 1 when `check` found problems).
     pub code: i32,
+    /// Warnings for stderr.
+    pub warnings: Vec<String>,
 }
 
 fn rate(v: Option<f64>) -> String {
@@ -82,6 +84,7 @@ fn rate(v: Option<f64>) -> String {
 /// Carries out a request.
 pub fn run(request: &Request) -> Result<Outcome> {
     let mut code = error::exit::OK;
+    let mut warnings = Vec::new();
     let stdout = match request {
         Request::Check { spec, json } => {
             let report = check::check(spec)?;
@@ -99,11 +102,16 @@ pub fn run(request: &Request) -> Result<Outcome> {
         }
         Request::Run(opts) => {
             let s = pipeline::run(opts)?;
+            warnings = s.warnings.clone();
+            let test = match s.test_f1 {
+                Some(_) => format!("test F1 {}", rate(s.test_f1)),
+                None if opts.open_test => "test F1 n/a".to_string(),
+                None => "test split sealed; --open-test for the final run".to_string(),
+            };
             format!(
-                "chosen: {} (validation F1 {}, test F1 {})\nwrote: {}\n",
+                "chosen: {} (validation F1 {}, {test})\nwrote: {}\n",
                 s.chosen,
                 rate(s.validation_f1),
-                rate(s.test_f1),
                 s.out.display()
             )
         }
@@ -126,5 +134,9 @@ pub fn run(request: &Request) -> Result<Outcome> {
         }
         Request::Schema => spec::schema_json(),
     };
-    Ok(Outcome { stdout, code })
+    Ok(Outcome {
+        stdout,
+        code,
+        warnings,
+    })
 }

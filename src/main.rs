@@ -11,6 +11,9 @@ fn main() -> ExitCode {
     let request = anomark::Request::from(args);
     match anomark::run(&request) {
         Ok(outcome) => {
+            for w in &outcome.warnings {
+                eprintln!("anomark: warning: {w}");
+            }
             // A closed pipe (`anomark schema | head`) is not an error worth a message.
             let mut out = std::io::stdout().lock();
             let _ = out.write_all(outcome.stdout.as_bytes());

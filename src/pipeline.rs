@@ -22,7 +22,7 @@ use crate::metrics::{cmp_fraction, Metrics};
 use crate::output::{self, RunFiles};
 use crate::record::{
     self, fmt_f64, CandidateRecord, InputRecord, LabelRecord, RunRecord, SelectionRecord,
-    SpecRecord, SplitRecord, WallClock,
+    SpecRecord, SplitRecord, TestOpenings, WallClock,
 };
 use crate::spec::{
     self, DetectorKind, MissingPolicy, Plan, SelectionMetric, SplitPlan, ThresholdPolicy,
@@ -62,6 +62,8 @@ pub struct RunOptions {
     pub templates: Option<PathBuf>,
     /// Leave the wall-clock field null, making the directory byte-identical across runs.
     pub no_wall_clock: bool,
+    /// The final run: open the test split once and record it on the ledger.
+    pub open_test: bool,
 }
 
 /// What a run produced.
@@ -73,8 +75,10 @@ pub struct RunSummary {
     pub chosen: String,
     /// Validation F1 of the chosen candidate.
     pub validation_f1: Option<f64>,
-    /// Test F1 of the chosen candidate.
+    /// Test F1 of the chosen candidate (None when the test split stayed sealed).
     pub test_f1: Option<f64>,
+    /// Warnings for stderr (a test split opened under several specs).
+    pub warnings: Vec<String>,
 }
 
 struct Candidate {
@@ -274,36 +278,89 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
     }
     let chosen = select(&candidates, plan.selection);
 
-    // Every choice is fixed: open the test split, once.
-    let test_rows = splits.test.open();
-    let test_y: Vec<bool> = test_rows
-        .iter()
-        .map(|r| data.is_anomaly[r.0 as usize])
-        .collect();
-    let test_x: Vec<Array2<f64>> = fitted_sets
-        .iter()
-        .map(|f| f.apply(&data, &test_rows))
-        .collect::<Result<_>>()?;
-    let mut test_scores = Vec::new();
-    for c in &candidates {
-        test_scores.push(checked_scores(
-            &c.name,
-            c.model.as_ref(),
-            &test_x[c.set],
-            &test_rows,
-            &data,
-        )?);
-    }
-
-    let manifests = [
+    let test_manifest = splits.test.manifest().to_string();
+    let test_counts = splits.test.counts();
+    let mut manifests: std::collections::BTreeMap<String, String> = [
         (Part::Train, &splits.train),
         (Part::Validation, &splits.validation),
-        (Part::Test, &test_rows),
     ]
+    .iter()
     .map(|(p, rows)| {
         let hs: Vec<ContentHash> = rows.iter().map(|r| hashes[r.0 as usize]).collect();
         (p.name().to_string(), hash::manifest(&hs))
-    });
+    })
+    .collect();
+    manifests.insert(Part::Test.name().into(), test_manifest.clone());
+
+    // Every choice is fixed. Only a final run opens the test split, once, and
+    // the opening is on the ledger before any test score is computed.
+    let spec_blake3 = hash::bytes(&plan.spec_bytes);
+    let mut warnings = Vec::new();
+    let (test_rows, test_scores, test_y, openings) = if opts.open_test {
+        let entries = crate::audit::ledger::append(
+            &plan.ledger,
+            &crate::audit::ledger::Entry {
+                test_manifest: test_manifest.clone(),
+                spec_blake3: spec_blake3.clone(),
+                chosen: candidates[chosen].name.clone(),
+                opened_utc: record::rfc3339(
+                    SystemTime::now()
+                        .duration_since(SystemTime::UNIX_EPOCH)
+                        .map(|d| d.as_secs())
+                        .unwrap_or(0),
+                ),
+                tool: record::tool(),
+            },
+        )?;
+        let same: Vec<&crate::audit::ledger::Entry> = entries
+            .iter()
+            .filter(|e| e.test_manifest == test_manifest)
+            .collect();
+        let mut specs: Vec<String> = same.iter().map(|e| e.spec_blake3.clone()).collect();
+        specs.sort();
+        specs.dedup();
+        if specs.len() > 1 {
+            warnings.push(format!(
+                "this test split has now been opened {} times under {} different specs ({}); \
+                 numbers from a test set that informed earlier choices are no longer a clean \
+                 held-out estimate",
+                same.len(),
+                specs.len(),
+                specs.join(", ")
+            ));
+        }
+        let openings = TestOpenings {
+            ledger: plan
+                .ledger
+                .file_name()
+                .map(|s| s.to_string_lossy().into_owned())
+                .unwrap_or_default(),
+            count: same.len(),
+            spec_blake3: specs,
+        };
+        let test_rows = splits.test.open();
+        let test_y: Vec<bool> = test_rows
+            .iter()
+            .map(|r| data.is_anomaly[r.0 as usize])
+            .collect();
+        let test_x: Vec<Array2<f64>> = fitted_sets
+            .iter()
+            .map(|f| f.apply(&data, &test_rows))
+            .collect::<Result<_>>()?;
+        let mut test_scores = Vec::new();
+        for c in &candidates {
+            test_scores.push(checked_scores(
+                &c.name,
+                c.model.as_ref(),
+                &test_x[c.set],
+                &test_rows,
+                &data,
+            )?);
+        }
+        (test_rows, test_scores, test_y, Some(openings))
+    } else {
+        (vec![], vec![vec![]; candidates.len()], vec![], None)
+    };
 
     let candidate_records: Vec<CandidateRecord> = candidates
         .iter()
@@ -320,7 +377,9 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
             threshold_met: c.choice.met,
             threshold_note: c.choice.note.clone(),
             validation: c.validation.clone(),
-            test: Metrics::of(ts, &test_y, c.choice.tau, beta, plan.bootstrap),
+            test: openings
+                .is_some()
+                .then(|| Metrics::of(ts, &test_y, c.choice.tau, beta, plan.bootstrap)),
             chosen: i == chosen,
         })
         .collect();
@@ -344,7 +403,7 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
         tool: record::tool(),
         spec: SpecRecord {
             file: spec_file.clone(),
-            blake3: hash::bytes(&plan.spec_bytes),
+            blake3: spec_blake3.clone(),
         },
         provenance: crate::audit::provenance::of(&opts.spec),
         inputs: data
@@ -370,8 +429,11 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
             report: splits.report.clone(),
             requested: splits.report.requested.map(by_name),
             counts: by_name(splits.report.counts),
-            manifest_blake3: manifests.iter().cloned().collect(),
+            manifest_blake3: manifests,
         },
+        test_opened: openings.is_some(),
+        test_counts,
+        test_openings: openings,
         threshold_policy: plan.threshold,
         bootstrap: plan.bootstrap,
         selection: SelectionRecord {
@@ -409,7 +471,8 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
         out,
         chosen: c.name.clone(),
         validation_f1: c.validation.f1,
-        test_f1: c.test.f1,
+        test_f1: c.test.as_ref().and_then(|t| t.f1),
+        warnings,
     })
 }
 
@@ -701,13 +764,24 @@ fn card_context(
             .iter()
             .map(|c| metric_row(&c.name, c.chosen, &c.validation))
             .collect(),
-        test_chosen: metric_row(&chosen.name, true, &chosen.test),
+        test_chosen: chosen
+            .test
+            .as_ref()
+            .map(|t| metric_row(&chosen.name, true, t)),
         test_others: rec
             .candidates
             .iter()
             .filter(|c| !c.chosen)
-            .map(|c| metric_row(&c.name, false, &c.test))
+            .filter_map(|c| c.test.as_ref().map(|t| metric_row(&c.name, false, t)))
             .collect(),
+        test_openings: rec.test_openings.as_ref().map(|o| {
+            format!(
+                "The ledger `{}` records {} opening(s) of this test split, under spec hash(es) {}.",
+                o.ledger,
+                o.count,
+                o.spec_blake3.join(", ")
+            )
+        }),
         test_anomalies: rec.split.report.counts[Part::Test as usize].anomaly,
         wall_clock: rec.wall_clock.as_ref().map(|w| {
             format!(

@@ -66,6 +66,12 @@ pub struct RunRecord {
     pub feature_sets: Vec<FittedFeatures>,
     /// The split.
     pub split: SplitRecord,
+    /// Whether this run opened the test split (`--open-test`).
+    pub test_opened: bool,
+    /// Test rows by label (counted even when sealed).
+    pub test_counts: Counts,
+    /// The ledger's record of openings of this test split (final runs only).
+    pub test_openings: Option<TestOpenings>,
     /// The threshold policy, as declared.
     pub threshold_policy: ThresholdPolicy,
     /// The bootstrap behind the F1, AP and AUC intervals.
@@ -168,11 +174,23 @@ pub struct CandidateRecord {
     pub threshold_note: Option<String>,
     /// Validation metrics at τ.
     pub validation: Metrics,
-    /// Test metrics at τ.
-    pub test: Metrics,
+    /// Test metrics at τ (null while the test split is sealed).
+    pub test: Option<Metrics>,
     /// `true` for the chosen candidate. The test numbers of every candidate,
     /// chosen or not, were computed after selection and played no part in it.
     pub chosen: bool,
+}
+
+/// How often the test split has been opened, from the ledger.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct TestOpenings {
+    /// The ledger file's name.
+    pub ledger: String,
+    /// Openings of this test manifest, this one included.
+    pub count: usize,
+    /// The distinct spec hashes that opened it, sorted.
+    pub spec_blake3: Vec<String>,
 }
 
 /// Wall-clock facts, the record's only non-reproducible field.

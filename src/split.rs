@@ -64,12 +64,18 @@ pub struct Counts {
 pub struct SealedTest {
     rows: Vec<RowId>,
     counts: Counts,
+    manifest: String,
 }
 
 impl SealedTest {
     /// How many rows of each label the test split holds (counting is not opening).
     pub fn counts(&self) -> Counts {
         self.counts
+    }
+
+    /// The blake3 of the test split's manifest (hashing is not opening).
+    pub fn manifest(&self) -> &str {
+        &self.manifest
     }
 
     /// Opens the test split. Called from `pipeline` only, after selection.
@@ -299,6 +305,12 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
         train,
         validation,
         test: SealedTest {
+            manifest: crate::audit::hash::manifest(
+                &test
+                    .iter()
+                    .map(|r| hashes[r.0 as usize])
+                    .collect::<Vec<_>>(),
+            ),
             rows: test,
             counts: counts[2],
         },

@@ -5,4 +5,5 @@
 
 pub mod hash;
 pub mod leak;
+pub mod ledger;
 pub mod provenance;

@@ -164,8 +164,10 @@ pub struct CardContext {
     pub thresholds: Vec<ThresholdRow>,
     /// Validation metrics of all candidates.
     pub validation: Vec<MetricRow>,
-    /// Test metrics of the chosen candidate.
-    pub test_chosen: MetricRow,
+    /// Test metrics of the chosen candidate (None while the test split is sealed).
+    pub test_chosen: Option<MetricRow>,
+    /// How often the test split has been opened, as one sentence (final runs).
+    pub test_openings: Option<String>,
     /// Test metrics of the other candidates (not used for selection).
     pub test_others: Vec<MetricRow>,
     /// Anomalies in the test split.

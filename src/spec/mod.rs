@@ -209,6 +209,8 @@ pub struct Plan {
     pub card: CardText,
     /// Default output directory, resolved against the spec's directory.
     pub output: Option<PathBuf>,
+    /// The test ledger.
+    pub ledger: PathBuf,
 }
 
 impl Plan {
@@ -1004,6 +1006,13 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
             safety_caution,
         },
         output: raw.output.as_ref().map(|o| base.join(&o.value)),
+        ledger: base.join(raw.ledger.clone().unwrap_or_else(|| {
+            let stem = path
+                .file_stem()
+                .map(|s| s.to_string_lossy().into_owned())
+                .unwrap_or_else(|| "spec".into());
+            format!("{stem}.test-ledger.jsonl")
+        })),
     })
 }
 

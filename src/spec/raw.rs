@@ -44,6 +44,10 @@ pub struct RawSpec {
     pub bootstrap: Option<RawBootstrap>,
     /// Text for the model card.
     pub card: RawCard,
+    /// The test ledger, relative to the spec (default `<spec name>.test-ledger.jsonl`
+    /// beside it); commit it with the spec.
+    #[serde(default)]
+    pub ledger: Option<String>,
     /// Default output directory, relative to the spec file (`--out` overrides it).
     #[serde(default)]
     #[schemars(with = "Option<String>")]

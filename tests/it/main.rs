@@ -12,6 +12,7 @@ mod examples;
 mod featuresets;
 mod fuzz;
 mod leakage;
+mod ledger;
 mod schema;
 mod signing;
 mod sources;

@@ -74,6 +74,7 @@ impl Case {
     }
 
     /// The usual run: `run spec.yaml --key key.pem --out out --no-wall-clock`.
+    /// The usual final run: `run spec.yaml --key key.pem --out out --no-wall-clock --open-test`.
     pub fn run_spec(self) -> Self {
         self.args([
             "run",
@@ -83,6 +84,7 @@ impl Case {
             "--out",
             "out",
             "--no-wall-clock",
+            "--open-test",
         ])
     }
 
