@@ -80,7 +80,13 @@ fn failing(n: &mut Normal, mode: usize) -> [f64; 6] {
         _ => {
             let a = (n.0.next_u32() % 6) as usize;
             let b = (a + 1 + (n.0.next_u32() % 5) as usize) % 6;
-            let sign = |n: &mut Normal| if n.0.next_u32().is_multiple_of(2) { 1.0 } else { -1.0 };
+            let sign = |n: &mut Normal| {
+                if n.0.next_u32().is_multiple_of(2) {
+                    1.0
+                } else {
+                    -1.0
+                }
+            };
             let (sa, sb) = (sign(n), sign(n));
             x[a] += sa * n.between(1.0, 1.6);
             x[b] += sb * n.between(1.0, 1.6);
