@@ -317,7 +317,9 @@ pub fn parse_raw(path: &Path, text: &str) -> Result<RawSpec> {
             .filter(|&(l, _)| l > 0)
             .unwrap_or((1, 1));
         let field = clean_path(&failed_path.into_inner());
-        spec_error(path, text, line, column, field, bare_message(&e))
+        let line_text = text.lines().nth(line.saturating_sub(1)).unwrap_or("");
+        let message = with_found(bare_message(&e), line_text, column);
+        spec_error(path, text, line, column, field, message)
     })
 }
 
@@ -332,6 +334,29 @@ fn clean_path(path: &str) -> String {
         .collect::<Vec<_>>()
         .join(".")
         .replace(".[", "[")
+}
+
+/// For the parser's terse type errors ("invalid u64"), says what was expected
+/// in words and what was found: the scalar at the error's column.
+fn with_found(msg: String, line_text: &str, column: usize) -> String {
+    let expected = match msg.as_str() {
+        "invalid u64" | "invalid u32" | "invalid usize" => "a whole number ≥ 0",
+        "invalid i64" | "invalid i32" => "a whole number",
+        "invalid floating point" | "invalid f64" => "a number",
+        "invalid boolean" | "invalid bool" => "`true` or `false`",
+        _ => return msg,
+    };
+    let rest: String = line_text.chars().skip(column.saturating_sub(1)).collect();
+    let found: String = rest
+        .chars()
+        .take_while(|c| !matches!(c, ',' | '}' | ']' | '#'))
+        .collect();
+    let found = found.trim();
+    if found.is_empty() {
+        format!("expected {expected}")
+    } else {
+        format!("expected {expected}, found `{found}`")
+    }
 }
 
 /// The parser's message without its own position suffix: ours is printed in front.
@@ -1215,7 +1240,11 @@ card:
 
     spec_error!(wrong_type_names_field,
         yaml: GOOD.replace("seed: 7", "seed: seven"),
-        line: 11, field: "split.protocol.seed", says: "");
+        line: 11, field: "split.protocol.seed", says: "expected a whole number ≥ 0, found `seven`");
+
+    spec_error!(wrong_type_in_a_flow_map,
+        yaml: GOOD.replace("    seed: 7\n", "    seed: 7\n    normal: {train: x, validation: 0.2, test: 0.2}\n"),
+        line: 12, field: "split.protocol.normal.train", says: "expected a number, found `x`");
 
     spec_error!(fractions_must_sum_to_one,
         yaml: GOOD.replace("    seed: 7\n", "    seed: 7\n    normal: {train: 0.7, validation: 0.2, test: 0.2}\n"),

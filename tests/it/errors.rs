@@ -53,7 +53,14 @@ fn wrong_type_names_the_field() {
     standard(&rows(50, 4, 1))
         .file("spec.yaml", bad)
         .run_spec()
-        .fails(2, &["spec.yaml:15:", "field `split.protocol.seed`"]);
+        .fails(
+            2,
+            &[
+                "spec.yaml:15:",
+                "field `split.protocol.seed`",
+                "expected a whole number ≥ 0, found `many`",
+            ],
+        );
 }
 
 #[test]
