@@ -51,13 +51,20 @@ pub enum Command {
         #[arg(long)]
         json: bool,
     },
-    /// Check a run directory's signature and every file's hash.
+    /// Check a run directory's signature and every file's hash; with `--data`,
+    /// also recompute it from the spec and data and compare every number.
     Verify {
         /// The run directory.
         dir: PathBuf,
         /// The Ed25519 public key (SPKI PEM).
         #[arg(long, value_name = "PATH")]
         pubkey: PathBuf,
+        /// Recompute the run from its spec and inputs and compare.
+        #[arg(long, requires = "spec")]
+        data: bool,
+        /// The spec the run used, in its place beside the data (with `--data`).
+        #[arg(long, value_name = "PATH")]
+        spec: Option<PathBuf>,
     },
     /// Make a new Ed25519 key pair.
     Keygen {
@@ -91,7 +98,16 @@ impl From<Args> for Request {
                 open_test,
             }),
             Command::Check { spec, json } => Request::Check { spec, json },
-            Command::Verify { dir, pubkey } => Request::Verify { dir, pubkey },
+            Command::Verify {
+                dir,
+                pubkey,
+                data,
+                spec,
+            } => Request::Verify {
+                dir,
+                pubkey,
+                spec: if data { spec } else { None },
+            },
             Command::Keygen { private, public } => Request::Keygen { private, public },
             Command::Schema => Request::Schema,
         }

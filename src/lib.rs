@@ -54,6 +54,8 @@ pub enum Request {
         dir: PathBuf,
         /// The public key.
         pubkey: PathBuf,
+        /// With a spec: recompute the run and compare.
+        spec: Option<PathBuf>,
     },
     /// Make a key pair.
     Keygen {
@@ -115,13 +117,21 @@ pub fn run(request: &Request) -> Result<Outcome> {
                 s.out.display()
             )
         }
-        Request::Verify { dir, pubkey } => {
-            let m = pipeline::verify(dir, pubkey)?;
+        Request::Verify { dir, pubkey, spec } => {
+            let m = match spec {
+                Some(s) => pipeline::verify_by_recomputation(dir, pubkey, s)?,
+                None => pipeline::verify(dir, pubkey)?,
+            };
             format!(
-                "verified: {} ({} files, signature by {})\n",
+                "verified: {} ({} files, signature by {}{})\n",
                 dir.display(),
                 m.files.len(),
-                m.key_fingerprint
+                m.key_fingerprint,
+                if spec.is_some() {
+                    "; recomputed from spec and data, every file matches"
+                } else {
+                    ""
+                }
             )
         }
         Request::Keygen { private, public } => {

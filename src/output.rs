@@ -42,6 +42,16 @@ impl RunFiles {
         self.files.insert(name.to_string(), bytes);
     }
 
+    /// A file's bytes, if added.
+    pub fn get(&self, name: &str) -> Option<&[u8]> {
+        self.files.get(name).map(Vec::as_slice)
+    }
+
+    /// The file names, sorted.
+    pub fn names(&self) -> Vec<String> {
+        self.files.keys().cloned().collect()
+    }
+
     /// Writes everything to a temporary directory beside `target`, signs the
     /// manifest, and renames the directory into place.
     pub fn commit(self, target: &Path, key: &SigningKey) -> Result<PathBuf> {

@@ -199,10 +199,20 @@ fn csv_field(s: &str) -> String {
     }
 }
 
+/// What a recomputation takes from the recorded run instead of the clock,
+/// the ledger and the private key.
+#[derive(Debug, Clone)]
+pub struct Replay {
+    /// The recorded wall-clock field.
+    pub wall_clock: Option<WallClock>,
+    /// The recorded ledger summary.
+    pub openings: Option<TestOpenings>,
+    /// The recorded signing key's fingerprint.
+    pub key_fingerprint: String,
+}
+
 /// Runs the whole protocol and writes the signed run directory.
 pub fn run(opts: &RunOptions) -> Result<RunSummary> {
-    let started = SystemTime::now();
-    let clock = Instant::now();
     let plan = spec::load(&opts.spec)?;
     let out = match (&opts.out, &plan.output) {
         (Some(o), _) => o.clone(),
@@ -216,6 +226,27 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
     };
     output::check_target(&out)?;
     let key = crate::sign::load_private(&opts.key)?;
+    let fingerprint = crate::sign::fingerprint(&key.verifying_key());
+    let (files, mut summary) = execute(opts, plan, &fingerprint, None)?;
+    summary.out = files.commit(&out, &key)?;
+    Ok(summary)
+}
+
+/// Recomputes a run in memory from its spec, data and the recorded values
+/// that no computation can reproduce (clock, ledger, key).
+pub fn recompute(opts: &RunOptions, replay: &Replay) -> Result<RunFiles> {
+    let plan = spec::load(&opts.spec)?;
+    execute(opts, plan, &replay.key_fingerprint, Some(replay)).map(|r| r.0)
+}
+
+fn execute(
+    opts: &RunOptions,
+    plan: Plan,
+    fingerprint: &str,
+    replay: Option<&Replay>,
+) -> Result<(RunFiles, RunSummary)> {
+    let started = SystemTime::now();
+    let clock = Instant::now();
 
     let data = data::load(&plan)?;
     let hashes = hash::rows(&data.x, &data.is_anomaly);
@@ -297,21 +328,25 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
     let spec_blake3 = hash::bytes(&plan.spec_bytes);
     let mut warnings = Vec::new();
     let (test_rows, test_scores, test_y, openings) = if opts.open_test {
-        let entries = crate::audit::ledger::append(
-            &plan.ledger,
-            &crate::audit::ledger::Entry {
-                test_manifest: test_manifest.clone(),
-                spec_blake3: spec_blake3.clone(),
-                chosen: candidates[chosen].name.clone(),
-                opened_utc: record::rfc3339(
-                    SystemTime::now()
-                        .duration_since(SystemTime::UNIX_EPOCH)
-                        .map(|d| d.as_secs())
-                        .unwrap_or(0),
-                ),
-                tool: record::tool(),
-            },
-        )?;
+        let entries = match replay {
+            // A recomputation neither opens the ledger nor adds to it.
+            Some(_) => vec![],
+            None => crate::audit::ledger::append(
+                &plan.ledger,
+                &crate::audit::ledger::Entry {
+                    test_manifest: test_manifest.clone(),
+                    spec_blake3: spec_blake3.clone(),
+                    chosen: candidates[chosen].name.clone(),
+                    opened_utc: record::rfc3339(
+                        SystemTime::now()
+                            .duration_since(SystemTime::UNIX_EPOCH)
+                            .map(|d| d.as_secs())
+                            .unwrap_or(0),
+                    ),
+                    tool: record::tool(),
+                },
+            )?,
+        };
         let same: Vec<&crate::audit::ledger::Entry> = entries
             .iter()
             .filter(|e| e.test_manifest == test_manifest)
@@ -329,15 +364,17 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
                 specs.join(", ")
             ));
         }
-        let openings = TestOpenings {
-            ledger: plan
-                .ledger
-                .file_name()
-                .map(|s| s.to_string_lossy().into_owned())
-                .unwrap_or_default(),
-            count: same.len(),
-            spec_blake3: specs,
-        };
+        let openings = replay
+            .and_then(|r| r.openings.clone())
+            .unwrap_or(TestOpenings {
+                ledger: plan
+                    .ledger
+                    .file_name()
+                    .map(|s| s.to_string_lossy().into_owned())
+                    .unwrap_or_default(),
+                count: same.len(),
+                spec_blake3: specs,
+            });
         let test_rows = splits.test.open();
         let test_y: Vec<bool> = test_rows
             .iter()
@@ -389,7 +426,7 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
         .file_name()
         .map(|s| s.to_string_lossy().into_owned())
         .unwrap_or_default();
-    let wall_clock = (!opts.no_wall_clock).then(|| WallClock {
+    let measured = (!opts.no_wall_clock).then(|| WallClock {
         started_utc: record::rfc3339(
             started
                 .duration_since(SystemTime::UNIX_EPOCH)
@@ -398,6 +435,10 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
         ),
         seconds: (clock.elapsed().as_millis() as f64) / 1000.0,
     });
+    let wall_clock = match replay {
+        Some(r) => r.wall_clock.clone(),
+        None => measured,
+    };
     let rec = RunRecord {
         format: record::FORMAT,
         tool: record::tool(),
@@ -460,21 +501,25 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
             &test_scores,
         ),
     );
-    let ctx = card_context(&plan, &rec, &spec_file, &key);
+    files.add(SPEC_COPY, plan.spec_bytes.clone());
+    let ctx = card_context(&plan, &rec, &spec_file, fingerprint);
     let (md, html) = card::render(&ctx, opts.templates.as_deref())?;
     files.add("card.md", md.into_bytes());
     files.add("card.html", html.into_bytes());
-    let out = files.commit(&out, &key)?;
 
     let c = &rec.candidates[chosen];
-    Ok(RunSummary {
-        out,
+    let summary = RunSummary {
+        out: PathBuf::new(),
         chosen: c.name.clone(),
         validation_f1: c.validation.f1,
         test_f1: c.test.as_ref().and_then(|t| t.f1),
         warnings,
-    })
+    };
+    Ok((files, summary))
 }
+
+/// The run directory's copy of the spec's exact bytes.
+pub const SPEC_COPY: &str = "spec.yaml";
 
 /// Names the feature set in a detector's error when there are several.
 fn in_set(e: Error, set: &spec::FeatureSetPlan) -> Error {
@@ -649,7 +694,7 @@ fn card_context(
     plan: &Plan,
     rec: &RunRecord,
     spec_file: &str,
-    key: &ed25519_dalek::SigningKey,
+    key_fingerprint: &str,
 ) -> CardContext {
     let chosen = rec
         .candidates
@@ -696,7 +741,7 @@ fn card_context(
         tool: rec.tool.clone(),
         spec_file: spec_file.into(),
         spec_blake3: rec.spec.blake3.clone(),
-        key_fingerprint: crate::sign::fingerprint(&key.verifying_key()),
+        key_fingerprint: key_fingerprint.to_string(),
         inputs: rec
             .inputs
             .iter()
@@ -819,4 +864,144 @@ fn fmt_sig(v: f64) -> String {
 pub fn verify(dir: &Path, pubkey: &Path) -> Result<crate::sign::Manifest> {
     let key = crate::sign::load_public(pubkey)?;
     crate::sign::verify_dir(dir, &key)
+}
+
+/// The first place where two texts differ: a JSON path for JSON, else a line.
+fn first_difference(name: &str, recorded: &[u8], recomputed: &[u8]) -> String {
+    if name.ends_with(".json") {
+        if let (Ok(a), Ok(b)) = (
+            serde_json::from_slice::<serde_json::Value>(recorded),
+            serde_json::from_slice::<serde_json::Value>(recomputed),
+        ) {
+            fn walk(a: &serde_json::Value, b: &serde_json::Value, at: String) -> Option<String> {
+                use serde_json::Value::*;
+                match (a, b) {
+                    (Object(x), Object(y)) => {
+                        for (k, v) in x {
+                            match y.get(k) {
+                                Some(w) => {
+                                    if let Some(p) = walk(v, w, format!("{at}.{k}")) {
+                                        return Some(p);
+                                    }
+                                }
+                                None => return Some(format!("{at}.{k} (missing when recomputed)")),
+                            }
+                        }
+                        y.keys()
+                            .find(|k| !x.contains_key(*k))
+                            .map(|k| format!("{at}.{k} (only when recomputed)"))
+                    }
+                    (Array(x), Array(y)) if x.len() == y.len() => x
+                        .iter()
+                        .zip(y)
+                        .enumerate()
+                        .find_map(|(i, (v, w))| walk(v, w, format!("{at}[{i}]"))),
+                    _ if a == b => None,
+                    _ => Some(format!("{at}: recorded {a}, recomputed {b}")),
+                }
+            }
+            if let Some(p) = walk(&a, &b, String::new()) {
+                return format!("`{name}` field {}", p.trim_start_matches('.'));
+            }
+        }
+    }
+    let (a, b) = (
+        String::from_utf8_lossy(recorded),
+        String::from_utf8_lossy(recomputed),
+    );
+    let line = a
+        .lines()
+        .zip(b.lines())
+        .position(|(x, y)| x != y)
+        .map(|i| i + 1)
+        .unwrap_or(a.lines().count().min(b.lines().count()) + 1);
+    format!("`{name}` first differs at line {line}")
+}
+
+/// Verifies a run directory, then recomputes it from `spec` and the data it
+/// names (refusing if the spec or an input's hash differs from the record)
+/// and confirms that every file matches, reporting the first difference.
+pub fn verify_by_recomputation(
+    dir: &Path,
+    pubkey: &Path,
+    spec: &Path,
+) -> Result<crate::sign::Manifest> {
+    let manifest = verify(dir, pubkey)?;
+    let fail = |problems: Vec<String>| Error::Verify {
+        dir: dir.to_path_buf(),
+        problems,
+    };
+    let read = |p: PathBuf| std::fs::read(&p).map_err(|e| Error::io(p, "reading", e));
+    let recorded_spec = read(dir.join(SPEC_COPY))?;
+    if read(spec.to_path_buf())? != recorded_spec {
+        return Err(fail(vec![format!(
+            "the spec `{}` differs from the recorded `{SPEC_COPY}`; recomputation needs the spec the run used",
+            spec.display()
+        )]));
+    }
+    let run: serde_json::Value = serde_json::from_slice(&read(dir.join("run.json"))?)
+        .map_err(|e| fail(vec![format!("`run.json` is unreadable: {e}")]))?;
+    let base = spec.parent().unwrap_or(Path::new(""));
+    let mut problems = Vec::new();
+    for input in run["inputs"].as_array().into_iter().flatten() {
+        let rel = input["path"].as_str().unwrap_or_default();
+        let p = base.join(rel);
+        match hash::file(&p) {
+            Ok(d) if Some(d.blake3.as_str()) == input["blake3"].as_str() => {}
+            Ok(d) => problems.push(format!(
+                "input `{rel}` has blake3 {} but the run recorded {}",
+                d.blake3,
+                input["blake3"].as_str().unwrap_or("?")
+            )),
+            Err(e) => problems.push(format!("input `{rel}`: {e}")),
+        }
+    }
+    if !problems.is_empty() {
+        problems.push("recomputation refused: the inputs are not the recorded ones".into());
+        return Err(fail(problems));
+    }
+    let replay = Replay {
+        wall_clock: serde_json::from_value(run["wall-clock"].clone()).unwrap_or(None),
+        openings: serde_json::from_value(run["test-openings"].clone()).unwrap_or(None),
+        key_fingerprint: manifest.key_fingerprint.clone(),
+    };
+    let opts = RunOptions {
+        spec: spec.to_path_buf(),
+        key: PathBuf::new(),
+        out: None,
+        templates: None,
+        no_wall_clock: run["wall-clock"].is_null(),
+        open_test: run["test-opened"].as_bool().unwrap_or(false),
+    };
+    let files = recompute(&opts, &replay)?;
+    for name in manifest.files.keys() {
+        let recorded = read(dir.join(name))?;
+        match files.get(name) {
+            Some(b) if b == recorded.as_slice() => {}
+            Some(b) => {
+                let mut p = first_difference(name, &recorded, b);
+                if name.starts_with("card.") {
+                    p.push_str(
+                        " (a card made with `--templates` cannot be recomputed without them)",
+                    );
+                }
+                return Err(fail(vec![p]));
+            }
+            None => {
+                return Err(fail(vec![format!(
+                    "`{name}` is not produced when recomputed"
+                )]))
+            }
+        }
+    }
+    if let Some(extra) = files
+        .names()
+        .into_iter()
+        .find(|n| !manifest.files.contains_key(n))
+    {
+        return Err(fail(vec![format!(
+            "recomputation produces `{extra}`, which the run lacks"
+        )]));
+    }
+    Ok(manifest)
 }

@@ -182,7 +182,7 @@ pub struct CandidateRecord {
 }
 
 /// How often the test split has been opened, from the ledger.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct TestOpenings {
     /// The ledger file's name.
@@ -194,7 +194,7 @@ pub struct TestOpenings {
 }
 
 /// Wall-clock facts, the record's only non-reproducible field.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct WallClock {
     /// Start of the run, UTC, RFC 3339.

@@ -21,7 +21,8 @@ fn run_writes_the_signed_directory_and_a_summary() {
             "manifest.json",
             "manifest.sig",
             "run.json",
-            "scores.csv"
+            "scores.csv",
+            "spec.yaml"
         ]
     );
     let run = d.json("out/run.json");

@@ -13,6 +13,7 @@ mod featuresets;
 mod fuzz;
 mod leakage;
 mod ledger;
+mod recompute;
 mod schema;
 mod signing;
 mod sources;

@@ -33,7 +33,7 @@ fn untouched_run_verifies() {
     assert_eq!(d.code, 0, "{}", d.stderr);
     assert!(d
         .stdout
-        .starts_with("verified: out (4 files, signature by SHA256:"));
+        .starts_with("verified: out (5 files, signature by SHA256:"));
 }
 
 #[test]
