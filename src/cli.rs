@@ -77,6 +77,18 @@ pub enum Command {
     },
     /// Print the JSON Schema of the spec.
     Schema,
+    /// Compare two run directories: inputs, spec, splits, features, parameters,
+    /// thresholds, metric deltas, and a paired test comparison when both opened
+    /// the same test rows.
+    Diff {
+        /// The earlier run directory.
+        old: PathBuf,
+        /// The later run directory.
+        new: PathBuf,
+        /// Print the comparison as JSON.
+        #[arg(long)]
+        json: bool,
+    },
 }
 
 impl From<Args> for Request {
@@ -110,6 +122,7 @@ impl From<Args> for Request {
             },
             Command::Keygen { private, public } => Request::Keygen { private, public },
             Command::Schema => Request::Schema,
+            Command::Diff { old, new, json } => Request::Diff { old, new, json },
         }
     }
 }

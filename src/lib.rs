@@ -20,6 +20,7 @@ pub mod check;
 pub mod cli;
 pub mod data;
 pub mod detect;
+pub mod diff;
 pub mod error;
 pub mod features;
 pub mod metrics;
@@ -66,6 +67,15 @@ pub enum Request {
     },
     /// Print the spec's JSON Schema.
     Schema,
+    /// Compare two run directories.
+    Diff {
+        /// The earlier run.
+        old: PathBuf,
+        /// The later run.
+        new: PathBuf,
+        /// JSON output.
+        json: bool,
+    },
 }
 
 /// What a request produced: text for stdout and the exit code.
@@ -143,6 +153,17 @@ pub fn run(request: &Request) -> Result<Outcome> {
             )
         }
         Request::Schema => spec::schema_json(),
+        Request::Diff { old, new, json } => {
+            let d = diff::diff(old, new)?;
+            if *json {
+                let mut s = serde_json::to_string_pretty(&d)
+                    .map_err(|e| Error::internal(format!("serialising the diff: {e}")))?;
+                s.push('\n');
+                s
+            } else {
+                diff::render_text(&d)
+            }
+        }
     };
     Ok(Outcome {
         stdout,

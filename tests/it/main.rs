@@ -7,6 +7,7 @@ mod check;
 mod cli;
 mod detectors;
 mod determinism;
+mod diff;
 mod errors;
 mod examples;
 mod featuresets;

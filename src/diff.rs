@@ -1,0 +1,480 @@
+//! `anomark diff OLD NEW`: what changed between two run directories and
+//! whether a difference in test performance is real.
+//!
+//! Reads the two run records, spec copies and score files; computes nothing
+//! but the comparison. When both runs opened the same test split (equal test
+//! manifest hashes), the chosen detectors' decisions are paired row by row:
+//! McNemar's exact test on the discordant pairs (McNemar 1947; the exact form
+//! is a two-sided binomial test with p = ½) and a seeded paired bootstrap
+//! interval for the difference in F1 (new − old), resampling the test rows
+//! with replacement within each label.
+
+use std::collections::BTreeMap;
+use std::fmt::Write as _;
+use std::path::Path;
+
+use serde_json::Value;
+use statrs::distribution::{Binomial, DiscreteCDF};
+
+use crate::error::{Error, Result};
+use crate::metrics::{Confusion, Interval};
+
+/// McNemar's exact two-sided p-value for `b` and `c` discordant pairs:
+/// min(1, 2 · P(X ≤ min(b, c))) with X ~ Binomial(b + c, ½).
+pub fn mcnemar_exact(b: u64, c: u64) -> f64 {
+    let n = b + c;
+    if n == 0 {
+        return 1.0;
+    }
+    let k = b.min(c);
+    let cdf = Binomial::new(0.5, n).expect("valid binomial").cdf(k);
+    (2.0 * cdf).min(1.0)
+}
+
+/// The paired comparison of two runs' decisions on the same test rows.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct Paired {
+    /// Test rows paired.
+    pub rows: usize,
+    /// Rows the old detector got right and the new one wrong.
+    pub old_right_new_wrong: u64,
+    /// Rows the old detector got wrong and the new one right.
+    pub old_wrong_new_right: u64,
+    /// McNemar's exact two-sided p-value.
+    pub mcnemar_exact_p: f64,
+    /// Test F1 of the old and the new chosen detector.
+    pub f1: [Option<f64>; 2],
+    /// 95 % paired stratified bootstrap interval for F1(new) − F1(old).
+    pub f1_difference_95: Option<Interval>,
+}
+
+/// Everything `diff` reports.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct Diff {
+    /// Inputs whose path or hash differ: path → [old blake3, new blake3].
+    pub inputs: BTreeMap<String, [Option<String>; 2]>,
+    /// Spec fields that differ (dotted paths).
+    pub spec_fields: Vec<String>,
+    /// Splits whose manifest hash differs, with counts old → new.
+    pub splits: BTreeMap<String, [Value; 2]>,
+    /// Whether the feature sets (with fitted transforms) differ.
+    pub features_changed: bool,
+    /// Per candidate present in both: what changed.
+    pub candidates: BTreeMap<String, CandidateDiff>,
+    /// Candidates only in the old or only in the new run.
+    pub only_in: [Vec<String>; 2],
+    /// The chosen candidate, old and new.
+    pub chosen: [String; 2],
+    /// The paired test comparison, when both runs opened the same test split.
+    pub paired: Option<Paired>,
+    /// Why there is no paired comparison, when there is none.
+    pub no_pairing: Option<String>,
+}
+
+/// Changes of one candidate.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct CandidateDiff {
+    /// Whether the fitted parameters differ.
+    pub params_changed: bool,
+    /// τ old and new.
+    pub tau: [f64; 2],
+    /// Metric → [old, new, new − old] on validation.
+    pub validation: BTreeMap<String, [Option<f64>; 3]>,
+    /// The same on test (when both opened it).
+    pub test: BTreeMap<String, [Option<f64>; 3]>,
+}
+
+const METRICS: [&str; 6] = [
+    "precision",
+    "recall",
+    "f1",
+    "average-precision",
+    "roc-auc",
+    "mcc",
+];
+
+fn read_json(dir: &Path, name: &str) -> Result<Value> {
+    let p = dir.join(name);
+    let b = std::fs::read(&p).map_err(|e| Error::io(&p, "reading", e))?;
+    serde_json::from_slice(&b).map_err(|e| Error::Output {
+        path: p,
+        message: format!("not a run record: {e}"),
+    })
+}
+
+fn differing_paths(a: &Value, b: &Value, at: &str, out: &mut Vec<String>) {
+    match (a, b) {
+        (Value::Object(x), Value::Object(y)) => {
+            let keys: std::collections::BTreeSet<&String> = x.keys().chain(y.keys()).collect();
+            for k in keys {
+                let p = if at.is_empty() {
+                    k.clone()
+                } else {
+                    format!("{at}.{k}")
+                };
+                match (x.get(k), y.get(k)) {
+                    (Some(v), Some(w)) => differing_paths(v, w, &p, out),
+                    _ => out.push(p),
+                }
+            }
+        }
+        _ if a != b => out.push(at.to_string()),
+        _ => {}
+    }
+}
+
+fn metric_deltas(a: &Value, b: &Value) -> BTreeMap<String, [Option<f64>; 3]> {
+    METRICS
+        .iter()
+        .map(|m| {
+            let (x, y) = (a[m].as_f64(), b[m].as_f64());
+            let d = x.zip(y).map(|(x, y)| y - x);
+            (m.to_string(), [x, y, d])
+        })
+        .collect()
+}
+
+/// Test rows of scores.csv: id → (label, score of `column`).
+fn test_scores(dir: &Path, column: &str) -> Result<BTreeMap<String, (bool, f64)>> {
+    let p = dir.join("scores.csv");
+    let text = std::fs::read_to_string(&p).map_err(|e| Error::io(&p, "reading", e))?;
+    let mut lines = text.lines();
+    let header: Vec<&str> = lines.next().unwrap_or("").split(',').collect();
+    let k = header
+        .iter()
+        .position(|h| *h == column)
+        .ok_or_else(|| Error::Output {
+            path: p.clone(),
+            message: format!("no score column `{column}`"),
+        })?;
+    let mut out = BTreeMap::new();
+    for l in lines {
+        let f: Vec<&str> = l.split(',').collect();
+        if f.get(1) == Some(&"test") {
+            let s = f
+                .get(k)
+                .and_then(|v| v.parse::<f64>().ok())
+                .unwrap_or(f64::NAN);
+            out.insert(f[0].to_string(), (f[2] == "1", s));
+        }
+    }
+    Ok(out)
+}
+
+fn chosen(run: &Value) -> Option<&Value> {
+    run["candidates"]
+        .as_array()?
+        .iter()
+        .find(|c| c["chosen"] == true)
+}
+
+/// Compares two run directories.
+pub fn diff(old: &Path, new: &Path) -> Result<Diff> {
+    let (a, b) = (read_json(old, "run.json")?, read_json(new, "run.json")?);
+    let by_path = |r: &Value| -> BTreeMap<String, String> {
+        r["inputs"]
+            .as_array()
+            .into_iter()
+            .flatten()
+            .map(|i| {
+                (
+                    i["path"].as_str().unwrap_or("").to_string(),
+                    i["blake3"].as_str().unwrap_or("").to_string(),
+                )
+            })
+            .collect()
+    };
+    let (ia, ib) = (by_path(&a), by_path(&b));
+    let mut inputs = BTreeMap::new();
+    for k in ia.keys().chain(ib.keys()) {
+        if ia.get(k) != ib.get(k) {
+            inputs.insert(k.clone(), [ia.get(k).cloned(), ib.get(k).cloned()]);
+        }
+    }
+    let spec = |d: &Path| -> Value {
+        std::fs::read_to_string(d.join(crate::pipeline::SPEC_COPY))
+            .ok()
+            .and_then(|t| serde_saphyr::from_str::<Value>(&t).ok())
+            .unwrap_or(Value::Null)
+    };
+    let mut spec_fields = Vec::new();
+    differing_paths(&spec(old), &spec(new), "", &mut spec_fields);
+    let mut splits = BTreeMap::new();
+    for p in ["train", "validation", "test"] {
+        if a["split"]["manifest-blake3"][p] != b["split"]["manifest-blake3"][p] {
+            splits.insert(
+                p.to_string(),
+                [
+                    a["split"]["counts"][p].clone(),
+                    b["split"]["counts"][p].clone(),
+                ],
+            );
+        }
+    }
+    let cands = |r: &Value| -> BTreeMap<String, Value> {
+        r["candidates"]
+            .as_array()
+            .into_iter()
+            .flatten()
+            .map(|c| (c["name"].as_str().unwrap_or("").to_string(), c.clone()))
+            .collect()
+    };
+    let (ca, cb) = (cands(&a), cands(&b));
+    let mut candidates = BTreeMap::new();
+    for (name, x) in &ca {
+        if let Some(y) = cb.get(name) {
+            candidates.insert(
+                name.clone(),
+                CandidateDiff {
+                    params_changed: x["params"] != y["params"],
+                    tau: [
+                        x["tau"].as_f64().unwrap_or(f64::NAN),
+                        y["tau"].as_f64().unwrap_or(f64::NAN),
+                    ],
+                    validation: metric_deltas(&x["validation"], &y["validation"]),
+                    test: if x["test"].is_null() || y["test"].is_null() {
+                        BTreeMap::new()
+                    } else {
+                        metric_deltas(&x["test"], &y["test"])
+                    },
+                },
+            );
+        }
+    }
+    let only_in = [
+        ca.keys()
+            .filter(|k| !cb.contains_key(*k))
+            .cloned()
+            .collect(),
+        cb.keys()
+            .filter(|k| !ca.contains_key(*k))
+            .cloned()
+            .collect(),
+    ];
+    let name = |r: &Value| r["selection"]["chosen"].as_str().unwrap_or("").to_string();
+    let same_test = a["split"]["manifest-blake3"]["test"] == b["split"]["manifest-blake3"]["test"];
+    let both_open = a["test-opened"] == true && b["test-opened"] == true;
+    let (paired, no_pairing) = if !same_test {
+        (
+            None,
+            Some("the runs were evaluated on different test rows".to_string()),
+        )
+    } else if !both_open {
+        (
+            None,
+            Some("at least one run kept the test split sealed".to_string()),
+        )
+    } else {
+        (Some(pair(old, new, &a, &b)?), None)
+    };
+    Ok(Diff {
+        inputs,
+        spec_fields,
+        splits,
+        features_changed: a["feature-sets"] != b["feature-sets"],
+        candidates,
+        only_in,
+        chosen: [name(&a), name(&b)],
+        paired,
+        no_pairing,
+    })
+}
+
+fn pair(old: &Path, new: &Path, a: &Value, b: &Value) -> Result<Paired> {
+    let missing = |p: &Path| Error::Output {
+        path: p.to_path_buf(),
+        message: "the run record names no chosen candidate".into(),
+    };
+    let (x, y) = (
+        chosen(a).ok_or_else(|| missing(old))?,
+        chosen(b).ok_or_else(|| missing(new))?,
+    );
+    let (sa, sb) = (
+        test_scores(old, x["name"].as_str().unwrap_or(""))?,
+        test_scores(new, y["name"].as_str().unwrap_or(""))?,
+    );
+    let (ta, tb) = (
+        x["tau"].as_f64().unwrap_or(f64::NAN),
+        y["tau"].as_f64().unwrap_or(f64::NAN),
+    );
+    // (label, old flag, new flag) per paired row, in id order.
+    let rows: Vec<(bool, bool, bool)> = sa
+        .iter()
+        .filter_map(|(id, (label, s))| sb.get(id).map(|(_, t)| (*label, *s > ta, *t > tb)))
+        .collect();
+    let (mut b01, mut c10) = (0u64, 0u64);
+    for (label, fa, fb) in &rows {
+        match (fa == label, fb == label) {
+            (true, false) => b01 += 1,
+            (false, true) => c10 += 1,
+            _ => {}
+        }
+    }
+    let f1 = |rows: &[(bool, bool, bool)], w: &[u32], pick: fn(&(bool, bool, bool)) -> bool| {
+        let mut c = Confusion::default();
+        for (r, k) in rows.iter().zip(w) {
+            let k = u64::from(*k);
+            match (pick(r), r.0) {
+                (true, true) => c.tp += k,
+                (true, false) => c.fp += k,
+                (false, true) => c.fn_ += k,
+                (false, false) => c.tn += k,
+            }
+        }
+        c.f1()
+    };
+    let ones = vec![1u32; rows.len()];
+    let (fa, fb) = (f1(&rows, &ones, |r| r.1), f1(&rows, &ones, |r| r.2));
+    let pos: Vec<usize> = (0..rows.len()).filter(|&i| rows[i].0).collect();
+    let neg: Vec<usize> = (0..rows.len()).filter(|&i| !rows[i].0).collect();
+    let mut diffs: Vec<f64> = Vec::new();
+    if !pos.is_empty() && !neg.is_empty() {
+        for rep in 0..1000u64 {
+            let mut rng = crate::rng::seeded(1, rep);
+            let mut w = vec![0u32; rows.len()];
+            for stratum in [&pos, &neg] {
+                for _ in 0..stratum.len() {
+                    w[stratum[crate::rng::below(&mut rng, stratum.len() as u64) as usize]] += 1;
+                }
+            }
+            if let (Some(x), Some(y)) = (f1(&rows, &w, |r| r.1), f1(&rows, &w, |r| r.2)) {
+                diffs.push(y - x);
+            }
+        }
+    }
+    diffs.sort_by(f64::total_cmp);
+    let q = |p: f64| {
+        let pos = p * (diffs.len() - 1) as f64;
+        let (lo, hi) = (pos.floor() as usize, pos.ceil() as usize);
+        diffs[lo] + (pos - lo as f64) * (diffs[hi] - diffs[lo])
+    };
+    Ok(Paired {
+        rows: rows.len(),
+        old_right_new_wrong: b01,
+        old_wrong_new_right: c10,
+        mcnemar_exact_p: mcnemar_exact(b01, c10),
+        f1: [fa, fb],
+        f1_difference_95: (!diffs.is_empty()).then(|| Interval {
+            low: q(0.025),
+            high: q(0.975),
+        }),
+    })
+}
+
+fn num(v: Option<f64>) -> String {
+    v.map_or("n/a".into(), |v| format!("{v:.4}"))
+}
+
+/// The diff as readable text.
+pub fn render_text(d: &Diff) -> String {
+    let mut s = String::new();
+    let _ = writeln!(s, "chosen: {} -> {}", d.chosen[0], d.chosen[1]);
+    if d.inputs.is_empty() {
+        let _ = writeln!(s, "inputs: unchanged");
+    }
+    for (p, [x, y]) in &d.inputs {
+        let _ = writeln!(
+            s,
+            "input {p}: {} -> {}",
+            x.as_deref().unwrap_or("absent"),
+            y.as_deref().unwrap_or("absent")
+        );
+    }
+    let _ = writeln!(
+        s,
+        "spec fields changed: {}",
+        if d.spec_fields.is_empty() {
+            "none".into()
+        } else {
+            d.spec_fields.join(", ")
+        }
+    );
+    if d.splits.is_empty() {
+        let _ = writeln!(s, "splits: identical rows");
+    }
+    for (p, [x, y]) in &d.splits {
+        let _ = writeln!(s, "split {p}: rows changed ({x} -> {y})");
+    }
+    let _ = writeln!(
+        s,
+        "features: {}",
+        if d.features_changed {
+            "changed"
+        } else {
+            "unchanged"
+        }
+    );
+    for (name, c) in &d.candidates {
+        let _ = writeln!(
+            s,
+            "{name}: parameters {}, tau {} -> {}",
+            if c.params_changed {
+                "changed"
+            } else {
+                "unchanged"
+            },
+            crate::record::fmt_f64(c.tau[0]),
+            crate::record::fmt_f64(c.tau[1])
+        );
+        for (label, m) in [("validation", &c.validation), ("test", &c.test)] {
+            for (k, [x, y, dlt]) in m {
+                let _ = writeln!(
+                    s,
+                    "  {label} {k}: {} -> {} ({})",
+                    num(*x),
+                    num(*y),
+                    dlt.map_or("n/a".into(), |v| format!("{v:+.4}"))
+                );
+            }
+        }
+    }
+    for (side, names) in ["only in old", "only in new"].iter().zip(&d.only_in) {
+        if !names.is_empty() {
+            let _ = writeln!(s, "{side}: {}", names.join(", "));
+        }
+    }
+    match (&d.paired, &d.no_pairing) {
+        (Some(p), _) => {
+            let _ = writeln!(
+                s,
+                "paired test comparison over {} rows: old right/new wrong {}, old wrong/new right {}, McNemar exact p = {:.4}; F1 {} -> {}, difference 95% CI {}",
+                p.rows,
+                p.old_right_new_wrong,
+                p.old_wrong_new_right,
+                p.mcnemar_exact_p,
+                num(p.f1[0]),
+                num(p.f1[1]),
+                p.f1_difference_95.map_or("n/a".into(), |i| format!("{:+.4} to {:+.4}", i.low, i.high))
+            );
+        }
+        (None, Some(why)) => {
+            let _ = writeln!(s, "paired test comparison: none ({why})");
+        }
+        _ => {}
+    }
+    s
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// REFERENCES.md section 6: Agresti (1990) presidential approval table,
+    /// b = 150, c = 86: exact p = 3.7159361395713866e-05 (statsmodels 0.15.0
+    /// `mcnemar(exact=True)`, equal to scipy's binomtest); and the small
+    /// case b = 1, c = 7: p = 0.0703125 exactly.
+    #[test]
+    fn mcnemar_exact_matches_the_reference() {
+        let p = mcnemar_exact(150, 86);
+        assert!(
+            (p - 3.7159361395713866e-05).abs() / 3.7159361395713866e-05 < 1e-9,
+            "{p}"
+        );
+        assert!((mcnemar_exact(1, 7) - 0.0703125).abs() < 1e-12);
+        assert_eq!(mcnemar_exact(0, 0), 1.0);
+        assert_eq!(mcnemar_exact(5, 5), 1.0);
+    }
+}
