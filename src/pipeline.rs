@@ -821,7 +821,7 @@ fn card_context(
             .collect(),
         test_openings: rec.test_openings.as_ref().map(|o| {
             format!(
-                "The ledger `{}` records {} opening(s) of this test split, under spec hash(es) {}.",
+                "The ledger “{}” records {} opening(s) of this test split, under spec hash(es) {}.",
                 o.ledger,
                 o.count,
                 o.spec_blake3.join(", ")
