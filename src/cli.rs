@@ -60,10 +60,11 @@ pub enum Command {
         #[arg(long, value_name = "PATH")]
         pubkey: PathBuf,
         /// Recompute the run from its spec and inputs and compare.
-        #[arg(long, requires = "spec")]
+        #[arg(long)]
         data: bool,
-        /// The spec the run used, in its place beside the data (with `--data`).
-        #[arg(long, value_name = "PATH")]
+        /// The spec the run used, beside its data (default: where the run
+        /// records it, relative to the run directory).
+        #[arg(long, value_name = "PATH", requires = "data")]
         spec: Option<PathBuf>,
     },
     /// Make a new Ed25519 key pair.
@@ -118,7 +119,8 @@ impl From<Args> for Request {
             } => Request::Verify {
                 dir,
                 pubkey,
-                spec: if data { spec } else { None },
+                data,
+                spec,
             },
             Command::Keygen { private, public } => Request::Keygen { private, public },
             Command::Schema => Request::Schema,

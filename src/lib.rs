@@ -55,7 +55,9 @@ pub enum Request {
         dir: PathBuf,
         /// The public key.
         pubkey: PathBuf,
-        /// With a spec: recompute the run and compare.
+        /// Recompute the run and compare.
+        data: bool,
+        /// The spec to recompute from (default: where the run records it).
         spec: Option<PathBuf>,
     },
     /// Make a key pair.
@@ -127,17 +129,23 @@ pub fn run(request: &Request) -> Result<Outcome> {
                 s.out.display()
             )
         }
-        Request::Verify { dir, pubkey, spec } => {
-            let m = match spec {
-                Some(s) => pipeline::verify_by_recomputation(dir, pubkey, s)?,
-                None => pipeline::verify(dir, pubkey)?,
+        Request::Verify {
+            dir,
+            pubkey,
+            data,
+            spec,
+        } => {
+            let m = if *data {
+                pipeline::verify_by_recomputation(dir, pubkey, spec.as_deref())?
+            } else {
+                pipeline::verify(dir, pubkey)?
             };
             format!(
                 "verified: {} ({} files, signature by {}{})\n",
                 dir.display(),
                 m.files.len(),
                 m.key_fingerprint,
-                if spec.is_some() {
+                if *data {
                     "; recomputed from spec and data, every file matches"
                 } else {
                     ""

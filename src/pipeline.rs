@@ -209,6 +209,8 @@ pub struct Replay {
     pub openings: Option<TestOpenings>,
     /// The recorded signing key's fingerprint.
     pub key_fingerprint: String,
+    /// The recorded path of the spec from the run directory.
+    pub path_from_run: Option<String>,
 }
 
 /// Runs the whole protocol and writes the signed run directory.
@@ -227,7 +229,8 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
     output::check_target(&out)?;
     let key = crate::sign::load_private(&opts.key)?;
     let fingerprint = crate::sign::fingerprint(&key.verifying_key());
-    let (files, mut summary) = execute(opts, plan, &fingerprint, None)?;
+    let from_run = record::relative_path(&out, &opts.spec);
+    let (files, mut summary) = execute(opts, plan, &fingerprint, None, from_run)?;
     summary.out = files.commit(&out, &key)?;
     Ok(summary)
 }
@@ -236,7 +239,14 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
 /// that no computation can reproduce (clock, ledger, key).
 pub fn recompute(opts: &RunOptions, replay: &Replay) -> Result<RunFiles> {
     let plan = spec::load(&opts.spec)?;
-    execute(opts, plan, &replay.key_fingerprint, Some(replay)).map(|r| r.0)
+    execute(
+        opts,
+        plan,
+        &replay.key_fingerprint,
+        Some(replay),
+        replay.path_from_run.clone(),
+    )
+    .map(|r| r.0)
 }
 
 fn execute(
@@ -244,6 +254,7 @@ fn execute(
     plan: Plan,
     fingerprint: &str,
     replay: Option<&Replay>,
+    path_from_run: Option<String>,
 ) -> Result<(RunFiles, RunSummary)> {
     let started = SystemTime::now();
     let clock = Instant::now();
@@ -445,6 +456,7 @@ fn execute(
         spec: SpecRecord {
             file: spec_file.clone(),
             blake3: spec_blake3.clone(),
+            path_from_run,
         },
         provenance: crate::audit::provenance::of(&opts.spec),
         inputs: data
@@ -866,6 +878,26 @@ pub fn verify(dir: &Path, pubkey: &Path) -> Result<crate::sign::Manifest> {
     crate::sign::verify_dir(dir, &key)
 }
 
+/// Where a run's record says its spec is, relative to the run directory.
+pub fn recorded_spec_path(dir: &Path) -> Result<PathBuf> {
+    let p = dir.join("run.json");
+    let run: serde_json::Value = std::fs::read(&p)
+        .map_err(|e| Error::io(&p, "reading", e))
+        .and_then(|b| {
+            serde_json::from_slice(&b).map_err(|e| Error::Output {
+                path: p.clone(),
+                message: format!("not a run record: {e}"),
+            })
+        })?;
+    match run["spec"]["path-from-run"].as_str() {
+        Some(rel) => Ok(dir.join(rel)),
+        None => Err(Error::Output {
+            path: dir.to_path_buf(),
+            message: "the run does not record where its spec is; pass `--spec SPEC`".into(),
+        }),
+    }
+}
+
 /// The first place where two texts differ: a JSON path for JSON, else a line.
 fn first_difference(name: &str, recorded: &[u8], recomputed: &[u8]) -> String {
     if name.ends_with(".json") {
@@ -924,9 +956,14 @@ fn first_difference(name: &str, recorded: &[u8], recomputed: &[u8]) -> String {
 pub fn verify_by_recomputation(
     dir: &Path,
     pubkey: &Path,
-    spec: &Path,
+    spec: Option<&Path>,
 ) -> Result<crate::sign::Manifest> {
     let manifest = verify(dir, pubkey)?;
+    let spec_buf = match spec {
+        Some(s) => s.to_path_buf(),
+        None => recorded_spec_path(dir)?,
+    };
+    let spec = spec_buf.as_path();
     let fail = |problems: Vec<String>| Error::Verify {
         dir: dir.to_path_buf(),
         problems,
@@ -964,6 +1001,7 @@ pub fn verify_by_recomputation(
         wall_clock: serde_json::from_value(run["wall-clock"].clone()).unwrap_or(None),
         openings: serde_json::from_value(run["test-openings"].clone()).unwrap_or(None),
         key_fingerprint: manifest.key_fingerprint.clone(),
+        path_from_run: run["spec"]["path-from-run"].as_str().map(str::to_string),
     };
     let opts = RunOptions {
         spec: spec.to_path_buf(),

@@ -93,6 +93,30 @@ pub struct SpecRecord {
     pub file: String,
     /// blake3 of its bytes.
     pub blake3: String,
+    /// The spec's path relative to the run directory (`/` separators), where
+    /// `verify --data` and `diff` look for it by default.
+    pub path_from_run: Option<String>,
+}
+
+/// `to` relative to the directory `from` (both made absolute, symlinks not
+/// resolved), with `/` separators.
+pub fn relative_path(from: &std::path::Path, to: &std::path::Path) -> Option<String> {
+    let (from, to) = (
+        std::path::absolute(from).ok()?,
+        std::path::absolute(to).ok()?,
+    );
+    let (a, b): (Vec<_>, Vec<_>) = (from.components().collect(), to.components().collect());
+    let common = a.iter().zip(&b).take_while(|(x, y)| x == y).count();
+    if common == 0 {
+        return None;
+    }
+    let mut parts: Vec<String> = vec!["..".to_string(); a.len() - common];
+    parts.extend(
+        b[common..]
+            .iter()
+            .map(|c| c.as_os_str().to_string_lossy().into_owned()),
+    );
+    Some(parts.join("/"))
 }
 
 /// One input file.

@@ -101,9 +101,32 @@ fn edited_and_resigned_numbers_are_caught() {
 }
 
 #[test]
-fn data_needs_the_spec() {
-    let d = standard(&rows(100, 6, 74))
+fn data_alone_finds_the_spec_where_the_run_recorded_it() {
+    let case = standard(&rows(200, 8, 74));
+    case.clone().run_spec().success();
+    let run = case
+        .clone()
+        .args(["verify", "out", "--pubkey", "key.pub.pem"])
+        .success();
+    assert_eq!(
+        run.json("out/run.json")["spec"]["path-from-run"],
+        "../spec.yaml"
+    );
+    let d = case
+        .clone()
         .args(["verify", "out", "--pubkey", "key.pub.pem", "--data"])
+        .success();
+    assert!(d.stdout.contains("every file matches"));
+    // --spec without --data is a usage error.
+    let u = case
+        .args([
+            "verify",
+            "out",
+            "--pubkey",
+            "key.pub.pem",
+            "--spec",
+            "spec.yaml",
+        ])
         .exec();
-    assert_eq!(d.code, 2);
+    assert_eq!(u.code, 2);
 }
