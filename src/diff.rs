@@ -59,6 +59,11 @@ pub struct Diff {
     pub spec_fields: Vec<String>,
     /// Splits whose manifest hash differs, with counts old → new.
     pub splits: BTreeMap<String, [Value; 2]>,
+    /// Rows by content hash: `old split -> new split` → rows that moved so
+    /// (`absent` for a row only in one run), when both runs' data is at hand.
+    pub rows: Option<BTreeMap<String, usize>>,
+    /// Why rows were not compared, when they were not.
+    pub rows_not_compared: Option<String>,
     /// Whether the feature sets (with fitted transforms) differ.
     pub features_changed: bool,
     /// Per candidate present in both: what changed.
@@ -171,6 +176,71 @@ fn chosen(run: &Value) -> Option<&Value> {
         .find(|c| c["chosen"] == true)
 }
 
+/// Each content hash with its split per row, recomputed from the run's own
+/// spec copy and the data it names, which must still have the recorded
+/// hashes (split assignment only: nothing is fitted or scored).
+fn rows_of(dir: &Path) -> Result<BTreeMap<crate::audit::hash::ContentHash, Vec<&'static str>>> {
+    let spec = crate::pipeline::recorded_spec_path(dir)?;
+    let copy = dir.join(crate::pipeline::SPEC_COPY);
+    let bytes = std::fs::read(&copy).map_err(|e| Error::io(&copy, "reading", e))?;
+    let plan = crate::spec::parse(&spec, bytes)?;
+    let data = crate::data::load(&plan)?;
+    let run = read_json(dir, "run.json")?;
+    let recorded: Vec<&str> = run["inputs"]
+        .as_array()
+        .into_iter()
+        .flatten()
+        .filter_map(|i| i["blake3"].as_str())
+        .collect();
+    let now: Vec<&str> = data
+        .files
+        .iter()
+        .map(|f| f.digest.blake3.as_str())
+        .collect();
+    if recorded != now {
+        return Err(Error::Output {
+            path: dir.to_path_buf(),
+            message: "its inputs changed since the run".into(),
+        });
+    }
+    let hashes = crate::audit::hash::rows(&data.x, &data.is_anomaly);
+    let s = crate::split::assign(&plan.split, &data, &hashes)?;
+    let mut out: BTreeMap<_, Vec<&'static str>> = BTreeMap::new();
+    for r in &s.train {
+        out.entry(hashes[r.0 as usize]).or_default().push("train");
+    }
+    for r in &s.validation {
+        out.entry(hashes[r.0 as usize])
+            .or_default()
+            .push("validation");
+    }
+    for h in s.test.contents(&hashes) {
+        out.entry(h).or_default().push("test");
+    }
+    Ok(out)
+}
+
+fn row_moves(old: &Path, new: &Path) -> std::result::Result<BTreeMap<String, usize>, String> {
+    let a = rows_of(old).map_err(|e| format!("the old run's rows could not be recomputed: {e}"))?;
+    let b = rows_of(new).map_err(|e| format!("the new run's rows could not be recomputed: {e}"))?;
+    let mut moves = BTreeMap::new();
+    let keys: std::collections::BTreeSet<_> = a.keys().chain(b.keys()).collect();
+    for k in keys {
+        let (x, y) = (
+            a.get(k).map_or(&[][..], Vec::as_slice),
+            b.get(k).map_or(&[][..], Vec::as_slice),
+        );
+        for i in 0..x.len().max(y.len()) {
+            let from = x.get(i).copied().unwrap_or("absent");
+            let to = y.get(i).copied().unwrap_or("absent");
+            if from != to {
+                *moves.entry(format!("{from} -> {to}")).or_insert(0) += 1;
+            }
+        }
+    }
+    Ok(moves)
+}
+
 /// Compares two run directories.
 pub fn diff(old: &Path, new: &Path) -> Result<Diff> {
     let (a, b) = (read_json(old, "run.json")?, read_json(new, "run.json")?);
@@ -270,10 +340,20 @@ pub fn diff(old: &Path, new: &Path) -> Result<Diff> {
     } else {
         (Some(pair(old, new, &a, &b)?), None)
     };
+    let (rows, rows_not_compared) = if splits.is_empty() {
+        (Some(BTreeMap::new()), None)
+    } else {
+        match row_moves(old, new) {
+            Ok(m) => (Some(m), None),
+            Err(why) => (None, Some(why)),
+        }
+    };
     Ok(Diff {
         inputs,
         spec_fields,
         splits,
+        rows,
+        rows_not_compared,
         features_changed: a["feature-sets"] != b["feature-sets"],
         candidates,
         only_in,
@@ -397,6 +477,14 @@ pub fn render_text(d: &Diff) -> String {
     }
     for (p, [x, y]) in &d.splits {
         let _ = writeln!(s, "split {p}: rows changed ({x} -> {y})");
+    }
+    if let Some(m) = &d.rows {
+        for (k, n) in m {
+            let _ = writeln!(s, "rows {k}: {n}");
+        }
+    }
+    if let Some(why) = &d.rows_not_compared {
+        let _ = writeln!(s, "rows: not compared ({why})");
     }
     let _ = writeln!(
         s,

@@ -78,6 +78,12 @@ impl SealedTest {
         &self.manifest
     }
 
+    /// The content hashes of the test rows, for comparing splits between
+    /// runs (`diff`): hashes only, no scores and no labels.
+    pub fn contents(&self, hashes: &[ContentHash]) -> Vec<ContentHash> {
+        self.rows.iter().map(|r| hashes[r.0 as usize]).collect()
+    }
+
     /// Opens the test split. Called from `pipeline` only, after selection.
     pub(crate) fn open(self) -> Vec<RowId> {
         self.rows

@@ -81,6 +81,24 @@ fn different_test_rows_are_not_paired() {
         .success();
     let text = case.clone().args(["diff", "out", "new"]).success().stdout;
     assert!(text.contains("split test: rows changed"), "{text}");
+    // Both runs read the same data, so every row is in both: rows only move.
+    let v: serde_json::Value = serde_json::from_str(
+        &case
+            .clone()
+            .args(["diff", "out", "new", "--json"])
+            .success()
+            .stdout,
+    )
+    .unwrap();
+    let moves = v["rows"].as_object().unwrap();
+    assert!(!moves.is_empty());
+    assert!(moves.keys().all(|k| !k.contains("absent")), "{moves:?}");
+    let moved: u64 = moves.values().map(|n| n.as_u64().unwrap()).sum();
+    assert!(moved > 0 && moved < 412);
+    assert!(
+        text.contains("rows train -> test:") || text.contains("rows validation -> test:"),
+        "{text}"
+    );
     assert!(
         text.contains(
             "paired test comparison: none (the runs were evaluated on different test rows)"
