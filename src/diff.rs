@@ -101,14 +101,7 @@ const METRICS: [&str; 6] = [
     "mcc",
 ];
 
-fn read_json(dir: &Path, name: &str) -> Result<Value> {
-    let p = dir.join(name);
-    let b = std::fs::read(&p).map_err(|e| Error::io(&p, "reading", e))?;
-    serde_json::from_slice(&b).map_err(|e| Error::Output {
-        path: p,
-        message: format!("not a run record: {e}"),
-    })
-}
+use crate::record::read_json;
 
 fn differing_paths(a: &Value, b: &Value, at: &str, out: &mut Vec<String>) {
     match (a, b) {

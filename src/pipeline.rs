@@ -880,15 +880,7 @@ pub fn verify(dir: &Path, pubkey: &Path) -> Result<crate::sign::Manifest> {
 
 /// Where a run's record says its spec is, relative to the run directory.
 pub fn recorded_spec_path(dir: &Path) -> Result<PathBuf> {
-    let p = dir.join("run.json");
-    let run: serde_json::Value = std::fs::read(&p)
-        .map_err(|e| Error::io(&p, "reading", e))
-        .and_then(|b| {
-            serde_json::from_slice(&b).map_err(|e| Error::Output {
-                path: p.clone(),
-                message: format!("not a run record: {e}"),
-            })
-        })?;
+    let run = record::read_json(dir, "run.json")?;
     match run["spec"]["path-from-run"].as_str() {
         Some(rel) => Ok(dir.join(rel)),
         None => Err(Error::Output {

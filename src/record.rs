@@ -227,6 +227,16 @@ pub struct WallClock {
     pub seconds: f64,
 }
 
+/// Reads a JSON file of a run directory (`run.json`, `manifest.json`).
+pub fn read_json(dir: &std::path::Path, name: &str) -> crate::error::Result<serde_json::Value> {
+    let p = dir.join(name);
+    let b = std::fs::read(&p).map_err(|e| crate::error::Error::io(&p, "reading", e))?;
+    serde_json::from_slice(&b).map_err(|e| crate::error::Error::Output {
+        path: p,
+        message: format!("not a run record: {e}"),
+    })
+}
+
 /// Formats seconds since the Unix epoch as RFC 3339 UTC (to the second).
 pub fn rfc3339(unix_seconds: u64) -> String {
     let days = (unix_seconds / 86_400) as i64;
