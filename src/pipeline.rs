@@ -11,6 +11,7 @@ use std::time::{Instant, SystemTime};
 use ndarray::Array2;
 
 use crate::audit::hash::{self, ContentHash};
+use crate::card::plots;
 use crate::card::{
     self, CardContext, FeatureRow, FeatureSetRow, InputRow, MetricRow, SplitRow, ThresholdRow,
 };
@@ -514,7 +515,53 @@ fn execute(
         ),
     );
     files.add(SPEC_COPY, plan.spec_bytes.clone());
-    let ctx = card_context(&plan, &rec, &spec_file, fingerprint);
+    let mut ctx = card_context(&plan, &rec, &spec_file, fingerprint);
+    let c = &candidates[chosen];
+    let val = plots::SplitScores {
+        split: Part::Validation.name(),
+        scores: &c.validation_scores,
+        is_anomaly: &val_y,
+        tau: c.choice.tau,
+    };
+    ctx.plots_validation = vec![
+        plots::precision_recall(val)?,
+        plots::roc(val)?,
+        plots::objective(plan.threshold, val)?,
+        plots::score_histogram(val)?,
+    ];
+    if rec.test_opened {
+        let test = plots::SplitScores {
+            split: Part::Test.name(),
+            scores: &test_scores[chosen],
+            is_anomaly: &test_y,
+            tau: c.choice.tau,
+        };
+        ctx.plots_test = vec![
+            plots::precision_recall(test)?,
+            plots::roc(test)?,
+            plots::score_histogram(test)?,
+        ];
+    }
+    let set = &fitted_sets[c.set];
+    let train_x = set.apply(&data, &splits.train)?;
+    let params = c.model.params();
+    ctx.plots_features = set
+        .names()
+        .iter()
+        .enumerate()
+        .map(|(j, name)| {
+            let column: Vec<f64> = train_x.column(j).to_vec();
+            plots::feature_histogram(j, name, &column, params.marginal(j))
+        })
+        .collect::<Result<_>>()?;
+    for p in ctx
+        .plots_validation
+        .iter()
+        .chain(&ctx.plots_test)
+        .chain(&ctx.plots_features)
+    {
+        files.add(&p.file, p.svg.clone().into_bytes());
+    }
     let (md, html) = card::render(&ctx, opts.templates.as_deref())?;
     files.add("card.md", md.into_bytes());
     files.add("card.html", html.into_bytes());
@@ -840,6 +887,9 @@ fn card_context(
             )
         }),
         test_anomalies: rec.split.report.counts[Part::Test as usize].anomaly,
+        plots_validation: vec![],
+        plots_test: vec![],
+        plots_features: vec![],
         wall_clock: rec.wall_clock.as_ref().map(|w| {
             format!(
                 "Run started {} and took {} s. This line is the only part of the card that \

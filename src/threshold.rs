@@ -116,6 +116,48 @@ fn cut_points(scores: &[f64], is_anomaly: &[bool]) -> Vec<Cut> {
     cuts
 }
 
+/// Every distinct cut point as (τ, validation confusion matrix), from "flag
+/// nothing" to "flag everything": the points of the PR and ROC curves.
+pub fn cuts(scores: &[f64], is_anomaly: &[bool]) -> Vec<(f64, Confusion)> {
+    cut_points(scores, is_anomaly)
+        .into_iter()
+        .map(|c| (c.tau, c.c))
+        .collect()
+}
+
+/// A policy's objective as a function of the confusion matrix.
+pub type Objective = Box<dyn Fn(&Confusion) -> f64>;
+
+/// What a policy optimises, as a name and a value per confusion matrix, for
+/// the objective-against-ln ε plot. Policies with a constraint plot the
+/// quantity they optimise under it; `fixed` optimises nothing and shows F1.
+pub fn objective(policy: ThresholdPolicy) -> (String, Objective) {
+    let recall = |c: &Confusion| rate(c.tp, c.tp + c.fn_);
+    match policy {
+        ThresholdPolicy::MaxFBeta { beta } => (
+            format!("F-beta (beta = {beta})"),
+            Box::new(move |c| f_beta(c, beta)),
+        ),
+        ThresholdPolicy::AlarmBudget { .. } | ThresholdPolicy::PrecisionTarget { .. } => {
+            ("recall".into(), Box::new(recall))
+        }
+        ThresholdPolicy::RecallTarget { .. } => (
+            "false-positive rate".into(),
+            Box::new(|c| rate(c.fp, c.fp + c.tn)),
+        ),
+        ThresholdPolicy::MinCost {
+            missed_anomaly,
+            false_alarm,
+        } => (
+            "cost".into(),
+            Box::new(move |c| missed_anomaly * c.fn_ as f64 + false_alarm * c.fp as f64),
+        ),
+        ThresholdPolicy::MaxF1 | ThresholdPolicy::Fixed { .. } => {
+            ("F1".into(), Box::new(|c| f_beta(c, 1.0)))
+        }
+    }
+}
+
 /// The index of the best cut under `better` (a strict "is better than"), the
 /// first (highest τ) among equals.
 fn best_by(cuts: &[Cut], better: impl Fn(&Confusion, &Confusion) -> bool) -> usize {

@@ -5,6 +5,8 @@
 //! This module computes nothing: every number arrives formatted. HTML output
 //! is auto-escaped; Markdown output escapes through the `md` filter.
 
+pub mod plots;
+
 use std::path::Path;
 
 use minijinja::{Environment, UndefinedBehavior};
@@ -172,6 +174,12 @@ pub struct CardContext {
     pub test_others: Vec<MetricRow>,
     /// Anomalies in the test split.
     pub test_anomalies: usize,
+    /// Validation figures: precision-recall, ROC, objective against ln ε, score histogram.
+    pub plots_validation: Vec<plots::Plot>,
+    /// Test figures (final runs only): precision-recall, ROC, score histogram.
+    pub plots_test: Vec<plots::Plot>,
+    /// One figure per feature of the chosen candidate's feature set.
+    pub plots_features: Vec<plots::Plot>,
     /// Wall-clock line for the unsigned footer, if recorded.
     pub wall_clock: Option<String>,
 }

@@ -121,6 +121,37 @@ pub enum Params {
 }
 
 impl Params {
+    /// The fitted marginal density of feature `j` as normal components
+    /// (weight, mean, variance), for the card's feature plots; None for a
+    /// detector without per-feature density parameters (k-NN).
+    pub fn marginal(&self, j: usize) -> Option<Vec<(f64, f64, f64)>> {
+        match self {
+            Params::IndependentGaussian { mean, variance } => {
+                Some(vec![(1.0, mean[j], variance[j])])
+            }
+            Params::MultivariateGaussian {
+                mean, covariance, ..
+            }
+            | Params::RobustGaussian {
+                mean, covariance, ..
+            } => Some(vec![(1.0, mean[j], covariance[j][j])]),
+            Params::GaussianMixture {
+                weights,
+                means,
+                covariances,
+                ..
+            } => Some(
+                weights
+                    .iter()
+                    .zip(means)
+                    .zip(covariances)
+                    .map(|((w, m), c)| (*w, m[j], c[j][j]))
+                    .collect(),
+            ),
+            Params::KnnDistance { .. } => None,
+        }
+    }
+
     /// Free parameters. A k-nearest-neighbour model keeps every training row,
     /// so it counts m·d.
     pub fn count(&self) -> usize {

@@ -3,6 +3,8 @@
 
 mod util;
 
+mod browser;
+mod card;
 mod check;
 mod cli;
 mod detectors;

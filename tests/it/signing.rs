@@ -33,7 +33,8 @@ fn untouched_run_verifies() {
     assert_eq!(d.code, 0, "{}", d.stderr);
     assert!(d
         .stdout
-        .starts_with("verified: out (5 files, signature by SHA256:"));
+        // run.json, scores.csv, card.md, card.html, spec.yaml and ten figures.
+        .starts_with("verified: out (15 files, signature by SHA256:"));
 }
 
 #[test]
