@@ -7,6 +7,8 @@ use std::path::PathBuf;
 use clap::{Parser, Subcommand};
 
 use crate::pipeline::RunOptions;
+use crate::progress::Progress;
+use crate::score::ScoreOptions;
 use crate::Request;
 
 /// Validate density-based anomaly detectors by a declared protocol and publish signed model cards.
@@ -41,6 +43,32 @@ pub enum Command {
         /// validation, and record the opening in the spec's test ledger.
         #[arg(long)]
         open_test: bool,
+        /// Show no progress (progress is drawn only on a terminal anyway).
+        #[arg(long, short)]
+        quiet: bool,
+        /// Print the summary as JSON.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Score new data with a run's chosen detector, transforms and threshold:
+    /// every row with its score, its flag and the run's manifest hash.
+    Score {
+        /// The run directory.
+        dir: PathBuf,
+        /// The new data: a CSV or Parquet file.
+        data: PathBuf,
+        /// The output file: `.csv` or `.parquet` (never overwritten).
+        #[arg(long, value_name = "FILE")]
+        out: PathBuf,
+        /// Refuse the run unless its signature verifies with this public key (SPKI PEM).
+        #[arg(long, value_name = "PATH")]
+        pubkey: Option<PathBuf>,
+        /// Show no progress (progress is drawn only on a terminal anyway).
+        #[arg(long, short)]
+        quiet: bool,
+        /// Print the summary as JSON.
+        #[arg(long)]
+        json: bool,
     },
     /// Check the spec and the data without fitting anything: exit 0 when fine,
     /// 1 when problems were found, 2 for a usage or spec error.
@@ -102,14 +130,37 @@ impl From<Args> for Request {
                 templates,
                 no_wall_clock,
                 open_test,
-            } => Request::Run(RunOptions {
-                spec,
-                key,
+                quiet,
+                json,
+            } => Request::Run {
+                opts: RunOptions {
+                    spec,
+                    key,
+                    out,
+                    templates,
+                    no_wall_clock,
+                    open_test,
+                    progress: Progress::new(quiet || json),
+                },
+                json,
+            },
+            Command::Score {
+                dir,
+                data,
                 out,
-                templates,
-                no_wall_clock,
-                open_test,
-            }),
+                pubkey,
+                quiet,
+                json,
+            } => Request::Score {
+                opts: ScoreOptions {
+                    dir,
+                    data,
+                    out,
+                    pubkey,
+                    progress: Progress::new(quiet || json),
+                },
+                json,
+            },
             Command::Check { spec, json } => Request::Check { spec, json },
             Command::Verify {
                 dir,

@@ -15,7 +15,7 @@ use crate::error::{Error, Result};
 use crate::spec::{FeatureInput, FeatureSetPlan, TransformKind};
 
 /// A transform with its fitted parameters, as recorded in run.json.
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case", tag = "transform")]
 pub enum Fitted {
     /// ln x.
@@ -44,13 +44,12 @@ pub enum Fitted {
 }
 
 /// One fitted feature.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct FittedFeature {
     /// Its name.
     pub name: String,
-    /// What it is computed from (indices into the dataset's columns).
-    #[serde(skip)]
+    /// What it is computed from: indices into the run's `content-columns`.
     pub input: FeatureInput,
     /// The input in words, such as `ratio of fill_time_ms and die_temp_c`.
     pub from: String,
@@ -59,7 +58,7 @@ pub struct FittedFeature {
 }
 
 /// A feature set with every transform fitted.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct FittedFeatures {
     /// The set's name.
@@ -315,7 +314,97 @@ pub fn fit(set: &FeatureSetPlan, data: &Dataset, train: &[RowId]) -> Result<Fitt
     })
 }
 
+/// Rows of a batch that cannot become features: the feature, why, and the
+/// 0-based rows in the batch (at most five).
+#[derive(Debug, Clone)]
+pub struct RowFault {
+    /// The feature.
+    pub feature: String,
+    /// What is wrong, in words.
+    pub reason: String,
+    /// The first offending rows of the batch.
+    pub rows: Vec<usize>,
+}
+
 impl FittedFeatures {
+    /// The feature matrix of `n` rows given as content columns
+    /// (`columns[c][i]` is content column `c` in row `i`; columns no feature
+    /// uses may be empty), for scoring new data. The arithmetic is the same
+    /// as [`FittedFeatures::apply`], so the same row gives the same bits.
+    pub fn apply_columns(
+        &self,
+        columns: &[Vec<f64>],
+        n: usize,
+    ) -> std::result::Result<Array2<f64>, RowFault> {
+        let mut m = Array2::zeros((n, self.features.len()));
+        let fault = |f: &FittedFeature, reason: String, v: &[f64], bad: &dyn Fn(f64) -> bool| {
+            let rows: Vec<usize> = (0..n).filter(|&i| bad(v[i])).take(5).collect();
+            (!rows.is_empty()).then(|| RowFault {
+                feature: f.name.clone(),
+                reason,
+                rows,
+            })
+        };
+        for (j, f) in self.features.iter().enumerate() {
+            let x = |c: usize, i: usize| columns[c][i];
+            let mut v: Vec<f64> = (0..n)
+                .map(|i| match f.input {
+                    FeatureInput::Column(a) => x(a, i),
+                    FeatureInput::Ratio(a, b) => x(a, i) / x(b, i),
+                    FeatureInput::Difference(a, b) => x(a, i) - x(b, i),
+                    FeatureInput::Product(a, b) => x(a, i) * x(b, i),
+                })
+                .collect();
+            let why = match f.input {
+                FeatureInput::Ratio(..) => "the ratio is not finite (a zero denominator)",
+                _ => "the value is not finite",
+            };
+            if let Some(e) = fault(f, why.into(), &v, &|x| !x.is_finite()) {
+                return Err(e);
+            }
+            for step in &f.transforms {
+                if let Some((rule, ok)) = domain(step.kind()) {
+                    let reason = format!(
+                        "`{}` cannot take this value: {rule}",
+                        crate::spec::transform_name(step.kind())
+                    );
+                    if let Some(e) = fault(f, reason, &v, &|x| !ok(x)) {
+                        return Err(e);
+                    }
+                }
+                for x in v.iter_mut() {
+                    *x = step.apply(*x);
+                }
+            }
+            if let Some(e) = fault(f, "a transformed value is not finite".into(), &v, &|x| {
+                !x.is_finite()
+            }) {
+                return Err(e);
+            }
+            for (k, x) in v.into_iter().enumerate() {
+                m[(k, j)] = x;
+            }
+        }
+        Ok(m)
+    }
+
+    /// The content columns the features read, ascending.
+    pub fn columns_used(&self) -> Vec<usize> {
+        let mut c: Vec<usize> = self
+            .features
+            .iter()
+            .flat_map(|f| match f.input {
+                FeatureInput::Column(a) => vec![a],
+                FeatureInput::Ratio(a, b)
+                | FeatureInput::Difference(a, b)
+                | FeatureInput::Product(a, b) => vec![a, b],
+            })
+            .collect();
+        c.sort_unstable();
+        c.dedup();
+        c
+    }
+
     /// Feature names, in order.
     pub fn names(&self) -> Vec<String> {
         self.features.iter().map(|f| f.name.clone()).collect()

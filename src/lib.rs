@@ -26,8 +26,10 @@ pub mod features;
 pub mod metrics;
 pub mod output;
 pub mod pipeline;
+pub mod progress;
 pub mod record;
 pub mod rng;
+pub mod score;
 pub mod sign;
 pub mod spec;
 pub mod split;
@@ -41,7 +43,19 @@ use std::path::PathBuf;
 #[derive(Debug, Clone)]
 pub enum Request {
     /// Run a spec.
-    Run(pipeline::RunOptions),
+    Run {
+        /// What to run.
+        opts: pipeline::RunOptions,
+        /// Print the summary as JSON.
+        json: bool,
+    },
+    /// Score new data with a run.
+    Score {
+        /// What to score.
+        opts: score::ScoreOptions,
+        /// Print the summary as JSON.
+        json: bool,
+    },
     /// Dry-run a spec.
     Check {
         /// The spec file.
@@ -91,6 +105,13 @@ pub struct Outcome {
     pub warnings: Vec<String>,
 }
 
+fn to_json(v: &impl serde::Serialize) -> Result<String> {
+    let mut s = serde_json::to_string_pretty(v)
+        .map_err(|e| Error::internal(format!("serialising the summary: {e}")))?;
+    s.push('\n');
+    Ok(s)
+}
+
 fn rate(v: Option<f64>) -> String {
     v.map_or("n/a".into(), |v| format!("{v:.4}"))
 }
@@ -114,9 +135,16 @@ pub fn run(request: &Request) -> Result<Outcome> {
                 check::render_text(&report)
             }
         }
-        Request::Run(opts) => {
+        Request::Run { opts, json } => {
             let s = pipeline::run(opts)?;
             warnings = s.warnings.clone();
+            if *json {
+                return Ok(Outcome {
+                    stdout: to_json(&s)?,
+                    code,
+                    warnings,
+                });
+            }
             let test = match s.test_f1 {
                 Some(_) => format!("test F1 {}", rate(s.test_f1)),
                 None if opts.open_test => "test F1 n/a".to_string(),
@@ -128,6 +156,28 @@ pub fn run(request: &Request) -> Result<Outcome> {
                 rate(s.validation_f1),
                 s.out.display()
             )
+        }
+        Request::Score { opts, json } => {
+            let s = score::score(opts)?;
+            if *json {
+                to_json(&s)?
+            } else {
+                format!(
+                    "scored {} rows with {} (τ = {}): {} flagged ({})\nrun manifest: blake3:{}{}\nwrote: {}\n",
+                    s.rows,
+                    s.candidate,
+                    record::fmt_f64(s.tau),
+                    s.flagged,
+                    if s.rows > 0 {
+                        format!("{:.2} %", 100.0 * s.flagged as f64 / s.rows as f64)
+                    } else {
+                        "no rows".into()
+                    },
+                    s.run_manifest_blake3,
+                    if s.signature_checked { " (signature verified)" } else { " (signature not checked: pass --pubkey)" },
+                    s.out.display()
+                )
+            }
         }
         Request::Verify {
             dir,

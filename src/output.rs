@@ -11,7 +11,18 @@ use ed25519_dalek::SigningKey;
 use crate::error::{Error, Result};
 use crate::sign::{self, Manifest, MANIFEST, SIGNATURE};
 
-/// Refuses an output path that already holds something.
+/// Refuses an output file that already exists.
+pub fn check_file_target(target: &Path) -> Result<()> {
+    if target.exists() {
+        return Err(Error::Output {
+            path: target.to_path_buf(),
+            message: "already exists; anomark never overwrites an output: remove it or choose another name".into(),
+        });
+    }
+    Ok(())
+}
+
+/// Refuses a run directory target that exists and is not empty.
 pub fn check_target(target: &Path) -> Result<()> {
     if target.exists() {
         let empty = target.is_dir()

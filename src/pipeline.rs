@@ -65,10 +65,13 @@ pub struct RunOptions {
     pub no_wall_clock: bool,
     /// The final run: open the test split once and record it on the ledger.
     pub open_test: bool,
+    /// Progress display for the long stages.
+    pub progress: crate::progress::Progress,
 }
 
-/// What a run produced.
-#[derive(Debug, Clone)]
+/// What a run produced (printed as JSON with `run --json`).
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
 pub struct RunSummary {
     /// Where the run directory is.
     pub out: PathBuf,
@@ -78,6 +81,10 @@ pub struct RunSummary {
     pub validation_f1: Option<f64>,
     /// Test F1 of the chosen candidate (None when the test split stayed sealed).
     pub test_f1: Option<f64>,
+    /// τ of the chosen candidate.
+    pub tau: f64,
+    /// Whether the test split was opened.
+    pub test_opened: bool,
     /// Warnings for stderr (a test split opened under several specs).
     pub warnings: Vec<String>,
 }
@@ -260,9 +267,14 @@ fn execute(
     let started = SystemTime::now();
     let clock = Instant::now();
 
+    let progress = opts.progress;
+    let stage = progress.stage("reading the data");
     let data = data::load(&plan)?;
+    drop(stage);
+    let stage = progress.stage(format!("hashing and splitting {} rows", data.len()));
     let hashes = hash::rows(&data.x, &data.is_anomaly);
     let splits = split::assign(&plan.split, &data, &hashes)?;
+    drop(stage);
 
     // Fit and choose on train and validation only.
     let val_y: Vec<bool> = splits
@@ -287,6 +299,7 @@ fn execute(
             } else {
                 detect::name(kind).to_string()
             };
+            let stage = progress.stage(format!("fitting and thresholding {name}"));
             let model = detect::build(kind)
                 .fit(train.view(), &names)
                 .map_err(|e| in_set(e, set))?;
@@ -304,6 +317,7 @@ fn execute(
                 validation,
                 validation_scores,
             });
+            drop(stage);
         }
         fitted_sets.push(fitted);
     }
@@ -411,6 +425,7 @@ fn execute(
         (vec![], vec![vec![]; candidates.len()], vec![], None)
     };
 
+    let stage = progress.stage("test metrics and intervals");
     let candidate_records: Vec<CandidateRecord> = candidates
         .iter()
         .zip(&test_scores)
@@ -499,6 +514,8 @@ fn execute(
         wall_clock,
     };
 
+    drop(stage);
+    let stage = progress.stage("writing the card and figures");
     let mut files = RunFiles::default();
     let mut run_json = serde_json::to_vec_pretty(&rec)
         .map_err(|e| Error::internal(format!("serialising run.json: {e}")))?;
@@ -566,12 +583,15 @@ fn execute(
     files.add("card.md", md.into_bytes());
     files.add("card.html", html.into_bytes());
 
+    drop(stage);
     let c = &rec.candidates[chosen];
     let summary = RunSummary {
         out: PathBuf::new(),
         chosen: c.name.clone(),
         validation_f1: c.validation.f1,
         test_f1: c.test.as_ref().and_then(|t| t.f1),
+        tau: c.tau,
+        test_opened: rec.test_opened,
         warnings,
     };
     Ok((files, summary))
@@ -940,6 +960,86 @@ pub fn recorded_spec_path(dir: &Path) -> Result<PathBuf> {
     }
 }
 
+/// Refuses inputs whose hashes differ from the ones `run` recorded (paths
+/// relative to the spec's folder).
+fn check_recorded_inputs(dir: &Path, spec: &Path, run: &serde_json::Value) -> Result<()> {
+    let base = spec.parent().unwrap_or(Path::new(""));
+    let mut problems = Vec::new();
+    for input in run["inputs"].as_array().into_iter().flatten() {
+        let rel = input["path"].as_str().unwrap_or_default();
+        let p = base.join(rel);
+        match hash::file(&p) {
+            Ok(d) if Some(d.blake3.as_str()) == input["blake3"].as_str() => {}
+            Ok(d) => problems.push(format!(
+                "input `{rel}` has blake3 {} but the run recorded {}",
+                d.blake3,
+                input["blake3"].as_str().unwrap_or("?")
+            )),
+            Err(e) => problems.push(format!("input `{rel}`: {e}")),
+        }
+    }
+    if !problems.is_empty() {
+        problems.push("recomputation refused: the inputs are not the recorded ones".into());
+        return Err(Error::Verify {
+            dir: dir.to_path_buf(),
+            problems,
+        });
+    }
+    Ok(())
+}
+
+/// Refits a run's chosen detector from the run's own spec and inputs (for a
+/// detector whose fitted state run.json does not hold, k-NN), refusing
+/// changed inputs and a refit whose parameters differ from `recorded`.
+pub fn refit_chosen(dir: &Path, recorded: &detect::Params) -> Result<Box<dyn Model>> {
+    let spec = recorded_spec_path(dir)?;
+    let read = |p: &Path| std::fs::read(p).map_err(|e| Error::io(p, "reading", e));
+    if read(&spec)? != read(&dir.join(SPEC_COPY))? {
+        return Err(Error::Verify {
+            dir: dir.to_path_buf(),
+            problems: vec![format!(
+                "the chosen detector keeps its training rows, which are refitted from the run's spec; `{}` differs from the recorded `{SPEC_COPY}`",
+                spec.display()
+            )],
+        });
+    }
+    let run = record::read_json(dir, "run.json")?;
+    check_recorded_inputs(dir, &spec, &run)?;
+    let plan = spec::load(&spec)?;
+    let data = data::load(&plan)?;
+    let hashes = hash::rows(&data.x, &data.is_anomaly);
+    let splits = split::assign(&plan.split, &data, &hashes)?;
+    let chosen = run["candidates"]
+        .as_array()
+        .and_then(|c| c.iter().find(|c| c["chosen"] == true))
+        .cloned()
+        .unwrap_or_default();
+    let set_name = chosen["feature-set"].as_str().unwrap_or_default();
+    let detector = chosen["detector"].as_str().unwrap_or_default();
+    let set = plan
+        .feature_sets
+        .iter()
+        .find(|s| s.name == set_name)
+        .ok_or_else(|| Error::internal(format!("feature set `{set_name}` is not in the spec")))?;
+    let kind = *plan
+        .detectors
+        .iter()
+        .find(|k| detect::name(**k) == detector)
+        .ok_or_else(|| Error::internal(format!("detector `{detector}` is not in the spec")))?;
+    let fitted = features::fit(set, &data, &splits.train)?;
+    let train = fitted.apply(&data, &splits.train)?;
+    let model = detect::build(kind).fit(train.view(), &fitted.names())?;
+    if &model.params() != recorded {
+        return Err(Error::Verify {
+            dir: dir.to_path_buf(),
+            problems: vec![format!(
+                "refitting `{detector}` from the run's spec and inputs gave other parameters than run.json records"
+            )],
+        });
+    }
+    Ok(model)
+}
+
 /// The first place where two texts differ: a JSON path for JSON, else a line.
 fn first_difference(name: &str, recorded: &[u8], recomputed: &[u8]) -> String {
     if name.ends_with(".json") {
@@ -1020,25 +1120,7 @@ pub fn verify_by_recomputation(
     }
     let run: serde_json::Value = serde_json::from_slice(&read(dir.join("run.json"))?)
         .map_err(|e| fail(vec![format!("`run.json` is unreadable: {e}")]))?;
-    let base = spec.parent().unwrap_or(Path::new(""));
-    let mut problems = Vec::new();
-    for input in run["inputs"].as_array().into_iter().flatten() {
-        let rel = input["path"].as_str().unwrap_or_default();
-        let p = base.join(rel);
-        match hash::file(&p) {
-            Ok(d) if Some(d.blake3.as_str()) == input["blake3"].as_str() => {}
-            Ok(d) => problems.push(format!(
-                "input `{rel}` has blake3 {} but the run recorded {}",
-                d.blake3,
-                input["blake3"].as_str().unwrap_or("?")
-            )),
-            Err(e) => problems.push(format!("input `{rel}`: {e}")),
-        }
-    }
-    if !problems.is_empty() {
-        problems.push("recomputation refused: the inputs are not the recorded ones".into());
-        return Err(fail(problems));
-    }
+    check_recorded_inputs(dir, spec, &run)?;
     let replay = Replay {
         wall_clock: serde_json::from_value(run["wall-clock"].clone()).unwrap_or(None),
         openings: serde_json::from_value(run["test-openings"].clone()).unwrap_or(None),
@@ -1052,6 +1134,7 @@ pub fn verify_by_recomputation(
         templates: None,
         no_wall_clock: run["wall-clock"].is_null(),
         open_test: run["test-opened"].as_bool().unwrap_or(false),
+        progress: crate::progress::Progress::hidden(),
     };
     let files = recompute(&opts, &replay)?;
     for name in manifest.files.keys() {

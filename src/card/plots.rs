@@ -545,7 +545,7 @@ pub fn feature_histogram(
     })?;
     Ok(Plot {
         file,
-        title: format!("Feature {}", index + 1),
+        title: format!("Training histogram of {name}"),
         caption: format!(
             "{name}: training rows after transforms (bars, as a density) and {source} (line).{}",
             if outside > 0 {

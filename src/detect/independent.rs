@@ -43,6 +43,16 @@ impl Detector for IndependentGaussian {
     }
 }
 
+/// Rebuilds the model from recorded means and variances.
+pub(crate) fn restore(mean: Vec<f64>, variance: Vec<f64>) -> Box<dyn Model> {
+    let constant = variance.iter().map(|v| HALF_LN_2PI + 0.5 * ln(*v)).sum();
+    Box::new(Fitted {
+        mean,
+        variance,
+        constant,
+    })
+}
+
 impl Model for Fitted {
     fn score(&self, x: ArrayView2<'_, f64>) -> Vec<f64> {
         x.rows()

@@ -285,6 +285,32 @@ impl Detector for GaussianMixture {
     }
 }
 
+/// Rebuilds a scoring model from recorded weights, means and covariances
+/// (row-major); only its scores are used.
+pub(crate) fn restore(
+    weights: Vec<f64>,
+    means: Vec<Vec<f64>>,
+    covariances: Vec<Vec<f64>>,
+    features: &[String],
+) -> Result<Box<dyn Model>> {
+    let components = means
+        .into_iter()
+        .zip(covariances)
+        .map(|(m, c)| Gaussian::new(m, c, NAME, features))
+        .collect::<Result<Vec<_>>>()?;
+    let k = weights.len();
+    Ok(Box::new(Fitted {
+        mixture: Mixture {
+            weights,
+            components,
+            log_likelihood: 0.0,
+        },
+        k,
+        bic: 0.0,
+        bic_by_k: vec![],
+    }))
+}
+
 struct Fitted {
     mixture: Mixture,
     k: usize,

@@ -47,7 +47,7 @@ pub trait Model: Send + Sync {
 }
 
 /// Fitted parameters, as recorded in run.json.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case", tag = "detector")]
 pub enum Params {
     /// Per-feature mean and maximum-likelihood variance (divisor m).
@@ -172,6 +172,56 @@ impl Params {
             } => training_rows * mean.len(),
         }
     }
+}
+
+/// A model rebuilt from recorded parameters: it scores with the rebuilt
+/// inner model and reports the parameters exactly as recorded.
+struct Restored {
+    params: Params,
+    inner: Box<dyn Model>,
+}
+
+impl Model for Restored {
+    fn score(&self, x: ArrayView2<'_, f64>) -> Vec<f64> {
+        self.inner.score(x)
+    }
+    fn params(&self) -> Params {
+        self.params.clone()
+    }
+}
+
+/// Rebuilds a fitted model from the parameters a run recorded, for scoring
+/// new data; the scores are the same bits as the run's. None for k-NN, whose
+/// training rows are not recorded (the caller refits it from the run's inputs).
+pub fn restore(params: &Params, features: &[String]) -> Result<Option<Box<dyn Model>>> {
+    let flat = |rows: &[Vec<f64>]| rows.concat();
+    let inner: Box<dyn Model> = match params {
+        Params::IndependentGaussian { mean, variance } => {
+            independent::restore(mean.clone(), variance.clone())
+        }
+        Params::MultivariateGaussian {
+            mean, covariance, ..
+        }
+        | Params::RobustGaussian {
+            mean, covariance, ..
+        } => multivariate::restore(mean.clone(), flat(covariance), features)?,
+        Params::GaussianMixture {
+            weights,
+            means,
+            covariances,
+            ..
+        } => mixture::restore(
+            weights.clone(),
+            means.clone(),
+            covariances.iter().map(|c| flat(c)).collect(),
+            features,
+        )?,
+        Params::KnnDistance { .. } => return Ok(None),
+    };
+    Ok(Some(Box::new(Restored {
+        params: params.clone(),
+        inner,
+    })))
 }
 
 /// The detector's name in specs, files and cards.

@@ -176,6 +176,15 @@ impl Detector for MultivariateGaussian {
 
 struct Fitted(Gaussian);
 
+/// Rebuilds the model from a recorded mean and covariance (row-major).
+pub(crate) fn restore(
+    mean: Vec<f64>,
+    cov: Vec<f64>,
+    features: &[String],
+) -> Result<Box<dyn Model>> {
+    Ok(Box::new(Fitted(Gaussian::new(mean, cov, NAME, features)?)))
+}
+
 /// Refuses a covariance whose correlation matrix is singular or nearly so,
 /// naming the features that take part in the near-dependence (the large
 /// entries of the eigenvector of the smallest eigenvalue).

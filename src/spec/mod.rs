@@ -65,7 +65,7 @@ pub struct LabelPlan {
 }
 
 /// What a feature is computed from: indices into [`Plan::columns`].
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum FeatureInput {
     /// A column as it is.
