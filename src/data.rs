@@ -169,7 +169,7 @@ fn csv_error(path: &Path, e: PolarsError) -> Error {
 /// Expands a source path: a file, a glob (`*`, `?`, `[`), or a directory
 /// (every `.parquet` file below it, skipping names that start with `.` or `_`,
 /// as distributed engines write them). Sorted, so the order is reproducible.
-fn expand(s: &SourcePlan, plan: &Plan) -> Result<Vec<PathBuf>> {
+pub(crate) fn expand(s: &SourcePlan, plan: &Plan) -> Result<Vec<PathBuf>> {
     let p = &s.resolved;
     let not_found = |why: String| plan.error_at(&s.at, &s.field, why);
     let mut files = if s.written.contains(['*', '?', '[']) {
@@ -231,7 +231,7 @@ fn walk_parquet(dir: &Path, out: &mut Vec<PathBuf>) -> Result<()> {
     Ok(())
 }
 
-fn format_of(path: &Path, plan: &Plan, s: &SourcePlan) -> Result<Format> {
+pub(crate) fn format_of(path: &Path, plan: &Plan, s: &SourcePlan) -> Result<Format> {
     let ext = path
         .extension()
         .and_then(|e| e.to_str())
@@ -251,7 +251,7 @@ fn format_of(path: &Path, plan: &Plan, s: &SourcePlan) -> Result<Format> {
     }
 }
 
-fn shown(path: &Path, plan: &Plan) -> String {
+pub(crate) fn shown(path: &Path, plan: &Plan) -> String {
     let base = plan.spec_path.parent().unwrap_or(Path::new(""));
     let rel = path.strip_prefix(base).unwrap_or(path);
     rel.components()
@@ -260,7 +260,7 @@ fn shown(path: &Path, plan: &Plan) -> String {
         .join("/")
 }
 
-fn missing_column(plan: &Plan, c: &Column, file: &str, present: &[String]) -> Error {
+pub(crate) fn missing_column(plan: &Plan, c: &Column, file: &str, present: &[String]) -> Error {
     let mut shown: Vec<String> = present.iter().take(12).map(|p| format!("`{p}`")).collect();
     if present.len() > 12 {
         shown.push(format!("and {} more", present.len() - 12));

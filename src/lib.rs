@@ -33,6 +33,7 @@ pub mod score;
 pub mod sign;
 pub mod spec;
 pub mod split;
+pub mod stream;
 pub mod threshold;
 
 pub use error::{Error, Result};

@@ -268,13 +268,36 @@ fn execute(
     let clock = Instant::now();
 
     let progress = opts.progress;
-    let stage = progress.stage("reading the data");
-    let data = data::load(&plan)?;
-    drop(stage);
-    let stage = progress.stage(format!("hashing and splitting {} rows", data.len()));
-    let hashes = hash::rows(&data.x, &data.is_anomaly);
-    let splits = split::assign(&plan.split, &data, &hashes)?;
-    drop(stage);
+    // Streamed: the training rows are summarised by moments per feature set
+    // and their content hashes; only validation and test rows are kept.
+    let (data, hashes, splits, streamed) = if plan.stream {
+        let s = crate::stream::load(&plan, &progress)?;
+        let stage = progress.stage("splitting and checking for leakage");
+        let splits = split::streamed(
+            &s.data,
+            &s.hashes,
+            &s.parts,
+            &s.train_hashes,
+            s.train_counts,
+        )?;
+        drop(stage);
+        let train_manifest = hash::manifest(&s.train_hashes);
+        (
+            s.data,
+            s.hashes,
+            splits,
+            Some((s.fitted, s.moments, train_manifest)),
+        )
+    } else {
+        let stage = progress.stage("reading the data");
+        let data = data::load(&plan)?;
+        drop(stage);
+        let stage = progress.stage(format!("hashing and splitting {} rows", data.len()));
+        let hashes = hash::rows(&data.x, &data.is_anomaly);
+        let splits = split::assign(&plan.split, &data, &hashes)?;
+        drop(stage);
+        (data, hashes, splits, None)
+    };
 
     // Fit and choose on train and validation only.
     let val_y: Vec<bool> = splits
@@ -289,7 +312,10 @@ fn execute(
     let mut fitted_sets = Vec::new();
     let mut candidates = Vec::new();
     for (si, set) in plan.feature_sets.iter().enumerate() {
-        let fitted = features::fit(set, &data, &splits.train)?;
+        let fitted = match &streamed {
+            Some((f, _, _)) => f[si].clone(),
+            None => features::fit(set, &data, &splits.train)?,
+        };
         let names = fitted.names();
         let train = fitted.apply(&data, &splits.train)?;
         let val_x = fitted.apply(&data, &splits.validation)?;
@@ -300,9 +326,11 @@ fn execute(
                 detect::name(kind).to_string()
             };
             let stage = progress.stage(format!("fitting and thresholding {name}"));
-            let model = detect::build(kind)
-                .fit(train.view(), &names)
-                .map_err(|e| in_set(e, set))?;
+            let model = match &streamed {
+                Some((_, moments, _)) => crate::stream::fit(kind, &moments[si], &names),
+                None => detect::build(kind).fit(train.view(), &names),
+            }
+            .map_err(|e| in_set(e, set))?;
             let validation_scores =
                 checked_scores(&name, model.as_ref(), &val_x, &splits.validation, &data)?;
             let choice = threshold::choose(plan.threshold, &validation_scores, &val_y);
@@ -348,6 +376,9 @@ fn execute(
     })
     .collect();
     manifests.insert(Part::Test.name().into(), test_manifest.clone());
+    if let Some((_, _, train_manifest)) = &streamed {
+        manifests.insert(Part::Train.name().into(), train_manifest.clone());
+    }
 
     // Every choice is fixed. Only a final run opens the test split, once, and
     // the opening is on the ledger before any test score is computed.
@@ -560,15 +591,31 @@ fn execute(
         ];
     }
     let set = &fitted_sets[c.set];
-    let train_x = set.apply(&data, &splits.train)?;
+    // A streamed run kept no training rows: its figures show the validation
+    // split's normal rows under the density fitted to the training rows.
+    let (shown_rows, shown_as) = if streamed.is_some() {
+        let normal: Vec<RowId> = splits
+            .validation
+            .iter()
+            .copied()
+            .filter(|r| !data.is_anomaly[r.0 as usize])
+            .collect();
+        (
+            normal,
+            "validation normal rows (the training rows were streamed, not kept)",
+        )
+    } else {
+        (splits.train.clone(), "training rows")
+    };
+    let shown_x = set.apply(&data, &shown_rows)?;
     let params = c.model.params();
     ctx.plots_features = set
         .names()
         .iter()
         .enumerate()
         .map(|(j, name)| {
-            let column: Vec<f64> = train_x.column(j).to_vec();
-            plots::feature_histogram(j, name, &column, params.marginal(j))
+            let column: Vec<f64> = shown_x.column(j).to_vec();
+            plots::feature_histogram(j, name, shown_as, &column, params.marginal(j))
         })
         .collect::<Result<_>>()?;
     for p in ctx

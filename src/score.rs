@@ -379,7 +379,7 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         return Err(e);
     }
     if let Err(e) = outcome {
-        return Err(parse_failure(&opts.data, in_format, &used, e));
+        return Err(not_a_number(&opts.data, in_format == Format::Csv, &used, e));
     }
     if st.writer.is_none() {
         // No rows: still write the header (CSV) or an empty file with the schema.
@@ -538,8 +538,8 @@ type NotNumber = (String, Vec<u64>, usize);
 
 /// A failed scan: most often a feature value that is not a number. Re-reads
 /// the feature columns as text, streaming, to name the first such lines.
-fn parse_failure(path: &Path, format: Format, used: &[String], e: PolarsError) -> Error {
-    if format != Format::Csv {
+pub(crate) fn not_a_number(path: &Path, csv: bool, used: &[String], e: PolarsError) -> Error {
+    if !csv {
         return polars_error(path, e);
     }
     let Ok(ppath) = PlRefPath::try_from_path(path) else {

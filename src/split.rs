@@ -324,6 +324,125 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
     })
 }
 
+/// Rows that share their content with another row of a hash-sorted list.
+fn duplicated_rows(sorted: &[ContentHash]) -> usize {
+    let mut n = 0;
+    let mut i = 0;
+    while i < sorted.len() {
+        let mut j = i + 1;
+        while j < sorted.len() && sorted[j] == sorted[i] {
+            j += 1;
+        }
+        if j - i > 1 {
+            n += j - i;
+        }
+        i = j;
+    }
+    n
+}
+
+/// The splits of a streamed source (`data.stream`): `data` holds only the
+/// validation and test rows (`parts`), the training rows are known by their
+/// sorted content hashes. Refuses content shared between splits, as
+/// [`assign`] does, with a sorted merge instead of a map.
+pub fn streamed(
+    data: &Dataset,
+    hashes: &[ContentHash],
+    parts: &[Part],
+    train_hashes: &[ContentHash],
+    train_counts: Counts,
+) -> Result<Splits> {
+    let mut lists: [Vec<RowId>; 3] = Default::default();
+    let mut counts = [Counts::default(); 3];
+    counts[0] = train_counts;
+    for (i, p) in parts.iter().enumerate() {
+        lists[*p as usize].push(RowId(i as u64));
+        if data.is_anomaly[i] {
+            counts[*p as usize].anomaly += 1;
+        } else {
+            counts[*p as usize].normal += 1;
+        }
+    }
+    for list in lists.iter_mut() {
+        list.sort_by_key(|r| (hashes[r.0 as usize], *r));
+    }
+    let sorted = |p: Part| -> Vec<ContentHash> {
+        lists[p as usize]
+            .iter()
+            .map(|r| hashes[r.0 as usize])
+            .collect()
+    };
+    let (val, test) = (sorted(Part::Validation), sorted(Part::Test));
+    // Validation against test: a merge of two sorted lists.
+    let (mut i, mut j, mut shared, mut first) = (0, 0, 0usize, None);
+    while i < val.len() && j < test.len() {
+        match val[i].cmp(&test[j]) {
+            std::cmp::Ordering::Less => i += 1,
+            std::cmp::Ordering::Greater => j += 1,
+            std::cmp::Ordering::Equal => {
+                let h = val[i];
+                first.get_or_insert((lists[1][i], lists[2][j]));
+                shared += 1;
+                while i < val.len() && val[i] == h {
+                    i += 1;
+                }
+                while j < test.len() && test[j] == h {
+                    j += 1;
+                }
+            }
+        }
+    }
+    if let Some((a, b)) = first {
+        return Err(Error::Leakage {
+            splits: ("validation".into(), "test".into()),
+            overlapping: shared,
+            first: (data.place(a), data.place(b)),
+        });
+    }
+    // Training against each: a binary search per validation or test content.
+    for (p, list) in [(Part::Validation, &val), (Part::Test, &test)] {
+        let hits: Vec<usize> = (0..list.len())
+            .filter(|&k| {
+                (k == 0 || list[k] != list[k - 1]) && train_hashes.binary_search(&list[k]).is_ok()
+            })
+            .collect();
+        if let Some(&k) = hits.first() {
+            return Err(Error::Leakage {
+                splits: ("train".into(), p.name().into()),
+                overlapping: hits.len(),
+                first: (
+                    "a training row (streamed, so its line is not kept)".into(),
+                    data.place(lists[p as usize][k]),
+                ),
+            });
+        }
+    }
+    check_counts(&counts)?;
+    let report = SplitReport {
+        method: "from-column",
+        seed: None,
+        requested: None,
+        counts,
+        rows_off_requested_counts: 0,
+        rows_with_duplicates: duplicated_rows(train_hashes)
+            + duplicated_rows(&val)
+            + duplicated_rows(&test),
+        groups: None,
+        time_cuts: None,
+    };
+    let [train, validation, test_rows] = lists;
+    Ok(Splits {
+        train,
+        validation,
+        test: SealedTest {
+            manifest: crate::audit::hash::manifest(&test),
+            rows: test_rows,
+            counts: counts[2],
+        },
+        report,
+    })
+}
+
 fn protocol(data: &Dataset, hashes: &[ContentHash], seed: Seed, f: &Fractions) -> Vec<Part> {
     // Distinct contents with their multiplicity; the label is part of the content.
     let mut groups = BTreeMap::<ContentHash, (usize, bool)>::new();

@@ -483,6 +483,7 @@ fn mixture_pdf(components: &[(f64, f64, f64)], x: f64) -> f64 {
 pub fn feature_histogram(
     index: usize,
     name: &str,
+    rows: &str,
     values: &[f64],
     marginal: Option<Vec<(f64, f64, f64)>>,
 ) -> Result<Plot> {
@@ -547,7 +548,7 @@ pub fn feature_histogram(
         file,
         title: format!("Training histogram of {name}"),
         caption: format!(
-            "{name}: training rows after transforms (bars, as a density) and {source} (line).{}",
+            "{name}: {rows} after transforms (bars, as a density) and {source} (line).{}",
             if outside > 0 {
                 format!(" {outside} rows in the 0.1 % tails are not drawn.")
             } else {
@@ -574,8 +575,8 @@ mod tests {
     #[test]
     fn the_same_numbers_give_the_same_svg_and_data_text_is_escaped() {
         let v: Vec<f64> = (0..1000).map(|i| (i as f64 * 0.37).sin()).collect();
-        let a = feature_histogram(0, "<script>alert(1)</script>", &v, None).unwrap();
-        let b = feature_histogram(0, "<script>alert(1)</script>", &v, None).unwrap();
+        let a = feature_histogram(0, "<script>alert(1)</script>", "rows", &v, None).unwrap();
+        let b = feature_histogram(0, "<script>alert(1)</script>", "rows", &v, None).unwrap();
         assert_eq!(a.svg, b.svg);
         assert!(!a.svg.contains("<script>"));
         assert!(a.svg.contains("&lt;script&gt;"));

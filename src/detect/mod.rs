@@ -224,6 +224,21 @@ pub fn restore(params: &Params, features: &[String]) -> Result<Option<Box<dyn Mo
     })))
 }
 
+/// The independent Gaussian with given means and variances (streamed fits).
+pub fn restore_independent(mean: Vec<f64>, variance: Vec<f64>) -> Box<dyn Model> {
+    independent::restore(mean, variance)
+}
+
+/// The multivariate Gaussian with a given mean and covariance (row-major),
+/// refusing an ill-conditioned covariance (streamed fits).
+pub fn restore_multivariate(
+    mean: Vec<f64>,
+    cov: Vec<f64>,
+    features: &[String],
+) -> Result<Box<dyn Model>> {
+    multivariate::restore(mean, cov, features)
+}
+
 /// The detector's name in specs, files and cards.
 pub fn name(kind: DetectorKind) -> &'static str {
     match kind {

@@ -211,6 +211,8 @@ pub struct Plan {
     pub output: Option<PathBuf>,
     /// The test ledger.
     pub ledger: PathBuf,
+    /// Stream the data; train rows are summarised, never held (see `data.stream`).
+    pub stream: bool,
 }
 
 impl Plan {
@@ -973,6 +975,53 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
         detectors.push(kind);
     }
 
+    let stream = match data.stream.as_ref().filter(|s| s.value) {
+        None => false,
+        Some(s) => {
+            let bad = |m: String| Err(r.err(s, "data.stream", m));
+            if label.is_none() || sources.len() != 1 {
+                return bad("streaming reads one labelled source: `path` with `label`".into());
+            }
+            if !matches!(split, SplitPlan::FromColumn { group: None, .. }) {
+                return bad(
+                    "streaming needs `split: from-column` without a group column: the other \
+                     methods place rows by looking at all of them at once"
+                        .into(),
+                );
+            }
+            if let Some(d) = detectors.iter().find(|d| {
+                !matches!(
+                    d,
+                    DetectorKind::IndependentGaussian | DetectorKind::MultivariateGaussian
+                )
+            }) {
+                return bad(format!(
+                    "`{}` needs its training rows in memory; streaming fits the \
+                     independent-gaussian and multivariate-gaussian from sufficient statistics",
+                    crate::detect::name(*d)
+                ));
+            }
+            for f in feature_sets.iter().flat_map(|s| &s.features) {
+                if let Some(t) = f.transforms.iter().find(|t| {
+                    matches!(
+                        t,
+                        TransformKind::BoxCox
+                            | TransformKind::YeoJohnson
+                            | TransformKind::Standardise
+                    )
+                }) {
+                    return bad(format!(
+                        "feature `{}`: `{}` fits a parameter on the training rows, which \
+                         streaming does not keep; use log, log1p or sqrt",
+                        f.name,
+                        transform_name(*t)
+                    ));
+                }
+            }
+            true
+        }
+    };
+
     let threshold = match &raw.threshold {
         None => ThresholdPolicy::MaxF1,
         Some(t) => {
@@ -1038,6 +1087,7 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
                 .unwrap_or_else(|| "spec".into());
             format!("{stem}.test-ledger.jsonl")
         })),
+        stream,
     })
 }
 

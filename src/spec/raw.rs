@@ -89,6 +89,14 @@ pub struct RawData {
     #[serde(default)]
     #[schemars(with = "Option<Vec<RawFeatureSet>>")]
     pub feature_sets: Option<Spanned<Vec<RawFeatureSet>>>,
+    /// Stream the data instead of loading it: the training rows are never held
+    /// in memory, and the Gaussian detectors fit from sufficient statistics
+    /// merged block by block. Needs one labelled source, `split: from-column`,
+    /// the independent or multivariate Gaussian, and transforms without fitted
+    /// parameters (log, log1p, sqrt).
+    #[serde(default)]
+    #[schemars(with = "Option<bool>")]
+    pub stream: Option<Spanned<bool>>,
 }
 
 /// What to do with a row whose feature value is missing.

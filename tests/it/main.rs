@@ -23,3 +23,4 @@ mod score;
 mod signing;
 mod sources;
 mod splits;
+mod stream;

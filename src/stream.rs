@@ -1,0 +1,686 @@
+//! Data larger than memory (`data.stream: true`): the source is read by
+//! polars' streaming engine in batches; training rows are hashed and folded
+//! into mergeable sufficient statistics (count, mean and co-moment matrix per
+//! feature set), block by block, and then dropped. Only the validation and
+//! test rows, and 32 bytes of content hash per training row (for the train
+//! manifest and the leakage check), stay in memory.
+//!
+//! Blocks are fixed runs of [`BLOCK`] training rows in file order, whatever
+//! batches the engine delivers, and blocks merge in order by the pairwise
+//! update of Chan, Golub and LeVeque (1979), so the same file gives the same
+//! bits on every run and thread count. (The bits differ in the last places from
+//! an in-memory fit, which sums in content-hash order.)
+
+use std::collections::BTreeMap;
+use std::path::Path;
+use std::sync::{Arc, Mutex};
+
+use ndarray::{Array2, ArrayView2};
+use polars::prelude::*;
+
+use crate::audit::hash::{self, ContentHash};
+use crate::data::{self, Dataset, Dropped, Format, Origin, SourceFile};
+use crate::detect::{self, Model};
+use crate::error::{Error, Result, RowUnit};
+use crate::features::{self, FittedFeatures};
+use crate::progress::Progress;
+use crate::spec::{DetectorKind, MissingPolicy, Plan, SplitPlan};
+use crate::split::{Counts, Part};
+
+/// Training rows per block of sufficient statistics.
+pub const BLOCK: usize = 65_536;
+
+/// Count, mean and co-moment matrix Σ (x − x̄)(x − x̄)ᵀ (row-major, d × d).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Moments {
+    /// Rows.
+    pub n: u64,
+    /// Mean.
+    pub mean: Vec<f64>,
+    /// Co-moment matrix.
+    pub m2: Vec<f64>,
+}
+
+impl Moments {
+    /// No rows yet.
+    pub fn empty(d: usize) -> Self {
+        Moments {
+            n: 0,
+            mean: vec![0.0; d],
+            m2: vec![0.0; d * d],
+        }
+    }
+
+    /// The moments of one block, two-pass (mean first, then centred products).
+    pub fn of_block(x: ArrayView2<'_, f64>) -> Self {
+        let (n, d) = x.dim();
+        let mut mean = vec![0.0; d];
+        for row in x.rows() {
+            for (s, v) in mean.iter_mut().zip(row.iter()) {
+                *s += v;
+            }
+        }
+        for s in mean.iter_mut() {
+            *s /= n as f64;
+        }
+        let mut m2 = vec![0.0; d * d];
+        let mut c = vec![0.0; d];
+        for row in x.rows() {
+            for (cj, (v, mu)) in c.iter_mut().zip(row.iter().zip(&mean)) {
+                *cj = v - mu;
+            }
+            for a in 0..d {
+                for b in 0..=a {
+                    m2[a * d + b] += c[a] * c[b];
+                }
+            }
+        }
+        for a in 0..d {
+            for b in 0..a {
+                m2[b * d + a] = m2[a * d + b];
+            }
+        }
+        Moments {
+            n: n as u64,
+            mean,
+            m2,
+        }
+    }
+
+    /// Folds `other` in: the pairwise update (Chan, Golub and LeVeque 1979).
+    pub fn merge(&mut self, other: &Moments) {
+        if other.n == 0 {
+            return;
+        }
+        if self.n == 0 {
+            *self = other.clone();
+            return;
+        }
+        let d = self.mean.len();
+        let (na, nb) = (self.n as f64, other.n as f64);
+        let n = na + nb;
+        let delta: Vec<f64> = other
+            .mean
+            .iter()
+            .zip(&self.mean)
+            .map(|(b, a)| b - a)
+            .collect();
+        for (m, dl) in self.mean.iter_mut().zip(&delta) {
+            *m += dl * (nb / n);
+        }
+        let w = na * nb / n;
+        for a in 0..d {
+            for b in 0..d {
+                self.m2[a * d + b] += other.m2[a * d + b] + delta[a] * delta[b] * w;
+            }
+        }
+        self.n += other.n;
+    }
+
+    /// The maximum-likelihood covariance M2 / n.
+    pub fn covariance(&self) -> Vec<f64> {
+        self.m2.iter().map(|v| v / self.n as f64).collect()
+    }
+}
+
+/// What streaming the source produced.
+pub struct Streamed {
+    /// The validation and test rows only.
+    pub data: Dataset,
+    /// Content hash of each of those rows.
+    pub hashes: Vec<ContentHash>,
+    /// Each of those rows' split (validation or test).
+    pub parts: Vec<Part>,
+    /// Content hashes of the training rows, ascending.
+    pub train_hashes: Vec<ContentHash>,
+    /// Training rows by label.
+    pub train_counts: Counts,
+    /// Per feature set: the fitted (parameter-free) features.
+    pub fitted: Vec<FittedFeatures>,
+    /// Per feature set: the training rows' moments.
+    pub moments: Vec<Moments>,
+}
+
+/// Fits a Gaussian detector from training moments.
+pub fn fit(kind: DetectorKind, m: &Moments, names: &[String]) -> Result<Box<dyn Model>> {
+    let name = detect::name(kind);
+    let d = m.mean.len();
+    let cov = m.covariance();
+    let constant: Vec<String> = (0..d)
+        .filter(|&j| cov[j * d + j] <= 0.0 || !cov[j * d + j].is_finite())
+        .map(|j| names[j].clone())
+        .collect();
+    if !constant.is_empty() {
+        return Err(Error::Fit {
+            detector: name.into(),
+            message: "a feature has zero variance on the training rows (every value is the same), \
+                      so its density is degenerate; drop it or fix the data"
+                .into(),
+            features: constant,
+        });
+    }
+    match kind {
+        DetectorKind::IndependentGaussian => {
+            let variance = (0..d).map(|j| cov[j * d + j]).collect();
+            Ok(detect::restore_independent(m.mean.clone(), variance))
+        }
+        DetectorKind::MultivariateGaussian => {
+            if m.n as usize <= d {
+                return Err(Error::Fit {
+                    detector: name.into(),
+                    message: format!(
+                        "{} training rows cannot determine a covariance over {d} features",
+                        m.n
+                    ),
+                    features: vec![],
+                });
+            }
+            detect::restore_multivariate(m.mean.clone(), cov, names)
+        }
+        other => Err(Error::internal(format!(
+            "`{}` cannot be fitted from moments",
+            detect::name(other)
+        ))),
+    }
+}
+
+/// Rows of the current file read so far, and everything kept.
+struct Acc {
+    file: u32,
+    row: u64,
+    // Kept validation and test rows.
+    x: Vec<f64>,
+    is_anomaly: Vec<bool>,
+    origin: Vec<Origin>,
+    ids: Option<Vec<String>>,
+    hashes: Vec<ContentHash>,
+    parts: Vec<Part>,
+    // Training rows not yet folded into a block.
+    pending: Vec<f64>,
+    pending_origin: Vec<Origin>,
+    train_hashes: Vec<ContentHash>,
+    train_counts: Counts,
+    moments: Vec<Moments>,
+    dropped: Dropped,
+    error: Option<Error>,
+}
+
+struct Ctx<'a> {
+    plan: &'a Plan,
+    fitted: &'a [FittedFeatures],
+    files: &'a [SourceFile],
+    ncols: usize,
+}
+
+impl Ctx<'_> {
+    fn data_error(&self, acc: &Acc, column: &str, message: String, rows: &[u64]) -> Error {
+        let f = &self.files[acc.file as usize];
+        Error::Data {
+            path: f.shown.clone().into(),
+            column: Some(column.into()),
+            message,
+            total: rows.len(),
+            lines: rows.iter().take(5).map(|&r| f.format.place(r)).collect(),
+            unit: match f.format {
+                Format::Csv => RowUnit::Line,
+                Format::Parquet => RowUnit::Row,
+            },
+        }
+    }
+
+    /// Folds the first `rows` pending training rows into the moments.
+    fn fold(&self, acc: &mut Acc, rows: usize) -> Result<()> {
+        if rows == 0 {
+            return Ok(());
+        }
+        let c = self.ncols;
+        let columns: Vec<Vec<f64>> = (0..c)
+            .map(|j| (0..rows).map(|i| acc.pending[i * c + j]).collect())
+            .collect();
+        for (s, f) in self.fitted.iter().enumerate() {
+            let x = f.apply_columns(&columns, rows).map_err(|fault| {
+                let o = acc.pending_origin[fault.rows[0]];
+                let file = &self.files[o.file as usize];
+                Error::Data {
+                    path: file.shown.clone().into(),
+                    column: Some(fault.feature.clone()),
+                    message: fault.reason.clone(),
+                    total: fault.rows.len(),
+                    lines: fault
+                        .rows
+                        .iter()
+                        .map(|&r| acc.pending_origin[r])
+                        .filter(|p| p.file == o.file)
+                        .map(|p| file.format.place(p.row))
+                        .collect(),
+                    unit: match file.format {
+                        Format::Csv => RowUnit::Line,
+                        Format::Parquet => RowUnit::Row,
+                    },
+                }
+            })?;
+            let block = Moments::of_block(x.view());
+            acc.moments[s].merge(&block);
+        }
+        acc.pending.drain(..rows * c);
+        acc.pending_origin.drain(..rows);
+        Ok(())
+    }
+
+    fn batch(&self, acc: &mut Acc, df: &DataFrame, split_col: &str) -> Result<()> {
+        let n = df.height();
+        let plan = self.plan;
+        let label = plan.label.as_ref().expect("streaming has a label column");
+        let strings = |name: &str| -> Result<Vec<Option<String>>> {
+            Ok(df
+                .column(name)
+                .and_then(|c| c.str().cloned())
+                .map_err(|e| Error::internal(format!("column `{name}`: {e}")))?
+                .iter()
+                .map(|v| v.map(str::to_string))
+                .collect())
+        };
+        let mut numeric: Vec<Vec<Option<f64>>> = Vec::with_capacity(self.ncols);
+        for c in &plan.columns {
+            numeric.push(
+                df.column(&c.name)
+                    .and_then(|c| c.f64().cloned())
+                    .map_err(|e| Error::internal(format!("column `{}`: {e}", c.name)))?
+                    .iter()
+                    .collect(),
+            );
+        }
+        let labels = strings(&label.column.name)?;
+        let splits = strings(split_col)?;
+        let ids = match &plan.id_column {
+            Some(c) => Some(strings(&c.name)?),
+            None => None,
+        };
+        // Check every row first, so that an error names its lines.
+        let mut keep = Vec::with_capacity(n);
+        let mut bad_label = Vec::new();
+        let mut bad_split = Vec::new();
+        let mut anomaly_in_train = Vec::new();
+        let mut missing: Vec<Vec<u64>> = vec![vec![]; self.ncols];
+        for i in 0..n {
+            let r = acc.row + i as u64;
+            let a = match labels[i].as_deref() {
+                Some(v) if v == label.normal => false,
+                Some(v) if v == label.anomaly => true,
+                _ => {
+                    bad_label.push(r);
+                    false
+                }
+            };
+            let p = match splits[i].as_deref() {
+                Some("train") => Part::Train,
+                Some("validation") => Part::Validation,
+                Some("test") => Part::Test,
+                _ => {
+                    bad_split.push(r);
+                    Part::Train
+                }
+            };
+            if a && p == Part::Train {
+                anomaly_in_train.push(r);
+            }
+            let mut has_missing = false;
+            for (j, col) in numeric.iter().enumerate() {
+                if col[i].is_none() {
+                    missing[j].push(r);
+                    has_missing = true;
+                }
+            }
+            if has_missing && plan.missing == MissingPolicy::DropRow {
+                if a {
+                    acc.dropped.anomaly += 1;
+                } else {
+                    acc.dropped.normal += 1;
+                }
+                let e = acc
+                    .dropped
+                    .by_split
+                    .entry(splits[i].clone().unwrap_or_default())
+                    .or_default();
+                e[a as usize] += 1;
+                keep.push(None);
+            } else {
+                keep.push(Some((a, p)));
+            }
+        }
+        if let Some(&first) = bad_label.first() {
+            let i = (first - acc.row) as usize;
+            return Err(self.data_error(
+                acc,
+                &label.column.name,
+                format!(
+                    "label `{}` is neither `{}` (normal) nor `{}` (anomaly)",
+                    labels[i].as_deref().unwrap_or(""),
+                    label.normal,
+                    label.anomaly
+                ),
+                &bad_label,
+            ));
+        }
+        if let Some(&first) = bad_split.first() {
+            let i = (first - acc.row) as usize;
+            return Err(self.data_error(
+                acc,
+                split_col,
+                format!(
+                    "split value `{}` is not one of `train`, `validation`, `test`",
+                    splits[i].as_deref().unwrap_or("")
+                ),
+                &bad_split,
+            ));
+        }
+        if !anomaly_in_train.is_empty() {
+            return Err(self.data_error(
+                acc,
+                split_col,
+                "a known anomaly is assigned to `train`; detectors are fitted on normal rows only, \
+                 so known anomalies belong in validation and test"
+                    .into(),
+                &anomaly_in_train,
+            ));
+        }
+        if plan.missing == MissingPolicy::Refuse {
+            if let Some(j) = missing.iter().position(|m| !m.is_empty()) {
+                return Err(self.data_error(
+                    acc,
+                    &plan.columns[j].name,
+                    "a missing value (set `missing-values: drop-row` to leave such rows out)"
+                        .into(),
+                    &missing[j],
+                ));
+            }
+        }
+        let c = self.ncols;
+        let kept: Vec<usize> = (0..n).filter(|&i| keep[i].is_some()).collect();
+        let mut x = Array2::<f64>::zeros((kept.len(), c));
+        let mut lab = Vec::with_capacity(kept.len());
+        for (k, &i) in kept.iter().enumerate() {
+            for j in 0..c {
+                x[(k, j)] = numeric[j][i].expect("kept rows have no missing value");
+            }
+            lab.push(keep[i].expect("kept").0);
+        }
+        let hashes = hash::rows(&x, &lab);
+        for (k, &i) in kept.iter().enumerate() {
+            let (a, p) = keep[i].expect("kept");
+            let origin = Origin {
+                file: acc.file,
+                row: acc.row + i as u64,
+            };
+            if p == Part::Train {
+                acc.train_hashes.push(hashes[k]);
+                acc.train_counts.normal += 1;
+                acc.pending.extend(x.row(k).iter());
+                acc.pending_origin.push(origin);
+            } else {
+                acc.x.extend(x.row(k).iter());
+                acc.is_anomaly.push(a);
+                acc.origin.push(origin);
+                acc.hashes.push(hashes[k]);
+                acc.parts.push(p);
+                if let (Some(out), Some(ids)) = (acc.ids.as_mut(), ids.as_ref()) {
+                    out.push(ids[i].clone().unwrap_or_default());
+                }
+            }
+        }
+        while acc.pending_origin.len() >= BLOCK {
+            self.fold(acc, BLOCK)?;
+        }
+        acc.row += n as u64;
+        Ok(())
+    }
+}
+
+/// The header of a file: its column names.
+fn header(path: &Path, format: Format) -> Result<Vec<String>> {
+    let err = |e: PolarsError| Error::Csv {
+        path: path.to_path_buf(),
+        message: e.to_string(),
+    };
+    match format {
+        Format::Csv => Ok(CsvReadOptions::default()
+            .with_has_header(true)
+            .with_raise_if_empty(true)
+            .with_n_rows(Some(0))
+            .with_infer_schema_length(Some(0))
+            .try_into_reader_with_file_path(Some(path.to_path_buf()))
+            .and_then(|r| r.finish())
+            .map_err(err)?
+            .get_column_names()
+            .iter()
+            .map(|s| s.to_string())
+            .collect()),
+        Format::Parquet => {
+            let p = PlRefPath::try_from_path(path).map_err(err)?;
+            let mut lf = LazyFrame::scan_parquet(p, ScanArgsParquet::default()).map_err(err)?;
+            Ok(lf
+                .collect_schema()
+                .map_err(err)?
+                .iter_names()
+                .map(|s| s.to_string())
+                .collect())
+        }
+    }
+}
+
+/// Streams the plan's one labelled source.
+pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
+    let SplitPlan::FromColumn { column: split, .. } = &plan.split else {
+        return Err(Error::internal("streaming needs a from-column split"));
+    };
+    let source = &plan.sources[0];
+    let paths = data::expand(source, plan)?;
+    let columns: Vec<String> = plan.columns.iter().map(|c| c.name.clone()).collect();
+    let empty = Dataset {
+        files: vec![],
+        columns: columns.clone(),
+        x: Array2::zeros((0, columns.len())),
+        is_anomaly: vec![],
+        origin: vec![],
+        ids: None,
+        text: BTreeMap::new(),
+        dropped: Dropped::default(),
+    };
+    let fitted: Vec<FittedFeatures> = plan
+        .feature_sets
+        .iter()
+        .map(|s| features::fit(s, &empty, &[]))
+        .collect::<Result<_>>()?;
+    let mut files = Vec::new();
+    for p in &paths {
+        files.push(SourceFile {
+            path: p.clone(),
+            shown: data::shown(p, plan),
+            format: data::format_of(p, plan, source)?,
+            digest: hash::file(p)?,
+            rows: 0,
+        });
+    }
+    let acc = Arc::new(Mutex::new(Acc {
+        file: 0,
+        row: 0,
+        x: vec![],
+        is_anomaly: vec![],
+        origin: vec![],
+        ids: plan.id_column.as_ref().map(|_| vec![]),
+        hashes: vec![],
+        parts: vec![],
+        pending: vec![],
+        pending_origin: vec![],
+        train_hashes: vec![],
+        train_counts: Counts::default(),
+        moments: fitted
+            .iter()
+            .map(|f| Moments::empty(f.features.len()))
+            .collect(),
+        dropped: Dropped::default(),
+        error: None,
+    }));
+    let counter = Arc::new(progress.rows("streaming the data"));
+    let label = plan.label.as_ref().expect("checked by the spec");
+    let mut text: Vec<String> = vec![label.column.name.clone(), split.name.clone()];
+    text.extend(plan.id_column.iter().map(|c| c.name.clone()));
+    let used: Vec<String> = columns.iter().chain(&text).cloned().collect();
+    for (fi, file) in files.clone().iter().enumerate() {
+        let present = header(&file.path, file.format)?;
+        for c in plan.columns.iter().chain(
+            [&label.column, split]
+                .into_iter()
+                .chain(plan.id_column.iter()),
+        ) {
+            if !present.contains(&c.name) {
+                return Err(data::missing_column(plan, c, &file.shown, &present));
+            }
+        }
+        {
+            let mut a = acc.lock().expect("not poisoned");
+            a.file = fi as u32;
+            a.row = 0;
+        }
+        let err = |e: PolarsError| Error::Csv {
+            path: file.path.clone(),
+            message: e.to_string(),
+        };
+        let ppath = PlRefPath::try_from_path(&file.path).map_err(err)?;
+        let lf = match file.format {
+            Format::Csv => {
+                let mut schema = Schema::default();
+                for c in &columns {
+                    schema.with_column(c.as_str().into(), DataType::Float64);
+                }
+                LazyCsvReader::new(ppath)
+                    .with_has_header(true)
+                    .with_infer_schema_length(Some(0))
+                    .with_dtype_overwrite(Some(Arc::new(schema)))
+                    .finish()
+                    .map_err(err)?
+            }
+            Format::Parquet => {
+                LazyFrame::scan_parquet(ppath, ScanArgsParquet::default()).map_err(err)?
+            }
+        };
+        let lf = lf.select(
+            columns
+                .iter()
+                .map(|c| col(c.as_str()).cast(DataType::Float64))
+                .chain(text.iter().map(|c| col(c.as_str()).cast(DataType::String)))
+                .collect::<Vec<_>>(),
+        );
+        let callback = {
+            let acc = acc.clone();
+            let counter = counter.clone();
+            let plan = plan.clone();
+            let fitted = fitted.clone();
+            let files = files.clone();
+            let split_col = split.name.clone();
+            let ncols = columns.len();
+            move |df: DataFrame| -> PolarsResult<bool> {
+                let mut a = acc.lock().expect("not poisoned");
+                if a.error.is_some() {
+                    return Ok(true);
+                }
+                let ctx = Ctx {
+                    plan: &plan,
+                    fitted: &fitted,
+                    files: &files,
+                    ncols,
+                };
+                if let Err(e) = ctx.batch(&mut a, &df, &split_col) {
+                    a.error = Some(e);
+                    return Ok(true);
+                }
+                counter.add(df.height() as u64);
+                Ok(false)
+            }
+        };
+        let outcome = lf
+            .sink_batches(PlanCallback::new(callback), true, None)
+            .and_then(|lf| lf.collect_with_engine(Engine::Streaming));
+        let mut a = acc.lock().expect("not poisoned");
+        if let Some(e) = a.error.take() {
+            return Err(e);
+        }
+        if let Err(e) = outcome {
+            return Err(crate::score::not_a_number(
+                &file.path,
+                file.format == Format::Csv,
+                &used[..columns.len()],
+                e,
+            ));
+        }
+        files[fi].rows = a.row as usize;
+    }
+    drop(counter);
+    let mut a = Arc::try_unwrap(acc)
+        .map_err(|_| Error::internal("the streaming state is still shared"))?
+        .into_inner()
+        .expect("not poisoned");
+    let rest = a.pending_origin.len();
+    let ctx = Ctx {
+        plan,
+        fitted: &fitted,
+        files: &files,
+        ncols: columns.len(),
+    };
+    ctx.fold(&mut a, rest)?;
+    a.train_hashes.sort_unstable();
+    let n = a.is_anomaly.len();
+    let x = Array2::from_shape_vec((n, columns.len()), std::mem::take(&mut a.x))
+        .map_err(|e| Error::internal(format!("the kept rows: {e}")))?;
+    Ok(Streamed {
+        data: Dataset {
+            files,
+            columns,
+            x,
+            is_anomaly: a.is_anomaly,
+            origin: a.origin,
+            ids: a.ids,
+            text: BTreeMap::new(),
+            dropped: a.dropped,
+        },
+        hashes: a.hashes,
+        parts: a.parts,
+        train_hashes: a.train_hashes,
+        train_counts: a.train_counts,
+        fitted,
+        moments: a.moments,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use ndarray::array;
+
+    #[test]
+    fn merged_blocks_equal_the_moments_of_all_rows() {
+        // Welford / Chan: merging the moments of two halves gives the moments
+        // of the whole (common practice, no source); here to 1e-12 relative.
+        let x = array![
+            [1.0, 10.0],
+            [2.0, 12.5],
+            [4.0, 9.0],
+            [8.0, 15.0],
+            [3.0, 11.0],
+            [5.5, 13.0],
+            [7.0, 8.5]
+        ];
+        let whole = Moments::of_block(x.view());
+        let mut merged = Moments::of_block(x.slice(ndarray::s![..3, ..]));
+        merged.merge(&Moments::of_block(x.slice(ndarray::s![3.., ..])));
+        assert_eq!(merged.n, 7);
+        for (a, b) in merged.mean.iter().zip(&whole.mean) {
+            assert!((a - b).abs() <= 1e-12 * b.abs());
+        }
+        for (a, b) in merged.m2.iter().zip(&whole.m2) {
+            assert!((a - b).abs() <= 1e-12 * b.abs().max(1.0), "{a} {b}");
+        }
+        // Python's statistics.pvariance([1, 2, 4, 8, 3, 5.5, 7]) = 5.76530612244898.
+        assert!((merged.covariance()[0] - 5.765_306_122_448_98).abs() < 1e-12);
+    }
+}
