@@ -519,7 +519,7 @@ pub fn inspect(plan: &Plan) -> Result<Inspection> {
     for s in &plan.sources {
         for path in expand(s, plan)? {
             let format = format_of(&path, plan, s)?;
-            let frame = match format {
+            let mut frame = match format {
                 Format::Csv => read_csv(&path, plan, &numeric, &text_cols)?,
                 Format::Parquet => read_parquet(&path, plan, &numeric, &text_cols, &mut types)?,
             };
@@ -553,8 +553,8 @@ pub fn inspect(plan: &Plan) -> Result<Inspection> {
                     values[j].push(if v == 0.0 { 0.0 } else { v });
                 }
                 has_missing.push(missing);
-                for (k, col) in frame.text.iter().enumerate() {
-                    let v = col[i].clone().unwrap_or_default();
+                for (k, col) in frame.text.iter_mut().enumerate() {
+                    let v = col[i].take().unwrap_or_default();
                     if v.is_empty() {
                         empty_text[k].push(id);
                     }
@@ -576,7 +576,7 @@ pub fn inspect(plan: &Plan) -> Result<Inspection> {
                         .position(|c| c.name == l.column.name)
                         .expect("the label is a text column");
                     for i in 0..frame.height {
-                        let v = frame.text[k][i].as_deref().unwrap_or("");
+                        let v = text[k][start + i].as_str();
                         if v == l.normal {
                             is_anomaly.push(false);
                         } else if v == l.anomaly {

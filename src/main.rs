@@ -4,6 +4,11 @@
 use std::io::Write;
 use std::process::ExitCode;
 
+// polars allocates many short-lived buffers; mimalloc serves them faster than
+// the system allocator (measured in the benchmark, see the README).
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 use clap::Parser;
 
 fn main() -> ExitCode {

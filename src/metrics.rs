@@ -269,34 +269,73 @@ pub fn bootstrap(
     if plan.replicates == 0 || pos.is_empty() || neg.is_empty() {
         return none;
     }
+    // Rows in ranking order (score high to low, ties as groups); weights are
+    // kept by ranking position, so a replicate is one sequential pass. The
+    // draws, and every sum in the order `ranking` makes it, are unchanged.
     let g = groups(scores, is_anomaly);
+    let order: Vec<usize> = g.iter().flat_map(|x| x.2.iter().copied()).collect();
+    let ends: Vec<usize> = g
+        .iter()
+        .scan(0, |e, x| {
+            *e += x.2.len();
+            Some(*e)
+        })
+        .collect();
+    let mut rank = vec![0u32; scores.len()];
+    for (k, &i) in order.iter().enumerate() {
+        rank[i] = k as u32;
+    }
+    let pos_rank: Vec<u32> = pos.iter().map(|&i| rank[i]).collect();
+    let neg_rank: Vec<u32> = neg.iter().map(|&i| rank[i]).collect();
+    let anomalous: Vec<bool> = order.iter().map(|&i| is_anomaly[i]).collect();
+    let flagged = order.iter().take_while(|&&i| scores[i] > tau).count();
+    let (p_total, n_total) = (pos.len() as f64, neg.len() as f64);
     let reps: Vec<(f64, f64, f64)> = (0..plan.replicates)
         .into_par_iter()
-        .map(|b| {
-            let mut rng = crate::rng::seeded(plan.seed, u64::from(b));
-            let mut w = vec![0u32; scores.len()];
-            for stratum in [&pos, &neg] {
-                for _ in 0..stratum.len() {
-                    w[stratum[crate::rng::below(&mut rng, stratum.len() as u64) as usize]] += 1;
+        .map_init(
+            || vec![0u32; scores.len()],
+            |w, b| {
+                w.fill(0);
+                let mut rng = crate::rng::seeded(plan.seed, u64::from(b));
+                for stratum in [&pos_rank, &neg_rank] {
+                    let len = stratum.len() as u64;
+                    for _ in 0..stratum.len() {
+                        w[stratum[crate::rng::below(&mut rng, len) as usize] as usize] += 1;
+                    }
                 }
-            }
-            let mut c = Confusion::default();
-            for (i, &k) in w.iter().enumerate() {
-                let k = u64::from(k);
-                match (scores[i] > tau, is_anomaly[i]) {
-                    (true, true) => c.tp += k,
-                    (true, false) => c.fp += k,
-                    (false, true) => c.fn_ += k,
-                    (false, false) => c.tn += k,
+                let mut c = Confusion::default();
+                for (k, (&wk, &a)) in w.iter().zip(&anomalous).enumerate() {
+                    let wk = u64::from(wk);
+                    match (k < flagged, a) {
+                        (true, true) => c.tp += wk,
+                        (true, false) => c.fp += wk,
+                        (false, true) => c.fn_ += wk,
+                        (false, false) => c.tn += wk,
+                    }
                 }
-            }
-            let (ap, auc) = ranking(&g, &|i| f64::from(w[i]), is_anomaly);
-            (
-                c.f1().unwrap_or(f64::NAN),
-                ap.unwrap_or(f64::NAN),
-                auc.unwrap_or(f64::NAN),
-            )
-        })
+                let (mut tp, mut fp, mut ap, mut u, mut neg_above) = (0.0, 0.0, 0.0, 0.0, 0.0);
+                let mut start = 0;
+                for &end in &ends {
+                    let (mut p, mut n) = (0.0, 0.0);
+                    for k in start..end {
+                        if anomalous[k] {
+                            p += f64::from(w[k]);
+                        } else {
+                            n += f64::from(w[k]);
+                        }
+                    }
+                    start = end;
+                    tp += p;
+                    fp += n;
+                    if p > 0.0 {
+                        ap += (p / p_total) * (tp / (tp + fp));
+                    }
+                    u += p * (n_total - neg_above - n) + 0.5 * p * n;
+                    neg_above += n;
+                }
+                (c.f1().unwrap_or(f64::NAN), ap, u / (p_total * n_total))
+            },
+        )
         .collect();
     BootstrapIntervals {
         f1: interval(reps.iter().map(|r| r.0).collect(), confidence),

@@ -85,6 +85,8 @@ pub struct RunSummary {
     pub tau: f64,
     /// Whether the test split was opened.
     pub test_opened: bool,
+    /// Peak resident memory of the process, MiB (not recorded in run.json).
+    pub peak_rss_mib: Option<f64>,
     /// Warnings for stderr (a test split opened under several specs).
     pub warnings: Vec<String>,
 }
@@ -239,7 +241,10 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
     let fingerprint = crate::sign::fingerprint(&key.verifying_key());
     let from_run = record::relative_path(&out, &opts.spec);
     let (files, mut summary) = execute(opts, plan, &fingerprint, None, from_run)?;
+    let stage = opts.progress.stage("signing and writing the run directory");
     summary.out = files.commit(&out, &key)?;
+    drop(stage);
+    summary.peak_rss_mib = crate::progress::peak_rss_mib();
     Ok(summary)
 }
 
@@ -292,8 +297,10 @@ fn execute(
         let stage = progress.stage("reading the data");
         let data = data::load(&plan)?;
         drop(stage);
-        let stage = progress.stage(format!("hashing and splitting {} rows", data.len()));
+        let stage = progress.stage(format!("hashing {} rows", data.len()));
         let hashes = hash::rows(&data.x, &data.is_anomaly);
+        drop(stage);
+        let stage = progress.stage("splitting and checking for leakage");
         let splits = split::assign(&plan.split, &data, &hashes)?;
         drop(stage);
         (data, hashes, splits, None)
@@ -548,6 +555,7 @@ fn execute(
     drop(stage);
     let stage = progress.stage("writing the card and figures");
     let mut files = RunFiles::default();
+    let scores_stage = progress.stage("scores.csv");
     let mut run_json = serde_json::to_vec_pretty(&rec)
         .map_err(|e| Error::internal(format!("serialising run.json: {e}")))?;
     run_json.push(b'\n');
@@ -562,6 +570,7 @@ fn execute(
             &test_scores,
         ),
     );
+    drop(scores_stage);
     files.add(SPEC_COPY, plan.spec_bytes.clone());
     let mut ctx = card_context(&plan, &rec, &spec_file, fingerprint);
     let c = &candidates[chosen];
@@ -639,6 +648,7 @@ fn execute(
         test_f1: c.test.as_ref().and_then(|t| t.f1),
         tau: c.tau,
         test_opened: rec.test_opened,
+        peak_rss_mib: None,
         warnings,
     };
     Ok((files, summary))

@@ -9,6 +9,15 @@ use std::time::Duration;
 
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 
+/// The process's peak resident memory in MiB (Linux `VmHWM`), for summaries;
+/// None where the kernel does not report it. Never part of a signed record.
+pub fn peak_rss_mib() -> Option<f64> {
+    let status = std::fs::read_to_string("/proc/self/status").ok()?;
+    let line = status.lines().find(|l| l.starts_with("VmHWM:"))?;
+    let kib: f64 = line.split_whitespace().nth(1)?.parse().ok()?;
+    Some((kib / 1024.0 * 10.0).round() / 10.0)
+}
+
 /// Where progress goes: a terminal, or nowhere.
 #[derive(Debug, Clone, Copy)]
 pub struct Progress {
@@ -44,23 +53,43 @@ impl Progress {
     /// A stage: a spinner with its name until the guard is dropped, then a
     /// line with the time it took.
     pub fn stage(&self, name: impl Into<String>) -> Stage {
+        let name = name.into();
         let bar = self.bar("{spinner} {msg} ({elapsed})");
-        bar.set_message(name.into());
-        Stage { bar }
+        bar.set_message(name.clone());
+        Stage::new(bar, name)
     }
 
     /// A row counter for streaming work (rows done and rate).
     pub fn rows(&self, name: impl Into<String>) -> Stage {
+        let name = name.into();
         let bar = self.bar("{spinner} {msg}: {human_pos} rows ({per_sec}, {elapsed})");
-        bar.set_message(name.into());
-        Stage { bar }
+        bar.set_message(name.clone());
+        Stage::new(bar, name)
     }
+}
+
+/// With `ANOMARK_STAGE_TIMES=1`, every stage prints its wall time to stderr
+/// when it ends (for the benchmarks; never on by default).
+fn stage_times() -> bool {
+    std::env::var_os("ANOMARK_STAGE_TIMES").is_some_and(|v| v == "1")
 }
 
 /// A running stage; finishes its line when dropped.
 #[derive(Debug)]
 pub struct Stage {
     bar: ProgressBar,
+    name: String,
+    started: std::time::Instant,
+}
+
+impl Stage {
+    fn new(bar: ProgressBar, name: String) -> Self {
+        Stage {
+            bar,
+            name,
+            started: std::time::Instant::now(),
+        }
+    }
 }
 
 impl Stage {
@@ -74,6 +103,13 @@ impl Drop for Stage {
     fn drop(&mut self) {
         if !self.bar.is_hidden() {
             self.bar.finish();
+        }
+        if stage_times() {
+            eprintln!(
+                "anomark: stage {:.3} s  {}",
+                self.started.elapsed().as_secs_f64(),
+                self.name
+            );
         }
     }
 }

@@ -15,12 +15,16 @@ pub fn seeded(seed: u64, stream: u64) -> ChaCha8Rng {
 
 /// An unbiased draw from `0..n` (Lemire's multiply-and-reject), n > 0.
 pub fn below(rng: &mut ChaCha8Rng, n: u64) -> u64 {
-    loop {
-        let m = u128::from(rng.next_u64()) * u128::from(n);
-        if (m as u64) >= n.wrapping_neg() % n {
-            return (m >> 64) as u64;
+    // The threshold t = 2⁶⁴ mod n is below n, so a low word ≥ n is always
+    // accepted and the division is only needed in the rare case below n.
+    let mut m = u128::from(rng.next_u64()) * u128::from(n);
+    if (m as u64) < n {
+        let t = n.wrapping_neg() % n;
+        while (m as u64) < t {
+            m = u128::from(rng.next_u64()) * u128::from(n);
         }
     }
+    (m >> 64) as u64
 }
 
 /// A uniform double in [0, 1).

@@ -68,6 +68,8 @@ pub struct ScoreSummary {
     pub run_manifest_blake3: String,
     /// Whether the run's signature was checked with a public key.
     pub signature_checked: bool,
+    /// Peak resident memory of the process, MiB.
+    pub peak_rss_mib: Option<f64>,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -425,6 +427,7 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         tau: run.tau,
         run_manifest_blake3: run.manifest_blake3.clone(),
         signature_checked: opts.pubkey.is_some(),
+        peak_rss_mib: crate::progress::peak_rss_mib(),
     })
 }
 

@@ -19,6 +19,8 @@
 
 use std::collections::BTreeMap;
 
+use rayon::slice::ParallelSliceMut;
+
 use crate::audit::hash::ContentHash;
 use crate::data::{Dataset, RowId};
 use crate::error::{Error, Result};
@@ -221,11 +223,10 @@ fn requested_counts(data: &Dataset, f: &Fractions) -> [Counts; 3] {
 /// Assigns every row to a split.
 pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Result<Splits> {
     let n = data.len();
-    let mut multiplicity = BTreeMap::<ContentHash, usize>::new();
-    for h in hashes {
-        *multiplicity.entry(*h).or_default() += 1;
-    }
-    let rows_with_duplicates = hashes.iter().filter(|h| multiplicity[h] > 1).count();
+    let mut sorted = hashes.to_vec();
+    sorted.par_sort_unstable();
+    let rows_with_duplicates = duplicated_rows(&sorted);
+    drop(sorted);
 
     let mut report = SplitReport {
         method: "",
@@ -293,7 +294,7 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
         }
     }
     for list in lists.iter_mut() {
-        list.sort_by_key(|r| (hashes[r.0 as usize], *r));
+        list.par_sort_unstable_by_key(|r| (hashes[r.0 as usize], *r));
     }
     crate::audit::leak::check(&lists, hashes, data)?;
     check_counts(&counts)?;

@@ -6,6 +6,8 @@
 
 use std::collections::BTreeMap;
 
+use rayon::slice::ParallelSliceMut;
+
 use crate::audit::hash::ContentHash;
 use crate::data::{Dataset, RowId};
 use crate::error::{Error, Result};
@@ -16,13 +18,10 @@ const NAMES: [&str; 3] = ["train", "validation", "test"];
 /// Checks that the three row lists (train, validation, test) share no row id
 /// and no content hash.
 pub fn check(lists: &[Vec<RowId>; 3], hashes: &[ContentHash], data: &Dataset) -> Result<()> {
-    // First part in which each content appears, with its first row there.
-    let mut seen: BTreeMap<ContentHash, (usize, RowId)> = BTreeMap::new();
     let mut ids = vec![false; hashes.len()];
-    // Shared contents per pair of parts, with the first pair of rows found.
-    let mut shared: BTreeMap<(usize, usize), (usize, (RowId, RowId))> = BTreeMap::new();
+    // (content, part, row) for every row, sorted: equal contents are adjacent.
+    let mut all: Vec<(ContentHash, u8, RowId)> = Vec::with_capacity(hashes.len());
     for (p, list) in lists.iter().enumerate() {
-        let mut here: BTreeMap<ContentHash, RowId> = BTreeMap::new();
         for &r in list {
             let i = r.0 as usize;
             if ids[i] {
@@ -31,23 +30,36 @@ pub fn check(lists: &[Vec<RowId>; 3], hashes: &[ContentHash], data: &Dataset) ->
                 )));
             }
             ids[i] = true;
-            let e = here.entry(hashes[i]).or_insert(r);
-            *e = (*e).min(r);
+            all.push((hashes[i], p as u8, r));
         }
-        for (h, r) in here {
-            match seen.get(&h) {
-                Some(&(q, first)) => {
-                    let e = shared.entry((q, p)).or_insert((0, (first, r)));
-                    e.0 += 1;
-                    if (first, r) < e.1 {
-                        e.1 = (first, r);
-                    }
-                }
-                None => {
-                    seen.insert(h, (p, r));
+    }
+    all.par_sort_unstable();
+    // Per pair (first part holding a content, a later part holding it too):
+    // the number of shared contents and the smallest pair of rows.
+    let mut shared: BTreeMap<(usize, usize), (usize, (RowId, RowId))> = BTreeMap::new();
+    let mut i = 0;
+    while i < all.len() {
+        let mut j = i;
+        while j < all.len() && all[j].0 == all[i].0 {
+            j += 1;
+        }
+        // Sorted by part, then row: the first entry of each part is its smallest row.
+        let (q, first) = (all[i].1 as usize, all[i].2);
+        let mut k = i;
+        while k < j {
+            let p = all[k].1 as usize;
+            if p != q {
+                let e = shared.entry((q, p)).or_insert((0, (first, all[k].2)));
+                e.0 += 1;
+                if (first, all[k].2) < e.1 {
+                    e.1 = (first, all[k].2);
                 }
             }
+            while k < j && all[k].1 as usize == p {
+                k += 1;
+            }
         }
+        i = j;
     }
     if let Some((&(a, b), &(count, (ra, rb)))) = shared.iter().next() {
         return Err(Error::Leakage {
