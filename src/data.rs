@@ -166,6 +166,35 @@ fn csv_error(path: &Path, e: PolarsError) -> Error {
     }
 }
 
+/// A file's column names and, for each, whether it is numeric (every CSV
+/// column counts as numeric here: CSV has no types until values are parsed).
+pub fn columns_of(path: &Path, format: Format) -> Result<Vec<(String, bool)>> {
+    match format {
+        Format::Csv => Ok(CsvReadOptions::default()
+            .with_has_header(true)
+            .with_raise_if_empty(true)
+            .with_n_rows(Some(0))
+            .with_infer_schema_length(Some(0))
+            .try_into_reader_with_file_path(Some(path.to_path_buf()))
+            .and_then(|r| r.finish())
+            .map_err(|e| csv_error(path, e))?
+            .get_column_names()
+            .iter()
+            .map(|n| (n.to_string(), true))
+            .collect()),
+        Format::Parquet => {
+            let ppath = PlRefPath::try_from_path(path).map_err(|e| csv_error(path, e))?;
+            let mut lf = LazyFrame::scan_parquet(ppath, ScanArgsParquet::default())
+                .map_err(|e| csv_error(path, e))?;
+            let schema = lf.collect_schema().map_err(|e| csv_error(path, e))?;
+            Ok(schema
+                .iter()
+                .map(|(n, t)| (n.to_string(), t.is_primitive_numeric()))
+                .collect())
+        }
+    }
+}
+
 /// Expands a source path: a file, a glob (`*`, `?`, `[`), or a directory
 /// (every `.parquet` file below it, skipping names that start with `.` or `_`,
 /// as distributed engines write them). Sorted, so the order is reproducible.

@@ -130,57 +130,52 @@ pub fn clopper_pearson(k: u64, n: u64, confidence: f64) -> Option<Interval> {
     Some(Interval { low, high })
 }
 
-/// Scores sorted from high to low with their labels, ties kept as groups:
-/// (number of positives, number of negatives) per distinct score.
-fn groups(scores: &[f64], is_anomaly: &[bool]) -> Vec<(usize, usize, Vec<usize>)> {
-    let mut order: Vec<usize> = (0..scores.len()).collect();
-    order.sort_by(|&a, &b| scores[b].total_cmp(&scores[a]).then(a.cmp(&b)));
-    let mut out: Vec<(usize, usize, Vec<usize>)> = Vec::new();
-    let mut i = 0;
-    while i < order.len() {
-        let s = scores[order[i]];
-        let mut g = (0, 0, Vec::new());
-        while i < order.len() && scores[order[i]].total_cmp(&s).is_eq() {
-            if is_anomaly[order[i]] {
-                g.0 += 1;
-            } else {
-                g.1 += 1;
-            }
-            g.2.push(order[i]);
-            i += 1;
-        }
-        out.push(g);
-    }
-    out
+/// Rows in ranking order: scores from high to low (ties by row), the labels
+/// in that order, and where each group of tied scores ends.
+struct Ranked {
+    order: Vec<usize>,
+    anomalous: Vec<bool>,
+    ends: Vec<usize>,
 }
 
-/// Average precision and ROC AUC from weighted groups (weight = how often a
-/// row is drawn), walking the distinct scores from high to low.
+fn ranked(scores: &[f64], is_anomaly: &[bool]) -> Ranked {
+    let mut order: Vec<usize> = (0..scores.len()).collect();
+    order.sort_by(|&a, &b| scores[b].total_cmp(&scores[a]).then(a.cmp(&b)));
+    let mut ends = Vec::new();
+    for k in 1..=order.len() {
+        if k == order.len() || scores[order[k]].total_cmp(&scores[order[k - 1]]).is_ne() {
+            ends.push(k);
+        }
+    }
+    let anomalous = order.iter().map(|&i| is_anomaly[i]).collect();
+    Ranked {
+        order,
+        anomalous,
+        ends,
+    }
+}
+
+/// Average precision and ROC AUC with a weight per ranking position (how
+/// often a row is drawn; 1 without a bootstrap), walking the distinct scores
+/// from high to low. `p_total` and `n_total` are the weights' sums by class.
 fn ranking(
-    groups: &[(usize, usize, Vec<usize>)],
-    weight: &dyn Fn(usize) -> f64,
-    is_anomaly: &[bool],
+    r: &Ranked,
+    weight: impl Fn(usize) -> f64,
+    p_total: f64,
+    n_total: f64,
 ) -> (Option<f64>, Option<f64>) {
-    let (mut p_total, mut n_total) = (0.0, 0.0);
-    let per: Vec<(f64, f64)> = groups
-        .iter()
-        .map(|g| {
-            let (mut p, mut n) = (0.0, 0.0);
-            for &i in &g.2 {
-                if is_anomaly[i] {
-                    p += weight(i);
-                } else {
-                    n += weight(i);
-                }
+    let (mut tp, mut fp, mut ap, mut u, mut neg_above) = (0.0, 0.0, 0.0, 0.0, 0.0);
+    let mut start = 0;
+    for &end in &r.ends {
+        let (mut p, mut n) = (0.0, 0.0);
+        for k in start..end {
+            if r.anomalous[k] {
+                p += weight(k);
+            } else {
+                n += weight(k);
             }
-            p_total += p;
-            n_total += n;
-            (p, n)
-        })
-        .collect();
-    let (mut tp, mut fp, mut ap, mut u) = (0.0, 0.0, 0.0, 0.0);
-    let mut neg_above = 0.0;
-    for (p, n) in per {
+        }
+        start = end;
         tp += p;
         fp += n;
         if p > 0.0 {
@@ -195,15 +190,22 @@ fn ranking(
     (ap, auc)
 }
 
+/// Unweighted average precision and ROC AUC.
+fn ap_auc(scores: &[f64], is_anomaly: &[bool]) -> (Option<f64>, Option<f64>) {
+    let p = is_anomaly.iter().filter(|&&a| a).count() as f64;
+    let n = is_anomaly.len() as f64 - p;
+    ranking(&ranked(scores, is_anomaly), |_| 1.0, p, n)
+}
+
 /// Average precision as scikit-learn defines it: Σₙ (Rₙ − Rₙ₋₁) Pₙ over the
 /// distinct thresholds, without interpolation (tied scores form one step).
 pub fn average_precision(scores: &[f64], is_anomaly: &[bool]) -> Option<f64> {
-    ranking(&groups(scores, is_anomaly), &|_| 1.0, is_anomaly).0
+    ap_auc(scores, is_anomaly).0
 }
 
 /// ROC AUC as the Mann-Whitney statistic U / (n₁ n₀), ties counted one half.
 pub fn roc_auc(scores: &[f64], is_anomaly: &[bool]) -> Option<f64> {
-    ranking(&groups(scores, is_anomaly), &|_| 1.0, is_anomaly).1
+    ap_auc(scores, is_anomaly).1
 }
 
 /// How the bootstrap is drawn.
@@ -269,26 +271,16 @@ pub fn bootstrap(
     if plan.replicates == 0 || pos.is_empty() || neg.is_empty() {
         return none;
     }
-    // Rows in ranking order (score high to low, ties as groups); weights are
-    // kept by ranking position, so a replicate is one sequential pass. The
-    // draws, and every sum in the order `ranking` makes it, are unchanged.
-    let g = groups(scores, is_anomaly);
-    let order: Vec<usize> = g.iter().flat_map(|x| x.2.iter().copied()).collect();
-    let ends: Vec<usize> = g
-        .iter()
-        .scan(0, |e, x| {
-            *e += x.2.len();
-            Some(*e)
-        })
-        .collect();
+    // Weights are kept by ranking position, so a replicate is one sequential
+    // pass; the draws are made in row order within each class.
+    let r = ranked(scores, is_anomaly);
     let mut rank = vec![0u32; scores.len()];
-    for (k, &i) in order.iter().enumerate() {
+    for (k, &i) in r.order.iter().enumerate() {
         rank[i] = k as u32;
     }
     let pos_rank: Vec<u32> = pos.iter().map(|&i| rank[i]).collect();
     let neg_rank: Vec<u32> = neg.iter().map(|&i| rank[i]).collect();
-    let anomalous: Vec<bool> = order.iter().map(|&i| is_anomaly[i]).collect();
-    let flagged = order.iter().take_while(|&&i| scores[i] > tau).count();
+    let flagged = r.order.iter().take_while(|&&i| scores[i] > tau).count();
     let (p_total, n_total) = (pos.len() as f64, neg.len() as f64);
     let reps: Vec<(f64, f64, f64)> = (0..plan.replicates)
         .into_par_iter()
@@ -304,7 +296,7 @@ pub fn bootstrap(
                     }
                 }
                 let mut c = Confusion::default();
-                for (k, (&wk, &a)) in w.iter().zip(&anomalous).enumerate() {
+                for (k, (&wk, &a)) in w.iter().zip(&r.anomalous).enumerate() {
                     let wk = u64::from(wk);
                     match (k < flagged, a) {
                         (true, true) => c.tp += wk,
@@ -313,27 +305,12 @@ pub fn bootstrap(
                         (false, false) => c.tn += wk,
                     }
                 }
-                let (mut tp, mut fp, mut ap, mut u, mut neg_above) = (0.0, 0.0, 0.0, 0.0, 0.0);
-                let mut start = 0;
-                for &end in &ends {
-                    let (mut p, mut n) = (0.0, 0.0);
-                    for k in start..end {
-                        if anomalous[k] {
-                            p += f64::from(w[k]);
-                        } else {
-                            n += f64::from(w[k]);
-                        }
-                    }
-                    start = end;
-                    tp += p;
-                    fp += n;
-                    if p > 0.0 {
-                        ap += (p / p_total) * (tp / (tp + fp));
-                    }
-                    u += p * (n_total - neg_above - n) + 0.5 * p * n;
-                    neg_above += n;
-                }
-                (c.f1().unwrap_or(f64::NAN), ap, u / (p_total * n_total))
+                let (ap, auc) = ranking(&r, |k| f64::from(w[k]), p_total, n_total);
+                (
+                    c.f1().unwrap_or(f64::NAN),
+                    ap.unwrap_or(f64::NAN),
+                    auc.unwrap_or(f64::NAN),
+                )
             },
         )
         .collect();
@@ -450,8 +427,7 @@ impl Metrics {
         boot: BootstrapPlan,
     ) -> Self {
         let c = Confusion::at(scores, is_anomaly, tau);
-        let g = groups(scores, is_anomaly);
-        let (ap, auc) = ranking(&g, &|_| 1.0, is_anomaly);
+        let (ap, auc) = ap_auc(scores, is_anomaly);
         Metrics {
             confusion: c,
             precision: c.precision(),

@@ -19,6 +19,7 @@ use polars::prelude::*;
 use rayon::prelude::*;
 
 use crate::audit::hash;
+use crate::data::Format;
 use crate::detect::{self, Model, Params};
 use crate::error::{Error, Result, RowUnit};
 use crate::features::FittedFeatures;
@@ -70,12 +71,6 @@ pub struct ScoreSummary {
     pub signature_checked: bool,
     /// Peak resident memory of the process, MiB.
     pub peak_rss_mib: Option<f64>,
-}
-
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-enum Format {
-    Csv,
-    Parquet,
 }
 
 fn format_of(path: &Path, role: &str) -> Result<Format> {
@@ -183,37 +178,6 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
     })
 }
 
-/// The file's column names and, for Parquet, which are numeric.
-fn columns_of(path: &Path, format: Format) -> Result<Vec<(String, bool)>> {
-    match format {
-        Format::Csv => {
-            let df = CsvReadOptions::default()
-                .with_has_header(true)
-                .with_raise_if_empty(true)
-                .with_n_rows(Some(0))
-                .with_infer_schema_length(Some(0))
-                .try_into_reader_with_file_path(Some(path.to_path_buf()))
-                .and_then(|r| r.finish())
-                .map_err(|e| polars_error(path, e))?;
-            Ok(df
-                .get_column_names()
-                .iter()
-                .map(|n| (n.to_string(), true))
-                .collect())
-        }
-        Format::Parquet => {
-            let ppath = PlRefPath::try_from_path(path).map_err(|e| polars_error(path, e))?;
-            let mut lf = LazyFrame::scan_parquet(ppath, ScanArgsParquet::default())
-                .map_err(|e| polars_error(path, e))?;
-            let schema = lf.collect_schema().map_err(|e| polars_error(path, e))?;
-            Ok(schema
-                .iter()
-                .map(|(n, t)| (n.to_string(), t.is_primitive_numeric()))
-                .collect())
-        }
-    }
-}
-
 /// The streaming scan of the input with the used columns as f64.
 fn scan(path: &Path, format: Format, used: &[String]) -> Result<LazyFrame> {
     let ppath = PlRefPath::try_from_path(path).map_err(|e| polars_error(path, e))?;
@@ -257,14 +221,6 @@ struct State {
     error: Option<Error>,
 }
 
-/// The place of a batch row in the input file, for messages.
-fn place(format: Format, row: u64) -> u64 {
-    match format {
-        Format::Csv => row + 2,
-        Format::Parquet => row + 1,
-    }
-}
-
 /// Scores every row of `opts.data` and writes `opts.out`.
 pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
     let in_format = format_of(&opts.data, "data file")?;
@@ -274,7 +230,7 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
 
     // The content columns the features read, and their names in the file.
     let used_idx = run.set.columns_used();
-    let present = columns_of(&opts.data, in_format)?;
+    let present = crate::data::columns_of(&opts.data, in_format)?;
     let names: Vec<String> = present.iter().map(|p| p.0.clone()).collect();
     for &c in &used_idx {
         let name = &run.columns[c];
@@ -478,7 +434,7 @@ fn score_batch(
             .iter()
             .enumerate()
             .filter(|(_, v)| v.is_none())
-            .map(|(i, _)| place(format, offset + i as u64))
+            .map(|(i, _)| format.place(offset + i as u64))
             .collect();
         if !missing.is_empty() {
             return Err(Error::Data {
@@ -508,7 +464,7 @@ fn score_batch(
             lines: f
                 .rows
                 .iter()
-                .map(|&r| place(format, offset + r as u64))
+                .map(|&r| format.place(offset + r as u64))
                 .collect(),
             unit,
         })?;

@@ -223,10 +223,22 @@ fn requested_counts(data: &Dataset, f: &Fractions) -> [Counts; 3] {
 /// Assigns every row to a split.
 pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Result<Splits> {
     let n = data.len();
-    let mut sorted = hashes.to_vec();
-    sorted.par_sort_unstable();
-    let rows_with_duplicates = duplicated_rows(&sorted);
-    drop(sorted);
+    // Every row in (content, row) order, sorted once: duplicates, the
+    // canonical order of each split and the leakage proof all read it.
+    let mut by_hash: Vec<u32> = (0..n as u32).collect();
+    by_hash.par_sort_unstable_by_key(|&i| (hashes[i as usize], i));
+    let mut rows_with_duplicates = 0;
+    let mut i = 0;
+    while i < n {
+        let mut j = i + 1;
+        while j < n && hashes[by_hash[j] as usize] == hashes[by_hash[i] as usize] {
+            j += 1;
+        }
+        if j - i > 1 {
+            rows_with_duplicates += j - i;
+        }
+        i = j;
+    }
 
     let mut report = SplitReport {
         method: "",
@@ -286,17 +298,17 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
     let mut lists: [Vec<RowId>; 3] = Default::default();
     let mut counts = [Counts::default(); 3];
     for (i, p) in part_of.iter().enumerate().take(n) {
-        lists[*p as usize].push(RowId(i as u64));
         if data.is_anomaly[i] {
             counts[*p as usize].anomaly += 1;
         } else {
             counts[*p as usize].normal += 1;
         }
     }
-    for list in lists.iter_mut() {
-        list.par_sort_unstable_by_key(|r| (hashes[r.0 as usize], *r));
+    // Taken in (content, row) order, each list is already in canonical order.
+    for &i in &by_hash {
+        lists[part_of[i as usize] as usize].push(RowId(u64::from(i)));
     }
-    crate::audit::leak::check(&lists, hashes, data)?;
+    crate::audit::leak::check_sorted(&by_hash, &part_of, hashes, data)?;
     check_counts(&counts)?;
     report.counts = counts;
     if let Some(req) = report.requested {

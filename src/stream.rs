@@ -12,7 +12,6 @@
 //! an in-memory fit, which sums in content-hash order.)
 
 use std::collections::BTreeMap;
-use std::path::Path;
 use std::sync::{Arc, Mutex};
 
 use ndarray::{Array2, ArrayView2};
@@ -436,38 +435,6 @@ impl Ctx<'_> {
     }
 }
 
-/// The header of a file: its column names.
-fn header(path: &Path, format: Format) -> Result<Vec<String>> {
-    let err = |e: PolarsError| Error::Csv {
-        path: path.to_path_buf(),
-        message: e.to_string(),
-    };
-    match format {
-        Format::Csv => Ok(CsvReadOptions::default()
-            .with_has_header(true)
-            .with_raise_if_empty(true)
-            .with_n_rows(Some(0))
-            .with_infer_schema_length(Some(0))
-            .try_into_reader_with_file_path(Some(path.to_path_buf()))
-            .and_then(|r| r.finish())
-            .map_err(err)?
-            .get_column_names()
-            .iter()
-            .map(|s| s.to_string())
-            .collect()),
-        Format::Parquet => {
-            let p = PlRefPath::try_from_path(path).map_err(err)?;
-            let mut lf = LazyFrame::scan_parquet(p, ScanArgsParquet::default()).map_err(err)?;
-            Ok(lf
-                .collect_schema()
-                .map_err(err)?
-                .iter_names()
-                .map(|s| s.to_string())
-                .collect())
-        }
-    }
-}
-
 /// Streams the plan's one labelled source.
 pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
     let SplitPlan::FromColumn { column: split, .. } = &plan.split else {
@@ -527,7 +494,10 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
     text.extend(plan.id_column.iter().map(|c| c.name.clone()));
     let used: Vec<String> = columns.iter().chain(&text).cloned().collect();
     for (fi, file) in files.clone().iter().enumerate() {
-        let present = header(&file.path, file.format)?;
+        let present: Vec<String> = data::columns_of(&file.path, file.format)?
+            .into_iter()
+            .map(|c| c.0)
+            .collect();
         for c in plan.columns.iter().chain(
             [&label.column, split]
                 .into_iter()
