@@ -616,7 +616,21 @@ fn execute(
     } else {
         (splits.train.clone(), "training rows")
     };
-    let shown_x = set.apply(&data, &shown_rows)?;
+    // A histogram needs no more than a systematic sample: every k-th row in
+    // canonical (content-hash) order, so the figure does not depend on the
+    // file's row order and a large run does not copy all its rows again.
+    let stride = shown_rows.len().div_ceil(FIGURE_ROWS).max(1);
+    let sampled: Vec<RowId> = shown_rows.iter().copied().step_by(stride).collect();
+    let shown_as = if stride > 1 {
+        format!(
+            "{shown_as}, one in every {stride} of {} in content-hash order ({} rows)",
+            shown_rows.len(),
+            sampled.len()
+        )
+    } else {
+        shown_as.to_string()
+    };
+    let shown_x = set.apply(&data, &sampled)?;
     let params = c.model.params();
     ctx.plots_features = set
         .names()
@@ -624,7 +638,7 @@ fn execute(
         .enumerate()
         .map(|(j, name)| {
             let column: Vec<f64> = shown_x.column(j).to_vec();
-            plots::feature_histogram(j, name, shown_as, &column, params.marginal(j))
+            plots::feature_histogram(j, name, &shown_as, &column, params.marginal(j))
         })
         .collect::<Result<_>>()?;
     for p in ctx
@@ -653,6 +667,9 @@ fn execute(
     };
     Ok((files, summary))
 }
+
+/// At most this many rows feed each feature figure (a systematic sample above).
+const FIGURE_ROWS: usize = 200_000;
 
 /// The run directory's copy of the spec's exact bytes.
 pub const SPEC_COPY: &str = "spec.yaml";
