@@ -74,6 +74,43 @@ fn draw(
     Ok(svg)
 }
 
+/// A chart on an SVG drawing area with the coordinates of ranges `X` and `Y`.
+type Chart<'a, 'b, X, Y> = ChartContext<
+    'a,
+    SVGBackend<'b>,
+    Cartesian2d<<X as AsRangedCoord>::CoordDescType, <Y as AsRangedCoord>::CoordDescType>,
+>;
+
+/// The frame every wide figure shares: caption, margins, label areas.
+fn frame<'a, 'b, X: AsRangedCoord, Y: AsRangedCoord>(
+    root: &'a Area<'b>,
+    caption: String,
+    y_area: u32,
+    x: X,
+    y: Y,
+) -> std::result::Result<Chart<'a, 'b, X, Y>, Box<dyn std::error::Error>> {
+    Ok(ChartBuilder::on(root)
+        .caption(caption, ("sans-serif", 18))
+        .margin(12)
+        .x_label_area_size(42)
+        .y_label_area_size(y_area)
+        .build_cartesian_2d(x, y)?)
+}
+
+/// The legend box every wide figure shares.
+fn legend<'a, 'b: 'a, X: Ranged, Y: Ranged>(
+    chart: &mut ChartContext<'a, SVGBackend<'b>, Cartesian2d<X, Y>>,
+    at: SeriesLabelPosition,
+) -> DrawResult {
+    chart
+        .configure_series_labels()
+        .position(at)
+        .background_style(WHITE.mix(0.9))
+        .border_style(GREY)
+        .draw()?;
+    Ok(())
+}
+
 /// Keeps the points of a curve that move at least 1/500 of the plot from the
 /// last kept one (and always the first and last), so that a curve over a
 /// million validation rows stays a small file.
@@ -143,15 +180,13 @@ pub fn precision_recall(s: SplitScores<'_>) -> Result<Plot> {
         s.is_anomaly.iter().filter(|&&a| a).count() as f64 / s.is_anomaly.len().max(1) as f64;
     let file = format!("plot-{}-precision-recall.svg", s.split);
     let svg = draw(&file, WIDE, |root| {
-        let mut chart = ChartBuilder::on(root)
-            .caption(
-                format!("Precision-recall, {} split", s.split),
-                ("sans-serif", 18),
-            )
-            .margin(12)
-            .x_label_area_size(42)
-            .y_label_area_size(52)
-            .build_cartesian_2d(0f64..1.0, 0f64..1.02)?;
+        let mut chart = frame(
+            root,
+            format!("Precision-recall, {} split", s.split),
+            52,
+            0f64..1.0,
+            0f64..1.02,
+        )?;
         chart
             .configure_mesh()
             .x_desc("recall")
@@ -178,13 +213,7 @@ pub fn precision_recall(s: SplitScores<'_>) -> Result<Plot> {
                 op.0, op.1
             ))
             .legend(|(x, y)| Circle::new((x + 9, y), 5, MARK.filled()));
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::LowerLeft)
-            .background_style(WHITE.mix(0.9))
-            .border_style(GREY)
-            .draw()?;
-        Ok(())
+        legend(&mut chart, SeriesLabelPosition::LowerLeft)
     })?;
     Ok(Plot {
         file,
@@ -206,12 +235,13 @@ pub fn roc(s: SplitScores<'_>) -> Result<Plot> {
     let op = (fpr(&at), recall(&at));
     let file = format!("plot-{}-roc.svg", s.split);
     let svg = draw(&file, WIDE, |root| {
-        let mut chart = ChartBuilder::on(root)
-            .caption(format!("ROC, {} split", s.split), ("sans-serif", 18))
-            .margin(12)
-            .x_label_area_size(42)
-            .y_label_area_size(52)
-            .build_cartesian_2d(0f64..1.0, 0f64..1.02)?;
+        let mut chart = frame(
+            root,
+            format!("ROC, {} split", s.split),
+            52,
+            0f64..1.0,
+            0f64..1.02,
+        )?;
         chart
             .configure_mesh()
             .x_desc("false-positive rate")
@@ -233,13 +263,7 @@ pub fn roc(s: SplitScores<'_>) -> Result<Plot> {
             .draw_series(std::iter::once(Circle::new(op, 6, MARK.filled())))?
             .label(format!("chosen ε: FPR {:.4}, TPR {:.3}", op.0, op.1))
             .legend(|(x, y)| Circle::new((x + 9, y), 5, MARK.filled()));
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::LowerRight)
-            .background_style(WHITE.mix(0.9))
-            .border_style(GREY)
-            .draw()?;
-        Ok(())
+        legend(&mut chart, SeriesLabelPosition::LowerRight)
     })?;
     Ok(Plot {
         file,
@@ -270,15 +294,13 @@ pub fn objective(policy: ThresholdPolicy, s: SplitScores<'_>) -> Result<Plot> {
     let points = thin(&points, (xr.end - xr.start, ymax));
     let file = format!("plot-{}-objective.svg", s.split);
     let svg = draw(&file, WIDE, |root| {
-        let mut chart = ChartBuilder::on(root)
-            .caption(
-                format!("{name} against ln ε, {} split", s.split),
-                ("sans-serif", 18),
-            )
-            .margin(12)
-            .x_label_area_size(42)
-            .y_label_area_size(60)
-            .build_cartesian_2d(xr.clone(), 0f64..ymax)?;
+        let mut chart = frame(
+            root,
+            format!("{name} against ln ε, {} split", s.split),
+            60,
+            xr.clone(),
+            0f64..ymax,
+        )?;
         chart
             .configure_mesh()
             .x_desc("ln ε (a row is flagged when ln p(x) < ln ε)")
@@ -296,13 +318,7 @@ pub fn objective(policy: ThresholdPolicy, s: SplitScores<'_>) -> Result<Plot> {
             ))?
             .label(format!("chosen ln ε = {:.4} ({name} {at:.4})", -s.tau))
             .legend(|(x, y)| PathElement::new([(x, y), (x + 18, y)], MARK.stroke_width(2)));
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::LowerLeft)
-            .background_style(WHITE.mix(0.9))
-            .border_style(GREY)
-            .draw()?;
-        Ok(())
+        legend(&mut chart, SeriesLabelPosition::LowerLeft)
     })?;
     Ok(Plot {
         file,
@@ -412,15 +428,13 @@ where
     Y: AsRangedCoord<Value = f64>,
     Y::CoordDescType: ValueFormatter<f64>,
 {
-    let mut chart = ChartBuilder::on(root)
-        .caption(
-            format!("Scores by class, {} split", s.split),
-            ("sans-serif", 18),
-        )
-        .margin(12)
-        .x_label_area_size(42)
-        .y_label_area_size(60)
-        .build_cartesian_2d(xr.clone(), y)?;
+    let mut chart = frame(
+        root,
+        format!("Scores by class, {} split", s.split),
+        60,
+        xr.clone(),
+        y,
+    )?;
     chart
         .configure_mesh()
         .x_desc("s(x) = −ln p(x)")
@@ -456,13 +470,7 @@ where
         ))?
         .label(format!("τ = {:.4}", s.tau))
         .legend(|(x, y)| PathElement::new([(x, y), (x + 18, y)], MARK.stroke_width(2)));
-    chart
-        .configure_series_labels()
-        .position(SeriesLabelPosition::UpperRight)
-        .background_style(WHITE.mix(0.9))
-        .border_style(GREY)
-        .draw()?;
-    Ok(())
+    legend(&mut chart, SeriesLabelPosition::UpperRight)
 }
 
 /// The density of a mixture of normal components (weight, mean, variance) at `x`.
