@@ -36,7 +36,7 @@ pub fn check(lists: &[Vec<RowId>; 3], hashes: &[ContentHash], data: &Dataset) ->
     all.par_sort_unstable();
     // Per pair (first part holding a content, a later part holding it too):
     // the number of shared contents and the smallest pair of rows.
-    let mut shared: BTreeMap<(usize, usize), (usize, (RowId, RowId))> = BTreeMap::new();
+    let mut shared = Shared::new();
     let mut i = 0;
     while i < all.len() {
         let mut j = i;
@@ -61,14 +61,7 @@ pub fn check(lists: &[Vec<RowId>; 3], hashes: &[ContentHash], data: &Dataset) ->
         }
         i = j;
     }
-    if let Some((&(a, b), &(count, (ra, rb)))) = shared.iter().next() {
-        return Err(Error::Leakage {
-            splits: (NAMES[a].into(), NAMES[b].into()),
-            overlapping: count,
-            first: (data.place(ra), data.place(rb)),
-        });
-    }
-    Ok(())
+    verdict(&shared, data)
 }
 
 /// [`check`] for rows already sorted by (content, row) (`by_hash`) with each
@@ -79,7 +72,7 @@ pub fn check_sorted(
     hashes: &[ContentHash],
     data: &Dataset,
 ) -> Result<()> {
-    let mut shared: BTreeMap<(usize, usize), (usize, (RowId, RowId))> = BTreeMap::new();
+    let mut shared = Shared::new();
     let mut i = 0;
     while i < by_hash.len() {
         let h = hashes[by_hash[i] as usize];
@@ -108,14 +101,23 @@ pub fn check_sorted(
         }
         i = j;
     }
-    if let Some((&(a, b), &(count, (ra, rb)))) = shared.iter().next() {
-        return Err(Error::Leakage {
+    verdict(&shared, data)
+}
+
+/// Per pair of splits (first holding a content, later holding it too): the
+/// number of shared contents and the smallest pair of rows.
+type Shared = BTreeMap<(usize, usize), (usize, (RowId, RowId))>;
+
+/// The leakage error for the first pair of splits that share content, if any.
+fn verdict(shared: &Shared, data: &Dataset) -> Result<()> {
+    match shared.iter().next() {
+        Some((&(a, b), &(count, (ra, rb)))) => Err(Error::Leakage {
             splits: (NAMES[a].into(), NAMES[b].into()),
             overlapping: count,
             first: (data.place(ra), data.place(rb)),
-        });
+        }),
+        None => Ok(()),
     }
-    Ok(())
 }
 
 /// Checks that every group (a value of `column`) sits in one split.
