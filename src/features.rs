@@ -76,6 +76,44 @@ fn describe(input: FeatureInput, cols: &[String]) -> String {
     }
 }
 
+/// Rows per parallel task in the row-major passes.
+const ROW_BLOCK: usize = 4096;
+
+/// A transform with its domain test.
+type Step = (fn(f64) -> bool, Fitted);
+
+fn always(_: f64) -> bool {
+    true
+}
+
+/// The raw value of an input in one row of the content columns.
+fn input_value(input: FeatureInput, row: &[f64]) -> f64 {
+    match input {
+        FeatureInput::Column(a) => row[a],
+        FeatureInput::Ratio(a, b) => row[a] / row[b],
+        FeatureInput::Difference(a, b) => row[a] - row[b],
+        FeatureInput::Product(a, b) => row[a] * row[b],
+    }
+}
+
+/// `true` when every input is finite on every row (one row-major pass on
+/// all cores; [`raw`] names the rows when it is not).
+fn inputs_finite(data: &Dataset, inputs: &[FeatureInput], rows: &[RowId]) -> bool {
+    use rayon::prelude::*;
+    let x = data.x.as_standard_layout();
+    let Some(xs) = x.as_slice() else {
+        return false;
+    };
+    let width = x.ncols();
+    rows.par_chunks(ROW_BLOCK).all(|rs| {
+        rs.iter().all(|r| {
+            let i = r.0 as usize;
+            let row = &xs[i * width..(i + 1) * width];
+            inputs.iter().all(|&f| input_value(f, row).is_finite())
+        })
+    })
+}
+
 /// The raw (untransformed) value of an input for each row.
 fn raw(data: &Dataset, input: FeatureInput, rows: &[RowId], name: &str) -> Result<Vec<f64>> {
     let x = &data.x;
@@ -263,8 +301,21 @@ fn check_domain(
 
 /// Fits every transform of a feature set on the training rows.
 pub fn fit(set: &FeatureSetPlan, data: &Dataset, train: &[RowId]) -> Result<FittedFeatures> {
+    // One row-major pass proves every input finite; only then may a feature
+    // without transforms skip its own (column-wise) pass.
+    let inputs: Vec<FeatureInput> = set.features.iter().map(|f| f.input).collect();
+    let all_finite = inputs_finite(data, &inputs, train);
     let mut features = Vec::new();
     for f in &set.features {
+        if all_finite && f.transforms.is_empty() {
+            features.push(FittedFeature {
+                name: f.name.clone(),
+                input: f.input,
+                from: describe(f.input, &data.columns),
+                transforms: vec![],
+            });
+            continue;
+        }
         let mut v = raw(data, f.input, train, &f.name)?;
         let mut steps = Vec::new();
         for &kind in &f.transforms {
@@ -413,6 +464,79 @@ impl FittedFeatures {
     /// The feature matrix of `rows` (`rows.len() × d`), refusing values outside
     /// a transform's domain.
     pub fn apply(&self, data: &Dataset, rows: &[RowId]) -> Result<Array2<f64>> {
+        match self.apply_rows(data, rows) {
+            Some(m) => Ok(m),
+            // Some value is refused: the column-wise pass names the first
+            // feature and its rows, in the order the rules are checked.
+            None => self.apply_by_column(data, rows),
+        }
+    }
+
+    /// The feature matrix computed row by row on all cores, or `None` when
+    /// any value is refused. Each value goes through the same operations, in
+    /// the same order, as in [`FittedFeatures::apply_by_column`], so the bits
+    /// are the same.
+    fn apply_rows(&self, data: &Dataset, rows: &[RowId]) -> Option<Array2<f64>> {
+        use rayon::prelude::*;
+        let d = self.features.len();
+        let x = data.x.as_standard_layout();
+        let xs = x.as_slice()?;
+        let width = x.ncols();
+        let checks: Vec<Vec<Step>> = self
+            .features
+            .iter()
+            .map(|f| {
+                f.transforms
+                    .iter()
+                    .map(|t| {
+                        (
+                            domain(t.kind()).map_or(always as fn(f64) -> bool, |d| d.1),
+                            *t,
+                        )
+                    })
+                    .collect()
+            })
+            .collect();
+        let mut out = vec![0.0; rows.len() * d];
+        if d == 0 {
+            return Array2::from_shape_vec((rows.len(), 0), out).ok();
+        }
+        let ok = out
+            .par_chunks_mut(d * ROW_BLOCK)
+            .zip(rows.par_chunks(ROW_BLOCK))
+            .all(|(o, rs)| {
+                for (k, r) in rs.iter().enumerate() {
+                    let i = r.0 as usize;
+                    let row = &xs[i * width..(i + 1) * width];
+                    for (j, f) in self.features.iter().enumerate() {
+                        let mut v = input_value(f.input, row);
+                        if !v.is_finite() {
+                            return false;
+                        }
+                        for (ok, t) in &checks[j] {
+                            if !ok(v) {
+                                return false;
+                            }
+                            v = t.apply(v);
+                        }
+                        if !v.is_finite() {
+                            return false;
+                        }
+                        o[k * d + j] = v;
+                    }
+                }
+                true
+            });
+        if !ok {
+            return None;
+        }
+        Array2::from_shape_vec((rows.len(), d), out).ok()
+    }
+
+    /// [`FittedFeatures::apply`] one feature at a time, returning the first
+    /// refusal: for each feature in order, its input, then each transform's
+    /// domain, then the transformed value.
+    fn apply_by_column(&self, data: &Dataset, rows: &[RowId]) -> Result<Array2<f64>> {
         let mut m = Array2::zeros((rows.len(), self.features.len()));
         for (j, f) in self.features.iter().enumerate() {
             let mut v = raw(data, f.input, rows, &f.name)?;
@@ -449,6 +573,64 @@ mod tests {
 
     fn close(a: f64, b: f64, tol: f64) {
         assert!((a - b).abs() <= tol, "{a} vs {b} (tolerance {tol})");
+    }
+
+    /// The row-major pass gives the same bits as the column-wise one, and
+    /// declines (so the column-wise pass names the rows) on a refused value.
+    #[test]
+    fn row_major_pass_equals_column_pass() {
+        let n = 20_000;
+        let x = Array2::from_shape_fn((n, 3), |(i, j)| {
+            0.5 + ((i * 7919 + j * 104_729) % 10_007) as f64 / 97.0 + j as f64
+        });
+        let data = Dataset::for_tests(x, vec![false; n], Default::default());
+        let feature = |name: &str, input, transforms| FittedFeature {
+            name: name.into(),
+            input,
+            from: String::new(),
+            transforms,
+        };
+        let set = FittedFeatures {
+            set: "s".into(),
+            features: vec![
+                feature("a", FeatureInput::Column(0), vec![]),
+                feature(
+                    "b",
+                    FeatureInput::Ratio(1, 2),
+                    vec![Fitted::Log, Fitted::Standardise { mean: 0.1, sd: 0.7 }],
+                ),
+                feature(
+                    "c",
+                    FeatureInput::Product(0, 2),
+                    vec![Fitted::BoxCox { lambda: 0.3 }, Fitted::Sqrt],
+                ),
+                feature(
+                    "d",
+                    FeatureInput::Difference(2, 1),
+                    vec![
+                        Fitted::YeoJohnson { lambda: -0.4 },
+                        Fitted::Standardise {
+                            mean: -2.0,
+                            sd: 3.0,
+                        },
+                    ],
+                ),
+            ],
+        };
+        let rows: Vec<RowId> = (0..n as u64).rev().step_by(3).map(RowId).collect();
+        let fast = set
+            .apply_rows(&data, &rows)
+            .expect("every value is accepted");
+        let slow = set.apply_by_column(&data, &rows).unwrap();
+        assert_eq!(fast.dim(), slow.dim());
+        for (a, b) in fast.iter().zip(slow.iter()) {
+            assert_eq!(a.to_bits(), b.to_bits());
+        }
+        let mut bad = set.clone();
+        bad.features[3].transforms = vec![Fitted::Log];
+        assert!(bad.apply_rows(&data, &rows).is_none());
+        let e = bad.apply(&data, &rows).unwrap_err().to_string();
+        assert!(e.contains("`log` cannot take this value"), "{e}");
     }
 
     /// scipy.stats.boxcox(x) → λ = 0.1947603276190578 (tight optimum

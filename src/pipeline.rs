@@ -324,8 +324,10 @@ fn execute(
             None => features::fit(set, &data, &splits.train)?,
         };
         let names = fitted.names();
+        let t = crate::progress::part("feature matrices, train and validation");
         let train = fitted.apply(&data, &splits.train)?;
         let val_x = fitted.apply(&data, &splits.validation)?;
+        drop(t);
         for &kind in &plan.detectors {
             let name = if set.named {
                 format!("{}/{}", set.name, detect::name(kind))
@@ -333,16 +335,24 @@ fn execute(
                 detect::name(kind).to_string()
             };
             let stage = progress.stage(format!("fitting and thresholding {name}"));
+            let t = crate::progress::part("fitting");
             let model = match &streamed {
                 Some((_, moments, _)) => crate::stream::fit(kind, &moments[si], &names),
                 None => detect::build(kind).fit(train.view(), &names),
             }
             .map_err(|e| in_set(e, set))?;
+            drop(t);
+            let t = crate::progress::part("validation scores");
             let validation_scores =
                 checked_scores(&name, model.as_ref(), &val_x, &splits.validation, &data)?;
+            drop(t);
+            let t = crate::progress::part("threshold");
             let choice = threshold::choose(plan.threshold, &validation_scores, &val_y);
+            drop(t);
+            let t = crate::progress::part("validation metrics");
             let validation =
                 Metrics::of(&validation_scores, &val_y, choice.tau, beta, plan.bootstrap);
+            drop(t);
             candidates.push(Candidate {
                 name,
                 set: si,
@@ -580,12 +590,15 @@ fn execute(
         is_anomaly: &val_y,
         tau: c.choice.tau,
     };
+    let t = crate::progress::part("validation figures");
     ctx.plots_validation = vec![
         plots::precision_recall(val)?,
         plots::roc(val)?,
         plots::objective(plan.threshold, val)?,
         plots::score_histogram(val)?,
     ];
+    drop(t);
+    let t = crate::progress::part("test figures");
     if rec.test_opened {
         let test = plots::SplitScores {
             split: Part::Test.name(),
@@ -599,6 +612,8 @@ fn execute(
             plots::score_histogram(test)?,
         ];
     }
+    drop(t);
+    let t = crate::progress::part("feature figures");
     let set = &fitted_sets[c.set];
     // A streamed run kept no training rows: its figures show the validation
     // split's normal rows under the density fitted to the training rows.
@@ -649,6 +664,8 @@ fn execute(
     {
         files.add(&p.file, p.svg.clone().into_bytes());
     }
+    drop(t);
+    let _t = crate::progress::part("rendering the card");
     let (md, html) = card::render(&ctx, opts.templates.as_deref())?;
     files.add("card.md", md.into_bytes());
     files.add("card.html", html.into_bytes());
@@ -749,6 +766,8 @@ fn scores_csv(
     test: &[RowId],
     test_scores: &[Vec<f64>],
 ) -> Vec<u8> {
+    use rayon::prelude::*;
+    use std::fmt::Write;
     let mut out = String::from(if data.ids.is_some() { "id" } else { "row" });
     out.push_str(",split,label");
     for c in candidates {
@@ -756,35 +775,60 @@ fn scores_csv(
         out.push_str(&csv_field(&c.name));
     }
     out.push('\n');
-    let mut lines: Vec<(Part, RowId, Vec<f64>)> = Vec::new();
-    for (k, r) in validation.iter().enumerate() {
-        lines.push((
-            Part::Validation,
-            *r,
-            candidates.iter().map(|c| c.validation_scores[k]).collect(),
-        ));
+    // (split, row, index within the split's score vectors), in file order.
+    let mut lines: Vec<(Part, RowId, u32)> = validation
+        .iter()
+        .enumerate()
+        .map(|(k, r)| (Part::Validation, *r, k as u32))
+        .chain(
+            test.iter()
+                .enumerate()
+                .map(|(k, r)| (Part::Test, *r, k as u32)),
+        )
+        .collect();
+    lines.par_sort_unstable_by_key(|(p, r, _)| (*p, *r));
+    // Lines are formatted in blocks on all cores and joined in order: the
+    // bytes do not depend on the thread count.
+    let blocks: Vec<String> = lines
+        .par_chunks(8192)
+        .map(|block| {
+            let mut s = String::with_capacity(block.len() * 64);
+            for &(p, r, k) in block {
+                let i = r.0 as usize;
+                match &data.ids {
+                    Some(ids) if !ids[i].contains([',', '"', '\n', '\r']) => s.push_str(&ids[i]),
+                    Some(ids) => s.push_str(&csv_field(&ids[i])),
+                    None => {
+                        let _ = write!(s, "{}", r.0);
+                    }
+                }
+                s.push(',');
+                s.push_str(p.name());
+                s.push(',');
+                s.push(if data.is_anomaly[i] { '1' } else { '0' });
+                for (ci, c) in candidates.iter().enumerate() {
+                    let v = match p {
+                        Part::Test => test_scores[ci][k as usize],
+                        _ => c.validation_scores[k as usize],
+                    };
+                    s.push(',');
+                    if v.is_finite() {
+                        let _ = write!(s, "{v}");
+                    } else {
+                        s.push_str(&fmt_f64(v));
+                    }
+                }
+                s.push('\n');
+            }
+            s
+        })
+        .collect();
+    let mut bytes = out.into_bytes();
+    bytes.reserve(blocks.iter().map(String::len).sum());
+    for b in blocks {
+        bytes.extend_from_slice(b.as_bytes());
     }
-    for (k, r) in test.iter().enumerate() {
-        lines.push((Part::Test, *r, test_scores.iter().map(|s| s[k]).collect()));
-    }
-    lines.sort_by_key(|(p, r, _)| (*p, *r));
-    for (p, r, scores) in lines {
-        let i = r.0 as usize;
-        match &data.ids {
-            Some(ids) => out.push_str(&csv_field(&ids[i])),
-            None => out.push_str(&r.0.to_string()),
-        }
-        out.push(',');
-        out.push_str(p.name());
-        out.push(',');
-        out.push(if data.is_anomaly[i] { '1' } else { '0' });
-        for s in scores {
-            out.push(',');
-            out.push_str(&fmt_f64(s));
-        }
-        out.push('\n');
-    }
-    out.into_bytes()
+    bytes
 }
 
 fn fmt_fraction(f: &[f64]) -> String {

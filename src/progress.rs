@@ -68,6 +68,11 @@ impl Progress {
     }
 }
 
+/// A part of a stage, timed only under `ANOMARK_STAGE_TIMES=1` and never drawn.
+pub fn part(name: &str) -> Stage {
+    Stage::new(ProgressBar::hidden(), format!("  {name}"))
+}
+
 /// With `ANOMARK_STAGE_TIMES=1`, every stage prints its wall time to stderr
 /// when it ends (for the benchmarks; never on by default).
 fn stage_times() -> bool {

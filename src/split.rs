@@ -19,8 +19,6 @@
 
 use std::collections::BTreeMap;
 
-use rayon::slice::ParallelSliceMut;
-
 use crate::audit::hash::ContentHash;
 use crate::data::{Dataset, RowId};
 use crate::error::{Error, Result};
@@ -225,8 +223,7 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
     let n = data.len();
     // Every row in (content, row) order, sorted once: duplicates, the
     // canonical order of each split and the leakage proof all read it.
-    let mut by_hash: Vec<u32> = (0..n as u32).collect();
-    by_hash.par_sort_unstable_by_key(|&i| (hashes[i as usize], i));
+    let by_hash = crate::audit::hash::order(hashes);
     let mut rows_with_duplicates = 0;
     let mut i = 0;
     while i < n {

@@ -77,6 +77,40 @@ pub fn rows(x: &ndarray::Array2<f64>, is_anomaly: &[bool]) -> Vec<ContentHash> {
         .collect()
 }
 
+/// Row indices `0..n` in ascending (content hash, row) order, on all cores.
+///
+/// Sorts compact (first 8 hash bytes, row) keys, whose order is the hashes'
+/// byte order up to ties of the prefix; only a run of equal prefixes (in
+/// practice: identical rows) is then ordered by the whole hash. The result is
+/// exactly that of sorting by `(hashes[i], i)`.
+pub fn order(hashes: &[ContentHash]) -> Vec<u32> {
+    use rayon::prelude::*;
+    let prefix = |h: &ContentHash| {
+        let mut p = [0u8; 8];
+        p.copy_from_slice(&h.0[..8]);
+        u64::from_be_bytes(p)
+    };
+    let mut keys: Vec<(u64, u32)> = hashes
+        .par_iter()
+        .enumerate()
+        .map(|(i, h)| (prefix(h), i as u32))
+        .collect();
+    keys.par_sort_unstable();
+    let mut out: Vec<u32> = keys.iter().map(|k| k.1).collect();
+    let mut i = 0;
+    while i < keys.len() {
+        let mut j = i + 1;
+        while j < keys.len() && keys[j].0 == keys[i].0 {
+            j += 1;
+        }
+        if j - i > 1 {
+            out[i..j].sort_unstable_by_key(|&r| (hashes[r as usize], r));
+        }
+        i = j;
+    }
+    out
+}
+
 /// A file's size and blake3 hash.
 #[derive(Debug, Clone, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case", deny_unknown_fields)]
@@ -184,6 +218,21 @@ mod tests {
         for (i, h) in fast.iter().enumerate() {
             assert_eq!(*h, row(x.row(i).iter().copied(), labels[i], 3), "row {i}");
         }
+    }
+
+    #[test]
+    fn order_equals_sorting_by_hash_then_row() {
+        // Identical rows (equal hashes) and hashes sharing their first 8
+        // bytes exercise both the prefix sort and the tie-break.
+        let mut hashes: Vec<ContentHash> = (0..5000u32)
+            .map(|i| row([f64::from(i % 3000)], i % 7 == 0, 1))
+            .collect();
+        let mut twin = hashes[10];
+        twin.0[31] ^= 1;
+        hashes.push(twin);
+        let mut want: Vec<u32> = (0..hashes.len() as u32).collect();
+        want.sort_by_key(|&i| (hashes[i as usize], i));
+        assert_eq!(order(&hashes), want);
     }
 
     #[test]

@@ -21,6 +21,8 @@ use crate::audit::hash::{self, FileDigest};
 use crate::error::{Error, Result, RowUnit};
 use crate::spec::{Column, MissingPolicy, Plan, SourcePlan};
 
+mod fast;
+
 /// How many offending places an error lists.
 const SHOWN: usize = 5;
 
@@ -310,6 +312,9 @@ pub(crate) fn missing_column(plan: &Plan, c: &Column, file: &str, present: &[Str
 
 /// One file's columns as read: numeric columns (None = missing), text columns.
 struct FileFrame {
+    /// The plain-CSV reader's result (then the other fields are empty but
+    /// `height`).
+    plain: Option<fast::Plain>,
     numeric: Vec<Vec<Option<f64>>>,
     /// Per numeric column, rows whose text is not a number (CSV only).
     not_number: Vec<Vec<(usize, String)>>,
@@ -317,7 +322,32 @@ struct FileFrame {
     height: usize,
 }
 
-fn read_csv(path: &Path, plan: &Plan, numeric: &[&Column], text: &[&Column]) -> Result<FileFrame> {
+fn read_csv(
+    path: &Path,
+    plan: &Plan,
+    numeric: &[&Column],
+    text: &[&Column],
+    label: Option<fast::LabelWant<'_>>,
+) -> Result<FileFrame> {
+    if let Some(p) = fast::read(path, numeric, text, label) {
+        return Ok(FileFrame {
+            height: p.height,
+            plain: Some(p),
+            numeric: vec![],
+            not_number: vec![],
+            text: vec![],
+        });
+    }
+    read_csv_polars(path, plan, numeric, text)
+}
+
+/// The general CSV reader (polars), which also names every problem's place.
+fn read_csv_polars(
+    path: &Path,
+    plan: &Plan,
+    numeric: &[&Column],
+    text: &[&Column],
+) -> Result<FileFrame> {
     let base = CsvReadOptions::default()
         .with_has_header(true)
         .with_raise_if_empty(true);
@@ -374,6 +404,7 @@ fn read_csv(path: &Path, plan: &Plan, numeric: &[&Column], text: &[&Column]) -> 
         return typed_frame(&df, path, numeric, text);
     }
     let mut frame = FileFrame {
+        plain: None,
         numeric: vec![],
         not_number: vec![],
         text: vec![],
@@ -477,6 +508,7 @@ fn typed_frame(
     text: &[&Column],
 ) -> Result<FileFrame> {
     let mut frame = FileFrame {
+        plain: None,
         numeric: vec![],
         not_number: vec![],
         text: vec![],
@@ -531,10 +563,13 @@ pub fn inspect(plan: &Plan) -> Result<Inspection> {
     let numeric: Vec<&Column> = plan.columns.iter().collect();
     let text_cols = plan.text_columns();
     let label = plan.label.as_ref();
+    let label_k = label.and_then(|l| text_cols.iter().position(|c| c.name == l.column.name));
 
     let mut files = Vec::new();
     let mut types = BTreeMap::new();
-    let mut values: Vec<Vec<f64>> = vec![Vec::new(); numeric.len()];
+    let d = numeric.len();
+    // Row-major, `d` values per row.
+    let mut xs: Vec<f64> = Vec::new();
     let mut text: Vec<Vec<String>> = vec![Vec::new(); text_cols.len()];
     let mut is_anomaly = Vec::new();
     let mut origin = Vec::new();
@@ -549,93 +584,135 @@ pub fn inspect(plan: &Plan) -> Result<Inspection> {
         for path in expand(s, plan)? {
             let format = format_of(&path, plan, s)?;
             let mut frame = match format {
-                Format::Csv => read_csv(&path, plan, &numeric, &text_cols)?,
+                Format::Csv => {
+                    let want = match (s.implied, label) {
+                        (None, Some(l)) => text_cols
+                            .iter()
+                            .position(|c| c.name == l.column.name)
+                            .map(|index| fast::LabelWant {
+                                index,
+                                normal: &l.normal,
+                                anomaly: &l.anomaly,
+                            }),
+                        _ => None,
+                    };
+                    let _t = crate::progress::part("reading CSV");
+                    read_csv(&path, plan, &numeric, &text_cols, want)?
+                }
                 Format::Parquet => read_parquet(&path, plan, &numeric, &text_cols, &mut types)?,
             };
             let file_index = files.len() as u32;
             let start = is_anomaly.len();
-            for i in 0..frame.height {
-                let id = RowId((start + i) as u64);
-                origin.push(Origin {
-                    file: file_index,
-                    row: i as u64,
-                });
-                let mut missing = false;
-                for (j, col) in frame.numeric.iter().enumerate() {
-                    let v = match col[i] {
-                        None => {
-                            missing = true;
-                            missing_rows[j].push(id);
-                            f64::NAN
-                        }
-                        Some(v) if v.is_nan() && frame.not_number[j].is_empty() => {
-                            missing = true;
-                            missing_rows[j].push(id);
-                            v
-                        }
-                        Some(v) if v.is_infinite() => {
-                            non_finite[j].push(id);
-                            f64::NAN
-                        }
-                        Some(v) => v,
-                    };
-                    values[j].push(if v == 0.0 { 0.0 } else { v });
-                }
-                has_missing.push(missing);
-                for (k, col) in frame.text.iter_mut().enumerate() {
-                    let v = col[i].take().unwrap_or_default();
-                    if v.is_empty() {
-                        empty_text[k].push(id);
+            let height = frame.height;
+            origin.extend((0..height as u64).map(|row| Origin {
+                file: file_index,
+                row,
+            }));
+            let digest = match frame.plain.take() {
+                // Every value present and finite, every text field non-empty,
+                // every label one of the two declared values.
+                Some(p) => {
+                    if xs.is_empty() {
+                        xs = p.values;
+                    } else {
+                        xs.extend_from_slice(&p.values);
                     }
-                    text[k].push(v);
-                }
-            }
-            for (j, bad) in frame.not_number.iter().enumerate() {
-                for (i, v) in bad {
-                    not_number[j].push((RowId((start + i) as u64), v.clone()));
-                }
-            }
-            // Labels.
-            match s.implied {
-                Some(a) => is_anomaly.extend(std::iter::repeat_n(a, frame.height)),
-                None => {
-                    let l = label.expect("a labelled source has a label");
-                    let k = text_cols
-                        .iter()
-                        .position(|c| c.name == l.column.name)
-                        .expect("the label is a text column");
-                    for i in 0..frame.height {
-                        let v = text[k][start + i].as_str();
-                        if v == l.normal {
-                            is_anomaly.push(false);
-                        } else if v == l.anomaly {
-                            is_anomaly.push(true);
+                    has_missing.extend(std::iter::repeat_n(false, height));
+                    for (k, col) in p.text.into_iter().enumerate() {
+                        if Some(k) == label_k {
+                            continue;
+                        }
+                        if text[k].is_empty() {
+                            text[k] = col;
                         } else {
-                            bad_label.push((RowId((start + i) as u64), v.to_string()));
-                            is_anomaly.push(false);
+                            text[k].extend(col);
                         }
                     }
+                    match (s.implied, p.labels) {
+                        (Some(a), _) => is_anomaly.extend(std::iter::repeat_n(a, height)),
+                        (None, Some(resolved)) => is_anomaly.extend(resolved),
+                        (None, None) => {
+                            return Err(Error::internal("labels of a plain CSV file not read"))
+                        }
+                    }
+                    p.digest
                 }
-            }
-            let digest = hash::file(&path)?;
+                None => {
+                    // Labels first, from the file's own column.
+                    match s.implied {
+                        Some(a) => is_anomaly.extend(std::iter::repeat_n(a, height)),
+                        None => {
+                            let l = label.expect("a labelled source has a label");
+                            let k = label_k.expect("the label is a text column");
+                            for (i, v) in frame.text[k].iter().enumerate() {
+                                let v = v.as_deref().unwrap_or_default();
+                                if v == l.normal {
+                                    is_anomaly.push(false);
+                                } else if v == l.anomaly {
+                                    is_anomaly.push(true);
+                                } else {
+                                    bad_label.push((RowId((start + i) as u64), v.to_string()));
+                                    is_anomaly.push(false);
+                                }
+                            }
+                        }
+                    }
+                    for i in 0..height {
+                        let id = RowId((start + i) as u64);
+                        let mut missing = false;
+                        for (j, col) in frame.numeric.iter().enumerate() {
+                            let v = match col[i] {
+                                None => {
+                                    missing = true;
+                                    missing_rows[j].push(id);
+                                    f64::NAN
+                                }
+                                Some(v) if v.is_nan() && frame.not_number[j].is_empty() => {
+                                    missing = true;
+                                    missing_rows[j].push(id);
+                                    v
+                                }
+                                Some(v) if v.is_infinite() => {
+                                    non_finite[j].push(id);
+                                    f64::NAN
+                                }
+                                Some(v) => v,
+                            };
+                            xs.push(if v == 0.0 { 0.0 } else { v });
+                        }
+                        has_missing.push(missing);
+                        for (k, col) in frame.text.iter_mut().enumerate() {
+                            if Some(k) == label_k {
+                                continue;
+                            }
+                            let v = col[i].take().unwrap_or_default();
+                            if v.is_empty() {
+                                empty_text[k].push(id);
+                            }
+                            text[k].push(v);
+                        }
+                    }
+                    for (j, bad) in frame.not_number.iter().enumerate() {
+                        for (i, v) in bad {
+                            not_number[j].push((RowId((start + i) as u64), v.clone()));
+                        }
+                    }
+                    hash::file(&path)?
+                }
+            };
             files.push(SourceFile {
                 shown: shown(&path, plan),
                 path,
                 format,
                 digest,
-                rows: frame.height,
+                rows: height,
             });
         }
     }
 
     let n = is_anomaly.len();
-    let d = numeric.len();
-    let mut x = Array2::<f64>::zeros((n, d));
-    for (j, col) in values.iter().enumerate() {
-        for (i, v) in col.iter().enumerate() {
-            x[(i, j)] = *v;
-        }
-    }
+    let x = Array2::from_shape_vec((n, d), xs)
+        .map_err(|e| Error::internal(format!("feature matrix: {e}")))?;
     let mut data = Dataset {
         files,
         columns: numeric.iter().map(|c| c.name.clone()).collect(),
@@ -799,5 +876,147 @@ impl Dataset {
             text,
             dropped: Dropped::default(),
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use rand_chacha::rand_core::{Rng, SeedableRng};
+
+    fn plan_for(dir: &Path, csv: &str, features: &[&str]) -> Plan {
+        let spec = dir.join("spec.yaml");
+        std::fs::write(
+            &spec,
+            format!(
+                "format: 1\ndata:\n  path: {csv}\n  id-column: id\n  label: {{column: label, normal: ok, anomaly: bad}}\n  \
+                 features: [{}]\nsplit:\n  from-column: split\ndetectors: [independent-gaussian]\nthreshold: max-f1\n\
+                 card:\n  title: t\n  owner: o\n  intended-use: u\n  out-of-scope-uses: [x]\n",
+                features.join(", ")
+            ),
+        )
+        .unwrap();
+        crate::spec::load(&spec).unwrap()
+    }
+
+    /// The plain-CSV reader and polars' reader agree bit for bit on random
+    /// decimal text (both parse correctly rounded; the check is against
+    /// polars, a general-purpose library), and the digest equals the
+    /// streamed file hash.
+    #[test]
+    fn plain_reader_agrees_with_polars() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(11);
+        let mut text = String::from("id,a,label,b,split,c\n");
+        let number = |rng: &mut rand_chacha::ChaCha8Rng| {
+            let mut s = String::new();
+            if rng.next_u32().is_multiple_of(2) {
+                s.push('-');
+            }
+            s.push_str(&(rng.next_u64() % 10u64.pow(1 + rng.next_u32() % 17)).to_string());
+            let decimals = rng.next_u32() % 19;
+            if decimals > 0 {
+                s.push('.');
+                for _ in 0..decimals {
+                    s.push(char::from(b'0' + (rng.next_u32() % 10) as u8));
+                }
+            }
+            if rng.next_u32().is_multiple_of(4) {
+                let mark = if rng.next_u32().is_multiple_of(2) {
+                    "e-"
+                } else {
+                    "E"
+                };
+                s.push_str(&format!("{mark}{}", rng.next_u32() % 61));
+            }
+            s
+        };
+        for i in 0..150_000 {
+            let (a, b, c) = (number(&mut rng), number(&mut rng), number(&mut rng));
+            let label = if i % 97 == 0 { "bad" } else { "ok" };
+            let split = ["train", "validation", "test"][i % 3];
+            text.push_str(&format!("r{i},{a},{label},{b},{split},{c}\n"));
+        }
+        std::fs::write(dir.path().join("d.csv"), &text).unwrap();
+        let plan = plan_for(dir.path(), "d.csv", &["c", "a", "b"]);
+        let numeric: Vec<&Column> = plan.columns.iter().collect();
+        let text_cols = plan.text_columns();
+        let path = dir.path().join("d.csv");
+        let want = fast::LabelWant {
+            index: 0,
+            normal: "ok",
+            anomaly: "bad",
+        };
+        assert_eq!(text_cols[0].name, "label");
+        let plain = fast::read(&path, &numeric, &text_cols, Some(want)).expect("plain CSV");
+        let general = read_csv_polars(&path, &plan, &numeric, &text_cols).unwrap();
+        assert_eq!(plain.height, 150_000);
+        assert_eq!(general.height, plain.height);
+        for (j, col) in general.numeric.iter().enumerate() {
+            for (i, v) in col.iter().enumerate() {
+                let v = v.unwrap();
+                let v = if v == 0.0 { 0.0 } else { v };
+                assert_eq!(
+                    plain.values[i * numeric.len() + j].to_bits(),
+                    v.to_bits(),
+                    "row {i}, column {}",
+                    numeric[j].name
+                );
+            }
+        }
+        for (k, col) in general.text.iter().enumerate().skip(1) {
+            let want: Vec<String> = col.iter().map(|v| v.clone().unwrap()).collect();
+            assert_eq!(plain.text[k], want, "text column {}", text_cols[k].name);
+        }
+        let labels: Vec<bool> = general.text[0]
+            .iter()
+            .map(|v| v.as_deref() == Some("bad"))
+            .collect();
+        assert_eq!(plain.labels, Some(labels));
+        assert!(plain.text[0].is_empty());
+        assert_eq!(plain.digest, hash::file(&path).unwrap());
+    }
+
+    /// Files outside the plain case go to polars, which names the problem.
+    #[test]
+    fn plain_reader_leaves_the_rest_to_polars() {
+        let dir = tempfile::tempdir().unwrap();
+        let head = "id,a,label,split\n";
+        let cases = [
+            "r1,1.5,ok,train\nr2,\"2\",ok,test\n",
+            "r1,1.5,ok,train\r\nr2,2,ok,test\r\n",
+            "r1,1.5,ok,train\n\nr2,2,ok,test\n",
+            "r1,1.5,ok,train\nr2,,ok,test\n",
+            "r1,1.5,ok,train\nr2,2,,test\n",
+            "r1,1.5,ok,train\nr2,2,ok\n",
+            "r1,1.5,ok,train\nr2,2,ok,test,extra\n",
+            "r1,1.5,ok,train\nr2,NaN,ok,test\n",
+            "r1,1.5,ok,train\nr2,+2,ok,test\n",
+            "r1,1.5,ok,train\nr2,1e400,ok,test\n",
+            "r1,1.5,ok,train\nr2,2,OK,test\n",
+            "r1,1.5,ok,train\nr2,2,ok,test\nr3",
+        ];
+        let label = || {
+            Some(fast::LabelWant {
+                index: 0,
+                normal: "ok",
+                anomaly: "bad",
+            })
+        };
+        for (n, body) in cases.iter().enumerate() {
+            let path = dir.path().join(format!("c{n}.csv"));
+            std::fs::write(&path, format!("{head}{body}")).unwrap();
+            let plan = plan_for(dir.path(), &format!("c{n}.csv"), &["a"]);
+            let numeric: Vec<&Column> = plan.columns.iter().collect();
+            assert!(
+                fast::read(&path, &numeric, &plan.text_columns(), label()).is_none(),
+                "case {n}: {body:?}"
+            );
+        }
+        let path = dir.path().join("bom.csv");
+        std::fs::write(&path, format!("\u{feff}{head}r1,1.5,ok,train\n")).unwrap();
+        let plan = plan_for(dir.path(), "bom.csv", &["a"]);
+        let numeric: Vec<&Column> = plan.columns.iter().collect();
+        assert!(fast::read(&path, &numeric, &plan.text_columns(), label()).is_none());
     }
 }

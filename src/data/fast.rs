@@ -1,0 +1,422 @@
+//! The parallel reader for plain CSV: the common case of an unquoted,
+//! comma-separated file whose wanted fields are all present, numbers in
+//! plain decimal notation and text non-empty.
+//!
+//! It maps the file once, hashes those bytes while it parses them, splits
+//! the body at line ends into blocks parsed on all cores, and fills the
+//! row-major value matrix and the labels directly. It gives up (returns `None`) on anything
+//! outside that case: a quote, a carriage return, a byte-order mark, an empty
+//! line, a line with another number of fields, an empty or non-UTF-8 text
+//! field, a label that is not one of the two declared values, or a number that is not `-?digits[.digits][e±digits]` or not
+//! finite. The polars reader then reads the file as before and reports any
+//! problem with its place, so this reader changes no message and no value.
+//!
+//! Numbers are parsed by fast-float2, the parser polars' CSV reader uses; on
+//! the accepted grammar every correctly rounded parser gives the same bits
+//! (a test compares them with polars' on the same file).
+
+use std::path::Path;
+
+use rayon::prelude::*;
+
+use crate::audit::hash::FileDigest;
+use crate::spec::Column;
+
+/// Bytes per parallel block (at least; a block ends at a line end).
+const BLOCK_BYTES: usize = 1 << 20;
+
+/// A file read by the fast path.
+pub(super) struct Plain {
+    /// Numeric values, row-major (`height × numeric.len()`), negative zero
+    /// written as zero.
+    pub values: Vec<f64>,
+    /// Text columns, in the order asked for; the label column (when one was
+    /// given) is left empty and resolved into `labels`.
+    pub text: Vec<Vec<String>>,
+    /// `true` for the anomaly value, when a label column was given.
+    pub labels: Option<Vec<bool>>,
+    /// Data rows.
+    pub height: usize,
+    /// Size and blake3 of the bytes read.
+    pub digest: FileDigest,
+}
+
+/// The label column among the text columns: its index there and its two
+/// declared values. A row with any other value sends the file to polars.
+pub(super) struct LabelWant<'a> {
+    pub index: usize,
+    pub normal: &'a str,
+    pub anomaly: &'a str,
+}
+
+/// Where a header field goes.
+#[derive(Clone, Copy)]
+enum Slot {
+    Skip,
+    Number(usize),
+    Text(usize),
+    Label,
+}
+
+/// One block's share of the output.
+struct Out<'a> {
+    values: &'a mut [f64],
+    labels: &'a mut [bool],
+    text: Vec<&'a mut [String]>,
+}
+
+/// Reads `path` when it is plain CSV holding every wanted column; `None`
+/// sends the caller to the general reader.
+pub(super) fn read(
+    path: &Path,
+    numeric: &[&Column],
+    text: &[&Column],
+    label: Option<LabelWant<'_>>,
+) -> Option<Plain> {
+    let file = std::fs::File::open(path).ok()?;
+    // SAFETY: the map is read-only and private to this call. The bytes that
+    // are hashed are the bytes that are parsed; a file changed by another
+    // process while it is read gives unreliable input to any reader (polars
+    // maps files the same way), and the recorded hash then fails `verify`.
+    let map = unsafe { memmap2::Mmap::map(&file) }.ok()?;
+    let bytes: &[u8] = &map;
+    let (digest, parsed) = rayon::join(
+        || FileDigest {
+            bytes: bytes.len() as u64,
+            blake3: blake3::hash(bytes).to_hex().to_string(),
+        },
+        || parse(bytes, numeric, text, label.as_ref()),
+    );
+    let (values, text, labels, height) = parsed?;
+    Some(Plain {
+        values,
+        text,
+        labels,
+        height,
+        digest,
+    })
+}
+
+type Parsed = (Vec<f64>, Vec<Vec<String>>, Option<Vec<bool>>, usize);
+
+fn parse(
+    bytes: &[u8],
+    numeric: &[&Column],
+    text: &[&Column],
+    label: Option<&LabelWant<'_>>,
+) -> Option<Parsed> {
+    if bytes.starts_with(b"\xEF\xBB\xBF") || memchr::memchr2(b'"', b'\r', bytes).is_some() {
+        return None;
+    }
+    let header_end = memchr::memchr(b'\n', bytes)?;
+    let header: Vec<&[u8]> = bytes[..header_end].split(|&b| b == b',').collect();
+    let mut slots = vec![Slot::Skip; header.len()];
+    let wanted = numeric
+        .iter()
+        .enumerate()
+        .map(|(j, c)| (c, Slot::Number(j)))
+        .chain(text.iter().enumerate().map(|(k, c)| {
+            let slot = match label {
+                Some(l) if l.index == k => Slot::Label,
+                _ => Slot::Text(k),
+            };
+            (c, slot)
+        }));
+    for (c, slot) in wanted {
+        let mut at = header
+            .iter()
+            .enumerate()
+            .filter(|(_, h)| **h == c.name.as_bytes());
+        let (i, _) = at.next()?;
+        // A repeated header name, or a column wanted twice: the general reader decides.
+        if at.next().is_some() || !matches!(slots[i], Slot::Skip) {
+            return None;
+        }
+        slots[i] = slot;
+    }
+    let body = &bytes[header_end + 1..];
+    if body.is_empty() {
+        return None;
+    }
+    let blocks: Vec<&[u8]> = split_blocks(body);
+    let t = crate::progress::part("counting lines");
+    let heights: Vec<usize> = blocks
+        .par_iter()
+        .map(|b| memchr::memchr_iter(b'\n', b).count() + usize::from(!b.ends_with(b"\n")))
+        .collect();
+    let height: usize = heights.iter().sum();
+    drop(t);
+    let t = crate::progress::part("allocating");
+    let d = numeric.len();
+    let mut values = vec![0.0; height * d];
+    let mut labels = vec![false; if label.is_some() { height } else { 0 }];
+    let mut columns: Vec<Vec<String>> = (0..text.len())
+        .map(|k| match label {
+            Some(l) if l.index == k => Vec::new(),
+            _ => vec![String::new(); height],
+        })
+        .collect();
+    // Each block gets its own disjoint share of every output.
+    let mut outs: Vec<Out<'_>> = Vec::with_capacity(blocks.len());
+    {
+        let mut v: &mut [f64] = &mut values;
+        let mut l: &mut [bool] = &mut labels;
+        let mut t: Vec<&mut [String]> = columns.iter_mut().map(|c| c.as_mut_slice()).collect();
+        for &h in &heights {
+            let (vh, vr) = v.split_at_mut(h * d);
+            v = vr;
+            let (lh, lr) = l.split_at_mut(if label.is_some() { h } else { 0 });
+            l = lr;
+            let mut th = Vec::with_capacity(t.len());
+            t = t
+                .into_iter()
+                .map(|c| {
+                    let (a, b) = c.split_at_mut(if c.is_empty() { 0 } else { h });
+                    th.push(a);
+                    b
+                })
+                .collect();
+            outs.push(Out {
+                values: vh,
+                labels: lh,
+                text: th,
+            });
+        }
+    }
+    drop(t);
+    let _t = crate::progress::part("parsing");
+    let ok = blocks
+        .par_iter()
+        .zip(outs.into_par_iter())
+        .all(|(b, out)| parse_block(b, &slots, d, label, out).is_some());
+    if !ok {
+        return None;
+    }
+    Some((values, columns, label.is_some().then_some(labels), height))
+}
+
+/// The body cut into blocks of whole lines.
+fn split_blocks(body: &[u8]) -> Vec<&[u8]> {
+    let mut out = Vec::new();
+    let mut start = 0;
+    while start < body.len() {
+        let want = (start + BLOCK_BYTES).min(body.len());
+        let end = if want == body.len() {
+            want
+        } else {
+            match memchr::memchr(b'\n', &body[want..]) {
+                Some(k) => want + k + 1,
+                None => body.len(),
+            }
+        };
+        out.push(&body[start..end]);
+        start = end;
+    }
+    out
+}
+
+fn parse_block(
+    block: &[u8],
+    slots: &[Slot],
+    d: usize,
+    label: Option<&LabelWant<'_>>,
+    mut out: Out<'_>,
+) -> Option<()> {
+    let mut row = 0;
+    let mut field = 0;
+    let mut start = 0;
+    let mut take = |field: usize, row: usize, f: &[u8]| -> Option<()> {
+        match *slots.get(field)? {
+            Slot::Skip => {}
+            Slot::Number(j) => {
+                let v = number(f)?;
+                *out.values.get_mut(row * d + j)? = if v == 0.0 { 0.0 } else { v };
+            }
+            Slot::Text(k) => {
+                if f.is_empty() {
+                    return None;
+                }
+                *out.text[k].get_mut(row)? = std::str::from_utf8(f).ok()?.to_owned();
+            }
+            Slot::Label => {
+                let l = label?;
+                *out.labels.get_mut(row)? = if f == l.normal.as_bytes() {
+                    false
+                } else if f == l.anomaly.as_bytes() {
+                    true
+                } else {
+                    return None;
+                };
+            }
+        }
+        Some(())
+    };
+    for pos in memchr::memchr2_iter(b',', b'\n', block) {
+        take(field, row, &block[start..pos])?;
+        field += 1;
+        if block[pos] == b'\n' {
+            if field != slots.len() {
+                return None;
+            }
+            row += 1;
+            field = 0;
+        }
+        start = pos + 1;
+    }
+    if start < block.len() {
+        take(field, row, &block[start..])?;
+        if field + 1 != slots.len() {
+            return None;
+        }
+    }
+    Some(())
+}
+
+/// Exact powers of ten as binary64 (10^22 is the last exact one).
+const POW10: [f64; 23] = [
+    1e0, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8, 1e9, 1e10, 1e11, 1e12, 1e13, 1e14, 1e15, 1e16,
+    1e17, 1e18, 1e19, 1e20, 1e21, 1e22,
+];
+
+/// A finite number in plain notation, `-?digits[.digits][(e|E)[+-]digits]`.
+///
+/// The common fixed-point case (at most 19 digits, a digit value below 2^53
+/// and at most 22 decimals) is m / 10^k with both operands exact, so the one
+/// IEEE division is the correctly rounded value (Clinger's fast path, the
+/// same one fast-float2 takes). Anything else is validated here and parsed
+/// by fast-float2.
+fn number(field: &[u8]) -> Option<f64> {
+    let neg = field.first() == Some(&b'-');
+    let s = &field[usize::from(neg)..];
+    let mut m: u64 = 0;
+    let mut i = 0;
+    while i < s.len() && s[i].is_ascii_digit() {
+        m = m.wrapping_mul(10).wrapping_add(u64::from(s[i] - b'0'));
+        i += 1;
+    }
+    let int_digits = i;
+    if int_digits == 0 {
+        return None;
+    }
+    let mut decimals = 0;
+    if i < s.len() && s[i] == b'.' {
+        i += 1;
+        let from = i;
+        while i < s.len() && s[i].is_ascii_digit() {
+            m = m.wrapping_mul(10).wrapping_add(u64::from(s[i] - b'0'));
+            i += 1;
+        }
+        decimals = i - from;
+        if decimals == 0 {
+            return None;
+        }
+    }
+    if i == s.len() && int_digits + decimals <= 19 && m < (1 << 53) && decimals <= 22 {
+        let v = m as f64 / POW10[decimals];
+        return Some(if neg { -v } else { v });
+    }
+    if i < s.len() {
+        if !matches!(s[i], b'e' | b'E') {
+            return None;
+        }
+        i += 1;
+        if i < s.len() && matches!(s[i], b'+' | b'-') {
+            i += 1;
+        }
+        let from = i;
+        while i < s.len() && s[i].is_ascii_digit() {
+            i += 1;
+        }
+        if i == from || i != s.len() {
+            return None;
+        }
+    }
+    let v: f64 = fast_float2::parse(field).ok()?;
+    v.is_finite().then_some(v)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn plain_numbers_parse_like_the_standard_library() {
+        for s in [
+            "0",
+            "-0",
+            "1.5",
+            "-20.000001",
+            "123456.654321",
+            "1e5",
+            "2.5E-3",
+            "7e+2",
+            "0.1",
+            "9007199254740993",
+            "2.2250738585072011e-308",
+            "9007199254740991.5",
+            "0.0000000000000000000001",
+            "1234567890123456789",
+            "12345678901234567890",
+            "0.30000000000000004",
+            "-65.658630",
+            "00012.5000",
+        ] {
+            let want: f64 = s.parse().unwrap();
+            assert_eq!(
+                number(s.as_bytes()).map(f64::to_bits),
+                Some(want.to_bits()),
+                "{s}"
+            );
+        }
+        for s in [
+            "", "-", "+1", ".5", "5.", "1e", "1e+", " 1", "1 ", "inf", "NaN", "1,5", "0x10",
+            "1e999", "--1", "1.2.3",
+        ] {
+            assert_eq!(number(s.as_bytes()), None, "{s:?}");
+        }
+    }
+
+    /// The fixed-point shortcut against the standard library's correctly
+    /// rounded parser on random digit strings of every length up to 19.
+    #[test]
+    fn fixed_point_shortcut_is_correctly_rounded() {
+        use rand_chacha::rand_core::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(3);
+        for _ in 0..300_000 {
+            let digits = 1 + (rng.next_u32() % 19) as usize;
+            let mut t: String = (0..digits)
+                .map(|_| char::from(b'0' + (rng.next_u32() % 10) as u8))
+                .collect();
+            let point = (rng.next_u32() as usize) % digits;
+            if point > 0 {
+                t.insert(digits - point, '.');
+            }
+            if rng.next_u32().is_multiple_of(2) {
+                t.insert(0, '-');
+            }
+            let want: f64 = t.parse().unwrap();
+            assert_eq!(
+                number(t.as_bytes()).map(f64::to_bits),
+                Some(want.to_bits()),
+                "{t}"
+            );
+        }
+    }
+
+    #[test]
+    fn blocks_end_at_line_ends_and_cover_the_body() {
+        let line = b"12345,abc,0.5\n";
+        let body: Vec<u8> = line
+            .iter()
+            .copied()
+            .cycle()
+            .take(line.len() * 200_000)
+            .collect();
+        let blocks = split_blocks(&body);
+        assert!(blocks.len() > 1);
+        assert_eq!(blocks.iter().map(|b| b.len()).sum::<usize>(), body.len());
+        for b in &blocks {
+            assert!(b.ends_with(b"\n"));
+        }
+    }
+}
