@@ -565,22 +565,10 @@ fn execute(
     drop(stage);
     let stage = progress.stage("writing the card and figures");
     let mut files = RunFiles::default();
-    let scores_stage = progress.stage("scores.csv");
     let mut run_json = serde_json::to_vec_pretty(&rec)
         .map_err(|e| Error::internal(format!("serialising run.json: {e}")))?;
     run_json.push(b'\n');
     files.add("run.json", run_json);
-    files.add(
-        "scores.csv",
-        scores_csv(
-            &data,
-            &candidates,
-            &splits.validation,
-            &test_rows,
-            &test_scores,
-        ),
-    );
-    drop(scores_stage);
     files.add(SPEC_COPY, plan.spec_bytes.clone());
     let mut ctx = card_context(&plan, &rec, &spec_file, fingerprint);
     let c = &candidates[chosen];
@@ -590,72 +578,92 @@ fn execute(
         is_anomaly: &val_y,
         tau: c.choice.tau,
     };
-    let t = crate::progress::part("validation figures");
-    ctx.plots_validation = vec![
-        plots::precision_recall(val)?,
-        plots::roc(val)?,
-        plots::objective(plan.threshold, val)?,
-        plots::score_histogram(val)?,
-    ];
-    drop(t);
-    let t = crate::progress::part("test figures");
-    if rec.test_opened {
-        let test = plots::SplitScores {
-            split: Part::Test.name(),
-            scores: &test_scores[chosen],
-            is_anomaly: &test_y,
-            tau: c.choice.tau,
-        };
-        ctx.plots_test = vec![
-            plots::precision_recall(test)?,
-            plots::roc(test)?,
-            plots::score_histogram(test)?,
-        ];
-    }
-    drop(t);
-    let t = crate::progress::part("feature figures");
     let set = &fitted_sets[c.set];
-    // A streamed run kept no training rows: its figures show the validation
-    // split's normal rows under the density fitted to the training rows.
-    let (shown_rows, shown_as) = if streamed.is_some() {
-        let normal: Vec<RowId> = splits
-            .validation
-            .iter()
-            .copied()
-            .filter(|r| !data.is_anomaly[r.0 as usize])
-            .collect();
-        (
-            normal,
-            "validation normal rows (the training rows were streamed, not kept)",
-        )
-    } else {
-        (splits.train.clone(), "training rows")
-    };
-    // A histogram needs no more than a systematic sample: every k-th row in
-    // canonical (content-hash) order, so the figure does not depend on the
-    // file's row order and a large run does not copy all its rows again.
-    let stride = shown_rows.len().div_ceil(FIGURE_ROWS).max(1);
-    let sampled: Vec<RowId> = shown_rows.iter().copied().step_by(stride).collect();
-    let shown_as = if stride > 1 {
-        format!(
-            "{shown_as}, one in every {stride} of {} in content-hash order ({} rows)",
-            shown_rows.len(),
-            sampled.len()
-        )
-    } else {
-        shown_as.to_string()
-    };
-    let shown_x = set.apply(&data, &sampled)?;
     let params = c.model.params();
-    ctx.plots_features = set
-        .names()
-        .iter()
-        .enumerate()
-        .map(|(j, name)| {
-            let column: Vec<f64> = shown_x.column(j).to_vec();
-            plots::feature_histogram(j, name, &shown_as, &column, params.marginal(j))
-        })
-        .collect::<Result<_>>()?;
+    // scores.csv, the score figures and the feature figures are independent:
+    // made side by side on all cores, each with the same bytes as alone.
+    let score_figures = || -> Result<(Vec<plots::Plot>, Vec<plots::Plot>)> {
+        let _t = crate::progress::part("score figures");
+        let validation = vec![
+            plots::precision_recall(val)?,
+            plots::roc(val)?,
+            plots::objective(plan.threshold, val)?,
+            plots::score_histogram(val)?,
+        ];
+        let mut test = vec![];
+        if rec.test_opened {
+            let t = plots::SplitScores {
+                split: Part::Test.name(),
+                scores: &test_scores[chosen],
+                is_anomaly: &test_y,
+                tau: c.choice.tau,
+            };
+            test = vec![
+                plots::precision_recall(t)?,
+                plots::roc(t)?,
+                plots::score_histogram(t)?,
+            ];
+        }
+        Ok((validation, test))
+    };
+    let feature_figures = || -> Result<Vec<plots::Plot>> {
+        let _t = crate::progress::part("feature figures");
+        // A streamed run kept no training rows: its figures show the validation
+        // split's normal rows under the density fitted to the training rows.
+        let (shown_rows, shown_as) = if streamed.is_some() {
+            let normal: Vec<RowId> = splits
+                .validation
+                .iter()
+                .copied()
+                .filter(|r| !data.is_anomaly[r.0 as usize])
+                .collect();
+            (
+                normal,
+                "validation normal rows (the training rows were streamed, not kept)",
+            )
+        } else {
+            (splits.train.clone(), "training rows")
+        };
+        // A histogram needs no more than a systematic sample: every k-th row in
+        // canonical (content-hash) order, so the figure does not depend on the
+        // file's row order and a large run does not copy all its rows again.
+        let stride = shown_rows.len().div_ceil(FIGURE_ROWS).max(1);
+        let sampled: Vec<RowId> = shown_rows.iter().copied().step_by(stride).collect();
+        let shown_as = if stride > 1 {
+            format!(
+                "{shown_as}, one in every {stride} of {} in content-hash order ({} rows)",
+                shown_rows.len(),
+                sampled.len()
+            )
+        } else {
+            shown_as.to_string()
+        };
+        let shown_x = set.apply(&data, &sampled)?;
+        use rayon::prelude::*;
+        set.names()
+            .par_iter()
+            .enumerate()
+            .map(|(j, name)| {
+                let column: Vec<f64> = shown_x.column(j).to_vec();
+                plots::feature_histogram(j, name, &shown_as, &column, params.marginal(j))
+            })
+            .collect::<Result<_>>()
+    };
+    let scores = || {
+        let _t = crate::progress::part("scores.csv");
+        scores_csv(
+            &data,
+            &candidates,
+            &splits.validation,
+            &test_rows,
+            &test_scores,
+        )
+    };
+    let (scores, (by_score, by_feature)) =
+        rayon::join(scores, || rayon::join(score_figures, feature_figures));
+    files.add("scores.csv", scores);
+    (ctx.plots_validation, ctx.plots_test) = by_score?;
+    ctx.plots_features = by_feature?;
     for p in ctx
         .plots_validation
         .iter()
@@ -664,7 +672,6 @@ fn execute(
     {
         files.add(&p.file, p.svg.clone().into_bytes());
     }
-    drop(t);
     let _t = crate::progress::part("rendering the card");
     let (md, html) = card::render(&ctx, opts.templates.as_deref())?;
     files.add("card.md", md.into_bytes());

@@ -223,7 +223,10 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
     let n = data.len();
     // Every row in (content, row) order, sorted once: duplicates, the
     // canonical order of each split and the leakage proof all read it.
+    let t = crate::progress::part("sorting content hashes");
     let by_hash = crate::audit::hash::order(hashes);
+    drop(t);
+    let t = crate::progress::part("assigning");
     let mut rows_with_duplicates = 0;
     let mut i = 0;
     while i < n {
@@ -305,7 +308,11 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
     for &i in &by_hash {
         lists[part_of[i as usize] as usize].push(RowId(u64::from(i)));
     }
+    drop(t);
+    let t = crate::progress::part("leakage check");
     crate::audit::leak::check_sorted(&by_hash, &part_of, hashes, data)?;
+    drop(t);
+    let _t = crate::progress::part("test manifest");
     check_counts(&counts)?;
     report.counts = counts;
     if let Some(req) = report.requested {

@@ -80,6 +80,7 @@ pub(super) fn read(
     // maps files the same way), and the recorded hash then fails `verify`.
     let map = unsafe { memmap2::Mmap::map(&file) }.ok()?;
     let bytes: &[u8] = &map;
+    let _t = crate::progress::part("mapping, hashing and parsing");
     let (digest, parsed) = rayon::join(
         || FileDigest {
             bytes: bytes.len() as u64,

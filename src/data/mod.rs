@@ -710,6 +710,7 @@ pub fn inspect(plan: &Plan) -> Result<Inspection> {
         }
     }
 
+    let _t = crate::progress::part("problems and columns");
     let n = is_anomaly.len();
     let x = Array2::from_shape_vec((n, d), xs)
         .map_err(|e| Error::internal(format!("feature matrix: {e}")))?;

@@ -37,36 +37,77 @@ pub(crate) struct Gaussian {
 
 /// Mean and maximum-likelihood covariance (divisor Σw) of the rows, each with
 /// weight `w[i]` (all 1 when `w` is `None`), summed in row order.
+///
+/// Every sum (Σw, each mean, each covariance entry) is its own accumulator
+/// taken over the rows in order, so the work is shared between threads by
+/// accumulator, never by row: the bits do not depend on the thread count.
 pub(crate) fn moments(x: ArrayView2<'_, f64>, w: Option<&[f64]>) -> (Vec<f64>, Vec<f64>) {
+    use rayon::prelude::*;
     let (m, d) = x.dim();
+    let x = x.as_standard_layout();
+    let xs = x.as_slice().expect("a standard-layout array is contiguous");
+    let row = |i: usize| &xs[i * d..(i + 1) * d];
     let weight = |i: usize| w.map_or(1.0, |w| w[i]);
     let total: f64 = (0..m).map(weight).sum();
-    let mut mean = vec![0.0; d];
-    for (i, row) in x.rows().into_iter().enumerate() {
-        let wi = weight(i);
-        for (s, v) in mean.iter_mut().zip(row.iter()) {
-            *s += wi * v;
+    // One task per thread, each streaming the rows once for a contiguous
+    // range of accumulators (balanced by their count).
+    let groups = |weights: &dyn Fn(usize) -> usize| -> Vec<std::ops::Range<usize>> {
+        let tasks = rayon::current_num_threads().clamp(1, d.max(1));
+        let all: usize = (0..d).map(weights).sum();
+        let mut out = Vec::new();
+        let (mut start, mut done) = (0, 0);
+        for a in 0..d {
+            done += weights(a);
+            if done * tasks >= all * (out.len() + 1) || a + 1 == d {
+                out.push(start..a + 1);
+                start = a + 1;
+            }
         }
-    }
+        out
+    };
+    // Means, by column.
+    let mean_parts: Vec<Vec<f64>> = groups(&|_| 1)
+        .into_par_iter()
+        .map(|cols| {
+            let mut acc = vec![0.0; cols.len()];
+            for i in 0..m {
+                let wi = weight(i);
+                for (s, v) in acc.iter_mut().zip(&row(i)[cols.clone()]) {
+                    *s += wi * v;
+                }
+            }
+            acc
+        })
+        .collect();
+    let mut mean: Vec<f64> = mean_parts.concat();
     for s in mean.iter_mut() {
         *s /= total;
     }
-    let mut cov = vec![0.0; d * d];
-    let mut c = vec![0.0; d];
-    for (i, row) in x.rows().into_iter().enumerate() {
-        let wi = weight(i);
-        for (cj, (v, mu)) in c.iter_mut().zip(row.iter().zip(&mean)) {
-            *cj = v - mu;
-        }
-        for a in 0..d {
-            for b in 0..=a {
-                cov[a * d + b] += wi * c[a] * c[b];
+    // The lower triangle, by row a of the covariance: entries (a, 0..=a).
+    let lower: Vec<Vec<f64>> = groups(&|a| a + 1)
+        .into_par_iter()
+        .flat_map_iter(|rows_a| {
+            let mut acc: Vec<Vec<f64>> = rows_a.clone().map(|a| vec![0.0; a + 1]).collect();
+            let mut c = vec![0.0; rows_a.end];
+            for i in 0..m {
+                let wi = weight(i);
+                for ((cj, v), mu) in c.iter_mut().zip(row(i)).zip(&mean) {
+                    *cj = v - mu;
+                }
+                for (a, entries) in rows_a.clone().zip(acc.iter_mut()) {
+                    let wc = wi * c[a];
+                    for (s, cb) in entries.iter_mut().zip(&c) {
+                        *s += wc * cb;
+                    }
+                }
             }
-        }
-    }
-    for a in 0..d {
-        for b in 0..=a {
-            let v = cov[a * d + b] / total;
+            acc
+        })
+        .collect();
+    let mut cov = vec![0.0; d * d];
+    for (a, acc) in lower.iter().enumerate() {
+        for (b, s) in acc.iter().enumerate() {
+            let v = s / total;
             cov[a * d + b] = v;
             cov[b * d + a] = v;
         }
@@ -257,6 +298,54 @@ impl Model for Fitted {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The shared-out sums equal one sequential pass in row order, bit for
+    /// bit, on any number of threads.
+    #[test]
+    fn moments_do_not_depend_on_threads() {
+        let (m, d) = (3001, 7);
+        let x = ndarray::Array2::from_shape_fn((m, d), |(i, j)| {
+            ((i * 31 + j * 17) % 101) as f64 / 7.0 - 3.0 + (i as f64).sqrt() * 1e-3
+        });
+        let w: Vec<f64> = (0..m).map(|i| 0.25 + (i % 5) as f64 * 0.3).collect();
+        for weights in [None, Some(w.as_slice())] {
+            let wt = |i: usize| weights.map_or(1.0, |w| w[i]);
+            let total: f64 = (0..m).map(wt).sum();
+            let mut mean = vec![0.0; d];
+            for i in 0..m {
+                for j in 0..d {
+                    mean[j] += wt(i) * x[(i, j)];
+                }
+            }
+            for v in mean.iter_mut() {
+                *v /= total;
+            }
+            let mut cov = vec![0.0; d * d];
+            for i in 0..m {
+                for a in 0..d {
+                    for b in 0..=a {
+                        cov[a * d + b] += wt(i) * (x[(i, a)] - mean[a]) * (x[(i, b)] - mean[b]);
+                    }
+                }
+            }
+            for a in 0..d {
+                for b in 0..=a {
+                    cov[a * d + b] /= total;
+                    cov[b * d + a] = cov[a * d + b];
+                }
+            }
+            for threads in [1, 2, 3, 8] {
+                let pool = rayon::ThreadPoolBuilder::new()
+                    .num_threads(threads)
+                    .build()
+                    .unwrap();
+                let (mu, c) = pool.install(|| moments(x.view(), weights));
+                let bits = |v: &[f64]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
+                assert_eq!(bits(&mu), bits(&mean), "{threads} threads");
+                assert_eq!(bits(&c), bits(&cov), "{threads} threads");
+            }
+        }
+    }
     use ndarray::{array, Array2};
 
     /// Training rows whose mean and ML covariance are exactly μ and Σ: the
