@@ -794,46 +794,60 @@ fn scores_csv(
         )
         .collect();
     lines.par_sort_unstable_by_key(|(p, r, _)| (*p, *r));
-    // Lines are formatted in blocks on all cores and joined in order: the
-    // bytes do not depend on the thread count.
-    let blocks: Vec<String> = lines
-        .par_chunks(8192)
-        .map(|block| {
-            let mut s = String::with_capacity(block.len() * 64);
-            for &(p, r, k) in block {
-                let i = r.0 as usize;
-                match &data.ids {
-                    Some(ids) if !ids[i].contains([',', '"', '\n', '\r']) => s.push_str(&ids[i]),
-                    Some(ids) => s.push_str(&csv_field(&ids[i])),
-                    None => {
-                        let _ = write!(s, "{}", r.0);
-                    }
-                }
-                s.push(',');
-                s.push_str(p.name());
-                s.push(',');
-                s.push(if data.is_anomaly[i] { '1' } else { '0' });
-                for (ci, c) in candidates.iter().enumerate() {
-                    let v = match p {
-                        Part::Test => test_scores[ci][k as usize],
-                        _ => c.validation_scores[k as usize],
-                    };
-                    s.push(',');
-                    if v.is_finite() {
-                        let _ = write!(s, "{v}");
-                    } else {
-                        s.push_str(&fmt_f64(v));
-                    }
-                }
-                s.push('\n');
+    // Lines are formatted in blocks on all cores and appended in order (the
+    // bytes do not depend on the thread count), a window of blocks at a
+    // time so that the formatted blocks never hold more than a window.
+    let line = |s: &mut String, (p, r, k): (Part, RowId, u32)| {
+        let i = r.0 as usize;
+        match &data.ids {
+            Some(ids) if !ids[i].contains([',', '"', '\n', '\r']) => s.push_str(&ids[i]),
+            Some(ids) => s.push_str(&csv_field(&ids[i])),
+            None => {
+                let _ = write!(s, "{}", r.0);
             }
-            s
-        })
-        .collect();
+        }
+        s.push(',');
+        s.push_str(p.name());
+        s.push(',');
+        s.push(if data.is_anomaly[i] { '1' } else { '0' });
+        for (ci, c) in candidates.iter().enumerate() {
+            let v = match p {
+                Part::Test => test_scores[ci][k as usize],
+                _ => c.validation_scores[k as usize],
+            };
+            s.push(',');
+            if v.is_finite() {
+                let _ = write!(s, "{v}");
+            } else {
+                s.push_str(&fmt_f64(v));
+            }
+        }
+        s.push('\n');
+    };
+    const BLOCK: usize = 8192;
+    const WINDOW: usize = 64 * BLOCK;
+    // Reserved generously (untouched capacity costs no resident memory), so
+    // that the buffer is not reallocated and copied while it grows.
+    let id_len = data
+        .ids
+        .as_ref()
+        .map_or(20, |ids| ids.iter().map(|s| s.len() + 2).max().unwrap_or(0));
     let mut bytes = out.into_bytes();
-    bytes.reserve(blocks.iter().map(String::len).sum());
-    for b in blocks {
-        bytes.extend_from_slice(b.as_bytes());
+    bytes.reserve(lines.len() * (id_len + 14 + 32 * candidates.len()));
+    for window in lines.chunks(WINDOW) {
+        let blocks: Vec<String> = window
+            .par_chunks(BLOCK)
+            .map(|block| {
+                let mut s = String::with_capacity(block.len() * (24 + 20 * candidates.len()));
+                for &l in block {
+                    line(&mut s, l);
+                }
+                s
+            })
+            .collect();
+        for b in blocks {
+            bytes.extend_from_slice(b.as_bytes());
+        }
     }
     bytes
 }

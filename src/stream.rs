@@ -184,6 +184,116 @@ pub fn fit(kind: DetectorKind, m: &Moments, names: &[String]) -> Result<Box<dyn 
 }
 
 /// Rows of the current file read so far, and everything kept.
+/// One batch of rows, column by column.
+struct Columns {
+    numeric: Vec<Vec<Option<f64>>>,
+    labels: Vec<Option<String>>,
+    splits: Vec<Option<String>>,
+    ids: Option<Vec<Option<String>>>,
+}
+
+impl Columns {
+    /// A batch from polars' streaming engine.
+    fn of_frame(df: &DataFrame, plan: &Plan, split_col: &str) -> Result<Self> {
+        let label = plan.label.as_ref().expect("streaming has a label column");
+        let strings = |name: &str| -> Result<Vec<Option<String>>> {
+            Ok(df
+                .column(name)
+                .and_then(|c| c.str().cloned())
+                .map_err(|e| Error::internal(format!("column `{name}`: {e}")))?
+                .iter()
+                .map(|v| v.map(str::to_string))
+                .collect())
+        };
+        let mut numeric: Vec<Vec<Option<f64>>> = Vec::with_capacity(plan.columns.len());
+        for c in &plan.columns {
+            numeric.push(
+                df.column(&c.name)
+                    .and_then(|c| c.f64().cloned())
+                    .map_err(|e| Error::internal(format!("column `{}`: {e}", c.name)))?
+                    .iter()
+                    .collect(),
+            );
+        }
+        Ok(Columns {
+            numeric,
+            labels: strings(&label.column.name)?,
+            splits: strings(split_col)?,
+            ids: match &plan.id_column {
+                Some(c) => Some(strings(&c.name)?),
+                None => None,
+            },
+        })
+    }
+
+    /// A chunk from the plain-CSV reader: text columns label, split, id.
+    fn of_plain(parsed: data::fast::Parsed, d: usize) -> Self {
+        let (values, text, _, height) = parsed;
+        let numeric = (0..d)
+            .map(|j| (0..height).map(|i| Some(values[i * d + j])).collect())
+            .collect();
+        let mut text = text.into_iter().map(|t| t.into_iter().map(Some).collect());
+        let labels = text.next().unwrap_or_default();
+        let splits = text.next().unwrap_or_default();
+        Columns {
+            numeric,
+            labels,
+            splits,
+            ids: text.next(),
+        }
+    }
+}
+
+/// What [`Acc`] held before a file, to undo the file when its plain-CSV
+/// reading gives up and polars reads it again.
+struct Mark {
+    lens: [usize; 6],
+    pending: Vec<f64>,
+    pending_origin: Vec<Origin>,
+    train_counts: Counts,
+    moments: Vec<Moments>,
+    dropped: Dropped,
+}
+
+impl Acc {
+    fn mark(&self) -> Mark {
+        Mark {
+            lens: [
+                self.x.len(),
+                self.is_anomaly.len(),
+                self.origin.len(),
+                self.ids.as_ref().map_or(0, Vec::len),
+                self.hashes.len(),
+                self.train_hashes.len(),
+            ],
+            pending: self.pending.clone(),
+            pending_origin: self.pending_origin.clone(),
+            train_counts: self.train_counts,
+            moments: self.moments.clone(),
+            dropped: self.dropped.clone(),
+        }
+    }
+
+    fn reset(&mut self, m: Mark) {
+        self.x.truncate(m.lens[0]);
+        self.is_anomaly.truncate(m.lens[1]);
+        self.parts.truncate(m.lens[1]);
+        self.origin.truncate(m.lens[2]);
+        if let Some(ids) = self.ids.as_mut() {
+            ids.truncate(m.lens[3]);
+        }
+        self.hashes.truncate(m.lens[4]);
+        self.train_hashes.truncate(m.lens[5]);
+        self.pending = m.pending;
+        self.pending_origin = m.pending_origin;
+        self.train_counts = m.train_counts;
+        self.moments = m.moments;
+        self.dropped = m.dropped;
+        self.row = 0;
+        self.error = None;
+    }
+}
+
 struct Acc {
     file: u32,
     row: u64,
@@ -266,35 +376,16 @@ impl Ctx<'_> {
         Ok(())
     }
 
-    fn batch(&self, acc: &mut Acc, df: &DataFrame, split_col: &str) -> Result<()> {
-        let n = df.height();
+    fn batch(&self, acc: &mut Acc, cols: Columns, split_col: &str) -> Result<()> {
+        let Columns {
+            numeric,
+            labels,
+            splits,
+            ids,
+        } = cols;
+        let n = labels.len();
         let plan = self.plan;
         let label = plan.label.as_ref().expect("streaming has a label column");
-        let strings = |name: &str| -> Result<Vec<Option<String>>> {
-            Ok(df
-                .column(name)
-                .and_then(|c| c.str().cloned())
-                .map_err(|e| Error::internal(format!("column `{name}`: {e}")))?
-                .iter()
-                .map(|v| v.map(str::to_string))
-                .collect())
-        };
-        let mut numeric: Vec<Vec<Option<f64>>> = Vec::with_capacity(self.ncols);
-        for c in &plan.columns {
-            numeric.push(
-                df.column(&c.name)
-                    .and_then(|c| c.f64().cloned())
-                    .map_err(|e| Error::internal(format!("column `{}`: {e}", c.name)))?
-                    .iter()
-                    .collect(),
-            );
-        }
-        let labels = strings(&label.column.name)?;
-        let splits = strings(split_col)?;
-        let ids = match &plan.id_column {
-            Some(c) => Some(strings(&c.name)?),
-            None => None,
-        };
         // Check every row first, so that an error names its lines.
         let mut keep = Vec::with_capacity(n);
         let mut bad_label = Vec::new();
@@ -435,6 +526,62 @@ impl Ctx<'_> {
     }
 }
 
+/// Streams one CSV file through the plain-CSV reader, chunk by chunk.
+/// `false` (with the state as it was before the file) when the file is not
+/// plain CSV or a chunk is refused: polars then reads it and reports any
+/// problem in its own words and places.
+fn plain_file(
+    plan: &Plan,
+    acc: &Arc<Mutex<Acc>>,
+    fitted: &[FittedFeatures],
+    files: &mut [SourceFile],
+    fi: usize,
+    split: &crate::spec::Column,
+    counter: &crate::progress::Stage,
+) -> bool {
+    let label = plan.label.as_ref().expect("checked by the spec");
+    let numeric: Vec<&crate::spec::Column> = plan.columns.iter().collect();
+    let mut text: Vec<&crate::spec::Column> = vec![&label.column, split];
+    text.extend(plan.id_column.iter());
+    let Some(mut chunks) = data::fast::Chunks::open(&files[fi].path, &numeric, &text, None) else {
+        return false;
+    };
+    let mut a = acc.lock().expect("not poisoned");
+    let mark = a.mark();
+    let ctx = Ctx {
+        plan,
+        fitted,
+        files: &*files,
+        ncols: numeric.len(),
+    };
+    let done = loop {
+        match chunks.next() {
+            Ok(Some(parsed)) => {
+                let n = parsed.3 as u64;
+                if ctx
+                    .batch(
+                        &mut a,
+                        Columns::of_plain(parsed, numeric.len()),
+                        &split.name,
+                    )
+                    .is_err()
+                {
+                    break false;
+                }
+                counter.add(n);
+            }
+            Ok(None) => break true,
+            Err(data::fast::NotPlain) => break false,
+        }
+    };
+    if done {
+        files[fi].rows = a.row as usize;
+    } else {
+        a.reset(mark);
+    }
+    done
+}
+
 /// Streams the plan's one labelled source.
 pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
     let SplitPlan::FromColumn { column: split, .. } = &plan.split else {
@@ -512,6 +659,11 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
             a.file = fi as u32;
             a.row = 0;
         }
+        if file.format == Format::Csv
+            && plain_file(plan, &acc, &fitted, &mut files, fi, split, &counter)
+        {
+            continue;
+        }
         let err = |e: PolarsError| Error::Csv {
             path: file.path.clone(),
             message: e.to_string(),
@@ -560,7 +712,9 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
                     files: &files,
                     ncols,
                 };
-                if let Err(e) = ctx.batch(&mut a, &df, &split_col) {
+                let batch = Columns::of_frame(&df, &plan, &split_col)
+                    .and_then(|cols| ctx.batch(&mut a, cols, &split_col));
+                if let Err(e) = batch {
                     a.error = Some(e);
                     return Ok(true);
                 }

@@ -43,7 +43,7 @@ pub(super) struct Plain {
 
 /// The label column among the text columns: its index there and its two
 /// declared values. A row with any other value sends the file to polars.
-pub(super) struct LabelWant<'a> {
+pub(crate) struct LabelWant<'a> {
     pub index: usize,
     pub normal: &'a str,
     pub anomaly: &'a str,
@@ -98,7 +98,8 @@ pub(super) fn read(
     })
 }
 
-type Parsed = (Vec<f64>, Vec<Vec<String>>, Option<Vec<bool>>, usize);
+/// Parsed rows: row-major values, text columns, resolved labels, height.
+pub(crate) type Parsed = (Vec<f64>, Vec<Vec<String>>, Option<Vec<bool>>, usize);
 
 fn parse(
     bytes: &[u8],
@@ -110,7 +111,23 @@ fn parse(
         return None;
     }
     let header_end = memchr::memchr(b'\n', bytes)?;
-    let header: Vec<&[u8]> = bytes[..header_end].split(|&b| b == b',').collect();
+    let slots = slots(&bytes[..header_end], numeric, text, label)?;
+    let body = &bytes[header_end + 1..];
+    if body.is_empty() {
+        return None;
+    }
+    parse_body(body, &slots, numeric.len(), text.len(), label)
+}
+
+/// Where each field of the header line goes, or `None` when a wanted column
+/// is missing or repeated.
+fn slots(
+    header: &[u8],
+    numeric: &[&Column],
+    text: &[&Column],
+    label: Option<&LabelWant<'_>>,
+) -> Option<Vec<Slot>> {
+    let header: Vec<&[u8]> = header.split(|&b| b == b',').collect();
     let mut slots = vec![Slot::Skip; header.len()];
     let wanted = numeric
         .iter()
@@ -135,23 +152,26 @@ fn parse(
         }
         slots[i] = slot;
     }
-    let body = &bytes[header_end + 1..];
-    if body.is_empty() {
-        return None;
-    }
+    Some(slots)
+}
+
+/// Parses whole lines on all cores.
+fn parse_body(
+    body: &[u8],
+    slots: &[Slot],
+    d: usize,
+    ntext: usize,
+    label: Option<&LabelWant<'_>>,
+) -> Option<Parsed> {
     let blocks: Vec<&[u8]> = split_blocks(body);
-    let t = crate::progress::part("counting lines");
     let heights: Vec<usize> = blocks
         .par_iter()
         .map(|b| memchr::memchr_iter(b'\n', b).count() + usize::from(!b.ends_with(b"\n")))
         .collect();
     let height: usize = heights.iter().sum();
-    drop(t);
-    let t = crate::progress::part("allocating");
-    let d = numeric.len();
     let mut values = vec![0.0; height * d];
     let mut labels = vec![false; if label.is_some() { height } else { 0 }];
-    let mut columns: Vec<Vec<String>> = (0..text.len())
+    let mut columns: Vec<Vec<String>> = (0..ntext)
         .map(|k| match label {
             Some(l) if l.index == k => Vec::new(),
             _ => vec![String::new(); height],
@@ -184,16 +204,129 @@ fn parse(
             });
         }
     }
-    drop(t);
-    let _t = crate::progress::part("parsing");
     let ok = blocks
         .par_iter()
         .zip(outs.into_par_iter())
-        .all(|(b, out)| parse_block(b, &slots, d, label, out).is_some());
+        .all(|(b, out)| parse_block(b, slots, d, label, out).is_some());
     if !ok {
         return None;
     }
     Some((values, columns, label.is_some().then_some(labels), height))
+}
+
+/// Bytes read per chunk by [`Chunks`].
+const CHUNK_BYTES: usize = 32 << 20;
+
+/// A plain CSV file read chunk by chunk (for `data.stream`): memory stays at
+/// a chunk whatever the file's size. Each chunk is parsed on all cores like
+/// a whole file; any line outside the plain case makes [`Chunks::next`]
+/// return `Err(NotPlain)`, and the caller reads the file with polars instead.
+pub(crate) struct Chunks<'a> {
+    file: std::fs::File,
+    slots: Vec<Slot>,
+    d: usize,
+    ntext: usize,
+    label: Option<LabelWant<'a>>,
+    carry: Vec<u8>,
+    chunk: usize,
+    at_end: bool,
+}
+
+/// The file is not plain CSV (from this chunk on).
+#[derive(Debug)]
+pub(crate) struct NotPlain;
+
+impl<'a> Chunks<'a> {
+    /// Opens the file and reads its header line; `None` outside the plain case.
+    pub(crate) fn open(
+        path: &Path,
+        numeric: &[&Column],
+        text: &[&Column],
+        label: Option<LabelWant<'a>>,
+    ) -> Option<Self> {
+        use std::io::Read;
+        let mut file = std::fs::File::open(path).ok()?;
+        let mut carry = Vec::new();
+        let header_end = loop {
+            if let Some(k) = memchr::memchr(b'\n', &carry) {
+                break k;
+            }
+            let mut buf = vec![0u8; 1 << 16];
+            let got = file.read(&mut buf).ok()?;
+            if got == 0 {
+                return None;
+            }
+            carry.extend_from_slice(&buf[..got]);
+        };
+        let header = &carry[..header_end];
+        if header.starts_with(b"\xEF\xBB\xBF") || memchr::memchr2(b'"', b'\r', header).is_some() {
+            return None;
+        }
+        let slots = slots(header, numeric, text, label.as_ref())?;
+        carry.drain(..=header_end);
+        // Test hook: smaller chunks, to exercise chunk boundaries and the
+        // fall-back to polars after many chunks.
+        let chunk = std::env::var("ANOMARK_CHUNK_BYTES")
+            .ok()
+            .and_then(|v| v.parse::<usize>().ok())
+            .filter(|&v| v > 0)
+            .unwrap_or(CHUNK_BYTES);
+        Some(Chunks {
+            file,
+            slots,
+            d: numeric.len(),
+            ntext: text.len(),
+            label,
+            carry,
+            chunk,
+            at_end: false,
+        })
+    }
+
+    /// The next chunk of whole lines, parsed; `Ok(None)` at the end of the file.
+    pub(crate) fn next(&mut self) -> Result<Option<Parsed>, NotPlain> {
+        use std::io::Read;
+        loop {
+            if self.at_end {
+                if self.carry.is_empty() {
+                    return Ok(None);
+                }
+                let body = std::mem::take(&mut self.carry);
+                return self.parse(&body).map(Some);
+            }
+            let start = self.carry.len();
+            self.carry.resize(start + self.chunk, 0);
+            let mut filled = start;
+            while filled < self.carry.len() {
+                match self.file.read(&mut self.carry[filled..]) {
+                    Ok(0) => {
+                        self.at_end = true;
+                        break;
+                    }
+                    Ok(k) => filled += k,
+                    Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
+                    Err(_) => return Err(NotPlain),
+                }
+            }
+            self.carry.truncate(filled);
+            if self.at_end {
+                continue;
+            }
+            // Whole lines now; the partial last line waits for the next chunk.
+            if let Some(k) = memchr::memrchr(b'\n', &self.carry) {
+                let rest = self.carry.split_off(k + 1);
+                let body = std::mem::replace(&mut self.carry, rest);
+                return self.parse(&body).map(Some);
+            }
+        }
+    }
+
+    fn parse(&self, body: &[u8]) -> Result<Parsed, NotPlain> {
+        if memchr::memchr2(b'"', b'\r', body).is_some() {
+            return Err(NotPlain);
+        }
+        parse_body(body, &self.slots, self.d, self.ntext, self.label.as_ref()).ok_or(NotPlain)
+    }
 }
 
 /// The body cut into blocks of whole lines.

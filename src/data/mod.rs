@@ -21,7 +21,7 @@ use crate::audit::hash::{self, FileDigest};
 use crate::error::{Error, Result, RowUnit};
 use crate::spec::{Column, MissingPolicy, Plan, SourcePlan};
 
-mod fast;
+pub(crate) mod fast;
 
 /// How many offending places an error lists.
 const SHOWN: usize = 5;
