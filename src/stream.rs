@@ -1,5 +1,8 @@
-//! Data larger than memory (`data.stream: true`): the source is read by
-//! polars' streaming engine in batches; training rows are hashed and folded
+//! Data larger than memory (`data.stream: true`): a plain CSV file is read
+//! in fixed-size chunks by the plain-CSV reader (`data::fast::Chunks`), and
+//! anything else (Parquet, or a CSV file the plain reader gives up on, which
+//! is then read again from its first line) by polars' streaming engine in
+//! batches. Either way, training rows are hashed and folded
 //! into mergeable sufficient statistics (count, mean and co-moment matrix per
 //! feature set), block by block, and then dropped. Only the validation and
 //! test rows, and 32 bytes of content hash per training row (for the train

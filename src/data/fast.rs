@@ -128,6 +128,12 @@ fn slots(
     label: Option<&LabelWant<'_>>,
 ) -> Option<Vec<Slot>> {
     let header: Vec<&[u8]> = header.split(|&b| b == b',').collect();
+    // Any repeated name, wanted or not: the general reader decides.
+    let mut names = header.clone();
+    names.sort_unstable();
+    if names.windows(2).any(|w| w[0] == w[1]) {
+        return None;
+    }
     let mut slots = vec![Slot::Skip; header.len()];
     let wanted = numeric
         .iter()
@@ -141,13 +147,9 @@ fn slots(
             (c, slot)
         }));
     for (c, slot) in wanted {
-        let mut at = header
-            .iter()
-            .enumerate()
-            .filter(|(_, h)| **h == c.name.as_bytes());
-        let (i, _) = at.next()?;
-        // A repeated header name, or a column wanted twice: the general reader decides.
-        if at.next().is_some() || !matches!(slots[i], Slot::Skip) {
+        let i = header.iter().position(|h| *h == c.name.as_bytes())?;
+        // A column wanted twice: the general reader decides.
+        if !matches!(slots[i], Slot::Skip) {
             return None;
         }
         slots[i] = slot;

@@ -1014,6 +1014,19 @@ mod tests {
                 "case {n}: {body:?}"
             );
         }
+        for (n, head) in ["id,a,label,split,x,x\n", "id,a,label,split,,\n"]
+            .iter()
+            .enumerate()
+        {
+            let path = dir.path().join(format!("h{n}.csv"));
+            std::fs::write(&path, format!("{head}r1,1.5,ok,train,1,2\n")).unwrap();
+            let plan = plan_for(dir.path(), &format!("h{n}.csv"), &["a"]);
+            let numeric: Vec<&Column> = plan.columns.iter().collect();
+            assert!(
+                fast::read(&path, &numeric, &plan.text_columns(), label()).is_none(),
+                "header {head:?}"
+            );
+        }
         let path = dir.path().join("bom.csv");
         std::fs::write(&path, format!("\u{feff}{head}r1,1.5,ok,train\n")).unwrap();
         let plan = plan_for(dir.path(), "bom.csv", &["a"]);
