@@ -190,6 +190,122 @@ fn ranking(
     (ap, auc)
 }
 
+/// What a bootstrap replicate needs, fixed once per split: the tie groups
+/// of ranking positions that hold an anomaly, and for every row the bucket
+/// its draws are counted in. A replicate then counts draws in a few thousand
+/// buckets (in cache) instead of weighting every ranking position.
+struct Buckets {
+    /// Tie groups holding an anomaly, in ranking order, as indices into
+    /// `bounds`: the group is ranks `bounds[start] .. bounds[end]`.
+    groups: Vec<(usize, usize)>,
+    /// Sorted distinct cut ranks: every such group's start and end, and the
+    /// number of flagged positions.
+    bounds: Vec<usize>,
+    /// `bounds` index of the flagged count.
+    flagged: usize,
+    /// Per anomaly (row order within its class): its group.
+    pos_group: Vec<u32>,
+    /// Per normal row (row order within its class): its bucket, the number
+    /// of cut ranks at or below its rank; bucket `j` holds ranks
+    /// `bounds[j-1] .. bounds[j]`.
+    neg_bucket: Vec<u32>,
+    /// The same in 16 bits when the buckets allow it: the table is read at a
+    /// random place for every draw, and half the size stays in cache.
+    neg_bucket16: Option<Vec<u16>>,
+}
+
+impl Buckets {
+    fn new(r: &Ranked, pos_rank: &[u32], neg_rank: &[u32], flagged: usize) -> Self {
+        let mut spans = Vec::new();
+        let mut start = 0;
+        for &end in &r.ends {
+            if r.anomalous[start..end].iter().any(|&a| a) {
+                spans.push((start, end));
+            }
+            start = end;
+        }
+        let mut bounds: Vec<usize> = spans
+            .iter()
+            .flat_map(|&(s, e)| [s, e])
+            .chain([flagged])
+            .collect();
+        bounds.sort_unstable();
+        bounds.dedup();
+        let at = |rank: usize| bounds.partition_point(|&b| b < rank);
+        let groups: Vec<(usize, usize)> = spans.iter().map(|&(s, e)| (at(s), at(e))).collect();
+        let group_of = |rank: usize| spans.partition_point(|&(_, e)| e <= rank) as u32;
+        let neg_bucket: Vec<u32> = neg_rank
+            .iter()
+            .map(|&k| bounds.partition_point(|&b| b <= k as usize) as u32)
+            .collect();
+        let neg_bucket16 = (bounds.len() < usize::from(u16::MAX))
+            .then(|| neg_bucket.iter().map(|&b| b as u16).collect());
+        Buckets {
+            flagged: at(flagged),
+            pos_group: pos_rank.iter().map(|&k| group_of(k as usize)).collect(),
+            neg_bucket,
+            neg_bucket16,
+            groups,
+            bounds,
+        }
+    }
+
+    /// F1 at τ, average precision and ROC AUC of one replicate, from its
+    /// draw counts per anomaly group (`p_in`) and per normal bucket (`n_in`).
+    ///
+    /// The same arithmetic as [`ranking`] with integer weights: every running
+    /// count is an exact integer in binary64, and a group without a drawn
+    /// anomaly adds exactly zero to both sums, so the bits are the same (a
+    /// test compares them).
+    fn replicate(&self, p_in: &[u64], n_in: &[u64], p_total: f64, n_total: f64) -> (f64, f64, f64) {
+        let (mut ap, mut u) = (0.0, 0.0);
+        let (mut pos_above, mut neg_above) = (0u64, 0u64);
+        let (mut tp_flagged, mut fp_flagged) = (0u64, 0u64);
+        let mut bucket = 0; // next normal bucket not yet counted
+        for (g, &(start, end)) in self.groups.iter().enumerate() {
+            // Buckets 0..=start hold the ranks before the group.
+            while bucket <= start {
+                neg_above += n_in[bucket];
+                bucket += 1;
+            }
+            let mut n = 0;
+            while bucket <= end {
+                n += n_in[bucket];
+                bucket += 1;
+            }
+            let p = p_in[g];
+            if p > 0 {
+                let (pf, nf) = (p as f64, n as f64);
+                let (tp, fp) = ((pos_above + p) as f64, (neg_above + n) as f64);
+                ap += (pf / p_total) * (tp / (tp + fp));
+                u += pf * (n_total - neg_above as f64 - nf) + 0.5 * pf * nf;
+            }
+            pos_above += p;
+            neg_above += n;
+            if end <= self.flagged {
+                tp_flagged = pos_above;
+            }
+        }
+        // Normal draws above the flagged count: buckets 0..=flagged.
+        for &c in &n_in[..=self.flagged.min(n_in.len() - 1)] {
+            fp_flagged += c;
+        }
+        let c = Confusion {
+            tp: tp_flagged,
+            fp: fp_flagged,
+            fn_: p_total as u64 - tp_flagged,
+            tn: n_total as u64 - fp_flagged,
+        };
+        let ap = (p_total > 0.0).then_some(ap);
+        let auc = (p_total > 0.0 && n_total > 0.0).then(|| u / (p_total * n_total));
+        (
+            c.f1().unwrap_or(f64::NAN),
+            ap.unwrap_or(f64::NAN),
+            auc.unwrap_or(f64::NAN),
+        )
+    }
+}
+
 /// Unweighted average precision and ROC AUC.
 fn ap_auc(scores: &[f64], is_anomaly: &[bool]) -> (Option<f64>, Option<f64>) {
     let p = is_anomaly.iter().filter(|&&a| a).count() as f64;
@@ -281,36 +397,42 @@ pub fn bootstrap(
     let pos_rank: Vec<u32> = pos.iter().map(|&i| rank[i]).collect();
     let neg_rank: Vec<u32> = neg.iter().map(|&i| rank[i]).collect();
     let flagged = r.order.iter().take_while(|&&i| scores[i] > tau).count();
+    let buckets = Buckets::new(&r, &pos_rank, &neg_rank, flagged);
     let (p_total, n_total) = (pos.len() as f64, neg.len() as f64);
     let reps: Vec<(f64, f64, f64)> = (0..plan.replicates)
         .into_par_iter()
         .map_init(
-            || vec![0u32; scores.len()],
-            |w, b| {
-                w.fill(0);
-                let mut rng = crate::rng::seeded(plan.seed, u64::from(b));
-                for stratum in [&pos_rank, &neg_rank] {
-                    let len = stratum.len() as u64;
-                    for _ in 0..stratum.len() {
-                        w[stratum[crate::rng::below(&mut rng, len) as usize] as usize] += 1;
-                    }
-                }
-                let mut c = Confusion::default();
-                for (k, (&wk, &a)) in w.iter().zip(&r.anomalous).enumerate() {
-                    let wk = u64::from(wk);
-                    match (k < flagged, a) {
-                        (true, true) => c.tp += wk,
-                        (true, false) => c.fp += wk,
-                        (false, true) => c.fn_ += wk,
-                        (false, false) => c.tn += wk,
-                    }
-                }
-                let (ap, auc) = ranking(&r, |k| f64::from(w[k]), p_total, n_total);
+            || {
                 (
-                    c.f1().unwrap_or(f64::NAN),
-                    ap.unwrap_or(f64::NAN),
-                    auc.unwrap_or(f64::NAN),
+                    vec![0u64; buckets.groups.len()],
+                    vec![0u64; buckets.bounds.len() + 1],
                 )
+            },
+            |(p_in, n_in), b| {
+                p_in.fill(0);
+                n_in.fill(0);
+                let mut rng = crate::rng::seeded(plan.seed, u64::from(b));
+                let len = pos_rank.len() as u64;
+                for _ in 0..pos_rank.len() {
+                    p_in[buckets.pos_group[crate::rng::below(&mut rng, len) as usize] as usize] +=
+                        1;
+                }
+                let len = neg_rank.len() as u64;
+                match &buckets.neg_bucket16 {
+                    Some(table) => {
+                        for _ in 0..neg_rank.len() {
+                            n_in[usize::from(table[crate::rng::below(&mut rng, len) as usize])] +=
+                                1;
+                        }
+                    }
+                    None => {
+                        for _ in 0..neg_rank.len() {
+                            n_in[buckets.neg_bucket[crate::rng::below(&mut rng, len) as usize]
+                                as usize] += 1;
+                        }
+                    }
+                }
+                buckets.replicate(p_in, n_in, p_total, n_total)
             },
         )
         .collect();
@@ -573,6 +695,72 @@ mod tests {
         assert!((c.specificity().unwrap() - 0.9984924623115577).abs() < 1e-12);
         assert!((c.f_beta(2.0).unwrap() - 0.7843137254901961).abs() < 1e-12);
         assert!((c.f_beta(0.5).unwrap() - 0.7407407407407407).abs() < 1e-12);
+    }
+
+    /// A replicate counted by buckets gives the same bits as weighting every
+    /// ranking position by its draws and walking them all ([`ranking`] and a
+    /// full confusion count), on scores with many ties.
+    #[test]
+    fn bucketed_replicate_equals_the_weighted_pass() {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(21);
+        for case in 0..300 {
+            let n = 2 + (rng.next_u32() % 400) as usize;
+            let levels = 1 + rng.next_u32() % 50;
+            let mut y: Vec<bool> = (0..n).map(|_| rng.next_u32().is_multiple_of(7)).collect();
+            y[0] = true;
+            y[1] = false;
+            let s: Vec<f64> = (0..n)
+                .map(|i| f64::from(rng.next_u32() % levels) + if y[i] { 1.5 } else { 0.0 })
+                .collect();
+            let tau = f64::from(rng.next_u32() % (levels + 2)) - 0.5;
+            let r = ranked(&s, &y);
+            let mut rank = vec![0u32; n];
+            for (k, &i) in r.order.iter().enumerate() {
+                rank[i] = k as u32;
+            }
+            let pos: Vec<u32> = (0..n).filter(|&i| y[i]).map(|i| rank[i]).collect();
+            let neg: Vec<u32> = (0..n).filter(|&i| !y[i]).map(|i| rank[i]).collect();
+            let flagged = r.order.iter().take_while(|&&i| s[i] > tau).count();
+            let b = Buckets::new(&r, &pos, &neg, flagged);
+            // One replicate's draws, counted both ways.
+            let mut w = vec![0u32; n];
+            let mut p_in = vec![0u64; b.groups.len()];
+            let mut n_in = vec![0u64; b.bounds.len() + 1];
+            for (k, stratum) in [&pos, &neg].into_iter().enumerate() {
+                for _ in 0..stratum.len() {
+                    let i = (rng.next_u32() as usize) % stratum.len();
+                    w[stratum[i] as usize] += 1;
+                    if k == 0 {
+                        p_in[b.pos_group[i] as usize] += 1;
+                    } else {
+                        n_in[b.neg_bucket[i] as usize] += 1;
+                    }
+                }
+            }
+            let (pt, nt) = (pos.len() as f64, neg.len() as f64);
+            let mut c = Confusion::default();
+            for (k, (&wk, &a)) in w.iter().zip(&r.anomalous).enumerate() {
+                let wk = u64::from(wk);
+                match (k < flagged, a) {
+                    (true, true) => c.tp += wk,
+                    (true, false) => c.fp += wk,
+                    (false, true) => c.fn_ += wk,
+                    (false, false) => c.tn += wk,
+                }
+            }
+            let (ap, auc) = ranking(&r, |k| f64::from(w[k]), pt, nt);
+            let want = (
+                c.f1().unwrap_or(f64::NAN).to_bits(),
+                ap.unwrap_or(f64::NAN).to_bits(),
+                auc.unwrap_or(f64::NAN).to_bits(),
+            );
+            let got = b.replicate(&p_in, &n_in, pt, nt);
+            assert_eq!(
+                (got.0.to_bits(), got.1.to_bits(), got.2.to_bits()),
+                want,
+                "case {case}: n {n}, flagged {flagged}"
+            );
+        }
     }
 
     /// REFERENCES.md section 11 (a): deterministic invariants of the bootstrap.
