@@ -322,6 +322,19 @@ struct FileFrame {
     height: usize,
 }
 
+impl FileFrame {
+    /// A frame of the general reader, columns still to be filled.
+    fn general(height: usize) -> Self {
+        FileFrame {
+            plain: None,
+            numeric: vec![],
+            not_number: vec![],
+            text: vec![],
+            height,
+        }
+    }
+}
+
 fn read_csv(
     path: &Path,
     plan: &Plan,
@@ -403,13 +416,7 @@ fn read_csv_polars(
     if !as_text {
         return typed_frame(&df, path, numeric, text);
     }
-    let mut frame = FileFrame {
-        plain: None,
-        numeric: vec![],
-        not_number: vec![],
-        text: vec![],
-        height: df.height(),
-    };
+    let mut frame = FileFrame::general(df.height());
     for c in numeric {
         let values = text_values(&df, path, &c.name)?;
         let mut col = Vec::with_capacity(values.len());
@@ -507,13 +514,7 @@ fn typed_frame(
     numeric: &[&Column],
     text: &[&Column],
 ) -> Result<FileFrame> {
-    let mut frame = FileFrame {
-        plain: None,
-        numeric: vec![],
-        not_number: vec![],
-        text: vec![],
-        height: df.height(),
-    };
+    let mut frame = FileFrame::general(df.height());
     for c in numeric {
         frame.numeric.push(f64_values(df, path, &c.name)?);
         frame.not_number.push(vec![]);
