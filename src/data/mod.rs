@@ -4,7 +4,10 @@
 //! This module owns reading and checking values. It knows nothing of splits or
 //! models: the split, group and time columns are handed on as text. Sources are
 //! CSV or Parquet files, globs, or directories of Parquet files (read through
-//! polars' lazy scans). [`inspect`] gathers every value problem; [`load`]
+//! polars' lazy scans). A CSV file in the plain case is read by the parallel
+//! reader in `fast`, which gives the same values; any other file, and every
+//! message about a bad value, goes through polars. [`inspect`] gathers every
+//! value problem; [`load`]
 //! refuses the first one and applies the missing-value policy. Every refusal
 //! names the file, the column and the first offending places: file lines for
 //! CSV (the header is line 1, so data row `i` is line `i + 2`; a quoted field
