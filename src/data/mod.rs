@@ -1001,20 +1001,22 @@ mod tests {
             "r1,1.5,ok,train\nr2,2,OK,test\n",
             "r1,1.5,ok,train\nr2,2,ok,test\nr3",
         ];
-        let label = || {
-            Some(fast::LabelWant {
+        // Whether the plain reader takes this file text.
+        let plain = |name: &str, text: String| {
+            let path = dir.path().join(name);
+            std::fs::write(&path, text).unwrap();
+            let plan = plan_for(dir.path(), name, &["a"]);
+            let numeric: Vec<&Column> = plan.columns.iter().collect();
+            let label = fast::LabelWant {
                 index: 0,
                 normal: "ok",
                 anomaly: "bad",
-            })
+            };
+            fast::read(&path, &numeric, &plan.text_columns(), Some(label)).is_some()
         };
         for (n, body) in cases.iter().enumerate() {
-            let path = dir.path().join(format!("c{n}.csv"));
-            std::fs::write(&path, format!("{head}{body}")).unwrap();
-            let plan = plan_for(dir.path(), &format!("c{n}.csv"), &["a"]);
-            let numeric: Vec<&Column> = plan.columns.iter().collect();
             assert!(
-                fast::read(&path, &numeric, &plan.text_columns(), label()).is_none(),
+                !plain(&format!("c{n}.csv"), format!("{head}{body}")),
                 "case {n}: {body:?}"
             );
         }
@@ -1022,19 +1024,14 @@ mod tests {
             .iter()
             .enumerate()
         {
-            let path = dir.path().join(format!("h{n}.csv"));
-            std::fs::write(&path, format!("{head}r1,1.5,ok,train,1,2\n")).unwrap();
-            let plan = plan_for(dir.path(), &format!("h{n}.csv"), &["a"]);
-            let numeric: Vec<&Column> = plan.columns.iter().collect();
             assert!(
-                fast::read(&path, &numeric, &plan.text_columns(), label()).is_none(),
+                !plain(&format!("h{n}.csv"), format!("{head}r1,1.5,ok,train,1,2\n")),
                 "header {head:?}"
             );
         }
-        let path = dir.path().join("bom.csv");
-        std::fs::write(&path, format!("\u{feff}{head}r1,1.5,ok,train\n")).unwrap();
-        let plan = plan_for(dir.path(), "bom.csv", &["a"]);
-        let numeric: Vec<&Column> = plan.columns.iter().collect();
-        assert!(fast::read(&path, &numeric, &plan.text_columns(), label()).is_none());
+        assert!(!plain(
+            "bom.csv",
+            format!("\u{feff}{head}r1,1.5,ok,train\n")
+        ));
     }
 }
