@@ -10,7 +10,7 @@ use std::time::{Instant, SystemTime};
 
 use ndarray::Array2;
 
-use crate::audit::hash::{self, ContentHash};
+use crate::audit::hash;
 use crate::card::plots;
 use crate::card::{
     self, CardContext, FeatureRow, FeatureSetRow, InputRow, MetricRow, SplitRow, ThresholdRow,
@@ -388,8 +388,9 @@ fn execute(
     ]
     .iter()
     .map(|(p, rows)| {
-        let hs: Vec<ContentHash> = rows.iter().map(|r| hashes[r.0 as usize]).collect();
-        (p.name().to_string(), hash::manifest(&hs))
+        // Each list is in canonical (content hash, row) order.
+        let hs = rows.iter().map(|r| &hashes[r.0 as usize]);
+        (p.name().to_string(), hash::manifest_of_sorted(hs))
     })
     .collect();
     manifests.insert(Part::Test.name().into(), test_manifest.clone());

@@ -20,7 +20,7 @@
 use std::collections::BTreeMap;
 
 use crate::audit::hash::ContentHash;
-use crate::data::{Dataset, RowId};
+use crate::data::{Dataset, RowId, TextColumn};
 use crate::error::{Error, Result};
 use crate::spec::{Fractions, Seed, SplitPlan};
 
@@ -328,11 +328,8 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
         train,
         validation,
         test: SealedTest {
-            manifest: crate::audit::hash::manifest(
-                &test
-                    .iter()
-                    .map(|r| hashes[r.0 as usize])
-                    .collect::<Vec<_>>(),
+            manifest: crate::audit::hash::manifest_of_sorted(
+                test.iter().map(|r| &hashes[r.0 as usize]),
             ),
             rows: test,
             counts: counts[2],
@@ -516,7 +513,7 @@ impl Dsu {
 fn by_groups(
     data: &Dataset,
     hashes: &[ContentHash],
-    groups: &[String],
+    groups: &TextColumn,
     seed: Seed,
     f: &Fractions,
 ) -> (Vec<Part>, usize) {
@@ -525,10 +522,10 @@ fn by_groups(
     let mut first_of_group = BTreeMap::<&str, usize>::new();
     let mut first_of_hash = BTreeMap::<ContentHash, usize>::new();
     for i in 0..n {
-        match first_of_group.get(groups[i].as_str()) {
+        match first_of_group.get(&groups[i]) {
             Some(&j) => dsu.join(i, j),
             None => {
-                first_of_group.insert(groups[i].as_str(), i);
+                first_of_group.insert(&groups[i], i);
             }
         }
         match first_of_hash.get(&hashes[i]) {
@@ -606,7 +603,7 @@ fn by_groups(
 /// else text order (ISO 8601 dates and times sort correctly as text).
 enum TimeKey<'a> {
     Number(Vec<f64>),
-    Text(&'a [String]),
+    Text(&'a TextColumn),
 }
 
 impl TimeKey<'_> {
@@ -621,7 +618,7 @@ impl TimeKey<'_> {
 fn by_time(
     data: &Dataset,
     hashes: &[ContentHash],
-    times: &[String],
+    times: &TextColumn,
     f: &Fractions,
 ) -> (Vec<Part>, TimeCuts) {
     let numbers: Option<Vec<f64>> = times.iter().map(|t| t.trim().parse::<f64>().ok()).collect();
@@ -656,7 +653,7 @@ fn by_time(
         }
         // The earliest time of each later part, for the record.
         for &i in &rows {
-            let t = Some(times[i].clone());
+            let t = Some(times[i].to_string());
             match (anomaly, part_of[i]) {
                 (false, Part::Validation) if report.normal_validation_from.is_none() => {
                     report.normal_validation_from = t
@@ -688,7 +685,7 @@ fn from_column(data: &Dataset, column: &str) -> Result<Vec<Part>> {
     let mut bad = Vec::new();
     let mut parts = Vec::with_capacity(values.len());
     for (i, v) in values.iter().enumerate() {
-        parts.push(match v.as_str() {
+        parts.push(match v {
             "train" => Part::Train,
             "validation" => Part::Validation,
             "test" => Part::Test,
@@ -703,7 +700,7 @@ fn from_column(data: &Dataset, column: &str) -> Result<Vec<Part>> {
             column,
             format!(
                 "split value `{}` is not one of `train`, `validation`, `test`",
-                values[first.0 as usize]
+                &values[first.0 as usize]
             ),
             &bad,
         ));
@@ -874,7 +871,7 @@ mod tests {
                 if let SplitPlan::Groups { .. } = plan {
                     let mut g = BTreeMap::<&str, Part>::new();
                     for (r, p) in &pa {
-                        let name = data.text["g"][r.0 as usize].as_str();
+                        let name = &data.text["g"][r.0 as usize];
                         let first = *g.entry(name).or_insert(*p);
                         prop_assert_eq!(first, *p, "a group split");
                     }
@@ -937,7 +934,7 @@ mod tests {
             .max()
             .unwrap();
         let cuts = s.report.time_cuts.clone().unwrap();
-        assert!(latest_train < cuts.normal_validation_from.as_ref().unwrap());
+        assert!(latest_train < cuts.normal_validation_from.as_deref().unwrap());
         assert!(cuts.normal_validation_from < cuts.normal_test_from);
     }
 }

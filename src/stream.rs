@@ -235,7 +235,9 @@ impl Columns {
         let numeric = (0..d)
             .map(|j| (0..height).map(|i| Some(values[i * d + j])).collect())
             .collect();
-        let mut text = text.into_iter().map(|t| t.into_iter().map(Some).collect());
+        let mut text = text
+            .into_iter()
+            .map(|t| t.iter().map(|v| Some(v.to_string())).collect());
         let labels = text.next().unwrap_or_default();
         let splits = text.next().unwrap_or_default();
         Columns {
@@ -265,7 +267,7 @@ impl Acc {
                 self.x.len(),
                 self.is_anomaly.len(),
                 self.origin.len(),
-                self.ids.as_ref().map_or(0, Vec::len),
+                self.ids.as_ref().map_or(0, data::TextColumn::len),
                 self.hashes.len(),
                 self.train_hashes.len(),
             ],
@@ -304,7 +306,7 @@ struct Acc {
     x: Vec<f64>,
     is_anomaly: Vec<bool>,
     origin: Vec<Origin>,
-    ids: Option<Vec<String>>,
+    ids: Option<data::TextColumn>,
     hashes: Vec<ContentHash>,
     parts: Vec<Part>,
     // Training rows not yet folded into a block.
@@ -517,7 +519,7 @@ impl Ctx<'_> {
                 acc.hashes.push(hashes[k]);
                 acc.parts.push(p);
                 if let (Some(out), Some(ids)) = (acc.ids.as_mut(), ids.as_ref()) {
-                    out.push(ids[i].clone().unwrap_or_default());
+                    out.push(ids[i].as_deref().unwrap_or_default());
                 }
             }
         }
@@ -624,7 +626,7 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
         x: vec![],
         is_anomaly: vec![],
         origin: vec![],
-        ids: plan.id_column.as_ref().map(|_| vec![]),
+        ids: plan.id_column.as_ref().map(|_| data::TextColumn::default()),
         hashes: vec![],
         parts: vec![],
         pending: vec![],

@@ -121,17 +121,22 @@ fn verdict(shared: &Shared, data: &Dataset) -> Result<()> {
 }
 
 /// Checks that every group (a value of `column`) sits in one split.
-pub fn check_groups(parts: &[Part], groups: &[String], column: &str, data: &Dataset) -> Result<()> {
+pub fn check_groups(
+    parts: &[Part],
+    groups: &crate::data::TextColumn,
+    column: &str,
+    data: &Dataset,
+) -> Result<()> {
     let mut first: BTreeMap<&str, (Part, usize)> = BTreeMap::new();
     let mut split_groups: BTreeMap<&str, (usize, usize)> = BTreeMap::new();
     for (i, g) in groups.iter().enumerate() {
-        match first.get(g.as_str()) {
+        match first.get(g) {
             Some(&(p, j)) if p != parts[i] => {
-                split_groups.entry(g.as_str()).or_insert((j, i));
+                split_groups.entry(g).or_insert((j, i));
             }
             Some(_) => {}
             None => {
-                first.insert(g.as_str(), (parts[i], i));
+                first.insert(g, (parts[i], i));
             }
         }
     }
@@ -234,7 +239,7 @@ mod tests {
 
     #[test]
     fn a_group_in_two_splits_is_refused() {
-        let groups: Vec<String> = ["a", "b", "a"].iter().map(|s| s.to_string()).collect();
+        let groups: crate::data::TextColumn = ["a", "b", "a"].iter().collect();
         let parts = [Part::Train, Part::Train, Part::Test];
         let e = check_groups(&parts, &groups, "die", &data(3))
             .unwrap_err()

@@ -19,6 +19,7 @@ use std::path::Path;
 
 use rayon::prelude::*;
 
+use super::TextColumn;
 use crate::audit::hash::FileDigest;
 use crate::spec::Column;
 
@@ -32,7 +33,7 @@ pub(super) struct Plain {
     pub values: Vec<f64>,
     /// Text columns, in the order asked for; the label column (when one was
     /// given) is left empty and resolved into `labels`.
-    pub text: Vec<Vec<String>>,
+    pub text: Vec<TextColumn>,
     /// `true` for the anomaly value, when a label column was given.
     pub labels: Option<Vec<bool>>,
     /// Data rows.
@@ -62,7 +63,8 @@ enum Slot {
 struct Out<'a> {
     values: &'a mut [f64],
     labels: &'a mut [bool],
-    text: Vec<&'a mut [String]>,
+    /// Per text column (empty for the label): each row's (start, length).
+    spans: Vec<&'a mut [(u32, u32)]>,
 }
 
 /// Reads `path` when it is plain CSV holding every wanted column; `None`
@@ -99,7 +101,7 @@ pub(super) fn read(
 }
 
 /// Parsed rows: row-major values, text columns, resolved labels, height.
-pub(crate) type Parsed = (Vec<f64>, Vec<Vec<String>>, Option<Vec<bool>>, usize);
+pub(crate) type Parsed = (Vec<f64>, Vec<TextColumn>, Option<Vec<bool>>, usize);
 
 fn parse(
     bytes: &[u8],
@@ -173,10 +175,11 @@ fn parse_body(
     let height: usize = heights.iter().sum();
     let mut values = vec![0.0; height * d];
     let mut labels = vec![false; if label.is_some() { height } else { 0 }];
-    let mut columns: Vec<Vec<String>> = (0..ntext)
+    // Where each text value lies in its block: (start, length).
+    let mut spans: Vec<Vec<(u32, u32)>> = (0..ntext)
         .map(|k| match label {
             Some(l) if l.index == k => Vec::new(),
-            _ => vec![String::new(); height],
+            _ => vec![(0, 0); height],
         })
         .collect();
     // Each block gets its own disjoint share of every output.
@@ -184,7 +187,7 @@ fn parse_body(
     {
         let mut v: &mut [f64] = &mut values;
         let mut l: &mut [bool] = &mut labels;
-        let mut t: Vec<&mut [String]> = columns.iter_mut().map(|c| c.as_mut_slice()).collect();
+        let mut t: Vec<&mut [(u32, u32)]> = spans.iter_mut().map(|c| c.as_mut_slice()).collect();
         for &h in &heights {
             let (vh, vr) = v.split_at_mut(h * d);
             v = vr;
@@ -202,9 +205,13 @@ fn parse_body(
             outs.push(Out {
                 values: vh,
                 labels: lh,
-                text: th,
+                spans: th,
             });
         }
+    }
+    // Blocks are at most a few MiB, so an offset within one fits in u32.
+    if blocks.iter().any(|b| b.len() > u32::MAX as usize) {
+        return None;
     }
     let ok = blocks
         .par_iter()
@@ -213,6 +220,30 @@ fn parse_body(
     if !ok {
         return None;
     }
+    // Each text column's bytes copied once into one buffer, checked as
+    // UTF-8 as a whole (a field ends at an ASCII delimiter, so the whole is
+    // valid exactly when every field is).
+    let columns: Vec<TextColumn> = spans
+        .par_iter()
+        .map(|sp| {
+            if sp.is_empty() {
+                return Some(TextColumn::default());
+            }
+            let total: usize = sp.iter().map(|s| s.1 as usize).sum();
+            let mut bytes = Vec::with_capacity(total);
+            let mut ends = Vec::with_capacity(height);
+            let mut at = 0;
+            for (b, &h) in blocks.iter().zip(&heights) {
+                for &(start, len) in &sp[at..at + h] {
+                    let start = start as usize;
+                    bytes.extend_from_slice(&b[start..start + len as usize]);
+                    ends.push(bytes.len());
+                }
+                at += h;
+            }
+            TextColumn::from_parts(String::from_utf8(bytes).ok()?, ends)
+        })
+        .collect::<Option<_>>()?;
     Some((values, columns, label.is_some().then_some(labels), height))
 }
 
@@ -351,6 +382,9 @@ fn split_blocks(body: &[u8]) -> Vec<&[u8]> {
     out
 }
 
+/// Parses one block of whole lines field by field: a number is parsed where
+/// it starts and must end at its delimiter, any other field is found by its
+/// delimiter; a text field is recorded by its place in the block.
 fn parse_block(
     block: &[u8],
     slots: &[Slot],
@@ -358,54 +392,100 @@ fn parse_block(
     label: Option<&LabelWant<'_>>,
     mut out: Out<'_>,
 ) -> Option<()> {
+    let n = block.len();
+    let last = slots.len().checked_sub(1)?;
+    let mut p = 0;
     let mut row = 0;
-    let mut field = 0;
-    let mut start = 0;
-    let mut take = |field: usize, row: usize, f: &[u8]| -> Option<()> {
-        match *slots.get(field)? {
-            Slot::Skip => {}
-            Slot::Number(j) => {
-                let v = number(f)?;
-                *out.values.get_mut(row * d + j)? = if v == 0.0 { 0.0 } else { v };
-            }
-            Slot::Text(k) => {
-                if f.is_empty() {
-                    return None;
+    while p < n {
+        let values = out.values.get_mut(row * d..(row + 1) * d)?;
+        for (f, slot) in slots.iter().enumerate() {
+            let end = match *slot {
+                Slot::Number(j) => {
+                    let (v, end) = number_at(block, p)?;
+                    values[j] = if v == 0.0 { 0.0 } else { v };
+                    end
                 }
-                *out.text[k].get_mut(row)? = std::str::from_utf8(f).ok()?.to_owned();
-            }
-            Slot::Label => {
-                let l = label?;
-                *out.labels.get_mut(row)? = if f == l.normal.as_bytes() {
-                    false
-                } else if f == l.anomaly.as_bytes() {
-                    true
-                } else {
-                    return None;
-                };
+                _ => {
+                    let end = memchr::memchr2(b',', b'\n', &block[p..]).map_or(n, |k| p + k);
+                    let field = &block[p..end];
+                    match *slot {
+                        Slot::Text(k) => {
+                            if field.is_empty() {
+                                return None;
+                            }
+                            *out.spans[k].get_mut(row)? = (p as u32, field.len() as u32);
+                        }
+                        Slot::Label => {
+                            let l = label?;
+                            *out.labels.get_mut(row)? = if field == l.normal.as_bytes() {
+                                false
+                            } else if field == l.anomaly.as_bytes() {
+                                true
+                            } else {
+                                return None;
+                            };
+                        }
+                        Slot::Skip | Slot::Number(_) => {}
+                    }
+                    end
+                }
+            };
+            // Each field ends at its own delimiter: a comma, or the line end
+            // (or the block's end) after the last field.
+            match block.get(end) {
+                Some(b',') if f < last => p = end + 1,
+                Some(b'\n') if f == last => p = end + 1,
+                None if f == last => p = end,
+                _ => return None,
             }
         }
-        Some(())
+        row += 1;
+    }
+    (row * d == out.values.len()).then_some(())
+}
+
+/// The number that starts at `start`, and where it ends (the index of the
+/// byte after it: a delimiter or the block's end). The fixed-point case is
+/// parsed in place; anything else is cut at the next delimiter and left to
+/// [`number`].
+#[inline]
+fn number_at(b: &[u8], start: usize) -> Option<(f64, usize)> {
+    let mut p = start;
+    let neg = b.get(p) == Some(&b'-');
+    p += usize::from(neg);
+    let digits = |p: &mut usize, m: &mut u64| {
+        let from = *p;
+        while let Some(&c) = b.get(*p) {
+            let digit = c.wrapping_sub(b'0');
+            if digit > 9 {
+                break;
+            }
+            *m = m.wrapping_mul(10).wrapping_add(u64::from(digit));
+            *p += 1;
+        }
+        *p - from
     };
-    for pos in memchr::memchr2_iter(b',', b'\n', block) {
-        take(field, row, &block[start..pos])?;
-        field += 1;
-        if block[pos] == b'\n' {
-            if field != slots.len() {
-                return None;
-            }
-            row += 1;
-            field = 0;
-        }
-        start = pos + 1;
+    let mut m: u64 = 0;
+    let int_digits = digits(&mut p, &mut m);
+    let mut decimals = 0;
+    let mut point = false;
+    if b.get(p) == Some(&b'.') {
+        point = true;
+        p += 1;
+        decimals = digits(&mut p, &mut m);
     }
-    if start < block.len() {
-        take(field, row, &block[start..])?;
-        if field + 1 != slots.len() {
-            return None;
-        }
+    if matches!(b.get(p), None | Some(b',' | b'\n'))
+        && int_digits > 0
+        && (!point || decimals > 0)
+        && int_digits + decimals <= 19
+        && m < (1 << 53)
+        && decimals <= 22
+    {
+        let v = m as f64 / POW10[decimals];
+        return Some((if neg { -v } else { v }, p));
     }
-    Some(())
+    let end = memchr::memchr2(b',', b'\n', &b[start..]).map_or(b.len(), |k| start + k);
+    Some((number(&b[start..end])?, end))
 }
 
 /// Exact powers of ten as binary64 (10^22 is the last exact one).

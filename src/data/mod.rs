@@ -25,6 +25,9 @@ use crate::error::{Error, Result, RowUnit};
 use crate::spec::{Column, MissingPolicy, Plan, SourcePlan};
 
 pub(crate) mod fast;
+mod text;
+
+pub use text::TextColumn;
 
 /// How many offending places an error lists.
 const SHOWN: usize = 5;
@@ -111,9 +114,9 @@ pub struct Dataset {
     /// Where each row came from.
     pub origin: Vec<Origin>,
     /// The id column's values, when the spec names one.
-    pub ids: Option<Vec<String>>,
+    pub ids: Option<TextColumn>,
     /// Text columns (split, group, time) by name.
-    pub text: BTreeMap<String, Vec<String>>,
+    pub text: BTreeMap<String, TextColumn>,
     /// Rows left out for missing values.
     pub dropped: Dropped,
 }
@@ -574,7 +577,7 @@ pub fn inspect(plan: &Plan) -> Result<Inspection> {
     let d = numeric.len();
     // Row-major, `d` values per row.
     let mut xs: Vec<f64> = Vec::new();
-    let mut text: Vec<Vec<String>> = vec![Vec::new(); text_cols.len()];
+    let mut text: Vec<TextColumn> = vec![TextColumn::default(); text_cols.len()];
     let mut is_anomaly = Vec::new();
     let mut origin = Vec::new();
     let mut has_missing = Vec::new();
@@ -629,7 +632,7 @@ pub fn inspect(plan: &Plan) -> Result<Inspection> {
                         if text[k].is_empty() {
                             text[k] = col;
                         } else {
-                            text[k].extend(col);
+                            text[k].append(&col);
                         }
                     }
                     match (s.implied, p.labels) {
@@ -693,7 +696,7 @@ pub fn inspect(plan: &Plan) -> Result<Inspection> {
                             if v.is_empty() {
                                 empty_text[k].push(id);
                             }
-                            text[k].push(v);
+                            text[k].push(&v);
                         }
                     }
                     for (j, bad) in frame.not_number.iter().enumerate() {
@@ -834,10 +837,10 @@ pub fn drop_rows(mut data: Dataset, drop: &[bool], plan: &Plan) -> Dataset {
             dropped.normal += 1;
         }
         if let Some(s) = &split_col {
-            dropped.by_split.entry(s[i].clone()).or_default()[usize::from(a)] += 1;
+            dropped.by_split.entry(s[i].to_string()).or_default()[usize::from(a)] += 1;
         }
     }
-    let pick = |v: &Vec<String>| keep.iter().map(|&i| v[i].clone()).collect::<Vec<_>>();
+    let pick = |v: &TextColumn| v.pick(&keep);
     Dataset {
         x: data.x.select(ndarray::Axis(0), &keep),
         is_anomaly: keep.iter().map(|&i| data.is_anomaly[i]).collect(),
@@ -859,7 +862,7 @@ impl Dataset {
     pub(crate) fn for_tests(
         x: Array2<f64>,
         is_anomaly: Vec<bool>,
-        text: BTreeMap<String, Vec<String>>,
+        text: BTreeMap<String, TextColumn>,
     ) -> Dataset {
         let n = is_anomaly.len();
         Dataset {
@@ -970,7 +973,7 @@ mod tests {
             }
         }
         for (k, col) in general.text.iter().enumerate().skip(1) {
-            let want: Vec<String> = col.iter().map(|v| v.clone().unwrap()).collect();
+            let want: TextColumn = col.iter().map(|v| v.clone().unwrap()).collect();
             assert_eq!(plain.text[k], want, "text column {}", text_cols[k].name);
         }
         let labels: Vec<bool> = general.text[0]
