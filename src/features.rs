@@ -67,6 +67,23 @@ pub struct FittedFeatures {
     pub features: Vec<FittedFeature>,
 }
 
+/// The rows `rows` of a row-major matrix `width` wide, copied on all cores.
+fn copy_rows(values: &[f64], width: usize, rows: &[RowId]) -> Array2<f64> {
+    use rayon::prelude::*;
+    let mut out = vec![0.0; rows.len() * width];
+    if width > 0 {
+        out.par_chunks_mut(width * ROW_BLOCK)
+            .zip(rows.par_chunks(ROW_BLOCK))
+            .for_each(|(o, rs)| {
+                for (dst, r) in o.chunks_exact_mut(width).zip(rs) {
+                    let i = r.0 as usize;
+                    dst.copy_from_slice(&values[i * width..(i + 1) * width]);
+                }
+            });
+    }
+    Array2::from_shape_vec((rows.len(), width), out).expect("rows × width values")
+}
+
 fn describe(input: FeatureInput, cols: &[String]) -> String {
     match input {
         FeatureInput::Column(a) => format!("column {}", cols[a]),
@@ -461,9 +478,24 @@ impl FittedFeatures {
         self.features.iter().map(|f| f.name.clone()).collect()
     }
 
+    /// `true` when the features are the content columns themselves, in
+    /// order and untransformed: the feature matrix of any rows is then a copy
+    /// of those rows of the data's own matrix.
+    pub fn is_identity(&self, data: &Dataset) -> bool {
+        self.features.len() == data.x.ncols()
+            && data.x.as_slice().is_some()
+            && self.features.iter().enumerate().all(|(j, f)| {
+                matches!(f.input, FeatureInput::Column(a) if a == j) && f.transforms.is_empty()
+            })
+    }
+
     /// The feature matrix of `rows` (`rows.len() × d`), refusing values outside
     /// a transform's domain.
     pub fn apply(&self, data: &Dataset, rows: &[RowId]) -> Result<Array2<f64>> {
+        if let (true, Some(values)) = (self.is_identity(data), data.x.as_slice()) {
+            // Every value of a loaded dataset is finite, so nothing is refused.
+            return Ok(copy_rows(values, data.x.ncols(), rows));
+        }
         match self.apply_rows(data, rows) {
             Some(m) => Ok(m),
             // Some value is refused: the column-wise pass names the first
@@ -631,6 +663,41 @@ mod tests {
         assert!(bad.apply_rows(&data, &rows).is_none());
         let e = bad.apply(&data, &rows).unwrap_err().to_string();
         assert!(e.contains("`log` cannot take this value"), "{e}");
+    }
+
+    /// A set of the content columns themselves is copied, not computed, and
+    /// gives the same bits as the general passes; any other set is not.
+    #[test]
+    fn identity_set_is_a_copy_of_the_rows() {
+        let n = 5_000;
+        let x = Array2::from_shape_fn((n, 2), |(i, j)| (i * 31 + j) as f64 * 0.37 - 900.0);
+        let data = Dataset::for_tests(x, vec![false; n], Default::default());
+        let column = |name: &str, a| FittedFeature {
+            name: name.into(),
+            input: FeatureInput::Column(a),
+            from: String::new(),
+            transforms: vec![],
+        };
+        let set = FittedFeatures {
+            set: "s".into(),
+            features: vec![column("x0", 0), column("x1", 1)],
+        };
+        assert!(set.is_identity(&data));
+        let rows: Vec<RowId> = (0..n as u64).rev().step_by(7).map(RowId).collect();
+        let copied = set.apply(&data, &rows).unwrap();
+        let general = set.apply_by_column(&data, &rows).unwrap();
+        assert_eq!(copied.dim(), (rows.len(), 2));
+        for (a, b) in copied.iter().zip(general.iter()) {
+            assert_eq!(a.to_bits(), b.to_bits());
+        }
+        let swapped = FittedFeatures {
+            set: "s".into(),
+            features: vec![column("x1", 1), column("x0", 0)],
+        };
+        assert!(!swapped.is_identity(&data));
+        let mut transformed = set.clone();
+        transformed.features[0].transforms = vec![Fitted::Sqrt];
+        assert!(!transformed.is_identity(&data));
     }
 
     /// scipy.stats.boxcox(x) → λ = 0.1947603276190578 (tight optimum
