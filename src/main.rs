@@ -11,7 +11,29 @@ static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
 
 use clap::Parser;
 
+/// Turns transparent huge pages off for this process (Linux), unless
+/// `ANOMARK_HUGE_PAGES` is set. anomark writes its large buffers once and
+/// reads them a few times; on the benchmark machine (a 2-vCPU virtual
+/// machine) faulting them in as 2 MiB pages cost 0.5 to 1.5 s of kernel time
+/// per million-row run against about 0.2 s with 4 KiB pages (README,
+/// Benchmarks).
+#[cfg(target_os = "linux")]
+fn page_policy() {
+    if std::env::var_os("ANOMARK_HUGE_PAGES").is_none() {
+        // SAFETY: PR_SET_THP_DISABLE takes integer arguments only and changes
+        // nothing but this process's page-size policy; a failure (an old
+        // kernel) leaves the policy as it was, which is harmless.
+        unsafe {
+            libc::prctl(libc::PR_SET_THP_DISABLE, 1, 0, 0, 0);
+        }
+    }
+}
+
+#[cfg(not(target_os = "linux"))]
+fn page_policy() {}
+
 fn main() -> ExitCode {
+    page_policy();
     let args = anomark::cli::Args::parse();
     let request = anomark::Request::from(args);
     match anomark::run(&request) {
