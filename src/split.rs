@@ -224,21 +224,10 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
     // Every row in (content, row) order, sorted once: duplicates, the
     // canonical order of each split and the leakage proof all read it.
     let t = crate::progress::part("sorting content hashes");
-    let by_hash = crate::audit::hash::order(hashes);
+    let order = crate::audit::hash::order(hashes);
     drop(t);
     let t = crate::progress::part("assigning");
-    let mut rows_with_duplicates = 0;
-    let mut i = 0;
-    while i < n {
-        let mut j = i + 1;
-        while j < n && hashes[by_hash[j] as usize] == hashes[by_hash[i] as usize] {
-            j += 1;
-        }
-        if j - i > 1 {
-            rows_with_duplicates += j - i;
-        }
-        i = j;
-    }
+    let rows_with_duplicates = order.repeats.iter().map(|r| r.len()).sum();
 
     let mut report = SplitReport {
         method: "",
@@ -305,12 +294,12 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
         }
     }
     // Taken in (content, row) order, each list is already in canonical order.
-    for &i in &by_hash {
+    for &i in &order.rows {
         lists[part_of[i as usize] as usize].push(RowId(u64::from(i)));
     }
     drop(t);
     let t = crate::progress::part("leakage check");
-    crate::audit::leak::check_sorted(&by_hash, &part_of, hashes, data)?;
+    crate::audit::leak::check_sorted(&order, &part_of, data)?;
     drop(t);
     let _t = crate::progress::part("test manifest");
     check_counts(&counts)?;

@@ -77,13 +77,25 @@ pub fn rows(x: &ndarray::Array2<f64>, is_anomaly: &[bool]) -> Vec<ContentHash> {
         .collect()
 }
 
-/// Row indices `0..n` in ascending (content hash, row) order, on all cores.
+/// Rows in canonical order, from [`order`].
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Order {
+    /// Row indices `0..n` in ascending (content hash, row) order.
+    pub rows: Vec<u32>,
+    /// The runs of `rows` (as ranges of positions) whose rows share one
+    /// content, for every content held by two rows or more, in order.
+    pub repeats: Vec<std::ops::Range<usize>>,
+}
+
+/// Row indices `0..n` in ascending (content hash, row) order, on all cores,
+/// and the runs of identical content.
 ///
 /// Sorts compact (first 8 hash bytes, row) keys, whose order is the hashes'
 /// byte order up to ties of the prefix; only a run of equal prefixes (in
-/// practice: identical rows) is then ordered by the whole hash. The result is
-/// exactly that of sorting by `(hashes[i], i)`.
-pub fn order(hashes: &[ContentHash]) -> Vec<u32> {
+/// practice: identical rows) is then ordered by the whole hash and cut into
+/// runs of equal hashes. The order is exactly that of sorting by
+/// `(hashes[i], i)`, and no whole hash is read outside a run of equal prefixes.
+pub fn order(hashes: &[ContentHash]) -> Order {
     use rayon::prelude::*;
     let prefix = |h: &ContentHash| {
         let mut p = [0u8; 8];
@@ -97,6 +109,7 @@ pub fn order(hashes: &[ContentHash]) -> Vec<u32> {
         .collect();
     keys.par_sort_unstable();
     let mut out: Vec<u32> = keys.iter().map(|k| k.1).collect();
+    let mut repeats = Vec::new();
     let mut i = 0;
     while i < keys.len() {
         let mut j = i + 1;
@@ -105,10 +118,21 @@ pub fn order(hashes: &[ContentHash]) -> Vec<u32> {
         }
         if j - i > 1 {
             out[i..j].sort_unstable_by_key(|&r| (hashes[r as usize], r));
+            let mut a = i;
+            while a < j {
+                let mut b = a + 1;
+                while b < j && hashes[out[b] as usize] == hashes[out[a] as usize] {
+                    b += 1;
+                }
+                if b - a > 1 {
+                    repeats.push(a..b);
+                }
+                a = b;
+            }
         }
         i = j;
     }
-    out
+    Order { rows: out, repeats }
 }
 
 /// A file's size and blake3 hash.
@@ -250,7 +274,23 @@ mod tests {
         hashes.push(twin);
         let mut want: Vec<u32> = (0..hashes.len() as u32).collect();
         want.sort_by_key(|&i| (hashes[i as usize], i));
-        assert_eq!(order(&hashes), want);
+        let got = order(&hashes);
+        assert_eq!(got.rows, want);
+        // The runs of equal content, found by comparing neighbours.
+        let mut runs = Vec::new();
+        let mut a = 0;
+        while a < want.len() {
+            let mut b = a + 1;
+            while b < want.len() && hashes[want[b] as usize] == hashes[want[a] as usize] {
+                b += 1;
+            }
+            if b - a > 1 {
+                runs.push(a..b);
+            }
+            a = b;
+        }
+        assert!(!runs.is_empty());
+        assert_eq!(got.repeats, runs);
     }
 
     #[test]

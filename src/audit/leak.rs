@@ -64,42 +64,33 @@ pub fn check(lists: &[Vec<RowId>; 3], hashes: &[ContentHash], data: &Dataset) ->
     verdict(&shared, data)
 }
 
-/// [`check`] for rows already sorted by (content, row) (`by_hash`) with each
-/// row's split in `part_of`: one pass, no further sort.
+/// [`check`] for rows in canonical order ([`crate::audit::hash::order`]),
+/// with each row's split in `part_of`: only the runs of repeated content are
+/// read, no further sort.
 pub fn check_sorted(
-    by_hash: &[u32],
+    order: &crate::audit::hash::Order,
     part_of: &[Part],
-    hashes: &[ContentHash],
     data: &Dataset,
 ) -> Result<()> {
     let mut shared = Shared::new();
-    let mut i = 0;
-    while i < by_hash.len() {
-        let h = hashes[by_hash[i] as usize];
-        let mut j = i;
-        while j < by_hash.len() && hashes[by_hash[j] as usize] == h {
-            j += 1;
+    for run in &order.repeats {
+        // The smallest row of each split holding this content (rows ascend here).
+        let mut first: [Option<RowId>; 3] = [None; 3];
+        for &r in &order.rows[run.clone()] {
+            let p = part_of[r as usize] as usize;
+            first[p].get_or_insert(RowId(u64::from(r)));
         }
-        if j - i > 1 {
-            // The smallest row of each split holding this content (rows ascend here).
-            let mut first: [Option<RowId>; 3] = [None; 3];
-            for &r in &by_hash[i..j] {
-                let p = part_of[r as usize] as usize;
-                first[p].get_or_insert(RowId(u64::from(r)));
-            }
-            if let Some(q) = (0..3).find(|&q| first[q].is_some()) {
-                for p in q + 1..3 {
-                    if let (Some(a), Some(b)) = (first[q], first[p]) {
-                        let e = shared.entry((q, p)).or_insert((0, (a, b)));
-                        e.0 += 1;
-                        if (a, b) < e.1 {
-                            e.1 = (a, b);
-                        }
+        if let Some(q) = (0..3).find(|&q| first[q].is_some()) {
+            for p in q + 1..3 {
+                if let (Some(a), Some(b)) = (first[q], first[p]) {
+                    let e = shared.entry((q, p)).or_insert((0, (a, b)));
+                    e.0 += 1;
+                    if (a, b) < e.1 {
+                        e.1 = (a, b);
                     }
                 }
             }
         }
-        i = j;
     }
     verdict(&shared, data)
 }
@@ -213,15 +204,14 @@ mod tests {
             let part_of: Vec<Part> = (0..n)
                 .map(|_| Part::ALL[(rng.next_u64() % 3) as usize])
                 .collect();
-            let mut by_hash: Vec<u32> = (0..n as u32).collect();
-            by_hash.sort_by_key(|&i| (hashes[i as usize], i));
+            let order = crate::audit::hash::order(&hashes);
             let mut lists: [Vec<RowId>; 3] = Default::default();
-            for &i in &by_hash {
+            for &i in &order.rows {
                 lists[part_of[i as usize] as usize].push(RowId(u64::from(i)));
             }
             let d = data(n);
             let a = format!("{:?}", check(&lists, &hashes, &d));
-            let b = format!("{:?}", check_sorted(&by_hash, &part_of, &hashes, &d));
+            let b = format!("{:?}", check_sorted(&order, &part_of, &d));
             assert_eq!(a, b, "seed {seed}");
         }
     }
