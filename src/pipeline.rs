@@ -573,18 +573,20 @@ fn execute(
     files.add(SPEC_COPY, plan.spec_bytes.clone());
     let mut ctx = card_context(&plan, &rec, &spec_file, fingerprint);
     let c = &candidates[chosen];
-    let val = plots::SplitScores {
-        split: Part::Validation.name(),
-        scores: &c.validation_scores,
-        is_anomaly: &val_y,
-        tau: c.choice.tau,
-    };
     let set = &fitted_sets[c.set];
     let params = c.model.params();
     // scores.csv, the score figures and the feature figures are independent:
     // made side by side on all cores, each with the same bytes as alone.
     let score_figures = || -> Result<(Vec<plots::Plot>, Vec<plots::Plot>)> {
         let _t = crate::progress::part("score figures");
+        let val_cuts = threshold::cuts(&c.validation_scores, &val_y);
+        let val = plots::SplitScores {
+            split: Part::Validation.name(),
+            scores: &c.validation_scores,
+            is_anomaly: &val_y,
+            tau: c.choice.tau,
+            cuts: &val_cuts,
+        };
         let validation = vec![
             plots::precision_recall(val)?,
             plots::roc(val)?,
@@ -593,11 +595,13 @@ fn execute(
         ];
         let mut test = vec![];
         if rec.test_opened {
+            let test_cuts = threshold::cuts(&test_scores[chosen], &test_y);
             let t = plots::SplitScores {
                 split: Part::Test.name(),
                 scores: &test_scores[chosen],
                 is_anomaly: &test_y,
                 tau: c.choice.tau,
+                cuts: &test_cuts,
             };
             test = vec![
                 plots::precision_recall(t)?,
@@ -801,7 +805,13 @@ fn scores_csv(
     let line = |s: &mut String, (p, r, k): (Part, RowId, u32)| {
         let i = r.0 as usize;
         match &data.ids {
-            Some(ids) if !ids[i].contains([',', '"', '\n', '\r']) => s.push_str(&ids[i]),
+            Some(ids)
+                if !ids[i]
+                    .bytes()
+                    .any(|b| matches!(b, b',' | b'"' | b'\n' | b'\r')) =>
+            {
+                s.push_str(&ids[i])
+            }
             Some(ids) => s.push_str(&csv_field(&ids[i])),
             None => {
                 let _ = write!(s, "{}", r.0);
@@ -817,11 +827,7 @@ fn scores_csv(
                 _ => c.validation_scores[k as usize],
             };
             s.push(',');
-            if v.is_finite() {
-                let _ = write!(s, "{v}");
-            } else {
-                s.push_str(&fmt_f64(v));
-            }
+            crate::record::push_f64(s, v);
         }
         s.push('\n');
     };

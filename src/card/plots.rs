@@ -44,6 +44,9 @@ pub struct SplitScores<'a> {
     pub is_anomaly: &'a [bool],
     /// The chosen τ (fixed on validation).
     pub tau: f64,
+    /// Every cut point of these scores, from [`threshold::cuts`] (computed
+    /// once for all of a split's figures).
+    pub cuts: &'a [(f64, Confusion)],
 }
 
 const NORMAL: RGBColor = RGBColor(37, 99, 235);
@@ -167,7 +170,7 @@ fn fpr(c: &Confusion) -> f64 {
 
 /// Precision against recall over every cut point, with the operating point at τ.
 pub fn precision_recall(s: SplitScores<'_>) -> Result<Plot> {
-    let cuts = threshold::cuts(s.scores, s.is_anomaly);
+    let cuts = s.cuts;
     let points: Vec<(f64, f64)> = cuts
         .iter()
         .filter(|(_, c)| c.tp + c.fp > 0)
@@ -228,7 +231,7 @@ pub fn precision_recall(s: SplitScores<'_>) -> Result<Plot> {
 
 /// True-positive rate against false-positive rate, with the operating point.
 pub fn roc(s: SplitScores<'_>) -> Result<Plot> {
-    let cuts = threshold::cuts(s.scores, s.is_anomaly);
+    let cuts = s.cuts;
     let points: Vec<(f64, f64)> = cuts.iter().map(|(_, c)| (fpr(c), recall(c))).collect();
     let points = thin(&points, (1.0, 1.0));
     let at = Confusion::at(s.scores, s.is_anomaly, s.tau);
@@ -279,7 +282,7 @@ pub fn roc(s: SplitScores<'_>) -> Result<Plot> {
 /// The policy's objective at every validation cut point against ln ε = −τ.
 pub fn objective(policy: ThresholdPolicy, s: SplitScores<'_>) -> Result<Plot> {
     let (name, value) = threshold::objective(policy);
-    let cuts = threshold::cuts(s.scores, s.is_anomaly);
+    let cuts = s.cuts;
     let ln_eps: Vec<f64> = s.scores.iter().map(|v| -v).collect();
     let xr = axis_range(&ln_eps, &[-s.tau]);
     let mut points: Vec<(f64, f64)> = cuts
