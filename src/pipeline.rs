@@ -108,20 +108,7 @@ fn checked_scores(
     rows: &[RowId],
     data: &Dataset,
 ) -> Result<Vec<f64>> {
-    // Each row's score depends on that row alone, so blocks scored on all
-    // cores and joined in order give the same bits as one pass.
-    use rayon::prelude::*;
-    const BLOCK: usize = 8192;
-    let n = x.nrows();
-    let blocks: Vec<(usize, usize)> = (0..n)
-        .step_by(BLOCK)
-        .map(|a| (a, (a + BLOCK).min(n)))
-        .collect();
-    let s: Vec<f64> = blocks
-        .par_iter()
-        .map(|&(a, b)| model.score(x.slice(ndarray::s![a..b, ..])))
-        .collect::<Vec<_>>()
-        .concat();
+    let s = detect::score_in_blocks(model, x.view(), 8192);
     if let Some(k) = s.iter().position(|v| v.is_nan()) {
         return Err(Error::Fit {
             detector: name.into(),

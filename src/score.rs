@@ -14,9 +14,7 @@ use std::io::BufWriter;
 use std::path::{Path, PathBuf};
 use std::sync::{Arc, Mutex};
 
-use ndarray::s;
 use polars::prelude::*;
-use rayon::prelude::*;
 
 use crate::audit::hash;
 use crate::data::Format;
@@ -468,15 +466,7 @@ fn score_batch(
                 .collect(),
             unit,
         })?;
-    let blocks: Vec<(usize, usize)> = (0..n)
-        .step_by(BLOCK)
-        .map(|s| (s, (s + BLOCK).min(n)))
-        .collect();
-    let scores: Vec<f64> = blocks
-        .par_iter()
-        .map(|&(a, b)| run.model.score(x.slice(s![a..b, ..])))
-        .collect::<Vec<_>>()
-        .concat();
+    let scores = crate::detect::score_in_blocks(run.model.as_ref(), x.view(), BLOCK);
     let flags: Vec<bool> = scores.iter().map(|&s| s > run.tau).collect();
     let flagged = flags.iter().filter(|&&f| f).count() as u64;
     let mut out = df;

@@ -46,6 +46,23 @@ pub trait Model: Send + Sync {
     }
 }
 
+/// Scores the rows of `x` on all cores, in blocks of `block` rows joined in
+/// order. Each row's score depends on that row alone, so the bits are those
+/// of `model.score(x)` in one pass, whatever the number of threads.
+pub fn score_in_blocks(model: &dyn Model, x: ArrayView2<'_, f64>, block: usize) -> Vec<f64> {
+    use rayon::prelude::*;
+    let n = x.nrows();
+    let blocks: Vec<(usize, usize)> = (0..n)
+        .step_by(block.max(1))
+        .map(|a| (a, (a + block.max(1)).min(n)))
+        .collect();
+    blocks
+        .par_iter()
+        .map(|&(a, b)| model.score(x.slice(ndarray::s![a..b, ..])))
+        .collect::<Vec<_>>()
+        .concat()
+}
+
 /// Fitted parameters, as recorded in run.json.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case", tag = "detector")]
