@@ -67,21 +67,23 @@ pub struct FittedFeatures {
     pub features: Vec<FittedFeature>,
 }
 
-/// The rows `rows` of a row-major matrix `width` wide, copied on all cores.
-fn copy_rows(values: &[f64], width: usize, rows: &[RowId]) -> Array2<f64> {
+/// The rows `rows` of a row-major matrix `width` wide, copied on all cores;
+/// `None` when a copied value is not finite (the general passes then name it).
+fn copy_rows(values: &[f64], width: usize, rows: &[RowId]) -> Option<Array2<f64>> {
     use rayon::prelude::*;
     let mut out = vec![0.0; rows.len() * width];
-    if width > 0 {
-        out.par_chunks_mut(width * ROW_BLOCK)
+    let finite = width == 0
+        || out
+            .par_chunks_mut(width * ROW_BLOCK)
             .zip(rows.par_chunks(ROW_BLOCK))
-            .for_each(|(o, rs)| {
+            .all(|(o, rs)| {
                 for (dst, r) in o.chunks_exact_mut(width).zip(rs) {
                     let i = r.0 as usize;
                     dst.copy_from_slice(&values[i * width..(i + 1) * width]);
                 }
+                o.iter().all(|v| v.is_finite())
             });
-    }
-    Array2::from_shape_vec((rows.len(), width), out).expect("rows × width values")
+    finite.then(|| Array2::from_shape_vec((rows.len(), width), out).expect("rows × width values"))
 }
 
 fn describe(input: FeatureInput, cols: &[String]) -> String {
@@ -492,7 +494,6 @@ impl FittedFeatures {
     /// of those rows of the data's own matrix.
     pub fn is_identity(&self, data: &Dataset) -> bool {
         self.features.len() == data.x.ncols()
-            && data.x.as_slice().is_some()
             && self.features.iter().enumerate().all(|(j, f)| {
                 matches!(f.input, FeatureInput::Column(a) if a == j) && f.transforms.is_empty()
             })
@@ -502,8 +503,9 @@ impl FittedFeatures {
     /// a transform's domain.
     pub fn apply(&self, data: &Dataset, rows: &[RowId]) -> Result<Array2<f64>> {
         if let (true, Some(values)) = (self.is_identity(data), data.x.as_slice()) {
-            // Every value of a loaded dataset is finite, so nothing is refused.
-            return Ok(copy_rows(values, data.x.ncols(), rows));
+            if let Some(m) = copy_rows(values, data.x.ncols(), rows) {
+                return Ok(m);
+            }
         }
         match self.apply_rows(data, rows) {
             Some(m) => Ok(m),
@@ -704,6 +706,13 @@ mod tests {
             features: vec![column("x1", 1), column("x0", 0)],
         };
         assert!(!swapped.is_identity(&data));
+        // A value that is not finite is not copied through: the general
+        // passes refuse it and name the feature.
+        let mut holed = data.x.clone();
+        holed[(rows[3].0 as usize, 1)] = f64::NAN;
+        let holed = Dataset::for_tests(holed, vec![false; n], Default::default());
+        let e = set.apply(&holed, &rows).unwrap_err().to_string();
+        assert!(e.contains("x1"), "{e}");
         let mut transformed = set.clone();
         transformed.features[0].transforms = vec![Fitted::Sqrt];
         assert!(!transformed.is_identity(&data));
