@@ -132,15 +132,54 @@ pub fn clopper_pearson(k: u64, n: u64, confidence: f64) -> Option<Interval> {
 
 /// Rows in ranking order: scores from high to low (ties by row), the labels
 /// in that order, and where each group of tied scores ends.
-struct Ranked {
-    order: Vec<usize>,
-    anomalous: Vec<bool>,
-    ends: Vec<usize>,
+///
+/// One ranking serves every consumer of a split's scores (the threshold
+/// search, the metrics, the bootstrap and the figures), so each candidate's
+/// scores on a split are sorted once.
+#[derive(Debug, Clone)]
+pub struct Ranked {
+    pub(crate) order: Vec<usize>,
+    pub(crate) anomalous: Vec<bool>,
+    pub(crate) ends: Vec<usize>,
+}
+
+impl Ranked {
+    /// Ranks `scores` (no NaN) with their labels.
+    pub fn new(scores: &[f64], is_anomaly: &[bool]) -> Self {
+        ranked(scores, is_anomaly)
+    }
+
+    /// Rows ranked.
+    pub fn len(&self) -> usize {
+        self.order.len()
+    }
+
+    /// `true` when no row is ranked.
+    pub fn is_empty(&self) -> bool {
+        self.order.is_empty()
+    }
+}
+
+/// A key whose unsigned order is `f64::total_cmp`'s order of `v`.
+fn total_order_key(v: f64) -> u64 {
+    let b = v.to_bits();
+    // Negative numbers: flip every bit (larger magnitude sorts lower);
+    // positive: flip only the sign bit (so they sort above the negatives).
+    b ^ ((((b as i64) >> 63) as u64) | (1 << 63))
 }
 
 fn ranked(scores: &[f64], is_anomaly: &[bool]) -> Ranked {
-    let mut order: Vec<usize> = (0..scores.len()).collect();
-    order.sort_by(|&a, &b| scores[b].total_cmp(&scores[a]).then(a.cmp(&b)));
+    // Sorting (descending score key, row) packed into one integer gives the
+    // order of a stable sort by descending `total_cmp`: the keys are unique,
+    // so an unstable sort has only one answer.
+    let mut keys: Vec<u128> = scores
+        .iter()
+        .enumerate()
+        .map(|(i, &v)| (u128::from(!total_order_key(v)) << 64) | i as u128)
+        .collect();
+    keys.sort_unstable();
+    let order: Vec<usize> = keys.iter().map(|&k| k as u64 as usize).collect();
+    drop(keys);
     let mut ends = Vec::new();
     for k in 1..=order.len() {
         if k == order.len() || scores[order[k]].total_cmp(&scores[order[k - 1]]).is_ne() {
@@ -308,9 +347,13 @@ impl Buckets {
 
 /// Unweighted average precision and ROC AUC.
 fn ap_auc(scores: &[f64], is_anomaly: &[bool]) -> (Option<f64>, Option<f64>) {
-    let p = is_anomaly.iter().filter(|&&a| a).count() as f64;
-    let n = is_anomaly.len() as f64 - p;
-    ranking(&ranked(scores, is_anomaly), |_| 1.0, p, n)
+    ap_auc_ranked(&ranked(scores, is_anomaly))
+}
+
+fn ap_auc_ranked(r: &Ranked) -> (Option<f64>, Option<f64>) {
+    let p = r.anomalous.iter().filter(|&&a| a).count() as f64;
+    let n = r.anomalous.len() as f64 - p;
+    ranking(r, |_| 1.0, p, n)
 }
 
 /// Average precision as scikit-learn defines it: Σₙ (Rₙ − Rₙ₋₁) Pₙ over the
@@ -377,6 +420,18 @@ pub fn bootstrap(
     plan: BootstrapPlan,
     confidence: f64,
 ) -> BootstrapIntervals {
+    bootstrap_with(scores, is_anomaly, None, tau, plan, confidence)
+}
+
+/// [`bootstrap`] with the scores' ranking when it is already at hand.
+fn bootstrap_with(
+    scores: &[f64],
+    is_anomaly: &[bool],
+    ranked_scores: Option<&Ranked>,
+    tau: f64,
+    plan: BootstrapPlan,
+    confidence: f64,
+) -> BootstrapIntervals {
     let none = BootstrapIntervals {
         f1: None,
         average_precision: None,
@@ -389,7 +444,14 @@ pub fn bootstrap(
     }
     // Weights are kept by ranking position, so a replicate is one sequential
     // pass; the draws are made in row order within each class.
-    let r = ranked(scores, is_anomaly);
+    let owned;
+    let r = match ranked_scores {
+        Some(r) => r,
+        None => {
+            owned = ranked(scores, is_anomaly);
+            &owned
+        }
+    };
     let mut rank = vec![0u32; scores.len()];
     for (k, &i) in r.order.iter().enumerate() {
         rank[i] = k as u32;
@@ -397,7 +459,7 @@ pub fn bootstrap(
     let pos_rank: Vec<u32> = pos.iter().map(|&i| rank[i]).collect();
     let neg_rank: Vec<u32> = neg.iter().map(|&i| rank[i]).collect();
     let flagged = r.order.iter().take_while(|&&i| scores[i] > tau).count();
-    let buckets = Buckets::new(&r, &pos_rank, &neg_rank, flagged);
+    let buckets = Buckets::new(r, &pos_rank, &neg_rank, flagged);
     let (p_total, n_total) = (pos.len() as f64, neg.len() as f64);
     let reps: Vec<(f64, f64, f64)> = (0..plan.replicates)
         .into_par_iter()
@@ -548,8 +610,29 @@ impl Metrics {
         beta: Option<f64>,
         boot: BootstrapPlan,
     ) -> Self {
+        Metrics::of_ranked(
+            scores,
+            is_anomaly,
+            &ranked(scores, is_anomaly),
+            tau,
+            beta,
+            boot,
+        )
+    }
+
+    /// [`Metrics::of`] with the scores' ranking already at hand (the same
+    /// numbers, one sort fewer).
+    pub fn of_ranked(
+        scores: &[f64],
+        is_anomaly: &[bool],
+        ranked_scores: &Ranked,
+        tau: f64,
+        beta: Option<f64>,
+        boot: BootstrapPlan,
+    ) -> Self {
+        debug_assert_eq!(ranked_scores.len(), scores.len());
         let c = Confusion::at(scores, is_anomaly, tau);
-        let (ap, auc) = ap_auc(scores, is_anomaly);
+        let (ap, auc) = ap_auc_ranked(ranked_scores);
         Metrics {
             confusion: c,
             precision: c.precision(),
@@ -566,7 +649,7 @@ impl Metrics {
             precision_95: proportion(c.tp, c.tp + c.fp),
             recall_95: proportion(c.tp, c.tp + c.fn_),
             false_positive_rate_95: proportion(c.fp, c.fp + c.tn),
-            bootstrap_95: bootstrap(scores, is_anomaly, tau, boot, 0.95),
+            bootstrap_95: bootstrap_with(scores, is_anomaly, Some(ranked_scores), tau, boot, 0.95),
         }
     }
 }
@@ -695,6 +778,45 @@ mod tests {
         assert!((c.specificity().unwrap() - 0.9984924623115577).abs() < 1e-12);
         assert!((c.f_beta(2.0).unwrap() - 0.7843137254901961).abs() < 1e-12);
         assert!((c.f_beta(0.5).unwrap() - 0.7407407407407407).abs() < 1e-12);
+    }
+
+    /// The packed-key sort gives exactly the order of a stable sort by
+    /// descending `f64::total_cmp` (ties in row order), including signed
+    /// zeros, infinities and many ties (common practice, no source: the
+    /// order is checked against the standard library's own comparison).
+    #[test]
+    fn ranking_is_the_stable_descending_total_order() {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
+        let specials = [
+            0.0,
+            -0.0,
+            f64::INFINITY,
+            f64::NEG_INFINITY,
+            f64::MIN_POSITIVE,
+            -1e-300,
+        ];
+        for case in 0..200 {
+            let n = (rng.next_u32() % 300) as usize;
+            let s: Vec<f64> = (0..n)
+                .map(|_| match rng.next_u32() % 4 {
+                    0 => specials[(rng.next_u32() % 6) as usize],
+                    1 => f64::from(rng.next_u32() % 5) - 2.0,
+                    _ => (f64::from(rng.next_u32()) - 2e9) * 1e-3,
+                })
+                .collect();
+            let y: Vec<bool> = (0..n).map(|_| rng.next_u32() % 3 == 0).collect();
+            let mut want: Vec<usize> = (0..n).collect();
+            want.sort_by(|&a, &b| s[b].total_cmp(&s[a]));
+            let r = Ranked::new(&s, &y);
+            assert_eq!(r.order, want, "case {case}");
+            let labels: Vec<bool> = want.iter().map(|&i| y[i]).collect();
+            assert_eq!(r.anomalous, labels);
+            let groups = 1
+                + (1..n)
+                    .filter(|&k| s[want[k]].total_cmp(&s[want[k - 1]]).is_ne())
+                    .count();
+            assert_eq!(r.ends.len(), if n == 0 { 0 } else { groups });
+        }
     }
 
     /// A replicate counted by buckets gives the same bits as weighting every

@@ -19,7 +19,7 @@ use crate::data::{self, Dataset, RowId};
 use crate::detect::{self, Model};
 use crate::error::{Error, Result};
 use crate::features;
-use crate::metrics::{cmp_fraction, Metrics};
+use crate::metrics::{self, cmp_fraction, Metrics};
 use crate::output::{self, RunFiles};
 use crate::record::{
     self, fmt_f64, CandidateRecord, InputRecord, LabelRecord, RunRecord, SelectionRecord,
@@ -99,6 +99,18 @@ struct Candidate {
     choice: Choice,
     validation: Metrics,
     validation_scores: Vec<f64>,
+    /// The validation scores ranked once, for the threshold, the metrics
+    /// and the figures.
+    validation_ranked: metrics::Ranked,
+}
+
+/// A candidate's name: the detector, prefixed by a named feature set.
+fn candidate_name(set: &spec::FeatureSetPlan, kind: DetectorKind) -> String {
+    if set.named {
+        format!("{}/{}", set.name, detect::name(kind))
+    } else {
+        detect::name(kind).to_string()
+    }
 }
 
 fn checked_scores(
@@ -328,41 +340,77 @@ fn execute(
         let train = fitted.apply(&data, &splits.train)?;
         let val_x = fitted.apply(&data, &splits.validation)?;
         drop(t);
-        for &kind in &plan.detectors {
-            let name = if set.named {
-                format!("{}/{}", set.name, detect::name(kind))
-            } else {
-                detect::name(kind).to_string()
-            };
-            let stage = progress.stage(format!("fitting and thresholding {name}"));
-            let t = crate::progress::part("fitting");
-            let model = match &streamed {
-                Some((_, moments, _)) => crate::stream::fit(kind, &moments[si], &names),
-                None => detect::build(kind).fit(train.view(), &names),
-            }
-            .map_err(|e| in_set(e, set))?;
-            drop(t);
-            let t = crate::progress::part("validation scores");
-            let validation_scores =
-                checked_scores(&name, model.as_ref(), &val_x, &splits.validation, &data)?;
-            drop(t);
-            let t = crate::progress::part("threshold");
-            let choice = threshold::choose(plan.threshold, &validation_scores, &val_y);
-            drop(t);
-            let t = crate::progress::part("validation metrics");
-            let validation =
-                Metrics::of(&validation_scores, &val_y, choice.tau, beta, plan.bootstrap);
-            drop(t);
-            candidates.push(Candidate {
-                name,
-                set: si,
-                kind,
-                model,
-                choice,
-                validation,
-                validation_scores,
-            });
-            drop(stage);
+        // The candidates of one feature set are independent: fitted side by
+        // side, each with the same bits as alone, and kept in spec order (the
+        // first failure in that order is the one reported).
+        let names_shown: Vec<String> = plan
+            .detectors
+            .iter()
+            .map(|&kind| candidate_name(set, kind))
+            .collect();
+        let stage = progress.stage(format!(
+            "fitting and thresholding {}",
+            names_shown.join(", ")
+        ));
+        let built: Vec<Result<Candidate>> = {
+            use rayon::prelude::*;
+            plan.detectors
+                .par_iter()
+                .zip(names_shown)
+                .map(|(&kind, name)| -> Result<Candidate> {
+                    let t = crate::progress::part("fitting");
+                    let model = match &streamed {
+                        Some((_, moments, _)) => crate::stream::fit(kind, &moments[si], &names),
+                        None => detect::build(kind).fit(train.view(), &names),
+                    }
+                    .map_err(|e| in_set(e, set))?;
+                    drop(t);
+                    let t = crate::progress::part("validation scores");
+                    let validation_scores =
+                        checked_scores(&name, model.as_ref(), &val_x, &splits.validation, &data)?;
+                    drop(t);
+                    let t = crate::progress::part("ranking");
+                    let validation_ranked = metrics::Ranked::new(&validation_scores, &val_y);
+                    drop(t);
+                    let t = crate::progress::part("threshold");
+                    let choice = match plan.threshold {
+                        ThresholdPolicy::Fixed { .. } => {
+                            threshold::choose_from(plan.threshold, &validation_scores, &val_y, &[])
+                        }
+                        _ => threshold::choose_from(
+                            plan.threshold,
+                            &validation_scores,
+                            &val_y,
+                            &threshold::cuts_ranked(&validation_scores, &validation_ranked),
+                        ),
+                    };
+                    drop(t);
+                    let t = crate::progress::part("validation metrics");
+                    let validation = Metrics::of_ranked(
+                        &validation_scores,
+                        &val_y,
+                        &validation_ranked,
+                        choice.tau,
+                        beta,
+                        plan.bootstrap,
+                    );
+                    drop(t);
+                    Ok(Candidate {
+                        name,
+                        set: si,
+                        kind,
+                        model,
+                        choice,
+                        validation,
+                        validation_scores,
+                        validation_ranked,
+                    })
+                })
+                .collect()
+        };
+        drop(stage);
+        for c in built {
+            candidates.push(c?);
         }
         fitted_sets.push(fitted);
     }
@@ -473,29 +521,40 @@ fn execute(
     } else {
         (vec![], vec![vec![]; candidates.len()], vec![], None)
     };
+    // Each candidate's test scores ranked once, for its metrics and figures.
+    let test_ranked: Vec<metrics::Ranked> = {
+        use rayon::prelude::*;
+        test_scores
+            .par_iter()
+            .map(|ts| metrics::Ranked::new(ts, &test_y))
+            .collect()
+    };
 
     let stage = progress.stage("test metrics and intervals");
-    let candidate_records: Vec<CandidateRecord> = candidates
-        .iter()
-        .zip(&test_scores)
-        .enumerate()
-        .map(|(i, (c, ts))| CandidateRecord {
-            name: c.name.clone(),
-            feature_set: fitted_sets[c.set].set.clone(),
-            detector: detect::name(c.kind).into(),
-            parameter_count: c.model.parameter_count(),
-            params: c.model.params(),
-            tau: c.choice.tau,
-            ln_epsilon: c.choice.ln_epsilon(),
-            threshold_met: c.choice.met,
-            threshold_note: c.choice.note.clone(),
-            validation: c.validation.clone(),
-            test: openings
-                .is_some()
-                .then(|| Metrics::of(ts, &test_y, c.choice.tau, beta, plan.bootstrap)),
-            chosen: i == chosen,
-        })
-        .collect();
+    let candidate_records: Vec<CandidateRecord> = {
+        use rayon::prelude::*;
+        candidates
+            .par_iter()
+            .zip(test_scores.par_iter().zip(&test_ranked))
+            .enumerate()
+            .map(|(i, (c, (ts, tr)))| CandidateRecord {
+                name: c.name.clone(),
+                feature_set: fitted_sets[c.set].set.clone(),
+                detector: detect::name(c.kind).into(),
+                parameter_count: c.model.parameter_count(),
+                params: c.model.params(),
+                tau: c.choice.tau,
+                ln_epsilon: c.choice.ln_epsilon(),
+                threshold_met: c.choice.met,
+                threshold_note: c.choice.note.clone(),
+                validation: c.validation.clone(),
+                test: openings.is_some().then(|| {
+                    Metrics::of_ranked(ts, &test_y, tr, c.choice.tau, beta, plan.bootstrap)
+                }),
+                chosen: i == chosen,
+            })
+            .collect()
+    };
 
     let spec_file = opts
         .spec
@@ -579,7 +638,7 @@ fn execute(
     // made side by side on all cores, each with the same bytes as alone.
     let score_figures = || -> Result<(Vec<plots::Plot>, Vec<plots::Plot>)> {
         let _t = crate::progress::part("score figures");
-        let val_cuts = threshold::cuts(&c.validation_scores, &val_y);
+        let val_cuts = threshold::cuts_ranked(&c.validation_scores, &c.validation_ranked);
         let val = plots::SplitScores {
             split: Part::Validation.name(),
             scores: &c.validation_scores,
@@ -595,7 +654,7 @@ fn execute(
         ];
         let mut test = vec![];
         if rec.test_opened {
-            let test_cuts = threshold::cuts(&test_scores[chosen], &test_y);
+            let test_cuts = threshold::cuts_ranked(&test_scores[chosen], &test_ranked[chosen]);
             let t = plots::SplitScores {
                 split: Part::Test.name(),
                 scores: &test_scores[chosen],

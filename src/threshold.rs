@@ -16,7 +16,7 @@
 //! `met = false` and a note saying so; the pipeline does not select such a
 //! candidate.
 
-use crate::metrics::{cmp_fraction, Confusion};
+use crate::metrics::{cmp_fraction, Confusion, Ranked};
 use crate::spec::ThresholdPolicy;
 
 /// A chosen operating point.
@@ -61,46 +61,43 @@ fn between(high: f64, low: f64) -> f64 {
     }
 }
 
-/// One cut point: its confusion matrix and τ.
-#[derive(Debug, Clone, Copy)]
-struct Cut {
-    c: Confusion,
-    tau: f64,
+/// One cut point: τ and the confusion matrix of flagging s(x) > τ.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Cut {
+    /// The τ of this cut.
+    pub tau: f64,
+    /// The confusion matrix at τ.
+    pub c: Confusion,
 }
 
 /// Every distinct cut point, from "flag nothing" to "flag everything".
-fn cut_points(scores: &[f64], is_anomaly: &[bool]) -> Vec<Cut> {
-    let mut order: Vec<(f64, bool)> = scores
-        .iter()
-        .copied()
-        .zip(is_anomaly.iter().copied())
-        .collect();
-    order.sort_by(|a, b| b.0.total_cmp(&a.0));
-    let positives = is_anomaly.iter().filter(|&&a| a).count() as u64;
-    let negatives = is_anomaly.len() as u64 - positives;
-    let mut cuts = vec![Cut {
+pub fn cuts(scores: &[f64], is_anomaly: &[bool]) -> Vec<Cut> {
+    cuts_ranked(scores, &Ranked::new(scores, is_anomaly))
+}
+
+/// [`cuts`] from the scores' ranking (the same cuts, no sort).
+pub fn cuts_ranked(scores: &[f64], r: &Ranked) -> Vec<Cut> {
+    let positives = r.anomalous.iter().filter(|&&a| a).count() as u64;
+    let negatives = r.anomalous.len() as u64 - positives;
+    let mut cuts = Vec::with_capacity(r.ends.len() + 1);
+    cuts.push(Cut {
         c: Confusion {
             tp: 0,
             fp: 0,
             fn_: positives,
             tn: negatives,
         },
-        tau: order.first().map_or(0.0, |o| o.0),
-    }];
+        tau: r.order.first().map_or(0.0, |&i| scores[i]),
+    });
     let (mut tp, mut fp) = (0u64, 0u64);
-    let mut i = 0;
-    while i < order.len() {
-        let s = order[i].0;
-        while i < order.len() && order[i].0.total_cmp(&s).is_eq() {
-            if order[i].1 {
-                tp += 1;
-            } else {
-                fp += 1;
-            }
-            i += 1;
-        }
-        let tau = match order.get(i) {
-            Some(next) => between(s, next.0),
+    let mut start = 0;
+    for &end in &r.ends {
+        let p = r.anomalous[start..end].iter().filter(|&&a| a).count() as u64;
+        tp += p;
+        fp += (end - start) as u64 - p;
+        let s = scores[r.order[start]];
+        let tau = match r.order.get(end) {
+            Some(&next) => between(s, scores[next]),
             None => below(s),
         };
         cuts.push(Cut {
@@ -112,17 +109,9 @@ fn cut_points(scores: &[f64], is_anomaly: &[bool]) -> Vec<Cut> {
             },
             tau,
         });
+        start = end;
     }
     cuts
-}
-
-/// Every distinct cut point as (τ, validation confusion matrix), from "flag
-/// nothing" to "flag everything": the points of the PR and ROC curves.
-pub fn cuts(scores: &[f64], is_anomaly: &[bool]) -> Vec<(f64, Confusion)> {
-    cut_points(scores, is_anomaly)
-        .into_iter()
-        .map(|c| (c.tau, c.c))
-        .collect()
 }
 
 /// A policy's objective as a function of the confusion matrix.
@@ -201,17 +190,30 @@ fn chosen(cut: Cut) -> Choice {
 
 /// Chooses τ on validation by the policy.
 pub fn choose(policy: ThresholdPolicy, scores: &[f64], is_anomaly: &[bool]) -> Choice {
-    let cuts = cut_points(scores, is_anomaly);
+    match policy {
+        ThresholdPolicy::Fixed { .. } => choose_from(policy, scores, is_anomaly, &[]),
+        _ => choose_from(policy, scores, is_anomaly, &cuts(scores, is_anomaly)),
+    }
+}
+
+/// [`choose`] from the scores' cut points ([`cuts_ranked`]); a fixed τ
+/// reads only the scores.
+pub fn choose_from(
+    policy: ThresholdPolicy,
+    scores: &[f64],
+    is_anomaly: &[bool],
+    cuts: &[Cut],
+) -> Choice {
     let recall = |c: &Confusion| (c.tp, c.tp + c.fn_);
     let fpr = |c: &Confusion| rate(c.fp, c.fp + c.tn);
     match policy {
         ThresholdPolicy::MaxF1 => chosen(
-            cuts[best_by(&cuts, |a, b| {
+            cuts[best_by(cuts, |a, b| {
                 cmp_fraction(a.f1_fraction(), b.f1_fraction()).is_gt()
             })],
         ),
         ThresholdPolicy::MaxFBeta { beta } => {
-            chosen(cuts[best_by(&cuts, |a, b| f_beta(a, beta) > f_beta(b, beta))])
+            chosen(cuts[best_by(cuts, |a, b| f_beta(a, beta) > f_beta(b, beta))])
         }
         ThresholdPolicy::AlarmBudget {
             max_false_positive_rate: r,
@@ -219,7 +221,7 @@ pub fn choose(policy: ThresholdPolicy, scores: &[f64], is_anomaly: &[bool]) -> C
             // "Flag nothing" has rate 0, so the budget is always met.
             let ok = |c: &Confusion| fpr(c) <= r;
             chosen(
-                cuts[best_by(&cuts, |a, b| {
+                cuts[best_by(cuts, |a, b| {
                     ok(a) && (!ok(b) || cmp_fraction(recall(a), recall(b)).is_gt())
                 })],
             )
@@ -236,7 +238,7 @@ pub fn choose(policy: ThresholdPolicy, scores: &[f64], is_anomaly: &[bool]) -> C
         }
         ThresholdPolicy::PrecisionTarget { min_precision: p } => {
             let ok = |c: &Confusion| c.tp + c.fp > 0 && rate(c.tp, c.tp + c.fp) >= p;
-            let k = best_by(&cuts, |a, b| {
+            let k = best_by(cuts, |a, b| {
                 ok(a) && (!ok(b) || cmp_fraction(recall(a), recall(b)).is_gt())
             });
             if ok(&cuts[k].c) {
@@ -244,7 +246,7 @@ pub fn choose(policy: ThresholdPolicy, scores: &[f64], is_anomaly: &[bool]) -> C
             }
             // Unmet: the closest point is the highest precision (then recall).
             let prec = |c: &Confusion| (c.tp, c.tp + c.fp);
-            let k = best_by(&cuts, |a, b| {
+            let k = best_by(cuts, |a, b| {
                 cmp_fraction(prec(a), prec(b))
                     .then(cmp_fraction(recall(a), recall(b)))
                     .is_gt()
@@ -267,7 +269,7 @@ pub fn choose(policy: ThresholdPolicy, scores: &[f64], is_anomaly: &[bool]) -> C
             false_alarm,
         } => {
             let cost = |c: &Confusion| missed_anomaly * c.fn_ as f64 + false_alarm * c.fp as f64;
-            chosen(cuts[best_by(&cuts, |a, b| cost(a) < cost(b))])
+            chosen(cuts[best_by(cuts, |a, b| cost(a) < cost(b))])
         }
         ThresholdPolicy::Fixed { tau, ln_epsilon } => {
             let tau = tau.or(ln_epsilon.map(|l| -l)).unwrap_or(0.0);

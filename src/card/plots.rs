@@ -46,7 +46,7 @@ pub struct SplitScores<'a> {
     pub tau: f64,
     /// Every cut point of these scores, from [`threshold::cuts`] (computed
     /// once for all of a split's figures).
-    pub cuts: &'a [(f64, Confusion)],
+    pub cuts: &'a [threshold::Cut],
 }
 
 const NORMAL: RGBColor = RGBColor(37, 99, 235);
@@ -173,8 +173,9 @@ pub fn precision_recall(s: SplitScores<'_>) -> Result<Plot> {
     let cuts = s.cuts;
     let points: Vec<(f64, f64)> = cuts
         .iter()
-        .filter(|(_, c)| c.tp + c.fp > 0)
-        .map(|(_, c)| (recall(c), c.tp as f64 / (c.tp + c.fp) as f64))
+        .map(|cut| &cut.c)
+        .filter(|c| c.tp + c.fp > 0)
+        .map(|c| (recall(c), c.tp as f64 / (c.tp + c.fp) as f64))
         .collect();
     let points = thin(&points, (1.0, 1.0));
     let at = Confusion::at(s.scores, s.is_anomaly, s.tau);
@@ -232,7 +233,10 @@ pub fn precision_recall(s: SplitScores<'_>) -> Result<Plot> {
 /// True-positive rate against false-positive rate, with the operating point.
 pub fn roc(s: SplitScores<'_>) -> Result<Plot> {
     let cuts = s.cuts;
-    let points: Vec<(f64, f64)> = cuts.iter().map(|(_, c)| (fpr(c), recall(c))).collect();
+    let points: Vec<(f64, f64)> = cuts
+        .iter()
+        .map(|cut| (fpr(&cut.c), recall(&cut.c)))
+        .collect();
     let points = thin(&points, (1.0, 1.0));
     let at = Confusion::at(s.scores, s.is_anomaly, s.tau);
     let op = (fpr(&at), recall(&at));
@@ -287,7 +291,7 @@ pub fn objective(policy: ThresholdPolicy, s: SplitScores<'_>) -> Result<Plot> {
     let xr = axis_range(&ln_eps, &[-s.tau]);
     let mut points: Vec<(f64, f64)> = cuts
         .iter()
-        .map(|(tau, c)| (-tau, value(c)))
+        .map(|cut| (-cut.tau, value(&cut.c)))
         .filter(|(x, _)| xr.contains(x))
         .collect();
     points.sort_by(|a, b| a.0.total_cmp(&b.0));
