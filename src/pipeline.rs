@@ -233,6 +233,8 @@ pub struct Replay {
     pub key_fingerprint: String,
     /// The recorded path of the spec from the run directory.
     pub path_from_run: Option<String>,
+    /// The recorded repository state of the spec (it may have moved on since).
+    pub provenance: Option<crate::audit::provenance::Provenance>,
 }
 
 /// Runs the whole protocol and writes the signed run directory.
@@ -285,6 +287,18 @@ fn execute(
     let clock = Instant::now();
 
     let progress = opts.progress;
+    // The repository state as the run begins, read by git in the background
+    // while the data is read (a recomputation keeps the recorded state).
+    let provenance = match replay {
+        Some(r) => {
+            let p = r.provenance.clone();
+            std::thread::spawn(move || p)
+        }
+        None => {
+            let spec = opts.spec.clone();
+            std::thread::spawn(move || crate::audit::provenance::of(&spec))
+        }
+    };
     // Streamed: the training rows are summarised by moments per feature set
     // and their content hashes; only validation and test rows are kept.
     let (data, hashes, splits, streamed) = if plan.stream {
@@ -582,7 +596,7 @@ fn execute(
             blake3: spec_blake3.clone(),
             path_from_run,
         },
-        provenance: crate::audit::provenance::of(&opts.spec),
+        provenance: provenance.join().unwrap_or(None),
         inputs: data
             .files
             .iter()
@@ -1331,6 +1345,7 @@ pub fn verify_by_recomputation(
         openings: serde_json::from_value(run["test-openings"].clone()).unwrap_or(None),
         key_fingerprint: manifest.key_fingerprint.clone(),
         path_from_run: run["spec"]["path-from-run"].as_str().map(str::to_string),
+        provenance: serde_json::from_value(run["provenance"].clone()).unwrap_or(None),
     };
     let opts = RunOptions {
         spec: spec.to_path_buf(),

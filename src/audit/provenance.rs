@@ -1,13 +1,13 @@
 //! Ties a run to the version-control state of its spec: when the spec sits in
 //! a git repository, the commit checked out and whether the work tree had
-//! changes. Reads only; a missing git or a spec outside a repository gives
+//! changes when the run began (so the run's own ledger entry does not count). Reads only; a missing git or a spec outside a repository gives
 //! no provenance rather than an error.
 
 use std::path::Path;
 use std::process::Command;
 
 /// The repository state of the spec's directory.
-#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct Provenance {
     /// The commit checked out (full hash).
