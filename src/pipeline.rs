@@ -387,17 +387,12 @@ fn execute(
                     let validation_ranked = metrics::Ranked::new(&validation_scores, &val_y);
                     drop(t);
                     let t = crate::progress::part("threshold");
-                    let choice = match plan.threshold {
-                        ThresholdPolicy::Fixed { .. } => {
-                            threshold::choose_from(plan.threshold, &validation_scores, &val_y, &[])
-                        }
-                        _ => threshold::choose_from(
-                            plan.threshold,
-                            &validation_scores,
-                            &val_y,
-                            &threshold::cuts_ranked(&validation_scores, &validation_ranked),
-                        ),
-                    };
+                    let choice = threshold::choose_ranked(
+                        plan.threshold,
+                        &validation_scores,
+                        &val_y,
+                        &validation_ranked,
+                    );
                     drop(t);
                     let t = crate::progress::part("validation metrics");
                     let validation = Metrics::of_ranked(

@@ -196,6 +196,19 @@ pub fn choose(policy: ThresholdPolicy, scores: &[f64], is_anomaly: &[bool]) -> C
     }
 }
 
+/// [`choose`] from the scores' ranking (no sort).
+pub fn choose_ranked(
+    policy: ThresholdPolicy,
+    scores: &[f64],
+    is_anomaly: &[bool],
+    r: &Ranked,
+) -> Choice {
+    match policy {
+        ThresholdPolicy::Fixed { .. } => choose_from(policy, scores, is_anomaly, &[]),
+        _ => choose_from(policy, scores, is_anomaly, &cuts_ranked(scores, r)),
+    }
+}
+
 /// [`choose`] from the scores' cut points ([`cuts_ranked`]); a fixed τ
 /// reads only the scores.
 pub fn choose_from(
