@@ -190,10 +190,7 @@ fn chosen(cut: Cut) -> Choice {
 
 /// Chooses τ on validation by the policy.
 pub fn choose(policy: ThresholdPolicy, scores: &[f64], is_anomaly: &[bool]) -> Choice {
-    match policy {
-        ThresholdPolicy::Fixed { .. } => choose_from(policy, scores, is_anomaly, &[]),
-        _ => choose_from(policy, scores, is_anomaly, &cuts(scores, is_anomaly)),
-    }
+    choose_from(policy, scores, is_anomaly, || cuts(scores, is_anomaly))
 }
 
 /// [`choose`] from the scores' ranking (no sort).
@@ -203,20 +200,22 @@ pub fn choose_ranked(
     is_anomaly: &[bool],
     r: &Ranked,
 ) -> Choice {
-    match policy {
-        ThresholdPolicy::Fixed { .. } => choose_from(policy, scores, is_anomaly, &[]),
-        _ => choose_from(policy, scores, is_anomaly, &cuts_ranked(scores, r)),
-    }
+    choose_from(policy, scores, is_anomaly, || cuts_ranked(scores, r))
 }
 
-/// [`choose`] from the scores' cut points ([`cuts_ranked`]); a fixed τ
-/// reads only the scores.
-pub fn choose_from(
+/// [`choose`] with the scores' cut points made by `make_cuts`, which a fixed
+/// τ does not need (it reads only the scores).
+fn choose_from(
     policy: ThresholdPolicy,
     scores: &[f64],
     is_anomaly: &[bool],
-    cuts: &[Cut],
+    make_cuts: impl FnOnce() -> Vec<Cut>,
 ) -> Choice {
+    let cuts = match policy {
+        ThresholdPolicy::Fixed { .. } => Vec::new(),
+        _ => make_cuts(),
+    };
+    let cuts = cuts.as_slice();
     let recall = |c: &Confusion| (c.tp, c.tp + c.fn_);
     let fpr = |c: &Confusion| rate(c.fp, c.fp + c.tn);
     match policy {
