@@ -141,24 +141,22 @@ fn kmeans(x: &[Vec<f64>], k: usize, rng: &mut rand_chacha::ChaCha8Rng) -> Vec<us
 /// Rows per parallel task of the E-step.
 const ROWS_PER_TASK: usize = 1024;
 
-/// One E-step over the row-major `xs` (d values a row): `lp[c][i]` = ln wᶜ +
-/// ln Nᶜ(xᵢ), `ll[i]` = ln Σ_c exp lp[c][i] and `resp[c][i]` = exp(lp[c][i] −
-/// ll[i]). Every row's values are computed alone, by the same operations in
-/// the same order on any number of threads, so the bits do not depend on the
-/// thread count.
-fn e_step(
+/// `lp[c][i]` = ln wᶜ + ln Nᶜ(xᵢ) for the row-major `xs` (d values a row),
+/// and `ll[i]` = ln Σ_c exp lp[c][i], by blocks of rows on all cores. Every
+/// row's values are computed alone, by the same operations in the same order
+/// on any number of threads, so the bits do not depend on the thread count.
+fn log_terms(
     xs: &[f64],
     d: usize,
     weights: &[f64],
     comps: &[Gaussian],
     lp: &mut [Vec<f64>],
     ll: &mut [f64],
-    resp: &mut [Vec<f64>],
 ) {
     use rayon::prelude::*;
     let k = weights.len();
-    let ln_w: Vec<f64> = weights.iter().map(|w| libm::log(*w)).collect();
-    for ((lpc, g), lw) in lp.iter_mut().zip(comps).zip(&ln_w) {
+    for ((lpc, g), w) in lp.iter_mut().zip(comps).zip(weights) {
+        let lw = libm::log(*w);
         lpc.par_chunks_mut(ROWS_PER_TASK)
             .zip(xs.par_chunks(ROWS_PER_TASK * d))
             .for_each(|(out, rows)| {
@@ -180,7 +178,22 @@ fn e_step(
                 *o = logsumexp(&buf);
             }
         });
-    for (rc, lpc) in resp.iter_mut().zip(lp) {
+}
+
+/// One E-step: [`log_terms`], then `resp[c][i]` = exp(lp[c][i] − ll[i]).
+fn e_step(
+    xs: &[f64],
+    d: usize,
+    weights: &[f64],
+    comps: &[Gaussian],
+    lp: &mut [Vec<f64>],
+    ll: &mut [f64],
+    resp: &mut [Vec<f64>],
+) {
+    use rayon::prelude::*;
+    log_terms(xs, d, weights, comps, lp, ll);
+    let ll = &*ll;
+    for (rc, lpc) in resp.iter_mut().zip(&*lp) {
         rc.par_chunks_mut(ROWS_PER_TASK)
             .zip(lpc.par_chunks(ROWS_PER_TASK))
             .zip(ll.par_chunks(ROWS_PER_TASK))
@@ -383,33 +396,17 @@ struct Fitted {
 
 impl Model for Fitted {
     fn score(&self, x: ArrayView2<'_, f64>) -> Vec<f64> {
-        let m = x.nrows();
+        let (m, d) = x.dim();
         let x = x.as_standard_layout();
         let xs = x.as_slice().expect("a standard-layout array is contiguous");
-        let lp: Vec<Vec<f64>> = self
-            .mixture
-            .weights
-            .iter()
-            .zip(&self.mixture.components)
-            .map(|(w, g)| {
-                let mut v = vec![0.0; m];
-                g.neg_log_density_rows(xs, &mut v);
-                let lw = libm::log(*w);
-                for v in v.iter_mut() {
-                    *v = lw - *v;
-                }
-                v
-            })
-            .collect();
-        let mut buf = vec![0.0; self.k];
-        (0..m)
-            .map(|i| {
-                for (b, lpc) in buf.iter_mut().zip(&lp) {
-                    *b = lpc[i];
-                }
-                -logsumexp(&buf)
-            })
-            .collect()
+        let mut lp = vec![vec![0.0; m]; self.k];
+        let mut ll = vec![0.0; m];
+        let mx = &self.mixture;
+        log_terms(xs, d, &mx.weights, &mx.components, &mut lp, &mut ll);
+        for v in ll.iter_mut() {
+            *v = -*v;
+        }
+        ll
     }
 
     fn params(&self) -> Params {
