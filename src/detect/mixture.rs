@@ -138,7 +138,7 @@ fn kmeans(x: &[Vec<f64>], k: usize, rng: &mut rand_chacha::ChaCha8Rng) -> Vec<us
     assign
 }
 
-/// Rows per parallel task of the E-step.
+/// Rows per parallel task of the E-step and of scoring.
 const ROWS_PER_TASK: usize = 1024;
 
 /// `lp[c][i]` = ln wᶜ + ln Nᶜ(xᵢ) for the row-major `xs` (d values a row),
@@ -180,20 +180,11 @@ fn log_terms(
         });
 }
 
-/// One E-step: [`log_terms`], then `resp[c][i]` = exp(lp[c][i] − ll[i]).
-fn e_step(
-    xs: &[f64],
-    d: usize,
-    weights: &[f64],
-    comps: &[Gaussian],
-    lp: &mut [Vec<f64>],
-    ll: &mut [f64],
-    resp: &mut [Vec<f64>],
-) {
+/// The E-step's responsibilities from [`log_terms`]: `resp[c][i]` =
+/// exp(lp[c][i] − ll[i]), by blocks of rows on all cores.
+fn responsibilities(lp: &[Vec<f64>], ll: &[f64], resp: &mut [Vec<f64>]) {
     use rayon::prelude::*;
-    log_terms(xs, d, weights, comps, lp, ll);
-    let ll = &*ll;
-    for (rc, lpc) in resp.iter_mut().zip(&*lp) {
+    for (rc, lpc) in resp.iter_mut().zip(lp) {
         rc.par_chunks_mut(ROWS_PER_TASK)
             .zip(lpc.par_chunks(ROWS_PER_TASK))
             .zip(ll.par_chunks(ROWS_PER_TASK))
@@ -262,7 +253,8 @@ impl GaussianMixture {
         let mut mixture = None;
         for _ in 0..self.max_iterations {
             let (weights, comps) = self.m_step(x, &resp, floor, features)?;
-            e_step(xs, d, &weights, &comps, &mut lp, &mut ll, &mut resp);
+            log_terms(xs, d, &weights, &comps, &mut lp, &mut ll);
+            responsibilities(&lp, &ll, &mut resp);
             // Summed in row order, whatever the threads did.
             let total = ll.iter().fold(0.0, |a, l| a + l);
             let mean_ll = total / m as f64;
