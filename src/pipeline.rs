@@ -516,6 +516,7 @@ fn execute(
             .iter()
             .map(|f| f.apply(&data, &test_rows))
             .collect::<Result<_>>()?;
+        let t = crate::progress::part("test scores");
         let mut test_scores = Vec::new();
         for c in &candidates {
             test_scores.push(checked_scores(
@@ -526,6 +527,7 @@ fn execute(
                 &data,
             )?);
         }
+        drop(t);
         (test_rows, test_scores, test_y, Some(openings))
     } else {
         (vec![], vec![vec![]; candidates.len()], vec![], None)

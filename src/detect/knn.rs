@@ -5,12 +5,27 @@
 //!
 //! Distances are Euclidean on features standardised by the training mean and
 //! standard deviation (divisor m), and the score adds Σ ln sd_j so that p̂ is
-//! a density in the features' own units. The search is exact: a k-d tree
-//! (Bentley 1975; leaves of 16 rows, split at the median of the widest
-//! feature) prunes only boxes that cannot hold a nearer row, queries run on
-//! all cores (rayon), and each distance is summed in feature order, so the
-//! result equals a brute-force search and does not depend on the thread count. A distance below
-//! 1e-12 (a query equal to a training row) counts as 1e-12, so no score is −∞.
+//! a density in the features' own units. The search is exact and brute force:
+//! every query meets every training row. Space-partitioning trees prune little
+//! at a dozen or more correlated features (a k-d tree visited most leaves at 16),
+//! so the work is arranged for the CPU instead, in two steps.
+//!
+//! 1. A screen: ‖q − t‖² = ‖q‖² + ‖t‖² − 2 q·t for a block of queries against
+//!    a panel of [`LANES`] training rows (stored feature-major, so each loaded
+//!    value serves several queries), by fused multiply-adds in vector
+//!    registers (AVX-512 or AVX2 where the CPU has them). This form loses
+//!    digits to cancellation, so it only decides which rows to look at: a row
+//!    is passed on when its screened value is within a margin of the current
+//!    k-th smallest distance. The margin, 1e-9 (‖q‖² + max ‖t‖²), is some
+//!    10⁵ times the worst rounding error of either form at these sizes, so
+//!    no row that could be among the k nearest is passed over.
+//! 2. The exact distance of each row passed on: Σ_j (q_j − t_j)² summed in
+//!    feature order from zero, no fused operations, as the plain loop does.
+//!
+//! The k smallest exact distances are kept, so the result has the bits of the
+//! plain loop over all rows, whatever the CPU, vector width or thread count
+//! (a test compares). Queries run on all cores (rayon). A distance below 1e-12
+//! (a query equal to a training row) counts as 1e-12, so no score is −∞.
 
 use ndarray::ArrayView2;
 use rayon::prelude::*;
@@ -21,6 +36,15 @@ use crate::error::{Error, Result};
 const NAME: &str = "knn-distance";
 /// Smallest distance used (see the module docs).
 const MIN_DISTANCE: f64 = 1e-12;
+/// Training rows per panel.
+const LANES: usize = 16;
+/// Panels per tile: a block of queries meets all panels of one tile (128 rows,
+/// 17 KiB at 16 features) before the next tile, so the tile stays in cache.
+const TILE_PANELS: usize = 8;
+/// Queries per parallel task.
+const TASK_QUERIES: usize = 64;
+/// Relative width of the screen's margin (see the module docs).
+const SCREEN_MARGIN: f64 = 1e-9;
 
 /// The k-nearest-neighbour detector.
 #[derive(Debug, Clone, Copy)]
@@ -34,82 +58,60 @@ struct Fitted {
     d: usize,
     mean: Vec<f64>,
     sd: Vec<f64>,
-    /// Standardised training rows, row-major, in tree order.
-    train: Vec<f64>,
-    tree: Vec<Node>,
+    /// Standardised training rows, row-major (for the exact distances).
+    rows: Vec<f64>,
+    /// The same rows in panels for the screen: panel p (rows p·LANES ..
+    /// p·LANES + LANES) is `d + 1` groups of LANES values, first ‖t‖² of each
+    /// lane, then feature j's values; the last panel's padding lanes have
+    /// ‖t‖² = +∞ and features 0, so they never pass the screen.
+    panels: Vec<f64>,
+    /// max ‖t‖² over the training rows.
+    max_norm: f64,
     m: usize,
     constant: f64,
 }
 
-/// A k-d tree node over the rows `start..end` of the tree-ordered training data.
-#[derive(Debug, Clone)]
-enum Node {
-    Leaf {
-        start: usize,
-        end: usize,
-    },
-    Split {
-        dim: usize,
-        value: f64,
-        left: usize,
-        right: usize,
-    },
+/// The plain squared distance: Σ_j (q_j − t_j)² in feature order from zero.
+#[inline(always)]
+fn sq_distance(q: &[f64], t: &[f64]) -> f64 {
+    let mut s = 0.0;
+    for (a, b) in q.iter().zip(t) {
+        let diff = a - b;
+        s += diff * diff;
+    }
+    s
 }
 
-const LEAF: usize = 16;
-
-/// Builds the tree over `idx` (row indices into `rows`), appending the rows in
-/// tree order to `ordered`; returns the node's index.
-fn build(
-    rows: &[f64],
-    d: usize,
-    idx: &mut [usize],
-    ordered: &mut Vec<f64>,
-    tree: &mut Vec<Node>,
-) -> usize {
-    let at = tree.len();
-    if idx.len() <= LEAF {
-        let start = ordered.len() / d;
-        for &i in idx.iter() {
-            ordered.extend_from_slice(&rows[i * d..(i + 1) * d]);
-        }
-        tree.push(Node::Leaf {
-            start,
-            end: start + idx.len(),
-        });
-        return at;
+/// Lays out row-major standardised rows (`m` × `d`) in panels (see
+/// [`Fitted::panels`]); returns them with max ‖t‖².
+fn to_panels(rows: &[f64], m: usize, d: usize) -> (Vec<f64>, f64) {
+    let n_panels = m.div_ceil(LANES);
+    let width = (d + 1) * LANES;
+    let mut panels = vec![0.0; n_panels * width];
+    for p in 0..n_panels {
+        panels[p * width..p * width + LANES].fill(f64::INFINITY);
     }
-    let spread = |j: usize| {
-        let (lo, hi) = idx
-            .iter()
-            .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &i| {
-                (lo.min(rows[i * d + j]), hi.max(rows[i * d + j]))
-            });
-        hi - lo
-    };
-    let dim = (0..d).fold(0, |best, j| if spread(j) > spread(best) { j } else { best });
-    let mid = idx.len() / 2;
-    idx.select_nth_unstable_by(mid, |&a, &b| {
-        rows[a * d + dim]
-            .total_cmp(&rows[b * d + dim])
-            .then(a.cmp(&b))
-    });
-    let value = rows[idx[mid] * d + dim];
-    tree.push(Node::Leaf { start: 0, end: 0 });
-    let (l, r) = idx.split_at_mut(mid);
-    let left = build(rows, d, l, ordered, tree);
-    let right = build(rows, d, r, ordered, tree);
-    tree[at] = Node::Split {
-        dim,
-        value,
-        left,
-        right,
-    };
-    at
+    let mut max_norm = 0.0f64;
+    for (i, row) in rows.chunks_exact(d).enumerate() {
+        let (p, lane) = (i / LANES, i % LANES);
+        let norm: f64 = row.iter().map(|v| v * v).sum();
+        max_norm = max_norm.max(norm);
+        panels[p * width + lane] = norm;
+        for (j, &v) in row.iter().enumerate() {
+            panels[p * width + (j + 1) * LANES + lane] = v;
+        }
+    }
+    (panels, max_norm)
 }
 
 impl Detector for KnnDistance {
     fn fit(&self, train: ArrayView2<'_, f64>, features: &[String]) -> Result<Box<dyn Model>> {
+        Ok(Box::new(self.fit_knn(train, features)?))
+    }
+}
+
+impl KnnDistance {
+    fn fit_knn(&self, train: ArrayView2<'_, f64>, features: &[String]) -> Result<Fitted> {
         refuse_constant(NAME, train, features)?;
         let (m, d) = train.dim();
         if m < self.k {
@@ -137,94 +139,235 @@ impl Detector for KnnDistance {
                 flat.push((row[j] - mean[j]) / sd[j]);
             }
         }
-        let mut idx: Vec<usize> = (0..m).collect();
-        let mut ordered = Vec::with_capacity(m * d);
-        let mut tree = Vec::new();
-        build(&flat, d, &mut idx, &mut ordered, &mut tree);
+        let (panels, max_norm) = to_panels(&flat, m, d);
         let half_d = d as f64 / 2.0;
         let ln_unit_ball =
             half_d * ln(std::f64::consts::PI) - statrs::function::gamma::ln_gamma(half_d + 1.0);
         let constant = ln_unit_ball + ln(m as f64) - ln(self.k as f64)
             + sd.iter().map(|s| ln(*s)).sum::<f64>();
-        Ok(Box::new(Fitted {
+        Ok(Fitted {
             k: self.k,
             d,
             mean,
             sd,
-            train: ordered,
-            tree,
+            rows: flat,
+            panels,
+            max_norm,
             m,
             constant,
-        }))
+        })
     }
 }
 
-impl Fitted {
-    /// The k-th smallest squared distance from `q` (standardised) to the training rows.
-    fn kth_sq_distance(&self, q: &[f64]) -> f64 {
-        // The k smallest so far, kept sorted (k is small).
-        let mut best: Vec<f64> = Vec::with_capacity(self.k + 1);
-        self.visit(0, q, &mut best);
-        best[self.k - 1]
+/// The k smallest values seen so far, ascending (k is small).
+struct Best {
+    k: usize,
+    values: Vec<f64>,
+}
+
+impl Best {
+    fn new(k: usize) -> Self {
+        Best {
+            k,
+            values: Vec::with_capacity(k + 1),
+        }
     }
 
-    fn visit(&self, node: usize, q: &[f64], best: &mut Vec<f64>) {
-        let d = self.d;
-        match self.tree[node] {
-            Node::Leaf { start, end } => {
-                for t in self.train[start * d..end * d].chunks_exact(d) {
-                    let mut s = 0.0;
-                    for j in 0..d {
-                        let diff = q[j] - t[j];
-                        s += diff * diff;
-                    }
-                    if best.len() < self.k || s < best[best.len() - 1] {
-                        let at = best.partition_point(|&b| b <= s);
-                        best.insert(at, s);
-                        best.truncate(self.k);
+    /// A value must be below this to enter (∞ until k values are held).
+    #[inline(always)]
+    fn bound(&self) -> f64 {
+        if self.values.len() < self.k {
+            f64::INFINITY
+        } else {
+            self.values[self.k - 1]
+        }
+    }
+
+    #[inline(always)]
+    fn offer(&mut self, s: f64) {
+        if self.values.len() < self.k || s < self.values[self.values.len() - 1] {
+            let at = self.values.partition_point(|&b| b <= s);
+            self.values.insert(at, s);
+            self.values.truncate(self.k);
+        }
+    }
+}
+
+/// Screened values ‖t‖² − 2 q·t (‖q − t‖² less ‖q‖²) of a block of `Q`
+/// queries against one panel's LANES rows; `neg2q` holds −2q feature-major
+/// (feature j of the Q queries at `[j·Q ..][..Q]`). `FUSED` uses fused
+/// multiply-adds (only where the CPU has them).
+#[inline(always)]
+fn screen_block<const Q: usize, const FUSED: bool>(
+    neg2q: &[f64],
+    panel: &[f64],
+) -> [[f64; LANES]; Q] {
+    let (norms, features) = panel.split_at(LANES);
+    let norms: &[f64; LANES] = norms.try_into().unwrap();
+    let mut acc = [*norms; Q];
+    for (t, qs) in features.chunks_exact(LANES).zip(neg2q.chunks_exact(Q)) {
+        let t: &[f64; LANES] = t.try_into().unwrap();
+        let qs: &[f64; Q] = qs.try_into().unwrap();
+        for (a, &qv) in acc.iter_mut().zip(qs) {
+            for l in 0..LANES {
+                a[l] = if FUSED {
+                    qv.mul_add(t[l], a[l])
+                } else {
+                    a[l] + qv * t[l]
+                };
+            }
+        }
+    }
+    acc
+}
+
+impl Fitted {
+    /// The k-th smallest squared distance from each standardised query in
+    /// `queries` (row-major) to the training rows, into `out`: the screen
+    /// over blocks of `Q` queries, the exact distance for each row it passes.
+    #[inline(always)]
+    fn kth_sq_distances_generic<const Q: usize, const FUSED: bool>(
+        &self,
+        queries: &[f64],
+        out: &mut [f64],
+    ) {
+        let (d, k) = (self.d, self.k);
+        let n = out.len();
+        let width = (d + 1) * LANES;
+        let query = |i: usize| &queries[i * d..(i + 1) * d];
+        let row = |r: usize| &self.rows[r * d..(r + 1) * d];
+        // Each query starts from the exact distances of the first k rows;
+        // the screen then skips those rows.
+        let mut best: Vec<Best> = (0..n)
+            .map(|i| {
+                let mut b = Best::new(k);
+                for r in 0..k {
+                    b.offer(sq_distance(query(i), row(r)));
+                }
+                b
+            })
+            .collect();
+        let norms: Vec<f64> = (0..n)
+            .map(|i| query(i).iter().map(|v| v * v).sum())
+            .collect();
+        let margins: Vec<f64> = norms
+            .iter()
+            .map(|qn| SCREEN_MARGIN * (qn + self.max_norm))
+            .collect();
+        let mut block = vec![0.0; Q * d];
+        for (tile_no, tile) in self.panels.chunks(TILE_PANELS * width).enumerate() {
+            for b0 in (0..n).step_by(Q) {
+                let real = Q.min(n - b0);
+                // Pad a short block by repeating its last query (results unused).
+                for qi in 0..Q {
+                    let q = query(b0 + qi.min(real - 1));
+                    for (j, v) in q.iter().enumerate() {
+                        block[j * Q + qi] = -2.0 * v;
                     }
                 }
-            }
-            Node::Split {
-                dim,
-                value,
-                left,
-                right,
-            } => {
-                let gap = q[dim] - value;
-                let (near, far) = if gap < 0.0 {
-                    (left, right)
-                } else {
-                    (right, left)
-                };
-                self.visit(near, q, best);
-                // A box farther than the current k-th distance holds no nearer row.
-                if best.len() < self.k || gap * gap <= best[best.len() - 1] {
-                    self.visit(far, q, best);
+                for (p_in_tile, panel) in tile.chunks_exact(width).enumerate() {
+                    let first_row = (tile_no * TILE_PANELS + p_in_tile) * LANES;
+                    let acc = screen_block::<Q, FUSED>(&block, panel);
+                    for (qi, a) in acc.iter().enumerate().take(real) {
+                        let i = b0 + qi;
+                        let limit = best[i].bound() + margins[i] - norms[i];
+                        let hit = a.iter().fold(false, |h, &v| h | (v <= limit));
+                        if !hit {
+                            continue;
+                        }
+                        for (l, &v) in a.iter().enumerate() {
+                            let r = first_row + l;
+                            if v <= limit && r >= k && r < self.m {
+                                // From the panel, still in cache: the same
+                                // values as `row(r)`, the same operations.
+                                let mut s = 0.0;
+                                for (qj, t) in
+                                    query(i).iter().zip(panel[LANES..].chunks_exact(LANES))
+                                {
+                                    let diff = qj - t[l];
+                                    s += diff * diff;
+                                }
+                                best[i].offer(s);
+                            }
+                        }
+                    }
                 }
             }
         }
+        for (o, b) in out.iter_mut().zip(&best) {
+            *o = b.values[k - 1];
+        }
+    }
+
+    /// The search compiled for AVX-512 with fused multiply-adds.
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx512f,avx2,fma")]
+    fn kth_sq_distances_avx512(&self, queries: &[f64], out: &mut [f64]) {
+        self.kth_sq_distances_generic::<4, true>(queries, out)
+    }
+
+    /// The search compiled for AVX2 with fused multiply-adds.
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2,fma")]
+    fn kth_sq_distances_avx2(&self, queries: &[f64], out: &mut [f64]) {
+        self.kth_sq_distances_generic::<2, true>(queries, out)
+    }
+
+    fn kth_sq_distances(&self, queries: &[f64], out: &mut [f64]) {
+        // The screen needs finite norms; far outside the float range's
+        // square root, every row gets its exact distance.
+        let tame = self.max_norm < 1e150
+            && queries
+                .chunks_exact(self.d)
+                .all(|q| q.iter().map(|v| v * v).sum::<f64>() < 1e150);
+        if !tame {
+            for (o, q) in out.iter_mut().zip(queries.chunks_exact(self.d)) {
+                let mut b = Best::new(self.k);
+                for t in self.rows.chunks_exact(self.d) {
+                    b.offer(sq_distance(q, t));
+                }
+                *o = b.values[self.k - 1];
+            }
+            return;
+        }
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::is_x86_feature_detected!("avx512f") && std::is_x86_feature_detected!("fma") {
+                // SAFETY: the CPU has just been seen to support AVX-512F, AVX2 and FMA.
+                return unsafe { self.kth_sq_distances_avx512(queries, out) };
+            }
+            if std::is_x86_feature_detected!("avx2") && std::is_x86_feature_detected!("fma") {
+                // SAFETY: the CPU has just been seen to support AVX2 and FMA.
+                return unsafe { self.kth_sq_distances_avx2(queries, out) };
+            }
+        }
+        // Elsewhere fused multiply-adds only where the target has them.
+        self.kth_sq_distances_generic::<2, { cfg!(any(target_feature = "fma", target_arch = "aarch64")) }>(
+            queries, out,
+        )
     }
 }
 
 impl Model for Fitted {
     fn score(&self, x: ArrayView2<'_, f64>) -> Vec<f64> {
-        let queries: Vec<Vec<f64>> = x
-            .rows()
-            .into_iter()
-            .map(|r| {
-                (0..self.d)
-                    .map(|j| (r[j] - self.mean[j]) / self.sd[j])
-                    .collect()
-            })
-            .collect();
-        queries
-            .par_iter()
-            .map(|q| {
-                let r = self.kth_sq_distance(q).sqrt().max(MIN_DISTANCE);
-                self.d as f64 * ln(r) + self.constant
-            })
-            .collect()
+        let d = self.d;
+        let mut queries = Vec::with_capacity(x.nrows() * d);
+        for r in x.rows() {
+            for j in 0..d {
+                queries.push((r[j] - self.mean[j]) / self.sd[j]);
+            }
+        }
+        let mut out = vec![0.0; x.nrows()];
+        out.par_chunks_mut(TASK_QUERIES)
+            .zip(queries.par_chunks(TASK_QUERIES * d.max(1)))
+            .for_each(|(o, q)| {
+                self.kth_sq_distances(q, o);
+                for s in o.iter_mut() {
+                    let r = s.sqrt().max(MIN_DISTANCE);
+                    *s = self.d as f64 * ln(r) + self.constant;
+                }
+            });
+        out
     }
 
     fn params(&self) -> Params {
@@ -290,6 +433,78 @@ mod tests {
             d.sort_by(f64::total_cmp);
             let want = 3.0 * d[4].sqrt().ln() + constant;
             assert!((all[i] - want).abs() < 1e-9, "{} vs {want}", all[i]);
+        }
+    }
+
+    /// The panel search gives the bits of the plain loop (Σ (q_j − t_j)² in
+    /// feature order, sorted, k-th value), on sizes that leave short panels and
+    /// short query blocks, with repeated training rows (ties) and queries equal
+    /// to training rows, for several k. Reference: the definition (no source needed).
+    #[test]
+    fn panels_give_the_plain_loop_bits() {
+        let mut rng = crate::rng::seeded(9, 0);
+        for &(m, n, d, k) in &[
+            (7, 3, 2, 1),
+            (37, 13, 5, 3),
+            (263, 70, 16, 5),
+            (300, 9, 3, 10),
+        ] {
+            let mut x = Array2::from_shape_fn((m, d), |_| crate::rng::unit(&mut rng) * 3.0 - 1.0);
+            // Ties: row 1 repeats row 0.
+            let row0 = x.row(0).to_owned();
+            x.row_mut(1).assign(&row0);
+            let mut q = Array2::from_shape_fn((n, d), |_| crate::rng::unit(&mut rng) * 4.0 - 2.0);
+            q.row_mut(0).assign(&row0);
+            let names: Vec<String> = (0..d).map(|j| format!("f{j}")).collect();
+            let fitted = KnnDistance { k }.fit(x.view(), &names).unwrap();
+            let Params::KnnDistance { mean, sd, .. } = fitted.params() else {
+                unreachable!()
+            };
+            let std_row = |r: ndarray::ArrayView1<'_, f64>| -> Vec<f64> {
+                (0..d).map(|j| (r[j] - mean[j]) / sd[j]).collect()
+            };
+            let train: Vec<Vec<f64>> = x.rows().into_iter().map(std_row).collect();
+            let got = fitted.score(q.view());
+            for (i, r) in q.rows().into_iter().enumerate() {
+                let qs = std_row(r);
+                let mut all: Vec<f64> = train
+                    .iter()
+                    .map(|t| {
+                        let mut s = 0.0;
+                        for j in 0..d {
+                            let diff = qs[j] - t[j];
+                            s += diff * diff;
+                        }
+                        s
+                    })
+                    .collect();
+                all.sort_by(f64::total_cmp);
+                let half_d = d as f64 / 2.0;
+                let c = half_d * ln(std::f64::consts::PI)
+                    - statrs::function::gamma::ln_gamma(half_d + 1.0)
+                    + ln(m as f64)
+                    - ln(k as f64)
+                    + sd.iter().map(|s| ln(*s)).sum::<f64>();
+                let want = d as f64 * ln(all[k - 1].sqrt().max(MIN_DISTANCE)) + c;
+                assert_eq!(
+                    got[i].to_bits(),
+                    want.to_bits(),
+                    "m {m} d {d} k {k} query {i}"
+                );
+            }
+            // Every compiled form of the screen gives the same k-th distances:
+            // plain and fused arithmetic, several block sizes.
+            let inner = KnnDistance { k }.fit_knn(x.view(), &names).unwrap();
+            let qs: Vec<f64> = q.rows().into_iter().flat_map(std_row).collect();
+            let mut dispatched = vec![0.0; n];
+            inner.kth_sq_distances(&qs, &mut dispatched);
+            let mut other = vec![0.0; n];
+            inner.kth_sq_distances_generic::<2, false>(&qs, &mut other);
+            assert_eq!(other, dispatched);
+            inner.kth_sq_distances_generic::<3, true>(&qs, &mut other);
+            assert_eq!(other, dispatched);
+            inner.kth_sq_distances_generic::<1, false>(&qs, &mut other);
+            assert_eq!(other, dispatched);
         }
     }
 }

@@ -84,59 +84,9 @@ pub(crate) fn moments(x: ArrayView2<'_, f64>, w: Option<&[f64]>) -> (Vec<f64>, V
         *s /= total;
     }
     // The lower triangle, by row a of the covariance: entries (a, 0..=a).
-    let lower: Vec<Vec<f64>> = groups(&|a| a + 1)
+    let lower: Vec<Vec<f64>> = groups(&|_| 1)
         .into_par_iter()
-        .flat_map_iter(|rows_a| {
-            let mut acc: Vec<Vec<f64>> = rows_a.clone().map(|a| vec![0.0; a + 1]).collect();
-            let width = rows_a.end;
-            // Rows are taken four at a time: each accumulator is loaded once,
-            // gets the four rows' terms in row order, and is stored once.
-            let mut c = [
-                vec![0.0; width],
-                vec![0.0; width],
-                vec![0.0; width],
-                vec![0.0; width],
-            ];
-            let centre = |c: &mut [f64], i: usize| {
-                for ((cj, v), mu) in c.iter_mut().zip(row(i)).zip(&mean) {
-                    *cj = v - mu;
-                }
-            };
-            let quads = m / 4;
-            for q in 0..quads {
-                let i = 4 * q;
-                let w = [weight(i), weight(i + 1), weight(i + 2), weight(i + 3)];
-                for (r, cr) in c.iter_mut().enumerate() {
-                    centre(cr, i + r);
-                }
-                let [c0, c1, c2, c3] = &c;
-                for (a, entries) in rows_a.clone().zip(acc.iter_mut()) {
-                    let wc = [w[0] * c0[a], w[1] * c1[a], w[2] * c2[a], w[3] * c3[a]];
-                    for ((((s, x0), x1), x2), x3) in
-                        entries.iter_mut().zip(c0).zip(c1).zip(c2).zip(c3)
-                    {
-                        let mut v = *s;
-                        v += wc[0] * x0;
-                        v += wc[1] * x1;
-                        v += wc[2] * x2;
-                        v += wc[3] * x3;
-                        *s = v;
-                    }
-                }
-            }
-            let c0 = &mut c[0];
-            for i in 4 * quads..m {
-                let wi = weight(i);
-                centre(c0, i);
-                for (a, entries) in rows_a.clone().zip(acc.iter_mut()) {
-                    let wc = wi * c0[a];
-                    for (s, cb) in entries.iter_mut().zip(c0.iter()) {
-                        *s += wc * cb;
-                    }
-                }
-            }
-            acc
-        })
+        .flat_map_iter(|rows_a| lower_rows(xs, d, w, &mean, rows_a))
         .collect();
     let mut cov = vec![0.0; d * d];
     for (a, acc) in lower.iter().enumerate() {
@@ -147,6 +97,115 @@ pub(crate) fn moments(x: ArrayView2<'_, f64>, w: Option<&[f64]>) -> (Vec<f64>, V
         }
     }
     (mean, cov)
+}
+
+/// The lower-triangle rows `rows_a` of Σ w (x − mean)(x − mean)ᵀ (unscaled) over
+/// the row-major `xs`; compiled for AVX2 where the CPU has it (the same
+/// operations lane by lane, so the same bits).
+fn lower_rows(
+    xs: &[f64],
+    d: usize,
+    w: Option<&[f64]>,
+    mean: &[f64],
+    rows_a: std::ops::Range<usize>,
+) -> Vec<Vec<f64>> {
+    #[cfg(target_arch = "x86_64")]
+    {
+        if std::is_x86_feature_detected!("avx512f") {
+            // SAFETY: the CPU has just been seen to support AVX-512F.
+            return unsafe { lower_rows_avx512(xs, d, w, mean, rows_a) };
+        }
+        if std::is_x86_feature_detected!("avx2") {
+            // SAFETY: the CPU has just been seen to support AVX2.
+            return unsafe { lower_rows_avx2(xs, d, w, mean, rows_a) };
+        }
+    }
+    lower_rows_generic(xs, d, w, mean, rows_a)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+fn lower_rows_avx512(
+    xs: &[f64],
+    d: usize,
+    w: Option<&[f64]>,
+    mean: &[f64],
+    rows_a: std::ops::Range<usize>,
+) -> Vec<Vec<f64>> {
+    lower_rows_generic(xs, d, w, mean, rows_a)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+fn lower_rows_avx2(
+    xs: &[f64],
+    d: usize,
+    w: Option<&[f64]>,
+    mean: &[f64],
+    rows_a: std::ops::Range<usize>,
+) -> Vec<Vec<f64>> {
+    lower_rows_generic(xs, d, w, mean, rows_a)
+}
+
+#[inline(always)]
+fn lower_rows_generic(
+    xs: &[f64],
+    d: usize,
+    w: Option<&[f64]>,
+    mean: &[f64],
+    rows_a: std::ops::Range<usize>,
+) -> Vec<Vec<f64>> {
+    let m = xs.len() / d.max(1);
+    let row = |i: usize| &xs[i * d..(i + 1) * d];
+    let weight = |i: usize| w.map_or(1.0, |w| w[i]);
+    // Each accumulator row is kept whole (all d entries, so the inner loops
+    // have one fixed length and run in full vectors); only its lower part,
+    // entries (a, 0..=a), is returned. Every entry is the same sum either way.
+    let n_rows = rows_a.len();
+    let mut acc = vec![0.0; n_rows * d];
+    // Rows are taken four at a time: each accumulator is loaded once,
+    // gets the four rows' terms in row order, and is stored once.
+    let mut c = [vec![0.0; d], vec![0.0; d], vec![0.0; d], vec![0.0; d]];
+    let centre = |c: &mut [f64], i: usize| {
+        for ((cj, v), mu) in c.iter_mut().zip(row(i)).zip(mean) {
+            *cj = v - mu;
+        }
+    };
+    let quads = m / 4;
+    for q in 0..quads {
+        let i = 4 * q;
+        let w = [weight(i), weight(i + 1), weight(i + 2), weight(i + 3)];
+        for (r, cr) in c.iter_mut().enumerate() {
+            centre(cr, i + r);
+        }
+        let [c0, c1, c2, c3] = &c;
+        for (a, entries) in rows_a.clone().zip(acc.chunks_exact_mut(d)) {
+            let wc = [w[0] * c0[a], w[1] * c1[a], w[2] * c2[a], w[3] * c3[a]];
+            for ((((s, x0), x1), x2), x3) in entries.iter_mut().zip(c0).zip(c1).zip(c2).zip(c3) {
+                let mut v = *s;
+                v += wc[0] * x0;
+                v += wc[1] * x1;
+                v += wc[2] * x2;
+                v += wc[3] * x3;
+                *s = v;
+            }
+        }
+    }
+    let c0 = &mut c[0];
+    for i in 4 * quads..m {
+        let wi = weight(i);
+        centre(c0, i);
+        for (a, entries) in rows_a.clone().zip(acc.chunks_exact_mut(d)) {
+            let wc = wi * c0[a];
+            for (s, cb) in entries.iter_mut().zip(c0.iter()) {
+                *s += wc * cb;
+            }
+        }
+    }
+    rows_a
+        .zip(acc.chunks_exact(d))
+        .map(|(a, entries)| entries[..=a].to_vec())
+        .collect()
 }
 
 impl Gaussian {
@@ -200,6 +259,7 @@ impl Gaussian {
     }
 
     /// −ln N(x; μ, Σ).
+    #[cfg(test)]
     pub(crate) fn neg_log_density(&self, row: &[f64], z: &mut [f64]) -> f64 {
         self.d as f64 * HALF_LN_2PI + 0.5 * self.ln_det + 0.5 * self.mahalanobis2(row, z)
     }
@@ -219,17 +279,56 @@ impl Gaussian {
     }
 
     /// −ln N for each row of the row-major `xs` (`out.len()` rows of d
-    /// values), into `out`.
+    /// values), into `out`: the same bits as [`Gaussian::neg_log_density`]
+    /// row by row (see [`Gaussian::mahalanobis2_rows`]).
+    pub(crate) fn neg_log_density_rows(&self, xs: &[f64], out: &mut [f64]) {
+        let constant = self.d as f64 * HALF_LN_2PI + 0.5 * self.ln_det;
+        self.mahalanobis2_rows(xs, out);
+        for o in out.iter_mut() {
+            *o = constant + 0.5 * *o;
+        }
+    }
+
+    /// (x − μ)ᵀ Σ⁻¹ (x − μ) for each row of the row-major `xs` (`out.len()`
+    /// rows of d values), into `out`.
     ///
     /// Rows go through the forward substitution [`BLOCK`] at a time, lane by
     /// lane, so that the CPU has independent chains to work on (one row's
-    /// substitution is a chain of dependent steps). Each row sees exactly the
-    /// operations of [`Gaussian::neg_log_density`] in the same order, so the
-    /// bits are the same as row by row.
-    pub(crate) fn neg_log_density_rows(&self, xs: &[f64], out: &mut [f64]) {
+    /// substitution is a chain of dependent steps), compiled for AVX-512F or
+    /// AVX2 where the CPU has them. Each row sees exactly the operations of
+    /// [`Gaussian::mahalanobis2`] in the same order (no fused operations), so
+    /// the bits are the same as row by row, on any CPU.
+    pub(crate) fn mahalanobis2_rows(&self, xs: &[f64], out: &mut [f64]) {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::is_x86_feature_detected!("avx512f") {
+                // SAFETY: the CPU has just been seen to support AVX-512F.
+                return unsafe { self.mahalanobis2_rows_avx512(xs, out) };
+            }
+            if std::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU has just been seen to support AVX2.
+                return unsafe { self.mahalanobis2_rows_avx2(xs, out) };
+            }
+        }
+        self.mahalanobis2_rows_generic(xs, out)
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx512f")]
+    fn mahalanobis2_rows_avx512(&self, xs: &[f64], out: &mut [f64]) {
+        self.mahalanobis2_rows_generic(xs, out)
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    fn mahalanobis2_rows_avx2(&self, xs: &[f64], out: &mut [f64]) {
+        self.mahalanobis2_rows_generic(xs, out)
+    }
+
+    #[inline(always)]
+    fn mahalanobis2_rows_generic(&self, xs: &[f64], out: &mut [f64]) {
         let d = self.d;
         assert_eq!(xs.len(), out.len() * d, "{} rows of {d} values", out.len());
-        let constant = d as f64 * HALF_LN_2PI + 0.5 * self.ln_det;
         let mut z = vec![[0.0f64; BLOCK]; d];
         let blocks = out.len() / BLOCK;
         for (rows, o) in xs.chunks_exact(d * BLOCK).zip(out.chunks_exact_mut(BLOCK)) {
@@ -250,21 +349,19 @@ impl Gaussian {
                     *qb += *zb * *zb;
                 }
             }
-            for (ob, qb) in o.iter_mut().zip(&q) {
-                *ob = constant + 0.5 * qb;
-            }
+            o.copy_from_slice(&q);
         }
         let mut zr = vec![0.0; d];
         for (row, o) in xs[blocks * BLOCK * d..]
             .chunks_exact(d)
             .zip(&mut out[blocks * BLOCK..])
         {
-            *o = self.neg_log_density(row, &mut zr);
+            *o = self.mahalanobis2(row, &mut zr);
         }
     }
 }
 
-/// Rows per block of [`Gaussian::neg_log_density_rows`].
+/// Rows per block of [`Gaussian::mahalanobis2_rows`].
 const BLOCK: usize = 8;
 
 /// Refuses fewer rows than needed for a covariance over `d` features.
@@ -377,7 +474,8 @@ mod tests {
 
     /// The blocked scores equal the row-by-row scores bit for bit, for row
     /// counts that fill whole blocks, leave a tail, or are smaller than one
-    /// block (the identity is the design of `neg_log_density_rows`).
+    /// block (the identity is the design of `mahalanobis2_rows`), and so do
+    /// the blocked squared Mahalanobis distances.
     #[test]
     fn blocked_scores_equal_row_by_row_scores() {
         let d = 5;
@@ -408,6 +506,18 @@ mod tests {
             g.neg_log_density_rows(&xs, &mut out);
             let got: Vec<u64> = out.iter().map(|v| v.to_bits()).collect();
             assert_eq!(got, expected[..n], "{n} rows");
+            g.mahalanobis2_rows(&xs, &mut out);
+            let mut plain = vec![0.0; n];
+            g.mahalanobis2_rows_generic(&xs, &mut plain);
+            for (i, ((o, p), r)) in out.iter().zip(&plain).zip(x.rows()).enumerate() {
+                let want = g.mahalanobis2(&r.to_vec(), &mut z);
+                assert_eq!(o.to_bits(), want.to_bits(), "{n} rows, row {i}");
+                assert_eq!(
+                    p.to_bits(),
+                    want.to_bits(),
+                    "{n} rows, row {i}, plain build"
+                );
+            }
         }
     }
 
@@ -456,6 +566,13 @@ mod tests {
                 assert_eq!(bits(&mu), bits(&mean), "{threads} threads");
                 assert_eq!(bits(&c), bits(&cov), "{threads} threads");
             }
+            // The plain build of the covariance sums gives the same bits as
+            // the one the CPU's vector width chose.
+            let xs = x.as_slice().unwrap();
+            assert_eq!(
+                lower_rows_generic(xs, d, weights, &mean, 0..d),
+                lower_rows(xs, d, weights, &mean, 0..d)
+            );
         }
     }
     use ndarray::{array, Array2};

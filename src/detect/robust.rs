@@ -67,23 +67,20 @@ fn fit_rows(x: ArrayView2<'_, f64>, idx: &[usize], features: &[String]) -> Optio
     Gaussian::new(mean, cov, NAME, features).ok()
 }
 
-/// The h rows of `x` nearest to `g` in Mahalanobis distance (ties by index).
+/// The h rows of `x` nearest to `g` in Mahalanobis distance (ties by index),
+/// in index order. The distances are those of [`Gaussian::mahalanobis2`] (computed
+/// by blocks of rows); the h smallest (distance, index) pairs are a set that
+/// a selection finds as surely as a full sort, since no two pairs are equal.
 fn nearest(x: ArrayView2<'_, f64>, g: &Gaussian, h: usize) -> Vec<usize> {
-    let d = x.ncols();
-    let mut z = vec![0.0; d];
-    let mut buf = vec![0.0; d];
-    let mut dist: Vec<(f64, usize)> = x
-        .rows()
-        .into_iter()
-        .enumerate()
-        .map(|(i, r)| {
-            for (b, v) in buf.iter_mut().zip(r.iter()) {
-                *b = *v;
-            }
-            (g.mahalanobis2(&buf, &mut z), i)
-        })
-        .collect();
-    dist.sort_by(|a, b| a.0.total_cmp(&b.0).then(a.1.cmp(&b.1)));
+    let x = x.as_standard_layout();
+    let xs = x.as_slice().expect("a standard-layout array is contiguous");
+    let mut q = vec![0.0; x.nrows()];
+    g.mahalanobis2_rows(xs, &mut q);
+    let mut dist: Vec<(f64, usize)> = q.into_iter().zip(0..).collect();
+    let by = |a: &(f64, usize), b: &(f64, usize)| a.0.total_cmp(&b.0).then(a.1.cmp(&b.1));
+    if h < dist.len() {
+        dist.select_nth_unstable_by(h, by);
+    }
     let mut idx: Vec<usize> = dist[..h].iter().map(|p| p.1).collect();
     idx.sort_unstable();
     idx
