@@ -38,6 +38,8 @@ DETECTORS = ("robust-gaussian", "gaussian-mixture", "knn-distance")
 
 
 def settings_args(ap):
+    ap.add_argument("--detectors", default=",".join(DETECTORS),
+                    help="comma-separated subset of %s (default: all)" % ", ".join(DETECTORS))
     ap.add_argument("--knn-k", type=int, default=5)
     ap.add_argument("--gmm-k-min", type=int, default=1)
     ap.add_argument("--gmm-k-max", type=int, default=5)
@@ -76,7 +78,7 @@ def spec_paths(data_dir, n, det):
 def write_specs(a):
     from compare import DATA
     for n in a.sizes:
-        for det in DETECTORS:
+        for det in chosen_detectors(a):
             spec, ledger, _ = spec_paths(DATA, n, det)
             lines = [
                 "# Written by scripts/bench-heavy; paths are relative to this file.",
@@ -258,18 +260,27 @@ def sanity(outdir, npz_path, det):
     return out
 
 
+def chosen_detectors(a):
+    dets = [d.strip() for d in a.detectors.split(",") if d.strip()]
+    bad = [d for d in dets if d not in DETECTORS]
+    if bad or not dets:
+        raise SystemExit("--detectors: unknown %s (choose from %s)" % (", ".join(bad) or "(none)", ", ".join(DETECTORS)))
+    return dets
+
+
 def run(a):
     from compare import (DATA, RESULTS, fmt, fmt_ratio, have_gnu_time, log, machine_info, machine_markdown, must,
                          ratio, stats3, table, timed)
     RESULTS.mkdir(parents=True, exist_ok=True)
+    dets = chosen_detectors(a)
     use_gnu_time = have_gnu_time()
     machine = machine_info(a.anomark)
     docs = []
     for n in a.sizes:
         data = DATA / ("data_%d.csv" % n)
-        reps = {det: {"anomark": [], "sklearn": []} for det in DETECTORS}
+        reps = {det: {"anomark": [], "sklearn": []} for det in dets}
         for i in range(a.repeats):
-            for det in DETECTORS:
+            for det in dets:
                 spec, ledger, outdir = spec_paths(DATA, n, det)
                 outdir.parent.mkdir(parents=True, exist_ok=True)
                 shutil.rmtree(outdir, ignore_errors=True)
@@ -293,7 +304,7 @@ def run(a):
                 r["stdout"], r["stderr"] = "", r["stderr"][-2000:]
                 reps[det]["sklearn"].append(r)
         summary, checks = {}, {}
-        for det in DETECTORS:
+        for det in dets:
             A, S = reps[det]["anomark"], reps[det]["sklearn"]
             summary[det] = {
                 "anomark_wall_s": stats3([r["wall_s"] for r in A]),
@@ -322,7 +333,7 @@ def run(a):
     mm = lambda s, d=3: "%s [%s, %s]" % (fmt(s["median"], d), fmt(s["min"], d), fmt(s["max"], d))
     rows = []
     for d in docs:
-        for det in DETECTORS:
+        for det in dets:
             s = d["summary"][det]
             rows.append(["{:,}".format(d["n"]), det, mm(s["anomark_fit_score_s"]), mm(s["sklearn_fit_score_s"]),
                          mm(s["anomark_wall_s"]), mm(s["sklearn_wall_s"]), mm(s["anomark_rss_mib"], 1),
@@ -335,7 +346,7 @@ def run(a):
               "anomark the whole run (read, hash, split, leakage proof, fit, threshold, test, metrics "
               "with bootstrap intervals, card, signing), for scikit-learn Python's start-up, imports, "
               "the CSV read, fit and score.", ""]
-    pools = docs[0]["sanity"][DETECTORS[0]]["sklearn"].get("threadpools") if docs else None
+    pools = docs[0]["sanity"][dets[0]]["sklearn"].get("threadpools") if docs else None
     parts += ["scikit-learn worker thread pools: %s; NearestNeighbors n_jobs %s, algorithm %s; "
               "GaussianMixture tol %g, max_iter %d (anomark's EM: tolerance 1e-9 on the mean "
               "log-likelihood, at most 500 iterations)." % (
@@ -344,7 +355,7 @@ def run(a):
     parts += ["## Ratios of medians", ""]
     rows = []
     for d in docs:
-        for det in DETECTORS:
+        for det in dets:
             s = d["summary"][det]
             aw = s["anomark_wall_s"]["median"]
             rows.append(["{:,}".format(d["n"]), det,
@@ -357,7 +368,7 @@ def run(a):
     parts += ["", "## Sanity: test ROC AUC (sklearn.metrics on each side's scores) and agreement", ""]
     rows = []
     for d in docs:
-        for det in DETECTORS:
+        for det in dets:
             c = d["sanity"][det]
             sk = c["sklearn"]
             if det == "gaussian-mixture":

@@ -10,17 +10,20 @@
 //! at a dozen or more correlated features (a k-d tree visited most leaves at 16),
 //! so the work is arranged for the CPU instead, in two steps.
 //!
-//! 1. A screen: ‖q − t‖² = ‖q‖² + ‖t‖² − 2 q·t for a block of queries against
-//!    a panel of [`LANES`] training rows (stored feature-major, so each loaded
-//!    value serves several queries), by fused multiply-adds in vector
-//!    registers (AVX-512 or AVX2 where the CPU has them). This form loses
-//!    digits to cancellation, so it only decides which rows to look at: a row
-//!    is passed on when its screened value is within a margin of the current
-//!    k-th smallest distance. The margin, 1e-9 (‖q‖² + max ‖t‖²), is some
-//!    10⁵ times the worst rounding error of either form at these sizes, so
-//!    no row that could be among the k nearest is passed over.
-//! 2. The exact distance of each row passed on: Σ_j (q_j − t_j)² summed in
-//!    feature order from zero, no fused operations, as the plain loop does.
+//! 1. A screen: ‖q − t‖² − ‖q‖² = ‖t‖² − 2 q·t in single precision for a
+//!    block of queries against a panel of [`LANES`] training rows (stored
+//!    feature-major, so each loaded value serves several queries), by fused
+//!    multiply-adds in vector registers (AVX-512 or AVX2 where the CPU has
+//!    them). This form loses digits to rounding and cancellation, so it only
+//!    decides which rows to look at: per query it keeps the k smallest
+//!    screened values and every row within a margin M of the k-th of them
+//!    (see [`Fitted::kth_sq_distances_generic`] for why no row among the k
+//!    nearest is lost). M = 4e-6 (d + 4)(‖q‖² + max ‖t‖²); the screen's error
+//!    is below (d + 3) 2⁻²⁴ (‖q‖² + 2 max ‖t‖²), so M is more than ten
+//!    times twice that.
+//! 2. The exact distance of each row the screen keeps: Σ_j (q_j − t_j)² in
+//!    double precision, summed in feature order from zero with no fused
+//!    operations, as the plain loop does.
 //!
 //! The k smallest exact distances are kept, so the result has the bits of the
 //! plain loop over all rows, whatever the CPU, vector width or thread count
@@ -43,8 +46,8 @@ const LANES: usize = 16;
 const TILE_PANELS: usize = 8;
 /// Queries per parallel task.
 const TASK_QUERIES: usize = 64;
-/// Relative width of the screen's margin (see the module docs).
-const SCREEN_MARGIN: f64 = 1e-9;
+/// Relative width of the screen's margin, per feature (see the module docs).
+const SCREEN_MARGIN: f64 = 4e-6;
 
 /// The k-nearest-neighbour detector.
 #[derive(Debug, Clone, Copy)]
@@ -62,9 +65,9 @@ struct Fitted {
     rows: Vec<f64>,
     /// The same rows in panels for the screen: panel p (rows p·LANES ..
     /// p·LANES + LANES) is `d + 1` groups of LANES values, first ‖t‖² of each
-    /// lane, then feature j's values; the last panel's padding lanes have
-    /// ‖t‖² = +∞ and features 0, so they never pass the screen.
-    panels: Vec<f64>,
+    /// lane, then feature j's values, all rounded to single precision; the
+    /// last panel's padding lanes (‖t‖² = +∞, features 0) are never read.
+    panels: Vec<f32>,
     /// max ‖t‖² over the training rows.
     max_norm: f64,
     m: usize,
@@ -84,21 +87,21 @@ fn sq_distance(q: &[f64], t: &[f64]) -> f64 {
 
 /// Lays out row-major standardised rows (`m` × `d`) in panels (see
 /// [`Fitted::panels`]); returns them with max ‖t‖².
-fn to_panels(rows: &[f64], m: usize, d: usize) -> (Vec<f64>, f64) {
+fn to_panels(rows: &[f64], m: usize, d: usize) -> (Vec<f32>, f64) {
     let n_panels = m.div_ceil(LANES);
     let width = (d + 1) * LANES;
-    let mut panels = vec![0.0; n_panels * width];
+    let mut panels = vec![0.0f32; n_panels * width];
     for p in 0..n_panels {
-        panels[p * width..p * width + LANES].fill(f64::INFINITY);
+        panels[p * width..p * width + LANES].fill(f32::INFINITY);
     }
     let mut max_norm = 0.0f64;
     for (i, row) in rows.chunks_exact(d).enumerate() {
         let (p, lane) = (i / LANES, i % LANES);
         let norm: f64 = row.iter().map(|v| v * v).sum();
         max_norm = max_norm.max(norm);
-        panels[p * width + lane] = norm;
+        panels[p * width + lane] = norm as f32;
         for (j, &v) in row.iter().enumerate() {
-            panels[p * width + (j + 1) * LANES + lane] = v;
+            panels[p * width + (j + 1) * LANES + lane] = v as f32;
         }
     }
     (panels, max_norm)
@@ -198,16 +201,22 @@ impl Best {
 /// (feature j of the Q queries at `[j·Q ..][..Q]`). `FUSED` uses fused
 /// multiply-adds (only where the CPU has them).
 #[inline(always)]
-fn screen_block<const Q: usize, const FUSED: bool>(
-    neg2q: &[f64],
-    panel: &[f64],
-) -> [[f64; LANES]; Q] {
+fn screen_block<const Q: usize, const FUSED: bool, const AVX512: bool>(
+    neg2q: &[f32],
+    panel: &[f32],
+) -> [[f32; LANES]; Q] {
+    #[cfg(target_arch = "x86_64")]
+    if AVX512 {
+        // SAFETY: AVX512 is set only by `Fitted::kth_sq_distances_avx512`,
+        // which runs only where the CPU has AVX-512F.
+        return unsafe { screen_block_avx512::<Q>(neg2q, panel) };
+    }
     let (norms, features) = panel.split_at(LANES);
-    let norms: &[f64; LANES] = norms.try_into().unwrap();
+    let norms: &[f32; LANES] = norms.try_into().unwrap();
     let mut acc = [*norms; Q];
     for (t, qs) in features.chunks_exact(LANES).zip(neg2q.chunks_exact(Q)) {
-        let t: &[f64; LANES] = t.try_into().unwrap();
-        let qs: &[f64; Q] = qs.try_into().unwrap();
+        let t: &[f32; LANES] = t.try_into().unwrap();
+        let qs: &[f32; Q] = qs.try_into().unwrap();
         for (a, &qv) in acc.iter_mut().zip(qs) {
             for l in 0..LANES {
                 a[l] = if FUSED {
@@ -221,12 +230,47 @@ fn screen_block<const Q: usize, const FUSED: bool>(
     acc
 }
 
+/// [`screen_block`] in AVX-512F registers: one panel (16 lanes) per register,
+/// one register per query.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+#[inline]
+unsafe fn screen_block_avx512<const Q: usize>(neg2q: &[f32], panel: &[f32]) -> [[f32; LANES]; Q] {
+    use std::arch::x86_64::{_mm512_fmadd_ps, _mm512_loadu_ps, _mm512_set1_ps, _mm512_storeu_ps};
+    const { assert!(LANES == 16) };
+    let d = neg2q.len() / Q;
+    assert!(panel.len() >= (d + 1) * LANES && neg2q.len() == d * Q);
+    let p = panel.as_ptr();
+    // SAFETY (every pointer below): inside `panel` and `neg2q` by the assert.
+    let mut acc = [unsafe { _mm512_loadu_ps(p) }; Q];
+    for j in 0..d {
+        let t = unsafe { _mm512_loadu_ps(p.add((j + 1) * LANES)) };
+        let qs = &neg2q[j * Q..(j + 1) * Q];
+        for (a, &qv) in acc.iter_mut().zip(qs) {
+            *a = _mm512_fmadd_ps(_mm512_set1_ps(qv), t, *a);
+        }
+    }
+    let mut out = [[0.0f32; LANES]; Q];
+    for (o, a) in out.iter_mut().zip(acc) {
+        unsafe { _mm512_storeu_ps(o.as_mut_ptr(), a) };
+    }
+    out
+}
+
 impl Fitted {
     /// The k-th smallest squared distance from each standardised query in
-    /// `queries` (row-major) to the training rows, into `out`: the screen
-    /// over blocks of `Q` queries, the exact distance for each row it passes.
+    /// `queries` (row-major) to the training rows, into `out`.
+    ///
+    /// The screen runs over blocks of `Q` queries and keeps, per query, the
+    /// k smallest screened values a and every row whose a was within the
+    /// margin M of the k-th smallest seen so far. Let e bound the screen's
+    /// error (M ≥ 2e). The k rows of the k smallest a all have distances
+    /// below a_k + e, so the k-th smallest distance is too, and every row
+    /// among the k nearest has a ≤ a_k + 2e ≤ a_k + M. Only the rows kept
+    /// that meet that final test get the exact distance, and the k-th
+    /// smallest of those is the k-th smallest of all.
     #[inline(always)]
-    fn kth_sq_distances_generic<const Q: usize, const FUSED: bool>(
+    fn kth_sq_distances_generic<const Q: usize, const FUSED: bool, const AVX512: bool>(
         &self,
         queries: &[f64],
         out: &mut [f64],
@@ -236,25 +280,16 @@ impl Fitted {
         let width = (d + 1) * LANES;
         let query = |i: usize| &queries[i * d..(i + 1) * d];
         let row = |r: usize| &self.rows[r * d..(r + 1) * d];
-        // Each query starts from the exact distances of the first k rows;
-        // the screen then skips those rows.
-        let mut best: Vec<Best> = (0..n)
+        // Per query: the k smallest screened values, and the rows kept.
+        let mut top: Vec<Best> = (0..n).map(|_| Best::new(k)).collect();
+        let mut kept: Vec<Vec<(f32, usize)>> = vec![Vec::new(); n];
+        let margins: Vec<f64> = (0..n)
             .map(|i| {
-                let mut b = Best::new(k);
-                for r in 0..k {
-                    b.offer(sq_distance(query(i), row(r)));
-                }
-                b
+                let qn: f64 = query(i).iter().map(|v| v * v).sum();
+                SCREEN_MARGIN * (d + 4) as f64 * (qn + self.max_norm)
             })
             .collect();
-        let norms: Vec<f64> = (0..n)
-            .map(|i| query(i).iter().map(|v| v * v).sum())
-            .collect();
-        let margins: Vec<f64> = norms
-            .iter()
-            .map(|qn| SCREEN_MARGIN * (qn + self.max_norm))
-            .collect();
-        let mut block = vec![0.0; Q * d];
+        let mut block = vec![0.0f32; Q * d];
         for (tile_no, tile) in self.panels.chunks(TILE_PANELS * width).enumerate() {
             for b0 in (0..n).step_by(Q) {
                 let real = Q.min(n - b0);
@@ -262,40 +297,47 @@ impl Fitted {
                 for qi in 0..Q {
                     let q = query(b0 + qi.min(real - 1));
                     for (j, v) in q.iter().enumerate() {
-                        block[j * Q + qi] = -2.0 * v;
+                        block[j * Q + qi] = (-2.0 * v) as f32;
                     }
+                }
+                // A value must be at or below its query's limit to be kept;
+                // rounded up to the next f32, so no value at or below the
+                // f64 limit is lost in the conversion. Updated after each hit.
+                let limit_of = |b: &Best, i: usize| ((b.bound() + margins[i]) as f32).next_up();
+                let mut limits = [f32::NEG_INFINITY; Q];
+                for (qi, l) in limits.iter_mut().enumerate().take(real) {
+                    *l = limit_of(&top[b0 + qi], b0 + qi);
                 }
                 for (p_in_tile, panel) in tile.chunks_exact(width).enumerate() {
                     let first_row = (tile_no * TILE_PANELS + p_in_tile) * LANES;
-                    let acc = screen_block::<Q, FUSED>(&block, panel);
-                    for (qi, a) in acc.iter().enumerate().take(real) {
-                        let i = b0 + qi;
-                        let limit = best[i].bound() + margins[i] - norms[i];
-                        let hit = a.iter().fold(false, |h, &v| h | (v <= limit));
+                    let acc = screen_block::<Q, FUSED, AVX512>(&block, panel);
+                    for (qi, (a, limit)) in acc.iter().zip(limits.iter_mut()).enumerate() {
+                        let hit = a.iter().fold(false, |h, &v| h | (v <= *limit));
                         if !hit {
                             continue;
                         }
-                        for (l, &v) in a.iter().enumerate() {
-                            let r = first_row + l;
-                            if v <= limit && r >= k && r < self.m {
-                                // From the panel, still in cache: the same
-                                // values as `row(r)`, the same operations.
-                                let mut s = 0.0;
-                                for (qj, t) in
-                                    query(i).iter().zip(panel[LANES..].chunks_exact(LANES))
-                                {
-                                    let diff = qj - t[l];
-                                    s += diff * diff;
-                                }
-                                best[i].offer(s);
+                        let i = b0 + qi;
+                        let lanes = LANES.min(self.m - first_row);
+                        for (l, &v) in a.iter().enumerate().take(lanes) {
+                            if v <= *limit {
+                                top[i].offer(f64::from(v));
+                                kept[i].push((v, first_row + l));
                             }
                         }
+                        *limit = limit_of(&top[i], i);
                     }
                 }
             }
         }
-        for (o, b) in out.iter_mut().zip(&best) {
-            *o = b.values[k - 1];
+        for (i, o) in out.iter_mut().enumerate() {
+            let last = top[i].bound() + margins[i];
+            let mut best = Best::new(k);
+            for &(v, r) in &kept[i] {
+                if f64::from(v) <= last {
+                    best.offer(sq_distance(query(i), row(r)));
+                }
+            }
+            *o = best.values[k - 1];
         }
     }
 
@@ -303,23 +345,23 @@ impl Fitted {
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx512f,avx2,fma")]
     fn kth_sq_distances_avx512(&self, queries: &[f64], out: &mut [f64]) {
-        self.kth_sq_distances_generic::<4, true>(queries, out)
+        self.kth_sq_distances_generic::<8, true, true>(queries, out)
     }
 
     /// The search compiled for AVX2 with fused multiply-adds.
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2,fma")]
     fn kth_sq_distances_avx2(&self, queries: &[f64], out: &mut [f64]) {
-        self.kth_sq_distances_generic::<2, true>(queries, out)
+        self.kth_sq_distances_generic::<2, true, false>(queries, out)
     }
 
     fn kth_sq_distances(&self, queries: &[f64], out: &mut [f64]) {
         // The screen needs finite norms; far outside the float range's
         // square root, every row gets its exact distance.
-        let tame = self.max_norm < 1e150
+        let tame = self.max_norm < 1e30
             && queries
                 .chunks_exact(self.d)
-                .all(|q| q.iter().map(|v| v * v).sum::<f64>() < 1e150);
+                .all(|q| q.iter().map(|v| v * v).sum::<f64>() < 1e30);
         if !tame {
             for (o, q) in out.iter_mut().zip(queries.chunks_exact(self.d)) {
                 let mut b = Best::new(self.k);
@@ -342,7 +384,7 @@ impl Fitted {
             }
         }
         // Elsewhere fused multiply-adds only where the target has them.
-        self.kth_sq_distances_generic::<2, { cfg!(any(target_feature = "fma", target_arch = "aarch64")) }>(
+        self.kth_sq_distances_generic::<2, { cfg!(any(target_feature = "fma", target_arch = "aarch64")) }, false>(
             queries, out,
         )
     }
@@ -455,6 +497,8 @@ mod tests {
             x.row_mut(1).assign(&row0);
             let mut q = Array2::from_shape_fn((n, d), |_| crate::rng::unit(&mut rng) * 4.0 - 2.0);
             q.row_mut(0).assign(&row0);
+            // A query far outside the training rows (large norms, cancellation).
+            q.row_mut(n - 1).fill(250.0);
             let names: Vec<String> = (0..d).map(|j| format!("f{j}")).collect();
             let fitted = KnnDistance { k }.fit(x.view(), &names).unwrap();
             let Params::KnnDistance { mean, sd, .. } = fitted.params() else {
@@ -499,11 +543,11 @@ mod tests {
             let mut dispatched = vec![0.0; n];
             inner.kth_sq_distances(&qs, &mut dispatched);
             let mut other = vec![0.0; n];
-            inner.kth_sq_distances_generic::<2, false>(&qs, &mut other);
+            inner.kth_sq_distances_generic::<2, false, false>(&qs, &mut other);
             assert_eq!(other, dispatched);
-            inner.kth_sq_distances_generic::<3, true>(&qs, &mut other);
+            inner.kth_sq_distances_generic::<3, true, false>(&qs, &mut other);
             assert_eq!(other, dispatched);
-            inner.kth_sq_distances_generic::<1, false>(&qs, &mut other);
+            inner.kth_sq_distances_generic::<1, false, false>(&qs, &mut other);
             assert_eq!(other, dispatched);
         }
     }
