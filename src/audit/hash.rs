@@ -42,15 +42,32 @@ pub fn hex(bytes: &[u8]) -> String {
 /// little-endian bytes of its IEEE-754 binary64 (negative zero written as
 /// zero), and one label byte (0 normal, 1 anomaly).
 pub fn row(values: impl IntoIterator<Item = f64>, is_anomaly: bool, d: usize) -> ContentHash {
-    let mut h = blake3::Hasher::new();
-    h.update(ROW_TAG);
-    h.update(&(d as u32).to_le_bytes());
-    for v in values {
+    let mut msg = vec![0u8; row_len(d)];
+    encode_row(&mut msg, values, is_anomaly, d);
+    ContentHash(*blake3::hash(&msg).as_bytes())
+}
+
+/// The length of a row's message with `d` features.
+fn row_len(d: usize) -> usize {
+    ROW_TAG.len() + 4 + 8 * d + 1
+}
+
+/// Writes one row's message, the encoding [`row`] hashes, into `msg` (of
+/// [`row_len`] bytes): the one place that encoding is written.
+fn encode_row(msg: &mut [u8], values: impl IntoIterator<Item = f64>, is_anomaly: bool, d: usize) {
+    let (tag, rest) = msg.split_at_mut(ROW_TAG.len());
+    tag.copy_from_slice(ROW_TAG);
+    let (width, rest) = rest.split_at_mut(4);
+    width.copy_from_slice(&(d as u32).to_le_bytes());
+    let (body, label) = rest.split_at_mut(8 * d);
+    let mut written = 0;
+    for (bytes, v) in body.chunks_exact_mut(8).zip(values) {
         let v = if v == 0.0 { 0.0 } else { v };
-        h.update(&v.to_bits().to_le_bytes());
+        bytes.copy_from_slice(&v.to_bits().to_le_bytes());
+        written += 1;
     }
-    h.update(&[u8::from(is_anomaly)]);
-    ContentHash(*h.finalize().as_bytes())
+    assert_eq!(written, d, "a row of {d} features");
+    label[0] = u8::from(is_anomaly);
 }
 
 /// Content hashes of every row of a feature matrix, on all cores (each
@@ -61,7 +78,7 @@ pub fn rows(x: &ndarray::Array2<f64>, is_anomaly: &[bool]) -> Vec<ContentHash> {
     use super::lanes::{hash16, LANES, MAX_LEN};
     use rayon::prelude::*;
     let (n, d) = x.dim();
-    let len = ROW_TAG.len() + 4 + 8 * d + 1;
+    let len = row_len(d);
     let mut out = vec![ContentHash([0; 32]); n];
     if len > MAX_LEN {
         out.par_iter_mut().enumerate().for_each(|(i, h)| {
@@ -70,28 +87,19 @@ pub fn rows(x: &ndarray::Array2<f64>, is_anomaly: &[bool]) -> Vec<ContentHash> {
         return out;
     }
     // Sixteen rows at a time, side by side (`lanes`): each group's messages
-    // are laid out in one buffer whose tag and width never change; a short
-    // last group repeats its last row (those hashes are dropped).
+    // are laid out in one buffer; a short last group repeats its last row
+    // (those hashes are dropped).
     const GROUPS_PER_TASK: usize = 256;
     out.par_chunks_mut(LANES * GROUPS_PER_TASK)
         .enumerate()
         .for_each(|(task, hashes)| {
             let mut buf = vec![0u8; LANES * len];
-            for msg in buf.chunks_exact_mut(len) {
-                msg[..ROW_TAG.len()].copy_from_slice(ROW_TAG);
-                msg[ROW_TAG.len()..ROW_TAG.len() + 4].copy_from_slice(&(d as u32).to_le_bytes());
-            }
             let mut group = [[0u8; 32]; LANES];
             for (g, hs) in hashes.chunks_mut(LANES).enumerate() {
                 let first = (task * GROUPS_PER_TASK + g) * LANES;
                 for (l, msg) in buf.chunks_exact_mut(len).enumerate() {
                     let i = first + l.min(hs.len() - 1);
-                    let values = &mut msg[ROW_TAG.len() + 4..];
-                    for (bytes, &v) in values.chunks_exact_mut(8).zip(x.row(i)) {
-                        let v = if v == 0.0 { 0.0 } else { v };
-                        bytes.copy_from_slice(&v.to_bits().to_le_bytes());
-                    }
-                    values[8 * d] = u8::from(is_anomaly[i]);
+                    encode_row(msg, x.row(i).iter().copied(), is_anomaly[i], d);
                 }
                 hash16(&buf, len, len, &mut group);
                 for (h, o) in hs.iter_mut().zip(&group) {
@@ -127,12 +135,13 @@ pub fn order(hashes: &[ContentHash]) -> Order {
         p.copy_from_slice(&h.0[..8]);
         u64::from_be_bytes(p)
     };
-    let mut keys: Vec<(u64, u32)> = hashes
-        .par_iter()
-        .enumerate()
-        .map(|(i, h)| (prefix(h), i as u32))
-        .collect();
-    keys.par_sort_unstable();
+    let prefixes: Vec<u64> = hashes.par_iter().map(prefix).collect();
+    // About 256 keys per bucket on a large input (the prefixes are uniform).
+    let bits = match prefixes.len().checked_ilog2() {
+        Some(l) if l >= 16 => (l - 8).min(16),
+        _ => 0,
+    };
+    let keys = sorted_keys(&prefixes, bits);
     let mut out: Vec<u32> = keys.iter().map(|k| k.1).collect();
     let mut repeats = Vec::new();
     let mut i = 0;
@@ -158,6 +167,53 @@ pub fn order(hashes: &[ContentHash]) -> Order {
         i = j;
     }
     Order { rows: out, repeats }
+}
+
+/// The keys `(prefixes[i], i)` in ascending order. With `bits > 0` they are
+/// first dealt into `2^bits` buckets by their top `bits` bits (a counting
+/// pass and a scattering pass), and the buckets, consecutive and in key
+/// order, are sorted on all cores; otherwise all are sorted in one parallel
+/// sort. The keys are distinct (each holds its row), so both give the one
+/// ascending order.
+fn sorted_keys(prefixes: &[u64], bits: u32) -> Vec<(u64, u32)> {
+    use rayon::prelude::*;
+    if bits == 0 {
+        let mut keys: Vec<(u64, u32)> = prefixes
+            .par_iter()
+            .enumerate()
+            .map(|(i, &p)| (p, i as u32))
+            .collect();
+        keys.par_sort_unstable();
+        return keys;
+    }
+    let shift = 64 - bits;
+    let buckets = 1usize << bits;
+    let mut start = vec![0usize; buckets + 1];
+    for &p in prefixes {
+        start[(p >> shift) as usize + 1] += 1;
+    }
+    for b in 1..=buckets {
+        start[b] += start[b - 1];
+    }
+    let mut keys = vec![(0u64, 0u32); prefixes.len()];
+    let mut next = start.clone();
+    for (i, &p) in prefixes.iter().enumerate() {
+        let b = (p >> shift) as usize;
+        keys[next[b]] = (p, i as u32);
+        next[b] += 1;
+    }
+    let mut parts = Vec::with_capacity(buckets);
+    let mut rest = keys.as_mut_slice();
+    for b in 0..buckets {
+        let (part, tail) = rest.split_at_mut(start[b + 1] - start[b]);
+        parts.push(part);
+        rest = tail;
+    }
+    parts
+        .into_par_iter()
+        .with_min_len(64)
+        .for_each(|part| part.sort_unstable());
+    keys
 }
 
 /// A file's size and blake3 hash.
@@ -339,6 +395,30 @@ mod tests {
         }
         assert!(!runs.is_empty());
         assert_eq!(got.repeats, runs);
+    }
+
+    /// The bucketed sort and the single sort give the same order, on
+    /// uniform prefixes, on prefixes crowded into a few buckets, and at the
+    /// edges of the key range.
+    #[test]
+    fn bucketed_key_sort_equals_one_sort() {
+        use rand_chacha::rand_core::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
+        let uniform: Vec<u64> = (0..20_000).map(|_| rng.next_u64()).collect();
+        let crowded: Vec<u64> = (0..20_000).map(|_| rng.next_u64() % 1000).collect();
+        let mut edges = vec![0, u64::MAX, 1 << 63, (1 << 63) - 1, 0, u64::MAX];
+        edges.extend(uniform.iter().take(100));
+        for prefixes in [uniform, crowded, edges] {
+            let mut want: Vec<(u64, u32)> = prefixes
+                .iter()
+                .enumerate()
+                .map(|(i, &p)| (p, i as u32))
+                .collect();
+            want.sort();
+            for bits in [0, 1, 4, 12, 16] {
+                assert_eq!(sorted_keys(&prefixes, bits), want, "bits {bits}");
+            }
+        }
     }
 
     #[test]
