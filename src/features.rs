@@ -515,6 +515,42 @@ impl FittedFeatures {
         }
     }
 
+    /// `f` of the feature matrix of `rows`, a block of `block` rows at a
+    /// time on all cores, the results joined in row order: the whole matrix
+    /// is never held, and each block's values are those of [`Self::apply`]
+    /// (each value depends on its own row alone). A refused value gives the
+    /// error of [`Self::apply`] on all of `rows`.
+    pub fn map_blocks<T, F>(
+        &self,
+        data: &Dataset,
+        rows: &[RowId],
+        block: usize,
+        f: F,
+    ) -> Result<Vec<T>>
+    where
+        T: Send,
+        F: Fn(ndarray::ArrayView2<'_, f64>) -> Vec<T> + Sync,
+    {
+        use rayon::prelude::*;
+        let identity = self.is_identity(data);
+        let parts: Option<Vec<Vec<T>>> = rows
+            .par_chunks(block.max(1))
+            .map(|rs| {
+                let m = match (identity, data.x.as_slice()) {
+                    (true, Some(values)) => copy_rows(values, data.x.ncols(), rs),
+                    _ => None,
+                };
+                let m = m.or_else(|| self.apply_rows(data, rs))?;
+                Some(f(m.view()))
+            })
+            .collect();
+        match parts {
+            Some(parts) => Ok(parts.into_iter().flatten().collect()),
+            // The whole pass names the refused value's feature and rows.
+            None => self.apply(data, rows).map(|m| f(m.view())),
+        }
+    }
+
     /// The feature matrix computed row by row on all cores, or `None` when
     /// any value is refused. Each value goes through the same operations, in
     /// the same order, as in [`FittedFeatures::apply_by_column`], so the bits
@@ -669,11 +705,30 @@ mod tests {
         for (a, b) in fast.iter().zip(slow.iter()) {
             assert_eq!(a.to_bits(), b.to_bits());
         }
+        // Block by block, with a short last block: the same values in the
+        // same order.
+        for block in [1, 997, rows.len()] {
+            let blocks = set
+                .map_blocks(&data, &rows, block, |m| m.iter().copied().collect())
+                .unwrap();
+            let whole: Vec<f64> = fast.iter().copied().collect();
+            assert_eq!(blocks.len(), whole.len());
+            assert!(blocks
+                .iter()
+                .zip(&whole)
+                .all(|(a, b)| a.to_bits() == b.to_bits()));
+        }
         let mut bad = set.clone();
         bad.features[3].transforms = vec![Fitted::Log];
         assert!(bad.apply_rows(&data, &rows).is_none());
         let e = bad.apply(&data, &rows).unwrap_err().to_string();
         assert!(e.contains("`log` cannot take this value"), "{e}");
+        // The blocks give the whole pass's error, naming all refused rows.
+        let by_blocks = bad
+            .map_blocks(&data, &rows, 997, |m| vec![m.nrows()])
+            .unwrap_err()
+            .to_string();
+        assert_eq!(by_blocks, e);
     }
 
     /// A set of the content columns themselves is copied, not computed, and

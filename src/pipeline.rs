@@ -8,8 +8,6 @@
 use std::path::{Path, PathBuf};
 use std::time::{Instant, SystemTime};
 
-use ndarray::Array2;
-
 use crate::audit::hash;
 use crate::card::plots;
 use crate::card::{
@@ -113,14 +111,16 @@ fn candidate_name(set: &spec::FeatureSetPlan, kind: DetectorKind) -> String {
     }
 }
 
+/// The scores of `rows` under `model`, their features made block by block
+/// (the blocks of [`detect::score_in_blocks`], so the same bits).
 fn checked_scores(
     name: &str,
     model: &dyn Model,
-    x: &Array2<f64>,
+    fitted: &features::FittedFeatures,
     rows: &[RowId],
     data: &Dataset,
 ) -> Result<Vec<f64>> {
-    let s = detect::score_in_blocks(model, x.view(), 8192);
+    let s = fitted.map_blocks(data, rows, SCORE_BLOCK, |x| model.score(x))?;
     if let Some(k) = s.iter().position(|v| v.is_nan()) {
         return Err(Error::Fit {
             detector: name.into(),
@@ -130,6 +130,9 @@ fn checked_scores(
     }
     Ok(s)
 }
+
+/// Rows per block when scoring.
+const SCORE_BLOCK: usize = 8192;
 
 /// The policy in words; among equally good cut points the highest τ wins.
 pub fn policy_name(p: ThresholdPolicy) -> String {
@@ -352,7 +355,10 @@ fn execute(
         let names = fitted.names();
         let t = crate::progress::part("feature matrices, train and validation");
         let train = fitted.apply(&data, &splits.train)?;
-        let val_x = fitted.apply(&data, &splits.validation)?;
+        // The validation features are checked here, before any detector
+        // is fitted, and made again block by block for each candidate's
+        // scores: the validation matrix is never held whole.
+        fitted.map_blocks(&data, &splits.validation, SCORE_BLOCK, |_| Vec::<()>::new())?;
         drop(t);
         // The candidates of one feature set are independent: fitted side by
         // side, each with the same bits as alone, and kept in spec order (the
@@ -381,7 +387,7 @@ fn execute(
                     drop(t);
                     let t = crate::progress::part("validation scores");
                     let validation_scores =
-                        checked_scores(&name, model.as_ref(), &val_x, &splits.validation, &data)?;
+                        checked_scores(&name, model.as_ref(), &fitted, &splits.validation, &data)?;
                     drop(t);
                     let t = crate::progress::part("ranking");
                     let validation_ranked = metrics::Ranked::new(&validation_scores, &val_y);
@@ -512,17 +518,17 @@ fn execute(
             .iter()
             .map(|r| data.is_anomaly[r.0 as usize])
             .collect();
-        let test_x: Vec<Array2<f64>> = fitted_sets
-            .iter()
-            .map(|f| f.apply(&data, &test_rows))
-            .collect::<Result<_>>()?;
+        // Every feature set's test features are checked before any score.
+        for f in &fitted_sets {
+            f.map_blocks(&data, &test_rows, SCORE_BLOCK, |_| Vec::<()>::new())?;
+        }
         let t = crate::progress::part("test scores");
         let mut test_scores = Vec::new();
         for c in &candidates {
             test_scores.push(checked_scores(
                 &c.name,
                 c.model.as_ref(),
-                &test_x[c.set],
+                &fitted_sets[c.set],
                 &test_rows,
                 &data,
             )?);
@@ -857,18 +863,22 @@ fn scores_csv(
         out.push_str(&csv_field(&c.name));
     }
     out.push('\n');
-    // (split, row, index within the split's score vectors), in file order.
-    let mut lines: Vec<(Part, RowId, u32)> = validation
-        .iter()
-        .enumerate()
-        .map(|(k, r)| (Part::Validation, *r, k as u32))
-        .chain(
-            test.iter()
-                .enumerate()
-                .map(|(k, r)| (Part::Test, *r, k as u32)),
-        )
-        .collect();
-    lines.par_sort_unstable_by_key(|(p, r, _)| (*p, *r));
+    // (split, row, index within the split's score vectors), in (split, row)
+    // order: each split's rows are placed by row number in one counting
+    // pass (a row is in one split once), with no comparison sort.
+    let mut lines: Vec<(Part, RowId, u32)> = Vec::with_capacity(validation.len() + test.len());
+    let mut at = vec![u32::MAX; data.len()];
+    for (part, rows) in [(Part::Validation, validation), (Part::Test, test)] {
+        for (k, r) in rows.iter().enumerate() {
+            at[r.0 as usize] = k as u32;
+        }
+        let before = lines.len();
+        lines.extend(at.iter_mut().enumerate().filter_map(|(i, k)| {
+            let taken = std::mem::replace(k, u32::MAX);
+            (taken != u32::MAX).then_some((part, RowId(i as u64), taken))
+        }));
+        debug_assert_eq!(lines.len() - before, rows.len(), "a row twice in one split");
+    }
     // Lines are formatted in blocks on all cores and appended in order (the
     // bytes do not depend on the thread count), a window of blocks at a
     // time so that the formatted blocks never hold more than a window.

@@ -52,7 +52,7 @@ pub fn push_f64(out: &mut String, v: f64) {
     }
     let mut buf = ryu::Buffer::new();
     let s = buf.format_finite(v);
-    if s.contains('e') {
+    if s.as_bytes().contains(&b'e') {
         use std::fmt::Write;
         let _ = write!(out, "{v}");
     } else {
