@@ -273,6 +273,7 @@ impl Fitted {
     fn kth_sq_distances_generic<const Q: usize, const FUSED: bool, const AVX512: bool>(
         &self,
         queries: &[f64],
+        norms: &[f64],
         out: &mut [f64],
     ) {
         let (d, k) = (self.d, self.k);
@@ -283,11 +284,9 @@ impl Fitted {
         // Per query: the k smallest screened values, and the rows kept.
         let mut top: Vec<Best> = (0..n).map(|_| Best::new(k)).collect();
         let mut kept: Vec<Vec<(f32, usize)>> = vec![Vec::new(); n];
-        let margins: Vec<f64> = (0..n)
-            .map(|i| {
-                let qn: f64 = query(i).iter().map(|v| v * v).sum();
-                SCREEN_MARGIN * (d + 4) as f64 * (qn + self.max_norm)
-            })
+        let margins: Vec<f64> = norms
+            .iter()
+            .map(|qn| SCREEN_MARGIN * (d + 4) as f64 * (qn + self.max_norm))
             .collect();
         let mut block = vec![0.0f32; Q * d];
         for (tile_no, tile) in self.panels.chunks(TILE_PANELS * width).enumerate() {
@@ -344,24 +343,22 @@ impl Fitted {
     /// The search compiled for AVX-512 with fused multiply-adds.
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx512f,avx2,fma")]
-    fn kth_sq_distances_avx512(&self, queries: &[f64], out: &mut [f64]) {
-        self.kth_sq_distances_generic::<8, true, true>(queries, out)
+    fn kth_sq_distances_avx512(&self, queries: &[f64], norms: &[f64], out: &mut [f64]) {
+        self.kth_sq_distances_generic::<8, true, true>(queries, norms, out)
     }
 
     /// The search compiled for AVX2 with fused multiply-adds.
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2,fma")]
-    fn kth_sq_distances_avx2(&self, queries: &[f64], out: &mut [f64]) {
-        self.kth_sq_distances_generic::<2, true, false>(queries, out)
+    fn kth_sq_distances_avx2(&self, queries: &[f64], norms: &[f64], out: &mut [f64]) {
+        self.kth_sq_distances_generic::<2, true, false>(queries, norms, out)
     }
 
     fn kth_sq_distances(&self, queries: &[f64], out: &mut [f64]) {
         // The screen needs finite norms; far outside the float range's
         // square root, every row gets its exact distance.
-        let tame = self.max_norm < 1e30
-            && queries
-                .chunks_exact(self.d)
-                .all(|q| q.iter().map(|v| v * v).sum::<f64>() < 1e30);
+        let norms = self.query_norms(queries);
+        let tame = self.max_norm < 1e30 && norms.iter().all(|&qn| qn < 1e30);
         if !tame {
             for (o, q) in out.iter_mut().zip(queries.chunks_exact(self.d)) {
                 let mut b = Best::new(self.k);
@@ -376,17 +373,26 @@ impl Fitted {
         {
             if std::is_x86_feature_detected!("avx512f") && std::is_x86_feature_detected!("fma") {
                 // SAFETY: the CPU has just been seen to support AVX-512F, AVX2 and FMA.
-                return unsafe { self.kth_sq_distances_avx512(queries, out) };
+                return unsafe { self.kth_sq_distances_avx512(queries, &norms, out) };
             }
             if std::is_x86_feature_detected!("avx2") && std::is_x86_feature_detected!("fma") {
                 // SAFETY: the CPU has just been seen to support AVX2 and FMA.
-                return unsafe { self.kth_sq_distances_avx2(queries, out) };
+                return unsafe { self.kth_sq_distances_avx2(queries, &norms, out) };
             }
         }
         // Elsewhere fused multiply-adds only where the target has them.
         self.kth_sq_distances_generic::<2, { cfg!(any(target_feature = "fma", target_arch = "aarch64")) }, false>(
-            queries, out,
+            queries, &norms, out,
         )
+    }
+
+    /// Each query's squared norm ‖q‖², in feature order: the range check
+    /// and the screen's margins both read it.
+    fn query_norms(&self, queries: &[f64]) -> Vec<f64> {
+        queries
+            .chunks_exact(self.d)
+            .map(|q| q.iter().map(|v| v * v).sum())
+            .collect()
     }
 }
 
@@ -543,12 +549,49 @@ mod tests {
             let mut dispatched = vec![0.0; n];
             inner.kth_sq_distances(&qs, &mut dispatched);
             let mut other = vec![0.0; n];
-            inner.kth_sq_distances_generic::<2, false, false>(&qs, &mut other);
+            inner.kth_sq_distances_generic::<2, false, false>(
+                &qs,
+                &inner.query_norms(&qs),
+                &mut other,
+            );
             assert_eq!(other, dispatched);
-            inner.kth_sq_distances_generic::<3, true, false>(&qs, &mut other);
+            inner.kth_sq_distances_generic::<3, true, false>(
+                &qs,
+                &inner.query_norms(&qs),
+                &mut other,
+            );
             assert_eq!(other, dispatched);
-            inner.kth_sq_distances_generic::<1, false, false>(&qs, &mut other);
+            inner.kth_sq_distances_generic::<1, false, false>(
+                &qs,
+                &inner.query_norms(&qs),
+                &mut other,
+            );
             assert_eq!(other, dispatched);
         }
+    }
+
+    /// A query whose squared norm passes 1e30 leaves the screen for the
+    /// plain loop, alone or beside a near query: both get the k-th smallest
+    /// of the exact distances, bit for bit. Reference: the definition.
+    #[test]
+    fn far_queries_take_the_plain_loop() {
+        let mut rng = crate::rng::seeded(4, 0);
+        let (m, d, k) = (40, 3, 4);
+        let x = Array2::from_shape_fn((m, d), |_| crate::rng::unit(&mut rng));
+        let names: Vec<String> = (0..d).map(|j| format!("f{j}")).collect();
+        let inner = KnnDistance { k }.fit_knn(x.view(), &names).unwrap();
+        let qs = [0.1, -0.2, 0.3, 1e16, 0.0, -1e16];
+        let mut got = vec![0.0; 2];
+        inner.kth_sq_distances(&qs, &mut got);
+        for (i, q) in qs.chunks_exact(d).enumerate() {
+            let mut all: Vec<f64> = inner
+                .rows
+                .chunks_exact(d)
+                .map(|t| sq_distance(q, t))
+                .collect();
+            all.sort_by(f64::total_cmp);
+            assert_eq!(got[i].to_bits(), all[k - 1].to_bits(), "query {i}");
+        }
+        assert!(got[1] > 1e32, "{}", got[1]);
     }
 }
