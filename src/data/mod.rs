@@ -992,6 +992,8 @@ mod tests {
         let head = "id,a,label,split\n";
         let cases = [
             "r1,1.5,ok,train\nr2,\"2\",ok,test\n",
+            "r1,1.5,ok,train\nr\"2,2,ok,test\n",
+            "r1,1.5,ok,train\nr2,2,ok,test\r\n",
             "r1,1.5,ok,train\r\nr2,2,ok,test\r\n",
             "r1,1.5,ok,train\n\nr2,2,ok,test\n",
             "r1,1.5,ok,train\nr2,,ok,test\n",
@@ -1036,5 +1038,12 @@ mod tests {
             "bom.csv",
             format!("\u{feff}{head}r1,1.5,ok,train\n")
         ));
+        assert!(!plain(
+            "crlf-header.csv",
+            "id,a,label,split\r\nr1,1.5,ok,train\n".into()
+        ));
+        // The same rows, plain, are taken (the cases above fail for their
+        // own reason).
+        assert!(plain("plain.csv", format!("{head}r1,1.5,ok,train\n")));
     }
 }
