@@ -111,16 +111,40 @@ fn candidate_name(set: &spec::FeatureSetPlan, kind: DetectorKind) -> String {
     }
 }
 
-/// The scores of `rows` under `model`, their features made block by block
-/// (the blocks of [`detect::score_in_blocks`], so the same bits).
+/// The features a split is scored from. Computed features are made once and
+/// held; a set of the content columns themselves is copied block by block
+/// while it is scored instead (a copy costs less than holding one).
+enum SplitFeatures {
+    Held(ndarray::Array2<f64>),
+    Copied,
+}
+
+impl SplitFeatures {
+    /// The features of `rows`, with any refused value's error now, before
+    /// they are scored.
+    fn of(fitted: &features::FittedFeatures, data: &Dataset, rows: &[RowId]) -> Result<Self> {
+        if fitted.is_identity(data) {
+            fitted.map_blocks(data, rows, SCORE_BLOCK, |_| Vec::<()>::new())?;
+            Ok(SplitFeatures::Copied)
+        } else {
+            Ok(SplitFeatures::Held(fitted.apply(data, rows)?))
+        }
+    }
+}
+
+/// The scores of `rows` under `model`, in blocks of [`SCORE_BLOCK`] rows
+/// either way (the blocks of [`detect::score_in_blocks`], so the same bits).
 fn checked_scores(
     name: &str,
     model: &dyn Model,
-    fitted: &features::FittedFeatures,
+    (fitted, x): (&features::FittedFeatures, &SplitFeatures),
     rows: &[RowId],
     data: &Dataset,
 ) -> Result<Vec<f64>> {
-    let s = fitted.map_blocks(data, rows, SCORE_BLOCK, |x| model.score(x))?;
+    let s = match x {
+        SplitFeatures::Held(x) => detect::score_in_blocks(model, x.view(), SCORE_BLOCK),
+        SplitFeatures::Copied => fitted.map_blocks(data, rows, SCORE_BLOCK, |x| model.score(x))?,
+    };
     if let Some(k) = s.iter().position(|v| v.is_nan()) {
         return Err(Error::Fit {
             detector: name.into(),
@@ -355,10 +379,8 @@ fn execute(
         let names = fitted.names();
         let t = crate::progress::part("feature matrices, train and validation");
         let train = fitted.apply(&data, &splits.train)?;
-        // The validation features are checked here, before any detector
-        // is fitted, and made again block by block for each candidate's
-        // scores: the validation matrix is never held whole.
-        fitted.map_blocks(&data, &splits.validation, SCORE_BLOCK, |_| Vec::<()>::new())?;
+        // Checked here, before any detector is fitted.
+        let val_x = SplitFeatures::of(&fitted, &data, &splits.validation)?;
         drop(t);
         // The candidates of one feature set are independent: fitted side by
         // side, each with the same bits as alone, and kept in spec order (the
@@ -386,8 +408,13 @@ fn execute(
                     .map_err(|e| in_set(e, set))?;
                     drop(t);
                     let t = crate::progress::part("validation scores");
-                    let validation_scores =
-                        checked_scores(&name, model.as_ref(), &fitted, &splits.validation, &data)?;
+                    let validation_scores = checked_scores(
+                        &name,
+                        model.as_ref(),
+                        (&fitted, &val_x),
+                        &splits.validation,
+                        &data,
+                    )?;
                     drop(t);
                     let t = crate::progress::part("ranking");
                     let validation_ranked = metrics::Ranked::new(&validation_scores, &val_y);
@@ -518,17 +545,17 @@ fn execute(
             .iter()
             .map(|r| data.is_anomaly[r.0 as usize])
             .collect();
-        // Every feature set's test features are checked before any score.
-        for f in &fitted_sets {
-            f.map_blocks(&data, &test_rows, SCORE_BLOCK, |_| Vec::<()>::new())?;
-        }
+        let test_x: Vec<SplitFeatures> = fitted_sets
+            .iter()
+            .map(|f| SplitFeatures::of(f, &data, &test_rows))
+            .collect::<Result<_>>()?;
         let t = crate::progress::part("test scores");
         let mut test_scores = Vec::new();
         for c in &candidates {
             test_scores.push(checked_scores(
                 &c.name,
                 c.model.as_ref(),
-                &fitted_sets[c.set],
+                (&fitted_sets[c.set], &test_x[c.set]),
                 &test_rows,
                 &data,
             )?);
