@@ -63,8 +63,9 @@ enum Slot {
 struct Out<'a> {
     values: &'a mut [f64],
     labels: &'a mut [bool],
-    /// Per text column (empty for the label): each row's (start, length).
-    spans: Vec<&'a mut [(u32, u32)]>,
+    /// Per text column (empty for the label): where each row's value ends
+    /// in the block's own bytes of that column.
+    ends: Vec<&'a mut [usize]>,
 }
 
 /// Reads `path` when it is plain CSV holding every wanted column; `None`
@@ -175,11 +176,12 @@ fn parse_body(
     let height: usize = heights.iter().sum();
     let mut values = vec![0.0; height * d];
     let mut labels = vec![false; if label.is_some() { height } else { 0 }];
-    // Where each text value lies in its block: (start, length).
-    let mut spans: Vec<Vec<(u32, u32)>> = (0..ntext)
+    // Where each text value ends: block-relative while the blocks are
+    // parsed, then moved by the bytes of the blocks before.
+    let mut ends: Vec<Vec<usize>> = (0..ntext)
         .map(|k| match label {
             Some(l) if l.index == k => Vec::new(),
-            _ => vec![(0, 0); height],
+            _ => vec![0; height],
         })
         .collect();
     // Each block gets its own disjoint share of every output.
@@ -187,7 +189,7 @@ fn parse_body(
     {
         let mut v: &mut [f64] = &mut values;
         let mut l: &mut [bool] = &mut labels;
-        let mut t: Vec<&mut [(u32, u32)]> = spans.iter_mut().map(|c| c.as_mut_slice()).collect();
+        let mut t: Vec<&mut [usize]> = ends.iter_mut().map(|c| c.as_mut_slice()).collect();
         for &h in &heights {
             let (vh, vr) = v.split_at_mut(h * d);
             v = vr;
@@ -205,42 +207,46 @@ fn parse_body(
             outs.push(Out {
                 values: vh,
                 labels: lh,
-                spans: th,
+                ends: th,
             });
         }
     }
-    // Blocks are at most a few MiB, so an offset within one fits in u32.
-    if blocks.iter().any(|b| b.len() > u32::MAX as usize) {
-        return None;
-    }
-    let ok = blocks
+    // Each block copies its text values while its lines are in cache: one
+    // buffer per block and text column.
+    let texts: Vec<Vec<Vec<u8>>> = blocks
         .par_iter()
         .zip(outs.into_par_iter())
-        .all(|(b, out)| parse_block(b, slots, d, label, out).is_some());
-    if !ok {
-        return None;
-    }
-    // Each text column's bytes copied once into one buffer, checked as
-    // UTF-8 as a whole (a field ends at an ASCII delimiter, so the whole is
-    // valid exactly when every field is).
-    let columns: Vec<TextColumn> = spans
-        .par_iter()
-        .map(|sp| {
-            if sp.is_empty() {
+        .map(|(b, out)| parse_block(b, slots, d, ntext, label, out))
+        .collect::<Option<_>>()?;
+    // Each text column joined: every block's bytes copied to its place and
+    // its ends moved by the bytes before it, block by block on all cores;
+    // then checked as UTF-8 as a whole (a field ends at an ASCII delimiter,
+    // so the whole is valid exactly when every field is).
+    let columns: Vec<TextColumn> = ends
+        .into_iter()
+        .enumerate()
+        .map(|(k, mut ends)| {
+            if ends.is_empty() {
                 return Some(TextColumn::default());
             }
-            let total: usize = sp.iter().map(|s| s.1 as usize).sum();
-            let mut bytes = Vec::with_capacity(total);
-            let mut ends = Vec::with_capacity(height);
-            let mut at = 0;
-            for (b, &h) in blocks.iter().zip(&heights) {
-                for &(start, len) in &sp[at..at + h] {
-                    let start = start as usize;
-                    bytes.extend_from_slice(&b[start..start + len as usize]);
-                    ends.push(bytes.len());
-                }
-                at += h;
+            let total: usize = texts.iter().map(|t| t[k].len()).sum();
+            let mut bytes = vec![0u8; total];
+            let mut jobs = Vec::with_capacity(blocks.len());
+            let (mut e, mut by): (&mut [usize], &mut [u8]) = (&mut ends, &mut bytes);
+            let mut before = 0;
+            for (t, &h) in texts.iter().zip(&heights) {
+                let (eh, er) = e.split_at_mut(h);
+                let (bh, br) = by.split_at_mut(t[k].len());
+                jobs.push((eh, bh, &t[k], before));
+                before += t[k].len();
+                (e, by) = (er, br);
             }
+            jobs.into_par_iter().for_each(|(eh, bh, t, before)| {
+                bh.copy_from_slice(t);
+                for x in eh.iter_mut() {
+                    *x += before;
+                }
+            });
             TextColumn::from_parts(String::from_utf8(bytes).ok()?, ends)
         })
         .collect::<Option<_>>()?;
@@ -384,15 +390,17 @@ fn split_blocks(body: &[u8]) -> Vec<&[u8]> {
 
 /// Parses one block of whole lines field by field: a number is parsed where
 /// it starts and must end at its delimiter, any other field is found by its
-/// delimiter; a text field is recorded by its place in the block.
+/// delimiter; a text field is copied to the block's bytes of its column.
 fn parse_block(
     block: &[u8],
     slots: &[Slot],
     d: usize,
+    ntext: usize,
     label: Option<&LabelWant<'_>>,
     mut out: Out<'_>,
-) -> Option<()> {
+) -> Option<Vec<Vec<u8>>> {
     let n = block.len();
+    let mut texts: Vec<Vec<u8>> = vec![Vec::new(); ntext];
     let last = slots.len().checked_sub(1)?;
     let mut p = 0;
     let mut row = 0;
@@ -413,7 +421,9 @@ fn parse_block(
                             if field.is_empty() {
                                 return None;
                             }
-                            *out.spans[k].get_mut(row)? = (p as u32, field.len() as u32);
+                            let t = &mut texts[k];
+                            t.extend_from_slice(field);
+                            *out.ends[k].get_mut(row)? = t.len();
                         }
                         Slot::Label => {
                             let l = label?;
@@ -441,7 +451,7 @@ fn parse_block(
         }
         row += 1;
     }
-    (row * d == out.values.len()).then_some(())
+    (row * d == out.values.len()).then_some(texts)
 }
 
 /// The number that starts at `start`, and where it ends (the index of the
