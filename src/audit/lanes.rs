@@ -8,9 +8,11 @@
 //! of such messages of one length, so here the same compression function
 //! (BLAKE3 specification, section 2.2: the G function, seven rounds, the
 //! message permutation) runs on `[u32; 16]` lanes, compiled also for AVX2 and
-//! AVX-512F and picked at run time. Only 32-bit additions, exclusive ors and
-//! rotations are used, so every compiled form gives the same bytes, and those
-//! are the `blake3` crate's (the tests compare every length from 0 to 1,024).
+//! AVX-512 and picked at run time; the AVX-512 form loads each block of the
+//! sixteen messages as sixteen vectors and transposes them in registers.
+//! Only 32-bit additions, exclusive ors and rotations are used, so every
+//! compiled form gives the same bytes, and those are the `blake3` crate's
+//! (the tests compare every length from 0 to 1,024, each form on its own).
 //! Longer messages are left to the crate.
 
 /// Messages hashed side by side.
@@ -163,10 +165,99 @@ fn hash16_generic(messages: &[u8], stride: usize, len: usize, out: &mut [[u8; 32
     }
 }
 
+/// [`hash16_generic`] with each block's message words loaded as sixteen
+/// 64-byte vectors (one per message; bytes past a message's end masked to
+/// zero) and transposed in registers, so that vector w holds word w of every
+/// message. The compression is the same code as the generic form's.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f,avx512bw")]
+fn hash16_avx512(messages: &[u8], stride: usize, len: usize, out: &mut [[u8; 32]; LANES]) {
+    use std::arch::x86_64::*;
+    assert!(len <= MAX_LEN && stride >= len);
+    assert!(messages.len() >= (LANES - 1) * stride + len);
+    let blocks = len.div_ceil(BLOCK).max(1);
+    let mut cv: [V; 8] = [[0; LANES]; 8];
+    for (i, w) in cv.iter_mut().enumerate() {
+        *w = [IV[i]; LANES];
+    }
+    for b in 0..blocks {
+        let start = b * BLOCK;
+        let block_len = (len - start).min(BLOCK);
+        let mask: __mmask64 = if block_len == BLOCK {
+            !0
+        } else {
+            (1u64 << block_len) - 1
+        };
+        let mut r = [_mm512_setzero_si512(); LANES];
+        for (l, v) in r.iter_mut().enumerate() {
+            // SAFETY: `l * stride + start` is at most `l * stride + len`,
+            // within `messages` by the assertions above; the mask keeps the
+            // load to the `block_len` bytes from there, which lie within
+            // message l, and masked-out bytes are neither read nor faulted.
+            *v = unsafe {
+                _mm512_maskz_loadu_epi8(mask, messages.as_ptr().add(l * stride + start).cast())
+            };
+        }
+        let m = transpose16(r);
+        let mut flags = 0;
+        if b == 0 {
+            flags |= CHUNK_START;
+        }
+        if b + 1 == blocks {
+            flags |= CHUNK_END | ROOT;
+        }
+        cv = compress(&cv, &m, block_len as u32, flags);
+    }
+    for (l, o) in out.iter_mut().enumerate() {
+        for (i, w) in cv.iter().enumerate() {
+            o[4 * i..4 * i + 4].copy_from_slice(&w[l].to_le_bytes());
+        }
+    }
+}
+
+/// The 16 × 16 transpose of 32-bit words: row l of `r` is message l's block,
+/// row w of the result is word w of every message. Pairs of words, then of
+/// double words, are interleaved within 128-bit lanes; then the 128-bit
+/// lanes of each group of four are transposed.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
-fn hash16_avx512(messages: &[u8], stride: usize, len: usize, out: &mut [[u8; 32]; LANES]) {
-    hash16_generic(messages, stride, len, out)
+fn transpose16(r: [std::arch::x86_64::__m512i; LANES]) -> [V; 16] {
+    use std::arch::x86_64::*;
+    // t[2k] lane q: words 4q, 4q+1 of rows 2k, 2k+1 interleaved; t[2k+1]:
+    // words 4q+2, 4q+3.
+    let mut t = [_mm512_setzero_si512(); 16];
+    for k in 0..8 {
+        t[2 * k] = _mm512_unpacklo_epi32(r[2 * k], r[2 * k + 1]);
+        t[2 * k + 1] = _mm512_unpackhi_epi32(r[2 * k], r[2 * k + 1]);
+    }
+    // u[4g + j] lane q: word 4q + j of rows 4g..4g+4.
+    let mut u = [_mm512_setzero_si512(); 16];
+    for g in 0..4 {
+        let (lo_a, hi_a, lo_b, hi_b) = (t[4 * g], t[4 * g + 1], t[4 * g + 2], t[4 * g + 3]);
+        u[4 * g] = _mm512_unpacklo_epi64(lo_a, lo_b);
+        u[4 * g + 1] = _mm512_unpackhi_epi64(lo_a, lo_b);
+        u[4 * g + 2] = _mm512_unpacklo_epi64(hi_a, hi_b);
+        u[4 * g + 3] = _mm512_unpackhi_epi64(hi_a, hi_b);
+    }
+    // m[4q + j] lane g = u[4g + j] lane q.
+    let mut m = [[0u32; LANES]; 16];
+    for j in 0..4 {
+        let x0 = _mm512_shuffle_i32x4::<0x44>(u[j], u[4 + j]);
+        let x1 = _mm512_shuffle_i32x4::<0xEE>(u[j], u[4 + j]);
+        let x2 = _mm512_shuffle_i32x4::<0x44>(u[8 + j], u[12 + j]);
+        let x3 = _mm512_shuffle_i32x4::<0xEE>(u[8 + j], u[12 + j]);
+        let rows = [
+            _mm512_shuffle_i32x4::<0x88>(x0, x2),
+            _mm512_shuffle_i32x4::<0xDD>(x0, x2),
+            _mm512_shuffle_i32x4::<0x88>(x1, x3),
+            _mm512_shuffle_i32x4::<0xDD>(x1, x3),
+        ];
+        for (q, v) in rows.into_iter().enumerate() {
+            // SAFETY: a row of `m` is 64 bytes, the size of the store.
+            unsafe { _mm512_storeu_si512(m[4 * q + j].as_mut_ptr().cast(), v) };
+        }
+    }
+    m
 }
 
 #[cfg(target_arch = "x86_64")]
@@ -185,8 +276,8 @@ pub fn hash16(messages: &[u8], stride: usize, len: usize, out: &mut [[u8; 32]; L
     assert!(messages.len() >= (LANES - 1) * stride + len);
     #[cfg(target_arch = "x86_64")]
     {
-        if std::is_x86_feature_detected!("avx512f") {
-            // SAFETY: the CPU has just been seen to support AVX-512F.
+        if std::is_x86_feature_detected!("avx512f") && std::is_x86_feature_detected!("avx512bw") {
+            // SAFETY: the CPU has just been seen to support AVX-512F and BW.
             return unsafe { hash16_avx512(messages, stride, len, out) };
         }
         if std::is_x86_feature_detected!("avx2") {
@@ -216,6 +307,14 @@ mod tests {
             let mut generic = [[0u8; 32]; LANES];
             hash16_generic(&messages, stride, len, &mut generic);
             assert_eq!(out, generic, "len {len}");
+            #[cfg(target_arch = "x86_64")]
+            if std::is_x86_feature_detected!("avx512f") && std::is_x86_feature_detected!("avx512bw")
+            {
+                let mut avx512 = [[0u8; 32]; LANES];
+                // SAFETY: the CPU has just been seen to support AVX-512F and BW.
+                unsafe { hash16_avx512(&messages, stride, len, &mut avx512) };
+                assert_eq!(avx512, generic, "len {len}");
+            }
             #[cfg(target_arch = "x86_64")]
             if std::is_x86_feature_detected!("avx2") {
                 let mut avx2 = [[0u8; 32]; LANES];
