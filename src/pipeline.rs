@@ -769,7 +769,7 @@ fn execute(
     };
     let (scores, (by_score, by_feature)) =
         rayon::join(scores, || rayon::join(score_figures, feature_figures));
-    files.add("scores.csv", scores);
+    files.add_parts("scores.csv", scores);
     (ctx.plots_validation, ctx.plots_test) = by_score?;
     ctx.plots_features = by_feature?;
     for p in ctx
@@ -880,7 +880,7 @@ fn scores_csv(
     validation: &[RowId],
     test: &[RowId],
     test_scores: &[Vec<f64>],
-) -> Vec<u8> {
+) -> Vec<Vec<u8>> {
     use rayon::prelude::*;
     use std::fmt::Write;
     let mut out = String::from(if data.ids.is_some() { "id" } else { "row" });
@@ -906,19 +906,18 @@ fn scores_csv(
         }));
         debug_assert_eq!(lines.len() - before, rows.len(), "a row twice in one split");
     }
-    // Lines are formatted in blocks on all cores and appended in order (the
-    // bytes do not depend on the thread count), a window of blocks at a
-    // time so that the formatted blocks never hold more than a window.
+    // Lines are formatted in blocks on all cores, kept in order as the
+    // file's parts (the bytes do not depend on the thread count). An id
+    // column with no delimiter, quote or line end anywhere is written as it
+    // is, without a check per value.
+    let plain_ids = data.ids.as_ref().is_some_and(|ids| {
+        let b = ids.joined().as_bytes();
+        memchr::memchr3(b',', b'"', b'\n', b).is_none() && memchr::memchr(b'\r', b).is_none()
+    });
     let line = |s: &mut String, (p, r, k): (Part, RowId, u32)| {
         let i = r.0 as usize;
         match &data.ids {
-            Some(ids)
-                if !ids[i]
-                    .bytes()
-                    .any(|b| matches!(b, b',' | b'"' | b'\n' | b'\r')) =>
-            {
-                s.push_str(&ids[i])
-            }
+            Some(ids) if plain_ids => s.push_str(&ids[i]),
             Some(ids) => s.push_str(&csv_field(&ids[i])),
             None => {
                 let _ = write!(s, "{}", r.0);
@@ -939,31 +938,20 @@ fn scores_csv(
         s.push('\n');
     };
     const BLOCK: usize = 8192;
-    const WINDOW: usize = 64 * BLOCK;
-    // Reserved generously (untouched capacity costs no resident memory), so
-    // that the buffer is not reallocated and copied while it grows.
     let id_len = data
         .ids
         .as_ref()
         .map_or(20, |ids| ids.iter().map(|s| s.len() + 2).max().unwrap_or(0));
-    let mut bytes = out.into_bytes();
-    bytes.reserve(lines.len() * (id_len + 14 + 32 * candidates.len()));
-    for window in lines.chunks(WINDOW) {
-        let blocks: Vec<String> = window
-            .par_chunks(BLOCK)
-            .map(|block| {
-                let mut s = String::with_capacity(block.len() * (24 + 20 * candidates.len()));
-                for &l in block {
-                    line(&mut s, l);
-                }
-                s
-            })
-            .collect();
-        for b in blocks {
-            bytes.extend_from_slice(b.as_bytes());
+    let mut parts = vec![out.into_bytes()];
+    parts.par_extend(lines.par_chunks(BLOCK).map(|block| {
+        // Room for the longest id and 25 bytes a score (ryu's longest).
+        let mut s = String::with_capacity(block.len() * (id_len + 14 + 25 * candidates.len()));
+        for &l in block {
+            line(&mut s, l);
         }
-    }
-    bytes
+        s.into_bytes()
+    }));
+    parts
 }
 
 fn fmt_fraction(f: &[f64]) -> String {
@@ -1394,9 +1382,9 @@ pub fn verify_by_recomputation(
     for name in manifest.files.keys() {
         let recorded = read(dir.join(name))?;
         match files.get(name) {
-            Some(b) if b == recorded.as_slice() => {}
+            Some(b) if *b == *recorded.as_slice() => {}
             Some(b) => {
-                let mut p = first_difference(name, &recorded, b);
+                let mut p = first_difference(name, &recorded, &b);
                 if name.starts_with("card.") {
                     p.push_str(
                         " (a card made with `--templates` cannot be recomputed without them)",

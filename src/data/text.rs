@@ -54,6 +54,11 @@ impl TextColumn {
         &self.bytes[start..self.ends[i]]
     }
 
+    /// Every value's bytes, back to back.
+    pub fn joined(&self) -> &str {
+        &self.bytes
+    }
+
     /// Bytes held by all values together.
     pub fn bytes_len(&self) -> usize {
         self.bytes.len()
