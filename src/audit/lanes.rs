@@ -176,10 +176,7 @@ fn hash16_avx512(messages: &[u8], stride: usize, len: usize, out: &mut [[u8; 32]
     assert!(len <= MAX_LEN && stride >= len);
     assert!(messages.len() >= (LANES - 1) * stride + len);
     let blocks = len.div_ceil(BLOCK).max(1);
-    let mut cv: [V; 8] = [[0; LANES]; 8];
-    for (i, w) in cv.iter_mut().enumerate() {
-        *w = [IV[i]; LANES];
-    }
+    let mut cv: [__m512i; 8] = IV.map(|w| _mm512_set1_epi32(w as i32));
     for b in 0..blocks {
         let start = b * BLOCK;
         let block_len = (len - start).min(BLOCK);
@@ -206,13 +203,85 @@ fn hash16_avx512(messages: &[u8], stride: usize, len: usize, out: &mut [[u8; 32]
         if b + 1 == blocks {
             flags |= CHUNK_END | ROOT;
         }
-        cv = compress(&cv, &m, block_len as u32, flags);
+        cv = compress512(&cv, &m, block_len as u32, flags);
+    }
+    let mut words = [[0u32; LANES]; 8];
+    for (w, v) in words.iter_mut().zip(&cv) {
+        // SAFETY: a row of `words` is 64 bytes, the size of the store.
+        unsafe { _mm512_storeu_si512(w.as_mut_ptr().cast(), *v) };
     }
     for (l, o) in out.iter_mut().enumerate() {
-        for (i, w) in cv.iter().enumerate() {
+        for (i, w) in words.iter().enumerate() {
             o[4 * i..4 * i + 4].copy_from_slice(&w[l].to_le_bytes());
         }
     }
+}
+
+/// [`compress`] written with AVX-512 operations on sixteen state vectors
+/// (the same additions, exclusive ors and rotations, so the same words);
+/// left to the compiler, the arrays of the generic form were kept in memory.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+fn compress512(
+    cv: &[std::arch::x86_64::__m512i; 8],
+    m: &[std::arch::x86_64::__m512i; 16],
+    block_len: u32,
+    flags: u32,
+) -> [std::arch::x86_64::__m512i; 8] {
+    use std::arch::x86_64::*;
+    // The G function on state vectors a, b, c, d and message vectors mx, my.
+    macro_rules! g {
+        ($s:ident, $a:literal, $b:literal, $c:literal, $d:literal, $mx:expr, $my:expr) => {
+            $s[$a] = _mm512_add_epi32(_mm512_add_epi32($s[$a], $s[$b]), $mx);
+            $s[$d] = _mm512_ror_epi32::<16>(_mm512_xor_si512($s[$d], $s[$a]));
+            $s[$c] = _mm512_add_epi32($s[$c], $s[$d]);
+            $s[$b] = _mm512_ror_epi32::<12>(_mm512_xor_si512($s[$b], $s[$c]));
+            $s[$a] = _mm512_add_epi32(_mm512_add_epi32($s[$a], $s[$b]), $my);
+            $s[$d] = _mm512_ror_epi32::<8>(_mm512_xor_si512($s[$d], $s[$a]));
+            $s[$c] = _mm512_add_epi32($s[$c], $s[$d]);
+            $s[$b] = _mm512_ror_epi32::<7>(_mm512_xor_si512($s[$b], $s[$c]));
+        };
+    }
+    let zero = _mm512_setzero_si512();
+    let mut s = [
+        cv[0],
+        cv[1],
+        cv[2],
+        cv[3],
+        cv[4],
+        cv[5],
+        cv[6],
+        cv[7],
+        _mm512_set1_epi32(IV[0] as i32),
+        _mm512_set1_epi32(IV[1] as i32),
+        _mm512_set1_epi32(IV[2] as i32),
+        _mm512_set1_epi32(IV[3] as i32),
+        // The chunk counter, 0.
+        zero,
+        zero,
+        _mm512_set1_epi32(block_len as i32),
+        _mm512_set1_epi32(flags as i32),
+    ];
+    for w in &SCHEDULE {
+        g!(s, 0, 4, 8, 12, m[w[0]], m[w[1]]);
+        g!(s, 1, 5, 9, 13, m[w[2]], m[w[3]]);
+        g!(s, 2, 6, 10, 14, m[w[4]], m[w[5]]);
+        g!(s, 3, 7, 11, 15, m[w[6]], m[w[7]]);
+        g!(s, 0, 5, 10, 15, m[w[8]], m[w[9]]);
+        g!(s, 1, 6, 11, 12, m[w[10]], m[w[11]]);
+        g!(s, 2, 7, 8, 13, m[w[12]], m[w[13]]);
+        g!(s, 3, 4, 9, 14, m[w[14]], m[w[15]]);
+    }
+    [
+        _mm512_xor_si512(s[0], s[8]),
+        _mm512_xor_si512(s[1], s[9]),
+        _mm512_xor_si512(s[2], s[10]),
+        _mm512_xor_si512(s[3], s[11]),
+        _mm512_xor_si512(s[4], s[12]),
+        _mm512_xor_si512(s[5], s[13]),
+        _mm512_xor_si512(s[6], s[14]),
+        _mm512_xor_si512(s[7], s[15]),
+    ]
 }
 
 /// The 16 × 16 transpose of 32-bit words: row l of `r` is message l's block,
@@ -221,7 +290,7 @@ fn hash16_avx512(messages: &[u8], stride: usize, len: usize, out: &mut [[u8; 32]
 /// lanes of each group of four are transposed.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
-fn transpose16(r: [std::arch::x86_64::__m512i; LANES]) -> [V; 16] {
+fn transpose16(r: [std::arch::x86_64::__m512i; LANES]) -> [std::arch::x86_64::__m512i; 16] {
     use std::arch::x86_64::*;
     // t[2k] lane q: words 4q, 4q+1 of rows 2k, 2k+1 interleaved; t[2k+1]:
     // words 4q+2, 4q+3.
@@ -240,7 +309,7 @@ fn transpose16(r: [std::arch::x86_64::__m512i; LANES]) -> [V; 16] {
         u[4 * g + 3] = _mm512_unpackhi_epi64(hi_a, hi_b);
     }
     // m[4q + j] lane g = u[4g + j] lane q.
-    let mut m = [[0u32; LANES]; 16];
+    let mut m = [_mm512_setzero_si512(); 16];
     for j in 0..4 {
         let x0 = _mm512_shuffle_i32x4::<0x44>(u[j], u[4 + j]);
         let x1 = _mm512_shuffle_i32x4::<0xEE>(u[j], u[4 + j]);
@@ -253,8 +322,7 @@ fn transpose16(r: [std::arch::x86_64::__m512i; LANES]) -> [V; 16] {
             _mm512_shuffle_i32x4::<0xDD>(x1, x3),
         ];
         for (q, v) in rows.into_iter().enumerate() {
-            // SAFETY: a row of `m` is 64 bytes, the size of the store.
-            unsafe { _mm512_storeu_si512(m[4 * q + j].as_mut_ptr().cast(), v) };
+            m[4 * q + j] = v;
         }
     }
     m
