@@ -535,20 +535,63 @@ impl FittedFeatures {
         let identity = self.is_identity(data);
         let parts: Option<Vec<Vec<T>>> = rows
             .par_chunks(block.max(1))
-            .map(|rs| {
-                let m = match (identity, data.x.as_slice()) {
-                    (true, Some(values)) => copy_rows(values, data.x.ncols(), rs),
-                    _ => None,
-                };
-                let m = m.or_else(|| self.apply_rows(data, rs))?;
-                Some(f(m.view()))
-            })
+            .map(|rs| Some(f(self.block_matrix(data, identity, rs)?.view())))
             .collect();
         match parts {
             Some(parts) => Ok(parts.into_iter().flatten().collect()),
             // The whole pass names the refused value's feature and rows.
             None => self.apply(data, rows).map(|m| f(m.view())),
         }
+    }
+
+    /// The values of [`Self::apply`] on `rows` one feature at a time (a
+    /// vector of `rows.len()` values per feature), made a block of rows at a
+    /// time on all cores: no row-major matrix of all the rows is held. A
+    /// refused value gives the error of [`Self::apply`].
+    pub fn columns(&self, data: &Dataset, rows: &[RowId]) -> Result<Vec<Vec<f64>>> {
+        use rayon::prelude::*;
+        const BLOCK: usize = 8192;
+        let d = self.features.len();
+        let mut columns: Vec<Vec<f64>> = (0..d).map(|_| vec![0.0; rows.len()]).collect();
+        // Each block's share of every column.
+        let mut shares: Vec<Vec<&mut [f64]>> =
+            rows.chunks(BLOCK).map(|_| Vec::with_capacity(d)).collect();
+        for c in &mut columns {
+            for (share, part) in shares.iter_mut().zip(c.chunks_mut(BLOCK)) {
+                share.push(part);
+            }
+        }
+        let identity = self.is_identity(data);
+        let ok = rows
+            .par_chunks(BLOCK)
+            .zip(shares.into_par_iter())
+            .all(|(rs, share)| match self.block_matrix(data, identity, rs) {
+                Some(m) => {
+                    for (part, col) in share.into_iter().zip(m.columns()) {
+                        for (dst, v) in part.iter_mut().zip(col) {
+                            *dst = *v;
+                        }
+                    }
+                    true
+                }
+                None => false,
+            });
+        if ok {
+            return Ok(columns);
+        }
+        // The whole pass names the refused value's feature and rows.
+        let m = self.apply(data, rows)?;
+        Ok(m.columns().into_iter().map(|c| c.to_vec()).collect())
+    }
+
+    /// The feature matrix of one block of rows (`identity`: from
+    /// [`Self::is_identity`]), or `None` when a value is refused.
+    fn block_matrix(&self, data: &Dataset, identity: bool, rs: &[RowId]) -> Option<Array2<f64>> {
+        let m = match (identity, data.x.as_slice()) {
+            (true, Some(values)) => copy_rows(values, data.x.ncols(), rs),
+            _ => None,
+        };
+        m.or_else(|| self.apply_rows(data, rs))
     }
 
     /// The feature matrix computed row by row on all cores, or `None` when
@@ -718,6 +761,19 @@ mod tests {
                 .zip(&whole)
                 .all(|(a, b)| a.to_bits() == b.to_bits()));
         }
+        // One feature at a time, over blocks of 8,192 rows with a short last
+        // one: each column is the whole matrix's column, bit for bit.
+        let all: Vec<RowId> = (0..n as u64).rev().map(RowId).collect();
+        let whole = set.apply(&data, &all).unwrap();
+        let columns = set.columns(&data, &all).unwrap();
+        assert_eq!(columns.len(), 4);
+        for (j, c) in columns.iter().enumerate() {
+            assert_eq!(c.len(), n);
+            assert!(c
+                .iter()
+                .zip(whole.column(j))
+                .all(|(a, b)| a.to_bits() == b.to_bits()));
+        }
         let mut bad = set.clone();
         bad.features[3].transforms = vec![Fitted::Log];
         assert!(bad.apply_rows(&data, &rows).is_none());
@@ -729,6 +785,8 @@ mod tests {
             .unwrap_err()
             .to_string();
         assert_eq!(by_blocks, e);
+        let by_columns = bad.columns(&data, &rows).unwrap_err().to_string();
+        assert_eq!(by_columns, e);
     }
 
     /// A set of the content columns themselves is copied, not computed, and
@@ -768,6 +826,18 @@ mod tests {
         let holed = Dataset::for_tests(holed, vec![false; n], Default::default());
         let e = set.apply(&holed, &rows).unwrap_err().to_string();
         assert!(e.contains("x1"), "{e}");
+        assert_eq!(set.columns(&holed, &rows).unwrap_err().to_string(), e);
+        // Copied one feature at a time over blocks of 8,192 rows: each row
+        // appears twice, 10,000 rows in all.
+        let twice: Vec<RowId> = (0..2 * n as u64).map(|i| RowId(i % n as u64)).collect();
+        let columns = set.columns(&data, &twice).unwrap();
+        for (j, c) in columns.iter().enumerate() {
+            assert_eq!(c.len(), twice.len());
+            assert!(c
+                .iter()
+                .zip(&twice)
+                .all(|(v, r)| v.to_bits() == data.x[(r.0 as usize, j)].to_bits()));
+        }
         let mut transformed = set.clone();
         transformed.features[0].transforms = vec![Fitted::Sqrt];
         assert!(!transformed.is_identity(&data));

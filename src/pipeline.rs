@@ -746,14 +746,14 @@ fn execute(
         } else {
             shown_as.to_string()
         };
-        let shown_x = set.apply(&data, &sampled)?;
+        let columns = set.columns(&data, &sampled)?;
         use rayon::prelude::*;
         set.names()
             .par_iter()
+            .zip(&columns)
             .enumerate()
-            .map(|(j, name)| {
-                let column: Vec<f64> = shown_x.column(j).to_vec();
-                plots::feature_histogram(j, name, &shown_as, &column, params.marginal(j))
+            .map(|(j, (name, column))| {
+                plots::feature_histogram(j, name, &shown_as, column, params.marginal(j))
             })
             .collect::<Result<_>>()
     };
