@@ -914,40 +914,49 @@ fn scores_csv(
         let b = ids.joined().as_bytes();
         memchr::memchr3(b',', b'"', b'\n', b).is_none() && memchr::memchr(b'\r', b).is_none()
     });
-    let line = |s: &mut String, (p, r, k): (Part, RowId, u32)| {
-        let i = r.0 as usize;
-        match &data.ids {
-            Some(ids) if plain_ids => s.push_str(&ids[i]),
-            Some(ids) => s.push_str(&csv_field(&ids[i])),
-            None => {
-                let _ = write!(s, "{}", r.0);
+    let line =
+        |s: &mut String, (p, r, _): (Part, RowId, u32), scores: &mut dyn Iterator<Item = f64>| {
+            let i = r.0 as usize;
+            match &data.ids {
+                Some(ids) if plain_ids => s.push_str(&ids[i]),
+                Some(ids) => s.push_str(&csv_field(&ids[i])),
+                None => {
+                    let _ = write!(s, "{}", r.0);
+                }
             }
-        }
-        s.push(',');
-        s.push_str(p.name());
-        s.push(',');
-        s.push(if data.is_anomaly[i] { '1' } else { '0' });
-        for (ci, c) in candidates.iter().enumerate() {
-            let v = match p {
-                Part::Test => test_scores[ci][k as usize],
-                _ => c.validation_scores[k as usize],
-            };
             s.push(',');
-            crate::record::push_f64(s, v);
-        }
-        s.push('\n');
-    };
+            s.push_str(p.name());
+            s.push(',');
+            s.push(if data.is_anomaly[i] { '1' } else { '0' });
+            for v in scores {
+                s.push(',');
+                crate::record::push_f64(s, v);
+            }
+            s.push('\n');
+        };
     const BLOCK: usize = 8192;
     let id_len = data
         .ids
         .as_ref()
         .map_or(20, |ids| ids.iter().map(|s| s.len() + 2).max().unwrap_or(0));
+    let nc = candidates.len();
     let mut parts = vec![out.into_bytes()];
     parts.par_extend(lines.par_chunks(BLOCK).map(|block| {
+        // The block's scores first, a tight pass of loads: a line's place in
+        // its split's score vectors is scattered (content-hash order), and
+        // loads issued together overlap their cache misses.
+        let mut scores = Vec::with_capacity(block.len() * nc);
+        for &(p, _, k) in block {
+            let k = k as usize;
+            scores.extend(candidates.iter().enumerate().map(|(ci, c)| match p {
+                Part::Test => test_scores[ci][k],
+                _ => c.validation_scores[k],
+            }));
+        }
         // Room for the longest id and 25 bytes a score (ryu's longest).
-        let mut s = String::with_capacity(block.len() * (id_len + 14 + 25 * candidates.len()));
-        for &l in block {
-            line(&mut s, l);
+        let mut s = String::with_capacity(block.len() * (id_len + 14 + 25 * nc));
+        for (j, &l) in block.iter().enumerate() {
+            line(&mut s, l, &mut scores[j * nc..(j + 1) * nc].iter().copied());
         }
         s.into_bytes()
     }));
