@@ -139,6 +139,8 @@ pub fn clopper_pearson(k: u64, n: u64, confidence: f64) -> Option<Interval> {
 #[derive(Debug, Clone)]
 pub struct Ranked {
     pub(crate) order: Vec<usize>,
+    /// The scores in that order (`scores[order[k]]`).
+    pub(crate) sorted: Vec<f64>,
     pub(crate) anomalous: Vec<bool>,
     pub(crate) ends: Vec<usize>,
 }
@@ -172,23 +174,27 @@ fn ranked(scores: &[f64], is_anomaly: &[bool]) -> Ranked {
     // Sorting (descending score key, row) packed into one integer gives the
     // order of a stable sort by descending `total_cmp`: the keys are unique,
     // so an unstable sort has only one answer.
+    use rayon::prelude::*;
     let mut keys: Vec<u128> = scores
         .iter()
         .enumerate()
         .map(|(i, &v)| (u128::from(!total_order_key(v)) << 64) | i as u128)
         .collect();
-    keys.sort_unstable();
+    keys.par_sort_unstable();
     let order: Vec<usize> = keys.iter().map(|&k| k as u64 as usize).collect();
     drop(keys);
+    // Gathered in tight passes, so that the scattered loads overlap.
+    let sorted: Vec<f64> = order.iter().map(|&i| scores[i]).collect();
+    let anomalous = order.iter().map(|&i| is_anomaly[i]).collect();
     let mut ends = Vec::new();
-    for k in 1..=order.len() {
-        if k == order.len() || scores[order[k]].total_cmp(&scores[order[k - 1]]).is_ne() {
+    for k in 1..=sorted.len() {
+        if k == sorted.len() || sorted[k].total_cmp(&sorted[k - 1]).is_ne() {
             ends.push(k);
         }
     }
-    let anomalous = order.iter().map(|&i| is_anomaly[i]).collect();
     Ranked {
         order,
+        sorted,
         anomalous,
         ends,
     }
@@ -458,7 +464,7 @@ fn bootstrap_with(
     }
     let pos_rank: Vec<u32> = pos.iter().map(|&i| rank[i]).collect();
     let neg_rank: Vec<u32> = neg.iter().map(|&i| rank[i]).collect();
-    let flagged = r.order.iter().take_while(|&&i| scores[i] > tau).count();
+    let flagged = r.sorted.iter().take_while(|&&v| v > tau).count();
     let buckets = Buckets::new(r, &pos_rank, &neg_rank, flagged);
     let (p_total, n_total) = (pos.len() as f64, neg.len() as f64);
     let reps: Vec<(f64, f64, f64)> = (0..plan.replicates)

@@ -682,7 +682,7 @@ fn execute(
     // made side by side on all cores, each with the same bytes as alone.
     let score_figures = || -> Result<(Vec<plots::Plot>, Vec<plots::Plot>)> {
         let _t = crate::progress::part("score figures");
-        let val_cuts = threshold::cuts_ranked(&c.validation_scores, &c.validation_ranked);
+        let val_cuts = threshold::cuts_ranked(&c.validation_ranked);
         let val = plots::SplitScores {
             split: Part::Validation.name(),
             scores: &c.validation_scores,
@@ -698,7 +698,7 @@ fn execute(
         ];
         let mut test = vec![];
         if rec.test_opened {
-            let test_cuts = threshold::cuts_ranked(&test_scores[chosen], &test_ranked[chosen]);
+            let test_cuts = threshold::cuts_ranked(&test_ranked[chosen]);
             let t = plots::SplitScores {
                 split: Part::Test.name(),
                 scores: &test_scores[chosen],

@@ -72,11 +72,12 @@ pub struct Cut {
 
 /// Every distinct cut point, from "flag nothing" to "flag everything".
 pub fn cuts(scores: &[f64], is_anomaly: &[bool]) -> Vec<Cut> {
-    cuts_ranked(scores, &Ranked::new(scores, is_anomaly))
+    cuts_ranked(&Ranked::new(scores, is_anomaly))
 }
 
-/// [`cuts`] from the scores' ranking (the same cuts, no sort).
-pub fn cuts_ranked(scores: &[f64], r: &Ranked) -> Vec<Cut> {
+/// [`cuts`] from the scores' ranking (the same cuts, no sort; the ranking
+/// holds the scores in rank order).
+pub fn cuts_ranked(r: &Ranked) -> Vec<Cut> {
     let positives = r.anomalous.iter().filter(|&&a| a).count() as u64;
     let negatives = r.anomalous.len() as u64 - positives;
     let mut cuts = Vec::with_capacity(r.ends.len() + 1);
@@ -87,7 +88,7 @@ pub fn cuts_ranked(scores: &[f64], r: &Ranked) -> Vec<Cut> {
             fn_: positives,
             tn: negatives,
         },
-        tau: r.order.first().map_or(0.0, |&i| scores[i]),
+        tau: r.sorted.first().copied().unwrap_or(0.0),
     });
     let (mut tp, mut fp) = (0u64, 0u64);
     let mut start = 0;
@@ -95,9 +96,9 @@ pub fn cuts_ranked(scores: &[f64], r: &Ranked) -> Vec<Cut> {
         let p = r.anomalous[start..end].iter().filter(|&&a| a).count() as u64;
         tp += p;
         fp += (end - start) as u64 - p;
-        let s = scores[r.order[start]];
-        let tau = match r.order.get(end) {
-            Some(&next) => between(s, scores[next]),
+        let s = r.sorted[start];
+        let tau = match r.sorted.get(end) {
+            Some(&next) => between(s, next),
             None => below(s),
         };
         cuts.push(Cut {
@@ -200,7 +201,7 @@ pub fn choose_ranked(
     is_anomaly: &[bool],
     r: &Ranked,
 ) -> Choice {
-    choose_from(policy, scores, is_anomaly, || cuts_ranked(scores, r))
+    choose_from(policy, scores, is_anomaly, || cuts_ranked(r))
 }
 
 /// [`choose`] with the scores' cut points made by `make_cuts`, which a fixed
