@@ -284,7 +284,6 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
         }
     };
 
-    let mut lists: [Vec<RowId>; 3] = Default::default();
     let mut counts = [Counts::default(); 3];
     for (i, p) in part_of.iter().enumerate().take(n) {
         if data.is_anomaly[i] {
@@ -293,6 +292,9 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
             counts[*p as usize].normal += 1;
         }
     }
+    // Each list made at its final size (never regrown and copied).
+    let mut lists: [Vec<RowId>; 3] =
+        counts.map(|c| Vec::with_capacity(c.normal + c.anomaly));
     // Taken in (content, row) order, each list is already in canonical order.
     for &i in &order.rows {
         lists[part_of[i as usize] as usize].push(RowId(u64::from(i)));
