@@ -200,16 +200,19 @@ impl Best {
 /// queries against one panel's LANES rows; `neg2q` holds −2q feature-major
 /// (feature j of the Q queries at `[j·Q ..][..Q]`). `FUSED` uses fused
 /// multiply-adds (only where the CPU has them).
+/// With them, per query, the lanes whose value is at or below the query's
+/// `limits` entry (bit l for lane l; a NaN is never at or below).
 #[inline(always)]
 fn screen_block<const Q: usize, const FUSED: bool, const AVX512: bool>(
     neg2q: &[f32],
     panel: &[f32],
-) -> [[f32; LANES]; Q] {
+    limits: &[f32; Q],
+) -> ([[f32; LANES]; Q], [u32; Q]) {
     #[cfg(target_arch = "x86_64")]
     if AVX512 {
         // SAFETY: AVX512 is set only by `Fitted::kth_sq_distances_avx512`,
         // which runs only where the CPU has AVX-512F.
-        return unsafe { screen_block_avx512::<Q>(neg2q, panel) };
+        return unsafe { screen_block_avx512::<Q>(neg2q, panel, limits) };
     }
     let (norms, features) = panel.split_at(LANES);
     let norms: &[f32; LANES] = norms.try_into().unwrap();
@@ -227,7 +230,13 @@ fn screen_block<const Q: usize, const FUSED: bool, const AVX512: bool>(
             }
         }
     }
-    acc
+    let mut hits = [0u32; Q];
+    for ((h, a), &limit) in hits.iter_mut().zip(&acc).zip(limits) {
+        for (l, &v) in a.iter().enumerate() {
+            *h |= u32::from(v <= limit) << l;
+        }
+    }
+    (acc, hits)
 }
 
 /// [`screen_block`] in AVX-512F registers: one panel (16 lanes) per register,
@@ -235,8 +244,15 @@ fn screen_block<const Q: usize, const FUSED: bool, const AVX512: bool>(
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
 #[inline]
-unsafe fn screen_block_avx512<const Q: usize>(neg2q: &[f32], panel: &[f32]) -> [[f32; LANES]; Q] {
-    use std::arch::x86_64::{_mm512_fmadd_ps, _mm512_loadu_ps, _mm512_set1_ps, _mm512_storeu_ps};
+unsafe fn screen_block_avx512<const Q: usize>(
+    neg2q: &[f32],
+    panel: &[f32],
+    limits: &[f32; Q],
+) -> ([[f32; LANES]; Q], [u32; Q]) {
+    use std::arch::x86_64::{
+        _mm512_cmp_ps_mask, _mm512_fmadd_ps, _mm512_loadu_ps, _mm512_set1_ps, _mm512_storeu_ps,
+        _CMP_LE_OQ,
+    };
     const { assert!(LANES == 16) };
     let d = neg2q.len() / Q;
     assert!(panel.len() >= (d + 1) * LANES && neg2q.len() == d * Q);
@@ -251,10 +267,17 @@ unsafe fn screen_block_avx512<const Q: usize>(neg2q: &[f32], panel: &[f32]) -> [
         }
     }
     let mut out = [[0.0f32; LANES]; Q];
-    for (o, a) in out.iter_mut().zip(acc) {
+    let mut hits = [0u32; Q];
+    for ((o, h), (a, &limit)) in out
+        .iter_mut()
+        .zip(&mut hits)
+        .zip(acc.into_iter().zip(limits))
+    {
+        // At or below, ordered: false for a NaN, as `<=` is.
+        *h = u32::from(_mm512_cmp_ps_mask::<_CMP_LE_OQ>(a, _mm512_set1_ps(limit)));
         unsafe { _mm512_storeu_ps(o.as_mut_ptr(), a) };
     }
-    out
+    (out, hits)
 }
 
 impl Fitted {
@@ -309,21 +332,22 @@ impl Fitted {
                 }
                 for (p_in_tile, panel) in tile.chunks_exact(width).enumerate() {
                     let first_row = (tile_no * TILE_PANELS + p_in_tile) * LANES;
-                    let acc = screen_block::<Q, FUSED, AVX512>(&block, panel);
-                    for (qi, (a, limit)) in acc.iter().zip(limits.iter_mut()).enumerate() {
-                        let hit = a.iter().fold(false, |h, &v| h | (v <= *limit));
-                        if !hit {
+                    let (acc, hits) = screen_block::<Q, FUSED, AVX512>(&block, panel, &limits);
+                    for (qi, (a, &hit)) in acc.iter().zip(&hits).enumerate() {
+                        if hit == 0 {
                             continue;
                         }
                         let i = b0 + qi;
                         let lanes = LANES.min(self.m - first_row);
-                        for (l, &v) in a.iter().enumerate().take(lanes) {
-                            if v <= *limit {
-                                top[i].offer(f64::from(v));
-                                kept[i].push((v, first_row + l));
-                            }
+                        // The lanes at or below the limit, in lane order.
+                        let mut h = hit & (u32::MAX >> (32 - lanes));
+                        while h != 0 {
+                            let l = h.trailing_zeros() as usize;
+                            h &= h - 1;
+                            top[i].offer(f64::from(a[l]));
+                            kept[i].push((a[l], first_row + l));
                         }
-                        *limit = limit_of(&top[i], i);
+                        limits[qi] = limit_of(&top[i], i);
                     }
                 }
             }
