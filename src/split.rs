@@ -293,8 +293,7 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
         }
     }
     // Each list made at its final size (never regrown and copied).
-    let mut lists: [Vec<RowId>; 3] =
-        counts.map(|c| Vec::with_capacity(c.normal + c.anomaly));
+    let mut lists: [Vec<RowId>; 3] = counts.map(|c| Vec::with_capacity(c.normal + c.anomaly));
     // Taken in (content, row) order, each list is already in canonical order.
     for &i in &order.rows {
         lists[part_of[i as usize] as usize].push(RowId(u64::from(i)));
