@@ -121,6 +121,20 @@ fn compress(cv: &[V; 8], m: &[V; 16], block_len: u32, flags: u32) -> [V; 8] {
     out
 }
 
+/// The flags of block `b` of a one-chunk message of `blocks` blocks: the
+/// first starts the chunk, the last ends it and is the root.
+#[inline(always)]
+fn block_flags(b: usize, blocks: usize) -> u32 {
+    let mut flags = 0;
+    if b == 0 {
+        flags |= CHUNK_START;
+    }
+    if b + 1 == blocks {
+        flags |= CHUNK_END | ROOT;
+    }
+    flags
+}
+
 #[inline(always)]
 fn hash16_generic(messages: &[u8], stride: usize, len: usize, out: &mut [[u8; 32]; LANES]) {
     let blocks = len.div_ceil(BLOCK).max(1);
@@ -149,13 +163,7 @@ fn hash16_generic(messages: &[u8], stride: usize, len: usize, out: &mut [[u8; 32
                 }
             }
         }
-        let mut flags = 0;
-        if b == 0 {
-            flags |= CHUNK_START;
-        }
-        if b + 1 == blocks {
-            flags |= CHUNK_END | ROOT;
-        }
+        let flags = block_flags(b, blocks);
         cv = compress(&cv, &m, block_len as u32, flags);
     }
     for (l, o) in out.iter_mut().enumerate() {
@@ -168,7 +176,8 @@ fn hash16_generic(messages: &[u8], stride: usize, len: usize, out: &mut [[u8; 32
 /// [`hash16_generic`] with each block's message words loaded as sixteen
 /// 64-byte vectors (one per message; bytes past a message's end masked to
 /// zero) and transposed in registers, so that vector w holds word w of every
-/// message. The compression is the same code as the generic form's.
+/// message, and compressed by [`compress512`], the generic compression's
+/// operations on vectors.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f,avx512bw")]
 fn hash16_avx512(messages: &[u8], stride: usize, len: usize, out: &mut [[u8; 32]; LANES]) {
@@ -196,13 +205,7 @@ fn hash16_avx512(messages: &[u8], stride: usize, len: usize, out: &mut [[u8; 32]
             };
         }
         let m = transpose16(r);
-        let mut flags = 0;
-        if b == 0 {
-            flags |= CHUNK_START;
-        }
-        if b + 1 == blocks {
-            flags |= CHUNK_END | ROOT;
-        }
+        let flags = block_flags(b, blocks);
         cv = compress512(&cv, &m, block_len as u32, flags);
     }
     let mut words = [[0u32; LANES]; 8];

@@ -199,9 +199,9 @@ impl Best {
 /// Screened values ‖t‖² − 2 q·t (‖q − t‖² less ‖q‖²) of a block of `Q`
 /// queries against one panel's LANES rows; `neg2q` holds −2q feature-major
 /// (feature j of the Q queries at `[j·Q ..][..Q]`). `FUSED` uses fused
-/// multiply-adds (only where the CPU has them).
-/// With them, per query, the lanes whose value is at or below the query's
-/// `limits` entry (bit l for lane l; a NaN is never at or below).
+/// multiply-adds (only where the CPU has them). Also returns, per query, the
+/// lanes whose value is at or below the query's `limits` entry (bit l for
+/// lane l; a NaN is never at or below).
 #[inline(always)]
 fn screen_block<const Q: usize, const FUSED: bool, const AVX512: bool>(
     neg2q: &[f32],
