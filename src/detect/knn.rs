@@ -199,20 +199,25 @@ impl Best {
 /// Screened values ‖t‖² − 2 q·t (‖q − t‖² less ‖q‖²) of a block of `Q`
 /// queries against one panel's LANES rows; `neg2q` holds −2q feature-major
 /// (feature j of the Q queries at `[j·Q ..][..Q]`). `FUSED` uses fused
-/// multiply-adds (only where the CPU has them). Also returns, per query, the
-/// lanes whose value is at or below the query's `limits` entry (bit l for
-/// lane l; a NaN is never at or below).
+/// multiply-adds (only where the CPU has them). Per query, the lanes whose
+/// value is at or below the query's `limits` entry are kept (bit l for lane
+/// l; a NaN is never at or below). Returns the union of those lane sets;
+/// only when it is not empty are the values and per-query lanes written to
+/// `values` and `hits` (most panels keep nothing, and then nothing leaves
+/// the registers).
 #[inline(always)]
 fn screen_block<const Q: usize, const FUSED: bool, const AVX512: bool>(
     neg2q: &[f32],
     panel: &[f32],
     limits: &[f32; Q],
-) -> ([[f32; LANES]; Q], [u32; Q]) {
+    values: &mut [[f32; LANES]; Q],
+    hits: &mut [u32; Q],
+) -> u32 {
     #[cfg(target_arch = "x86_64")]
     if AVX512 {
         // SAFETY: AVX512 is set only by `Fitted::kth_sq_distances_avx512`,
         // which runs only where the CPU has AVX-512F.
-        return unsafe { screen_block_avx512::<Q>(neg2q, panel, limits) };
+        return unsafe { screen_block_avx512::<Q>(neg2q, panel, limits, values, hits) };
     }
     let (norms, features) = panel.split_at(LANES);
     let norms: &[f32; LANES] = norms.try_into().unwrap();
@@ -230,13 +235,18 @@ fn screen_block<const Q: usize, const FUSED: bool, const AVX512: bool>(
             }
         }
     }
-    let mut hits = [0u32; Q];
-    for ((h, a), &limit) in hits.iter_mut().zip(&acc).zip(limits) {
+    let mut found = [0u32; Q];
+    for ((h, a), &limit) in found.iter_mut().zip(&acc).zip(limits) {
         for (l, &v) in a.iter().enumerate() {
             *h |= u32::from(v <= limit) << l;
         }
     }
-    (acc, hits)
+    let any = found.iter().fold(0, |u, &h| u | h);
+    if any != 0 {
+        *values = acc;
+        *hits = found;
+    }
+    any
 }
 
 /// [`screen_block`] in AVX-512F registers: one panel (16 lanes) per register,
@@ -248,7 +258,9 @@ unsafe fn screen_block_avx512<const Q: usize>(
     neg2q: &[f32],
     panel: &[f32],
     limits: &[f32; Q],
-) -> ([[f32; LANES]; Q], [u32; Q]) {
+    values: &mut [[f32; LANES]; Q],
+    hits: &mut [u32; Q],
+) -> u32 {
     use std::arch::x86_64::{
         _mm512_cmp_ps_mask, _mm512_fmadd_ps, _mm512_loadu_ps, _mm512_set1_ps, _mm512_storeu_ps,
         _CMP_LE_OQ,
@@ -266,18 +278,24 @@ unsafe fn screen_block_avx512<const Q: usize>(
             *a = _mm512_fmadd_ps(_mm512_set1_ps(qv), t, *a);
         }
     }
-    let mut out = [[0.0f32; LANES]; Q];
-    let mut hits = [0u32; Q];
-    for ((o, h), (a, &limit)) in out
-        .iter_mut()
-        .zip(&mut hits)
-        .zip(acc.into_iter().zip(limits))
-    {
+    let mut found = [0u16; Q];
+    for ((h, a), &limit) in found.iter_mut().zip(&acc).zip(limits) {
         // At or below, ordered: false for a NaN, as `<=` is.
-        *h = u32::from(_mm512_cmp_ps_mask::<_CMP_LE_OQ>(a, _mm512_set1_ps(limit)));
-        unsafe { _mm512_storeu_ps(o.as_mut_ptr(), a) };
+        *h = _mm512_cmp_ps_mask::<_CMP_LE_OQ>(*a, _mm512_set1_ps(limit));
     }
-    (out, hits)
+    let any = u32::from(found.iter().fold(0, |u, &h| u | h));
+    if any != 0 {
+        for ((o, h), (a, f)) in values
+            .iter_mut()
+            .zip(hits.iter_mut())
+            .zip(acc.iter().zip(found))
+        {
+            // SAFETY: `o` holds LANES = 16 values.
+            unsafe { _mm512_storeu_ps(o.as_mut_ptr(), *a) };
+            *h = u32::from(f);
+        }
+    }
+    any
 }
 
 impl Fitted {
@@ -311,17 +329,25 @@ impl Fitted {
             .iter()
             .map(|qn| SCREEN_MARGIN * (d + 4) as f64 * (qn + self.max_norm))
             .collect();
-        let mut block = vec![0.0f32; Q * d];
-        for (tile_no, tile) in self.panels.chunks(TILE_PANELS * width).enumerate() {
-            for b0 in (0..n).step_by(Q) {
-                let real = Q.min(n - b0);
-                // Pad a short block by repeating its last query (results unused).
-                for qi in 0..Q {
-                    let q = query(b0 + qi.min(real - 1));
-                    for (j, v) in q.iter().enumerate() {
-                        block[j * Q + qi] = (-2.0 * v) as f32;
-                    }
+        // −2q of every block of Q queries, feature-major within the block,
+        // made once and read for every tile. A short last block is padded
+        // by repeating its last query (results unused).
+        let mut blocks = vec![0.0f32; n.div_ceil(Q) * Q * d];
+        for (b, block) in blocks.chunks_exact_mut(Q * d).enumerate() {
+            let b0 = b * Q;
+            let real = Q.min(n - b0);
+            for qi in 0..Q {
+                let q = query(b0 + qi.min(real - 1));
+                for (j, v) in q.iter().enumerate() {
+                    block[j * Q + qi] = (-2.0 * v) as f32;
                 }
+            }
+        }
+        let mut values = [[0.0f32; LANES]; Q];
+        let mut hits = [0u32; Q];
+        for (tile_no, tile) in self.panels.chunks(TILE_PANELS * width).enumerate() {
+            for (b0, block) in (0..n).step_by(Q).zip(blocks.chunks_exact(Q * d)) {
+                let real = Q.min(n - b0);
                 // A value must be at or below its query's limit to be kept;
                 // rounded up to the next f32, so no value at or below the
                 // f64 limit is lost in the conversion. Updated after each hit.
@@ -332,8 +358,17 @@ impl Fitted {
                 }
                 for (p_in_tile, panel) in tile.chunks_exact(width).enumerate() {
                     let first_row = (tile_no * TILE_PANELS + p_in_tile) * LANES;
-                    let (acc, hits) = screen_block::<Q, FUSED, AVX512>(&block, panel, &limits);
-                    for (qi, (a, &hit)) in acc.iter().zip(&hits).enumerate() {
+                    let any = screen_block::<Q, FUSED, AVX512>(
+                        block,
+                        panel,
+                        &limits,
+                        &mut values,
+                        &mut hits,
+                    );
+                    if any == 0 {
+                        continue;
+                    }
+                    for (qi, (a, &hit)) in values.iter().zip(&hits).enumerate() {
                         if hit == 0 {
                             continue;
                         }
