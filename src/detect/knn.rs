@@ -196,6 +196,12 @@ impl Best {
     }
 }
 
+/// A block's screened values and, per query, its kept lanes (bit l for lane l).
+struct Screened<const Q: usize> {
+    values: [[f32; LANES]; Q],
+    hits: [u32; Q],
+}
+
 /// Screened values ‖t‖² − 2 q·t (‖q − t‖² less ‖q‖²) of a block of `Q`
 /// queries against one panel's LANES rows; `neg2q` holds −2q feature-major
 /// (feature j of the Q queries at `[j·Q ..][..Q]`). `FUSED` uses fused
@@ -203,21 +209,19 @@ impl Best {
 /// value is at or below the query's `limits` entry are kept (bit l for lane
 /// l; a NaN is never at or below). Returns the union of those lane sets;
 /// only when it is not empty are the values and per-query lanes written to
-/// `values` and `hits` (most panels keep nothing, and then nothing leaves
-/// the registers).
+/// `kept` (most panels keep nothing, and then nothing leaves the registers).
 #[inline(always)]
 fn screen_block<const Q: usize, const FUSED: bool, const AVX512: bool>(
     neg2q: &[f32],
     panel: &[f32],
     limits: &[f32; Q],
-    values: &mut [[f32; LANES]; Q],
-    hits: &mut [u32; Q],
+    kept: &mut Screened<Q>,
 ) -> u32 {
     #[cfg(target_arch = "x86_64")]
     if AVX512 {
         // SAFETY: AVX512 is set only by `Fitted::kth_sq_distances_avx512`,
         // which runs only where the CPU has AVX-512F.
-        return unsafe { screen_block_avx512::<Q>(neg2q, panel, limits, values, hits) };
+        return unsafe { screen_block_avx512::<Q>(neg2q, panel, limits, kept) };
     }
     let (norms, features) = panel.split_at(LANES);
     let norms: &[f32; LANES] = norms.try_into().unwrap();
@@ -243,8 +247,8 @@ fn screen_block<const Q: usize, const FUSED: bool, const AVX512: bool>(
     }
     let any = found.iter().fold(0, |u, &h| u | h);
     if any != 0 {
-        *values = acc;
-        *hits = found;
+        kept.values = acc;
+        kept.hits = found;
     }
     any
 }
@@ -258,8 +262,7 @@ unsafe fn screen_block_avx512<const Q: usize>(
     neg2q: &[f32],
     panel: &[f32],
     limits: &[f32; Q],
-    values: &mut [[f32; LANES]; Q],
-    hits: &mut [u32; Q],
+    kept: &mut Screened<Q>,
 ) -> u32 {
     use std::arch::x86_64::{
         _mm512_cmp_ps_mask, _mm512_fmadd_ps, _mm512_loadu_ps, _mm512_set1_ps, _mm512_storeu_ps,
@@ -285,9 +288,10 @@ unsafe fn screen_block_avx512<const Q: usize>(
     }
     let any = u32::from(found.iter().fold(0, |u, &h| u | h));
     if any != 0 {
-        for ((o, h), (a, f)) in values
+        for ((o, h), (a, f)) in kept
+            .values
             .iter_mut()
-            .zip(hits.iter_mut())
+            .zip(kept.hits.iter_mut())
             .zip(acc.iter().zip(found))
         {
             // SAFETY: `o` holds LANES = 16 values.
@@ -343,8 +347,10 @@ impl Fitted {
                 }
             }
         }
-        let mut values = [[0.0f32; LANES]; Q];
-        let mut hits = [0u32; Q];
+        let mut kept_now = Screened {
+            values: [[0.0f32; LANES]; Q],
+            hits: [0u32; Q],
+        };
         for (tile_no, tile) in self.panels.chunks(TILE_PANELS * width).enumerate() {
             for (b0, block) in (0..n).step_by(Q).zip(blocks.chunks_exact(Q * d)) {
                 let real = Q.min(n - b0);
@@ -358,17 +364,13 @@ impl Fitted {
                 }
                 for (p_in_tile, panel) in tile.chunks_exact(width).enumerate() {
                     let first_row = (tile_no * TILE_PANELS + p_in_tile) * LANES;
-                    let any = screen_block::<Q, FUSED, AVX512>(
-                        block,
-                        panel,
-                        &limits,
-                        &mut values,
-                        &mut hits,
-                    );
+                    let any =
+                        screen_block::<Q, FUSED, AVX512>(block, panel, &limits, &mut kept_now);
                     if any == 0 {
                         continue;
                     }
-                    for (qi, (a, &hit)) in values.iter().zip(&hits).enumerate() {
+                    let Screened { values, hits } = &kept_now;
+                    for (qi, (a, &hit)) in values.iter().zip(hits).enumerate() {
                         if hit == 0 {
                             continue;
                         }
