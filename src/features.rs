@@ -115,9 +115,18 @@ fn input_value(input: FeatureInput, row: &[f64]) -> f64 {
     }
 }
 
-/// `true` when every input is finite on every row (one row-major pass on
-/// all cores; [`raw`] names the rows when it is not).
-fn inputs_finite(data: &Dataset, inputs: &[FeatureInput], rows: &[RowId]) -> bool {
+/// The largest magnitude of a training feature value. A Gaussian's moments
+/// sum squares over the rows: beyond about 1e154 a square, and a little lower
+/// a sum of them, is no longer finite, and the variance would come out as
+/// infinity and every score as NaN. Common practice, no source: 1e150 leaves
+/// room for 1e8 rows' sums. Validation, test and scored rows are not bound
+/// (their scores may be infinite).
+pub const TRAIN_LIMIT: f64 = 1e150;
+
+/// `true` when every input is within ±[`TRAIN_LIMIT`] on every row (one
+/// row-major pass on all cores; [`raw`] and [`fit`] name the rows when it
+/// is not).
+fn inputs_within(data: &Dataset, inputs: &[FeatureInput], rows: &[RowId]) -> bool {
     use rayon::prelude::*;
     let x = data.x.as_standard_layout();
     let Some(xs) = x.as_slice() else {
@@ -129,7 +138,7 @@ fn inputs_finite(data: &Dataset, inputs: &[FeatureInput], rows: &[RowId]) -> boo
     if inputs.iter().all(|f| matches!(f, FeatureInput::Column(_)))
         && xs
             .par_chunks(1 << 16)
-            .all(|c| c.iter().all(|v| v.is_finite()))
+            .all(|c| c.iter().all(|v| v.abs() <= TRAIN_LIMIT))
     {
         return true;
     }
@@ -137,7 +146,9 @@ fn inputs_finite(data: &Dataset, inputs: &[FeatureInput], rows: &[RowId]) -> boo
         rs.iter().all(|r| {
             let i = r.0 as usize;
             let row = &xs[i * width..(i + 1) * width];
-            inputs.iter().all(|&f| input_value(f, row).is_finite())
+            inputs
+                .iter()
+                .all(|&f| input_value(f, row).abs() <= TRAIN_LIMIT)
         })
     })
 }
@@ -329,10 +340,10 @@ fn check_domain(
 
 /// Fits every transform of a feature set on the training rows.
 pub fn fit(set: &FeatureSetPlan, data: &Dataset, train: &[RowId]) -> Result<FittedFeatures> {
-    // One row-major pass proves every input finite; only then may a feature
-    // without transforms skip its own (column-wise) pass.
+    // One row-major pass proves every input within ±TRAIN_LIMIT; only then
+    // may a feature without transforms skip its own (column-wise) pass.
     let inputs: Vec<FeatureInput> = set.features.iter().map(|f| f.input).collect();
-    let all_finite = inputs_finite(data, &inputs, train);
+    let all_finite = inputs_within(data, &inputs, train);
     let mut features = Vec::new();
     for f in &set.features {
         if all_finite && f.transforms.is_empty() {
@@ -379,6 +390,21 @@ pub fn fit(set: &FeatureSetPlan, data: &Dataset, train: &[RowId]) -> Result<Fitt
                 *x = fitted.apply(*x);
             }
             steps.push(fitted);
+        }
+        let huge: Vec<RowId> = train
+            .iter()
+            .zip(&v)
+            .filter(|(_, x)| x.is_nan() || x.abs() > TRAIN_LIMIT)
+            .map(|(r, _)| *r)
+            .collect();
+        if !huge.is_empty() {
+            return Err(data.error(
+                &f.name,
+                "a training value is beyond ±1e150 (after transforms): the fitted \
+                 moments would overflow; fix the value or transform the feature (`log`)"
+                    .into(),
+                &huge,
+            ));
         }
         features.push(FittedFeature {
             name: f.name.clone(),

@@ -373,6 +373,36 @@ impl Ctx<'_> {
                     },
                 }
             })?;
+            // The in-memory fit's bound (features::fit), named the same way.
+            for (j, name) in f.names().iter().enumerate() {
+                let huge: Vec<usize> = (0..rows)
+                    .filter(|&i| x[(i, j)].abs() > crate::features::TRAIN_LIMIT)
+                    .collect();
+                if let Some(&first) = huge.first() {
+                    let o = acc.pending_origin[first];
+                    let file = &self.files[o.file as usize];
+                    return Err(Error::Data {
+                        path: file.shown.clone().into(),
+                        column: Some(name.clone()),
+                        message: "a training value is beyond ±1e150 (after transforms): the \
+                                  fitted moments would overflow; fix the value or transform \
+                                  the feature (`log`)"
+                            .into(),
+                        total: huge.len(),
+                        lines: huge
+                            .iter()
+                            .map(|&r| acc.pending_origin[r])
+                            .filter(|p| p.file == o.file)
+                            .take(5)
+                            .map(|p| file.format.place(p.row))
+                            .collect(),
+                        unit: match file.format {
+                            Format::Csv => RowUnit::Line,
+                            Format::Parquet => RowUnit::Row,
+                        },
+                    });
+                }
+            }
             let block = Moments::of_block(x.view());
             acc.moments[s].merge(&block);
         }

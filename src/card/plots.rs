@@ -181,24 +181,66 @@ fn kth_smallest_key(keys: impl Iterator<Item = i64>, k: usize) -> i64 {
     *heap.peek().expect("k < n keys")
 }
 
-/// The plotted range of a score or feature axis: the 0.1 % and 99.9 %
-/// quantiles, widened to take in `must` values, padded by 3 %.
-fn axis_range(v: &[f64], must: &[f64]) -> Range<f64> {
-    let (mut lo, mut hi) = if v.is_empty() {
+/// The largest magnitude an axis reaches. plotters' key points need a finite
+/// width that a few ticks can divide; beyond about 1e154 the square of a
+/// value, and near 1.8e308 a width, is no longer finite, and a range of a few
+/// ulps never gives enough ticks. Common practice, no source: 1e150 leaves
+/// room for the padding and the tick arithmetic.
+const AXIS_LIMIT: f64 = 1e150;
+
+/// A plotted range and whether values were left out of it beyond
+/// [`AXIS_LIMIT`] (infinite or huge), which the caption then says.
+#[derive(Debug, Clone)]
+struct Axis {
+    range: Range<f64>,
+    clipped: bool,
+}
+
+impl Axis {
+    /// The caption's sentence when values were left out, else nothing.
+    fn note(&self) -> &'static str {
+        if self.clipped {
+            " Values that are infinite or beyond ±1e150 are left out of the axis range (they are not drawn)."
+        } else {
+            ""
+        }
+    }
+}
+
+/// The plotted range of a score or feature axis, the one every figure with a
+/// data-dependent axis uses: the 0.1 % and 99.9 % quantiles of the values
+/// within ±[`AXIS_LIMIT`], widened to take in the `must` values within it,
+/// widened to at least a millionth of its magnitude (or ±0.5) when it is
+/// (nearly) a single value, and padded by 3 %. Always finite, never empty.
+fn axis_range(v: &[f64], must: &[f64]) -> Axis {
+    let within = |x: &f64| x.abs() <= AXIS_LIMIT;
+    let kept: std::borrow::Cow<'_, [f64]> = if v.iter().all(within) {
+        std::borrow::Cow::Borrowed(v)
+    } else {
+        std::borrow::Cow::Owned(v.iter().copied().filter(within).collect())
+    };
+    let mut clipped = kept.len() < v.len() || !must.iter().all(within);
+    let (mut lo, mut hi) = if kept.is_empty() {
         (0.0, 1.0)
     } else {
-        (quantile(v, 0.001), quantile(v, 0.999))
+        (quantile(&kept, 0.001), quantile(&kept, 0.999))
     };
-    for &m in must {
-        lo = lo.min(m);
-        hi = hi.max(m);
+    for m in must.iter().filter(|m| within(m)) {
+        lo = lo.min(*m);
+        hi = hi.max(*m);
     }
-    if hi - lo <= f64::EPSILON * hi.abs().max(1.0) {
-        lo -= 0.5;
-        hi += 0.5;
+    let magnitude = lo.abs().max(hi.abs());
+    if hi - lo <= (f64::EPSILON * hi.abs().max(1.0)).max(1e-9 * magnitude) {
+        let half = 0.5f64.max(1e-6 * magnitude);
+        lo -= half;
+        hi += half;
     }
     let pad = 0.03 * (hi - lo);
-    (lo - pad)..(hi + pad)
+    clipped |= kept.is_empty() && !v.is_empty();
+    Axis {
+        range: (lo - pad)..(hi + pad),
+        clipped,
+    }
 }
 
 fn recall(c: &Confusion) -> f64 {
@@ -328,7 +370,8 @@ pub fn objective(policy: ThresholdPolicy, s: SplitScores<'_>) -> Result<Plot> {
     let (name, value) = threshold::objective(policy);
     let cuts = s.cuts;
     let ln_eps: Vec<f64> = s.scores.iter().map(|v| -v).collect();
-    let xr = axis_range(&ln_eps, &[-s.tau]);
+    let axis = axis_range(&ln_eps, &[-s.tau]);
+    let xr = axis.range.clone();
     let mut points: Vec<(f64, f64)> = cuts
         .iter()
         .map(|cut| (-cut.tau, value(&cut.c)))
@@ -360,7 +403,10 @@ pub fn objective(policy: ThresholdPolicy, s: SplitScores<'_>) -> Result<Plot> {
             .legend(|(x, y)| PathElement::new([(x, y), (x + 18, y)], NORMAL.stroke_width(2)));
         chart
             .draw_series(LineSeries::new(
-                [(-s.tau, 0.0), (-s.tau, ymax)],
+                // A τ beyond the axis limit is named in the legend only.
+                [(-s.tau, 0.0), (-s.tau, ymax)]
+                    .into_iter()
+                    .filter(|p| xr.contains(&p.0)),
                 MARK.stroke_width(2),
             ))?
             .label(format!("chosen ln ε = {:.4} ({name} {at:.4})", -s.tau))
@@ -371,8 +417,9 @@ pub fn objective(policy: ThresholdPolicy, s: SplitScores<'_>) -> Result<Plot> {
         file,
         title: format!("{name} against ln ε ({})", s.split),
         caption: format!(
-            "The threshold policy's objective ({name}) at every distinct threshold on the {} split, with the chosen ε; the axis spans the 0.1 % to 99.9 % quantiles of −s(x).",
-            s.split
+            "The threshold policy's objective ({name}) at every distinct threshold on the {} split, with the chosen ε; the axis spans the 0.1 % to 99.9 % quantiles of −s(x).{}",
+            s.split,
+            axis.note()
         ),
         svg,
     })
@@ -397,7 +444,8 @@ fn bin_counts(v: &[f64], r: &Range<f64>, bins: usize) -> (Vec<u64>, u64) {
 /// Score histograms of normal and anomalous rows with the threshold line.
 /// Counts are log-scaled when one class outnumbers the other more than 20 to 1.
 pub fn score_histogram(s: SplitScores<'_>) -> Result<Plot> {
-    let xr = axis_range(s.scores, &[s.tau]);
+    let axis = axis_range(s.scores, &[s.tau]);
+    let xr = axis.range.clone();
     let bins = 48;
     let normal: Vec<f64> = s
         .scores
@@ -451,10 +499,11 @@ pub fn score_histogram(s: SplitScores<'_>) -> Result<Plot> {
         file,
         title: format!("Score histogram by class ({})", s.split),
         caption: format!(
-            "Counts of s(x) = −ln p(x) on the {} split for normal and anomalous rows{}; rows right of the line are flagged.{}",
+            "Counts of s(x) = −ln p(x) on the {} split for normal and anomalous rows{}; rows right of the line are flagged.{}{}",
             s.split,
             if log { ", on a logarithmic count axis because the classes are very unequal" } else { "" },
-            outside
+            outside,
+            axis.note()
         ),
         svg,
     })
@@ -512,7 +561,10 @@ where
     let ytop = chart.y_range().end;
     chart
         .draw_series(LineSeries::new(
-            [(s.tau, floor), (s.tau, ytop)],
+            // A τ beyond the axis limit is named in the legend only.
+            [(s.tau, floor), (s.tau, ytop)]
+                .into_iter()
+                .filter(|p| xr.contains(&p.0)),
             MARK.stroke_width(2),
         ))?
         .label(format!("τ = {:.4}", s.tau))
@@ -554,7 +606,8 @@ pub fn feature_histogram(
             )
         }
     };
-    let xr = axis_range(values, &[]);
+    let axis = axis_range(values, &[]);
+    let xr = axis.range.clone();
     let bins = 40;
     let width = (xr.end - xr.start) / bins as f64;
     let (counts, outside) = bin_counts(values, &xr, bins);
@@ -564,6 +617,7 @@ pub fn feature_histogram(
             let x = xr.start + (xr.end - xr.start) * i as f64 / 200.0;
             (x, mixture_pdf(&components, x))
         })
+        .filter(|p| p.1.is_finite())
         .collect();
     let top = density
         .iter()
@@ -603,12 +657,13 @@ pub fn feature_histogram(
         file,
         title: format!("Training histogram of {name}"),
         caption: format!(
-            "{name}: {rows} after transforms (bars, as a density) and {source} (line).{}",
+            "{name}: {rows} after transforms (bars, as a density) and {source} (line).{}{}",
             if outside > 0 {
                 format!(" {outside} rows in the 0.1 % tails are not drawn.")
             } else {
                 String::new()
-            }
+            },
+            axis.note()
         ),
         svg,
     })
@@ -672,6 +727,82 @@ mod tests {
         assert_eq!(a.svg, b.svg);
         assert!(!a.svg.contains("<script>"));
         assert!(a.svg.contains("&lt;script&gt;"));
+    }
+
+    /// Issue 25: a score or feature of 1e155 or more (or an infinite one, or
+    /// a single distinct value) once made plotters' key-point search spin
+    /// forever. Each figure is drawn on its own thread and must be back
+    /// within a bound far above its usual few milliseconds.
+    #[test]
+    fn every_figure_draws_in_bounded_time_whatever_the_values() {
+        let normal = [10.1, 10.4, 9.8, 11.2, 10.0, 9.5];
+        let sets: Vec<(Vec<f64>, f64)> = vec![
+            (
+                normal.iter().copied().chain([1e200, 16.0, 17.0]).collect(),
+                15.0,
+            ),
+            (
+                normal.iter().copied().chain([1e300, 1e308]).collect(),
+                1e300,
+            ),
+            (
+                normal
+                    .iter()
+                    .copied()
+                    .chain([f64::INFINITY, 16.0])
+                    .collect(),
+                f64::INFINITY,
+            ),
+            (vec![f64::NEG_INFINITY, 3.0, f64::INFINITY, 4.0], 3.5),
+            (vec![1e155; 8], 1e155),
+            (vec![1e300, 1e300 * (1.0 + f64::EPSILON), 1e300], 1e300),
+            (vec![-1e308, 1e308, 0.0, 1.0], 0.5),
+            (vec![7.25; 5], 7.25),
+            (vec![1e-320, 2e-320, 3e-320], 2e-320),
+            (vec![f64::INFINITY; 4], f64::INFINITY),
+        ];
+        for (scores, tau) in sets {
+            let handle = std::thread::spawn(move || {
+                let labels: Vec<bool> = (0..scores.len()).map(|i| i % 3 == 2).collect();
+                let cuts = threshold::cuts(&scores, &labels);
+                let s = SplitScores {
+                    split: "validation",
+                    scores: &scores,
+                    is_anomaly: &labels,
+                    tau,
+                    cuts: &cuts,
+                };
+                let mut captions = vec![
+                    precision_recall(s).unwrap().caption,
+                    roc(s).unwrap().caption,
+                    objective(ThresholdPolicy::MaxF1, s).unwrap().caption,
+                    score_histogram(s).unwrap().caption,
+                ];
+                for marginal in [None, Some(vec![(1.0, 10.0, 1.0)])] {
+                    captions.push(
+                        feature_histogram(0, "a", "rows", &scores, marginal)
+                            .unwrap()
+                            .caption,
+                    );
+                }
+                (scores, captions)
+            });
+            let started = std::time::Instant::now();
+            while !handle.is_finished() {
+                assert!(
+                    started.elapsed() < std::time::Duration::from_secs(60),
+                    "a figure did not finish within 60 s"
+                );
+                std::thread::sleep(std::time::Duration::from_millis(20));
+            }
+            let (scores, captions) = handle.join().unwrap();
+            let huge = scores.iter().any(|v| v.abs() > AXIS_LIMIT);
+            // The objective, the score and the feature histograms say so
+            // when values were left out of the range.
+            for c in &captions[2..] {
+                assert_eq!(c.contains("beyond ±1e150"), huge, "{scores:?}: {c}");
+            }
+        }
     }
 
     #[test]

@@ -253,3 +253,47 @@ fn missing_spec_is_an_io_error() {
         .args(["run", "absent.yaml", "--key", "key.pem", "--out", "out"])
         .fails(4, &["absent.yaml"]);
 }
+
+/// Issue 25: a training value of 1e308 made the variance infinite and every
+/// score NaN, and the run blamed a validation row; `check` printed `sd inf`
+/// and "problems: none". The value's own line is named, in `run` and `check`.
+#[test]
+fn a_huge_training_value_is_refused_naming_its_line() {
+    let r = rows(40, 6, 3);
+    let mut text = String::from("id,a,b,c,split,label\n");
+    for (i, (id, x, anomalous)) in r.iter().enumerate() {
+        let split = match (anomalous, i % 4) {
+            (true, k) if k % 2 == 0 => "validation",
+            (true, _) => "test",
+            (false, 0) => "validation",
+            (false, 1) => "test",
+            _ => "train",
+        };
+        // Row 6 (line 8) is a training row.
+        let a = if i == 6 {
+            "1e308".to_string()
+        } else {
+            format!("{:.6}", x[0])
+        };
+        let label = if *anomalous { "anomaly" } else { "normal" };
+        text.push_str(&format!(
+            "{id},{a},{:.6},{:.6},{split},{label}\n",
+            x[1], x[2]
+        ));
+    }
+    let case = Case::new()
+        .file("data.csv", text)
+        .file("spec.yaml", spec(&["a", "b", "c"], "  from-column: split"))
+        .keys();
+    let d = case.clone().run_spec().exec();
+    assert_eq!(d.code, 3, "{}", d.stderr);
+    assert!(
+        d.stderr.contains("beyond ±1e150") && d.stderr.contains("line 8"),
+        "{}",
+        d.stderr
+    );
+    no_output(&d);
+    let d = case.args(["check", "spec.yaml"]).exec();
+    assert!(d.stdout.contains("beyond ±1e150"), "{}", d.stdout);
+    assert!(!d.stdout.contains("problems: none"), "{}", d.stdout);
+}
