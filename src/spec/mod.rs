@@ -23,6 +23,23 @@ use crate::error::{Error, Location, Result};
 /// The spec format version this release reads.
 pub const FORMAT: u32 = 1;
 
+// Upper bounds on the spec's knobs whose cost grows with their value (the
+// README's Limits). Common practice, no source: each is far above what a
+// sensible spec asks for (a bootstrap of 1,000 to 10,000 replicates, a k of
+// a few to a few tens, from memory) and low enough that the work stays
+// within hours on one machine.
+
+/// Most bootstrap replicates (`bootstrap.replicates`).
+pub const MAX_REPLICATES: u32 = 100_000;
+/// Largest `k` of the `knn-distance` detector.
+pub const MAX_KNN_K: usize = 1_000;
+/// Largest `k-max` of the `gaussian-mixture` detector.
+pub const MAX_MIXTURE_K: usize = 20;
+/// Most feature sets (`data.feature-sets`).
+pub const MAX_FEATURE_SETS: usize = 100;
+/// Most features in one feature set.
+pub const MAX_FEATURES: usize = 1_000;
+
 /// A split seed.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, serde::Serialize)]
 pub struct Seed(pub u64);
@@ -697,6 +714,16 @@ fn feature_list(
     if list.value.is_empty() {
         return Err(r.err(list, field, "at least one feature is needed".into()));
     }
+    if list.value.len() > MAX_FEATURES {
+        return Err(r.err(
+            list,
+            field,
+            format!(
+                "{} features; at most {MAX_FEATURES} are allowed in one set",
+                list.value.len()
+            ),
+        ));
+    }
     let mut out: Vec<FeaturePlan> = Vec::new();
     for (i, f) in list.value.iter().enumerate() {
         let sub = format!("{field}[{i}]");
@@ -877,6 +904,16 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
                     "at least one feature set is needed".into(),
                 ));
             }
+            if sets.value.len() > MAX_FEATURE_SETS {
+                return Err(r.err(
+                    sets,
+                    "data.feature-sets",
+                    format!(
+                        "{} feature sets; at most {MAX_FEATURE_SETS} are allowed",
+                        sets.value.len()
+                    ),
+                ));
+            }
             let mut out: Vec<FeatureSetPlan> = Vec::new();
             for (i, set) in sets.value.iter().enumerate() {
                 let field = format!("data.feature-sets[{i}]");
@@ -956,9 +993,9 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
                 covariance_floor,
                 ..
             } => {
-                if k_min < 1 || k_max < k_min || k_max > 20 {
+                if k_min < 1 || k_max < k_min || k_max > MAX_MIXTURE_K {
                     return bad(format!(
-                        "need 1 ≤ `k-min` ≤ `k-max` ≤ 20, found {k_min} and {k_max}"
+                        "need 1 ≤ `k-min` ≤ `k-max` ≤ {MAX_MIXTURE_K}, found {k_min} and {k_max}"
                     ));
                 }
                 if !(covariance_floor >= 0.0 && covariance_floor.is_finite()) {
@@ -969,6 +1006,9 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
             }
             DetectorKind::KnnDistance { k } if k < 1 => {
                 return bad("`k` must be at least 1".into());
+            }
+            DetectorKind::KnnDistance { k } if k > MAX_KNN_K => {
+                return bad(format!("`k` must be at most {MAX_KNN_K}, found {k}"));
             }
             _ => {}
         }
@@ -1041,6 +1081,19 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
         ));
     }
 
+    if let Some(n) = raw.bootstrap.as_ref().map(|b| &b.replicates) {
+        if n.value > MAX_REPLICATES {
+            return Err(r.err(
+                n,
+                "bootstrap.replicates",
+                format!(
+                    "`replicates` must be at most {MAX_REPLICATES}, found {}",
+                    n.value
+                ),
+            ));
+        }
+    }
+
     let card = &raw.card;
     if card.title.value.trim().is_empty() {
         return Err(r.err(&card.title, "card.title", "the card title is empty".into()));
@@ -1069,8 +1122,8 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
         threshold,
         selection,
         bootstrap: crate::metrics::BootstrapPlan {
-            replicates: raw.bootstrap.map_or(1000, |b| b.replicates),
-            seed: raw.bootstrap.map_or(1, |b| b.seed),
+            replicates: raw.bootstrap.as_ref().map_or(1000, |b| b.replicates.value),
+            seed: raw.bootstrap.as_ref().map_or(1, |b| b.seed),
         },
         card: CardText {
             title: card.title.value.clone(),

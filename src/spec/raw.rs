@@ -429,8 +429,9 @@ pub enum DetectorKind {
         /// Smallest k (default 1).
         #[serde(default = "one_usize")]
         k_min: usize,
-        /// Largest k (default 5).
+        /// Largest k (default 5, at most 20).
         #[serde(default = "five")]
+        #[schemars(range(max = 20))]
         k_max: usize,
         /// Seed of the k-means++ starts (default 1).
         #[serde(default = "one")]
@@ -441,8 +442,9 @@ pub enum DetectorKind {
     },
     /// Distance to the k-th nearest training row, read as a density.
     KnnDistance {
-        /// k (default 5).
+        /// k (default 5, at most 1,000).
         #[serde(default = "five")]
+        #[schemars(range(min = 1, max = 1_000))]
         k: usize,
     },
 }
@@ -611,19 +613,21 @@ pub enum SelectionMetric {
 }
 
 /// The bootstrap's size and seed.
-#[derive(Debug, Clone, Copy, Deserialize, JsonSchema)]
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
 #[serde(rename_all = "kebab-case", deny_unknown_fields)]
 pub struct RawBootstrap {
-    /// Replicates (default 1000; 0 turns the bootstrap intervals off).
+    /// Replicates (default 1000, at most 100,000; 0 turns the bootstrap intervals off).
     #[serde(default = "default_replicates")]
-    pub replicates: u32,
+    #[schemars(with = "u32", range(max = 100_000))]
+    pub replicates: Spanned<u32>,
     /// Seed (default 1).
     #[serde(default = "default_boot_seed")]
     pub seed: u64,
 }
 
-fn default_replicates() -> u32 {
-    1000
+fn default_replicates() -> Spanned<u32> {
+    let nowhere = serde_saphyr::Location::UNKNOWN;
+    Spanned::new(1000, nowhere, nowhere)
 }
 
 fn default_boot_seed() -> u64 {

@@ -297,3 +297,38 @@ fn a_huge_training_value_is_refused_naming_its_line() {
     assert!(d.stdout.contains("beyond ±1e150"), "{}", d.stdout);
     assert!(!d.stdout.contains("problems: none"), "{}", d.stdout);
 }
+
+/// Issue 25: `bootstrap.replicates: 1000000000` was accepted and never
+/// finished. Every knob whose cost grows with it has an upper bound,
+/// refused at the spec with its place.
+#[test]
+fn cost_knobs_beyond_their_bound_are_refused_at_the_spec() {
+    let base = spec(&["a", "b", "c"], PROTOCOL);
+    let cases = [
+        (
+            format!("{base}bootstrap: {{replicates: 1000000000}}\n"),
+            "field `bootstrap.replicates`: `replicates` must be at most 100000, found 1000000000",
+        ),
+        (
+            base.replace(
+                "detectors: [independent-gaussian, multivariate-gaussian]",
+                "detectors: [{knn-distance: {k: 5000}}]",
+            ),
+            "`k` must be at most 1000, found 5000",
+        ),
+        (
+            base.replace(
+                "detectors: [independent-gaussian, multivariate-gaussian]",
+                "detectors: [{gaussian-mixture: {k-max: 21}}]",
+            ),
+            "≤ `k-max` ≤ 20",
+        ),
+    ];
+    for (text, message) in cases {
+        let d = standard(&rows(50, 4, 1))
+            .file("spec.yaml", text)
+            .run_spec()
+            .fails(2, &["spec.yaml:", message]);
+        no_output(&d);
+    }
+}
