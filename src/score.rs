@@ -298,6 +298,7 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
     let counter = Arc::new(opts.progress.rows("scoring"));
     let tag = format!("blake3:{}", run.manifest_blake3);
     let data_path = opts.data.clone();
+    let out_path = opts.out.clone();
     let callback = {
         let (run, state, used, counter) =
             (run.clone(), state.clone(), used.clone(), counter.clone());
@@ -309,7 +310,7 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
             match score_batch(&run, &used, df, &tag, st.rows, in_format, &data_path) {
                 Ok((out, flagged)) => {
                     let n = out.height() as u64;
-                    if let Err(e) = write_batch(&mut st, &out, out_format) {
+                    if let Err(e) = write_batch(&mut st, &out, out_format, &out_path) {
                         st.error = Some(e);
                         return Ok(true);
                     }
@@ -358,12 +359,9 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
                 .collect(),
         )
         .map_err(|e| Error::internal(format!("an empty frame: {e}")))?;
-        write_batch(&mut st, &empty, out_format)?;
+        write_batch(&mut st, &empty, out_format, &opts.out)?;
     }
-    let out_err = |e: PolarsError| Error::Output {
-        path: opts.out.clone(),
-        message: format!("writing: {e}"),
-    };
+    let out_err = |e: PolarsError| write_error(&opts.out, e);
     match st.writer.take() {
         Some(Writer::Csv(mut w)) => w.finish().map_err(out_err)?,
         Some(Writer::Parquet(w)) => {
@@ -385,8 +383,24 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
     })
 }
 
-fn write_batch(st: &mut State, df: &DataFrame, format: Format) -> Result<()> {
-    let err = |e: PolarsError| Error::internal(format!("writing a scored batch: {e}"));
+/// A failed write of the scored rows: a file-system failure (a full disk, a
+/// quota, a lost mount) is the output's problem, anything else a bug.
+fn write_error(out: &Path, e: PolarsError) -> Error {
+    let mut cause: Option<&(dyn std::error::Error + 'static)> = Some(&e);
+    while let Some(c) = cause {
+        if c.downcast_ref::<std::io::Error>().is_some() {
+            return Error::Output {
+                path: out.to_path_buf(),
+                message: format!("writing the scored rows: {e}"),
+            };
+        }
+        cause = c.source();
+    }
+    Error::internal(format!("writing a scored batch: {e}"))
+}
+
+fn write_batch(st: &mut State, df: &DataFrame, format: Format, out: &Path) -> Result<()> {
+    let err = |e: PolarsError| write_error(out, e);
     if st.writer.is_none() {
         let file = st.file.take().expect("the output file is opened once");
         let sink = BufWriter::with_capacity(1 << 20, file);
@@ -554,4 +568,43 @@ pub fn manifest_tag(dir: &Path) -> Result<String> {
     let p = dir.join(crate::sign::MANIFEST);
     let b = std::fs::read(&p).map_err(|e| Error::io(&p, "reading", e))?;
     Ok(format!("blake3:{}", hash::bytes(&b)))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Issue 25: a disk that filled up while scored rows were written was
+    /// reported as a bug (exit 70); it is an output problem (exit 4).
+    /// /dev/full fails every write with ENOSPC.
+    #[cfg(target_os = "linux")]
+    #[test]
+    fn a_full_disk_while_scoring_is_an_output_error() {
+        let file = std::fs::OpenOptions::new()
+            .write(true)
+            .open("/dev/full")
+            .unwrap();
+        let mut st = State {
+            writer: None,
+            file: Some(file),
+            rows: 0,
+            flagged: 0,
+            error: None,
+        };
+        let values: Vec<f64> = (0..200_000).map(|i| i as f64 / 7.0).collect();
+        let df = DataFrame::new_infer_height(vec![Column::new("x".into(), values)]).unwrap();
+        let out = Path::new("scored.csv");
+        let e = write_batch(&mut st, &df, Format::Csv, out)
+            .and_then(|()| match st.writer.take() {
+                Some(Writer::Csv(mut w)) => w.finish().map_err(|e| write_error(out, e)),
+                _ => Ok(()),
+            })
+            .unwrap_err();
+        assert_eq!(e.code(), crate::error::exit::IO, "{e}");
+        let text = e.to_string();
+        assert!(
+            text.contains("scored.csv") && text.contains("No space left"),
+            "{text}"
+        );
+    }
 }
