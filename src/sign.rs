@@ -56,16 +56,29 @@ fn key_error(path: &Path, message: impl Into<String>) -> Error {
     }
 }
 
-/// Writes a new key pair. Neither file may exist yet. The private key file is
-/// created with mode 0600.
+/// Writes a new key pair. Neither file may exist yet (not even as a link),
+/// and the two paths must name two files. The private key file is created
+/// with mode 0600; both are created exclusively, so an existing file is never
+/// overwritten, and when the public key cannot be written the private key
+/// just made is removed again.
 pub fn keygen(private: &Path, public: &Path) -> Result<String> {
     for p in [private, public] {
-        if p.exists() {
+        // `symlink_metadata`: a dangling link would be followed by the write.
+        if p.symlink_metadata().is_ok() {
             return Err(key_error(
                 p,
                 "already exists; anomark never overwrites a key",
             ));
         }
+    }
+    if same_place(private, public) {
+        return Err(key_error(
+            public,
+            format!(
+                "names the same file as the private key `{}`; give two different files",
+                private.display()
+            ),
+        ));
     }
     let mut seed = [0u8; 32];
     getrandom::fill(&mut seed)
@@ -96,9 +109,37 @@ pub fn keygen(private: &Path, public: &Path) -> Result<String> {
     f.write_all(pem.as_bytes())
         .and_then(|_| f.sync_all())
         .map_err(|e| Error::io(private, "writing private key", e))?;
-    std::fs::write(public, public_pem.as_bytes())
-        .map_err(|e| Error::io(public, "writing public key", e))?;
+    drop(f);
+    let written = std::fs::OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(public)
+        .and_then(|mut g| {
+            g.write_all(public_pem.as_bytes())
+                .and_then(|_| g.sync_all())
+        });
+    if let Err(e) = written {
+        let _ = std::fs::remove_file(private);
+        return Err(Error::io(public, "writing public key", e));
+    }
     Ok(fingerprint(&key.verifying_key()))
+}
+
+/// Whether two paths of files that do not exist yet would name one file:
+/// their folders resolved (`..`, links) and their names compared. A folder
+/// that cannot be resolved is left to the file's creation to report.
+fn same_place(a: &Path, b: &Path) -> bool {
+    let place = |p: &Path| -> Option<std::path::PathBuf> {
+        let dir = match p.parent() {
+            Some(d) if !d.as_os_str().is_empty() => d,
+            _ => Path::new("."),
+        };
+        Some(std::fs::canonicalize(dir).ok()?.join(p.file_name()?))
+    };
+    match (place(a), place(b)) {
+        (Some(x), Some(y)) => x == y,
+        _ => a == b,
+    }
 }
 
 /// Reads a PKCS#8 PEM private key, refusing one that others can read.
@@ -321,5 +362,35 @@ mod tests {
             assert!(e.contains("readable by others"), "{e}");
         }
         assert!(keygen(&private, &dir.path().join("other.pem")).is_err());
+    }
+
+    /// Issue 25: `--private k.pem --public k.pem` (or `d/../k.pem`, or a
+    /// link to it) once wrote the public key over the private one.
+    #[test]
+    fn keygen_refuses_one_file_for_both_keys_and_never_overwrites() {
+        let dir = tempfile::tempdir().unwrap();
+        let k = dir.path().join("k.pem");
+        std::fs::create_dir(dir.path().join("d")).unwrap();
+        let via_dots = dir.path().join("d").join("..").join("k.pem");
+        for other in [k.clone(), via_dots] {
+            let e = keygen(&k, &other).unwrap_err().to_string();
+            assert!(e.contains("same file"), "{e}");
+            assert!(!k.exists(), "a refused keygen left a file");
+        }
+        #[cfg(unix)]
+        {
+            // A dangling link to the private key's path.
+            let link = dir.path().join("link.pem");
+            std::os::unix::fs::symlink(&k, &link).unwrap();
+            let e = keygen(&k, &link).unwrap_err().to_string();
+            assert!(e.contains("already exists"), "{e}");
+            assert!(!k.exists(), "a refused keygen left a file");
+        }
+        // An existing key file is left as it was.
+        let public = dir.path().join("k.pub.pem");
+        std::fs::write(&public, "kept").unwrap();
+        assert!(keygen(&k, &public).is_err());
+        assert_eq!(std::fs::read_to_string(&public).unwrap(), "kept");
+        assert!(!k.exists());
     }
 }
