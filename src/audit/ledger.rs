@@ -3,7 +3,7 @@
 //! released, so concurrent runs never lose or interleave an entry. The file is
 //! meant to be committed beside the spec; it is not part of any signed run.
 
-use std::io::{BufRead, Seek, SeekFrom, Write};
+use std::io::{BufRead, Read, Seek, SeekFrom, Write};
 use std::path::Path;
 
 use crate::error::{Error, Result};
@@ -37,9 +37,21 @@ pub fn append(path: &Path, entry: &Entry) -> Result<Vec<Entry>> {
     let result = (|| {
         f.seek(SeekFrom::Start(0))
             .map_err(|e| Error::io(path, "reading the test ledger", e))?;
-        let mut entries = read_from(std::io::BufReader::new(&f), path)?;
-        let mut line = serde_json::to_string(entry)
-            .map_err(|e| Error::internal(format!("serialising a ledger entry: {e}")))?;
+        let mut text = Vec::new();
+        (&f).read_to_end(&mut text)
+            .map_err(|e| Error::io(path, "reading the test ledger", e))?;
+        let mut entries = read_from(&text[..], path)?;
+        // A last line without its newline (an editor, a hand merge) would
+        // otherwise have this entry glued onto it.
+        let mut line = if text.last().is_some_and(|&b| b != b'\n') {
+            String::from("\n")
+        } else {
+            String::new()
+        };
+        line.push_str(
+            &serde_json::to_string(entry)
+                .map_err(|e| Error::internal(format!("serialising a ledger entry: {e}")))?,
+        );
         line.push('\n');
         f.write_all(line.as_bytes())
             .and_then(|_| f.sync_all())
@@ -124,6 +136,27 @@ mod tests {
             }
         });
         assert_eq!(read(&p).unwrap().len(), 200);
+    }
+
+    /// Issue 25: an entry appended to a ledger whose last line had no
+    /// newline was glued onto that line, and the next run could not read it.
+    #[test]
+    fn appending_after_a_last_line_without_newline_starts_a_new_line() {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("l.jsonl");
+        append(&p, &entry("a")).unwrap();
+        let text = std::fs::read_to_string(&p).unwrap();
+        std::fs::write(&p, text.trim_end_matches('\n')).unwrap();
+        assert_eq!(append(&p, &entry("b")).unwrap().len(), 2);
+        assert_eq!(append(&p, &entry("c")).unwrap().len(), 3);
+        let all = read(&p).unwrap();
+        assert_eq!(
+            all.iter()
+                .map(|e| e.spec_blake3.as_str())
+                .collect::<Vec<_>>(),
+            ["a", "b", "c"]
+        );
+        assert!(std::fs::read_to_string(&p).unwrap().ends_with("}\n"));
     }
 
     #[test]
