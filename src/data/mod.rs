@@ -206,6 +206,10 @@ pub fn columns_of(path: &Path, format: Format) -> Result<Vec<(String, bool)>> {
 /// Expands a source path: a file, a glob (`*`, `?`, `[`), or a directory
 /// (every `.parquet` file below it, skipping names that start with `.` or `_`,
 /// as distributed engines write them). Sorted, so the order is reproducible.
+///
+/// Each real file is listed once: a folder reached a second time through a
+/// link (a link to `.` or to a parent loops) is not walked again, and of the
+/// paths that resolve to one file only the first in sorted order is kept.
 pub(crate) fn expand(s: &SourcePlan, plan: &Plan) -> Result<Vec<PathBuf>> {
     let p = &s.resolved;
     let not_found = |why: String| plan.error_at(&s.at, &s.field, why);
@@ -230,7 +234,7 @@ pub(crate) fn expand(s: &SourcePlan, plan: &Plan) -> Result<Vec<PathBuf>> {
         out
     } else if p.is_dir() {
         let mut out = Vec::new();
-        walk_parquet(p, &mut out)?;
+        walk_parquet(p, &mut out, &mut std::collections::BTreeSet::new())?;
         if out.is_empty() {
             return Err(not_found(format!(
                 "directory `{}` holds no `.parquet` file",
@@ -248,20 +252,43 @@ pub(crate) fn expand(s: &SourcePlan, plan: &Plan) -> Result<Vec<PathBuf>> {
         ));
     };
     files.sort();
-    Ok(files)
+    let mut real = std::collections::BTreeSet::new();
+    let mut once = Vec::with_capacity(files.len());
+    for f in files {
+        let r = std::fs::canonicalize(&f).map_err(|e| Error::io(&f, "resolving", e))?;
+        if real.insert(r) {
+            once.push(f);
+        }
+    }
+    Ok(once)
 }
 
-fn walk_parquet(dir: &Path, out: &mut Vec<PathBuf>) -> Result<()> {
+/// Every `.parquet` file below `dir`, its entries visited in name order; a
+/// folder whose resolved path was walked already is skipped.
+fn walk_parquet(
+    dir: &Path,
+    out: &mut Vec<PathBuf>,
+    walked: &mut std::collections::BTreeSet<PathBuf>,
+) -> Result<()> {
+    let real = std::fs::canonicalize(dir).map_err(|e| Error::io(dir, "resolving", e))?;
+    if !walked.insert(real) {
+        return Ok(());
+    }
+    let mut entries = Vec::new();
     for entry in std::fs::read_dir(dir).map_err(|e| Error::io(dir, "listing", e))? {
         let entry = entry.map_err(|e| Error::io(dir, "listing", e))?;
-        let name = entry.file_name().to_string_lossy().into_owned();
-        if name.starts_with('.') || name.starts_with('_') {
+        entries.push(entry.file_name());
+    }
+    entries.sort();
+    for name in entries {
+        let shown = name.to_string_lossy();
+        if shown.starts_with('.') || shown.starts_with('_') {
             continue;
         }
-        let p = entry.path();
+        let p = dir.join(&name);
         if p.is_dir() {
-            walk_parquet(&p, out)?;
-        } else if name.ends_with(".parquet") {
+            walk_parquet(&p, out, walked)?;
+        } else if shown.ends_with(".parquet") {
             out.push(p);
         }
     }

@@ -193,3 +193,33 @@ fn missing_values_are_refused_by_default() {
         .run_spec()
         .fails(3, &["column `c`", "missing", "lines 5, 12"]);
 }
+
+/// Issue 25: a folder with `part-0.parquet` and a link `self -> .` read the
+/// same file 41 times. Each real file is read once and listed once, also
+/// when a second link names the same file.
+#[cfg(unix)]
+#[test]
+fn a_symlink_loop_in_a_data_folder_reads_each_file_once() {
+    let r = rows(300, 12, 5);
+    let case = Case::new()
+        .file(
+            "spec.yaml",
+            spec(&["a", "b", "c"], PROTOCOL).replace("path: data.csv", "path: parts"),
+        )
+        .keys();
+    parquet(&case.path("parts/part-0.parquet"), &r, false);
+    std::os::unix::fs::symlink(".", case.path("parts/self")).unwrap();
+    std::os::unix::fs::symlink("..", case.path("parts/up")).unwrap();
+    std::os::unix::fs::symlink("part-0.parquet", case.path("parts/part-1.parquet")).unwrap();
+    let d = case.run_spec().success();
+    let run = d.json("out/run.json");
+    let inputs = run["inputs"].as_array().unwrap();
+    assert_eq!(inputs.len(), 1, "{inputs:?}");
+    assert_eq!(inputs[0]["path"], "parts/part-0.parquet");
+    let counts = &run["split"]["counts"];
+    let total: u64 = ["train", "validation", "test"]
+        .iter()
+        .flat_map(|s| ["normal", "anomaly"].map(|c| counts[s][c].as_u64().unwrap_or(0)))
+        .sum();
+    assert_eq!(total, 312, "{counts}");
+}
