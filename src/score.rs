@@ -274,6 +274,11 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         }
     }
     let used: Vec<String> = used_idx.iter().map(|&c| run.columns[c].clone()).collect();
+    if in_format == Format::Csv {
+        let wanted: Vec<&str> = used.iter().map(String::as_str).collect();
+        let shown = opts.data.display().to_string();
+        crate::data::refuse_repeated_columns(&opts.data, &shown, &wanted)?;
+    }
 
     let parent = match opts.out.parent() {
         Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),

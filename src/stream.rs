@@ -689,6 +689,10 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
                 return Err(data::missing_column(plan, c, &file.shown, &present));
             }
         }
+        if file.format == Format::Csv {
+            let wanted: Vec<&str> = used.iter().map(String::as_str).collect();
+            data::refuse_repeated_columns(&file.path, &file.shown, &wanted)?;
+        }
         {
             let mut a = acc.lock().expect("not poisoned");
             a.file = fi as u32;

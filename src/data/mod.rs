@@ -343,6 +343,88 @@ pub(crate) fn missing_column(plan: &Plan, c: &Column, file: &str, present: &[Str
     )
 }
 
+/// The names of a CSV file's header line as written (quotes undone, a
+/// byte-order mark and a carriage return dropped), repeats kept; polars
+/// renames a repeated name, so its header cannot show one. `None` when the
+/// line is unusual (a quote left open, no newline within 16 MiB): the
+/// general reader words that.
+fn csv_header_names(path: &Path) -> Result<Option<Vec<String>>> {
+    use std::io::{BufRead, Read};
+    let f = std::fs::File::open(path).map_err(|e| Error::io(path, "reading", e))?;
+    let mut line = Vec::new();
+    std::io::BufReader::new(f)
+        .take(16 << 20)
+        .read_until(b'\n', &mut line)
+        .map_err(|e| Error::io(path, "reading", e))?;
+    if line.last() != Some(&b'\n') && line.len() == 16 << 20 {
+        return Ok(None);
+    }
+    let text = String::from_utf8_lossy(&line);
+    let text = text.strip_prefix('\u{feff}').unwrap_or(&text);
+    let text = text.trim_end_matches(['\n', '\r']);
+    let (mut names, mut field, mut quoted, mut was_quoted) = (vec![], String::new(), false, false);
+    let mut chars = text.chars().peekable();
+    while let Some(c) = chars.next() {
+        match (c, quoted) {
+            ('"', true) if chars.peek() == Some(&'"') => {
+                chars.next();
+                field.push('"');
+            }
+            ('"', true) => quoted = false,
+            ('"', false) if field.is_empty() && !was_quoted => {
+                quoted = true;
+                was_quoted = true;
+            }
+            (',', false) => {
+                names.push(std::mem::take(&mut field));
+                was_quoted = false;
+            }
+            _ => field.push(c),
+        }
+    }
+    if quoted {
+        return Ok(None);
+    }
+    names.push(field);
+    Ok(Some(names))
+}
+
+/// Refuses a CSV file whose header names a column the spec uses more than
+/// once: which of them is meant cannot be told, and two columns of one name
+/// may disagree. Names no column uses may repeat.
+pub(crate) fn refuse_repeated_columns(path: &Path, shown: &str, wanted: &[&str]) -> Result<()> {
+    let Some(names) = csv_header_names(path)? else {
+        return Ok(());
+    };
+    let mut seen: Vec<&str> = Vec::new();
+    for &w in wanted {
+        if seen.contains(&w) {
+            continue;
+        }
+        seen.push(w);
+        let at: Vec<String> = (0..names.len())
+            .filter(|&i| names[i] == w)
+            .map(|i| (i + 1).to_string())
+            .collect();
+        if at.len() > 1 {
+            return Err(Error::Data {
+                path: PathBuf::from(shown),
+                column: Some(w.to_string()),
+                message: format!(
+                    "the header names this column {} times, at positions {}; the spec \
+                     uses it, and anomark cannot tell which one is meant (rename all but one)",
+                    at.len(),
+                    at.join(", ")
+                ),
+                lines: vec![1],
+                total: 1,
+                unit: RowUnit::Line,
+            });
+        }
+    }
+    Ok(())
+}
+
 /// One file's columns as read: numeric columns (None = missing), text columns.
 struct FileFrame {
     /// The plain-CSV reader's result (then the other fields are empty but
@@ -394,6 +476,13 @@ fn read_csv_polars(
     numeric: &[&Column],
     text: &[&Column],
 ) -> Result<FileFrame> {
+    // The plain reader gives up on any repeated name and comes here.
+    let wanted: Vec<&str> = numeric
+        .iter()
+        .chain(text)
+        .map(|c| c.name.as_str())
+        .collect();
+    refuse_repeated_columns(path, &shown(path, plan), &wanted)?;
     let base = CsvReadOptions::default()
         .with_has_header(true)
         .with_raise_if_empty(true);

@@ -332,3 +332,68 @@ fn cost_knobs_beyond_their_bound_are_refused_at_the_spec() {
         no_output(&d);
     }
 }
+
+/// Issue 25: a header `id,a,b,a,label` was fitted on the first `a`, two
+/// disagreeing `label` columns were accepted, and `check` said "problems:
+/// none". A repeated name the spec uses is refused, naming its positions, in
+/// `run`, `check` and the streamed reader.
+#[test]
+fn a_repeated_column_name_the_spec_uses_is_refused() {
+    let r = rows(50, 4, 1);
+    let plain = csv(&["a", "b", "c"], &r);
+    let twice_a = plain.replacen("id,a,b,c,label", "id,a,b,c,a,label", 1);
+    let twice_a: String = twice_a
+        .lines()
+        .enumerate()
+        .map(|(i, l)| {
+            if i == 0 {
+                format!("{l}\n")
+            } else {
+                // The second `a` disagrees with the first.
+                let (head, label) = l.rsplit_once(',').unwrap();
+                format!("{head},{}.5,{label}\n", i % 7)
+            }
+        })
+        .collect();
+    let twice_label = plain
+        .lines()
+        .enumerate()
+        .map(|(i, l)| match i {
+            0 => format!("{l},label\n"),
+            _ => format!("{l},normal\n"),
+        })
+        .collect::<String>();
+    for (text, column, at) in [
+        (twice_a, "column `a`", "2 times, at positions 2, 5"),
+        (twice_label, "column `label`", "2 times, at positions 5, 6"),
+    ] {
+        let case = standard(&r).file("data.csv", text);
+        let d = case
+            .clone()
+            .run_spec()
+            .fails(3, &["data.csv", column, at, "line 1"]);
+        no_output(&d);
+        let d = case.clone().args(["check", "spec.yaml"]).exec();
+        let all = format!("{}{}", d.stdout, d.stderr);
+        assert!(all.contains(at) && !all.contains("problems: none"), "{all}");
+        // The streamed reader (from-column split) has its own header path.
+        let streamed = spec(&["a", "b", "c"], "  from-column: split")
+            .replace("  id-column: id\n", "  id-column: id\n  stream: true\n");
+        let with_split: String = case_text(&case)
+            .lines()
+            .enumerate()
+            .map(|(i, l)| match i {
+                0 => format!("{l},split\n"),
+                _ => format!("{l},{}\n", ["train", "train", "validation", "test"][i % 4]),
+            })
+            .collect();
+        case.file("spec.yaml", streamed)
+            .file("data.csv", with_split)
+            .run_spec()
+            .fails(3, &["data.csv", column, at]);
+    }
+}
+
+fn case_text(c: &Case) -> String {
+    std::fs::read_to_string(c.path("data.csv")).unwrap()
+}
