@@ -103,11 +103,15 @@ struct Candidate {
 }
 
 /// A candidate's name: the detector, prefixed by a named feature set.
-fn candidate_name(set: &spec::FeatureSetPlan, kind: DetectorKind) -> String {
+fn candidate_name(set: &spec::FeatureSetPlan, kind: DetectorKind, plan: &Plan) -> String {
+    let detector = match kind {
+        DetectorKind::Command(i) => plan.commands[i].name.as_str(),
+        _ => detect::name(kind),
+    };
     if set.named {
-        format!("{}/{}", set.name, detect::name(kind))
+        format!("{}/{detector}", set.name)
     } else {
-        detect::name(kind).to_string()
+        detector.to_string()
     }
 }
 
@@ -388,7 +392,7 @@ fn execute(
         let names_shown: Vec<String> = plan
             .detectors
             .iter()
-            .map(|&kind| candidate_name(set, kind))
+            .map(|&kind| candidate_name(set, kind, &plan))
             .collect();
         let stage = progress.stage(format!(
             "fitting and thresholding {}",
@@ -400,22 +404,36 @@ fn execute(
                 .par_iter()
                 .zip(names_shown)
                 .map(|(&kind, name)| -> Result<Candidate> {
-                    let t = crate::progress::part("fitting");
-                    let model = match &streamed {
-                        Some((_, moments, _)) => crate::stream::fit(kind, &moments[si], &names),
-                        None => detect::build(kind).fit(train.view(), &names),
-                    }
-                    .map_err(|e| in_set(e, set))?;
-                    drop(t);
-                    let t = crate::progress::part("validation scores");
-                    let validation_scores = checked_scores(
-                        &name,
-                        model.as_ref(),
-                        (&fitted, &val_x),
-                        &splits.validation,
-                        &data,
-                    )?;
-                    drop(t);
+                    let (model, validation_scores) = if let DetectorKind::Command(i) = kind {
+                        // An external program: one invocation with the
+                        // training and the validation rows' features.
+                        let _t = crate::progress::part("external command");
+                        detect::command::validation_scores(
+                            &plan.commands[i],
+                            &names,
+                            &|rows| fitted.apply(&data, rows),
+                            &splits.train,
+                            &splits.validation,
+                        )?
+                    } else {
+                        let t = crate::progress::part("fitting");
+                        let model = match &streamed {
+                            Some((_, moments, _)) => crate::stream::fit(kind, &moments[si], &names),
+                            None => detect::build(kind).fit(train.view(), &names),
+                        }
+                        .map_err(|e| in_set(e, set))?;
+                        drop(t);
+                        let t = crate::progress::part("validation scores");
+                        let validation_scores = checked_scores(
+                            &name,
+                            model.as_ref(),
+                            (&fitted, &val_x),
+                            &splits.validation,
+                            &data,
+                        )?;
+                        drop(t);
+                        (model, validation_scores)
+                    };
                     let t = crate::progress::part("ranking");
                     let validation_ranked = metrics::Ranked::new(&validation_scores, &val_y);
                     drop(t);
@@ -540,28 +558,47 @@ fn execute(
                 count: same.len(),
                 spec_blake3: specs,
             });
-        let test_rows = splits.test.open();
+        let opened = splits.test.open();
+        let test_rows = opened.rows();
         let test_y: Vec<bool> = test_rows
             .iter()
             .map(|r| data.is_anomaly[r.0 as usize])
             .collect();
         let test_x: Vec<SplitFeatures> = fitted_sets
             .iter()
-            .map(|f| SplitFeatures::of(f, &data, &test_rows))
+            .map(|f| SplitFeatures::of(f, &data, test_rows))
             .collect::<Result<_>>()?;
         let t = crate::progress::part("test scores");
         let mut test_scores = Vec::new();
-        for c in &candidates {
+        for c in &mut candidates {
+            if let DetectorKind::Command(i) = c.kind {
+                // The program's second invocation, with the test rows.
+                let fitted = &fitted_sets[c.set];
+                let (model, scores) = detect::command::final_scores(
+                    &plan.commands[i],
+                    &fitted.names(),
+                    &|rows| fitted.apply(&data, rows),
+                    &splits.train,
+                    &splits.validation,
+                    &c.validation_scores,
+                    &opened,
+                    c.model.as_ref(),
+                    &|r| data.place(r),
+                )?;
+                c.model = model;
+                test_scores.push(scores);
+                continue;
+            }
             test_scores.push(checked_scores(
                 &c.name,
                 c.model.as_ref(),
                 (&fitted_sets[c.set], &test_x[c.set]),
-                &test_rows,
+                test_rows,
                 &data,
             )?);
         }
         drop(t);
-        (test_rows, test_scores, test_y, Some(openings))
+        (opened.into_rows(), test_scores, test_y, Some(openings))
     } else {
         (vec![], vec![vec![]; candidates.len()], vec![], None)
     };
@@ -1127,7 +1164,11 @@ fn card_context(
             .map(|c| ThresholdRow {
                 candidate: c.name.clone(),
                 chosen: c.chosen,
-                parameters: c.parameter_count,
+                parameters: if c.parameter_count == usize::MAX {
+                    "unknown".into()
+                } else {
+                    c.parameter_count.to_string()
+                },
                 tau: format!("{:.6}", c.tau),
                 ln_epsilon: format!("{:.6}", c.ln_epsilon),
                 unmet: c.threshold_note.clone(),
@@ -1160,6 +1201,11 @@ fn card_context(
         plots_validation: vec![],
         plots_test: vec![],
         plots_features: vec![],
+        external_commands: rec
+            .candidates
+            .iter()
+            .filter_map(external_paragraph)
+            .collect(),
         wall_clock: rec.wall_clock.as_ref().map(|w| {
             format!(
                 "Run started {} and took {} s. This line is the only part of the card that \
@@ -1169,6 +1215,60 @@ fn card_context(
             )
         }),
     }
+}
+
+/// The card's paragraph on an external-command candidate.
+fn external_paragraph(c: &CandidateRecord) -> Option<String> {
+    let detect::Params::Command {
+        run,
+        inputs,
+        invocations,
+        ..
+    } = &c.params
+    else {
+        return None;
+    };
+    let files = if inputs.is_empty() {
+        "no files were declared in `inputs`, so nothing ties the result to a version of the \
+         program"
+            .to_string()
+    } else {
+        format!(
+            "its declared files: {}",
+            inputs
+                .iter()
+                .map(|i| format!("{} (blake3 {})", i.path, i.blake3))
+                .collect::<Vec<_>>()
+                .join(", ")
+        )
+    };
+    let runs = invocations
+        .iter()
+        .map(|i| {
+            format!(
+                "{} rows{} (exit status {}, scores blake3 {})",
+                i.rows,
+                if i.test_rows_included {
+                    ", validation and test shuffled together"
+                } else {
+                    ", validation"
+                },
+                i.exit_status,
+                i.scores_blake3
+            )
+        })
+        .collect::<Vec<_>>()
+        .join("; ");
+    Some(format!(
+        "“{}” is an external command, `{}`: anomark cannot see inside it. It was run without a \
+         shell on a folder holding the training rows' features and the rows to score, shuffled, \
+         with no labels, split names or ids, and each time it returned one score per row \
+         (higher is more anomalous; its scores are the program's own, not −ln p(x)): {runs}. \
+         That it learnt from the training rows only is enforced by what it was given, nothing \
+         more; {files}.",
+        c.name,
+        run.join(" ")
+    ))
 }
 
 fn describe_transform(t: &features::Fitted) -> String {

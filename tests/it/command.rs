@@ -1,0 +1,337 @@
+//! External commands as detectors: the exchange contract, the protocol around
+//! it (no labels, ids or split names; test rows only in a final run), its
+//! provenance, and every way a program can break the contract (exit 3,
+//! nothing written).
+//!
+//! The program is `specs-examples/commands/mean_distance.py` (Python's
+//! standard library only). Without a `python3` these tests print a skip;
+//! when `CI` is set they fail instead.
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use crate::util::{csv, rows, spec, Case, Rows, PROTOCOL};
+
+/// `python3` when it runs; else None (and a skip), or a panic under CI.
+pub fn python(modules: &[&str]) -> Option<&'static str> {
+    let mut c = std::process::Command::new("python3");
+    c.arg("-c").arg(format!(
+        "import {}",
+        if modules.is_empty() {
+            "sys".to_string()
+        } else {
+            modules.join(", ")
+        }
+    ));
+    match c.output() {
+        Ok(o) if o.status.success() => Some("python3"),
+        _ => {
+            if std::env::var_os("CI").is_some() {
+                panic!(
+                    "CI is set but `python3` with {modules:?} is missing: .ci/run installs them"
+                );
+            }
+            eprintln!("skipped: no python3 with {modules:?}");
+            None
+        }
+    }
+}
+
+fn scorer() -> String {
+    let p = Path::new(env!("CARGO_MANIFEST_DIR")).join("specs-examples/commands/mean_distance.py");
+    std::fs::read_to_string(p).unwrap()
+}
+
+/// The standard spec with the multivariate Gaussian and the command.
+fn command_spec(extra_args: &str, more: &str) -> String {
+    spec(&["a", "b", "c"], PROTOCOL).replace(
+        "detectors: [independent-gaussian, multivariate-gaussian]",
+        &format!(
+            "detectors:
+  - multivariate-gaussian
+  - command:
+      name: mean-distance
+      run: [python3, scorer.py{extra_args}]
+      inputs: [scorer.py]
+{more}"
+        ),
+    )
+}
+
+fn case(data: &Rows, extra_args: &str, more: &str) -> Case {
+    Case::new()
+        .file("data.csv", csv(&["a", "b", "c"], data))
+        .file("scorer.py", scorer())
+        .file("spec.yaml", command_spec(extra_args, more))
+        .keys()
+}
+
+/// scores.csv as (id → (split, score of each candidate)).
+fn scores(text: &str) -> BTreeMap<String, (String, Vec<f64>)> {
+    text.lines()
+        .skip(1)
+        .map(|l| {
+            let f: Vec<&str> = l.split(',').collect();
+            (
+                f[0].to_string(),
+                (
+                    f[1].to_string(),
+                    f[3..].iter().map(|v| v.parse().unwrap()).collect(),
+                ),
+            )
+        })
+        .collect()
+}
+
+/// The distance to the training mean in standard units (population sd),
+/// computed here from the data file: the check of the command's scores
+/// outside anomark (the definition of a standard score, any statistics
+/// handbook; common practice, no source for the Euclidean sum).
+fn standard_distance(train: &[&Vec<f64>], x: &[f64]) -> f64 {
+    let m = train.len() as f64;
+    let mut s = 0.0;
+    for j in 0..x.len() {
+        let mean = train.iter().map(|r| r[j]).sum::<f64>() / m;
+        let var = train.iter().map(|r| (r[j] - mean).powi(2)).sum::<f64>() / m;
+        s += ((x[j] - mean) / var.sqrt()).powi(2);
+    }
+    s.sqrt()
+}
+
+#[test]
+fn a_command_is_scored_by_the_protocol_and_recorded() {
+    if python(&[]).is_none() {
+        return;
+    }
+    let data = rows(300, 16, 5);
+    let c = case(&data, ", --copy-to, seen", "").run_spec();
+    let d = c.success();
+    let run = d.json("out/run.json");
+    let cand = run["candidates"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["name"] == "mean-distance")
+        .unwrap()
+        .clone();
+    let p = &cand["params"];
+    assert_eq!(cand["detector"], "command");
+    assert_eq!(p["detector"], "command");
+    assert_eq!(
+        p["run"],
+        serde_json::json!(["python3", "scorer.py", "--copy-to", "seen"])
+    );
+    let want = blake3::hash(scorer().as_bytes()).to_hex().to_string();
+    assert_eq!(p["inputs"][0]["path"], "scorer.py");
+    assert_eq!(p["inputs"][0]["blake3"], want.as_str());
+    // A final run: the validation invocation, then validation and test together.
+    let inv = p["invocations"].as_array().unwrap();
+    assert_eq!(inv.len(), 2);
+    let counts = &run["split"]["counts"];
+    let n =
+        |s: &str| counts[s]["normal"].as_u64().unwrap() + counts[s]["anomaly"].as_u64().unwrap();
+    assert_eq!(inv[0]["rows"].as_u64(), Some(n("validation")));
+    assert_eq!(inv[0]["test-rows-included"], false);
+    assert_eq!(inv[1]["rows"].as_u64(), Some(n("validation") + n("test")));
+    assert_eq!(inv[1]["test-rows-included"], true);
+    assert_eq!(inv[1]["train-rows"].as_u64(), Some(n("train")));
+    assert_eq!(inv[1]["exit-status"], 0);
+    assert_eq!(inv[1]["scores-blake3"].as_str().unwrap().len(), 64);
+
+    // What the program saw: feature names and numbers only, no id, label
+    // or split name, and the rows shuffled.
+    let train_seen = d.read("seen/train.csv");
+    let rows_seen = d.read("seen/rows.csv");
+    assert_eq!(train_seen.lines().next(), Some("a,b,c"));
+    assert_eq!(rows_seen.lines().next(), Some("a,b,c"));
+    for text in [&train_seen, &rows_seen] {
+        for word in ["normal", "anomaly", "validation", "test", "train", "r1"] {
+            assert!(!text.lines().skip(1).any(|l| l.contains(word)), "{word}");
+        }
+    }
+    assert_eq!(
+        rows_seen.lines().count() as u64 - 1,
+        n("validation") + n("test")
+    );
+
+    // The command's scores against the distance computed here, from the
+    // rows that are in no scored split (the training rows).
+    let scored = scores(&d.read("out/scores.csv"));
+    let train: Vec<&Vec<f64>> = data
+        .iter()
+        .filter(|(id, _, _)| !scored.contains_key(id))
+        .map(|(_, x, _)| x)
+        .collect();
+    assert_eq!(train.len() as u64, n("train"));
+    let col = 1; // candidates in spec order: multivariate-gaussian, mean-distance
+    for (id, x, _) in &data {
+        if let Some((_, s)) = scored.get(id) {
+            let want = standard_distance(&train, x);
+            assert!(
+                (s[col] - want).abs() <= 1e-12 * want.max(1.0),
+                "{id}: {} vs {want}",
+                s[col]
+            );
+        }
+    }
+    // The card names the command and what anomark cannot see.
+    let card = d.read("out/card.md");
+    assert!(card.contains("is an external command"), "{card}");
+    assert!(card.contains("cannot see inside it"));
+    assert!(card.contains(&want));
+    // The signature covers it all.
+    c.clone()
+        .args(["verify", "out", "--pubkey", "key.pub.pem"])
+        .success();
+}
+
+#[test]
+fn test_rows_reach_the_program_only_in_a_final_run() {
+    if python(&[]).is_none() {
+        return;
+    }
+    let data = rows(300, 16, 6);
+    let c = case(&data, ", --copy-to, seen", "");
+    let d = c
+        .clone()
+        .args([
+            "run",
+            "spec.yaml",
+            "--key",
+            "key.pem",
+            "--out",
+            "out",
+            "--no-wall-clock",
+        ])
+        .success();
+    let run = d.json("out/run.json");
+    let cand = &run["candidates"][1];
+    let inv = cand["params"]["invocations"].as_array().unwrap();
+    assert_eq!(inv.len(), 1);
+    assert_eq!(inv[0]["test-rows-included"], false);
+    let v = &run["split"]["counts"]["validation"];
+    let nv = v["normal"].as_u64().unwrap() + v["anomaly"].as_u64().unwrap();
+    assert_eq!(d.read("seen/rows.csv").lines().count() as u64 - 1, nv);
+    // Every validation row is scored, and no test row is in scores.csv.
+    let scored = scores(&d.read("out/scores.csv"));
+    assert_eq!(scored.len() as u64, nv);
+    assert!(scored.values().all(|(split, _)| split == "validation"));
+}
+
+/// A program that breaks the contract stops the run with exit 3, the
+/// program's own last words, and no run directory.
+#[test]
+fn every_broken_contract_stops_the_run() {
+    if python(&[]).is_none() {
+        return;
+    }
+    let data = rows(200, 12, 7);
+    let cases: [(&str, &str, &[&str]); 6] = [
+        (
+            ", --fail, exit",
+            "",
+            &[
+                "command `mean-distance`",
+                "exited with status 2",
+                "| mean_distance: refusing on purpose",
+            ],
+        ),
+        (
+            ", --fail, nan",
+            "",
+            &["not a finite number", "`scores.csv`"],
+        ),
+        (
+            ", --fail, count",
+            "",
+            &["score(s) but `rows.csv` holds", "one score per row"],
+        ),
+        (", --fail, missing", "", &["wrote no `scores.csv`"]),
+        (
+            ", --fail, sleep",
+            "      timeout-seconds: 2\n",
+            &[
+                "did not finish within 2 s",
+                "killed",
+                "| mean_distance: sleeping",
+            ],
+        ),
+        (
+            ", --fail, random",
+            "",
+            &["not deterministic", "seed every random choice"],
+        ),
+    ];
+    for (args, more, pieces) in cases {
+        let c = case(&data, args, more).run_spec();
+        let t = std::time::Instant::now();
+        c.fails(3, pieces);
+        assert!(t.elapsed().as_secs() < 60, "{args}");
+        assert!(
+            !c.path("out").exists(),
+            "{args}: a run directory was written"
+        );
+    }
+    // A program that cannot start.
+    let c = case(&data, "", "").file(
+        "spec.yaml",
+        command_spec("", "").replace("[python3, scorer.py]", "[./no-such-program]"),
+    );
+    c.run_spec().fails(3, &["cannot start `./no-such-program`"]);
+}
+
+#[test]
+fn a_timeout_kills_the_programs_process_group() {
+    if python(&[]).is_none() {
+        return;
+    }
+    // The program starts a child that would write a file after 4 s; the
+    // timeout must take it down with its parent.
+    let script = "import subprocess, sys, time\n\
+                  subprocess.Popen([sys.executable, '-c', \
+                  'import time; time.sleep(4); open(\"late.txt\", \"w\").write(\"x\")'])\n\
+                  time.sleep(3600)\n";
+    let data = rows(200, 12, 8);
+    let c = case(&data, "", "      timeout-seconds: 1\n")
+        .file("sleeper.py", script)
+        .file(
+            "spec.yaml",
+            command_spec("", "      timeout-seconds: 1\n")
+                .replace("[python3, scorer.py]", "[python3, sleeper.py]"),
+        )
+        .run_spec();
+    c.fails(3, &["did not finish within 1 s"]);
+    std::thread::sleep(std::time::Duration::from_secs(5));
+    assert!(
+        !c.path("late.txt").exists(),
+        "the program's child outlived the timeout"
+    );
+}
+
+#[test]
+fn a_bad_command_entry_is_a_spec_error() {
+    let data = rows(50, 4, 9);
+    let bad = [
+        (
+            "      timeout-seconds: 0\n",
+            "`timeout-seconds` must be between 1 and 86400",
+        ),
+        (
+            "      timeout-seconds: 86401\n",
+            "`timeout-seconds` must be between 1 and 86400",
+        ),
+    ];
+    for (more, piece) in bad {
+        case(&data, "", more).run_spec().fails(2, &[piece]);
+    }
+    let c = case(&data, "", "").file(
+        "spec.yaml",
+        command_spec("", "").replace("run: [python3, scorer.py]", "run: []"),
+    );
+    c.run_spec().fails(2, &["`run` must name a program"]);
+    let c = case(&data, "", "").file(
+        "spec.yaml",
+        command_spec("", "").replace("name: mean-distance", "name: multivariate-gaussian"),
+    );
+    c.run_spec().fails(2, &["already used by another detector"]);
+}
