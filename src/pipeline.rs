@@ -1342,6 +1342,53 @@ fn check_recorded_inputs(dir: &Path, spec: &Path, run: &serde_json::Value) -> Re
 /// detector whose fitted state run.json does not hold, k-NN), refusing
 /// changed inputs and a refit whose parameters differ from `recorded`.
 pub fn refit_chosen(dir: &Path, recorded: &detect::Params) -> Result<Box<dyn Model>> {
+    let (plan, data, splits, kind, set) = rebuild_chosen(dir)?;
+    let detector = detect::name(kind);
+    let fitted = features::fit(&plan.feature_sets[set], &data, &splits.train)?;
+    let train = fitted.apply(&data, &splits.train)?;
+    let model = detect::build(kind).fit(train.view(), &fitted.names())?;
+    if &model.params() != recorded {
+        return Err(Error::Verify {
+            dir: dir.to_path_buf(),
+            problems: vec![format!(
+                "refitting `{detector}` from the run's spec and inputs gave other parameters than run.json records"
+            )],
+        });
+    }
+    Ok(model)
+}
+
+/// What `score` needs to run a run's chosen external command again: the
+/// command and the training rows' features, rebuilt from the run's spec and
+/// inputs (refused if they, or a file of the command's `inputs`, changed).
+pub fn chosen_command(
+    dir: &Path,
+    recorded: &detect::Params,
+) -> Result<(spec::CommandPlan, ndarray::Array2<f64>)> {
+    let (plan, data, splits, kind, set) = rebuild_chosen(dir)?;
+    let (DetectorKind::Command(i), detect::Params::Command { inputs, .. }) = (kind, recorded)
+    else {
+        return Err(Error::internal("the chosen candidate is not a command"));
+    };
+    let command = plan.commands[i].clone();
+    if &detect::command::hash_inputs(&command)? != inputs {
+        return Err(Error::Verify {
+            dir: dir.to_path_buf(),
+            problems: vec![format!(
+                "a file of the command `{}`'s `inputs` differs from the one the run recorded",
+                command.name
+            )],
+        });
+    }
+    let fitted = features::fit(&plan.feature_sets[set], &data, &splits.train)?;
+    let train = fitted.apply(&data, &splits.train)?;
+    Ok((command, train))
+}
+
+/// The run's spec, data and splits rebuilt from its recorded spec and
+/// inputs (refused if they changed), with the chosen candidate's detector
+/// and feature set.
+fn rebuild_chosen(dir: &Path) -> Result<(Plan, Dataset, split::Splits, DetectorKind, usize)> {
     let spec = recorded_spec_path(dir)?;
     let read = |p: &Path| std::fs::read(p).map_err(|e| Error::io(p, "reading", e));
     if read(&spec)? != read(&dir.join(SPEC_COPY))? {
@@ -1369,25 +1416,18 @@ pub fn refit_chosen(dir: &Path, recorded: &detect::Params) -> Result<Box<dyn Mod
     let set = plan
         .feature_sets
         .iter()
-        .find(|s| s.name == set_name)
+        .position(|s| s.name == set_name)
         .ok_or_else(|| Error::internal(format!("feature set `{set_name}` is not in the spec")))?;
+    let command = chosen["params"]["name"].as_str().unwrap_or_default();
     let kind = *plan
         .detectors
         .iter()
-        .find(|k| detect::name(**k) == detector)
+        .find(|k| match k {
+            DetectorKind::Command(i) => detector == "command" && plan.commands[*i].name == command,
+            _ => detect::name(**k) == detector,
+        })
         .ok_or_else(|| Error::internal(format!("detector `{detector}` is not in the spec")))?;
-    let fitted = features::fit(set, &data, &splits.train)?;
-    let train = fitted.apply(&data, &splits.train)?;
-    let model = detect::build(kind).fit(train.view(), &fitted.names())?;
-    if &model.params() != recorded {
-        return Err(Error::Verify {
-            dir: dir.to_path_buf(),
-            problems: vec![format!(
-                "refitting `{detector}` from the run's spec and inputs gave other parameters than run.json records"
-            )],
-        });
-    }
-    Ok(model)
+    Ok((plan, data, splits, kind, set))
 }
 
 /// The first place where two texts differ: a JSON path for JSON, else a line.
@@ -1439,7 +1479,37 @@ fn first_difference(name: &str, recorded: &[u8], recomputed: &[u8]) -> String {
         .position(|(x, y)| x != y)
         .map(|i| i + 1)
         .unwrap_or(a.lines().count().min(b.lines().count()) + 1);
-    format!("`{name}` first differs at line {line}")
+    let mut out = format!("`{name}` first differs at line {line}");
+    if name == "scores.csv" {
+        out.push_str(&scores_line_difference(&a, &b, line));
+    }
+    out
+}
+
+/// For a differing line of scores.csv: the row, its split and the first
+/// candidate whose score differs, with both values.
+fn scores_line_difference(recorded: &str, recomputed: &str, line: usize) -> String {
+    let (Some(header), Some(x), Some(y)) = (
+        recorded.lines().next(),
+        recorded.lines().nth(line - 1),
+        recomputed.lines().nth(line - 1),
+    ) else {
+        return String::new();
+    };
+    // Candidate names and ids are plain here when the line splits into as
+    // many fields as the header; otherwise the line alone is reported.
+    let names: Vec<&str> = header.split(',').collect();
+    let (fx, fy): (Vec<&str>, Vec<&str>) = (x.split(',').collect(), y.split(',').collect());
+    if fx.len() != names.len() || fy.len() != names.len() || fx[..2] != fy[..2] {
+        return String::new();
+    }
+    match (3..names.len()).find(|&j| fx[j] != fy[j]) {
+        Some(j) => format!(
+            " (row `{}` of {}: candidate `{}` recorded {}, recomputed {})",
+            fx[0], fx[1], names[j], fx[j], fy[j]
+        ),
+        None => String::new(),
+    }
 }
 
 /// Verifies a run directory, then recomputes it from `spec` and the data it
@@ -1488,7 +1558,14 @@ pub fn verify_by_recomputation(
         progress: crate::progress::Progress::hidden(),
     };
     let files = recompute(&opts, &replay)?;
-    for name in manifest.files.keys() {
+    // The scores first: a differing score (a program that is not
+    // deterministic) is named by its row rather than by what it changed.
+    let scores_first = manifest
+        .files
+        .keys()
+        .filter(|n| *n == "scores.csv")
+        .chain(manifest.files.keys().filter(|n| *n != "scores.csv"));
+    for name in scores_first {
         let recorded = read(dir.join(name))?;
         match files.get(name) {
             Some(b) if *b == *recorded.as_slice() => {}

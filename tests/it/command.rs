@@ -335,3 +335,99 @@ fn a_bad_command_entry_is_a_spec_error() {
     );
     c.run_spec().fails(2, &["already used by another detector"]);
 }
+
+fn verify_data(c: &Case) -> crate::util::Done {
+    c.clone()
+        .args(["verify", "out", "--pubkey", "key.pub.pem", "--data"])
+        .exec()
+}
+
+/// `verify --data` runs the program again: a deterministic one reproduces
+/// every byte, one that is not fails naming the first differing row.
+#[test]
+fn verification_runs_the_program_again() {
+    if python(&[]).is_none() {
+        return;
+    }
+    let data = rows(200, 12, 10);
+    for final_run in [false, true] {
+        let c = case(&data, "", "");
+        let mut args = vec!["run", "spec.yaml", "--key", "key.pem", "--out", "out"];
+        if final_run {
+            args.push("--open-test");
+        }
+        c.clone().args(args).success();
+        let d = verify_data(&c);
+        assert_eq!(d.code, 0, "{}", d.stderr);
+    }
+    let c = case(&data, ", --fail, random", "");
+    c.clone()
+        .args(["run", "spec.yaml", "--key", "key.pem", "--out", "out"])
+        .success();
+    let d = verify_data(&c);
+    assert_eq!(d.code, 1, "{}", d.stderr);
+    assert!(
+        d.stderr
+            .contains("`scores.csv` first differs at line 2 (row `"),
+        "{}",
+        d.stderr
+    );
+    assert!(
+        d.stderr
+            .contains("of validation: candidate `mean-distance` recorded"),
+        "{}",
+        d.stderr
+    );
+}
+
+/// `score` with a run whose chosen candidate is a command runs the program
+/// on the new rows with the run's training rows as `train`, so a row gets
+/// the score the run's contract gives it; a changed program is refused.
+#[test]
+fn score_runs_the_chosen_command_on_new_rows() {
+    if python(&[]).is_none() {
+        return;
+    }
+    let data = rows(300, 16, 11);
+    let only = |s: String| s.replace("  - multivariate-gaussian\n", "");
+    let c = case(&data, "", "").file("spec.yaml", only(command_spec("", "")));
+    let d = c.clone().run_spec().success();
+    let run = d.json("out/run.json");
+    assert_eq!(run["selection"]["chosen"], "mean-distance");
+    let tau = run["candidates"][0]["tau"].as_f64().unwrap();
+    let scored = scores(&d.read("out/scores.csv"));
+    let train: Vec<&Vec<f64>> = data
+        .iter()
+        .filter(|(id, _, _)| !scored.contains_key(id))
+        .map(|(_, x, _)| x)
+        .collect();
+    let new = rows(40, 5, 12);
+    let c = c.file("new.csv", csv(&["a", "b", "c"], &new));
+    let s = c
+        .clone()
+        .args(["score", "out", "new.csv", "--out", "scored.csv"])
+        .success();
+    let text = s.read("scored.csv");
+    let header: Vec<&str> = text.lines().next().unwrap().split(',').collect();
+    let at = |n: &str| header.iter().position(|h| *h == n).unwrap();
+    let lines: Vec<Vec<&str>> = text
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').collect())
+        .collect();
+    assert_eq!(lines.len(), new.len());
+    for (l, (id, x, _)) in lines.iter().zip(&new) {
+        assert_eq!(l[at("id")], id);
+        let got: f64 = l[at("anomark_score")].parse().unwrap();
+        let want = standard_distance(&train, x);
+        assert!(
+            (got - want).abs() <= 1e-12 * want.max(1.0),
+            "{id}: {got} vs {want}"
+        );
+        assert_eq!(l[at("anomark_flag")] == "true", got > tau, "{id}");
+    }
+    // The program changed since the run: refused.
+    let c = c.file("scorer.py", scorer() + "\n# changed\n");
+    c.args(["score", "out", "new.csv", "--out", "scored2.csv"])
+        .fails(1, &["`inputs` differs from the one the run recorded"]);
+}
