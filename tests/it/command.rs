@@ -431,3 +431,96 @@ fn score_runs_the_chosen_command_on_new_rows() {
     c.args(["score", "out", "new.csv", "--out", "scored2.csv"])
         .fails(1, &["`inputs` differs from the one the run recorded"]);
 }
+
+/// The example spec's isolation forest, run through anomark by the final
+/// protocol, gives scikit-learn's own `IsolationForest` scores for the same
+/// seed, computed here outside anomark from the demo data: −score_samples of
+/// a forest of 100 trees with `random_state=7` fitted on the training rows
+/// (sorted lexicographically, as the program documents). Reference:
+/// scikit-learn's `sklearn.ensemble.IsolationForest`.
+#[test]
+fn isolation_forest_example_matches_scikit_learn() {
+    let Some(py) = python(&["numpy", "sklearn"]) else {
+        return;
+    };
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let data_path = root.join("demo-data/pump-housings.csv");
+    let spec =
+        std::fs::read_to_string(root.join("specs-examples/pump-housing-isolation-forest.yaml"))
+            .unwrap()
+            .replace(
+                "../demo-data/pump-housings.csv",
+                data_path.to_str().unwrap(),
+            )
+            .replace("../runs/", "");
+    let program =
+        std::fs::read_to_string(root.join("specs-examples/commands/isolation_forest.py")).unwrap();
+    let c = Case::new()
+        .file("spec.yaml", spec)
+        .file("commands/isolation_forest.py", program)
+        .keys()
+        .run_spec();
+    let d = c.success();
+    let run = d.json("out/run.json");
+    assert_eq!(run["test-opened"], true);
+    let text = d.read("out/scores.csv");
+    let header: Vec<&str> = text.lines().next().unwrap().split(',').collect();
+    let col = header
+        .iter()
+        .position(|h| *h == "isolation-forest")
+        .unwrap();
+    let scored: BTreeMap<String, f64> = text
+        .lines()
+        .skip(1)
+        .map(|l| {
+            let f: Vec<&str> = l.split(',').collect();
+            (f[0].to_string(), f[col].parse().unwrap())
+        })
+        .collect();
+    assert!(text.lines().skip(1).any(|l| l.contains(",test,")));
+    // The reference, from the data file and the scored ids alone.
+    let ids: String = scored.keys().map(|k| format!("{k}\n")).collect();
+    let c = c.file("scored_ids.txt", ids).file(
+        "reference.py",
+        format!(
+            "import csv, sys\n\
+             import numpy as np\n\
+             from sklearn.ensemble import IsolationForest\n\
+             cols = ['shot_pressure_mpa', 'die_temp_c', 'fill_time_ms', 'cooling_time_s', 'vacuum_mbar', 'wall_thickness_mm']\n\
+             scored = set(open('scored_ids.txt').read().split())\n\
+             rows = list(csv.DictReader(open({:?})))\n\
+             train = np.array([[float(r[c]) for c in cols] for r in rows if r['housing_id'] not in scored])\n\
+             train = train[np.lexsort(train.T[::-1])]\n\
+             f = IsolationForest(n_estimators=100, random_state=7).fit(train)\n\
+             test = [r for r in rows if r['housing_id'] in scored]\n\
+             s = -f.score_samples(np.array([[float(r[c]) for c in cols] for r in test]))\n\
+             for r, v in zip(test, s):\n    print(r['housing_id'], repr(float(v)))\n",
+            data_path.to_str().unwrap()
+        ),
+    );
+    let out = std::process::Command::new(py)
+        .arg("reference.py")
+        .current_dir(c.dir.path())
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let reference = String::from_utf8(out.stdout).unwrap();
+    let mut n = 0;
+    for l in reference.lines() {
+        let (id, v) = l.split_once(' ').unwrap();
+        let want: f64 = v.parse().unwrap();
+        let got = scored[id];
+        assert!(
+            (got - want).abs() <= 1e-12,
+            "{id}: anomark {got}, scikit-learn {want}"
+        );
+        n += 1;
+    }
+    assert_eq!(n, scored.len());
+    let card = d.read("out/card.md");
+    assert!(card.contains("“isolation-forest” is an external command"));
+}
