@@ -558,6 +558,60 @@ mod tests {
         assert_ne!(p, (0..100).collect::<Vec<_>>());
     }
 
+    /// The Parquet exchange: a feature matrix written and read back by
+    /// polars keeps every value's bits, and a `score` column is read in order.
+    #[test]
+    fn parquet_exchange_round_trips() {
+        use polars::prelude::*;
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("rows.parquet");
+        let x = ndarray::array![[1.5, -0.1], [1e-300, 3.0], [0.1 + 0.2, 7.0]];
+        let names = vec!["a".to_string(), "b,c".to_string()];
+        write_matrix(&p, &names, x.view(), CommandIo::Parquet).unwrap();
+        let df = ParquetReader::new(std::fs::File::open(&p).unwrap())
+            .finish()
+            .unwrap();
+        for (j, n) in names.iter().enumerate() {
+            let c: Vec<f64> = df
+                .column(n)
+                .unwrap()
+                .f64()
+                .unwrap()
+                .into_no_null_iter()
+                .collect();
+            let want: Vec<u64> = x.column(j).iter().map(|v| v.to_bits()).collect();
+            assert_eq!(c.iter().map(|v| v.to_bits()).collect::<Vec<_>>(), want);
+        }
+        let mut scores = df!("score" => [2.0f64, 0.5, 1.25]).unwrap();
+        let mut buf = Vec::new();
+        ParquetWriter::new(&mut buf).finish(&mut scores).unwrap();
+        assert_eq!(parse_parquet_scores(&buf).unwrap(), vec![2.0, 0.5, 1.25]);
+        assert!(parse_parquet_scores(b"not parquet").is_err());
+    }
+
+    /// CSV exchange values are the shortest decimals that read back to the
+    /// same doubles (Python's `float()` reads them the same way).
+    #[test]
+    fn csv_exchange_writes_round_trip_numbers() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("train.csv");
+        let x = ndarray::array![[0.1 + 0.2, -2.0], [1e-300, 12345.678]];
+        let names = vec!["a".to_string(), "b\"x".to_string()];
+        write_matrix(&p, &names, x.view(), CommandIo::Csv).unwrap();
+        let text = std::fs::read_to_string(&p).unwrap();
+        let mut lines = text.lines();
+        assert_eq!(lines.next(), Some("a,\"b\"\"x\""));
+        assert_eq!(lines.next(), Some("0.30000000000000004,-2"));
+        let back: Vec<f64> = lines
+            .next()
+            .unwrap()
+            .split(',')
+            .map(|v| v.parse().unwrap())
+            .collect();
+        assert_eq!(back[0].to_bits(), 1e-300f64.to_bits());
+        assert_eq!(back[1].to_bits(), 12345.678f64.to_bits());
+    }
+
     #[test]
     fn csv_scores_need_the_header_and_finite_numbers() {
         assert_eq!(
