@@ -345,7 +345,7 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
     let lf = scan(&opts.data, in_format, &used)?;
     let outcome = if let Scorer::Command(..) = run.scorer {
         // The program runs once, on every row: the input is read whole.
-        lf.collect().and_then(|df| callback(df)).map(|_| ())
+        lf.collect().and_then(&callback).map(|_| ())
     } else {
         lf.sink_batches(PlanCallback::new(callback), true, None)
             .and_then(|lf| lf.collect_with_engine(Engine::Streaming))

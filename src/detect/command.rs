@@ -45,7 +45,7 @@ const STDERR_LINES: usize = 20;
 /// Bytes of standard error kept (the tail).
 const STDERR_KEEP: usize = 64 * 1024;
 /// The ChaCha stream of the row permutation.
-const SHUFFLE_STREAM: u64 = 0x636f_6d6d_616e_64;
+const SHUFFLE_STREAM: u64 = 0x0063_6f6d_6d61_6e64;
 
 /// One file the program depends on, with its blake3.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
