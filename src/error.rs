@@ -116,6 +116,15 @@ pub enum Error {
         /// The features involved.
         features: Vec<String>,
     },
+    /// An external command used as a detector failed or broke its contract.
+    Command {
+        /// The candidate's name.
+        name: String,
+        /// What went wrong.
+        message: String,
+        /// The last lines the program wrote to its standard error.
+        stderr: Vec<String>,
+    },
     /// A file could not be read or written.
     Io {
         /// The file.
@@ -178,6 +187,7 @@ impl Error {
             | Error::Leakage { .. }
             | Error::Protocol { .. }
             | Error::Fit { .. }
+            | Error::Command { .. }
             | Error::Csv { .. } => exit::DATA,
             Error::Io { .. }
             | Error::Output { .. }
@@ -295,6 +305,20 @@ impl fmt::Display for Error {
                 write!(f, "detector `{detector}`: {message}")?;
                 if !features.is_empty() {
                     write!(f, " (features: {})", list(features))?;
+                }
+                Ok(())
+            }
+            Error::Command {
+                name,
+                message,
+                stderr,
+            } => {
+                write!(f, "command `{name}`: {message}")?;
+                if !stderr.is_empty() {
+                    write!(f, "; the last lines of its standard error:")?;
+                    for l in stderr {
+                        write!(f, "\n  | {l}")?;
+                    }
                 }
                 Ok(())
             }

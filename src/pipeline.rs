@@ -103,11 +103,15 @@ struct Candidate {
 }
 
 /// A candidate's name: the detector, prefixed by a named feature set.
-fn candidate_name(set: &spec::FeatureSetPlan, kind: DetectorKind) -> String {
+fn candidate_name(set: &spec::FeatureSetPlan, kind: DetectorKind, plan: &Plan) -> String {
+    let detector = match kind {
+        DetectorKind::Command(i) => plan.commands[i].name.as_str(),
+        _ => detect::name(kind),
+    };
     if set.named {
-        format!("{}/{}", set.name, detect::name(kind))
+        format!("{}/{detector}", set.name)
     } else {
-        detect::name(kind).to_string()
+        detector.to_string()
     }
 }
 
@@ -388,7 +392,7 @@ fn execute(
         let names_shown: Vec<String> = plan
             .detectors
             .iter()
-            .map(|&kind| candidate_name(set, kind))
+            .map(|&kind| candidate_name(set, kind, &plan))
             .collect();
         let stage = progress.stage(format!(
             "fitting and thresholding {}",
@@ -400,22 +404,36 @@ fn execute(
                 .par_iter()
                 .zip(names_shown)
                 .map(|(&kind, name)| -> Result<Candidate> {
-                    let t = crate::progress::part("fitting");
-                    let model = match &streamed {
-                        Some((_, moments, _)) => crate::stream::fit(kind, &moments[si], &names),
-                        None => detect::build(kind).fit(train.view(), &names),
-                    }
-                    .map_err(|e| in_set(e, set))?;
-                    drop(t);
-                    let t = crate::progress::part("validation scores");
-                    let validation_scores = checked_scores(
-                        &name,
-                        model.as_ref(),
-                        (&fitted, &val_x),
-                        &splits.validation,
-                        &data,
-                    )?;
-                    drop(t);
+                    let (model, validation_scores) = if let DetectorKind::Command(i) = kind {
+                        // An external program: one invocation with the
+                        // training and the validation rows' features.
+                        let _t = crate::progress::part("external command");
+                        detect::command::validation_scores(
+                            &plan.commands[i],
+                            &names,
+                            &|rows| fitted.apply(&data, rows),
+                            &splits.train,
+                            &splits.validation,
+                        )?
+                    } else {
+                        let t = crate::progress::part("fitting");
+                        let model = match &streamed {
+                            Some((_, moments, _)) => crate::stream::fit(kind, &moments[si], &names),
+                            None => detect::build(kind).fit(train.view(), &names),
+                        }
+                        .map_err(|e| in_set(e, set))?;
+                        drop(t);
+                        let t = crate::progress::part("validation scores");
+                        let validation_scores = checked_scores(
+                            &name,
+                            model.as_ref(),
+                            (&fitted, &val_x),
+                            &splits.validation,
+                            &data,
+                        )?;
+                        drop(t);
+                        (model, validation_scores)
+                    };
                     let t = crate::progress::part("ranking");
                     let validation_ranked = metrics::Ranked::new(&validation_scores, &val_y);
                     drop(t);
@@ -540,28 +558,47 @@ fn execute(
                 count: same.len(),
                 spec_blake3: specs,
             });
-        let test_rows = splits.test.open();
+        let opened = splits.test.open();
+        let test_rows = opened.rows();
         let test_y: Vec<bool> = test_rows
             .iter()
             .map(|r| data.is_anomaly[r.0 as usize])
             .collect();
         let test_x: Vec<SplitFeatures> = fitted_sets
             .iter()
-            .map(|f| SplitFeatures::of(f, &data, &test_rows))
+            .map(|f| SplitFeatures::of(f, &data, test_rows))
             .collect::<Result<_>>()?;
         let t = crate::progress::part("test scores");
         let mut test_scores = Vec::new();
-        for c in &candidates {
+        for c in &mut candidates {
+            if let DetectorKind::Command(i) = c.kind {
+                // The program's second invocation, with the test rows.
+                let fitted = &fitted_sets[c.set];
+                let (model, scores) = detect::command::final_scores(
+                    &plan.commands[i],
+                    &fitted.names(),
+                    &|rows| fitted.apply(&data, rows),
+                    &splits.train,
+                    &splits.validation,
+                    &c.validation_scores,
+                    &opened,
+                    c.model.as_ref(),
+                    &|r| data.place(r),
+                )?;
+                c.model = model;
+                test_scores.push(scores);
+                continue;
+            }
             test_scores.push(checked_scores(
                 &c.name,
                 c.model.as_ref(),
                 (&fitted_sets[c.set], &test_x[c.set]),
-                &test_rows,
+                test_rows,
                 &data,
             )?);
         }
         drop(t);
-        (test_rows, test_scores, test_y, Some(openings))
+        (opened.into_rows(), test_scores, test_y, Some(openings))
     } else {
         (vec![], vec![vec![]; candidates.len()], vec![], None)
     };
@@ -1127,7 +1164,11 @@ fn card_context(
             .map(|c| ThresholdRow {
                 candidate: c.name.clone(),
                 chosen: c.chosen,
-                parameters: c.parameter_count,
+                parameters: if c.parameter_count == usize::MAX {
+                    "unknown".into()
+                } else {
+                    c.parameter_count.to_string()
+                },
                 tau: format!("{:.6}", c.tau),
                 ln_epsilon: format!("{:.6}", c.ln_epsilon),
                 unmet: c.threshold_note.clone(),
@@ -1160,6 +1201,11 @@ fn card_context(
         plots_validation: vec![],
         plots_test: vec![],
         plots_features: vec![],
+        external_commands: rec
+            .candidates
+            .iter()
+            .filter_map(external_paragraph)
+            .collect(),
         wall_clock: rec.wall_clock.as_ref().map(|w| {
             format!(
                 "Run started {} and took {} s. This line is the only part of the card that \
@@ -1169,6 +1215,60 @@ fn card_context(
             )
         }),
     }
+}
+
+/// The card's paragraph on an external-command candidate.
+fn external_paragraph(c: &CandidateRecord) -> Option<String> {
+    let detect::Params::Command {
+        run,
+        inputs,
+        invocations,
+        ..
+    } = &c.params
+    else {
+        return None;
+    };
+    let files = if inputs.is_empty() {
+        "no files were declared in `inputs`, so nothing ties the result to a version of the \
+         program"
+            .to_string()
+    } else {
+        format!(
+            "its declared files: {}",
+            inputs
+                .iter()
+                .map(|i| format!("{} (blake3 {})", i.path, i.blake3))
+                .collect::<Vec<_>>()
+                .join(", ")
+        )
+    };
+    let runs = invocations
+        .iter()
+        .map(|i| {
+            format!(
+                "{} rows{} (exit status {}, scores blake3 {})",
+                i.rows,
+                if i.test_rows_included {
+                    ", validation and test shuffled together"
+                } else {
+                    ", validation"
+                },
+                i.exit_status,
+                i.scores_blake3
+            )
+        })
+        .collect::<Vec<_>>()
+        .join("; ");
+    Some(format!(
+        "“{}” is an external command, `{}`: anomark cannot see inside it. It was run without a \
+         shell on a folder holding the training rows' features and the rows to score, shuffled, \
+         with no labels, split names or ids, and each time it returned one score per row \
+         (higher is more anomalous; its scores are the program's own, not −ln p(x)): {runs}. \
+         That it learnt from the training rows only is enforced by what it was given, nothing \
+         more; {files}.",
+        c.name,
+        run.join(" ")
+    ))
 }
 
 fn describe_transform(t: &features::Fitted) -> String {
@@ -1242,6 +1342,53 @@ fn check_recorded_inputs(dir: &Path, spec: &Path, run: &serde_json::Value) -> Re
 /// detector whose fitted state run.json does not hold, k-NN), refusing
 /// changed inputs and a refit whose parameters differ from `recorded`.
 pub fn refit_chosen(dir: &Path, recorded: &detect::Params) -> Result<Box<dyn Model>> {
+    let (plan, data, splits, kind, set) = rebuild_chosen(dir)?;
+    let detector = detect::name(kind);
+    let fitted = features::fit(&plan.feature_sets[set], &data, &splits.train)?;
+    let train = fitted.apply(&data, &splits.train)?;
+    let model = detect::build(kind).fit(train.view(), &fitted.names())?;
+    if &model.params() != recorded {
+        return Err(Error::Verify {
+            dir: dir.to_path_buf(),
+            problems: vec![format!(
+                "refitting `{detector}` from the run's spec and inputs gave other parameters than run.json records"
+            )],
+        });
+    }
+    Ok(model)
+}
+
+/// What `score` needs to run a run's chosen external command again: the
+/// command and the training rows' features, rebuilt from the run's spec and
+/// inputs (refused if they, or a file of the command's `inputs`, changed).
+pub fn chosen_command(
+    dir: &Path,
+    recorded: &detect::Params,
+) -> Result<(spec::CommandPlan, ndarray::Array2<f64>)> {
+    let (plan, data, splits, kind, set) = rebuild_chosen(dir)?;
+    let (DetectorKind::Command(i), detect::Params::Command { inputs, .. }) = (kind, recorded)
+    else {
+        return Err(Error::internal("the chosen candidate is not a command"));
+    };
+    let command = plan.commands[i].clone();
+    if &detect::command::hash_inputs(&command)? != inputs {
+        return Err(Error::Verify {
+            dir: dir.to_path_buf(),
+            problems: vec![format!(
+                "a file of the command `{}`'s `inputs` differs from the one the run recorded",
+                command.name
+            )],
+        });
+    }
+    let fitted = features::fit(&plan.feature_sets[set], &data, &splits.train)?;
+    let train = fitted.apply(&data, &splits.train)?;
+    Ok((command, train))
+}
+
+/// The run's spec, data and splits rebuilt from its recorded spec and
+/// inputs (refused if they changed), with the chosen candidate's detector
+/// and feature set.
+fn rebuild_chosen(dir: &Path) -> Result<(Plan, Dataset, split::Splits, DetectorKind, usize)> {
     let spec = recorded_spec_path(dir)?;
     let read = |p: &Path| std::fs::read(p).map_err(|e| Error::io(p, "reading", e));
     if read(&spec)? != read(&dir.join(SPEC_COPY))? {
@@ -1269,25 +1416,18 @@ pub fn refit_chosen(dir: &Path, recorded: &detect::Params) -> Result<Box<dyn Mod
     let set = plan
         .feature_sets
         .iter()
-        .find(|s| s.name == set_name)
+        .position(|s| s.name == set_name)
         .ok_or_else(|| Error::internal(format!("feature set `{set_name}` is not in the spec")))?;
+    let command = chosen["params"]["name"].as_str().unwrap_or_default();
     let kind = *plan
         .detectors
         .iter()
-        .find(|k| detect::name(**k) == detector)
+        .find(|k| match k {
+            DetectorKind::Command(i) => detector == "command" && plan.commands[*i].name == command,
+            _ => detect::name(**k) == detector,
+        })
         .ok_or_else(|| Error::internal(format!("detector `{detector}` is not in the spec")))?;
-    let fitted = features::fit(set, &data, &splits.train)?;
-    let train = fitted.apply(&data, &splits.train)?;
-    let model = detect::build(kind).fit(train.view(), &fitted.names())?;
-    if &model.params() != recorded {
-        return Err(Error::Verify {
-            dir: dir.to_path_buf(),
-            problems: vec![format!(
-                "refitting `{detector}` from the run's spec and inputs gave other parameters than run.json records"
-            )],
-        });
-    }
-    Ok(model)
+    Ok((plan, data, splits, kind, set))
 }
 
 /// The first place where two texts differ: a JSON path for JSON, else a line.
@@ -1339,7 +1479,37 @@ fn first_difference(name: &str, recorded: &[u8], recomputed: &[u8]) -> String {
         .position(|(x, y)| x != y)
         .map(|i| i + 1)
         .unwrap_or(a.lines().count().min(b.lines().count()) + 1);
-    format!("`{name}` first differs at line {line}")
+    let mut out = format!("`{name}` first differs at line {line}");
+    if name == "scores.csv" {
+        out.push_str(&scores_line_difference(&a, &b, line));
+    }
+    out
+}
+
+/// For a differing line of scores.csv: the row, its split and the first
+/// candidate whose score differs, with both values.
+fn scores_line_difference(recorded: &str, recomputed: &str, line: usize) -> String {
+    let (Some(header), Some(x), Some(y)) = (
+        recorded.lines().next(),
+        recorded.lines().nth(line - 1),
+        recomputed.lines().nth(line - 1),
+    ) else {
+        return String::new();
+    };
+    // Candidate names and ids are plain here when the line splits into as
+    // many fields as the header; otherwise the line alone is reported.
+    let names: Vec<&str> = header.split(',').collect();
+    let (fx, fy): (Vec<&str>, Vec<&str>) = (x.split(',').collect(), y.split(',').collect());
+    if fx.len() != names.len() || fy.len() != names.len() || fx[..2] != fy[..2] {
+        return String::new();
+    }
+    match (3..names.len()).find(|&j| fx[j] != fy[j]) {
+        Some(j) => format!(
+            " (row `{}` of {}: candidate `{}` recorded {}, recomputed {})",
+            fx[0], fx[1], names[j], fx[j], fy[j]
+        ),
+        None => String::new(),
+    }
 }
 
 /// Verifies a run directory, then recomputes it from `spec` and the data it
@@ -1388,7 +1558,14 @@ pub fn verify_by_recomputation(
         progress: crate::progress::Progress::hidden(),
     };
     let files = recompute(&opts, &replay)?;
-    for name in manifest.files.keys() {
+    // The scores first: a differing score (a program that is not
+    // deterministic) is named by its row rather than by what it changed.
+    let scores_first = manifest
+        .files
+        .keys()
+        .filter(|n| *n == "scores.csv")
+        .chain(manifest.files.keys().filter(|n| *n != "scores.csv"));
+    for name in scores_first {
         let recorded = read(dir.join(name))?;
         match files.get(name) {
             Some(b) if *b == *recorded.as_slice() => {}

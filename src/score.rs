@@ -5,7 +5,10 @@
 //! The model is rebuilt from the parameters in run.json (k-NN, whose
 //! training rows are not recorded, is refitted from the run's own spec and
 //! inputs, refused if they changed), so a row scores the same bits as in the
-//! run. The input is read by polars' streaming engine in batches and each
+//! run. A chosen external command is run once on all the new rows, with the
+//! run's training rows rebuilt from its spec and inputs as `train` (the same
+//! contract as in the run, refused if its `inputs` files changed); that
+//! path reads the input whole. The input is read by polars' streaming engine in batches and each
 //! batch is scored on all cores in fixed row blocks; the output goes to a
 //! temporary file beside the target and is renamed into place only when every
 //! row is written.
@@ -94,11 +97,20 @@ fn polars_error(path: &Path, e: PolarsError) -> Error {
     }
 }
 
+/// What scores the rows.
+enum Scorer {
+    /// A model rebuilt in process.
+    Model(Box<dyn Model>),
+    /// An external command, run once on every row of the input with the
+    /// run's training rows' features.
+    Command(Box<crate::spec::CommandPlan>, ndarray::Array2<f64>),
+}
+
 /// The recorded run, as far as scoring needs it.
 struct Recorded {
     candidate: String,
     set: FittedFeatures,
-    model: Box<dyn Model>,
+    scorer: Scorer,
     tau: f64,
     columns: Vec<String>,
     manifest_blake3: String,
@@ -162,14 +174,19 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
         .map_err(|_| bad_run(dir, "run.json: `content-columns` is unreadable".into()))?;
     let names = set.names();
     let candidate = chosen["name"].as_str().unwrap_or_default().to_string();
-    let model = match detect::restore(&params, &names)? {
-        Some(m) => m,
-        None => crate::pipeline::refit_chosen(dir, &params)?,
+    let scorer = if let Params::Command { .. } = params {
+        let (command, train) = crate::pipeline::chosen_command(dir, &params)?;
+        Scorer::Command(Box::new(command), train)
+    } else {
+        Scorer::Model(match detect::restore(&params, &names)? {
+            Some(m) => m,
+            None => crate::pipeline::refit_chosen(dir, &params)?,
+        })
     };
     Ok(Recorded {
         candidate,
         set,
-        model,
+        scorer,
         tau,
         columns,
         manifest_blake3: hash::bytes(&manifest_bytes),
@@ -332,9 +349,14 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         }
     };
     let lf = scan(&opts.data, in_format, &used)?;
-    let outcome = lf
-        .sink_batches(PlanCallback::new(callback), true, None)
-        .and_then(|lf| lf.collect_with_engine(Engine::Streaming));
+    let outcome = if let Scorer::Command(..) = run.scorer {
+        // The program runs once, on every row: the input is read whole.
+        lf.collect().and_then(&callback).map(|_| ())
+    } else {
+        lf.sink_batches(PlanCallback::new(callback), true, None)
+            .and_then(|lf| lf.collect_with_engine(Engine::Streaming))
+            .map(|_| ())
+    };
     drop(counter);
     let mut st = state.lock().expect("the scoring state is not poisoned");
     if let Some(e) = st.error.take() {
@@ -485,7 +507,20 @@ fn score_batch(
                 .collect(),
             unit,
         })?;
-    let scores = crate::detect::score_in_blocks(run.model.as_ref(), x.view(), BLOCK);
+    let scores = match &run.scorer {
+        Scorer::Model(m) => crate::detect::score_in_blocks(m.as_ref(), x.view(), BLOCK),
+        Scorer::Command(_, _) if n == 0 => vec![],
+        Scorer::Command(command, train) => {
+            crate::detect::command::invoke(
+                command,
+                &run.set.names(),
+                train.view(),
+                x.view(),
+                false,
+            )?
+            .0
+        }
+    };
     let flags: Vec<bool> = scores.iter().map(|&s| s > run.tau).collect();
     let flagged = flags.iter().filter(|&&f| f).count() as u64;
     let mut out = df;

@@ -84,8 +84,29 @@ impl SealedTest {
         self.rows.iter().map(|r| hashes[r.0 as usize]).collect()
     }
 
-    /// Opens the test split. Called from `pipeline` only, after selection.
-    pub(crate) fn open(self) -> Vec<RowId> {
+    /// Opens the test split. Called from `pipeline` only, after selection
+    /// and after the opening is on the ledger.
+    pub(crate) fn open(self) -> OpenedTest {
+        OpenedTest { rows: self.rows }
+    }
+}
+
+/// The test rows of an opened split. Only [`SealedTest::open`] makes one, so
+/// code that needs it (an external command's test invocation) can run only
+/// in a final run.
+#[derive(Debug)]
+pub struct OpenedTest {
+    rows: Vec<RowId>,
+}
+
+impl OpenedTest {
+    /// The test rows, in canonical order.
+    pub fn rows(&self) -> &[RowId] {
+        &self.rows
+    }
+
+    /// The rows, taken out.
+    pub fn into_rows(self) -> Vec<RowId> {
         self.rows
     }
 }

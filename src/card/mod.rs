@@ -65,8 +65,8 @@ pub struct ThresholdRow {
     pub candidate: String,
     /// Whether this is the chosen candidate.
     pub chosen: bool,
-    /// Free parameters.
-    pub parameters: usize,
+    /// Free parameters (`unknown` for an external command).
+    pub parameters: String,
     /// τ.
     pub tau: String,
     /// ln ε.
@@ -180,6 +180,9 @@ pub struct CardContext {
     pub plots_test: Vec<plots::Plot>,
     /// One figure per feature of the chosen candidate's feature set.
     pub plots_features: Vec<plots::Plot>,
+    /// One paragraph per external-command candidate: what it was given, its
+    /// files' hashes, and that anomark cannot see inside it.
+    pub external_commands: Vec<String>,
     /// Wall-clock line for the unsigned footer, if recorded.
     pub wall_clock: Option<String>,
 }

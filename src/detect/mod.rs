@@ -7,6 +7,7 @@
 //! in log space, and logarithms come from `libm` so that scores are the same
 //! bits on every platform.
 
+pub mod command;
 mod independent;
 mod knn;
 mod mixture;
@@ -135,6 +136,25 @@ pub enum Params {
         /// Standardisation standard deviations.
         sd: Vec<f64>,
     },
+    /// An external program: anomark cannot see inside it, so it records the
+    /// program's provenance instead of parameters.
+    #[serde(rename_all = "kebab-case")]
+    Command {
+        /// The candidate's name.
+        name: String,
+        /// The program and its arguments, as the spec writes them.
+        run: Vec<String>,
+        /// The exchange files' format.
+        io: crate::spec::CommandIo,
+        /// Seed of the permutation of the rows to score.
+        seed: u64,
+        /// The timeout.
+        timeout_seconds: u64,
+        /// blake3 of every file in `inputs`.
+        inputs: Vec<command::InputHash>,
+        /// Each invocation: the validation one, and in a final run the one with the test rows.
+        invocations: Vec<command::Invocation>,
+    },
 }
 
 impl Params {
@@ -165,7 +185,7 @@ impl Params {
                     .map(|((w, m), c)| (*w, m[j], c[j][j]))
                     .collect(),
             ),
-            Params::KnnDistance { .. } => None,
+            Params::KnnDistance { .. } | Params::Command { .. } => None,
         }
     }
 
@@ -187,6 +207,9 @@ impl Params {
                 mean,
                 ..
             } => training_rows * mean.len(),
+            // Unknown: counted as the most, so that a tie goes to a built-in
+            // detector, whose parameters the record holds.
+            Params::Command { .. } => usize::MAX,
         }
     }
 }
@@ -233,7 +256,7 @@ pub fn restore(params: &Params, features: &[String]) -> Result<Option<Box<dyn Mo
             covariances.iter().map(|c| flat(c)).collect(),
             features,
         )?,
-        Params::KnnDistance { .. } => return Ok(None),
+        Params::KnnDistance { .. } | Params::Command { .. } => return Ok(None),
     };
     Ok(Some(Box::new(Restored {
         params: params.clone(),
@@ -264,6 +287,7 @@ pub fn name(kind: DetectorKind) -> &'static str {
         DetectorKind::RobustGaussian { .. } => "robust-gaussian",
         DetectorKind::GaussianMixture { .. } => "gaussian-mixture",
         DetectorKind::KnnDistance { .. } => "knn-distance",
+        DetectorKind::Command(_) => "command",
     }
 }
 
@@ -286,6 +310,19 @@ pub fn build(kind: DetectorKind) -> Box<dyn Detector> {
             covariance_floor,
         } => Box::new(GaussianMixture::new(k_min, k_max, seed, covariance_floor)),
         DetectorKind::KnnDistance { k } => Box::new(KnnDistance { k }),
+        DetectorKind::Command(_) => Box::new(NotFittable),
+    }
+}
+
+/// The stand-in for an external command, which is not fitted in process
+/// (the pipeline runs it through [`command`]).
+struct NotFittable;
+
+impl Detector for NotFittable {
+    fn fit(&self, _: ArrayView2<'_, f64>, _: &[String]) -> Result<Box<dyn Model>> {
+        Err(Error::internal(
+            "an external command is run through `detect::command`, not fitted",
+        ))
     }
 }
 

@@ -7,10 +7,10 @@
 mod raw;
 
 pub use raw::{
-    AnomalyFractions, DetectorKind, MissingPolicy, NormalFractions, OneOrMany, RawCard, RawData,
-    RawDetector, RawFeature, RawFeatureMap, RawFeatureSet, RawFromColumn, RawGroups, RawLabel,
-    RawProtocol, RawSpec, RawSplit, RawTime, Scalar, SelectionMetric, ThresholdPolicy,
-    TransformKind,
+    AnomalyFractions, CommandIo, DetectorKind, MissingPolicy, NormalFractions, OneOrMany, RawCard,
+    RawCommand, RawData, RawDetector, RawFeature, RawFeatureMap, RawFeatureSet, RawFromColumn,
+    RawGroups, RawLabel, RawProtocol, RawSpec, RawSplit, RawTime, Scalar, SelectionMetric,
+    ThresholdPolicy, TransformKind,
 };
 
 use std::cell::RefCell;
@@ -68,6 +68,28 @@ pub struct SourcePlan {
     pub field: String,
     /// `None` for a labelled source; `Some(is_anomaly)` when the label is implied.
     pub implied: Option<bool>,
+}
+
+/// The most seconds an external command may be given (`timeout-seconds`).
+pub const MAX_COMMAND_SECONDS: u64 = 86_400;
+
+/// An external program used as a detector (`detectors: [{command: ...}]`).
+#[derive(Debug, Clone)]
+pub struct CommandPlan {
+    /// The candidate's name.
+    pub name: String,
+    /// The program and its arguments, as written.
+    pub run: Vec<String>,
+    /// The files it depends on: as written, and resolved against the spec's folder.
+    pub inputs: Vec<(String, PathBuf)>,
+    /// Seconds before it is killed.
+    pub timeout_seconds: u64,
+    /// The exchange files' format.
+    pub io: CommandIo,
+    /// Seed of the permutation of the rows to score.
+    pub seed: u64,
+    /// The spec's folder: the program's working directory.
+    pub folder: PathBuf,
 }
 
 /// The label column of a labelled source.
@@ -216,6 +238,8 @@ pub struct Plan {
     pub split: SplitPlan,
     /// Candidate detectors, in spec order, without repeats.
     pub detectors: Vec<DetectorKind>,
+    /// The external commands that `DetectorKind::Command` points into.
+    pub commands: Vec<CommandPlan>,
     /// The threshold policy.
     pub threshold: ThresholdPolicy,
     /// The validation metric that ranks candidates.
@@ -970,9 +994,18 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
         ));
     }
     let mut detectors: Vec<DetectorKind> = Vec::new();
+    let mut commands: Vec<CommandPlan> = Vec::new();
     for (i, d) in raw.detectors.value.iter().enumerate() {
         let field = format!("detectors[{i}]");
-        let kind = d.value.0;
+        let kind = match &d.value {
+            RawDetector::Builtin(kind) => *kind,
+            RawDetector::Command(c) => {
+                let c = resolve_command(&r, d, &field, c, base, &detectors, &commands)?;
+                commands.push(c);
+                detectors.push(DetectorKind::Command(commands.len() - 1));
+                continue;
+            }
+        };
         let name = crate::detect::name(kind);
         if detectors.iter().any(|e| crate::detect::name(*e) == name) {
             return Err(r.err(d, &field, format!("detector `{name}` is listed twice")));
@@ -1119,6 +1152,7 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
         feature_sets,
         split,
         detectors,
+        commands,
         threshold,
         selection,
         bootstrap: crate::metrics::BootstrapPlan {
@@ -1141,6 +1175,69 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
             format!("{stem}.test-ledger.jsonl")
         })),
         stream,
+    })
+}
+
+/// Checks a `command:` detector and resolves its paths.
+fn resolve_command(
+    r: &Resolver<'_>,
+    d: &Spanned<RawDetector>,
+    field: &str,
+    c: &RawCommand,
+    base: &Path,
+    detectors: &[DetectorKind],
+    commands: &[CommandPlan],
+) -> Result<CommandPlan> {
+    let bad = |what: String| Err(r.err(d, &format!("{field}.command"), what));
+    let name = c.name.trim();
+    if name.is_empty() || name != c.name || name.contains(['/', ',', '"', '\n', '\r']) {
+        return bad(format!(
+            "`name` must be non-empty, without surrounding spaces, `/`, `,`, quotes or line ends, found `{}`",
+            c.name
+        ));
+    }
+    if detectors
+        .iter()
+        .any(|k| !matches!(k, DetectorKind::Command(_)) && crate::detect::name(*k) == name)
+        || name == "command"
+        || commands.iter().any(|e| e.name == name)
+    {
+        return bad(format!(
+            "the name `{name}` is already used by another detector; give each command its own name"
+        ));
+    }
+    if c.run.is_empty() || c.run[0].is_empty() {
+        return bad("`run` must name a program: `run: [PROGRAM, ARG...]`".into());
+    }
+    if c.run.iter().any(|a| a.contains('\0')) {
+        return bad("an argument of `run` holds a NUL character".into());
+    }
+    if c.timeout_seconds < 1 || c.timeout_seconds > MAX_COMMAND_SECONDS {
+        return bad(format!(
+            "`timeout-seconds` must be between 1 and {MAX_COMMAND_SECONDS}, found {}",
+            c.timeout_seconds
+        ));
+    }
+    let mut inputs: Vec<(String, PathBuf)> = Vec::new();
+    for f in &c.inputs {
+        if f.is_empty() || inputs.iter().any(|(w, _)| w == f) {
+            return bad(format!("`inputs` lists `{f}` twice or empty"));
+        }
+        inputs.push((f.clone(), base.join(f)));
+    }
+    let folder = if base.as_os_str().is_empty() {
+        PathBuf::from(".")
+    } else {
+        base.to_path_buf()
+    };
+    Ok(CommandPlan {
+        name: name.to_string(),
+        run: c.run.clone(),
+        inputs,
+        timeout_seconds: c.timeout_seconds,
+        io: c.io,
+        seed: c.seed,
+        folder,
     })
 }
 

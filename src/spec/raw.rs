@@ -447,6 +447,60 @@ pub enum DetectorKind {
         #[schemars(range(min = 1, max = 1_000))]
         k: usize,
     },
+    /// An external program (`command:` in the spec), by its place in
+    /// `Plan::commands`; never read from YAML in this form.
+    #[serde(skip)]
+    Command(usize),
+}
+
+/// A detector that is an external program: anomark hands it a folder with
+/// the training rows' features and the rows to score, and reads back one
+/// score per row (see the README's contract).
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(rename_all = "kebab-case", deny_unknown_fields)]
+pub struct RawCommand {
+    /// The candidate's name in the card and the record.
+    pub name: String,
+    /// The program and its arguments, run without a shell from the spec's
+    /// folder; the exchange folder's path is added as the last argument.
+    pub run: Vec<String>,
+    /// Files the program depends on (its code, model files, weights),
+    /// relative to the spec; their blake3 is recorded.
+    #[serde(default)]
+    pub inputs: Vec<String>,
+    /// Seconds the program may run before it is killed (default 600, at most 86,400).
+    #[serde(default = "six_hundred")]
+    pub timeout_seconds: u64,
+    /// The exchange files' format (default `csv`).
+    #[serde(default)]
+    pub io: CommandIo,
+    /// Seed of the permutation that shuffles the rows to score (default 1).
+    #[serde(default = "one")]
+    pub seed: u64,
+}
+
+/// The format of the files exchanged with an external command.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum CommandIo {
+    /// `train.csv`, `rows.csv` and `scores.csv`.
+    #[default]
+    Csv,
+    /// `train.parquet`, `rows.parquet` and `scores.parquet`.
+    Parquet,
+}
+
+fn six_hundred() -> u64 {
+    600
+}
+
+/// The one-key map `command: {...}`, for the schema.
+#[derive(JsonSchema)]
+#[serde(rename_all = "kebab-case", deny_unknown_fields)]
+#[allow(dead_code)]
+pub struct CommandSchema {
+    /// An external program as a detector.
+    command: RawCommand,
 }
 
 fn one() -> u64 {
@@ -488,11 +542,45 @@ pub enum DetectorSchema {
     Name(DetectorName),
     /// A name with settings.
     Spelled(DetectorKind),
+    /// An external program.
+    Command(CommandSchema),
 }
 
 /// One entry of `detectors`, read from a name or a map.
-#[derive(Debug, Clone, Copy)]
-pub struct RawDetector(pub DetectorKind);
+#[derive(Debug, Clone)]
+pub enum RawDetector {
+    /// A built-in detector.
+    Builtin(DetectorKind),
+    /// An external program.
+    Command(RawCommand),
+}
+
+/// A map whose first key was already read: hands that key back first.
+struct KeyFirst<A> {
+    key: Option<String>,
+    rest: A,
+}
+
+impl<'de, A: MapAccess<'de>> MapAccess<'de> for KeyFirst<A> {
+    type Error = A::Error;
+    fn next_key_seed<K: de::DeserializeSeed<'de>>(
+        &mut self,
+        seed: K,
+    ) -> Result<Option<K::Value>, A::Error> {
+        match self.key.take() {
+            Some(k) => seed
+                .deserialize(de::value::StringDeserializer::<A::Error>::new(k))
+                .map(Some),
+            None => self.rest.next_key_seed(seed),
+        }
+    }
+    fn next_value_seed<V: de::DeserializeSeed<'de>>(
+        &mut self,
+        seed: V,
+    ) -> Result<V::Value, A::Error> {
+        self.rest.next_value_seed(seed)
+    }
+}
 
 impl<'de> Deserialize<'de> for RawDetector {
     fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
@@ -519,11 +607,24 @@ impl<'de> Deserialize<'de> for RawDetector {
                         DetectorKind::deserialize(de::value::StrDeserializer::<E>::new(other))?
                     }
                 };
-                Ok(RawDetector(kind))
+                Ok(RawDetector::Builtin(kind))
             }
-            fn visit_map<A: MapAccess<'de>>(self, map: A) -> Result<RawDetector, A::Error> {
-                DetectorKind::deserialize(de::value::MapAccessDeserializer::new(map))
-                    .map(RawDetector)
+            fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<RawDetector, A::Error> {
+                let key: Option<String> = map.next_key()?;
+                if key.as_deref() == Some("command") {
+                    let c: RawCommand = map.next_value()?;
+                    if let Some(other) = map.next_key::<String>()? {
+                        return Err(de::Error::custom(format!(
+                            "a detector is a one-key map; found `{other}` beside `command`"
+                        )));
+                    }
+                    return Ok(RawDetector::Command(c));
+                }
+                DetectorKind::deserialize(de::value::MapAccessDeserializer::new(KeyFirst {
+                    key,
+                    rest: map,
+                }))
+                .map(RawDetector::Builtin)
             }
         }
         d.deserialize_any(V)

@@ -7,6 +7,7 @@ mod browser;
 mod card;
 mod check;
 mod cli;
+mod command;
 mod detectors;
 mod determinism;
 mod diff;
