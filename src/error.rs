@@ -162,6 +162,12 @@ pub enum Error {
         /// Each difference, in the order found.
         problems: Vec<String>,
     },
+    /// The command line asks for something anomark cannot do as asked (a
+    /// missing option, or `init` unable to decide without more information).
+    Usage {
+        /// What is missing and how to give it.
+        message: String,
+    },
     /// A bug.
     Internal {
         /// What went wrong.
@@ -173,7 +179,7 @@ impl Error {
     /// The process exit code for this error.
     pub fn code(&self) -> i32 {
         match self {
-            Error::Spec { .. } => exit::USAGE,
+            Error::Spec { .. } | Error::Usage { .. } => exit::USAGE,
             Error::Data { .. }
             | Error::Leakage { .. }
             | Error::Protocol { .. }
@@ -287,6 +293,7 @@ impl fmt::Display for Error {
                 splits.0, splits.1, first.0, first.1
             ),
             Error::Protocol { message } => write!(f, "{message}"),
+            Error::Usage { message } => write!(f, "{message}"),
             Error::Fit {
                 detector,
                 message,
