@@ -638,7 +638,7 @@ pub fn intervals(split: &str, points: &[IntervalPoint]) -> Result<Plot> {
     let rows = points.len().max(1);
     let height = 70 + 24 * rows as u32;
     let label_px: u32 = 250;
-    let svg = draw(&file, (640, height), |root| {
+    let svg = draw(&file, (560, height), |root| {
         let mut chart = ChartBuilder::on(root)
             .caption(format!("95 % intervals, {split} split"), ("sans-serif", 16))
             .margin(10)
