@@ -154,7 +154,7 @@ pub enum Command {
     #[command(after_help = example(EX_MAN))]
     Man {
         /// Write `anomark.1` and one `anomark-COMMAND.1` per command into this
-        /// directory (created if missing; an existing page is replaced).
+        /// directory (created if missing; refused if it already holds a page).
         #[arg(long, value_name = "DIR")]
         out: Option<PathBuf>,
     },

@@ -382,6 +382,15 @@ mod tests {
     }
 
     #[test]
+    fn a_usage_error_is_the_message_and_exit_code_2() {
+        let e = Error::Usage {
+            message: "`run` needs `--key PATH`".into(),
+        };
+        assert_eq!(e.to_string(), "`run` needs `--key PATH`");
+        assert_eq!(e.code(), exit::USAGE);
+    }
+
+    #[test]
     fn data_error_names_lines() {
         let e = Error::Data {
             path: "d.csv".into(),

@@ -206,9 +206,15 @@ fn choose_label(
             };
             let n = counts(&cols[i]).len();
             if n != 2 {
+                let sorted = if n < 2 && rows_note.starts_with("the first") {
+                    "; `init` reads no further, so if the file is sorted by this column, \
+                     shuffle its rows first or write the label by hand"
+                } else {
+                    ""
+                };
                 return Err(usage(format!(
                     "`{file}`: the label column `{name}` has {n} distinct value(s) in {rows_note}; \
-                     anomark needs exactly two, one for normal rows and one for known anomalies"
+                     anomark needs exactly two, one for normal rows and one for known anomalies{sorted}"
                 )));
             }
             note.push(format!("the label column `{name}` was given (--label)"));

@@ -178,6 +178,18 @@ pub fn run(request: &Request) -> Result<Outcome> {
                 .map_err(|e| Error::internal(format!("man page is not UTF-8: {e}")))?
         }
         Request::Man { out: Some(dir) } => {
+            // Like every output of anomark, a page that exists is not overwritten.
+            if let Ok(entries) = std::fs::read_dir(dir) {
+                for e in entries.flatten() {
+                    let name = e.file_name().to_string_lossy().into_owned();
+                    if name.starts_with("anomark") && name.ends_with(".1") {
+                        return Err(Error::Output {
+                            path: e.path(),
+                            message: "already exists; `anomark man` never overwrites a page".into(),
+                        });
+                    }
+                }
+            }
             std::fs::create_dir_all(dir).map_err(|e| Error::io(dir, "creating", e))?;
             clap_mangen::generate_to(cli::command(), dir)
                 .map_err(|e| Error::io(dir, "writing man pages into", e))?;

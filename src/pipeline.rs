@@ -53,7 +53,8 @@ pub fn selection_rule(m: SelectionMetric) -> String {
 pub struct RunOptions {
     /// The spec file.
     pub spec: PathBuf,
-    /// The private key.
+    /// The private key (empty when none was given: `anomark::run` then
+    /// refuses before reading anything and says how to make one).
     pub key: PathBuf,
     /// The output directory (else the spec's `output`).
     pub out: Option<PathBuf>,

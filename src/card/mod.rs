@@ -327,6 +327,36 @@ mod tests {
     use super::*;
 
     #[test]
+    fn the_interval_figure_is_deterministic_escapes_names_and_draws_each_row() {
+        let points = |name: &str| {
+            vec![
+                plots::IntervalPoint {
+                    metric: "precision".into(),
+                    candidate: name.into(),
+                    chosen: true,
+                    value: 0.6,
+                    interval: Some((0.357, 0.802)),
+                },
+                plots::IntervalPoint {
+                    metric: "F1".into(),
+                    candidate: "other".into(),
+                    chosen: false,
+                    value: 0.4,
+                    interval: None,
+                },
+            ]
+        };
+        let a = plots::intervals("test", &points("<script>x</script>")).unwrap();
+        let b = plots::intervals("test", &points("<script>x</script>")).unwrap();
+        assert_eq!(a.svg, b.svg);
+        assert_eq!(a.file, "plot-test-intervals.svg");
+        assert!(!a.svg.contains("<script>"));
+        assert!(a.svg.contains("&lt;script&gt;"));
+        // One dot per point, one bar for the point with an interval.
+        assert_eq!(a.svg.matches("<circle").count(), 2, "{}", a.svg);
+    }
+
+    #[test]
     fn markdown_escape_neutralises_markup() {
         assert_eq!(
             escape_md("<script>alert(1)</script> | *x*"),

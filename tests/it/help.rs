@@ -82,4 +82,9 @@ fn completions_for_four_shells_and_the_man_page() {
         assert!(text.contains(".TH "), "{page}");
     }
     assert!(d.read("man1/anomark-run.1").contains("keygen"));
+    // Pages are never overwritten.
+    Case::new()
+        .file("man1/anomark.1", "mine")
+        .args(["man", "--out", "man1"])
+        .fails(4, &["anomark.1", "already exists"]);
 }
