@@ -14,7 +14,7 @@ use crate::Request;
 
 /// Validate density-based anomaly detectors by a declared protocol and publish signed model cards.
 #[derive(Debug, Parser)]
-#[command(name = "anomark", version, about, long_about = None)]
+#[command(name = "anomark", version, about, long_about = None, after_help = example(EX_INIT))]
 pub struct Args {
     /// What to do.
     #[command(subcommand)]

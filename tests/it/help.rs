@@ -21,6 +21,12 @@ fn every_help_ends_with_an_example_from_the_readme() {
         .collect();
     listed.sort();
     assert_eq!(names, listed, "a command without an example");
+    // `anomark --help` itself ends with the first step on one's own data.
+    let d = Case::new().args(["--help"]).success();
+    assert_eq!(
+        d.stdout.trim_end().lines().last().unwrap().trim(),
+        anomark::cli::EX_INIT
+    );
     for (name, example) in anomark::cli::EXAMPLES {
         let d = Case::new().args([name, "--help"]).success();
         let last = d.stdout.trim_end().lines().last().unwrap().trim();
