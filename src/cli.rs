@@ -5,6 +5,7 @@
 use std::path::PathBuf;
 
 use clap::{Parser, Subcommand};
+use clap_complete::Shell;
 
 use crate::pipeline::RunOptions;
 use crate::progress::Progress;
@@ -13,7 +14,7 @@ use crate::Request;
 
 /// Validate density-based anomaly detectors by a declared protocol and publish signed model cards.
 #[derive(Debug, Parser)]
-#[command(name = "anomark", version, about, long_about = None)]
+#[command(name = "anomark", version, about, long_about = None, after_help = example(EX_INIT))]
 pub struct Args {
     /// What to do.
     #[command(subcommand)]
@@ -23,13 +24,32 @@ pub struct Args {
 /// The subcommands.
 #[derive(Debug, Subcommand)]
 pub enum Command {
+    /// Write a first spec for a CSV or Parquet file: features, label, id,
+    /// a seeded split, both Gaussian detectors and a card to fill in.
+    #[command(after_help = example(EX_INIT))]
+    Init {
+        /// The data file (`.csv` or `.parquet`); its header and first 10,000 rows are read.
+        data: PathBuf,
+        /// The label column (default: guessed: a column with two values, preferring a
+        /// name such as `label`, `class` or `diagnosis`).
+        #[arg(long, value_name = "COLUMN")]
+        label: Option<String>,
+        /// The label value that marks a known anomaly (default: the rarer value).
+        #[arg(long, value_name = "VALUE")]
+        anomaly: Option<String>,
+        /// Where to write the spec (never overwritten; default: stdout).
+        #[arg(long, value_name = "SPEC")]
+        out: Option<PathBuf>,
+    },
     /// Run a spec: split, fit, choose on validation, open the test set once, write a signed card.
+    #[command(after_help = example(EX_RUN))]
     Run {
         /// The spec file (YAML).
         spec: PathBuf,
-        /// The Ed25519 private key (PKCS#8 PEM) that signs the run.
+        /// The Ed25519 private key (PKCS#8 PEM) that signs the run; make one with
+        /// `anomark keygen --private key.pem --public key.pub.pem`.
         #[arg(long, value_name = "PATH")]
-        key: PathBuf,
+        key: Option<PathBuf>,
         /// The run directory to create (default: the spec's `output`).
         #[arg(long, value_name = "DIR")]
         out: Option<PathBuf>,
@@ -52,6 +72,7 @@ pub enum Command {
     },
     /// Score new data with a run's chosen detector, transforms and threshold:
     /// every row with its score, its flag and the run's manifest hash.
+    #[command(after_help = example(EX_SCORE))]
     Score {
         /// The run directory.
         dir: PathBuf,
@@ -72,6 +93,7 @@ pub enum Command {
     },
     /// Check the spec and the data without fitting anything: exit 0 when fine,
     /// 1 when problems were found, 2 for a usage or spec error.
+    #[command(after_help = example(EX_CHECK))]
     Check {
         /// The spec file (YAML).
         spec: PathBuf,
@@ -81,6 +103,7 @@ pub enum Command {
     },
     /// Check a run directory's signature and every file's hash; with `--data`,
     /// also recompute it from the spec and data and compare every number.
+    #[command(after_help = example(EX_VERIFY))]
     Verify {
         /// The run directory.
         dir: PathBuf,
@@ -96,6 +119,7 @@ pub enum Command {
         spec: Option<PathBuf>,
     },
     /// Make a new Ed25519 key pair.
+    #[command(after_help = example(EX_KEYGEN))]
     Keygen {
         /// Where to write the private key (PKCS#8 PEM, mode 0600).
         #[arg(long, value_name = "PATH")]
@@ -105,10 +129,12 @@ pub enum Command {
         public: PathBuf,
     },
     /// Print the JSON Schema of the spec.
+    #[command(after_help = example(EX_SCHEMA))]
     Schema,
     /// Compare two run directories: inputs, spec, splits, features, parameters,
     /// thresholds, metric deltas, and a paired test comparison when both opened
     /// the same test rows.
+    #[command(after_help = example(EX_DIFF))]
     Diff {
         /// The earlier run directory.
         old: PathBuf,
@@ -118,11 +144,85 @@ pub enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Print a shell completion script.
+    #[command(after_help = example(EX_COMPLETIONS))]
+    Completions {
+        /// The shell.
+        shell: Shell,
+    },
+    /// Print the man page (roff), or write one page per command into a directory.
+    #[command(after_help = example(EX_MAN))]
+    Man {
+        /// Write `anomark.1` and one `anomark-COMMAND.1` per command into this
+        /// directory (created if missing; refused if it already holds a page).
+        #[arg(long, value_name = "DIR")]
+        out: Option<PathBuf>,
+    },
+}
+
+/// The example closing `anomark init --help` (also in the README).
+pub const EX_INIT: &str = "anomark init readings.csv --out spec.yaml";
+/// The example closing `anomark run --help` (also in the README).
+pub const EX_RUN: &str = "anomark run spec.yaml --key key.pem --out runs/r1 --open-test --json";
+/// The example closing `anomark score --help` (also in the README).
+pub const EX_SCORE: &str = "anomark score runs/r1 shift.csv --out shift-scored.csv --json";
+/// The example closing `anomark check --help` (also in the README).
+pub const EX_CHECK: &str = "anomark check spec.yaml";
+/// The example closing `anomark verify --help` (also in the README).
+pub const EX_VERIFY: &str = "anomark verify runs/r1 --pubkey key.pub.pem";
+/// The example closing `anomark keygen --help` (also in the README).
+pub const EX_KEYGEN: &str = "anomark keygen --private key.pem --public key.pub.pem";
+/// The example closing `anomark schema --help` (also in the README).
+pub const EX_SCHEMA: &str = "anomark schema > anomark-spec.schema.json";
+/// The example closing `anomark diff --help` (also in the README).
+pub const EX_DIFF: &str = "anomark diff runs/r1 runs/r2";
+/// The example closing `anomark completions --help` (also in the README).
+pub const EX_COMPLETIONS: &str =
+    "anomark completions bash > ~/.local/share/bash-completion/completions/anomark";
+/// The example closing `anomark man --help` (also in the README).
+pub const EX_MAN: &str = "anomark man --out man/man1";
+
+/// Every command's closing example, by command name.
+pub const EXAMPLES: [(&str, &str); 10] = [
+    ("init", EX_INIT),
+    ("run", EX_RUN),
+    ("score", EX_SCORE),
+    ("check", EX_CHECK),
+    ("verify", EX_VERIFY),
+    ("keygen", EX_KEYGEN),
+    ("schema", EX_SCHEMA),
+    ("diff", EX_DIFF),
+    ("completions", EX_COMPLETIONS),
+    ("man", EX_MAN),
+];
+
+fn example(line: &'static str) -> String {
+    format!("Example:\n  {line}")
+}
+
+/// The clap command, for completions and man pages.
+pub fn command() -> clap::Command {
+    <Args as clap::CommandFactory>::command()
 }
 
 impl From<Args> for Request {
     fn from(args: Args) -> Self {
         match args.command {
+            Command::Init {
+                data,
+                label,
+                anomaly,
+                out,
+            } => Request::Init {
+                opts: crate::init::InitOptions {
+                    data,
+                    label,
+                    anomaly,
+                    out,
+                },
+            },
+            Command::Completions { shell } => Request::Completions { shell },
+            Command::Man { out } => Request::Man { out },
             Command::Run {
                 spec,
                 key,
@@ -135,7 +235,9 @@ impl From<Args> for Request {
             } => Request::Run {
                 opts: RunOptions {
                     spec,
-                    key,
+                    // No key: `run` refuses before reading anything and says
+                    // how to make one (an empty path stands for none).
+                    key: key.unwrap_or_default(),
                     out,
                     templates,
                     no_wall_clock,

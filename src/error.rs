@@ -171,6 +171,12 @@ pub enum Error {
         /// Each difference, in the order found.
         problems: Vec<String>,
     },
+    /// The command line asks for something anomark cannot do as asked (a
+    /// missing option, or `init` unable to decide without more information).
+    Usage {
+        /// What is missing and how to give it.
+        message: String,
+    },
     /// A bug.
     Internal {
         /// What went wrong.
@@ -182,7 +188,7 @@ impl Error {
     /// The process exit code for this error.
     pub fn code(&self) -> i32 {
         match self {
-            Error::Spec { .. } => exit::USAGE,
+            Error::Spec { .. } | Error::Usage { .. } => exit::USAGE,
             Error::Data { .. }
             | Error::Leakage { .. }
             | Error::Protocol { .. }
@@ -297,6 +303,7 @@ impl fmt::Display for Error {
                 splits.0, splits.1, first.0, first.1
             ),
             Error::Protocol { message } => write!(f, "{message}"),
+            Error::Usage { message } => write!(f, "{message}"),
             Error::Fit {
                 detector,
                 message,
@@ -395,6 +402,15 @@ mod tests {
             e.to_string(),
             "spec.yaml:14:7: field `split.protocol.seed`: expected an integer, found `seven`\n   |\n14 |   seed: seven\n   |       ^"
         );
+        assert_eq!(e.code(), exit::USAGE);
+    }
+
+    #[test]
+    fn a_usage_error_is_the_message_and_exit_code_2() {
+        let e = Error::Usage {
+            message: "`run` needs `--key PATH`".into(),
+        };
+        assert_eq!(e.to_string(), "`run` needs `--key PATH`");
         assert_eq!(e.code(), exit::USAGE);
     }
 

@@ -23,6 +23,7 @@ pub mod detect;
 pub mod diff;
 pub mod error;
 pub mod features;
+pub mod init;
 pub mod metrics;
 pub mod output;
 pub mod pipeline;
@@ -43,6 +44,21 @@ use std::path::PathBuf;
 /// One thing the user asked for.
 #[derive(Debug, Clone)]
 pub enum Request {
+    /// Write a first spec for a data file.
+    Init {
+        /// What to read and where to write.
+        opts: init::InitOptions,
+    },
+    /// Print a shell completion script.
+    Completions {
+        /// The shell.
+        shell: clap_complete::Shell,
+    },
+    /// Print the man page, or write every page into a directory.
+    Man {
+        /// The directory for the pages (else the main page on stdout).
+        out: Option<PathBuf>,
+    },
     /// Run a spec.
     Run {
         /// What to run.
@@ -135,6 +151,58 @@ pub fn run(request: &Request) -> Result<Outcome> {
             } else {
                 check::render_text(&report)
             }
+        }
+        Request::Init { opts } => {
+            let text = init::init(opts)?;
+            match &opts.out {
+                Some(out) => format!(
+                    "wrote: {}\nnext: fill in its card, then `anomark check {}`\n",
+                    out.display(),
+                    out.display()
+                ),
+                None => text,
+            }
+        }
+        Request::Completions { shell } => {
+            let mut buf = Vec::new();
+            clap_complete::generate(*shell, &mut cli::command(), "anomark", &mut buf);
+            String::from_utf8(buf)
+                .map_err(|e| Error::internal(format!("completion script is not UTF-8: {e}")))?
+        }
+        Request::Man { out: None } => {
+            let mut buf = Vec::new();
+            clap_mangen::Man::new(cli::command())
+                .render(&mut buf)
+                .map_err(|e| Error::internal(format!("rendering the man page: {e}")))?;
+            String::from_utf8(buf)
+                .map_err(|e| Error::internal(format!("man page is not UTF-8: {e}")))?
+        }
+        Request::Man { out: Some(dir) } => {
+            // Like every output of anomark, a page that exists is not overwritten.
+            if let Ok(entries) = std::fs::read_dir(dir) {
+                for e in entries.flatten() {
+                    let name = e.file_name().to_string_lossy().into_owned();
+                    if name.starts_with("anomark") && name.ends_with(".1") {
+                        return Err(Error::Output {
+                            path: e.path(),
+                            message: "already exists; `anomark man` never overwrites a page".into(),
+                        });
+                    }
+                }
+            }
+            std::fs::create_dir_all(dir).map_err(|e| Error::io(dir, "creating", e))?;
+            clap_mangen::generate_to(cli::command(), dir)
+                .map_err(|e| Error::io(dir, "writing man pages into", e))?;
+            format!("wrote: man pages into {}\n", dir.display())
+        }
+        Request::Run { opts, .. } if opts.key.as_os_str().is_empty() => {
+            return Err(Error::Usage {
+                message: "`anomark run` needs `--key PATH`, the Ed25519 private key that signs \
+                          the run; make a key pair once with `anomark keygen --private key.pem \
+                          --public key.pub.pem` (keep key.pem private, share key.pub.pem with \
+                          whoever verifies), then `anomark run SPEC --key key.pem`"
+                    .into(),
+            })
         }
         Request::Run { opts, json } => {
             let s = pipeline::run(opts)?;

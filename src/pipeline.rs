@@ -53,7 +53,8 @@ pub fn selection_rule(m: SelectionMetric) -> String {
 pub struct RunOptions {
     /// The spec file.
     pub spec: PathBuf,
-    /// The private key.
+    /// The private key (empty when none was given: `anomark::run` then
+    /// refuses before reading anything and says how to make one).
     pub key: PathBuf,
     /// The output directory (else the spec's `output`).
     pub out: Option<PathBuf>,
@@ -208,6 +209,150 @@ fn fmt_ci(ci: Option<crate::metrics::Interval>) -> String {
     ci.map_or("n/a".into(), |ci| format!("{:.4}–{:.4}", ci.low, ci.high))
 }
 
+/// A value and one interval for a compact table cell (three decimals in the
+/// interval: the compact tables show each value once and one interval).
+fn cell(v: Option<f64>, ci: Option<crate::metrics::Interval>) -> crate::card::Cell {
+    crate::card::Cell {
+        value: fmt_rate(v),
+        ci: match (v, ci) {
+            (Some(_), Some(ci)) => format!("{:.3}–{:.3}", ci.low, ci.high),
+            _ => String::new(),
+        },
+    }
+}
+
+/// The chosen candidate's answer: its numbers on test (or on validation
+/// while the test split is sealed), τ, one sentence in the spec's terms and
+/// the interval figure of every candidate on that split.
+fn answer(plan: &Plan, rec: &RunRecord) -> Result<crate::card::Answer> {
+    use crate::card::{Answer, AnswerMetric};
+    let chosen = rec
+        .candidates
+        .iter()
+        .find(|c| c.chosen)
+        .ok_or_else(|| Error::internal("no candidate is chosen"))?;
+    let (split, m) = match &chosen.test {
+        Some(t) if rec.test_opened => ("test", t),
+        _ => ("validation", &chosen.validation),
+    };
+    let sealed = split == "validation";
+    let metrics = vec![
+        AnswerMetric {
+            name: "precision".into(),
+            cell: cell(m.precision, m.precision_95.wilson),
+            method: "Wilson score".into(),
+        },
+        AnswerMetric {
+            name: "recall".into(),
+            cell: cell(m.recall, m.recall_95.wilson),
+            method: "Wilson score".into(),
+        },
+        AnswerMetric {
+            name: "F1".into(),
+            cell: cell(m.f1, m.bootstrap_95.f1),
+            method: "stratified bootstrap".into(),
+        },
+    ];
+    let (anomaly, normal) = match &plan.label {
+        Some(l) => (format!(" (“{}”)", l.anomaly), format!(" (“{}”)", l.normal)),
+        None => (String::new(), String::new()),
+    };
+    let c = &m.confusion;
+    let known = c.tp + c.fn_;
+    let flagged = c.tp + c.fp;
+    let second = if flagged == 0 {
+        "no row was flagged".to_string()
+    } else {
+        format!(
+            "{} of the {flagged} flagged row{} {} normal{normal}",
+            c.fp,
+            if flagged == 1 { "" } else { "s" },
+            if c.fp == 1 { "was" } else { "were" }
+        )
+    };
+    let sentence = format!(
+        "Of {known} known anomal{}{anomaly} in the {split} split, {} {} flagged; {second}.",
+        if known == 1 { "y" } else { "ies" },
+        c.tp,
+        if c.tp == 1 { "was" } else { "were" },
+    );
+    let mut points = vec![];
+    for (metric, get) in [("precision", 0usize), ("recall", 1), ("F1", 2)] {
+        for cand in &rec.candidates {
+            let cm = if sealed {
+                Some(&cand.validation)
+            } else {
+                cand.test.as_ref()
+            };
+            let Some(cm) = cm else { continue };
+            let (v, ci) = match get {
+                0 => (cm.precision, cm.precision_95.wilson),
+                1 => (cm.recall, cm.recall_95.wilson),
+                _ => (cm.f1, cm.bootstrap_95.f1),
+            };
+            if let Some(v) = v {
+                points.push(plots::IntervalPoint {
+                    metric: metric.into(),
+                    candidate: cand.name.clone(),
+                    chosen: cand.chosen,
+                    value: v,
+                    interval: ci.map(|i| (i.low, i.high)),
+                });
+            }
+        }
+    }
+    let figure = if points.is_empty() {
+        None
+    } else {
+        Some(plots::intervals(split, &points)?)
+    };
+    Ok(Answer {
+        detector: chosen.name.clone(),
+        split: split.into(),
+        sealed,
+        metrics,
+        tau: format!("{:.6}", chosen.tau),
+        ln_epsilon: format!("{:.6}", chosen.ln_epsilon),
+        sentence,
+        figure,
+    })
+}
+
+/// Both proportion intervals of every candidate's precision, recall and
+/// false-positive rate, on validation and (when opened) test.
+fn interval_details(rec: &RunRecord) -> Vec<crate::card::IntervalDetail> {
+    let mut out = vec![];
+    for (split, test) in [("validation", false), ("test", true)] {
+        for c in &rec.candidates {
+            let m = if test {
+                c.test.as_ref()
+            } else {
+                Some(&c.validation)
+            };
+            let Some(m) = m else { continue };
+            for (metric, v, ci) in [
+                ("precision", m.precision, &m.precision_95),
+                ("recall", m.recall, &m.recall_95),
+                (
+                    "false-positive rate",
+                    m.false_positive_rate,
+                    &m.false_positive_rate_95,
+                ),
+            ] {
+                out.push(crate::card::IntervalDetail {
+                    split: split.into(),
+                    candidate: c.name.clone(),
+                    metric: metric.into(),
+                    value: fmt_rate(v),
+                    wilson: fmt_ci(ci.wilson),
+                    clopper_pearson: fmt_ci(ci.clopper_pearson),
+                });
+            }
+        }
+    }
+    out
+}
+
 fn metric_row(name: &str, chosen: bool, m: &Metrics) -> MetricRow {
     let prop = |v: Option<f64>, ci: &crate::metrics::ProportionIntervals| match v {
         Some(v) => format!(
@@ -240,6 +385,12 @@ fn metric_row(name: &str, chosen: bool, m: &Metrics) -> MetricRow {
         balanced_accuracy: fmt_rate(m.balanced_accuracy),
         specificity: fmt_rate(m.specificity),
         accuracy: fmt_rate(m.accuracy),
+        precision_cell: cell(m.precision, m.precision_95.wilson),
+        recall_cell: cell(m.recall, m.recall_95.wilson),
+        false_positive_rate_cell: cell(m.false_positive_rate, m.false_positive_rate_95.wilson),
+        f1_cell: cell(m.f1, m.bootstrap_95.f1),
+        average_precision_cell: cell(m.average_precision, m.bootstrap_95.average_precision),
+        roc_auc_cell: cell(m.roc_auc, m.bootstrap_95.roc_auc),
     }
 }
 
@@ -711,7 +862,7 @@ fn execute(
     run_json.push(b'\n');
     files.add("run.json", run_json);
     files.add(SPEC_COPY, plan.spec_bytes.clone());
-    let mut ctx = card_context(&plan, &rec, &spec_file, fingerprint);
+    let mut ctx = card_context(&plan, &rec, &spec_file, fingerprint)?;
     let c = &candidates[chosen];
     let set = &fitted_sets[c.set];
     let params = c.model.params();
@@ -1061,7 +1212,7 @@ fn card_context(
     rec: &RunRecord,
     spec_file: &str,
     key_fingerprint: &str,
-) -> CardContext {
+) -> Result<CardContext> {
     let chosen = rec
         .candidates
         .iter()
@@ -1098,7 +1249,9 @@ fn card_context(
             }
         ),
     };
-    CardContext {
+    Ok(CardContext {
+        answer: answer(plan, rec)?,
+        interval_details: interval_details(rec),
         title: plan.card.title.clone(),
         owner: plan.card.owner.clone(),
         intended_use: plan.card.intended_use.clone(),
@@ -1214,7 +1367,7 @@ fn card_context(
                 fmt_f64(w.seconds)
             )
         }),
-    }
+    })
 }
 
 /// The card's paragraph on an external-command candidate.

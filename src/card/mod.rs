@@ -19,6 +19,67 @@ pub const BUILTIN: &[(&str, &str)] = &[
     ("card.html", include_str!("../../templates/card.html")),
 ];
 
+/// A value and its one 95 % interval, formatted for a compact table cell.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct Cell {
+    /// The value (four decimals), or `n/a`.
+    pub value: String,
+    /// The interval as `low–high` (three decimals), or empty when there is none.
+    pub ci: String,
+}
+
+/// One metric of one candidate with both proportion intervals, for the
+/// card's details section (the compact tables show the Wilson interval only).
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct IntervalDetail {
+    /// `validation` or `test`.
+    pub split: String,
+    /// Candidate name.
+    pub candidate: String,
+    /// The metric.
+    pub metric: String,
+    /// The value.
+    pub value: String,
+    /// The 95 % Wilson score interval.
+    pub wilson: String,
+    /// The 95 % Clopper-Pearson interval.
+    pub clopper_pearson: String,
+}
+
+/// One headline metric of the chosen detector.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct AnswerMetric {
+    /// `precision`, `recall` or `F1`.
+    pub name: String,
+    /// The value and its interval.
+    pub cell: Cell,
+    /// How the interval was made (`Wilson score`, `stratified bootstrap`).
+    pub method: String,
+}
+
+/// The card's first section: the answer before the evidence.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct Answer {
+    /// The chosen candidate.
+    pub detector: String,
+    /// The split the numbers come from: `test`, or `validation` while the test split is sealed.
+    pub split: String,
+    /// Whether the test split is still sealed.
+    pub sealed: bool,
+    /// Precision, recall and F1 with their 95 % intervals.
+    pub metrics: Vec<AnswerMetric>,
+    /// The operating threshold τ.
+    pub tau: String,
+    /// ln ε = −τ.
+    pub ln_epsilon: String,
+    /// One sentence in the spec's own terms: of N known anomalies, K were
+    /// flagged; M of the R flagged rows were normal.
+    pub sentence: String,
+    /// The interval figure (point and 95 % bar per metric and candidate),
+    /// shown inline in card.html.
+    pub figure: Option<plots::Plot>,
+}
+
 /// One row of a metrics table, all values formatted.
 #[derive(Debug, Clone, serde::Serialize)]
 pub struct MetricRow {
@@ -56,6 +117,18 @@ pub struct MetricRow {
     pub specificity: String,
     /// Accuracy (shown only beside its warning).
     pub accuracy: String,
+    /// Precision with its Wilson interval only, for the compact tables.
+    pub precision_cell: Cell,
+    /// Recall with its Wilson interval only.
+    pub recall_cell: Cell,
+    /// False-positive rate with its Wilson interval only.
+    pub false_positive_rate_cell: Cell,
+    /// F1 with its bootstrap interval.
+    pub f1_cell: Cell,
+    /// Average precision with its bootstrap interval.
+    pub average_precision_cell: Cell,
+    /// ROC AUC with its bootstrap interval.
+    pub roc_auc_cell: Cell,
 }
 
 /// A candidate's operating point.
@@ -124,6 +197,10 @@ pub struct FeatureSetRow {
 pub struct CardContext {
     /// Card title.
     pub title: String,
+    /// The answer first: chosen detector, its numbers, threshold and one sentence.
+    pub answer: Answer,
+    /// Every proportion interval of every candidate, both kinds (details section).
+    pub interval_details: Vec<IntervalDetail>,
     /// Owner.
     pub owner: String,
     /// Intended use.
@@ -251,6 +328,36 @@ pub fn render(ctx: &CardContext, overrides: Option<&Path>) -> Result<(String, St
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn the_interval_figure_is_deterministic_escapes_names_and_draws_each_row() {
+        let points = |name: &str| {
+            vec![
+                plots::IntervalPoint {
+                    metric: "precision".into(),
+                    candidate: name.into(),
+                    chosen: true,
+                    value: 0.6,
+                    interval: Some((0.357, 0.802)),
+                },
+                plots::IntervalPoint {
+                    metric: "F1".into(),
+                    candidate: "other".into(),
+                    chosen: false,
+                    value: 0.4,
+                    interval: None,
+                },
+            ]
+        };
+        let a = plots::intervals("test", &points("<script>x</script>")).unwrap();
+        let b = plots::intervals("test", &points("<script>x</script>")).unwrap();
+        assert_eq!(a.svg, b.svg);
+        assert_eq!(a.file, "plot-test-intervals.svg");
+        assert!(!a.svg.contains("<script>"));
+        assert!(a.svg.contains("&lt;script&gt;"));
+        // One dot per point, one bar for the point with an interval.
+        assert_eq!(a.svg.matches("<circle").count(), 2, "{}", a.svg);
+    }
 
     #[test]
     fn markdown_escape_neutralises_markup() {

@@ -669,6 +669,85 @@ pub fn feature_histogram(
     })
 }
 
+/// One metric of one candidate with its 95 % interval, for [`intervals`].
+#[derive(Debug, Clone)]
+pub struct IntervalPoint {
+    /// The metric, such as `precision`.
+    pub metric: String,
+    /// The candidate.
+    pub candidate: String,
+    /// Whether it is the chosen candidate (drawn in the marking colour).
+    pub chosen: bool,
+    /// The point value, in [0, 1].
+    pub value: f64,
+    /// The 95 % interval, when there is one.
+    pub interval: Option<(f64, f64)>,
+}
+
+/// The card's first figure: for each metric and candidate, the point value
+/// and its 95 % interval as a bar on a common 0 to 1 axis, one row each,
+/// metrics in the order given. Labels (candidate names come from the spec)
+/// are escaped by the SVG backend.
+pub fn intervals(split: &str, points: &[IntervalPoint]) -> Result<Plot> {
+    let file = format!("plot-{split}-intervals.svg");
+    let rows = points.len().max(1);
+    let height = 70 + 24 * rows as u32;
+    let label_px: u32 = 250;
+    let svg = draw(&file, (560, height), |root| {
+        let mut chart = ChartBuilder::on(root)
+            .caption(format!("95 % intervals, {split} split"), ("sans-serif", 16))
+            .margin(10)
+            .margin_left(label_px)
+            .x_label_area_size(30)
+            .build_cartesian_2d(0f64..1.0, 0f64..rows as f64)?;
+        chart
+            .configure_mesh()
+            .disable_y_mesh()
+            .disable_y_axis()
+            .x_labels(6)
+            .light_line_style(WHITE.mix(0.0))
+            .draw()?;
+        for (i, p) in points.iter().enumerate() {
+            let y = rows as f64 - i as f64 - 0.5;
+            let colour = if p.chosen { MARK } else { NORMAL };
+            if let Some((lo, hi)) = p.interval {
+                chart.draw_series(std::iter::once(PathElement::new(
+                    [(lo.clamp(0.0, 1.0), y), (hi.clamp(0.0, 1.0), y)],
+                    colour.stroke_width(3),
+                )))?;
+            }
+            chart.draw_series(std::iter::once(Circle::new(
+                (p.value.clamp(0.0, 1.0), y),
+                5,
+                colour.filled(),
+            )))?;
+            let (_, py) = chart.backend_coord(&(0.0, y));
+            let label = format!(
+                "{} · {}{}",
+                p.metric,
+                p.candidate,
+                if p.chosen { " (chosen)" } else { "" }
+            );
+            root.draw(&Text::new(
+                label,
+                (8, py - 6),
+                ("sans-serif", 13).into_font().color(&BLACK),
+            ))?;
+        }
+        Ok(())
+    })?;
+    Ok(Plot {
+        file,
+        title: format!("Intervals ({split})"),
+        caption: format!(
+            "Each metric of each candidate on the {split} split: the dot is the value, the bar \
+             its 95 % interval (Wilson score for precision and recall, the stratified bootstrap \
+             for F1); the chosen detector is drawn in red."
+        ),
+        svg,
+    })
+}
+
 #[cfg(test)]
 mod tests {
     /// Both ways to a quantile give the value of a plain selection, on

@@ -203,6 +203,76 @@ pub fn columns_of(path: &Path, format: Format) -> Result<Vec<(String, bool)>> {
     }
 }
 
+/// A bounded sample of one file, for `anomark init`: every column in file
+/// order with its first values as text (as the loader would read a label or
+/// id), and, where the file types the column as a number (Parquet), as numbers.
+#[derive(Debug, Clone)]
+pub struct Sample {
+    /// How many rows were read (at most the bound asked for).
+    pub rows: usize,
+    /// The columns, in file order.
+    pub columns: Vec<SampleColumn>,
+}
+
+/// One column of a [`Sample`].
+#[derive(Debug, Clone)]
+pub struct SampleColumn {
+    /// The column name.
+    pub name: String,
+    /// The values as text (`None` when missing): CSV fields as written,
+    /// Parquet values cast to text the way the loader casts a label.
+    pub text: Vec<Option<String>>,
+    /// The values as numbers when the file types the column as numeric
+    /// (Parquet); `None` for CSV, whose fields are typed by parsing them.
+    pub numbers: Option<Vec<Option<f64>>>,
+}
+
+/// Reads the header and at most `rows` first rows of a CSV or Parquet file.
+pub fn sample(path: &Path, format: Format, rows: usize) -> Result<Sample> {
+    let df = match format {
+        Format::Csv => CsvReadOptions::default()
+            .with_has_header(true)
+            .with_raise_if_empty(true)
+            .with_n_rows(Some(rows))
+            .with_infer_schema_length(Some(0))
+            .try_into_reader_with_file_path(Some(path.to_path_buf()))
+            .and_then(|r| r.finish())
+            .map_err(|e| csv_error(path, e))?,
+        Format::Parquet => {
+            let ppath = PlRefPath::try_from_path(path).map_err(|e| csv_error(path, e))?;
+            LazyFrame::scan_parquet(ppath, ScanArgsParquet::default())
+                .and_then(|lf| lf.limit(rows as IdxSize).collect())
+                .map_err(|e| csv_error(path, e))?
+        }
+    };
+    let mut columns = Vec::with_capacity(df.width());
+    for c in df.columns() {
+        let name = c.name().to_string();
+        let as_text = c.cast(&DataType::String).map_err(|e| csv_error(path, e))?;
+        let text = as_text
+            .str()
+            .map_err(|e| csv_error(path, e))?
+            .iter()
+            .map(|s| s.map(str::to_string))
+            .collect();
+        let numbers = if format == Format::Parquet && c.dtype().is_primitive_numeric() {
+            let n = c.cast(&DataType::Float64).map_err(|e| csv_error(path, e))?;
+            Some(n.f64().map_err(|e| csv_error(path, e))?.iter().collect())
+        } else {
+            None
+        };
+        columns.push(SampleColumn {
+            name,
+            text,
+            numbers,
+        });
+    }
+    Ok(Sample {
+        rows: df.height(),
+        columns,
+    })
+}
+
 /// Expands a source path: a file, a glob (`*`, `?`, `[`), or a directory
 /// (every `.parquet` file below it, skipping names that start with `.` or `_`,
 /// as distributed engines write them). Sorted, so the order is reproducible.

@@ -84,6 +84,15 @@ const HARNESS: &str = r#"<script>
     var s = f.querySelector("svg"), r = s ? s.getBoundingClientRect() : {width: 0, height: 0};
     out.push(f.getAttribute("data-plot") + " " + Math.round(r.width) + "x" + Math.round(r.height) + " " + (s ? s.querySelectorAll("*").length : 0));
   });
+  // Every details section open, so that its tables are measured too; then
+  // each table's width against the box it sits in (a wider table scrolls).
+  document.querySelectorAll("details").forEach(function (d) { d.open = true; });
+  document.querySelectorAll("table").forEach(function (t, i) {
+    var box = t.parentElement;
+    out.push("table " + i + " " + (t.scrollWidth - box.clientWidth));
+  });
+  var a = document.querySelector("figure.intervals svg"), ar = a ? a.getBoundingClientRect() : {width: 0, height: 0};
+  out.push("answer " + Math.round(ar.width) + "x" + Math.round(ar.height));
   out.push("overflow " + (document.documentElement.scrollWidth - window.innerWidth));
   var pre = document.createElement("pre");
   pre.id = "harness";
@@ -92,9 +101,9 @@ const HARNESS: &str = r#"<script>
 })();
 </script>"#;
 
-/// The probe page in a 375 px frame; copies the frame's report out.
-const PHONE: &str = r#"<!DOCTYPE html><html><body style="margin:0">
-<iframe id="f" src="probe.html" style="width:375px;height:3000px;border:0"></iframe>
+/// The probe page in a frame of `WIDTH` px; copies the frame's report out.
+const FRAMED: &str = r#"<!DOCTYPE html><html><body style="margin:0">
+<iframe id="f" src="probe.html" style="width:WIDTHpx;height:3000px;border:0"></iframe>
 <script>
 window.addEventListener("load", function () {
   var d = document.getElementById("f").contentDocument, p = document.createElement("pre");
@@ -178,8 +187,14 @@ fn card_renders_in_headless_chromium() {
     )
     .unwrap();
     let phone = out.join("phone.html");
-    std::fs::write(&phone, PHONE).unwrap();
-    for (page, width, min_px) in [(&probe, 1000, 300), (&phone, 375, 250)] {
+    std::fs::write(&phone, FRAMED.replace("WIDTH", "375")).unwrap();
+    let desktop = out.join("desktop.html");
+    std::fs::write(&desktop, FRAMED.replace("WIDTH", "1280")).unwrap();
+    for (page, width, min_px) in [
+        (&probe, 1000, 300),
+        (&desktop, 1280, 300),
+        (&phone, 375, 250),
+    ] {
         let (dom, stderr) = browse(
             &bin,
             &d.dir,
@@ -187,12 +202,37 @@ fn card_renders_in_headless_chromium() {
             &[
                 "--dump-dom".into(),
                 "--allow-file-access-from-files".into(),
-                "--window-size=1000,2000".into(),
+                if width > 1000 {
+                    "--window-size=1400,2000".into()
+                } else {
+                    "--window-size=1000,2000".into()
+                },
             ],
         );
         let report = harness_report(&dom)
             .unwrap_or_else(|| panic!("no harness report at {width} px; stderr: {stderr}"));
-        assert_eq!(report.len(), figures + 1, "{report:?}");
+        let tables: Vec<&String> = report.iter().filter(|l| l.starts_with("table ")).collect();
+        // Every table of the card (details included) is measured.
+        assert_eq!(tables.len(), html.matches("<table").count(), "{report:?}");
+        assert_eq!(report.len(), figures + tables.len() + 2, "{report:?}");
+        // At desktop width no table scrolls sideways; on a phone a wide
+        // table may scroll inside its own box, but the page does not.
+        if width >= 1000 {
+            for t in &tables {
+                let excess: i64 = t.rsplit(' ').next().unwrap().parse().unwrap();
+                assert!(excess <= 0, "{t} px wider than its box at {width} px");
+            }
+        }
+        let answer = &report[figures + tables.len()];
+        let (aw, ah) = answer
+            .trim_start_matches("answer ")
+            .split_once('x')
+            .map(|(w, h)| (w.parse::<f64>().unwrap(), h.parse::<f64>().unwrap()))
+            .unwrap();
+        assert!(
+            aw >= 150.0 && aw <= width as f64 && ah > 60.0,
+            "the interval figure at {width} px: {answer}"
+        );
         for line in &report[..figures] {
             let parts: Vec<&str> = line.split([' ', 'x']).collect();
             let (w, h, elements): (f64, f64, usize) = (
@@ -207,7 +247,7 @@ fn card_renders_in_headless_chromium() {
             );
             assert!(elements > 20, "{line}: the SVG is nearly empty");
         }
-        let overflow: i64 = report[figures]
+        let overflow: i64 = report[report.len() - 1]
             .trim_start_matches("overflow ")
             .parse()
             .unwrap();

@@ -123,3 +123,105 @@ fn feature_figures_escape_names_from_the_data() {
     assert!(!svg.contains(evil));
     assert!(svg.contains("&lt;script&gt;alert(1)&lt;/script&gt;"));
 }
+
+/// The 95 % Wilson score interval of k successes in n trials (Wilson, 1927,
+/// J. Am. Stat. Assoc. 22(158), 209–212; z = 1.959964, the 0.975 normal
+/// quantile), written out here from the published formula.
+fn wilson(k: f64, n: f64) -> (f64, f64) {
+    let z = 1.959964f64;
+    let p = k / n;
+    let centre = (p + z * z / (2.0 * n)) / (1.0 + z * z / n);
+    let half = z / (1.0 + z * z / n) * (p * (1.0 - p) / n + z * z / (4.0 * n * n)).sqrt();
+    (centre - half, centre + half)
+}
+
+#[test]
+fn the_card_answers_first_sealed_and_final() {
+    let case = standard(&rows(300, 16, 21));
+    let sealed = case
+        .clone()
+        .args([
+            "run",
+            "spec.yaml",
+            "--key",
+            "key.pem",
+            "--out",
+            "out",
+            "--no-wall-clock",
+        ])
+        .success();
+    let check = |d: &Done, split: &str| {
+        let run = d.json("out/run.json");
+        let chosen = run["candidates"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|c| c["chosen"] == true)
+            .unwrap()
+            .clone();
+        let m = &chosen[split];
+        let c = &m["confusion"];
+        let (tp, fp, fn_) = (
+            c["tp"].as_u64().unwrap(),
+            c["fp"].as_u64().unwrap(),
+            c["fn"].as_u64().unwrap(),
+        );
+        let html = d.read("out/card.html");
+        let md = d.read("out/card.md");
+        // The answer comes right under the title, before every other section.
+        let answer = html
+            .find("<section class=\"answer\"")
+            .expect("an answer section");
+        assert!(answer < html.find("<h2>").unwrap());
+        assert!(html.find("<h1>").unwrap() < answer);
+        assert!(md.find("**Chosen detector:").unwrap() < md.find("\n## ").unwrap());
+        let name = chosen["name"].as_str().unwrap();
+        assert!(html.contains(&format!("Chosen detector: <strong>{name}</strong>")));
+        // The threshold, as recorded.
+        let tau = format!("τ = {:.6}", chosen["tau"].as_f64().unwrap());
+        assert!(html.contains(&tau) && md.contains(&tau), "{tau}");
+        // The sentence in the spec's own label values, from the counts.
+        let flagged = tp + fp;
+        let sentence = format!(
+            "Of {} known anomalies (“anomaly”) in the {split} split, {tp} were flagged; \
+             {fp} of the {flagged} flagged rows were normal (“normal”).",
+            tp + fn_
+        );
+        assert!(md.contains(&sentence), "{sentence}\n{md}");
+        assert!(html.contains(&sentence), "{sentence}");
+        // Precision with its Wilson interval, checked against the formula.
+        let (lo, hi) = wilson(tp as f64, flagged as f64);
+        let cell = format!(
+            "{:.4}<span class=\"ci\">{lo:.3}–{hi:.3}</span>",
+            tp as f64 / flagged as f64
+        );
+        assert!(html.contains(&cell), "{cell}");
+        assert!(md.contains(&format!(
+            "| precision | {:.4} ({lo:.3}–{hi:.3}) | Wilson score |",
+            tp as f64 / flagged as f64
+        )));
+        // One interval per value in the tables; both kinds in the details.
+        assert!(
+            !html.contains("(W "),
+            "stacked intervals left in the tables"
+        );
+        assert!(html.contains("<details id=\"interval-details\">"));
+        assert!(md.contains("| Wilson 95 % | Clopper-Pearson 95 % |"));
+        // The interval figure sits beside the table, inline and self-contained.
+        let fig = html
+            .find("<figure class=\"intervals\"")
+            .expect("the interval figure");
+        assert!(fig < html.find("<h2>").unwrap());
+        assert!(html[fig..].contains("precision · "));
+        // The caution stays.
+        assert!(html.contains("not a substitute for inspections"));
+        (html, md)
+    };
+    let (html, _) = check(&sealed, "validation");
+    assert!(html.contains("The test split is sealed."));
+    std::fs::remove_dir_all(sealed.dir.join("out")).unwrap();
+    let d = case.run_spec().success();
+    let (html, _) = check(&d, "test");
+    assert!(!html.contains("The test split is sealed."));
+    assert!(html.contains("On the test split, opened once"));
+}

@@ -15,6 +15,8 @@ mod errors;
 mod examples;
 mod featuresets;
 mod fuzz;
+mod help;
+mod init;
 mod leakage;
 mod ledger;
 mod progress;
