@@ -278,6 +278,9 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
         }
     };
     output::check_target(&out)?;
+    if let Some(d) = &opts.templates {
+        card::check_overrides(d)?;
+    }
     let key = crate::sign::load_private(&opts.key)?;
     let fingerprint = crate::sign::fingerprint(&key.verifying_key());
     let from_run = record::relative_path(&out, &opts.spec);

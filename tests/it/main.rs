@@ -18,6 +18,7 @@ mod leakage;
 mod ledger;
 mod progress;
 mod recompute;
+mod refusals;
 mod schema;
 mod score;
 mod signing;
