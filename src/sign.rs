@@ -140,20 +140,87 @@ pub fn sign(key: &SigningKey, message: &[u8]) -> String {
     s
 }
 
-/// Checks a run directory: the signature over `manifest.json`, then every
-/// listed file's hash, then that no unlisted file is present. Every difference
-/// is reported, not only the first.
+/// What a run directory holds, read without following links: its regular
+/// files and its folders (relative paths with `/` separators, sorted), and
+/// everything else (links, fifos, devices) as a problem naming it.
+struct Entries {
+    files: Vec<String>,
+    folders: Vec<String>,
+    others: Vec<String>,
+}
+
+fn entries(dir: &Path) -> Result<Entries> {
+    fn walk(here: &Path, prefix: &str, out: &mut Entries) -> Result<()> {
+        let mut list = std::fs::read_dir(here)
+            .map_err(|e| Error::io(here, "listing", e))?
+            .map(|e| e.map_err(|e| Error::io(here, "listing", e)))
+            .collect::<Result<Vec<_>>>()?;
+        list.sort_by_key(|e| e.file_name());
+        for entry in list {
+            let name = format!("{prefix}{}", entry.file_name().to_string_lossy());
+            // `file_type` does not follow a link: a link is reported as one.
+            let kind = entry
+                .file_type()
+                .map_err(|e| Error::io(entry.path(), "reading the type of", e))?;
+            if kind.is_file() {
+                out.files.push(name);
+            } else if kind.is_dir() {
+                walk(&entry.path(), &format!("{name}/"), out)?;
+                out.folders.push(name);
+            } else if kind.is_symlink() {
+                out.others.push(format!(
+                    "`{name}` is a symbolic link; a signed run holds regular files only"
+                ));
+            } else {
+                out.others.push(format!(
+                    "`{name}` is not a regular file (a fifo, socket or device); \
+                     a signed run holds regular files only"
+                ));
+            }
+        }
+        Ok(())
+    }
+    let mut out = Entries {
+        files: vec![],
+        folders: vec![],
+        others: vec![],
+    };
+    walk(dir, "", &mut out)?;
+    out.files.sort();
+    out.folders.sort();
+    Ok(out)
+}
+
+/// Checks a run directory: that it holds regular files only (no link, no
+/// fifo, no folder the manifest does not cover), the signature over
+/// `manifest.json`, then every listed file's hash, then that no unlisted
+/// file is present. Every difference is reported, not only the first.
 pub fn verify_dir(dir: &Path, key: &VerifyingKey) -> Result<Manifest> {
+    let found = entries(dir)?;
+    let fail = |mut problems: Vec<String>| {
+        let mut all = found.others.clone();
+        all.append(&mut problems);
+        Error::Verify {
+            dir: dir.to_path_buf(),
+            problems: all,
+        }
+    };
+    // Neither the manifest nor its signature is read through a link or from
+    // anything but a regular file (a fifo would never end).
+    if [MANIFEST, SIGNATURE].iter().any(|n| {
+        found
+            .others
+            .iter()
+            .any(|o| o.starts_with(&format!("`{n}`")))
+    }) {
+        return Err(fail(vec![]));
+    }
     let read = |name: &str| -> Result<Vec<u8>> {
         let p = dir.join(name);
         std::fs::read(&p).map_err(|e| Error::io(p, "reading", e))
     };
     let manifest_bytes = read(MANIFEST)?;
     let sig_text = read(SIGNATURE)?;
-    let fail = |problems: Vec<String>| Error::Verify {
-        dir: dir.to_path_buf(),
-        problems,
-    };
     // Strict form: the base64 of 64 bytes and one newline, nothing else, so
     // that no byte of the file can change unnoticed.
     let body = sig_text
@@ -196,8 +263,15 @@ pub fn verify_dir(dir: &Path, key: &VerifyingKey) -> Result<Manifest> {
     }
     for (name, want) in &manifest.files {
         let p = dir.join(name);
-        if !p.is_file() {
-            problems.push(format!("`{name}` is listed in the manifest but missing"));
+        if found.files.binary_search(name).is_err() {
+            // A link or fifo in its place is already named above.
+            if !found
+                .others
+                .iter()
+                .any(|o| o.starts_with(&format!("`{name}`")))
+            {
+                problems.push(format!("`{name}` is listed in the manifest but missing"));
+            }
             continue;
         }
         let got = crate::audit::hash::file(&p)?;
@@ -208,14 +282,22 @@ pub fn verify_dir(dir: &Path, key: &VerifyingKey) -> Result<Manifest> {
             ));
         }
     }
-    for name in list_files(dir)? {
-        if name != MANIFEST && name != SIGNATURE && !manifest.files.contains_key(&name) {
+    for name in &found.files {
+        if name != MANIFEST && name != SIGNATURE && !manifest.files.contains_key(name) {
             problems.push(format!(
                 "`{name}` is present but not covered by the manifest"
             ));
         }
     }
-    if problems.is_empty() {
+    for folder in &found.folders {
+        let inside = format!("{folder}/");
+        if !manifest.files.keys().any(|n| n.starts_with(&inside)) {
+            problems.push(format!(
+                "`{folder}` is a folder the manifest does not cover"
+            ));
+        }
+    }
+    if problems.is_empty() && found.others.is_empty() {
         Ok(manifest)
     } else {
         Err(fail(problems))
