@@ -88,10 +88,7 @@ fn format_of(path: &Path, role: &str) -> Result<Format> {
 }
 
 fn polars_error(path: &Path, e: PolarsError) -> Error {
-    Error::Csv {
-        path: path.to_path_buf(),
-        message: e.to_string(),
-    }
+    crate::data::read_error(path, e)
 }
 
 /// The recorded run, as far as scoring needs it.

@@ -669,10 +669,7 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
         {
             continue;
         }
-        let err = |e: PolarsError| Error::Csv {
-            path: file.path.clone(),
-            message: e.to_string(),
-        };
+        let err = |e: PolarsError| crate::data::read_error(&file.path, e);
         let ppath = PlRefPath::try_from_path(&file.path).map_err(err)?;
         let lf = match file.format {
             Format::Csv => {

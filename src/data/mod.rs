@@ -167,7 +167,27 @@ impl Dataset {
     }
 }
 
-fn csv_error(path: &Path, e: PolarsError) -> Error {
+/// The error of a failed read of `path` by polars: a file that cannot be
+/// opened or read (missing, unreadable, a dangling or looping link) is a
+/// file problem ([`Error::Io`], exit 4) wherever polars wrapped it; anything
+/// else is the reader refusing the content.
+pub(crate) fn read_error(path: &Path, e: PolarsError) -> Error {
+    let mut inner = &e;
+    loop {
+        match inner {
+            PolarsError::Context { error, .. } | PolarsError::ExprContext { error, .. } => {
+                inner = error
+            }
+            PolarsError::IO { error, .. } => {
+                let source = match error.raw_os_error() {
+                    Some(code) => std::io::Error::from_raw_os_error(code),
+                    None => std::io::Error::new(error.kind(), error.to_string()),
+                };
+                return Error::io(path, "reading", source);
+            }
+            _ => break,
+        }
+    }
     Error::Csv {
         path: path.to_path_buf(),
         message: e.to_string(),
@@ -185,16 +205,16 @@ pub fn columns_of(path: &Path, format: Format) -> Result<Vec<(String, bool)>> {
             .with_infer_schema_length(Some(0))
             .try_into_reader_with_file_path(Some(path.to_path_buf()))
             .and_then(|r| r.finish())
-            .map_err(|e| csv_error(path, e))?
+            .map_err(|e| read_error(path, e))?
             .get_column_names()
             .iter()
             .map(|n| (n.to_string(), true))
             .collect()),
         Format::Parquet => {
-            let ppath = PlRefPath::try_from_path(path).map_err(|e| csv_error(path, e))?;
+            let ppath = PlRefPath::try_from_path(path).map_err(|e| read_error(path, e))?;
             let mut lf = LazyFrame::scan_parquet(ppath, ScanArgsParquet::default())
-                .map_err(|e| csv_error(path, e))?;
-            let schema = lf.collect_schema().map_err(|e| csv_error(path, e))?;
+                .map_err(|e| read_error(path, e))?;
+            let schema = lf.collect_schema().map_err(|e| read_error(path, e))?;
             Ok(schema
                 .iter()
                 .map(|(n, t)| (n.to_string(), t.is_primitive_numeric()))
@@ -376,7 +396,7 @@ fn read_csv_polars(
         .with_infer_schema_length(Some(0))
         .try_into_reader_with_file_path(Some(path.to_path_buf()))
         .and_then(|r| r.finish())
-        .map_err(|e| csv_error(path, e))?;
+        .map_err(|e| read_error(path, e))?;
     let present: Vec<String> = header
         .get_column_names()
         .iter()
@@ -415,7 +435,7 @@ fn read_csv_polars(
                 .with_infer_schema_length(Some(0))
                 .try_into_reader_with_file_path(Some(path.to_path_buf()))
                 .and_then(|r| r.finish())
-                .map_err(|e| csv_error(path, e))?;
+                .map_err(|e| read_error(path, e))?;
             (df, true)
         }
     };
@@ -455,13 +475,13 @@ fn read_parquet(
     text: &[&Column],
     types: &mut BTreeMap<String, (DataType, String)>,
 ) -> Result<FileFrame> {
-    let ppath = PlRefPath::try_from_path(path).map_err(|e| csv_error(path, e))?;
+    let ppath = PlRefPath::try_from_path(path).map_err(|e| read_error(path, e))?;
     let lf = LazyFrame::scan_parquet(ppath, ScanArgsParquet::default())
-        .map_err(|e| csv_error(path, e))?;
+        .map_err(|e| read_error(path, e))?;
     let schema = lf
         .clone()
         .collect_schema()
-        .map_err(|e| csv_error(path, e))?;
+        .map_err(|e| read_error(path, e))?;
     let present: Vec<String> = schema.iter_names().map(|s| s.to_string()).collect();
     let file = shown(path, plan);
     for c in numeric.iter().chain(text) {
@@ -509,7 +529,10 @@ fn read_parquet(
                 .map(|c| col(c.name.as_str()).cast(DataType::String)),
         )
         .collect();
-    let df = lf.select(exprs).collect().map_err(|e| csv_error(path, e))?;
+    let df = lf
+        .select(exprs)
+        .collect()
+        .map_err(|e| read_error(path, e))?;
     typed_frame(&df, path, numeric, text)
 }
 
@@ -535,7 +558,7 @@ fn f64_values(df: &DataFrame, path: &Path, name: &str) -> Result<Vec<Option<f64>
     let c = df
         .column(name)
         .and_then(|c| c.f64().cloned())
-        .map_err(|e| csv_error(path, e))?;
+        .map_err(|e| read_error(path, e))?;
     Ok(c.iter().collect())
 }
 
@@ -543,7 +566,7 @@ fn text_values(df: &DataFrame, path: &Path, name: &str) -> Result<Vec<Option<Str
     let c = df
         .column(name)
         .and_then(|c| c.str().cloned())
-        .map_err(|e| csv_error(path, e))?;
+        .map_err(|e| read_error(path, e))?;
     Ok(c.iter().map(|s| s.map(str::to_string)).collect())
 }
 
@@ -905,6 +928,22 @@ mod tests {
         )
         .unwrap();
         crate::spec::load(&spec).unwrap()
+    }
+
+    #[test]
+    fn an_io_error_from_the_reader_is_a_file_problem() {
+        // A permission refusal, even inside polars' context wrapping, is a
+        // file problem (README's exit-code table), not a data refusal.
+        let io = PolarsError::from(std::io::Error::new(
+            std::io::ErrorKind::PermissionDenied,
+            "permission denied",
+        ));
+        let wrapped = io.context("reading the header".into());
+        let e = read_error(Path::new("d.csv"), wrapped);
+        assert_eq!(e.code(), crate::error::exit::IO, "{e}");
+        assert!(e.to_string().starts_with("reading `d.csv`: "), "{e}");
+        let e = read_error(Path::new("d.csv"), PolarsError::ComputeError("bad".into()));
+        assert_eq!(e.code(), crate::error::exit::DATA, "{e}");
     }
 
     /// The plain-CSV reader and polars' reader agree bit for bit on random

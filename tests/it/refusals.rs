@@ -1,7 +1,7 @@
 //! Bad inputs a hostile user would try: each is refused with the documented
 //! exit code and a message that names the right thing.
 
-use crate::util::{rows, standard, Case};
+use crate::util::{rows, spec, standard, Case, PROTOCOL};
 
 /// `--templates` naming a folder that does not exist is a file problem
 /// (exit 4), not silently the built-in card.
@@ -129,4 +129,61 @@ fn score_with_pubkey_refuses_a_run_holding_a_symlink() {
         ])
         .fails(1, &["`card.md` is a symbolic link"]);
     assert!(!d.dir.join("scored.csv").exists());
+}
+
+/// `score` given a data file that does not exist: a file problem (exit 4,
+/// README's table), not a data refusal.
+#[test]
+fn score_with_a_missing_data_file_is_a_file_problem() {
+    let case = signed_run();
+    case.clone()
+        .args(["score", "out", "nowhere.csv", "--out", "scored.csv"])
+        .fails(4, &["nowhere.csv", "No such file"]);
+}
+
+/// A folder of Parquet parts with a dangling `.parquet` link: a file problem
+/// naming the link.
+#[test]
+fn dangling_parquet_link_in_a_folder_is_a_file_problem() {
+    let case = Case::new()
+        .file(
+            "spec.yaml",
+            spec(&["a", "b", "c"], PROTOCOL).replace("path: data.csv", "path: parts"),
+        )
+        .keys();
+    crate::sources::parquet(&case.path("parts/part-0.parquet"), &rows(300, 10, 3), false);
+    std::os::unix::fs::symlink("gone.parquet", case.path("parts/part-1.parquet")).unwrap();
+    let d = case.run_spec().fails(4, &["part-1.parquet"]);
+    assert!(!d.dir.join("out").exists());
+}
+
+/// A `.parquet` link that points at itself: a file problem naming it.
+#[test]
+fn looping_parquet_link_in_a_folder_is_a_file_problem() {
+    let case = Case::new()
+        .file(
+            "spec.yaml",
+            spec(&["a", "b", "c"], PROTOCOL).replace("path: data.csv", "path: parts"),
+        )
+        .keys();
+    crate::sources::parquet(&case.path("parts/part-0.parquet"), &rows(300, 10, 3), false);
+    std::os::unix::fs::symlink("part-1.parquet", case.path("parts/part-1.parquet")).unwrap();
+    let d = case.run_spec().fails(4, &["part-1.parquet"]);
+    assert!(!d.dir.join("out").exists());
+}
+
+/// A data file without read permission is a file problem (exit 4). Skipped
+/// when the tests run with a user that reads every file (root); the unit test
+/// `data::tests::an_io_error_from_the_reader_is_a_file_problem` covers the
+/// mapping itself.
+#[test]
+fn unreadable_data_file_is_a_file_problem() {
+    use std::os::unix::fs::PermissionsExt;
+    let case = standard(&rows(50, 4, 1));
+    let p = case.path("data.csv");
+    std::fs::set_permissions(&p, std::fs::Permissions::from_mode(0o000)).unwrap();
+    if std::fs::read(&p).is_ok() {
+        return;
+    }
+    case.clone().run_spec().fails(4, &["data.csv"]);
 }
