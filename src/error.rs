@@ -5,7 +5,7 @@
 //! crate, so every stage can return [`Error`] without pulling in another stage.
 
 use std::fmt;
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 /// Where a spec problem is. Lines and columns are 1-based.
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -350,6 +350,62 @@ impl std::error::Error for Error {
 
 /// The crate's result type.
 pub type Result<T, E = Error> = std::result::Result<T, E>;
+
+/// What a file system entry is, in words, for a refusal.
+fn kind_of(t: std::fs::FileType) -> &'static str {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::FileTypeExt;
+        if t.is_char_device() {
+            return "a character device";
+        }
+        if t.is_block_device() {
+            return "a block device";
+        }
+        if t.is_fifo() {
+            return "a fifo";
+        }
+        if t.is_socket() {
+            return "a socket";
+        }
+    }
+    if t.is_dir() {
+        "a folder"
+    } else {
+        "not a regular file"
+    }
+}
+
+/// Refuses `meta` (of `path`) unless it is a regular file: a device, fifo or
+/// socket would be read without end (`/dev/zero`) or block (a fifo), and a
+/// folder is not a file. A file problem ([`exit::IO`]).
+pub fn check_regular(path: &Path, action: &'static str, meta: &std::fs::Metadata) -> Result<()> {
+    if meta.is_file() {
+        return Ok(());
+    }
+    let kind = kind_of(meta.file_type());
+    let what = if kind == "not a regular file" {
+        "not a regular file".to_string()
+    } else {
+        format!("{kind}, not a regular file")
+    };
+    Err(Error::io(
+        path,
+        action,
+        std::io::Error::new(
+            std::io::ErrorKind::InvalidInput,
+            format!("{what}; anomark reads regular files only"),
+        ),
+    ))
+}
+
+/// Refuses `path` unless it names a regular file (links followed): a path
+/// that cannot be looked up gives its own cause (missing, a dangling or
+/// looping link), anything else [`check_regular`]'s refusal.
+pub fn require_regular(path: &Path, action: &'static str) -> Result<()> {
+    let meta = std::fs::metadata(path).map_err(|e| Error::io(path, action, e))?;
+    check_regular(path, action, &meta)
+}
 
 #[cfg(test)]
 mod tests {

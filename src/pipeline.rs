@@ -281,6 +281,9 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
     if let Some(d) = &opts.templates {
         card::check_overrides(d)?;
     }
+    if opts.open_test {
+        crate::audit::ledger::check_path(&plan.ledger)?;
+    }
     let key = crate::sign::load_private(&opts.key)?;
     let fingerprint = crate::sign::fingerprint(&key.verifying_key());
     let from_run = record::relative_path(&out, &opts.spec);

@@ -219,6 +219,7 @@ struct State {
 /// Scores every row of `opts.data` and writes `opts.out`.
 pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
     let in_format = format_of(&opts.data, "data file")?;
+    crate::error::require_regular(&opts.data, "reading data")?;
     let out_format = format_of(&opts.out, "output file")?;
     crate::output::check_file_target(&opts.out)?;
     let run = recorded(&opts.dir, opts.pubkey.as_deref())?;

@@ -104,6 +104,7 @@ pub fn keygen(private: &Path, public: &Path) -> Result<String> {
 /// Reads a PKCS#8 PEM private key, refusing one that others can read.
 pub fn load_private(path: &Path) -> Result<SigningKey> {
     let meta = std::fs::metadata(path).map_err(|e| Error::io(path, "reading private key", e))?;
+    crate::error::check_regular(path, "reading private key", &meta)?;
     #[cfg(unix)]
     {
         use std::os::unix::fs::PermissionsExt;
@@ -126,6 +127,7 @@ pub fn load_private(path: &Path) -> Result<SigningKey> {
 
 /// Reads an SPKI PEM public key.
 pub fn load_public(path: &Path) -> Result<VerifyingKey> {
+    crate::error::require_regular(path, "reading public key")?;
     let text =
         std::fs::read_to_string(path).map_err(|e| Error::io(path, "reading public key", e))?;
     VerifyingKey::from_public_key_pem(&text)

@@ -258,16 +258,17 @@ pub(crate) fn expand(s: &SourcePlan, plan: &Plan) -> Result<Vec<PathBuf>> {
             )));
         }
         out
-    } else if p.is_file() {
-        vec![p.clone()]
     } else {
-        return Err(Error::io(
-            p,
-            "reading data",
-            std::io::Error::new(std::io::ErrorKind::NotFound, "no such file or directory"),
-        ));
+        // Missing, a dangling link, a device or a fifo: each says what it is.
+        crate::error::require_regular(p, "reading data")?;
+        vec![p.clone()]
     };
     files.sort();
+    // Nothing but regular files is read: a fifo or device named `.parquet`
+    // in a folder would block or never end.
+    for f in &files {
+        crate::error::require_regular(f, "reading data")?;
+    }
     Ok(files)
 }
 

@@ -253,6 +253,7 @@ impl Plan {
 
 /// Reads and resolves the spec at `path`.
 pub fn load(path: &Path) -> Result<Plan> {
+    crate::error::require_regular(path, "reading spec")?;
     let bytes = std::fs::read(path).map_err(|e| Error::io(path, "reading spec", e))?;
     parse(path, bytes)
 }

@@ -187,3 +187,94 @@ fn unreadable_data_file_is_a_file_problem() {
     }
     case.clone().run_spec().fails(4, &["data.csv"]);
 }
+
+/// Runs with a time limit and expects exit 4, a message with every piece,
+/// and never "no such file".
+fn refused_within(case: &Case, pieces: &[&str]) -> crate::util::Done {
+    let d = case.exec_within(std::time::Duration::from_secs(60));
+    assert_eq!(d.code, 4, "stderr: {}", d.stderr);
+    for p in pieces {
+        assert!(d.stderr.contains(p), "`{p}` not in: {}", d.stderr);
+    }
+    assert!(!d.stderr.contains("No such file"), "{}", d.stderr);
+    assert!(!d.stderr.contains("no such file"), "{}", d.stderr);
+    d
+}
+
+fn mkfifo(path: &std::path::Path) {
+    let ok = std::process::Command::new("mkfifo")
+        .arg(path)
+        .status()
+        .unwrap()
+        .success();
+    assert!(ok, "mkfifo failed");
+}
+
+/// `data.path: /dev/zero` is refused as a device, not read without end and
+/// not called missing.
+#[test]
+fn data_path_that_is_a_device_is_refused() {
+    let case = standard(&rows(50, 4, 1)).file(
+        "spec.yaml",
+        spec(&["a", "b", "c"], PROTOCOL).replace("path: data.csv", "path: /dev/zero"),
+    );
+    let d = refused_within(
+        &case.run_spec(),
+        &["/dev/zero", "a character device, not a regular file"],
+    );
+    assert!(!d.dir.join("out").exists());
+}
+
+/// A fifo named like a Parquet part inside a data folder is refused, not
+/// opened (opening it would block for ever).
+#[test]
+fn fifo_in_a_data_folder_is_refused() {
+    let case = Case::new()
+        .file(
+            "spec.yaml",
+            spec(&["a", "b", "c"], PROTOCOL).replace("path: data.csv", "path: parts"),
+        )
+        .keys();
+    crate::sources::parquet(&case.path("parts/part-0.parquet"), &rows(300, 10, 3), false);
+    mkfifo(&case.path("parts/part-1.parquet"));
+    refused_within(&case.run_spec(), &["part-1.parquet", "a fifo"]);
+}
+
+/// `score` with a fifo as its input is refused before anything is read.
+#[test]
+fn score_input_that_is_a_fifo_is_refused() {
+    let case = signed_run();
+    mkfifo(&case.path("new.csv"));
+    refused_within(
+        &case
+            .clone()
+            .args(["score", "out", "new.csv", "--out", "scored.csv"]),
+        &["new.csv", "a fifo"],
+    );
+}
+
+/// A final run whose ledger is `/dev/full` is refused before any work, not
+/// read without end.
+#[test]
+fn ledger_that_is_a_device_is_refused() {
+    let case = standard(&rows(50, 4, 1)).file(
+        "spec.yaml",
+        format!("{}ledger: /dev/full\n", spec(&["a", "b", "c"], PROTOCOL)),
+    );
+    let d = refused_within(
+        &case.run_spec(),
+        &["/dev/full", "test ledger", "a character device"],
+    );
+    assert!(!d.dir.join("out").exists());
+}
+
+/// A ledger that is a fifo is refused the same way.
+#[test]
+fn ledger_that_is_a_fifo_is_refused() {
+    let case = standard(&rows(50, 4, 1)).file(
+        "spec.yaml",
+        format!("{}ledger: pipe.jsonl\n", spec(&["a", "b", "c"], PROTOCOL)),
+    );
+    mkfifo(&case.path("pipe.jsonl"));
+    refused_within(&case.run_spec(), &["pipe.jsonl", "a fifo"]);
+}
