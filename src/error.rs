@@ -125,10 +125,13 @@ pub enum Error {
         /// The cause.
         source: std::io::Error,
     },
-    /// The CSV reader failed for a reason other than a bad value.
+    /// The CSV or Parquet reader refused a file's content for a reason other
+    /// than a bad value.
     Csv {
         /// The data file.
         path: PathBuf,
+        /// The file's format as the message names it: `CSV` or `Parquet`.
+        format: &'static str,
         /// The reader's message.
         message: String,
     },
@@ -213,7 +216,8 @@ fn list(names: &[String]) -> String {
         .join(", ")
 }
 
-fn lines(lines: &[u64], total: usize, unit: RowUnit) -> String {
+/// Places in words: `line 8`, `lines 8, 10` or `lines 8, 10 and 3 more`.
+pub fn places(lines: &[u64], total: usize, unit: RowUnit) -> String {
     let word = unit.word();
     let shown = lines
         .iter()
@@ -272,7 +276,7 @@ impl fmt::Display for Error {
                 }
                 write!(f, "{message}")?;
                 if !l.is_empty() {
-                    write!(f, " ({})", lines(l, *total, *unit))?;
+                    write!(f, " ({})", places(l, *total, *unit))?;
                 }
                 Ok(())
             }
@@ -303,8 +307,12 @@ impl fmt::Display for Error {
                 action,
                 source,
             } => write!(f, "{action} `{}`: {source}", path.display()),
-            Error::Csv { path, message } => {
-                write!(f, "{}: cannot read as CSV: {message}", path.display())
+            Error::Csv {
+                path,
+                format,
+                message,
+            } => {
+                write!(f, "{}: cannot read as {format}: {message}", path.display())
             }
             Error::Output { path, message } => {
                 write!(f, "output `{}`: {message}", path.display())

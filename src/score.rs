@@ -71,7 +71,16 @@ pub struct ScoreSummary {
     pub peak_rss_mib: Option<f64>,
 }
 
-fn format_of(path: &Path, role: &str) -> Result<Format> {
+/// Which end of `score` a file is, for the wording of a refusal.
+#[derive(Clone, Copy)]
+enum Role {
+    /// The data to score.
+    Input,
+    /// The scored file to write.
+    Output,
+}
+
+fn format_of(path: &Path, role: Role) -> Result<Format> {
     match path
         .extension()
         .and_then(|e| e.to_str())
@@ -80,10 +89,27 @@ fn format_of(path: &Path, role: &str) -> Result<Format> {
     {
         Some("csv") => Ok(Format::Csv),
         Some("parquet") | Some("pq") => Ok(Format::Parquet),
-        _ => Err(Error::Output {
-            path: path.to_path_buf(),
-            message: format!("the {role} must end in .csv or .parquet"),
-        }),
+        _ => match role {
+            // The input is read, so its refusal is worded as a read (a
+            // folder says it is a folder), never as an output.
+            Role::Input => {
+                if let Ok(m) = std::fs::metadata(path) {
+                    crate::error::check_regular(path, "reading data", &m)?;
+                }
+                Err(Error::io(
+                    path,
+                    "reading data",
+                    std::io::Error::new(
+                        std::io::ErrorKind::InvalidInput,
+                        "the data to score must be a `.csv` or `.parquet` file",
+                    ),
+                ))
+            }
+            Role::Output => Err(Error::Output {
+                path: path.to_path_buf(),
+                message: "the output file must end in .csv or .parquet".into(),
+            }),
+        },
     }
 }
 
@@ -218,9 +244,9 @@ struct State {
 
 /// Scores every row of `opts.data` and writes `opts.out`.
 pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
-    let in_format = format_of(&opts.data, "data file")?;
+    let in_format = format_of(&opts.data, Role::Input)?;
     crate::error::require_regular(&opts.data, "reading data")?;
-    let out_format = format_of(&opts.out, "output file")?;
+    let out_format = format_of(&opts.out, Role::Output)?;
     crate::output::check_file_target(&opts.out)?;
     let run = recorded(&opts.dir, opts.pubkey.as_deref())?;
 

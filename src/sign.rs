@@ -101,10 +101,84 @@ pub fn keygen(private: &Path, public: &Path) -> Result<String> {
     Ok(fingerprint(&key.verifying_key()))
 }
 
+/// What a PEM key that is not an Ed25519 key of the expected kind holds, in
+/// words, from its PEM label and its algorithm identifier; `None` when it
+/// cannot be told (then the parser's own message stands). OIDs: RSA
+/// 1.2.840.113549.1.1.1 (RFC 8017), RSASSA-PSS 1.2.840.113549.1.1.10 (RFC
+/// 4055), EC public key 1.2.840.10045.2.1 with the named curves P-256
+/// 1.2.840.10045.3.1.7, P-384 1.3.132.0.34, P-521 1.3.132.0.35 (RFC 5480),
+/// X25519 1.3.101.110, X448 1.3.101.111, Ed25519 1.3.101.112, Ed448
+/// 1.3.101.113 (RFC 8410), DSA 1.2.840.10040.4.1 (RFC 3279).
+fn algorithm_in_words(text: &str) -> Option<String> {
+    use ed25519_dalek::pkcs8::spki::der::{self, Decode};
+    use ed25519_dalek::pkcs8::{spki::SubjectPublicKeyInfoRef, PrivateKeyInfo};
+    let (label, bytes) = der::pem::decode_vec(text.trim().as_bytes()).ok()?;
+    match label {
+        "RSA PRIVATE KEY" | "RSA PUBLIC KEY" => return Some("an RSA key (PKCS#1)".into()),
+        "EC PRIVATE KEY" => return Some("an elliptic-curve key (SEC 1)".into()),
+        "OPENSSH PRIVATE KEY" => return Some("an OpenSSH-format key".into()),
+        _ => {}
+    }
+    let algorithm = match label {
+        "PRIVATE KEY" => PrivateKeyInfo::from_der(&bytes).ok()?.algorithm,
+        "PUBLIC KEY" => SubjectPublicKeyInfoRef::from_der(&bytes).ok()?.algorithm,
+        _ => return None,
+    };
+    let oid = algorithm.oid.to_string();
+    let name = match oid.as_str() {
+        "1.2.840.113549.1.1.1" => "an RSA key".to_string(),
+        "1.2.840.113549.1.1.10" => "an RSA-PSS key".to_string(),
+        "1.2.840.10040.4.1" => "a DSA key".to_string(),
+        "1.2.840.10045.2.1" => {
+            let curve = algorithm.parameters_oid().map(|c| c.to_string());
+            match curve.as_deref() {
+                Ok("1.2.840.10045.3.1.7") => "a P-256 (ECDSA) key".to_string(),
+                Ok("1.3.132.0.34") => "a P-384 (ECDSA) key".to_string(),
+                Ok("1.3.132.0.35") => "a P-521 (ECDSA) key".to_string(),
+                Ok(c) => format!("an elliptic-curve key on curve {c}"),
+                Err(_) => "an elliptic-curve key".to_string(),
+            }
+        }
+        "1.3.101.110" => "an X25519 key".to_string(),
+        "1.3.101.111" => "an X448 key".to_string(),
+        "1.3.101.113" => "an Ed448 key".to_string(),
+        // Ed25519 itself: the parser's message says what is wrong.
+        "1.3.101.112" => return None,
+        _ => "a key of another algorithm".to_string(),
+    };
+    Some(format!("{name} (algorithm OID {oid})"))
+}
+
+/// The refusal of a key of another algorithm.
+fn not_ed25519(path: &Path, what: String) -> Error {
+    key_error(
+        path,
+        format!(
+            "this is {what}; anomark signs with Ed25519 only (OID 1.3.101.112): \
+             make a key pair with `anomark keygen`"
+        ),
+    )
+}
+
+/// The PEM label of `text` (`PRIVATE KEY`, `PUBLIC KEY`, ...), if it is PEM.
+fn pem_label(text: &str) -> Option<&str> {
+    let rest = text.trim_start().strip_prefix("-----BEGIN ")?;
+    Some(&rest[..rest.find("-----")?])
+}
+
 /// Reads a PKCS#8 PEM private key, refusing one that others can read.
 pub fn load_private(path: &Path) -> Result<SigningKey> {
     let meta = std::fs::metadata(path).map_err(|e| Error::io(path, "reading private key", e))?;
     crate::error::check_regular(path, "reading private key", &meta)?;
+    let text =
+        std::fs::read_to_string(path).map_err(|e| Error::io(path, "reading private key", e))?;
+    if pem_label(&text) == Some("PUBLIC KEY") {
+        return Err(key_error(
+            path,
+            "this is a public key (SPKI PEM); `--key` takes the private key that signs \
+             (PKCS#8 PEM), such as the `--private` file of `anomark keygen`",
+        ));
+    }
     #[cfg(unix)]
     {
         use std::os::unix::fs::PermissionsExt;
@@ -119,10 +193,10 @@ pub fn load_private(path: &Path) -> Result<SigningKey> {
         }
     }
     let _ = meta;
-    let text =
-        std::fs::read_to_string(path).map_err(|e| Error::io(path, "reading private key", e))?;
-    SigningKey::from_pkcs8_pem(&text)
-        .map_err(|e| key_error(path, format!("not an Ed25519 PKCS#8 PEM private key ({e})")))
+    SigningKey::from_pkcs8_pem(&text).map_err(|e| match algorithm_in_words(&text) {
+        Some(what) => not_ed25519(path, what),
+        None => key_error(path, format!("not an Ed25519 PKCS#8 PEM private key ({e})")),
+    })
 }
 
 /// Reads an SPKI PEM public key.
@@ -130,8 +204,17 @@ pub fn load_public(path: &Path) -> Result<VerifyingKey> {
     crate::error::require_regular(path, "reading public key")?;
     let text =
         std::fs::read_to_string(path).map_err(|e| Error::io(path, "reading public key", e))?;
-    VerifyingKey::from_public_key_pem(&text)
-        .map_err(|e| key_error(path, format!("not an Ed25519 SPKI PEM public key ({e})")))
+    if matches!(pem_label(&text), Some("PRIVATE KEY")) {
+        return Err(key_error(
+            path,
+            "this is a private key; `--pubkey` takes the public key (SPKI PEM), such as the \
+             `--public` file of `anomark keygen`",
+        ));
+    }
+    VerifyingKey::from_public_key_pem(&text).map_err(|e| match algorithm_in_words(&text) {
+        Some(what) => not_ed25519(path, what),
+        None => key_error(path, format!("not an Ed25519 SPKI PEM public key ({e})")),
+    })
 }
 
 /// The signature of `message`, base64 on one line with a trailing newline.

@@ -144,9 +144,9 @@ impl Dataset {
         )
     }
 
-    /// A data error about `rows` (all assumed from the first row's file, which
-    /// is the one named; rows from other files are counted, not listed).
-    pub fn error(&self, column: &str, message: String, rows: &[RowId]) -> Error {
+    /// The first row's file and the first places of `rows` in it (rows from
+    /// other files are counted, not listed).
+    fn places(&self, rows: &[RowId]) -> (&SourceFile, Vec<u64>) {
         let first = self.origin[rows[0].0 as usize].file;
         let f = &self.files[first as usize];
         let places = rows
@@ -156,12 +156,68 @@ impl Dataset {
             .take(SHOWN)
             .map(|o| f.format.place(o.row))
             .collect();
+        (f, places)
+    }
+
+    /// A data error about `rows` (all assumed from the first row's file, which
+    /// is the one named; rows from other files are counted, not listed).
+    pub fn error(&self, column: &str, message: String, rows: &[RowId]) -> Error {
+        let (f, places) = self.places(rows);
         Error::Data {
             path: PathBuf::from(&f.shown),
             column: Some(column.to_string()),
             message,
             lines: places,
             total: rows.len(),
+            unit: f.format.unit(),
+        }
+    }
+
+    /// The places of `rows` in words, such as `line 8` or `lines 8, 10 and
+    /// 3 more`, prefixed by the file when it is not `file`.
+    fn places_in_words(&self, rows: &[RowId], file: &str) -> String {
+        let (f, places) = self.places(rows);
+        let words = crate::error::places(&places, rows.len(), f.format.unit());
+        if f.shown == file {
+            words
+        } else {
+            format!("`{}` {words}", f.shown)
+        }
+    }
+
+    /// The refusal of label values that are neither declared value: one
+    /// value with its places, or each value with its own places (the first
+    /// [`SHOWN`] values, in order of first appearance, and how many more).
+    fn bad_labels(
+        &self,
+        column: &str,
+        normal: &str,
+        anomaly: &str,
+        bad: &[(RowId, String)],
+    ) -> Error {
+        let values = by_value(bad.iter().map(|(r, v)| (*r, v.as_str())));
+        let rows: Vec<RowId> = bad.iter().map(|r| r.0).collect();
+        if let [(v, _)] = values.as_slice() {
+            return self.error(
+                column,
+                format!(
+                    "label `{v}` is neither the normal value `{normal}` nor the anomaly value `{anomaly}`"
+                ),
+                &rows,
+            );
+        }
+        let (f, _) = self.places(&rows);
+        let each: Vec<(&str, String)> = values
+            .iter()
+            .take(SHOWN)
+            .map(|(v, rows)| (*v, self.places_in_words(rows, &f.shown)))
+            .collect();
+        Error::Data {
+            path: PathBuf::from(&f.shown),
+            column: Some(column.to_string()),
+            message: bad_labels_message(normal, anomaly, &each, values.len()),
+            lines: vec![],
+            total: 0,
             unit: f.format.unit(),
         }
     }
@@ -188,10 +244,111 @@ pub(crate) fn read_error(path: &Path, e: PolarsError) -> Error {
             _ => break,
         }
     }
+    // The format follows the extension, as everywhere a file's format is chosen.
+    let parquet = path
+        .extension()
+        .and_then(|x| x.to_str())
+        .is_some_and(|x| matches!(x.to_ascii_lowercase().as_str(), "parquet" | "pq"));
+    // The reader's message names no line; for CSV the first line at fault
+    // is found by a scan of the file (only once the read has failed).
+    let message = match (parquet, first_bad_csv_line(path)) {
+        (false, Some(m)) => m,
+        _ => e.to_string(),
+    };
     Error::Csv {
         path: path.to_path_buf(),
-        message: e.to_string(),
+        format: if parquet { "Parquet" } else { "CSV" },
+        message,
     }
+}
+
+/// The first line of a CSV file that no reader can take, in words: a line
+/// that is not UTF-8, or a record with more or fewer fields than the header
+/// (quoted fields may hold commas, newlines and doubled quotes). `None` when
+/// every line is well formed or the file cannot be read.
+fn first_bad_csv_line(path: &Path) -> Option<String> {
+    use std::io::BufRead;
+    let mut reader = std::io::BufReader::new(std::fs::File::open(path).ok()?);
+    let mut buf = Vec::new();
+    let (mut line, mut start, mut fields, mut quoted) = (0u64, 1u64, 1usize, false);
+    let mut header: Option<usize> = None;
+    loop {
+        buf.clear();
+        if reader.read_until(b'\n', &mut buf).ok()? == 0 {
+            return None;
+        }
+        line += 1;
+        if !quoted {
+            start = line;
+        }
+        if std::str::from_utf8(&buf).is_err() {
+            return Some(format!("line {line} is not valid UTF-8"));
+        }
+        for &b in buf.iter() {
+            match b {
+                b'"' => quoted = !quoted,
+                b',' if !quoted => fields += 1,
+                _ => {}
+            }
+        }
+        if quoted {
+            continue;
+        }
+        let body = buf.strip_suffix(b"\n").unwrap_or(&buf);
+        let body = body.strip_suffix(b"\r").unwrap_or(body);
+        let count = fields;
+        fields = 1;
+        match header {
+            None => header = Some(count),
+            // A blank line holds no record.
+            Some(_) if body.is_empty() => {}
+            Some(h) if count != h => {
+                let at = if start == line {
+                    format!("line {line}")
+                } else {
+                    format!("the record on lines {start} to {line}")
+                };
+                return Some(format!("{at} has {count} fields but the header has {h}"));
+            }
+            Some(_) => {}
+        }
+    }
+}
+
+/// Groups `(row, value)` pairs by value, in order of first appearance.
+pub(crate) fn by_value<'a, R>(bad: impl Iterator<Item = (R, &'a str)>) -> Vec<(&'a str, Vec<R>)> {
+    let mut values: Vec<(&str, Vec<R>)> = Vec::new();
+    let mut at: BTreeMap<&str, usize> = BTreeMap::new();
+    for (r, v) in bad {
+        let k = *at.entry(v).or_insert_with(|| {
+            values.push((v, Vec::new()));
+            values.len() - 1
+        });
+        values[k].1.push(r);
+    }
+    values
+}
+
+/// The refusal of `distinct` undeclared label values, each of the first
+/// ones (`each`: the value and its places in words) with its own places.
+pub(crate) fn bad_labels_message(
+    normal: &str,
+    anomaly: &str,
+    each: &[(&str, String)],
+    distinct: usize,
+) -> String {
+    let mut shown: Vec<String> = each
+        .iter()
+        .map(|(v, places)| format!("`{v}` ({places})"))
+        .collect();
+    if distinct > each.len() {
+        shown.push(format!("and {} more values", distinct - each.len()));
+    }
+    format!(
+        "{distinct} different labels are neither the normal value `{normal}` nor the anomaly \
+         value `{anomaly}`: {}",
+        shown.join(", ")
+    )
 }
 
 /// A file's column names and, for each, whether it is numeric (every CSV
@@ -770,16 +927,8 @@ pub fn inspect(plan: &Plan) -> Result<Inspection> {
             ));
         }
     }
-    if let (Some((_, v)), Some(l)) = (bad_label.first(), label) {
-        let rows: Vec<RowId> = bad_label.iter().map(|r| r.0).collect();
-        problems.push(data.error(
-            &l.column.name,
-            format!(
-                "label `{v}` is neither the normal value `{}` nor the anomaly value `{}`",
-                l.normal, l.anomaly
-            ),
-            &rows,
-        ));
+    if let (false, Some(l)) = (bad_label.is_empty(), label) {
+        problems.push(data.bad_labels(&l.column.name, &l.normal, &l.anomaly, &bad_label));
     }
     for (k, c) in text_cols.iter().enumerate() {
         if label.is_some_and(|l| l.column.name == c.name) {
@@ -833,12 +982,71 @@ pub fn load(plan: &Plan) -> Result<Dataset> {
         return Err(p);
     }
     match plan.missing {
-        MissingPolicy::Refuse => match missing.into_iter().next() {
+        MissingPolicy::Refuse => match all_missing(missing) {
             Some(e) => Err(e),
             None => Ok(data),
         },
         MissingPolicy::DropRow => Ok(drop_rows(data, &has_missing, plan)),
     }
+}
+
+/// How many columns a refusal for missing values lists.
+const SHOWN_COLUMNS: usize = 12;
+
+/// One refusal for every missing value: a column's own error when one column
+/// has them, else every column (up to [`SHOWN_COLUMNS`]) with its first places
+/// and the total count of missing cells, as `check` lists them.
+fn all_missing(missing: Vec<Error>) -> Option<Error> {
+    if missing.len() <= 1 {
+        return missing.into_iter().next();
+    }
+    let mut path: Option<PathBuf> = None;
+    let mut unit = RowUnit::Line;
+    let mut cells = 0;
+    let mut each = Vec::new();
+    for e in &missing {
+        if let Error::Data {
+            path: here,
+            column,
+            lines,
+            total,
+            unit: u,
+            ..
+        } = e
+        {
+            let first = path.get_or_insert_with(|| {
+                unit = *u;
+                here.clone()
+            });
+            let places = crate::error::places(lines, *total, *u);
+            let place = if first == here {
+                places
+            } else {
+                format!("`{}` {places}", here.display())
+            };
+            cells += total;
+            if each.len() < SHOWN_COLUMNS {
+                each.push(format!(
+                    "column `{}` ({place})",
+                    column.as_deref().unwrap_or_default()
+                ));
+            }
+        }
+    }
+    if missing.len() > SHOWN_COLUMNS {
+        each.push(format!(
+            "and {} more columns",
+            missing.len() - SHOWN_COLUMNS
+        ));
+    }
+    Some(Error::Data {
+        path: path.unwrap_or_default(),
+        column: None,
+        message: format!("{cells} feature values are missing: {}", each.join(", ")),
+        lines: vec![],
+        total: 0,
+        unit,
+    })
 }
 
 /// Leaves out the rows marked in `drop`, counting them by label (and by split
