@@ -287,7 +287,9 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
     let key = crate::sign::load_private(&opts.key)?;
     let fingerprint = crate::sign::fingerprint(&key.verifying_key());
     let from_run = record::relative_path(&out, &opts.spec);
+    let stale = crate::cleanup::stale_beside(&out);
     let (files, mut summary) = execute(opts, plan, &fingerprint, None, from_run)?;
+    summary.warnings.extend(stale);
     let stage = opts.progress.stage("signing and writing the run directory");
     summary.out = files.commit(&out, &key)?;
     drop(stage);

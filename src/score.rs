@@ -307,6 +307,9 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         .prefix(".anomark-score-")
         .tempfile_in(&parent)
         .map_err(|e| Error::io(&parent, "creating a temporary file in", e))?;
+    // Removed on SIGINT or SIGTERM until renamed into place.
+    let registered = crate::cleanup::register(temp.path());
+    crate::output::pause_point("score-writing");
     let file = temp
         .reopen()
         .map_err(|e| Error::io(temp.path(), "opening", e))?;
@@ -395,8 +398,10 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         }
         None => {}
     }
-    temp.persist(&opts.out)
-        .map_err(|e| Error::io(&opts.out, "renaming the finished output to", e.error))?;
+    registered.finish(|| {
+        temp.persist(&opts.out)
+            .map_err(|e| Error::io(&opts.out, "renaming the finished output to", e.error))
+    })?;
     Ok(ScoreSummary {
         out: opts.out.clone(),
         rows: st.rows,

@@ -611,3 +611,112 @@ fn score_input_folder_is_worded_as_input() {
         .fails(4, &["reading data `new.txt`", "`.csv` or `.parquet`"]);
     assert!(!d.stderr.contains("output `new.txt`"), "{}", d.stderr);
 }
+
+/// anomark's temporaries in `dir`.
+fn temporaries(dir: &std::path::Path) -> Vec<String> {
+    let mut names: Vec<String> = std::fs::read_dir(dir)
+        .unwrap()
+        .filter_map(|e| e.ok())
+        .map(|e| e.file_name().to_string_lossy().into_owned())
+        .filter(|n| n.starts_with(".anomark-"))
+        .collect();
+    names.sort();
+    names
+}
+
+/// Starts `anomark args` paused at `point`, waits until its temporary is in
+/// place, sends `signal` and returns the exit code.
+fn interrupt(case: &Case, args: &[&str], point: &str, signal: &str) -> i32 {
+    use std::time::{Duration, Instant};
+    let mut child = std::process::Command::new(crate::util::BIN)
+        .current_dir(case.dir.path())
+        .args(args)
+        .env("ANOMARK_PAUSE_AT", point)
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .unwrap();
+    let start = Instant::now();
+    while temporaries(case.dir.path()).is_empty() {
+        assert!(
+            start.elapsed() < Duration::from_secs(60),
+            "no temporary appeared"
+        );
+        assert!(
+            child.try_wait().unwrap().is_none(),
+            "ended before its temporary"
+        );
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    // Into the pause (the temporary is written in the meantime either way).
+    std::thread::sleep(Duration::from_millis(300));
+    let sent = std::process::Command::new("kill")
+        .args([&format!("-{signal}"), &child.id().to_string()])
+        .status()
+        .unwrap();
+    assert!(sent.success());
+    let start = Instant::now();
+    loop {
+        if let Some(status) = child.try_wait().unwrap() {
+            return status.code().unwrap_or(-1);
+        }
+        if start.elapsed() > Duration::from_secs(60) {
+            let _ = child.kill();
+            panic!("did not end after {signal}");
+        }
+        std::thread::sleep(Duration::from_millis(20));
+    }
+}
+
+/// A run stopped by SIGTERM or SIGINT removes its own temporary directory
+/// and leaves no run directory (exit 128 + the signal's number).
+#[test]
+fn interrupted_run_removes_its_temporary() {
+    for (signal, code) in [("TERM", 143), ("INT", 130)] {
+        let case = standard(&rows(50, 4, 1));
+        let args = ["run", "spec.yaml", "--key", "key.pem", "--out", "out"];
+        assert_eq!(interrupt(&case, &args, "before-rename", signal), code);
+        assert_eq!(temporaries(case.dir.path()), Vec::<String>::new());
+        assert!(!case.path("out").exists());
+    }
+}
+
+/// `score` stopped by SIGTERM removes its temporary output.
+#[test]
+fn interrupted_score_removes_its_temporary() {
+    let case = signed_run();
+    let args = ["score", "out", "data.csv", "--out", "scored.csv"];
+    assert_eq!(interrupt(&case, &args, "score-writing", "TERM"), 143);
+    assert_eq!(temporaries(case.dir.path()), Vec::<String>::new());
+    assert!(!case.path("scored.csv").exists());
+}
+
+/// Leftovers of a killed run (as a SIGKILL leaves them) are reported by a
+/// later `run` and by `check`, and not removed.
+#[test]
+fn stale_temporaries_are_reported_not_removed() {
+    let case = standard(&rows(50, 4, 1))
+        .file(".anomark-partial-Ab12Cd/run.json", "{}")
+        .file(".anomark-score-Ef34Gh", "id\n");
+    let d = case
+        .clone()
+        .args(["run", "spec.yaml", "--key", "key.pem", "--out", "out"])
+        .success();
+    for name in [".anomark-partial-Ab12Cd", ".anomark-score-Ef34Gh"] {
+        assert!(
+            d.stderr.contains("warning") && d.stderr.contains(name),
+            "{}",
+            d.stderr
+        );
+        assert!(case.path(name).exists(), "{name} was removed");
+    }
+    let with_output = format!("output: out2\n{}", spec(&["a", "b", "c"], PROTOCOL));
+    let c = case
+        .clone()
+        .file("spec.yaml", with_output)
+        .args(["check", "spec.yaml"])
+        .exec();
+    assert_eq!(c.code, 0, "{}", c.stderr);
+    assert!(c.stderr.contains(".anomark-partial-Ab12Cd"), "{}", c.stderr);
+    assert!(case.path(".anomark-partial-Ab12Cd").exists());
+}
