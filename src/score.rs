@@ -245,10 +245,11 @@ struct State {
 /// Scores every row of `opts.data` and writes `opts.out`.
 pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
     let in_format = format_of(&opts.data, Role::Input)?;
-    crate::error::require_regular(&opts.data, "reading data")?;
     let out_format = format_of(&opts.out, Role::Output)?;
     crate::output::check_file_target(&opts.out)?;
     let run = recorded(&opts.dir, opts.pubkey.as_deref())?;
+    // Not a device or fifo, which would be read without end or block.
+    crate::error::require_regular(&opts.data, "reading data")?;
 
     // The content columns the features read, and their names in the file.
     let used_idx = run.set.columns_used();

@@ -18,6 +18,7 @@ mod leakage;
 mod ledger;
 mod progress;
 mod recompute;
+#[cfg(target_os = "linux")]
 mod refusals;
 mod schema;
 mod score;
