@@ -5,7 +5,7 @@
 //! crate, so every stage can return [`Error`] without pulling in another stage.
 
 use std::fmt;
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 /// Where a spec problem is. Lines and columns are 1-based.
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -134,10 +134,13 @@ pub enum Error {
         /// The cause.
         source: std::io::Error,
     },
-    /// The CSV reader failed for a reason other than a bad value.
+    /// The CSV or Parquet reader refused a file's content for a reason other
+    /// than a bad value.
     Csv {
         /// The data file.
         path: PathBuf,
+        /// The file's format as the message names it: `CSV` or `Parquet`.
+        format: &'static str,
         /// The reader's message.
         message: String,
     },
@@ -229,7 +232,8 @@ fn list(names: &[String]) -> String {
         .join(", ")
 }
 
-fn lines(lines: &[u64], total: usize, unit: RowUnit) -> String {
+/// Places in words: `line 8`, `lines 8, 10` or `lines 8, 10 and 3 more`.
+pub fn places(lines: &[u64], total: usize, unit: RowUnit) -> String {
     let word = unit.word();
     let shown = lines
         .iter()
@@ -288,7 +292,7 @@ impl fmt::Display for Error {
                 }
                 write!(f, "{message}")?;
                 if !l.is_empty() {
-                    write!(f, " ({})", lines(l, *total, *unit))?;
+                    write!(f, " ({})", places(l, *total, *unit))?;
                 }
                 Ok(())
             }
@@ -334,8 +338,12 @@ impl fmt::Display for Error {
                 action,
                 source,
             } => write!(f, "{action} `{}`: {source}", path.display()),
-            Error::Csv { path, message } => {
-                write!(f, "{}: cannot read as CSV: {message}", path.display())
+            Error::Csv {
+                path,
+                format,
+                message,
+            } => {
+                write!(f, "{}: cannot read as {format}: {message}", path.display())
             }
             Error::Output { path, message } => {
                 write!(f, "output `{}`: {message}", path.display())
@@ -381,6 +389,62 @@ impl std::error::Error for Error {
 
 /// The crate's result type.
 pub type Result<T, E = Error> = std::result::Result<T, E>;
+
+/// What a file system entry is, in words, for a refusal.
+fn kind_of(t: std::fs::FileType) -> &'static str {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::FileTypeExt;
+        if t.is_char_device() {
+            return "a character device";
+        }
+        if t.is_block_device() {
+            return "a block device";
+        }
+        if t.is_fifo() {
+            return "a fifo";
+        }
+        if t.is_socket() {
+            return "a socket";
+        }
+    }
+    if t.is_dir() {
+        "a folder"
+    } else {
+        "not a regular file"
+    }
+}
+
+/// Refuses `meta` (of `path`) unless it is a regular file: a device, fifo or
+/// socket would be read without end (`/dev/zero`) or block (a fifo), and a
+/// folder is not a file. A file problem ([`exit::IO`]).
+pub fn check_regular(path: &Path, action: &'static str, meta: &std::fs::Metadata) -> Result<()> {
+    if meta.is_file() {
+        return Ok(());
+    }
+    let kind = kind_of(meta.file_type());
+    let what = if kind == "not a regular file" {
+        "not a regular file".to_string()
+    } else {
+        format!("{kind}, not a regular file")
+    };
+    Err(Error::io(
+        path,
+        action,
+        std::io::Error::new(
+            std::io::ErrorKind::InvalidInput,
+            format!("{what}; anomark reads regular files only"),
+        ),
+    ))
+}
+
+/// Refuses `path` unless it names a regular file (links followed): a path
+/// that cannot be looked up gives its own cause (missing, a dangling or
+/// looping link), anything else [`check_regular`]'s refusal.
+pub fn require_regular(path: &Path, action: &'static str) -> Result<()> {
+    let meta = std::fs::metadata(path).map_err(|e| Error::io(path, action, e))?;
+    check_regular(path, action, &meta)
+}
 
 #[cfg(test)]
 mod tests {

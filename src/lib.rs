@@ -17,6 +17,7 @@
 pub mod audit;
 pub mod card;
 pub mod check;
+pub mod cleanup;
 pub mod cli;
 pub mod data;
 pub mod detect;
@@ -140,6 +141,10 @@ pub fn run(request: &Request) -> Result<Outcome> {
     let stdout = match request {
         Request::Check { spec, json } => {
             let report = check::check(spec)?;
+            // Leftovers of killed runs beside the spec's output, reported only.
+            if let Some(out) = spec::load(spec).ok().and_then(|p| p.output) {
+                warnings.extend(cleanup::stale_beside(&out));
+            }
             if !report.problems.is_empty() {
                 code = error::exit::VERIFY_FAILED;
             }

@@ -51,6 +51,9 @@ fn exit_now(code: u8) -> ExitCode {
 }
 
 fn main() -> ExitCode {
+    // First, before any thread starts: SIGINT and SIGTERM remove anomark's
+    // own temporaries.
+    anomark::cleanup::install();
     page_policy();
     let args = anomark::cli::Args::parse();
     let request = anomark::Request::from(args);

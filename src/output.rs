@@ -87,6 +87,8 @@ impl RunFiles {
             .prefix(".anomark-partial-")
             .tempdir_in(&parent)
             .map_err(|e| Error::io(&parent, "creating temporary directory in", e))?;
+        // Removed on SIGINT or SIGTERM until renamed into place.
+        let registered = crate::cleanup::register(tmp.path());
 
         for name in self.files.keys() {
             if let Some(dir) = tmp.path().join(name).parent() {
@@ -130,20 +132,23 @@ impl RunFiles {
         )?;
 
         fail_point("before-rename")?;
+        pause_point("before-rename");
         if target.is_dir() {
             // An empty directory (checked above) is replaced.
             std::fs::remove_dir(target).map_err(|e| Error::io(target, "replacing", e))?;
         }
-        let kept = tmp.keep();
-        if let Err(e) = std::fs::rename(&kept, target) {
-            let _ = std::fs::remove_dir_all(&kept);
-            return Err(Error::io(
-                target,
-                "renaming the run directory into place",
-                e,
-            ));
-        }
-        Ok(target.to_path_buf())
+        registered.finish(|| {
+            let kept = tmp.keep();
+            if let Err(e) = std::fs::rename(&kept, target) {
+                let _ = std::fs::remove_dir_all(&kept);
+                return Err(Error::io(
+                    target,
+                    "renaming the run directory into place",
+                    e,
+                ));
+            }
+            Ok(target.to_path_buf())
+        })
     }
 }
 
@@ -164,6 +169,15 @@ fn fail_point(point: &str) -> Result<()> {
         return Err(Error::internal(format!("injected failure at `{point}`")));
     }
     Ok(())
+}
+
+/// Test hook: `ANOMARK_PAUSE_AT=<point>` makes the process wait 30 s at that
+/// point, with its temporary in place, to prove that an interruption there
+/// leaves nothing behind.
+pub fn pause_point(point: &str) {
+    if std::env::var("ANOMARK_PAUSE_AT").ok().as_deref() == Some(point) {
+        std::thread::sleep(std::time::Duration::from_secs(30));
+    }
 }
 
 #[cfg(test)]

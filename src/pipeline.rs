@@ -433,10 +433,18 @@ pub fn run(opts: &RunOptions) -> Result<RunSummary> {
         }
     };
     output::check_target(&out)?;
+    if let Some(d) = &opts.templates {
+        card::check_overrides(d)?;
+    }
+    if opts.open_test {
+        crate::audit::ledger::check_path(&plan.ledger)?;
+    }
     let key = crate::sign::load_private(&opts.key)?;
     let fingerprint = crate::sign::fingerprint(&key.verifying_key());
     let from_run = record::relative_path(&out, &opts.spec);
+    let stale = crate::cleanup::stale_beside(&out);
     let (files, mut summary) = execute(opts, plan, &fingerprint, None, from_run)?;
+    summary.warnings.extend(stale);
     let stage = opts.progress.stage("signing and writing the run directory");
     summary.out = files.commit(&out, &key)?;
     drop(stage);

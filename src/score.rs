@@ -74,7 +74,16 @@ pub struct ScoreSummary {
     pub peak_rss_mib: Option<f64>,
 }
 
-fn format_of(path: &Path, role: &str) -> Result<Format> {
+/// Which end of `score` a file is, for the wording of a refusal.
+#[derive(Clone, Copy)]
+enum Role {
+    /// The data to score.
+    Input,
+    /// The scored file to write.
+    Output,
+}
+
+fn format_of(path: &Path, role: Role) -> Result<Format> {
     match path
         .extension()
         .and_then(|e| e.to_str())
@@ -83,18 +92,32 @@ fn format_of(path: &Path, role: &str) -> Result<Format> {
     {
         Some("csv") => Ok(Format::Csv),
         Some("parquet") | Some("pq") => Ok(Format::Parquet),
-        _ => Err(Error::Output {
-            path: path.to_path_buf(),
-            message: format!("the {role} must end in .csv or .parquet"),
-        }),
+        _ => match role {
+            // The input is read, so its refusal is worded as a read (a
+            // folder says it is a folder), never as an output.
+            Role::Input => {
+                if let Ok(m) = std::fs::metadata(path) {
+                    crate::error::check_regular(path, "reading data", &m)?;
+                }
+                Err(Error::io(
+                    path,
+                    "reading data",
+                    std::io::Error::new(
+                        std::io::ErrorKind::InvalidInput,
+                        "the data to score must be a `.csv` or `.parquet` file",
+                    ),
+                ))
+            }
+            Role::Output => Err(Error::Output {
+                path: path.to_path_buf(),
+                message: "the output file must end in .csv or .parquet".into(),
+            }),
+        },
     }
 }
 
 fn polars_error(path: &Path, e: PolarsError) -> Error {
-    Error::Csv {
-        path: path.to_path_buf(),
-        message: e.to_string(),
-    }
+    crate::data::read_error(path, e)
 }
 
 /// What scores the rows.
@@ -238,10 +261,12 @@ struct State {
 
 /// Scores every row of `opts.data` and writes `opts.out`.
 pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
-    let in_format = format_of(&opts.data, "data file")?;
-    let out_format = format_of(&opts.out, "output file")?;
+    let in_format = format_of(&opts.data, Role::Input)?;
+    let out_format = format_of(&opts.out, Role::Output)?;
     crate::output::check_file_target(&opts.out)?;
     let run = recorded(&opts.dir, opts.pubkey.as_deref())?;
+    // Not a device or fifo, which would be read without end or block.
+    crate::error::require_regular(&opts.data, "reading data")?;
 
     // The content columns the features read, and their names in the file.
     let used_idx = run.set.columns_used();
@@ -305,6 +330,9 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         .prefix(".anomark-score-")
         .tempfile_in(&parent)
         .map_err(|e| Error::io(&parent, "creating a temporary file in", e))?;
+    // Removed on SIGINT or SIGTERM until renamed into place.
+    let registered = crate::cleanup::register(temp.path());
+    crate::output::pause_point("score-writing");
     let file = temp
         .reopen()
         .map_err(|e| Error::io(temp.path(), "opening", e))?;
@@ -396,8 +424,10 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         }
         None => {}
     }
-    temp.persist(&opts.out)
-        .map_err(|e| Error::io(&opts.out, "renaming the finished output to", e.error))?;
+    registered.finish(|| {
+        temp.persist(&opts.out)
+            .map_err(|e| Error::io(&opts.out, "renaming the finished output to", e.error))
+    })?;
     Ok(ScoreSummary {
         out: opts.out.clone(),
         rows: st.rows,

@@ -142,9 +142,84 @@ fn same_place(a: &Path, b: &Path) -> bool {
     }
 }
 
+/// What a PEM key that is not an Ed25519 key of the expected kind holds, in
+/// words, from its PEM label and its algorithm identifier; `None` when it
+/// cannot be told (then the parser's own message stands). OIDs: RSA
+/// 1.2.840.113549.1.1.1 (RFC 8017), RSASSA-PSS 1.2.840.113549.1.1.10 (RFC
+/// 4055), EC public key 1.2.840.10045.2.1 with the named curves P-256
+/// 1.2.840.10045.3.1.7, P-384 1.3.132.0.34, P-521 1.3.132.0.35 (RFC 5480),
+/// X25519 1.3.101.110, X448 1.3.101.111, Ed25519 1.3.101.112, Ed448
+/// 1.3.101.113 (RFC 8410), DSA 1.2.840.10040.4.1 (RFC 3279).
+fn algorithm_in_words(text: &str) -> Option<String> {
+    use ed25519_dalek::pkcs8::spki::der::{self, Decode};
+    use ed25519_dalek::pkcs8::{spki::SubjectPublicKeyInfoRef, PrivateKeyInfo};
+    let (label, bytes) = der::pem::decode_vec(text.trim().as_bytes()).ok()?;
+    match label {
+        "RSA PRIVATE KEY" | "RSA PUBLIC KEY" => return Some("an RSA key (PKCS#1)".into()),
+        "EC PRIVATE KEY" => return Some("an elliptic-curve key (SEC 1)".into()),
+        "OPENSSH PRIVATE KEY" => return Some("an OpenSSH-format key".into()),
+        _ => {}
+    }
+    let algorithm = match label {
+        "PRIVATE KEY" => PrivateKeyInfo::from_der(&bytes).ok()?.algorithm,
+        "PUBLIC KEY" => SubjectPublicKeyInfoRef::from_der(&bytes).ok()?.algorithm,
+        _ => return None,
+    };
+    let oid = algorithm.oid.to_string();
+    let name = match oid.as_str() {
+        "1.2.840.113549.1.1.1" => "an RSA key".to_string(),
+        "1.2.840.113549.1.1.10" => "an RSA-PSS key".to_string(),
+        "1.2.840.10040.4.1" => "a DSA key".to_string(),
+        "1.2.840.10045.2.1" => {
+            let curve = algorithm.parameters_oid().map(|c| c.to_string());
+            match curve.as_deref() {
+                Ok("1.2.840.10045.3.1.7") => "a P-256 (ECDSA) key".to_string(),
+                Ok("1.3.132.0.34") => "a P-384 (ECDSA) key".to_string(),
+                Ok("1.3.132.0.35") => "a P-521 (ECDSA) key".to_string(),
+                Ok(c) => format!("an elliptic-curve key on curve {c}"),
+                Err(_) => "an elliptic-curve key".to_string(),
+            }
+        }
+        "1.3.101.110" => "an X25519 key".to_string(),
+        "1.3.101.111" => "an X448 key".to_string(),
+        "1.3.101.113" => "an Ed448 key".to_string(),
+        // Ed25519 itself: the parser's message says what is wrong.
+        "1.3.101.112" => return None,
+        _ => "a key of another algorithm".to_string(),
+    };
+    Some(format!("{name} (algorithm OID {oid})"))
+}
+
+/// The refusal of a key of another algorithm.
+fn not_ed25519(path: &Path, what: String) -> Error {
+    key_error(
+        path,
+        format!(
+            "this is {what}; anomark signs with Ed25519 only (OID 1.3.101.112): \
+             make a key pair with `anomark keygen`"
+        ),
+    )
+}
+
+/// The PEM label of `text` (`PRIVATE KEY`, `PUBLIC KEY`, ...), if it is PEM.
+fn pem_label(text: &str) -> Option<&str> {
+    let rest = text.trim_start().strip_prefix("-----BEGIN ")?;
+    Some(&rest[..rest.find("-----")?])
+}
+
 /// Reads a PKCS#8 PEM private key, refusing one that others can read.
 pub fn load_private(path: &Path) -> Result<SigningKey> {
     let meta = std::fs::metadata(path).map_err(|e| Error::io(path, "reading private key", e))?;
+    crate::error::check_regular(path, "reading private key", &meta)?;
+    let text =
+        std::fs::read_to_string(path).map_err(|e| Error::io(path, "reading private key", e))?;
+    if pem_label(&text) == Some("PUBLIC KEY") {
+        return Err(key_error(
+            path,
+            "this is a public key (SPKI PEM); `--key` takes the private key that signs \
+             (PKCS#8 PEM), such as the `--private` file of `anomark keygen`",
+        ));
+    }
     #[cfg(unix)]
     {
         use std::os::unix::fs::PermissionsExt;
@@ -159,18 +234,28 @@ pub fn load_private(path: &Path) -> Result<SigningKey> {
         }
     }
     let _ = meta;
-    let text =
-        std::fs::read_to_string(path).map_err(|e| Error::io(path, "reading private key", e))?;
-    SigningKey::from_pkcs8_pem(&text)
-        .map_err(|e| key_error(path, format!("not an Ed25519 PKCS#8 PEM private key ({e})")))
+    SigningKey::from_pkcs8_pem(&text).map_err(|e| match algorithm_in_words(&text) {
+        Some(what) => not_ed25519(path, what),
+        None => key_error(path, format!("not an Ed25519 PKCS#8 PEM private key ({e})")),
+    })
 }
 
 /// Reads an SPKI PEM public key.
 pub fn load_public(path: &Path) -> Result<VerifyingKey> {
+    crate::error::require_regular(path, "reading public key")?;
     let text =
         std::fs::read_to_string(path).map_err(|e| Error::io(path, "reading public key", e))?;
-    VerifyingKey::from_public_key_pem(&text)
-        .map_err(|e| key_error(path, format!("not an Ed25519 SPKI PEM public key ({e})")))
+    if matches!(pem_label(&text), Some("PRIVATE KEY")) {
+        return Err(key_error(
+            path,
+            "this is a private key; `--pubkey` takes the public key (SPKI PEM), such as the \
+             `--public` file of `anomark keygen`",
+        ));
+    }
+    VerifyingKey::from_public_key_pem(&text).map_err(|e| match algorithm_in_words(&text) {
+        Some(what) => not_ed25519(path, what),
+        None => key_error(path, format!("not an Ed25519 SPKI PEM public key ({e})")),
+    })
 }
 
 /// The signature of `message`, base64 on one line with a trailing newline.
@@ -181,20 +266,87 @@ pub fn sign(key: &SigningKey, message: &[u8]) -> String {
     s
 }
 
-/// Checks a run directory: the signature over `manifest.json`, then every
-/// listed file's hash, then that no unlisted file is present. Every difference
-/// is reported, not only the first.
+/// What a run directory holds, read without following links: its regular
+/// files and its folders (relative paths with `/` separators, sorted), and
+/// everything else (links, fifos, devices) as a problem naming it.
+struct Entries {
+    files: Vec<String>,
+    folders: Vec<String>,
+    others: Vec<String>,
+}
+
+fn entries(dir: &Path) -> Result<Entries> {
+    fn walk(here: &Path, prefix: &str, out: &mut Entries) -> Result<()> {
+        let mut list = std::fs::read_dir(here)
+            .map_err(|e| Error::io(here, "listing", e))?
+            .map(|e| e.map_err(|e| Error::io(here, "listing", e)))
+            .collect::<Result<Vec<_>>>()?;
+        list.sort_by_key(|e| e.file_name());
+        for entry in list {
+            let name = format!("{prefix}{}", entry.file_name().to_string_lossy());
+            // `file_type` does not follow a link: a link is reported as one.
+            let kind = entry
+                .file_type()
+                .map_err(|e| Error::io(entry.path(), "reading the type of", e))?;
+            if kind.is_file() {
+                out.files.push(name);
+            } else if kind.is_dir() {
+                walk(&entry.path(), &format!("{name}/"), out)?;
+                out.folders.push(name);
+            } else if kind.is_symlink() {
+                out.others.push(format!(
+                    "`{name}` is a symbolic link; a signed run holds regular files only"
+                ));
+            } else {
+                out.others.push(format!(
+                    "`{name}` is not a regular file (a fifo, socket or device); \
+                     a signed run holds regular files only"
+                ));
+            }
+        }
+        Ok(())
+    }
+    let mut out = Entries {
+        files: vec![],
+        folders: vec![],
+        others: vec![],
+    };
+    walk(dir, "", &mut out)?;
+    out.files.sort();
+    out.folders.sort();
+    Ok(out)
+}
+
+/// Checks a run directory: that it holds regular files only (no link, no
+/// fifo, no folder the manifest does not cover), the signature over
+/// `manifest.json`, then every listed file's hash, then that no unlisted
+/// file is present. Every difference is reported, not only the first.
 pub fn verify_dir(dir: &Path, key: &VerifyingKey) -> Result<Manifest> {
+    let found = entries(dir)?;
+    let fail = |mut problems: Vec<String>| {
+        let mut all = found.others.clone();
+        all.append(&mut problems);
+        Error::Verify {
+            dir: dir.to_path_buf(),
+            problems: all,
+        }
+    };
+    // Neither the manifest nor its signature is read through a link or from
+    // anything but a regular file (a fifo would never end).
+    if [MANIFEST, SIGNATURE].iter().any(|n| {
+        found
+            .others
+            .iter()
+            .any(|o| o.starts_with(&format!("`{n}`")))
+    }) {
+        return Err(fail(vec![]));
+    }
     let read = |name: &str| -> Result<Vec<u8>> {
         let p = dir.join(name);
         std::fs::read(&p).map_err(|e| Error::io(p, "reading", e))
     };
     let manifest_bytes = read(MANIFEST)?;
     let sig_text = read(SIGNATURE)?;
-    let fail = |problems: Vec<String>| Error::Verify {
-        dir: dir.to_path_buf(),
-        problems,
-    };
     // Strict form: the base64 of 64 bytes and one newline, nothing else, so
     // that no byte of the file can change unnoticed.
     let body = sig_text
@@ -237,8 +389,15 @@ pub fn verify_dir(dir: &Path, key: &VerifyingKey) -> Result<Manifest> {
     }
     for (name, want) in &manifest.files {
         let p = dir.join(name);
-        if !p.is_file() {
-            problems.push(format!("`{name}` is listed in the manifest but missing"));
+        if found.files.binary_search(name).is_err() {
+            // A link or fifo in its place is already named above.
+            if !found
+                .others
+                .iter()
+                .any(|o| o.starts_with(&format!("`{name}`")))
+            {
+                problems.push(format!("`{name}` is listed in the manifest but missing"));
+            }
             continue;
         }
         let got = crate::audit::hash::file(&p)?;
@@ -249,14 +408,22 @@ pub fn verify_dir(dir: &Path, key: &VerifyingKey) -> Result<Manifest> {
             ));
         }
     }
-    for name in list_files(dir)? {
-        if name != MANIFEST && name != SIGNATURE && !manifest.files.contains_key(&name) {
+    for name in &found.files {
+        if name != MANIFEST && name != SIGNATURE && !manifest.files.contains_key(name) {
             problems.push(format!(
                 "`{name}` is present but not covered by the manifest"
             ));
         }
     }
-    if problems.is_empty() {
+    for folder in &found.folders {
+        let inside = format!("{folder}/");
+        if !manifest.files.keys().any(|n| n.starts_with(&inside)) {
+            problems.push(format!(
+                "`{folder}` is a folder the manifest does not cover"
+            ));
+        }
+    }
+    if problems.is_empty() && found.others.is_empty() {
         Ok(manifest)
     } else {
         Err(fail(problems))

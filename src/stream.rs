@@ -473,6 +473,38 @@ impl Ctx<'_> {
                 keep.push(Some((a, p)));
             }
         }
+        let label_of = |r: u64| labels[(r - acc.row) as usize].as_deref().unwrap_or("");
+        let values = crate::data::by_value(bad_label.iter().map(|&r| (r, label_of(r))));
+        if values.len() > 1 {
+            // Several undeclared values: each with its own lines.
+            let f = &self.files[acc.file as usize];
+            let unit = match f.format {
+                Format::Csv => RowUnit::Line,
+                Format::Parquet => RowUnit::Row,
+            };
+            let each: Vec<(&str, String)> = values
+                .iter()
+                .take(5)
+                .map(|(v, rows)| {
+                    let places: Vec<u64> =
+                        rows.iter().take(5).map(|&r| f.format.place(r)).collect();
+                    (*v, crate::error::places(&places, rows.len(), unit))
+                })
+                .collect();
+            return Err(Error::Data {
+                path: f.shown.clone().into(),
+                column: Some(label.column.name.clone()),
+                message: crate::data::bad_labels_message(
+                    &label.normal,
+                    &label.anomaly,
+                    &each,
+                    values.len(),
+                ),
+                lines: vec![],
+                total: 0,
+                unit,
+            });
+        }
         if let Some(&first) = bad_label.first() {
             let i = (first - acc.row) as usize;
             return Err(self.data_error(
@@ -703,10 +735,7 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
         {
             continue;
         }
-        let err = |e: PolarsError| Error::Csv {
-            path: file.path.clone(),
-            message: e.to_string(),
-        };
+        let err = |e: PolarsError| crate::data::read_error(&file.path, e);
         let ppath = PlRefPath::try_from_path(&file.path).map_err(err)?;
         let lf = match file.format {
             Format::Csv => {

@@ -32,6 +32,10 @@ pub fn append(path: &Path, entry: &Entry) -> Result<Vec<Entry>> {
         .append(true)
         .open(path)
         .map_err(|e| Error::io(path, "opening the test ledger", e))?;
+    let meta = f
+        .metadata()
+        .map_err(|e| Error::io(path, "opening the test ledger", e))?;
+    crate::error::check_regular(path, "opening the test ledger", &meta)?;
     f.lock()
         .map_err(|e| Error::io(path, "locking the test ledger", e))?;
     let result = (|| {
@@ -83,8 +87,20 @@ fn read_from(r: impl BufRead, path: &Path) -> Result<Vec<Entry>> {
     Ok(out)
 }
 
+/// Refuses a ledger path that exists and is not a regular file (`/dev/full`
+/// would be read without end, a fifo would block); an absent ledger is fine,
+/// the first opening creates it. Checked before a final run does any work.
+pub fn check_path(path: &Path) -> Result<()> {
+    match std::fs::metadata(path) {
+        Ok(meta) => crate::error::check_regular(path, "opening the test ledger", &meta),
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(()),
+        Err(e) => Err(Error::io(path, "opening the test ledger", e)),
+    }
+}
+
 /// Every entry of the ledger at `path` (none when it does not exist).
 pub fn read(path: &Path) -> Result<Vec<Entry>> {
+    check_path(path)?;
     match std::fs::File::open(path) {
         Ok(f) => read_from(std::io::BufReader::new(f), path),
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(vec![]),

@@ -294,9 +294,20 @@ fn template_error(name: &str, e: minijinja::Error) -> Error {
     }
 }
 
+/// Refuses a templates folder that cannot be listed: a missing path, a
+/// regular file or an unreadable folder (a file problem, not the built-in card).
+pub fn check_overrides(dir: &Path) -> Result<()> {
+    std::fs::read_dir(dir)
+        .map(drop)
+        .map_err(|e| Error::io(dir, "reading the templates folder", e))
+}
+
 /// Renders `card.md` and `card.html`, using `overrides` (a directory) for any
 /// template file it holds.
 pub fn render(ctx: &CardContext, overrides: Option<&Path>) -> Result<(String, String)> {
+    if let Some(d) = overrides {
+        check_overrides(d)?;
+    }
     let mut env = Environment::new();
     env.set_undefined_behavior(UndefinedBehavior::Strict);
     env.add_filter("md", |s: String| escape_md(&s));

@@ -144,9 +144,9 @@ impl Dataset {
         )
     }
 
-    /// A data error about `rows` (all assumed from the first row's file, which
-    /// is the one named; rows from other files are counted, not listed).
-    pub fn error(&self, column: &str, message: String, rows: &[RowId]) -> Error {
+    /// The first row's file and the first places of `rows` in it (rows from
+    /// other files are counted, not listed).
+    fn places(&self, rows: &[RowId]) -> (&SourceFile, Vec<u64>) {
         let first = self.origin[rows[0].0 as usize].file;
         let f = &self.files[first as usize];
         let places = rows
@@ -156,6 +156,13 @@ impl Dataset {
             .take(SHOWN)
             .map(|o| f.format.place(o.row))
             .collect();
+        (f, places)
+    }
+
+    /// A data error about `rows` (all assumed from the first row's file, which
+    /// is the one named; rows from other files are counted, not listed).
+    pub fn error(&self, column: &str, message: String, rows: &[RowId]) -> Error {
+        let (f, places) = self.places(rows);
         Error::Data {
             path: PathBuf::from(&f.shown),
             column: Some(column.to_string()),
@@ -165,13 +172,183 @@ impl Dataset {
             unit: f.format.unit(),
         }
     }
+
+    /// The places of `rows` in words, such as `line 8` or `lines 8, 10 and
+    /// 3 more`, prefixed by the file when it is not `file`.
+    fn places_in_words(&self, rows: &[RowId], file: &str) -> String {
+        let (f, places) = self.places(rows);
+        let words = crate::error::places(&places, rows.len(), f.format.unit());
+        if f.shown == file {
+            words
+        } else {
+            format!("`{}` {words}", f.shown)
+        }
+    }
+
+    /// The refusal of label values that are neither declared value: one
+    /// value with its places, or each value with its own places (the first
+    /// [`SHOWN`] values, in order of first appearance, and how many more).
+    fn bad_labels(
+        &self,
+        column: &str,
+        normal: &str,
+        anomaly: &str,
+        bad: &[(RowId, String)],
+    ) -> Error {
+        let values = by_value(bad.iter().map(|(r, v)| (*r, v.as_str())));
+        let rows: Vec<RowId> = bad.iter().map(|r| r.0).collect();
+        if let [(v, _)] = values.as_slice() {
+            return self.error(
+                column,
+                format!(
+                    "label `{v}` is neither the normal value `{normal}` nor the anomaly value `{anomaly}`"
+                ),
+                &rows,
+            );
+        }
+        let (f, _) = self.places(&rows);
+        let each: Vec<(&str, String)> = values
+            .iter()
+            .take(SHOWN)
+            .map(|(v, rows)| (*v, self.places_in_words(rows, &f.shown)))
+            .collect();
+        Error::Data {
+            path: PathBuf::from(&f.shown),
+            column: Some(column.to_string()),
+            message: bad_labels_message(normal, anomaly, &each, values.len()),
+            lines: vec![],
+            total: 0,
+            unit: f.format.unit(),
+        }
+    }
 }
 
-fn csv_error(path: &Path, e: PolarsError) -> Error {
+/// The error of a failed read of `path` by polars: a file that cannot be
+/// opened or read (missing, unreadable, a dangling or looping link) is a
+/// file problem ([`Error::Io`], exit 4) wherever polars wrapped it; anything
+/// else is the reader refusing the content.
+pub(crate) fn read_error(path: &Path, e: PolarsError) -> Error {
+    let mut inner = &e;
+    loop {
+        match inner {
+            PolarsError::Context { error, .. } | PolarsError::ExprContext { error, .. } => {
+                inner = error
+            }
+            PolarsError::IO { error, .. } => {
+                let source = match error.raw_os_error() {
+                    Some(code) => std::io::Error::from_raw_os_error(code),
+                    None => std::io::Error::new(error.kind(), error.to_string()),
+                };
+                return Error::io(path, "reading", source);
+            }
+            _ => break,
+        }
+    }
+    // The format follows the extension, as everywhere a file's format is chosen.
+    let parquet = path
+        .extension()
+        .and_then(|x| x.to_str())
+        .is_some_and(|x| matches!(x.to_ascii_lowercase().as_str(), "parquet" | "pq"));
+    // The reader's message names no line; for CSV the first line at fault
+    // is found by a scan of the file (only once the read has failed).
+    let message = match (parquet, first_bad_csv_line(path)) {
+        (false, Some(m)) => m,
+        _ => e.to_string(),
+    };
     Error::Csv {
         path: path.to_path_buf(),
-        message: e.to_string(),
+        format: if parquet { "Parquet" } else { "CSV" },
+        message,
     }
+}
+
+/// The first line of a CSV file that no reader can take, in words: a line
+/// that is not UTF-8, or a record with more or fewer fields than the header
+/// (quoted fields may hold commas, newlines and doubled quotes). `None` when
+/// every line is well formed or the file cannot be read.
+fn first_bad_csv_line(path: &Path) -> Option<String> {
+    use std::io::BufRead;
+    let mut reader = std::io::BufReader::new(std::fs::File::open(path).ok()?);
+    let mut buf = Vec::new();
+    let (mut line, mut start, mut fields, mut quoted) = (0u64, 1u64, 1usize, false);
+    let mut header: Option<usize> = None;
+    loop {
+        buf.clear();
+        if reader.read_until(b'\n', &mut buf).ok()? == 0 {
+            return None;
+        }
+        line += 1;
+        if !quoted {
+            start = line;
+        }
+        if std::str::from_utf8(&buf).is_err() {
+            return Some(format!("line {line} is not valid UTF-8"));
+        }
+        for &b in buf.iter() {
+            match b {
+                b'"' => quoted = !quoted,
+                b',' if !quoted => fields += 1,
+                _ => {}
+            }
+        }
+        if quoted {
+            continue;
+        }
+        let body = buf.strip_suffix(b"\n").unwrap_or(&buf);
+        let body = body.strip_suffix(b"\r").unwrap_or(body);
+        let count = fields;
+        fields = 1;
+        match header {
+            None => header = Some(count),
+            // A blank line holds no record.
+            Some(_) if body.is_empty() => {}
+            Some(h) if count != h => {
+                let at = if start == line {
+                    format!("line {line}")
+                } else {
+                    format!("the record on lines {start} to {line}")
+                };
+                return Some(format!("{at} has {count} fields but the header has {h}"));
+            }
+            Some(_) => {}
+        }
+    }
+}
+
+/// Groups `(row, value)` pairs by value, in order of first appearance.
+pub(crate) fn by_value<'a, R>(bad: impl Iterator<Item = (R, &'a str)>) -> Vec<(&'a str, Vec<R>)> {
+    let mut values: Vec<(&str, Vec<R>)> = Vec::new();
+    let mut at: BTreeMap<&str, usize> = BTreeMap::new();
+    for (r, v) in bad {
+        let k = *at.entry(v).or_insert_with(|| {
+            values.push((v, Vec::new()));
+            values.len() - 1
+        });
+        values[k].1.push(r);
+    }
+    values
+}
+
+/// The refusal of `distinct` undeclared label values, each of the first
+/// ones (`each`: the value and its places in words) with its own places.
+pub(crate) fn bad_labels_message(
+    normal: &str,
+    anomaly: &str,
+    each: &[(&str, String)],
+    distinct: usize,
+) -> String {
+    let mut shown: Vec<String> = each
+        .iter()
+        .map(|(v, places)| format!("`{v}` ({places})"))
+        .collect();
+    if distinct > each.len() {
+        shown.push(format!("and {} more values", distinct - each.len()));
+    }
+    format!(
+        "{distinct} different labels are neither the normal value `{normal}` nor the anomaly \
+         value `{anomaly}`: {}",
+        shown.join(", ")
+    )
 }
 
 /// A file's column names and, for each, whether it is numeric (every CSV
@@ -185,16 +362,16 @@ pub fn columns_of(path: &Path, format: Format) -> Result<Vec<(String, bool)>> {
             .with_infer_schema_length(Some(0))
             .try_into_reader_with_file_path(Some(path.to_path_buf()))
             .and_then(|r| r.finish())
-            .map_err(|e| csv_error(path, e))?
+            .map_err(|e| read_error(path, e))?
             .get_column_names()
             .iter()
             .map(|n| (n.to_string(), true))
             .collect()),
         Format::Parquet => {
-            let ppath = PlRefPath::try_from_path(path).map_err(|e| csv_error(path, e))?;
+            let ppath = PlRefPath::try_from_path(path).map_err(|e| read_error(path, e))?;
             let mut lf = LazyFrame::scan_parquet(ppath, ScanArgsParquet::default())
-                .map_err(|e| csv_error(path, e))?;
-            let schema = lf.collect_schema().map_err(|e| csv_error(path, e))?;
+                .map_err(|e| read_error(path, e))?;
+            let schema = lf.collect_schema().map_err(|e| read_error(path, e))?;
             Ok(schema
                 .iter()
                 .map(|(n, t)| (n.to_string(), t.is_primitive_numeric()))
@@ -312,19 +489,18 @@ pub(crate) fn expand(s: &SourcePlan, plan: &Plan) -> Result<Vec<PathBuf>> {
             )));
         }
         out
-    } else if p.is_file() {
-        vec![p.clone()]
     } else {
-        return Err(Error::io(
-            p,
-            "reading data",
-            std::io::Error::new(std::io::ErrorKind::NotFound, "no such file or directory"),
-        ));
+        // Missing, a dangling link, a device or a fifo: each says what it is.
+        crate::error::require_regular(p, "reading data")?;
+        vec![p.clone()]
     };
     files.sort();
+    // Nothing but regular files is read: a fifo or device named `.parquet`
+    // in a folder would block or never end. Then each real file once.
     let mut real = std::collections::BTreeSet::new();
     let mut once = Vec::with_capacity(files.len());
     for f in files {
+        crate::error::require_regular(&f, "reading data")?;
         let r = std::fs::canonicalize(&f).map_err(|e| Error::io(&f, "resolving", e))?;
         if real.insert(r) {
             once.push(f);
@@ -562,7 +738,7 @@ fn read_csv_polars(
         .with_infer_schema_length(Some(0))
         .try_into_reader_with_file_path(Some(path.to_path_buf()))
         .and_then(|r| r.finish())
-        .map_err(|e| csv_error(path, e))?;
+        .map_err(|e| read_error(path, e))?;
     let present: Vec<String> = header
         .get_column_names()
         .iter()
@@ -601,7 +777,7 @@ fn read_csv_polars(
                 .with_infer_schema_length(Some(0))
                 .try_into_reader_with_file_path(Some(path.to_path_buf()))
                 .and_then(|r| r.finish())
-                .map_err(|e| csv_error(path, e))?;
+                .map_err(|e| read_error(path, e))?;
             (df, true)
         }
     };
@@ -641,13 +817,13 @@ fn read_parquet(
     text: &[&Column],
     types: &mut BTreeMap<String, (DataType, String)>,
 ) -> Result<FileFrame> {
-    let ppath = PlRefPath::try_from_path(path).map_err(|e| csv_error(path, e))?;
+    let ppath = PlRefPath::try_from_path(path).map_err(|e| read_error(path, e))?;
     let lf = LazyFrame::scan_parquet(ppath, ScanArgsParquet::default())
-        .map_err(|e| csv_error(path, e))?;
+        .map_err(|e| read_error(path, e))?;
     let schema = lf
         .clone()
         .collect_schema()
-        .map_err(|e| csv_error(path, e))?;
+        .map_err(|e| read_error(path, e))?;
     let present: Vec<String> = schema.iter_names().map(|s| s.to_string()).collect();
     let file = shown(path, plan);
     for c in numeric.iter().chain(text) {
@@ -695,7 +871,10 @@ fn read_parquet(
                 .map(|c| col(c.name.as_str()).cast(DataType::String)),
         )
         .collect();
-    let df = lf.select(exprs).collect().map_err(|e| csv_error(path, e))?;
+    let df = lf
+        .select(exprs)
+        .collect()
+        .map_err(|e| read_error(path, e))?;
     typed_frame(&df, path, numeric, text)
 }
 
@@ -721,7 +900,7 @@ fn f64_values(df: &DataFrame, path: &Path, name: &str) -> Result<Vec<Option<f64>
     let c = df
         .column(name)
         .and_then(|c| c.f64().cloned())
-        .map_err(|e| csv_error(path, e))?;
+        .map_err(|e| read_error(path, e))?;
     Ok(c.iter().collect())
 }
 
@@ -729,7 +908,7 @@ fn text_values(df: &DataFrame, path: &Path, name: &str) -> Result<Vec<Option<Str
     let c = df
         .column(name)
         .and_then(|c| c.str().cloned())
-        .map_err(|e| csv_error(path, e))?;
+        .map_err(|e| read_error(path, e))?;
     Ok(c.iter().map(|s| s.map(str::to_string)).collect())
 }
 
@@ -932,16 +1111,8 @@ pub fn inspect(plan: &Plan) -> Result<Inspection> {
             ));
         }
     }
-    if let (Some((_, v)), Some(l)) = (bad_label.first(), label) {
-        let rows: Vec<RowId> = bad_label.iter().map(|r| r.0).collect();
-        problems.push(data.error(
-            &l.column.name,
-            format!(
-                "label `{v}` is neither the normal value `{}` nor the anomaly value `{}`",
-                l.normal, l.anomaly
-            ),
-            &rows,
-        ));
+    if let (false, Some(l)) = (bad_label.is_empty(), label) {
+        problems.push(data.bad_labels(&l.column.name, &l.normal, &l.anomaly, &bad_label));
     }
     for (k, c) in text_cols.iter().enumerate() {
         if label.is_some_and(|l| l.column.name == c.name) {
@@ -995,12 +1166,71 @@ pub fn load(plan: &Plan) -> Result<Dataset> {
         return Err(p);
     }
     match plan.missing {
-        MissingPolicy::Refuse => match missing.into_iter().next() {
+        MissingPolicy::Refuse => match all_missing(missing) {
             Some(e) => Err(e),
             None => Ok(data),
         },
         MissingPolicy::DropRow => Ok(drop_rows(data, &has_missing, plan)),
     }
+}
+
+/// How many columns a refusal for missing values lists.
+const SHOWN_COLUMNS: usize = 12;
+
+/// One refusal for every missing value: a column's own error when one column
+/// has them, else every column (up to [`SHOWN_COLUMNS`]) with its first places
+/// and the total count of missing cells, as `check` lists them.
+fn all_missing(missing: Vec<Error>) -> Option<Error> {
+    if missing.len() <= 1 {
+        return missing.into_iter().next();
+    }
+    let mut path: Option<PathBuf> = None;
+    let mut unit = RowUnit::Line;
+    let mut cells = 0;
+    let mut each = Vec::new();
+    for e in &missing {
+        if let Error::Data {
+            path: here,
+            column,
+            lines,
+            total,
+            unit: u,
+            ..
+        } = e
+        {
+            let first = path.get_or_insert_with(|| {
+                unit = *u;
+                here.clone()
+            });
+            let places = crate::error::places(lines, *total, *u);
+            let place = if first == here {
+                places
+            } else {
+                format!("`{}` {places}", here.display())
+            };
+            cells += total;
+            if each.len() < SHOWN_COLUMNS {
+                each.push(format!(
+                    "column `{}` ({place})",
+                    column.as_deref().unwrap_or_default()
+                ));
+            }
+        }
+    }
+    if missing.len() > SHOWN_COLUMNS {
+        each.push(format!(
+            "and {} more columns",
+            missing.len() - SHOWN_COLUMNS
+        ));
+    }
+    Some(Error::Data {
+        path: path.unwrap_or_default(),
+        column: None,
+        message: format!("{cells} feature values are missing: {}", each.join(", ")),
+        lines: vec![],
+        total: 0,
+        unit,
+    })
 }
 
 /// Leaves out the rows marked in `drop`, counting them by label (and by split
@@ -1091,6 +1321,22 @@ mod tests {
         )
         .unwrap();
         crate::spec::load(&spec).unwrap()
+    }
+
+    #[test]
+    fn an_io_error_from_the_reader_is_a_file_problem() {
+        // A permission refusal, even inside polars' context wrapping, is a
+        // file problem (README's exit-code table), not a data refusal.
+        let io = PolarsError::from(std::io::Error::new(
+            std::io::ErrorKind::PermissionDenied,
+            "permission denied",
+        ));
+        let wrapped = io.context("reading the header".into());
+        let e = read_error(Path::new("d.csv"), wrapped);
+        assert_eq!(e.code(), crate::error::exit::IO, "{e}");
+        assert!(e.to_string().starts_with("reading `d.csv`: "), "{e}");
+        let e = read_error(Path::new("d.csv"), PolarsError::ComputeError("bad".into()));
+        assert_eq!(e.code(), crate::error::exit::DATA, "{e}");
     }
 
     /// The plain-CSV reader and polars' reader agree bit for bit on random

@@ -294,6 +294,7 @@ impl Plan {
 
 /// Reads and resolves the spec at `path`.
 pub fn load(path: &Path) -> Result<Plan> {
+    crate::error::require_regular(path, "reading spec")?;
     let bytes = std::fs::read(path).map_err(|e| Error::io(path, "reading spec", e))?;
     parse(path, bytes)
 }
@@ -382,11 +383,14 @@ fn clean_path(path: &str) -> String {
 /// For the parser's terse type errors ("invalid u64"), says what was expected
 /// in words and what was found: the scalar at the error's column.
 fn with_found(msg: String, line_text: &str, column: usize) -> String {
-    let expected = match msg.as_str() {
-        "invalid u64" | "invalid u32" | "invalid usize" => "a whole number ≥ 0",
-        "invalid i64" | "invalid i32" => "a whole number",
-        "invalid floating point" | "invalid f64" => "a number",
-        "invalid boolean" | "invalid bool" => "`true` or `false`",
+    // The range of each whole-number type, for a number too large for it.
+    let (expected, range) = match msg.as_str() {
+        "invalid u64" | "invalid usize" => ("a whole number ≥ 0", Some((0, u64::MAX as i128))),
+        "invalid u32" => ("a whole number ≥ 0", Some((0, u32::MAX as i128))),
+        "invalid i64" => ("a whole number", Some((i64::MIN as i128, i64::MAX as i128))),
+        "invalid i32" => ("a whole number", Some((i32::MIN as i128, i32::MAX as i128))),
+        "invalid floating point" | "invalid f64" => ("a number", None),
+        "invalid boolean" | "invalid bool" => ("`true` or `false`", None),
         _ => return msg,
     };
     let rest: String = line_text.chars().skip(column.saturating_sub(1)).collect();
@@ -395,6 +399,19 @@ fn with_found(msg: String, line_text: &str, column: usize) -> String {
         .take_while(|c| !matches!(c, ',' | '}' | ']' | '#'))
         .collect();
     let found = found.trim();
+    let digits = found.strip_prefix('-').unwrap_or(found);
+    if let Some((lo, hi)) = range {
+        // A whole number the type cannot hold: say the range, not the type.
+        let whole = !digits.is_empty() && digits.bytes().all(|b| b.is_ascii_digit());
+        let negative = found.starts_with('-');
+        let out_of_range = match found.parse::<i128>() {
+            Ok(v) => v < lo || v > hi,
+            Err(_) => whole,
+        };
+        if whole && out_of_range && !(negative && lo == 0) {
+            return format!("`{found}` is out of range: expected a whole number from {lo} to {hi}");
+        }
+    }
     if found.is_empty() {
         format!("expected {expected}")
     } else {

@@ -21,6 +21,8 @@ mod leakage;
 mod ledger;
 mod progress;
 mod recompute;
+#[cfg(target_os = "linux")]
+mod refusals;
 mod schema;
 mod score;
 mod signing;

@@ -5,7 +5,7 @@ use polars::prelude::*;
 
 use crate::util::{csv, rows, spec, Case, Rows, PROTOCOL};
 
-fn parquet(path: &std::path::Path, r: &[(String, Vec<f64>, bool)], int_c: bool) {
+pub(crate) fn parquet(path: &std::path::Path, r: &[(String, Vec<f64>, bool)], int_c: bool) {
     let col = |j: usize| r.iter().map(|x| x.1[j]).collect::<Vec<f64>>();
     let c: Column = if int_c {
         Column::new(

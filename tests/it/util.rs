@@ -104,6 +104,40 @@ impl Case {
         }
     }
 
+    /// Like [`Case::exec`], but kills the process and fails the test when it
+    /// has not ended within `limit` (for inputs that could be read forever).
+    pub fn exec_within(&self, limit: std::time::Duration) -> Done {
+        let mut c = Command::new(BIN);
+        c.current_dir(self.dir.path())
+            .args(&self.args)
+            .stdout(std::process::Stdio::piped())
+            .stderr(std::process::Stdio::piped());
+        for (k, v) in &self.env {
+            c.env(k, v);
+        }
+        let mut child = c.spawn().unwrap();
+        let start = std::time::Instant::now();
+        while child.try_wait().unwrap().is_none() {
+            if start.elapsed() > limit {
+                let _ = child.kill();
+                let _ = child.wait();
+                panic!(
+                    "`anomark {}` did not end within {limit:?}",
+                    self.args.join(" ")
+                );
+            }
+            std::thread::sleep(std::time::Duration::from_millis(20));
+        }
+        let out = child.wait_with_output().unwrap();
+        Done {
+            keep: self.dir.clone(),
+            code: out.status.code().unwrap_or(-1),
+            stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
+            stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
+            dir: self.dir.path().to_path_buf(),
+        }
+    }
+
     pub fn success(&self) -> Done {
         let d = self.exec();
         assert_eq!(d.code, 0, "stderr: {}", d.stderr);
