@@ -406,6 +406,7 @@ pub struct SampleColumn {
 
 /// Reads the header and at most `rows` first rows of a CSV or Parquet file.
 pub fn sample(path: &Path, format: Format, rows: usize) -> Result<Sample> {
+    crate::error::require_regular(path, "reading data")?;
     let df = match format {
         Format::Csv => CsvReadOptions::default()
             .with_has_header(true)
@@ -414,27 +415,27 @@ pub fn sample(path: &Path, format: Format, rows: usize) -> Result<Sample> {
             .with_infer_schema_length(Some(0))
             .try_into_reader_with_file_path(Some(path.to_path_buf()))
             .and_then(|r| r.finish())
-            .map_err(|e| csv_error(path, e))?,
+            .map_err(|e| read_error(path, e))?,
         Format::Parquet => {
-            let ppath = PlRefPath::try_from_path(path).map_err(|e| csv_error(path, e))?;
+            let ppath = PlRefPath::try_from_path(path).map_err(|e| read_error(path, e))?;
             LazyFrame::scan_parquet(ppath, ScanArgsParquet::default())
                 .and_then(|lf| lf.limit(rows as IdxSize).collect())
-                .map_err(|e| csv_error(path, e))?
+                .map_err(|e| read_error(path, e))?
         }
     };
     let mut columns = Vec::with_capacity(df.width());
     for c in df.columns() {
         let name = c.name().to_string();
-        let as_text = c.cast(&DataType::String).map_err(|e| csv_error(path, e))?;
+        let as_text = c.cast(&DataType::String).map_err(|e| read_error(path, e))?;
         let text = as_text
             .str()
-            .map_err(|e| csv_error(path, e))?
+            .map_err(|e| read_error(path, e))?
             .iter()
             .map(|s| s.map(str::to_string))
             .collect();
         let numbers = if format == Format::Parquet && c.dtype().is_primitive_numeric() {
-            let n = c.cast(&DataType::Float64).map_err(|e| csv_error(path, e))?;
-            Some(n.f64().map_err(|e| csv_error(path, e))?.iter().collect())
+            let n = c.cast(&DataType::Float64).map_err(|e| read_error(path, e))?;
+            Some(n.f64().map_err(|e| read_error(path, e))?.iter().collect())
         } else {
             None
         };
