@@ -434,7 +434,9 @@ pub fn sample(path: &Path, format: Format, rows: usize) -> Result<Sample> {
             .map(|s| s.map(str::to_string))
             .collect();
         let numbers = if format == Format::Parquet && c.dtype().is_primitive_numeric() {
-            let n = c.cast(&DataType::Float64).map_err(|e| read_error(path, e))?;
+            let n = c
+                .cast(&DataType::Float64)
+                .map_err(|e| read_error(path, e))?;
             Some(n.f64().map_err(|e| read_error(path, e))?.iter().collect())
         } else {
             None
