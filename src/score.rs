@@ -29,6 +29,10 @@ pub const SCORE_COLUMN: &str = "anomark_score";
 pub const FLAG_COLUMN: &str = "anomark_flag";
 /// `blake3:` and the hash of the run's manifest.json.
 pub const RUN_COLUMN: &str = "anomark_run";
+/// With `--fdr`: the row's conformal p-value against the run's validation normals.
+pub const P_VALUE_COLUMN: &str = "anomark_p_value";
+/// With `--fdr`: 1 when the Benjamini-Hochberg procedure at level Q flags the row.
+pub const FDR_FLAG_COLUMN: &str = "anomark_fdr_flag";
 
 /// Rows per scoring block: blocks are scored in parallel and joined in order,
 /// so the result does not depend on the number of threads.
@@ -47,6 +51,10 @@ pub struct ScoreOptions {
     pub pubkey: Option<PathBuf>,
     /// Progress display.
     pub progress: Progress,
+    /// Flag the batch by Benjamini-Hochberg at this level, in (0, 1).
+    pub fdr: Option<f64>,
+    /// Write the drift report as a self-contained HTML file.
+    pub report: Option<PathBuf>,
 }
 
 /// What a scoring pass did.
@@ -69,6 +77,29 @@ pub struct ScoreSummary {
     pub signature_checked: bool,
     /// Peak resident memory of the process, MiB.
     pub peak_rss_mib: Option<f64>,
+    /// Conformal p-values and Benjamini-Hochberg flagging (with `--fdr`).
+    pub fdr: Option<FdrSummary>,
+    /// The batch's drift against the run (null for a run recorded before
+    /// drift references were kept).
+    pub drift: Option<crate::drift::DriftReport>,
+    /// The drift report file (with `--report`).
+    pub report: Option<PathBuf>,
+    /// Warnings, also printed on stderr.
+    pub warnings: Vec<String>,
+}
+
+/// Benjamini-Hochberg flagging of one scored batch.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct FdrSummary {
+    /// Q, the level.
+    pub q: f64,
+    /// n, the validation normals the p-values are computed against.
+    pub calibration_normals: usize,
+    /// Rows flagged (p ≤ the cut).
+    pub flagged: u64,
+    /// The cut: the largest p-value flagged (null when none is).
+    pub p_cut: Option<f64>,
 }
 
 fn format_of(path: &Path, role: &str) -> Result<Format> {
@@ -102,6 +133,10 @@ struct Recorded {
     tau: f64,
     columns: Vec<String>,
     manifest_blake3: String,
+    calibration: Option<crate::conformal::Calibration>,
+    drift_reference: Option<crate::record::DriftReference>,
+    /// A of the conformal policy.
+    conformal_level: Option<f64>,
 }
 
 fn bad_run(dir: &Path, message: String) -> Error {
@@ -166,6 +201,36 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
         Some(m) => m,
         None => crate::pipeline::refit_chosen(dir, &params)?,
     };
+    // Older runs kept neither; both are then simply absent.
+    let calibration = match run.get("calibration") {
+        None => None,
+        Some(c) => {
+            let c: crate::record::CalibrationRecord = serde_json::from_value(c.clone())
+                .map_err(|_| bad_run(dir, "run.json: `calibration` is unreadable".into()))?;
+            if c.candidate != candidate {
+                return Err(bad_run(
+                    dir,
+                    "run.json: `calibration` is not the chosen candidate's".into(),
+                ));
+            }
+            Some(
+                crate::conformal::Calibration::from_sorted(c.sorted_scores).ok_or_else(|| {
+                    bad_run(
+                        dir,
+                        "run.json: the calibration scores are not sorted".into(),
+                    )
+                })?,
+            )
+        }
+    };
+    let drift_reference = match run.get("drift-reference") {
+        None => None,
+        Some(d) => Some(
+            serde_json::from_value(d.clone())
+                .map_err(|_| bad_run(dir, "run.json: `drift-reference` is unreadable".into()))?,
+        ),
+    };
+    let conformal_level = run["threshold-policy"]["conformal"]["max-false-positive-rate"].as_f64();
     Ok(Recorded {
         candidate,
         set,
@@ -173,6 +238,9 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
         tau,
         columns,
         manifest_blake3: hash::bytes(&manifest_bytes),
+        calibration,
+        drift_reference,
+        conformal_level,
     })
 }
 
@@ -216,6 +284,8 @@ struct State {
     file: Option<std::fs::File>,
     rows: u64,
     flagged: u64,
+    fdr_flagged: u64,
+    drift: Option<crate::drift::DriftAccumulator>,
     error: Option<Error>,
 }
 
@@ -224,7 +294,21 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
     let in_format = format_of(&opts.data, "data file")?;
     let out_format = format_of(&opts.out, "output file")?;
     crate::output::check_file_target(&opts.out)?;
-    let run = recorded(&opts.dir, opts.pubkey.as_deref())?;
+    if let Some(q) = opts.fdr {
+        check_fdr_level(q)?;
+    }
+    if let Some(r) = &opts.report {
+        crate::output::check_file_target(r)?;
+    }
+    let run = Arc::new(recorded(&opts.dir, opts.pubkey.as_deref())?);
+    if opts.fdr.is_some() && run.calibration.is_none() {
+        return Err(bad_run(
+            &opts.dir,
+            "run.json keeps no calibration scores (a run recorded before conformal p-values): \
+             rerun the spec to score with `--fdr`"
+                .into(),
+        ));
+    }
 
     // The content columns the features read, and their names in the file.
     let used_idx = run.set.columns_used();
@@ -261,7 +345,13 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
             Some(_) => {}
         }
     }
-    for added in [SCORE_COLUMN, FLAG_COLUMN, RUN_COLUMN] {
+    for added in [
+        SCORE_COLUMN,
+        FLAG_COLUMN,
+        RUN_COLUMN,
+        P_VALUE_COLUMN,
+        FDR_FLAG_COLUMN,
+    ] {
         if names.iter().any(|n| n == added) {
             return Err(Error::Data {
                 path: opts.data.clone(),
@@ -274,6 +364,25 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         }
     }
     let used: Vec<String> = used_idx.iter().map(|&c| run.columns[c].clone()).collect();
+    // The Benjamini-Hochberg cut of this batch (`Some(None)`: nothing flagged).
+    let mut fdr_cut: Option<Option<f64>> = None;
+    let fdr = match (opts.fdr, &run.calibration) {
+        (Some(q), Some(cal)) => {
+            // A first pass: Benjamini-Hochberg needs every p-value of the batch
+            // before it flags any row. p takes only the values j / (n + 1), so
+            // counts per j are an exact summary in O(n) memory.
+            let counts = rank_counts(&run, &used, cal, in_format, &opts.data, opts.progress)?;
+            let cut = crate::conformal::bh_ranks(&counts, q);
+            fdr_cut = Some(cut.p_cut);
+            Some(FdrSummary {
+                q,
+                calibration_normals: cal.len(),
+                flagged: cut.rejected,
+                p_cut: cut.p_cut,
+            })
+        }
+        _ => None,
+    };
 
     let parent = match opts.out.parent() {
         Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
@@ -287,12 +396,16 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         .reopen()
         .map_err(|e| Error::io(temp.path(), "opening", e))?;
 
-    let run = Arc::new(run);
     let state = Arc::new(Mutex::new(State {
         writer: None,
         file: Some(file),
         rows: 0,
         flagged: 0,
+        fdr_flagged: 0,
+        drift: run
+            .drift_reference
+            .as_ref()
+            .map(crate::drift::DriftAccumulator::new),
         error: None,
     }));
     let counter = Arc::new(opts.progress.rows("scoring"));
@@ -306,15 +419,21 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
             if st.error.is_some() {
                 return Ok(true);
             }
-            match score_batch(&run, &used, df, &tag, st.rows, in_format, &data_path) {
-                Ok((out, flagged)) => {
+            match score_batch(
+                &run, &used, df, &tag, st.rows, in_format, &data_path, fdr_cut,
+            ) {
+                Ok((out, scored)) => {
                     let n = out.height() as u64;
                     if let Err(e) = write_batch(&mut st, &out, out_format) {
                         st.error = Some(e);
                         return Ok(true);
                     }
                     st.rows += n;
-                    st.flagged += flagged;
+                    st.flagged += scored.flagged;
+                    st.fdr_flagged += scored.fdr_flagged;
+                    if let Some(d) = st.drift.as_mut() {
+                        d.add(&scored.features, n, scored.flagged);
+                    }
                     counter.add(n);
                     Ok(false)
                 }
@@ -355,6 +474,18 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
                     Column::new_empty(FLAG_COLUMN.into(), &DataType::Boolean),
                     Column::new_empty(RUN_COLUMN.into(), &DataType::String),
                 ])
+                .chain(
+                    fdr_cut
+                        .is_some()
+                        .then(|| {
+                            [
+                                Column::new_empty(P_VALUE_COLUMN.into(), &DataType::Float64),
+                                Column::new_empty(FDR_FLAG_COLUMN.into(), &DataType::Boolean),
+                            ]
+                        })
+                        .into_iter()
+                        .flatten(),
+                )
                 .collect(),
         )
         .map_err(|e| Error::internal(format!("an empty frame: {e}")))?;
@@ -371,6 +502,58 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         }
         None => {}
     }
+    if let Some(f) = &fdr {
+        if st.fdr_flagged != f.flagged {
+            return Err(Error::internal(format!(
+                "the two scoring passes disagree: {} rows flagged by the first, {} by the second",
+                f.flagged, st.fdr_flagged
+            )));
+        }
+    }
+    let drift = match (&st.drift, &run.drift_reference) {
+        (Some(acc), Some(reference)) => {
+            let mut expected = vec![];
+            if let Some(p) = reference.validation_false_positive_rate {
+                expected.push(("the validation false-positive rate".to_string(), p));
+            }
+            if let Some(a) = run.conformal_level {
+                expected.push(("the conformal policy's level A".to_string(), a));
+            }
+            Some(acc.finish(reference, &expected))
+        }
+        _ => None,
+    };
+    let mut warnings = vec![];
+    if let Some(d) = &drift {
+        for r in d.flag_rate.iter().filter(|r| r.outside_limits) {
+            warnings.push(format!(
+                "the batch's flag rate {} lies outside the p-chart limits {}–{} around {} = {} \
+                 (exact binomial p = {}): the data may have drifted from the run's",
+                crate::record::fmt_f64(r.observed),
+                crate::record::fmt_f64(r.lower_limit),
+                crate::record::fmt_f64(r.upper_limit),
+                r.expected_from,
+                crate::record::fmt_f64(r.expected),
+                crate::record::fmt_f64(r.binomial_p_value)
+            ));
+        }
+    }
+    if let (Some(path), Some(d)) = (&opts.report, &drift) {
+        let html = crate::card::render_drift(&crate::card::DriftContext::of(
+            d,
+            &run.candidate,
+            &run.manifest_blake3,
+            fdr.as_ref(),
+        ))?;
+        write_report(path, html.as_bytes())?;
+    } else if let (Some(_), None) = (&opts.report, &drift) {
+        return Err(bad_run(
+            &opts.dir,
+            "run.json keeps no drift reference (a run recorded before drift reports): rerun \
+             the spec to write `--report`"
+                .into(),
+        ));
+    }
     temp.persist(&opts.out)
         .map_err(|e| Error::io(&opts.out, "renaming the finished output to", e.error))?;
     Ok(ScoreSummary {
@@ -382,7 +565,100 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         run_manifest_blake3: run.manifest_blake3.clone(),
         signature_checked: opts.pubkey.is_some(),
         peak_rss_mib: crate::progress::peak_rss_mib(),
+        fdr,
+        drift,
+        report: opts.report.clone(),
+        warnings,
     })
+}
+
+/// Writes the drift report through a temporary file renamed into place.
+fn write_report(path: &Path, bytes: &[u8]) -> Result<()> {
+    use std::io::Write;
+    let parent = match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
+        _ => PathBuf::from("."),
+    };
+    let mut temp = tempfile::Builder::new()
+        .prefix(".anomark-report-")
+        .tempfile_in(&parent)
+        .map_err(|e| Error::io(&parent, "creating a temporary file in", e))?;
+    temp.write_all(bytes)
+        .map_err(|e| Error::io(temp.path(), "writing", e))?;
+    temp.persist(path)
+        .map_err(|e| Error::io(path, "renaming the finished report to", e.error))?;
+    Ok(())
+}
+
+/// Refuses an FDR level outside (0, 1).
+pub fn check_fdr_level(q: f64) -> Result<()> {
+    if q.is_finite() && q > 0.0 && q < 1.0 {
+        Ok(())
+    } else {
+        Err(Error::Protocol {
+            message: format!("`--fdr` must lie strictly between 0 and 1, found `{q}`"),
+        })
+    }
+}
+
+/// The first pass of `--fdr`: how many rows have each conformal rank j
+/// (p = j / (n + 1)).
+fn rank_counts(
+    run: &Arc<Recorded>,
+    used: &[String],
+    cal: &crate::conformal::Calibration,
+    format: Format,
+    path: &Path,
+    progress: Progress,
+) -> Result<Vec<u64>> {
+    struct Pass {
+        counts: Vec<u64>,
+        rows: u64,
+        error: Option<Error>,
+    }
+    let state = Arc::new(Mutex::new(Pass {
+        counts: vec![0; cal.len() + 2],
+        rows: 0,
+        error: None,
+    }));
+    let counter = Arc::new(progress.rows("p-values"));
+    let shared = Arc::new((run.clone(), cal.clone(), used.to_vec(), path.to_path_buf()));
+    let callback = {
+        let (state, counter, shared) = (state.clone(), counter.clone(), shared.clone());
+        move |df: DataFrame| -> PolarsResult<bool> {
+            let (run, cal, used, path) = &*shared;
+            let mut st = state.lock().expect("the scoring state is not poisoned");
+            if st.error.is_some() {
+                return Ok(true);
+            }
+            match batch_scores(run, used, &df, st.rows, format, path) {
+                Ok((scores, _)) => {
+                    for s in scores {
+                        st.counts[cal.rank(s)] += 1;
+                    }
+                    st.rows += df.height() as u64;
+                    counter.add(df.height() as u64);
+                    Ok(false)
+                }
+                Err(e) => {
+                    st.error = Some(e);
+                    Ok(true)
+                }
+            }
+        }
+    };
+    let outcome = scan(path, format, used)?
+        .sink_batches(PlanCallback::new(callback), true, None)
+        .and_then(|lf| lf.collect_with_engine(Engine::Streaming));
+    drop(counter);
+    let mut st = state.lock().expect("the scoring state is not poisoned");
+    if let Some(e) = st.error.take() {
+        return Err(e);
+    }
+    if let Err(e) = outcome {
+        return Err(not_a_number(path, format == Format::Csv, used, e));
+    }
+    Ok(std::mem::take(&mut st.counts))
 }
 
 fn write_batch(st: &mut State, df: &DataFrame, format: Format) -> Result<()> {
@@ -407,7 +683,15 @@ fn write_batch(st: &mut State, df: &DataFrame, format: Format) -> Result<()> {
     }
 }
 
-/// Scores one batch; returns it with the three added columns and the number flagged.
+/// What scoring one batch found, besides the output rows.
+struct Scored {
+    flagged: u64,
+    fdr_flagged: u64,
+    /// The batch's feature values, one vector per feature, for drift.
+    features: Vec<Vec<f64>>,
+}
+
+/// Scores one batch; returns it with the added columns and what it found.
 fn score_batch(
     run: &Recorded,
     used: &[String],
@@ -416,7 +700,57 @@ fn score_batch(
     offset: u64,
     format: Format,
     path: &Path,
-) -> Result<(DataFrame, u64)> {
+    fdr_cut: Option<Option<f64>>,
+) -> Result<(DataFrame, Scored)> {
+    let n = df.height();
+    let (scores, x) = batch_scores(run, used, &df, offset, format, path)?;
+    let flags: Vec<bool> = scores.iter().map(|&s| s > run.tau).collect();
+    let flagged = flags.iter().filter(|&&f| f).count() as u64;
+    let mut added = vec![];
+    let mut fdr_flagged = 0;
+    if let (Some(cut), Some(cal)) = (fdr_cut, &run.calibration) {
+        let p: Vec<f64> = scores.iter().map(|&s| cal.p_value(s)).collect();
+        let f: Vec<bool> = p.iter().map(|&v| cut.is_some_and(|c| v <= c)).collect();
+        fdr_flagged = f.iter().filter(|&&f| f).count() as u64;
+        added.push(Column::new(P_VALUE_COLUMN.into(), p));
+        added.push(Column::new(FDR_FLAG_COLUMN.into(), f));
+    }
+    let features = if run.drift_reference.is_some() {
+        x.columns().into_iter().map(|c| c.to_vec()).collect()
+    } else {
+        vec![]
+    };
+    let mut out = df;
+    let added = [
+        Column::new(SCORE_COLUMN.into(), scores),
+        Column::new(FLAG_COLUMN.into(), flags),
+        Column::new(RUN_COLUMN.into(), vec![tag; n]),
+    ]
+    .into_iter()
+    .chain(added);
+    for c in added {
+        out.with_column(c)
+            .map_err(|e| Error::internal(format!("adding a column: {e}")))?;
+    }
+    Ok((
+        out,
+        Scored {
+            flagged,
+            fdr_flagged,
+            features,
+        },
+    ))
+}
+
+/// One batch's scores and feature matrix.
+fn batch_scores(
+    run: &Recorded,
+    used: &[String],
+    df: &DataFrame,
+    offset: u64,
+    format: Format,
+    path: &Path,
+) -> Result<(Vec<f64>, ndarray::Array2<f64>)> {
     let n = df.height();
     let unit = match format {
         Format::Csv => RowUnit::Line,
@@ -467,19 +801,7 @@ fn score_batch(
             unit,
         })?;
     let scores = crate::detect::score_in_blocks(run.model.as_ref(), x.view(), BLOCK);
-    let flags: Vec<bool> = scores.iter().map(|&s| s > run.tau).collect();
-    let flagged = flags.iter().filter(|&&f| f).count() as u64;
-    let mut out = df;
-    let added = [
-        Column::new(SCORE_COLUMN.into(), scores),
-        Column::new(FLAG_COLUMN.into(), flags),
-        Column::new(RUN_COLUMN.into(), vec![tag; n]),
-    ];
-    for c in added {
-        out.with_column(c)
-            .map_err(|e| Error::internal(format!("adding a column: {e}")))?;
-    }
-    Ok((out, flagged))
+    Ok((scores, x))
 }
 
 /// A column with values that are not numbers: its name, the first lines, how many.
