@@ -142,7 +142,7 @@ pub fn largest_rank_at_most(a: f64, n: usize) -> usize {
 
 /// The fewest calibration rows n with 1 / (n + 1) ≤ a (a in (0, 1]).
 pub fn normals_needed(a: f64) -> usize {
-    if !(a > 0.0) {
+    if a.is_nan() || a <= 0.0 {
         return usize::MAX;
     }
     let mut n = ((1.0 / a).ceil() as usize).saturating_sub(1);

@@ -419,9 +419,8 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
             if st.error.is_some() {
                 return Ok(true);
             }
-            match score_batch(
-                &run, &used, df, &tag, st.rows, in_format, &data_path, fdr_cut,
-            ) {
+            let tags = Tags { run: &tag, fdr_cut };
+            match score_batch(&run, &used, df, &tags, st.rows, in_format, &data_path) {
                 Ok((out, scored)) => {
                     let n = out.height() as u64;
                     if let Err(e) = write_batch(&mut st, &out, out_format) {
@@ -691,17 +690,26 @@ struct Scored {
     features: Vec<Vec<f64>>,
 }
 
+/// What every output row gets besides its score and flag.
+struct Tags<'a> {
+    /// The `anomark_run` value.
+    run: &'a str,
+    /// The batch's Benjamini-Hochberg cut (with `--fdr`; `Some(None)` when
+    /// nothing is flagged).
+    fdr_cut: Option<Option<f64>>,
+}
+
 /// Scores one batch; returns it with the added columns and what it found.
 fn score_batch(
     run: &Recorded,
     used: &[String],
     df: DataFrame,
-    tag: &str,
+    tags: &Tags<'_>,
     offset: u64,
     format: Format,
     path: &Path,
-    fdr_cut: Option<Option<f64>>,
 ) -> Result<(DataFrame, Scored)> {
+    let (tag, fdr_cut) = (tags.run, tags.fdr_cut);
     let n = df.height();
     let (scores, x) = batch_scores(run, used, &df, offset, format, path)?;
     let flags: Vec<bool> = scores.iter().map(|&s| s > run.tau).collect();
