@@ -392,6 +392,29 @@ pub fn render(ctx: &CardContext, overrides: Option<&Path>) -> Result<(String, St
 mod tests {
     use super::*;
 
+    /// The drift report escapes every text it is given, like the card.
+    #[test]
+    fn the_drift_report_escapes_names() {
+        let d = crate::drift::DriftReport {
+            rows: 10,
+            flagged: 1,
+            flag_rate: vec![crate::drift::rate_check("<i>validation</i>", 0.05, 1, 10)],
+            reference_rows: "training rows".into(),
+            reference_sample_rows: 5,
+            features: vec![crate::drift::FeatureDrift {
+                name: "<script>alert(1)</script>".into(),
+                batch_mean: 1.0,
+                reference_mean: 0.0,
+                shift_in_sd: Some(1.0),
+                ks_statistic: 0.5,
+            }],
+        };
+        let html = render_drift(&DriftContext::of(&d, "a&b", "00", None)).unwrap();
+        assert!(!html.contains("<script>") && html.contains("&lt;script&gt;"));
+        assert!(html.contains("&lt;i&gt;validation") && html.contains("a&amp;b"));
+        assert!(html.ends_with("</html>\n"));
+    }
+
     #[test]
     fn markdown_escape_neutralises_markup() {
         assert_eq!(

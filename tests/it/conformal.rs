@@ -218,3 +218,28 @@ fn a_shifted_batch_is_reported_as_drift() {
         .success();
     assert!(!calm.stderr.contains("outside"), "{}", calm.stderr);
 }
+
+/// `--fdr` output and the drift summary are the same bytes on one thread or
+/// many (the first pass's counts and the drift sums run in row order).
+#[test]
+fn fdr_scoring_is_the_same_on_any_thread_count() {
+    let r = rows(500, 20, 50);
+    let case = conformal_case(&r, "0.1");
+    case.clone().run_spec().success();
+    let mut outs = vec![];
+    for (threads, name) in [("1", "one.csv"), ("4", "four.csv")] {
+        let d = case
+            .clone()
+            .args([
+                "score", "out", "data.csv", "--out", name, "--fdr", "0.2", "--json",
+            ])
+            .env("RAYON_NUM_THREADS", threads)
+            .env("POLARS_MAX_THREADS", threads)
+            .success();
+        let mut j: serde_json::Value = serde_json::from_str(&d.stdout).unwrap();
+        j["out"] = serde_json::Value::Null;
+        j["peak-rss-mib"] = serde_json::Value::Null;
+        outs.push((d.read(name), j));
+    }
+    assert_eq!(outs[0], outs[1]);
+}
