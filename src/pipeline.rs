@@ -872,10 +872,14 @@ fn drift_reference(
     let columns = set.columns(data, &sampled)?;
     Ok(record::DriftReference {
         feature_set: set.set.clone(),
-        rows: format!(
-            "{what}, one in every {stride} of {} in content-hash order",
-            rows.len()
-        ),
+        rows: if stride > 1 {
+            format!(
+                "{what}, one in every {stride} of {} in content-hash order",
+                rows.len()
+            )
+        } else {
+            format!("all {} {what}", rows.len())
+        },
         sample_rows: sampled.len(),
         validation_false_positive_rate: fpr,
         features: set

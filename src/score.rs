@@ -526,14 +526,15 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
     if let Some(d) = &drift {
         for r in d.flag_rate.iter().filter(|r| r.outside_limits) {
             warnings.push(format!(
-                "the batch's flag rate {} lies outside the p-chart limits {}–{} around {} = {} \
-                 (exact binomial p = {}): the data may have drifted from the run's",
-                crate::record::fmt_f64(r.observed),
-                crate::record::fmt_f64(r.lower_limit),
-                crate::record::fmt_f64(r.upper_limit),
+                "the batch's flag rate {:.4} lies outside the p-chart limits {:.4}–{:.4} around \
+                 {} = {:.4} (exact binomial p = {:.3e}): the data may have drifted from the run's, or \
+                 the batch holds many anomalies",
+                r.observed,
+                r.lower_limit,
+                r.upper_limit,
                 r.expected_from,
-                crate::record::fmt_f64(r.expected),
-                crate::record::fmt_f64(r.binomial_p_value)
+                r.expected,
+                r.binomial_p_value
             ));
         }
     }
