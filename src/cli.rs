@@ -84,6 +84,15 @@ pub enum Command {
         /// Refuse the run unless its signature verifies with this public key (SPKI PEM).
         #[arg(long, value_name = "PATH")]
         pubkey: Option<PathBuf>,
+        /// Add each row's conformal p-value and flag the batch by the
+        /// Benjamini-Hochberg procedure at this false-discovery rate, in (0, 1)
+        /// (reads the data twice).
+        #[arg(long, value_name = "Q", value_parser = fdr_level)]
+        fdr: Option<f64>,
+        /// Also write the batch's drift report as a self-contained HTML file
+        /// (never overwritten).
+        #[arg(long, value_name = "FILE")]
+        report: Option<PathBuf>,
         /// Show no progress (progress is drawn only on a terminal anyway).
         #[arg(long, short)]
         quiet: bool,
@@ -251,6 +260,8 @@ impl From<Args> for Request {
                 data,
                 out,
                 pubkey,
+                fdr,
+                report,
                 quiet,
                 json,
             } => Request::Score {
@@ -259,6 +270,8 @@ impl From<Args> for Request {
                     data,
                     out,
                     pubkey,
+                    fdr,
+                    report,
                     progress: Progress::new(quiet || json),
                 },
                 json,
@@ -279,6 +292,16 @@ impl From<Args> for Request {
             Command::Schema => Request::Schema,
             Command::Diff { old, new, json } => Request::Diff { old, new, json },
         }
+    }
+}
+
+/// `--fdr`: a number strictly between 0 and 1.
+fn fdr_level(s: &str) -> Result<f64, String> {
+    match s.parse::<f64>() {
+        Ok(q) if q.is_finite() && q > 0.0 && q < 1.0 => Ok(q),
+        _ => Err(format!(
+            "must be a number strictly between 0 and 1, found `{s}`"
+        )),
     }
 }
 

@@ -19,9 +19,11 @@ pub mod card;
 pub mod check;
 pub mod cleanup;
 pub mod cli;
+pub mod conformal;
 pub mod data;
 pub mod detect;
 pub mod diff;
+pub mod drift;
 pub mod error;
 pub mod features;
 pub mod init;
@@ -134,6 +136,38 @@ fn rate(v: Option<f64>) -> String {
     v.map_or("n/a".into(), |v| format!("{v:.4}"))
 }
 
+/// The text summary's lines on FDR flagging and drift.
+fn score_extra(s: &score::ScoreSummary) -> String {
+    let mut out = String::new();
+    if let Some(f) = &s.fdr {
+        out += &format!(
+            "Benjamini-Hochberg at Q = {}: {} flagged (p-value cut {}; {} validation normals)\n",
+            record::fmt_f64(f.q),
+            f.flagged,
+            f.p_cut.map_or("none".into(), record::fmt_f64),
+            f.calibration_normals
+        );
+    }
+    if let Some(d) = &s.drift {
+        for r in &d.flag_rate {
+            out += &format!(
+                "flag rate {:.4} against {} {:.4}: limits {:.4}–{:.4}, binomial p {:.3e}{}\n",
+                r.observed,
+                r.expected_from,
+                r.expected,
+                r.lower_limit,
+                r.upper_limit,
+                r.binomial_p_value,
+                if r.outside_limits { " (outside)" } else { "" }
+            );
+        }
+    }
+    if let Some(r) = &s.report {
+        out += &format!("drift report: {}\n", r.display());
+    }
+    out
+}
+
 /// Carries out a request.
 pub fn run(request: &Request) -> Result<Outcome> {
     let mut code = error::exit::OK;
@@ -233,6 +267,7 @@ pub fn run(request: &Request) -> Result<Outcome> {
         }
         Request::Score { opts, json } => {
             let s = score::score(opts)?;
+            warnings = s.warnings.clone();
             if *json {
                 to_json(&s)?
             } else {
@@ -250,7 +285,7 @@ pub fn run(request: &Request) -> Result<Outcome> {
                     s.run_manifest_blake3,
                     if s.signature_checked { " (signature verified)" } else { " (signature not checked: pass --pubkey)" },
                     s.out.display()
-                )
+                ) + &score_extra(&s)
             }
         }
         Request::Verify {

@@ -176,6 +176,13 @@ pub fn policy_name(p: ThresholdPolicy) -> String {
             "alarm-budget: the highest validation recall with a false-positive rate of at most {}",
             fmt_f64(max_false_positive_rate)
         ),
+        ThresholdPolicy::Conformal {
+            max_false_positive_rate,
+        } => format!(
+            "conformal: flag a row when its conformal p-value against the validation normals is at \
+             most {}",
+            fmt_f64(max_false_positive_rate)
+        ),
         ThresholdPolicy::RecallTarget { min_recall } => format!(
             "recall-target: the lowest validation false-positive rate with recall at least {}",
             fmt_f64(min_recall)
@@ -528,6 +535,23 @@ fn execute(
         .iter()
         .map(|r| data.is_anomaly[r.0 as usize])
         .collect();
+    if let ThresholdPolicy::Conformal {
+        max_false_positive_rate: a,
+    } = plan.threshold
+    {
+        let n = val_y.iter().filter(|&&y| !y).count();
+        if crate::conformal::largest_rank_at_most(a, n) == 0 {
+            return Err(Error::Protocol {
+                message: format!(
+                    "threshold `conformal`: a false-alarm level of `{}` needs at least `{}` \
+                     validation normal rows, and the validation split has `{n}`; enlarge the \
+                     validation split or raise `max-false-positive-rate`",
+                    fmt_f64(a),
+                    crate::conformal::normals_needed(a)
+                ),
+            });
+        }
+    }
     let beta = match plan.threshold {
         ThresholdPolicy::MaxFBeta { beta } => Some(beta),
         _ => None,
@@ -859,6 +883,27 @@ fn execute(
             chosen: candidates[chosen].name.clone(),
         },
         candidates: candidate_records,
+        calibration: record::CalibrationRecord {
+            candidate: candidates[chosen].name.clone(),
+            validation_normals: val_y.iter().filter(|&&y| !y).count(),
+            sorted_scores: crate::conformal::Calibration::of_normals(
+                &candidates[chosen].validation_scores,
+                &val_y,
+            )
+            .sorted()
+            .to_vec(),
+        },
+        drift_reference: drift_reference(
+            &fitted_sets[candidates[chosen].set],
+            &data,
+            if streamed.is_some() {
+                None
+            } else {
+                Some(&splits.train)
+            },
+            &splits.validation,
+            candidates[chosen].validation.false_positive_rate,
+        )?,
         wall_clock,
     };
 
@@ -994,6 +1039,85 @@ fn execute(
         warnings,
     };
     Ok((files, summary))
+}
+
+/// The drift reference: the chosen feature set's values on a systematic
+/// sample (every k-th row in canonical order, at most
+/// [`record::DRIFT_SAMPLE_ROWS`]) of the training rows, or of the validation
+/// normal rows when the training rows were streamed and not kept.
+fn drift_reference(
+    set: &features::FittedFeatures,
+    data: &data::Dataset,
+    train: Option<&[RowId]>,
+    validation: &[RowId],
+    fpr: Option<f64>,
+) -> Result<record::DriftReference> {
+    let (rows, what): (Vec<RowId>, &str) = match train {
+        Some(t) => (t.to_vec(), "training rows"),
+        None => (
+            validation
+                .iter()
+                .copied()
+                .filter(|r| !data.is_anomaly[r.0 as usize])
+                .collect(),
+            "validation normal rows (the training rows were streamed, not kept)",
+        ),
+    };
+    let stride = rows.len().div_ceil(record::DRIFT_SAMPLE_ROWS).max(1);
+    let sampled: Vec<RowId> = rows.iter().copied().step_by(stride).collect();
+    let columns = set.columns(data, &sampled)?;
+    Ok(record::DriftReference {
+        feature_set: set.set.clone(),
+        rows: if stride > 1 {
+            format!(
+                "{what}, one in every {stride} of {} in content-hash order",
+                rows.len()
+            )
+        } else {
+            format!("all {} {what}", rows.len())
+        },
+        sample_rows: sampled.len(),
+        validation_false_positive_rate: fpr,
+        features: set
+            .names()
+            .iter()
+            .zip(&columns)
+            .map(|(n, c)| record::FeatureReference::of(n, c))
+            .collect(),
+    })
+}
+
+/// The card's statement of the conformal guarantee and its check on test.
+fn conformal_card(plan: &Plan, rec: &RunRecord) -> Option<card::ConformalCard> {
+    let ThresholdPolicy::Conformal {
+        max_false_positive_rate: a,
+    } = plan.threshold
+    else {
+        return None;
+    };
+    let chosen = rec.candidates.iter().find(|c| c.chosen)?;
+    let cal = crate::conformal::Calibration::from_sorted(rec.calibration.sorted_scores.clone())?;
+    let rank = cal.cut(a).ok()?.k;
+    let test = chosen.test.as_ref();
+    Some(card::ConformalCard {
+        level: fmt_f64(a),
+        validation_normals: cal.len(),
+        rank,
+        candidates: rec.candidates.len(),
+        test_false_positive_rate: test.map(|t| {
+            format!(
+                "{} of {} test normals flagged: {} (W {}; CP {})",
+                t.confusion.fp,
+                t.confusion.fp + t.confusion.tn,
+                fmt_rate(t.false_positive_rate),
+                fmt_ci(t.false_positive_rate_95.wilson),
+                fmt_ci(t.false_positive_rate_95.clopper_pearson)
+            )
+        }),
+        test_above_level: test
+            .and_then(|t| t.false_positive_rate_95.clopper_pearson)
+            .is_some_and(|ci| ci.low > a),
+    })
 }
 
 /// At most this many rows feed each feature figure (a systematic sample above).
@@ -1375,6 +1499,7 @@ fn card_context(
                 fmt_f64(w.seconds)
             )
         }),
+        conformal: conformal_card(plan, rec),
     })
 }
 

@@ -102,6 +102,11 @@ pub struct RunRecord {
     pub selection: SelectionRecord,
     /// Every candidate.
     pub candidates: Vec<CandidateRecord>,
+    /// The chosen candidate's calibration scores, for conformal p-values
+    /// when scoring new data.
+    pub calibration: CalibrationRecord,
+    /// What a scored batch's drift is measured against.
+    pub drift_reference: DriftReference,
     /// The only wall-clock field: when the run started and how long it took.
     /// Null with `--no-wall-clock`; everything else is reproducible to the byte.
     pub wall_clock: Option<WallClock>,
@@ -225,6 +230,83 @@ pub struct CandidateRecord {
     /// `true` for the chosen candidate. The test numbers of every candidate,
     /// chosen or not, were computed after selection and played no part in it.
     pub chosen: bool,
+}
+
+/// The calibration set of conformal p-values: the chosen candidate's scores
+/// of the validation normal rows (never used to fit it), sorted ascending.
+/// p(x) = (1 + #{scores ≥ s(x)}) / (n + 1).
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct CalibrationRecord {
+    /// The candidate whose scores these are.
+    pub candidate: String,
+    /// n, the number of validation normal rows.
+    pub validation_normals: usize,
+    /// Their scores, ascending (`total_cmp` order).
+    pub sorted_scores: Vec<f64>,
+}
+
+/// The chosen candidate's feature values on a bounded systematic sample of
+/// the rows its feature figures show, for per-feature drift in `score`.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct DriftReference {
+    /// The feature set.
+    pub feature_set: String,
+    /// Which rows were sampled, in words.
+    pub rows: String,
+    /// Sampled rows (at most [`DRIFT_SAMPLE_ROWS`]).
+    pub sample_rows: usize,
+    /// The validation false-positive rate of the chosen candidate: the flag
+    /// rate expected of a batch of normal rows.
+    pub validation_false_positive_rate: Option<f64>,
+    /// One entry per feature, in the feature set's order.
+    pub features: Vec<FeatureReference>,
+}
+
+/// At most this many rows are kept for drift (a systematic sample in
+/// content-hash order above): enough for a two-sample Kolmogorov-Smirnov
+/// statistic with a resolution of 1/2000, and run.json stays small (not
+/// measured; picked for size).
+pub const DRIFT_SAMPLE_ROWS: usize = 2000;
+
+/// One feature's reference for drift.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct FeatureReference {
+    /// Feature name.
+    pub name: String,
+    /// Mean of the sample.
+    pub mean: f64,
+    /// Standard deviation of the sample (n − 1 denominator).
+    pub sd: f64,
+    /// The sample's values, ascending.
+    pub sorted_sample: Vec<f64>,
+}
+
+impl FeatureReference {
+    /// From a feature's sampled values.
+    pub fn of(name: &str, values: &[f64]) -> Self {
+        let n = values.len() as f64;
+        let mean = if values.is_empty() {
+            0.0
+        } else {
+            values.iter().sum::<f64>() / n
+        };
+        let sd = if values.len() < 2 {
+            0.0
+        } else {
+            (values.iter().map(|v| (v - mean) * (v - mean)).sum::<f64>() / (n - 1.0)).sqrt()
+        };
+        let mut sorted_sample = values.to_vec();
+        sorted_sample.sort_by(f64::total_cmp);
+        FeatureReference {
+            name: name.into(),
+            mean,
+            sd,
+            sorted_sample,
+        }
+    }
 }
 
 /// How often the test split has been opened, from the ledger.

@@ -32,6 +32,10 @@ pub const SCORE_COLUMN: &str = "anomark_score";
 pub const FLAG_COLUMN: &str = "anomark_flag";
 /// `blake3:` and the hash of the run's manifest.json.
 pub const RUN_COLUMN: &str = "anomark_run";
+/// With `--fdr`: the row's conformal p-value against the run's validation normals.
+pub const P_VALUE_COLUMN: &str = "anomark_p_value";
+/// With `--fdr`: 1 when the Benjamini-Hochberg procedure at level Q flags the row.
+pub const FDR_FLAG_COLUMN: &str = "anomark_fdr_flag";
 
 /// Rows per scoring block: blocks are scored in parallel and joined in order,
 /// so the result does not depend on the number of threads.
@@ -50,6 +54,10 @@ pub struct ScoreOptions {
     pub pubkey: Option<PathBuf>,
     /// Progress display.
     pub progress: Progress,
+    /// Flag the batch by Benjamini-Hochberg at this level, in (0, 1).
+    pub fdr: Option<f64>,
+    /// Write the drift report as a self-contained HTML file.
+    pub report: Option<PathBuf>,
 }
 
 /// What a scoring pass did.
@@ -72,6 +80,29 @@ pub struct ScoreSummary {
     pub signature_checked: bool,
     /// Peak resident memory of the process, MiB.
     pub peak_rss_mib: Option<f64>,
+    /// Conformal p-values and Benjamini-Hochberg flagging (with `--fdr`).
+    pub fdr: Option<FdrSummary>,
+    /// The batch's drift against the run (null for a run recorded before
+    /// drift references were kept).
+    pub drift: Option<crate::drift::DriftReport>,
+    /// The drift report file (with `--report`).
+    pub report: Option<PathBuf>,
+    /// Warnings, also printed on stderr.
+    pub warnings: Vec<String>,
+}
+
+/// Benjamini-Hochberg flagging of one scored batch.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct FdrSummary {
+    /// Q, the level.
+    pub q: f64,
+    /// n, the validation normals the p-values are computed against.
+    pub calibration_normals: usize,
+    /// Rows flagged (p ≤ the cut).
+    pub flagged: u64,
+    /// The cut: the largest p-value flagged (null when none is).
+    pub p_cut: Option<f64>,
 }
 
 /// Which end of `score` a file is, for the wording of a refusal.
@@ -137,6 +168,10 @@ struct Recorded {
     tau: f64,
     columns: Vec<String>,
     manifest_blake3: String,
+    calibration: Option<crate::conformal::Calibration>,
+    drift_reference: Option<crate::record::DriftReference>,
+    /// A of the conformal policy.
+    conformal_level: Option<f64>,
 }
 
 fn bad_run(dir: &Path, message: String) -> Error {
@@ -206,6 +241,36 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
             None => crate::pipeline::refit_chosen(dir, &params)?,
         })
     };
+    // Older runs kept neither; both are then simply absent.
+    let calibration = match run.get("calibration") {
+        None => None,
+        Some(c) => {
+            let c: crate::record::CalibrationRecord = serde_json::from_value(c.clone())
+                .map_err(|_| bad_run(dir, "run.json: `calibration` is unreadable".into()))?;
+            if c.candidate != candidate {
+                return Err(bad_run(
+                    dir,
+                    "run.json: `calibration` is not the chosen candidate's".into(),
+                ));
+            }
+            Some(
+                crate::conformal::Calibration::from_sorted(c.sorted_scores).ok_or_else(|| {
+                    bad_run(
+                        dir,
+                        "run.json: the calibration scores are not sorted".into(),
+                    )
+                })?,
+            )
+        }
+    };
+    let drift_reference = match run.get("drift-reference") {
+        None => None,
+        Some(d) => Some(
+            serde_json::from_value(d.clone())
+                .map_err(|_| bad_run(dir, "run.json: `drift-reference` is unreadable".into()))?,
+        ),
+    };
+    let conformal_level = run["threshold-policy"]["conformal"]["max-false-positive-rate"].as_f64();
     Ok(Recorded {
         candidate,
         set,
@@ -213,6 +278,9 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
         tau,
         columns,
         manifest_blake3: hash::bytes(&manifest_bytes),
+        calibration,
+        drift_reference,
+        conformal_level,
     })
 }
 
@@ -256,6 +324,8 @@ struct State {
     file: Option<std::fs::File>,
     rows: u64,
     flagged: u64,
+    fdr_flagged: u64,
+    drift: Option<crate::drift::DriftAccumulator>,
     error: Option<Error>,
 }
 
@@ -264,9 +334,23 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
     let in_format = format_of(&opts.data, Role::Input)?;
     let out_format = format_of(&opts.out, Role::Output)?;
     crate::output::check_file_target(&opts.out)?;
-    let run = recorded(&opts.dir, opts.pubkey.as_deref())?;
+    if let Some(q) = opts.fdr {
+        check_fdr_level(q)?;
+    }
+    if let Some(r) = &opts.report {
+        crate::output::check_file_target(r)?;
+    }
+    let run = Arc::new(recorded(&opts.dir, opts.pubkey.as_deref())?);
     // Not a device or fifo, which would be read without end or block.
     crate::error::require_regular(&opts.data, "reading data")?;
+    if opts.fdr.is_some() && run.calibration.is_none() {
+        return Err(bad_run(
+            &opts.dir,
+            "run.json keeps no calibration scores (a run recorded before conformal p-values): \
+             rerun the spec to score with `--fdr`"
+                .into(),
+        ));
+    }
 
     // The content columns the features read, and their names in the file.
     let used_idx = run.set.columns_used();
@@ -303,7 +387,13 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
             Some(_) => {}
         }
     }
-    for added in [SCORE_COLUMN, FLAG_COLUMN, RUN_COLUMN] {
+    for added in [
+        SCORE_COLUMN,
+        FLAG_COLUMN,
+        RUN_COLUMN,
+        P_VALUE_COLUMN,
+        FDR_FLAG_COLUMN,
+    ] {
         if names.iter().any(|n| n == added) {
             return Err(Error::Data {
                 path: opts.data.clone(),
@@ -321,6 +411,25 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         let shown = opts.data.display().to_string();
         crate::data::refuse_repeated_columns(&opts.data, &shown, &wanted)?;
     }
+    // The Benjamini-Hochberg cut of this batch (`Some(None)`: nothing flagged).
+    let mut fdr_cut: Option<Option<f64>> = None;
+    let fdr = match (opts.fdr, &run.calibration) {
+        (Some(q), Some(cal)) => {
+            // A first pass: Benjamini-Hochberg needs every p-value of the batch
+            // before it flags any row. p takes only the values j / (n + 1), so
+            // counts per j are an exact summary in O(n) memory.
+            let counts = rank_counts(&run, &used, cal, in_format, &opts.data, opts.progress)?;
+            let cut = crate::conformal::bh_ranks(&counts, q);
+            fdr_cut = Some(cut.p_cut);
+            Some(FdrSummary {
+                q,
+                calibration_normals: cal.len(),
+                flagged: cut.rejected,
+                p_cut: cut.p_cut,
+            })
+        }
+        _ => None,
+    };
 
     let parent = match opts.out.parent() {
         Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
@@ -337,12 +446,16 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         .reopen()
         .map_err(|e| Error::io(temp.path(), "opening", e))?;
 
-    let run = Arc::new(run);
     let state = Arc::new(Mutex::new(State {
         writer: None,
         file: Some(file),
         rows: 0,
         flagged: 0,
+        fdr_flagged: 0,
+        drift: run
+            .drift_reference
+            .as_ref()
+            .map(crate::drift::DriftAccumulator::new),
         error: None,
     }));
     let counter = Arc::new(opts.progress.rows("scoring"));
@@ -357,15 +470,20 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
             if st.error.is_some() {
                 return Ok(true);
             }
-            match score_batch(&run, &used, df, &tag, st.rows, in_format, &data_path) {
-                Ok((out, flagged)) => {
+            let tags = Tags { run: &tag, fdr_cut };
+            match score_batch(&run, &used, df, &tags, st.rows, in_format, &data_path) {
+                Ok((out, scored)) => {
                     let n = out.height() as u64;
                     if let Err(e) = write_batch(&mut st, &out, out_format, &out_path) {
                         st.error = Some(e);
                         return Ok(true);
                     }
                     st.rows += n;
-                    st.flagged += flagged;
+                    st.flagged += scored.flagged;
+                    st.fdr_flagged += scored.fdr_flagged;
+                    if let Some(d) = st.drift.as_mut() {
+                        d.add(&scored.features, n, scored.flagged);
+                    }
                     counter.add(n);
                     Ok(false)
                 }
@@ -411,6 +529,18 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
                     Column::new_empty(FLAG_COLUMN.into(), &DataType::Boolean),
                     Column::new_empty(RUN_COLUMN.into(), &DataType::String),
                 ])
+                .chain(
+                    fdr_cut
+                        .is_some()
+                        .then(|| {
+                            [
+                                Column::new_empty(P_VALUE_COLUMN.into(), &DataType::Float64),
+                                Column::new_empty(FDR_FLAG_COLUMN.into(), &DataType::Boolean),
+                            ]
+                        })
+                        .into_iter()
+                        .flatten(),
+                )
                 .collect(),
         )
         .map_err(|e| Error::internal(format!("an empty frame: {e}")))?;
@@ -423,6 +553,59 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
             w.finish().map_err(out_err)?;
         }
         None => {}
+    }
+    if let Some(f) = &fdr {
+        if st.fdr_flagged != f.flagged {
+            return Err(Error::internal(format!(
+                "the two scoring passes disagree: {} rows flagged by the first, {} by the second",
+                f.flagged, st.fdr_flagged
+            )));
+        }
+    }
+    let drift = match (&st.drift, &run.drift_reference) {
+        (Some(acc), Some(reference)) => {
+            let mut expected = vec![];
+            if let Some(p) = reference.validation_false_positive_rate {
+                expected.push(("the validation false-positive rate".to_string(), p));
+            }
+            if let Some(a) = run.conformal_level {
+                expected.push(("the conformal policy's level A".to_string(), a));
+            }
+            Some(acc.finish(reference, &expected))
+        }
+        _ => None,
+    };
+    let mut warnings = vec![];
+    if let Some(d) = &drift {
+        for r in d.flag_rate.iter().filter(|r| r.outside_limits) {
+            warnings.push(format!(
+                "the batch's flag rate {:.4} lies outside the p-chart limits {:.4}–{:.4} around \
+                 {} = {:.4} (exact binomial p = {:.3e}): the data may have drifted from the run's, or \
+                 the batch holds many anomalies",
+                r.observed,
+                r.lower_limit,
+                r.upper_limit,
+                r.expected_from,
+                r.expected,
+                r.binomial_p_value
+            ));
+        }
+    }
+    if let (Some(path), Some(d)) = (&opts.report, &drift) {
+        let html = crate::card::render_drift(&crate::card::DriftContext::of(
+            d,
+            &run.candidate,
+            &run.manifest_blake3,
+            fdr.as_ref(),
+        ))?;
+        write_report(path, html.as_bytes())?;
+    } else if let (Some(_), None) = (&opts.report, &drift) {
+        return Err(bad_run(
+            &opts.dir,
+            "run.json keeps no drift reference (a run recorded before drift reports): rerun \
+             the spec to write `--report`"
+                .into(),
+        ));
     }
     registered.finish(|| {
         temp.persist(&opts.out)
@@ -437,6 +620,10 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         run_manifest_blake3: run.manifest_blake3.clone(),
         signature_checked: opts.pubkey.is_some(),
         peak_rss_mib: crate::progress::peak_rss_mib(),
+        fdr,
+        drift,
+        report: opts.report.clone(),
+        warnings,
     })
 }
 
@@ -454,6 +641,101 @@ fn write_error(out: &Path, e: PolarsError) -> Error {
         cause = c.source();
     }
     Error::internal(format!("writing a scored batch: {e}"))
+}
+
+/// Writes the drift report through a temporary file renamed into place.
+fn write_report(path: &Path, bytes: &[u8]) -> Result<()> {
+    use std::io::Write;
+    let parent = match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
+        _ => PathBuf::from("."),
+    };
+    let mut temp = tempfile::Builder::new()
+        .prefix(".anomark-report-")
+        .tempfile_in(&parent)
+        .map_err(|e| Error::io(&parent, "creating a temporary file in", e))?;
+    temp.write_all(bytes)
+        .map_err(|e| Error::io(temp.path(), "writing", e))?;
+    temp.persist(path)
+        .map_err(|e| Error::io(path, "renaming the finished report to", e.error))?;
+    Ok(())
+}
+
+/// Refuses an FDR level outside (0, 1).
+pub fn check_fdr_level(q: f64) -> Result<()> {
+    if q.is_finite() && q > 0.0 && q < 1.0 {
+        Ok(())
+    } else {
+        Err(Error::Protocol {
+            message: format!("`--fdr` must lie strictly between 0 and 1, found `{q}`"),
+        })
+    }
+}
+
+/// The first pass of `--fdr`: how many rows have each conformal rank j
+/// (p = j / (n + 1)).
+fn rank_counts(
+    run: &Arc<Recorded>,
+    used: &[String],
+    cal: &crate::conformal::Calibration,
+    format: Format,
+    path: &Path,
+    progress: Progress,
+) -> Result<Vec<u64>> {
+    struct Pass {
+        counts: Vec<u64>,
+        rows: u64,
+        error: Option<Error>,
+    }
+    let state = Arc::new(Mutex::new(Pass {
+        counts: vec![0; cal.len() + 2],
+        rows: 0,
+        error: None,
+    }));
+    let counter = Arc::new(progress.rows("p-values"));
+    let shared = Arc::new((run.clone(), cal.clone(), used.to_vec(), path.to_path_buf()));
+    let callback = {
+        let (state, counter, shared) = (state.clone(), counter.clone(), shared.clone());
+        move |df: DataFrame| -> PolarsResult<bool> {
+            let (run, cal, used, path) = &*shared;
+            let mut st = state.lock().expect("the scoring state is not poisoned");
+            if st.error.is_some() {
+                return Ok(true);
+            }
+            match batch_scores(run, used, &df, st.rows, format, path) {
+                Ok((scores, _)) => {
+                    for s in scores {
+                        st.counts[cal.rank(s)] += 1;
+                    }
+                    st.rows += df.height() as u64;
+                    counter.add(df.height() as u64);
+                    Ok(false)
+                }
+                Err(e) => {
+                    st.error = Some(e);
+                    Ok(true)
+                }
+            }
+        }
+    };
+    let lf = scan(path, format, used)?;
+    // A command is run once on the whole input, as when the rows are written.
+    let outcome = if let Scorer::Command(..) = run.scorer {
+        lf.collect().and_then(&callback).map(|_| ())
+    } else {
+        lf.sink_batches(PlanCallback::new(callback), true, None)
+            .and_then(|lf| lf.collect_with_engine(Engine::Streaming))
+            .map(|_| ())
+    };
+    drop(counter);
+    let mut st = state.lock().expect("the scoring state is not poisoned");
+    if let Some(e) = st.error.take() {
+        return Err(e);
+    }
+    if let Err(e) = outcome {
+        return Err(not_a_number(path, format == Format::Csv, used, e));
+    }
+    Ok(std::mem::take(&mut st.counts))
 }
 
 fn write_batch(st: &mut State, df: &DataFrame, format: Format, out: &Path) -> Result<()> {
@@ -478,16 +760,83 @@ fn write_batch(st: &mut State, df: &DataFrame, format: Format, out: &Path) -> Re
     }
 }
 
-/// Scores one batch; returns it with the three added columns and the number flagged.
+/// What scoring one batch found, besides the output rows.
+struct Scored {
+    flagged: u64,
+    fdr_flagged: u64,
+    /// The batch's feature values, one vector per feature, for drift.
+    features: Vec<Vec<f64>>,
+}
+
+/// What every output row gets besides its score and flag.
+struct Tags<'a> {
+    /// The `anomark_run` value.
+    run: &'a str,
+    /// The batch's Benjamini-Hochberg cut (with `--fdr`; `Some(None)` when
+    /// nothing is flagged).
+    fdr_cut: Option<Option<f64>>,
+}
+
+/// Scores one batch; returns it with the added columns and what it found.
 fn score_batch(
     run: &Recorded,
     used: &[String],
     df: DataFrame,
-    tag: &str,
+    tags: &Tags<'_>,
     offset: u64,
     format: Format,
     path: &Path,
-) -> Result<(DataFrame, u64)> {
+) -> Result<(DataFrame, Scored)> {
+    let (tag, fdr_cut) = (tags.run, tags.fdr_cut);
+    let n = df.height();
+    let (scores, x) = batch_scores(run, used, &df, offset, format, path)?;
+    let flags: Vec<bool> = scores.iter().map(|&s| s > run.tau).collect();
+    let flagged = flags.iter().filter(|&&f| f).count() as u64;
+    let mut added = vec![];
+    let mut fdr_flagged = 0;
+    if let (Some(cut), Some(cal)) = (fdr_cut, &run.calibration) {
+        let p: Vec<f64> = scores.iter().map(|&s| cal.p_value(s)).collect();
+        let f: Vec<bool> = p.iter().map(|&v| cut.is_some_and(|c| v <= c)).collect();
+        fdr_flagged = f.iter().filter(|&&f| f).count() as u64;
+        added.push(Column::new(P_VALUE_COLUMN.into(), p));
+        added.push(Column::new(FDR_FLAG_COLUMN.into(), f));
+    }
+    let features = if run.drift_reference.is_some() {
+        x.columns().into_iter().map(|c| c.to_vec()).collect()
+    } else {
+        vec![]
+    };
+    let mut out = df;
+    let added = [
+        Column::new(SCORE_COLUMN.into(), scores),
+        Column::new(FLAG_COLUMN.into(), flags),
+        Column::new(RUN_COLUMN.into(), vec![tag; n]),
+    ]
+    .into_iter()
+    .chain(added);
+    for c in added {
+        out.with_column(c)
+            .map_err(|e| Error::internal(format!("adding a column: {e}")))?;
+    }
+    Ok((
+        out,
+        Scored {
+            flagged,
+            fdr_flagged,
+            features,
+        },
+    ))
+}
+
+/// One batch's scores and feature matrix.
+fn batch_scores(
+    run: &Recorded,
+    used: &[String],
+    df: &DataFrame,
+    offset: u64,
+    format: Format,
+    path: &Path,
+) -> Result<(Vec<f64>, ndarray::Array2<f64>)> {
     let n = df.height();
     let unit = match format {
         Format::Csv => RowUnit::Line,
@@ -551,19 +900,7 @@ fn score_batch(
             .0
         }
     };
-    let flags: Vec<bool> = scores.iter().map(|&s| s > run.tau).collect();
-    let flagged = flags.iter().filter(|&&f| f).count() as u64;
-    let mut out = df;
-    let added = [
-        Column::new(SCORE_COLUMN.into(), scores),
-        Column::new(FLAG_COLUMN.into(), flags),
-        Column::new(RUN_COLUMN.into(), vec![tag; n]),
-    ];
-    for c in added {
-        out.with_column(c)
-            .map_err(|e| Error::internal(format!("adding a column: {e}")))?;
-    }
-    Ok((out, flagged))
+    Ok((scores, x))
 }
 
 /// A column with values that are not numbers: its name, the first lines, how many.
@@ -659,6 +996,8 @@ mod tests {
             file: Some(file),
             rows: 0,
             flagged: 0,
+            fdr_flagged: 0,
+            drift: None,
             error: None,
         };
         let values: Vec<f64> = (0..200_000).map(|i| i as f64 / 7.0).collect();

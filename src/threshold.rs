@@ -131,7 +131,7 @@ pub fn objective(policy: ThresholdPolicy) -> (String, Objective) {
         ThresholdPolicy::AlarmBudget { .. } | ThresholdPolicy::PrecisionTarget { .. } => {
             ("recall".into(), Box::new(recall))
         }
-        ThresholdPolicy::RecallTarget { .. } => (
+        ThresholdPolicy::RecallTarget { .. } | ThresholdPolicy::Conformal { .. } => (
             "false-positive rate".into(),
             Box::new(|c| rate(c.fp, c.fp + c.tn)),
         ),
@@ -213,7 +213,7 @@ fn choose_from(
     make_cuts: impl FnOnce() -> Vec<Cut>,
 ) -> Choice {
     let cuts = match policy {
-        ThresholdPolicy::Fixed { .. } => Vec::new(),
+        ThresholdPolicy::Fixed { .. } | ThresholdPolicy::Conformal { .. } => Vec::new(),
         _ => make_cuts(),
     };
     let cuts = cuts.as_slice();
@@ -284,12 +284,43 @@ fn choose_from(
             let cost = |c: &Confusion| missed_anomaly * c.fn_ as f64 + false_alarm * c.fp as f64;
             chosen(cuts[best_by(cuts, |a, b| cost(a) < cost(b))])
         }
+        ThresholdPolicy::Conformal {
+            max_false_positive_rate: a,
+        } => conformal(scores, is_anomaly, a),
         ThresholdPolicy::Fixed { tau, ln_epsilon } => {
             let tau = tau.or(ln_epsilon.map(|l| -l)).unwrap_or(0.0);
             chosen(Cut {
                 c: Confusion::at(scores, is_anomaly, tau),
                 tau,
             })
+        }
+    }
+}
+
+/// The conformal threshold at level A: τ is the ⌈(1 − A)(n + 1)⌉-th
+/// smallest score of the n validation normals (taken from their sorted
+/// scores directly, not from the cut points), and s > τ flags exactly the rows
+/// with conformal p-value ≤ A (see [`crate::conformal::Calibration::cut`]).
+/// A level below 1/(n + 1) is unmet (the pipeline refuses it before this
+/// point, naming the number of validation normals it would need).
+pub fn conformal(scores: &[f64], is_anomaly: &[bool], a: f64) -> Choice {
+    let cal = crate::conformal::Calibration::of_normals(scores, is_anomaly);
+    match cal.cut(a) {
+        Ok(cut) => chosen(Cut {
+            c: Confusion::at(scores, is_anomaly, cut.tau),
+            tau: cut.tau,
+        }),
+        Err(e) => {
+            let tau = cal.sorted().last().copied().unwrap_or(0.0);
+            Choice {
+                tau,
+                confusion: Confusion::at(scores, is_anomaly, tau),
+                met: false,
+                note: Some(format!(
+                    "a false-alarm level of {a} needs at least {} validation normals, found {}",
+                    e.need, e.have
+                )),
+            }
         }
     }
 }
@@ -488,6 +519,31 @@ mod tests {
         assert!((f_beta(&c, 2.0) - 0.7843137254901961).abs() <= 1e-12);
         assert!((f_beta(&c, 0.5) - 0.7407407407407407).abs() <= 1e-12);
         assert!((f_beta(&c, 1.0) - 0.7619047619047619).abs() <= 1e-12);
+    }
+
+    /// The conformal policy's τ flags exactly the validation normals whose
+    /// conformal p-value (computed by its definition) is at most A.
+    #[test]
+    fn conformal_tau_flags_the_rows_with_small_p_values() {
+        let s = [0.5, 1.0, 1.0, 2.0, 3.0, 4.0, 9.0, 8.0];
+        let y = [false, false, false, false, false, false, true, true];
+        // n = 6 normals; A = 0.3: m = ⌊0.3 · 7⌋ = 2, k = 5, τ = 3 (5th smallest).
+        let c = conformal(&s, &y, 0.3);
+        assert!(c.met);
+        assert_eq!(c.tau, 3.0);
+        assert_eq!(c.confusion.fp, 1);
+        assert_eq!(c.confusion.tp, 2);
+        let normals: Vec<f64> = s.iter().zip(&y).filter(|p| !p.1).map(|p| *p.0).collect();
+        for &x in &s {
+            let p = (1 + normals.iter().filter(|&&v| v >= x).count()) as f64 / 7.0;
+            assert_eq!(x > c.tau, p <= 0.3, "{x}");
+        }
+        let c = conformal(&s, &y, 0.1);
+        assert!(!c.met);
+        assert!(c
+            .note
+            .unwrap()
+            .contains("at least 9 validation normals, found 6"));
     }
 
     #[test]

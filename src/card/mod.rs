@@ -262,6 +262,149 @@ pub struct CardContext {
     pub external_commands: Vec<String>,
     /// Wall-clock line for the unsigned footer, if recorded.
     pub wall_clock: Option<String>,
+    /// The conformal policy's guarantee (with `threshold: conformal`).
+    pub conformal: Option<ConformalCard>,
+}
+
+/// The conformal policy's guarantee, its assumption and the test check.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct ConformalCard {
+    /// A, formatted.
+    pub level: String,
+    /// n, the validation normals that calibrate the p-values.
+    pub validation_normals: usize,
+    /// k, τ's rank among the calibration scores.
+    pub rank: usize,
+    /// How many candidates were compared on the same validation rows.
+    pub candidates: usize,
+    /// The test split's false-positive rate against A, with its intervals
+    /// (None while the test split is sealed).
+    pub test_false_positive_rate: Option<String>,
+    /// Whether the test false-positive rate's Clopper-Pearson interval lies
+    /// wholly above A.
+    pub test_above_level: bool,
+}
+
+/// Everything the drift report template can use.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct DriftContext {
+    /// The candidate that scored the batch.
+    pub candidate: String,
+    /// blake3 of the run's manifest.json.
+    pub run_manifest_blake3: String,
+    /// Rows and flagged rows.
+    pub rows: u64,
+    /// Rows flagged (s > τ).
+    pub flagged: u64,
+    /// One row per expected rate: where from, expected, observed, limits,
+    /// binomial p, outside or not.
+    pub rates: Vec<DriftRateRow>,
+    /// Which rows the feature reference is.
+    pub reference_rows: String,
+    /// Per feature.
+    pub features: Vec<DriftFeatureRow>,
+    /// Benjamini-Hochberg: level, flagged, cut (with `--fdr`).
+    pub fdr: Option<String>,
+}
+
+/// One flag-rate check, formatted.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct DriftRateRow {
+    /// Where p̄ comes from.
+    pub from: String,
+    /// p̄.
+    pub expected: String,
+    /// The batch's rate.
+    pub observed: String,
+    /// The p-chart limits.
+    pub limits: String,
+    /// Exact two-sided binomial p-value.
+    pub binomial_p: String,
+    /// Outside the limits.
+    pub outside: bool,
+}
+
+/// One feature's drift, formatted.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct DriftFeatureRow {
+    /// Feature name.
+    pub name: String,
+    /// Batch mean.
+    pub batch_mean: String,
+    /// Reference mean.
+    pub reference_mean: String,
+    /// Shift in reference SDs.
+    pub shift_in_sd: String,
+    /// Two-sample KS statistic.
+    pub ks: String,
+}
+
+impl DriftContext {
+    /// From a drift report.
+    pub fn of(
+        d: &crate::drift::DriftReport,
+        candidate: &str,
+        manifest_blake3: &str,
+        fdr: Option<&crate::score::FdrSummary>,
+    ) -> Self {
+        let f4 = |v: f64| format!("{v:.4}");
+        DriftContext {
+            candidate: candidate.into(),
+            run_manifest_blake3: manifest_blake3.into(),
+            rows: d.rows,
+            flagged: d.flagged,
+            rates: d
+                .flag_rate
+                .iter()
+                .map(|r| DriftRateRow {
+                    from: r.expected_from.clone(),
+                    expected: f4(r.expected),
+                    observed: f4(r.observed),
+                    limits: format!("{}–{}", f4(r.lower_limit), f4(r.upper_limit)),
+                    binomial_p: format!("{:.4e}", r.binomial_p_value),
+                    outside: r.outside_limits,
+                })
+                .collect(),
+            reference_rows: format!("{} ({} rows)", d.reference_rows, d.reference_sample_rows),
+            features: d
+                .features
+                .iter()
+                .map(|f| DriftFeatureRow {
+                    name: f.name.clone(),
+                    batch_mean: f4(f.batch_mean),
+                    reference_mean: f4(f.reference_mean),
+                    shift_in_sd: f.shift_in_sd.map_or("n/a".into(), |v| format!("{v:+.3}")),
+                    ks: f4(f.ks_statistic),
+                })
+                .collect(),
+            fdr: fdr.map(|f| {
+                format!(
+                    "Benjamini-Hochberg at Q = {}: {} rows flagged (p-value cut {}; p-values against {} validation normals).",
+                    crate::record::fmt_f64(f.q),
+                    f.flagged,
+                    f.p_cut.map_or("none".into(), crate::record::fmt_f64),
+                    f.calibration_normals
+                )
+            }),
+        }
+    }
+}
+
+/// Renders the drift report (`templates/drift.html`), self-contained.
+pub fn render_drift(ctx: &DriftContext) -> Result<String> {
+    let mut env = Environment::new();
+    env.set_undefined_behavior(UndefinedBehavior::Strict);
+    let name = "drift.html";
+    env.add_template(name, include_str!("../../templates/drift.html"))
+        .map_err(|e| template_error(name, e))?;
+    let mut s = env
+        .get_template(name)
+        .and_then(|t| t.render(minijinja::value::Serde(ctx)))
+        .map_err(|e| template_error(name, e))?;
+    if !s.ends_with('\n') {
+        s.push('\n');
+    }
+    Ok(s)
 }
 
 /// Escapes text for Markdown: backslash-escapes the characters that start
@@ -339,6 +482,29 @@ pub fn render(ctx: &CardContext, overrides: Option<&Path>) -> Result<(String, St
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The drift report escapes every text it is given, like the card.
+    #[test]
+    fn the_drift_report_escapes_names() {
+        let d = crate::drift::DriftReport {
+            rows: 10,
+            flagged: 1,
+            flag_rate: vec![crate::drift::rate_check("<i>validation</i>", 0.05, 1, 10)],
+            reference_rows: "training rows".into(),
+            reference_sample_rows: 5,
+            features: vec![crate::drift::FeatureDrift {
+                name: "<script>alert(1)</script>".into(),
+                batch_mean: 1.0,
+                reference_mean: 0.0,
+                shift_in_sd: Some(1.0),
+                ks_statistic: 0.5,
+            }],
+        };
+        let html = render_drift(&DriftContext::of(&d, "a&b", "00", None)).unwrap();
+        assert!(!html.contains("<script>") && html.contains("&lt;script&gt;"));
+        assert!(html.contains("&lt;i&gt;validation") && html.contains("a&amp;b"));
+        assert!(html.ends_with("</html>\n"));
+    }
 
     #[test]
     fn the_interval_figure_is_deterministic_escapes_names_and_draws_each_row() {

@@ -1286,6 +1286,21 @@ fn check_policy(r: &Resolver<'_>, t: &Spanned<ThresholdPolicy>) -> Result<()> {
         ThresholdPolicy::AlarmBudget {
             max_false_positive_rate,
         } => unit(max_false_positive_rate, "max-false-positive-rate"),
+        ThresholdPolicy::Conformal {
+            max_false_positive_rate: a,
+        } => {
+            if a.is_finite() && a > 0.0 && a < 1.0 {
+                Ok(())
+            } else {
+                Err(r.err(
+                    t,
+                    "threshold.conformal.max-false-positive-rate",
+                    format!(
+                        "`max-false-positive-rate` must lie strictly between 0 and 1, found `{a}`"
+                    ),
+                ))
+            }
+        }
         ThresholdPolicy::RecallTarget { min_recall } => unit(min_recall, "min-recall"),
         ThresholdPolicy::PrecisionTarget { min_precision } => unit(min_precision, "min-precision"),
         ThresholdPolicy::MinCost {

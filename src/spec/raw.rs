@@ -650,6 +650,15 @@ pub enum ThresholdPolicy {
         /// The largest acceptable false-positive rate, in [0, 1].
         max_false_positive_rate: f64,
     },
+    /// A conformal threshold: flag a row when its conformal p-value against
+    /// the validation normals is at most A, which keeps the false-alarm rate
+    /// of new normal rows at most A (exchangeability assumed).
+    #[serde(rename_all = "kebab-case")]
+    Conformal {
+        /// A, the largest acceptable false-alarm rate, in (0, 1); at least
+        /// 1 / (n + 1) for n validation normals.
+        max_false_positive_rate: f64,
+    },
     /// The lowest false-positive rate whose recall is at least the target.
     #[serde(rename_all = "kebab-case")]
     RecallTarget {

@@ -8,6 +8,7 @@ mod card;
 mod check;
 mod cli;
 mod command;
+mod conformal;
 mod detectors;
 mod determinism;
 mod diff;
@@ -21,6 +22,7 @@ mod leakage;
 mod ledger;
 mod progress;
 mod recompute;
+mod reference;
 #[cfg(target_os = "linux")]
 mod refusals;
 mod schema;
