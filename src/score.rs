@@ -299,6 +299,10 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
 
     // The content columns the features read, and their names in the file.
     let used_idx = run.set.columns_used();
+    let used: Vec<String> = used_idx.iter().map(|&c| run.columns[c].clone()).collect();
+    let wanted: Vec<&str> = used.iter().map(String::as_str).collect();
+    let shown = opts.data.display().to_string();
+    crate::data::refuse_repeated_names(&opts.data, &shown, in_format, &wanted)?;
     let present = crate::data::columns_of(&opts.data, in_format)?;
     let names: Vec<String> = present.iter().map(|p| p.0.clone()).collect();
     for &c in &used_idx {
@@ -343,12 +347,6 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
                 unit: RowUnit::Line,
             });
         }
-    }
-    let used: Vec<String> = used_idx.iter().map(|&c| run.columns[c].clone()).collect();
-    if in_format == Format::Csv {
-        let wanted: Vec<&str> = used.iter().map(String::as_str).collect();
-        let shown = opts.data.display().to_string();
-        crate::data::refuse_repeated_columns(&opts.data, &shown, &wanted)?;
     }
 
     let parent = match opts.out.parent() {
