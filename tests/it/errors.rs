@@ -296,6 +296,16 @@ fn a_huge_training_value_is_refused_naming_its_line() {
     let d = case.clone().args(["check", "spec.yaml"]).exec();
     assert!(d.stdout.contains("beyond ±1e150"), "{}", d.stdout);
     assert!(!d.stdout.contains("problems: none"), "{}", d.stdout);
+    // `standardise` takes moments of its own before the detector does; they
+    // overflowed too, and the run blamed a zero variance on no row.
+    let standardised = spec(&["a", "b", "c"], "  from-column: split").replace(
+        "    - \"a\"\n",
+        "    - {column: a, transform: [standardise]}\n",
+    );
+    case.clone()
+        .file("spec.yaml", standardised)
+        .run_spec()
+        .fails(3, &["column `standardise(a)`", "beyond ±1e150", "line 8"]);
     // The streamed fit (moments folded block by block) has its own check.
     let streamed = spec(&["a", "b", "c"], "  from-column: split")
         .replace("  id-column: id\n", "  id-column: id\n  stream: true\n");
