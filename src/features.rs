@@ -338,6 +338,32 @@ fn check_domain(
     Ok(())
 }
 
+/// Refuses training values `v` (of `train`, in order) beyond
+/// ±[`TRAIN_LIMIT`] (or NaN), naming their rows; `why` follows "a training
+/// value is beyond ±1e150".
+fn refuse_beyond_limit(
+    data: &Dataset,
+    name: &str,
+    train: &[RowId],
+    v: &[f64],
+    why: &str,
+) -> Result<()> {
+    let huge: Vec<RowId> = train
+        .iter()
+        .zip(v)
+        .filter(|(_, x)| x.is_nan() || x.abs() > TRAIN_LIMIT)
+        .map(|(r, _)| *r)
+        .collect();
+    if huge.is_empty() {
+        return Ok(());
+    }
+    Err(data.error(
+        name,
+        format!("a training value is beyond ±1e150 {why}"),
+        &huge,
+    ))
+}
+
 /// Fits every transform of a feature set on the training rows.
 pub fn fit(set: &FeatureSetPlan, data: &Dataset, train: &[RowId]) -> Result<FittedFeatures> {
     // One row-major pass proves every input within ±TRAIN_LIMIT; only then
@@ -370,6 +396,15 @@ pub fn fit(set: &FeatureSetPlan, data: &Dataset, train: &[RowId]) -> Result<Fitt
                     lambda: maximise(|l| yeo_johnson_llf(&v, l)),
                 },
                 TransformKind::Standardise => {
+                    // Its mean and variance overflow as the detector's would.
+                    refuse_beyond_limit(
+                        data,
+                        &f.name,
+                        train,
+                        &v,
+                        "where `standardise` takes its mean and variance: they would \
+                         overflow; fix the value or transform the feature first (`log`)",
+                    )?;
                     let (mean, var) = mean_var(&v);
                     if var.sqrt() <= f64::EPSILON * mean.abs() || var == 0.0 {
                         return Err(Error::Fit {
@@ -391,21 +426,14 @@ pub fn fit(set: &FeatureSetPlan, data: &Dataset, train: &[RowId]) -> Result<Fitt
             }
             steps.push(fitted);
         }
-        let huge: Vec<RowId> = train
-            .iter()
-            .zip(&v)
-            .filter(|(_, x)| x.is_nan() || x.abs() > TRAIN_LIMIT)
-            .map(|(r, _)| *r)
-            .collect();
-        if !huge.is_empty() {
-            return Err(data.error(
-                &f.name,
-                "a training value is beyond ±1e150 (after transforms): the fitted \
-                 moments would overflow; fix the value or transform the feature (`log`)"
-                    .into(),
-                &huge,
-            ));
-        }
+        refuse_beyond_limit(
+            data,
+            &f.name,
+            train,
+            &v,
+            "(after transforms): the fitted moments would overflow; fix the value or \
+             transform the feature (`log`)",
+        )?;
         features.push(FittedFeature {
             name: f.name.clone(),
             input: f.input,

@@ -13,7 +13,7 @@
 //! temporary file beside the target and is renamed into place only when every
 //! row is written.
 
-use std::io::BufWriter;
+use std::io::{BufWriter, Write};
 use std::path::{Path, PathBuf};
 use std::sync::{Arc, Mutex};
 
@@ -315,13 +315,84 @@ fn scan(path: &Path, format: Format, used: &[String]) -> Result<LazyFrame> {
 }
 
 enum Writer {
-    Csv(polars::io::csv::write::BatchedWriter<BufWriter<std::fs::File>>),
-    Parquet(Box<polars::io::parquet::write::BatchedWriter<BufWriter<std::fs::File>>>),
+    Csv(polars::io::csv::write::BatchedWriter<Sink>),
+    Parquet(Box<polars::io::parquet::write::BatchedWriter<Sink>>),
+}
+
+/// The buffered temporary output, shared with polars' writer so that `score`
+/// itself flushes the last buffered bytes and syncs the file, and sees that
+/// fail (polars' CSV writer never flushes its sink, and a buffer dropped with
+/// bytes in it loses the error: a full disk gave a cut-off file and exit 0).
+/// It keeps the first failure of the file itself, which is how a failed
+/// write is told from a bug however polars words it (its Parquet writer
+/// keeps only the text of an I/O error).
+#[derive(Clone)]
+struct Sink(Arc<Mutex<SinkState>>);
+
+struct SinkState {
+    out: BufWriter<std::fs::File>,
+    failed: Option<String>,
+}
+
+impl Sink {
+    fn new(file: std::fs::File) -> Self {
+        Sink(Arc::new(Mutex::new(SinkState {
+            out: BufWriter::with_capacity(1 << 20, file),
+            failed: None,
+        })))
+    }
+
+    /// Runs one operation on the buffered file, keeping its first failure.
+    fn with<T>(
+        &self,
+        op: impl FnOnce(&mut BufWriter<std::fs::File>) -> std::io::Result<T>,
+    ) -> std::io::Result<T> {
+        let mut s = self.0.lock().expect("the output sink is not poisoned");
+        let r = op(&mut s.out);
+        if let Err(e) = &r {
+            s.failed.get_or_insert_with(|| e.to_string());
+        }
+        r
+    }
+
+    /// The output error for a failed write: the file's own failure (a full
+    /// disk, a quota, a lost mount) is the output's problem, naming `out`;
+    /// a writer that failed while the file did not is a bug.
+    fn error(&self, out: &Path, e: impl std::fmt::Display) -> Error {
+        let s = self.0.lock().expect("the output sink is not poisoned");
+        match &s.failed {
+            Some(why) => Error::Output {
+                path: out.to_path_buf(),
+                message: format!("writing the scored rows: {why}"),
+            },
+            None => Error::internal(format!("writing a scored batch: {e}")),
+        }
+    }
+
+    /// Writes out the buffer and syncs the file to disk.
+    fn finish(&self, out: &Path) -> Result<()> {
+        self.with(|w| w.flush().and_then(|()| w.get_ref().sync_all()))
+            .map_err(|e| self.error(out, e))
+    }
+}
+
+impl Write for Sink {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        self.with(|w| w.write(buf))
+    }
+
+    fn write_all(&mut self, buf: &[u8]) -> std::io::Result<()> {
+        self.with(|w| w.write_all(buf))
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        self.with(|w| w.flush())
+    }
 }
 
 struct State {
     writer: Option<Writer>,
-    file: Option<std::fs::File>,
+    sink: Sink,
     rows: u64,
     flagged: u64,
     fdr_flagged: u64,
@@ -354,6 +425,10 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
 
     // The content columns the features read, and their names in the file.
     let used_idx = run.set.columns_used();
+    let used: Vec<String> = used_idx.iter().map(|&c| run.columns[c].clone()).collect();
+    let wanted: Vec<&str> = used.iter().map(String::as_str).collect();
+    let shown = opts.data.display().to_string();
+    crate::data::refuse_repeated_names(&opts.data, &shown, in_format, &wanted)?;
     let present = crate::data::columns_of(&opts.data, in_format)?;
     let names: Vec<String> = present.iter().map(|p| p.0.clone()).collect();
     for &c in &used_idx {
@@ -405,12 +480,6 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
             });
         }
     }
-    let used: Vec<String> = used_idx.iter().map(|&c| run.columns[c].clone()).collect();
-    if in_format == Format::Csv {
-        let wanted: Vec<&str> = used.iter().map(String::as_str).collect();
-        let shown = opts.data.display().to_string();
-        crate::data::refuse_repeated_columns(&opts.data, &shown, &wanted)?;
-    }
     // The Benjamini-Hochberg cut of this batch (`Some(None)`: nothing flagged).
     let mut fdr_cut: Option<Option<f64>> = None;
     let fdr = match (opts.fdr, &run.calibration) {
@@ -448,7 +517,7 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
 
     let state = Arc::new(Mutex::new(State {
         writer: None,
-        file: Some(file),
+        sink: Sink::new(file),
         rows: 0,
         flagged: 0,
         fdr_flagged: 0,
@@ -546,14 +615,7 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         .map_err(|e| Error::internal(format!("an empty frame: {e}")))?;
         write_batch(&mut st, &empty, out_format, &opts.out)?;
     }
-    let out_err = |e: PolarsError| write_error(&opts.out, e);
-    match st.writer.take() {
-        Some(Writer::Csv(mut w)) => w.finish().map_err(out_err)?,
-        Some(Writer::Parquet(w)) => {
-            w.finish().map_err(out_err)?;
-        }
-        None => {}
-    }
+    finish_output(&mut st, &opts.out)?;
     if let Some(f) = &fdr {
         if st.fdr_flagged != f.flagged {
             return Err(Error::internal(format!(
@@ -627,20 +689,18 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
     })
 }
 
-/// A failed write of the scored rows: a file-system failure (a full disk, a
-/// quota, a lost mount) is the output's problem, anything else a bug.
-fn write_error(out: &Path, e: PolarsError) -> Error {
-    let mut cause: Option<&(dyn std::error::Error + 'static)> = Some(&e);
-    while let Some(c) = cause {
-        if c.downcast_ref::<std::io::Error>().is_some() {
-            return Error::Output {
-                path: out.to_path_buf(),
-                message: format!("writing the scored rows: {e}"),
-            };
+/// Ends the output: the writer's last bytes (a CSV header, the Parquet
+/// footer), then the sink's buffer written out and the file synced.
+fn finish_output(st: &mut State, out: &Path) -> Result<()> {
+    let err = |e: PolarsError| st.sink.error(out, e);
+    match st.writer.take() {
+        Some(Writer::Csv(mut w)) => w.finish().map_err(err)?,
+        Some(Writer::Parquet(w)) => {
+            w.finish().map_err(err)?;
         }
-        cause = c.source();
+        None => {}
     }
-    Error::internal(format!("writing a scored batch: {e}"))
+    st.sink.finish(out)
 }
 
 /// Writes the drift report through a temporary file renamed into place.
@@ -739,10 +799,9 @@ fn rank_counts(
 }
 
 fn write_batch(st: &mut State, df: &DataFrame, format: Format, out: &Path) -> Result<()> {
-    let err = |e: PolarsError| write_error(out, e);
+    let err = |e: PolarsError| st.sink.error(out, e);
     if st.writer.is_none() {
-        let file = st.file.take().expect("the output file is opened once");
-        let sink = BufWriter::with_capacity(1 << 20, file);
+        let sink = st.sink.clone();
         let schema = df.schema();
         st.writer = Some(match format {
             Format::Csv => Writer::Csv(CsvWriter::new(sink).batched(schema).map_err(err)?),
@@ -982,38 +1041,44 @@ mod tests {
     use super::*;
 
     /// Issue 25: a disk that filled up while scored rows were written was
-    /// reported as a bug (exit 70); it is an output problem (exit 4).
-    /// /dev/full fails every write with ENOSPC.
+    /// reported as a bug (exit 70), and when the last megabyte still sat in
+    /// the write buffer the failure was lost: a cut-off file and exit 0. It
+    /// is an output problem (exit 4) whether it shows while a batch is
+    /// written (200,000 rows) or only when the buffer is written out at the
+    /// end (10 rows), in either format. /dev/full fails every write with
+    /// ENOSPC.
     #[cfg(target_os = "linux")]
     #[test]
     fn a_full_disk_while_scoring_is_an_output_error() {
-        let file = std::fs::OpenOptions::new()
-            .write(true)
-            .open("/dev/full")
-            .unwrap();
-        let mut st = State {
-            writer: None,
-            file: Some(file),
-            rows: 0,
-            flagged: 0,
-            fdr_flagged: 0,
-            drift: None,
-            error: None,
-        };
-        let values: Vec<f64> = (0..200_000).map(|i| i as f64 / 7.0).collect();
-        let df = DataFrame::new_infer_height(vec![Column::new("x".into(), values)]).unwrap();
-        let out = Path::new("scored.csv");
-        let e = write_batch(&mut st, &df, Format::Csv, out)
-            .and_then(|()| match st.writer.take() {
-                Some(Writer::Csv(mut w)) => w.finish().map_err(|e| write_error(out, e)),
-                _ => Ok(()),
-            })
-            .unwrap_err();
-        assert_eq!(e.code(), crate::error::exit::IO, "{e}");
-        let text = e.to_string();
-        assert!(
-            text.contains("scored.csv") && text.contains("No space left"),
-            "{text}"
-        );
+        for format in [Format::Csv, Format::Parquet] {
+            for n in [200_000, 10] {
+                let file = std::fs::OpenOptions::new()
+                    .write(true)
+                    .open("/dev/full")
+                    .unwrap();
+                let mut st = State {
+                    writer: None,
+                    sink: Sink::new(file),
+                    rows: 0,
+                    flagged: 0,
+                    fdr_flagged: 0,
+                    drift: None,
+                    error: None,
+                };
+                let values: Vec<f64> = (0..n).map(|i| i as f64 / 7.0).collect();
+                let df =
+                    DataFrame::new_infer_height(vec![Column::new("x".into(), values)]).unwrap();
+                let out = Path::new("scored.out");
+                let e = write_batch(&mut st, &df, format, out)
+                    .and_then(|()| finish_output(&mut st, out))
+                    .unwrap_err();
+                assert_eq!(e.code(), crate::error::exit::IO, "{n} rows: {e}");
+                let text = e.to_string();
+                assert!(
+                    text.contains("output `scored.out`") && text.contains("No space left"),
+                    "{n} rows: {text}"
+                );
+            }
+        }
     }
 }

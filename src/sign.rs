@@ -59,8 +59,8 @@ fn key_error(path: &Path, message: impl Into<String>) -> Error {
 /// Writes a new key pair. Neither file may exist yet (not even as a link),
 /// and the two paths must name two files. The private key file is created
 /// with mode 0600; both are created exclusively, so an existing file is never
-/// overwritten, and when the public key cannot be written the private key
-/// just made is removed again.
+/// overwritten, and when either key cannot be written the private key just
+/// made is removed again.
 pub fn keygen(private: &Path, public: &Path) -> Result<String> {
     for p in [private, public] {
         // `symlink_metadata`: a dangling link would be followed by the write.
@@ -106,9 +106,12 @@ pub fn keygen(private: &Path, public: &Path) -> Result<String> {
     let mut f = options
         .open(private)
         .map_err(|e| Error::io(private, "creating private key", e))?;
-    f.write_all(pem.as_bytes())
-        .and_then(|_| f.sync_all())
-        .map_err(|e| Error::io(private, "writing private key", e))?;
+    if let Err(e) = f.write_all(pem.as_bytes()).and_then(|_| f.sync_all()) {
+        // Half a key is worse than none: nothing stays behind.
+        drop(f);
+        let _ = std::fs::remove_file(private);
+        return Err(Error::io(private, "writing private key", e));
+    }
     drop(f);
     let written = std::fs::OpenOptions::new()
         .write(true)

@@ -708,6 +708,8 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
     text.extend(plan.id_column.iter().map(|c| c.name.clone()));
     let used: Vec<String> = columns.iter().chain(&text).cloned().collect();
     for (fi, file) in files.clone().iter().enumerate() {
+        let wanted: Vec<&str> = used.iter().map(String::as_str).collect();
+        data::refuse_repeated_names(&file.path, &file.shown, file.format, &wanted)?;
         let present: Vec<String> = data::columns_of(&file.path, file.format)?
             .into_iter()
             .map(|c| c.0)
@@ -720,10 +722,6 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
             if !present.contains(&c.name) {
                 return Err(data::missing_column(plan, c, &file.shown, &present));
             }
-        }
-        if file.format == Format::Csv {
-            let wanted: Vec<&str> = used.iter().map(String::as_str).collect();
-            data::refuse_repeated_columns(&file.path, &file.shown, &wanted)?;
         }
         {
             let mut a = acc.lock().expect("not poisoned");

@@ -57,9 +57,13 @@ pub fn append(path: &Path, entry: &Entry) -> Result<Vec<Entry>> {
                 .map_err(|e| Error::internal(format!("serialising a ledger entry: {e}")))?,
         );
         line.push('\n');
-        f.write_all(line.as_bytes())
-            .and_then(|_| f.sync_all())
-            .map_err(|e| Error::io(path, "appending to the test ledger", e))?;
+        if let Err(e) = f.write_all(line.as_bytes()).and_then(|_| f.sync_all()) {
+            // A write cut short (a full disk) would leave half an entry that
+            // no later run could read: cut the ledger back to what it was
+            // (the lock is still held, so nothing else was appended).
+            let _ = f.set_len(text.len() as u64).and_then(|_| f.sync_all());
+            return Err(Error::io(path, "appending to the test ledger", e));
+        }
         entries.push(entry.clone());
         Ok(entries)
     })();

@@ -379,7 +379,15 @@ pub fn objective(policy: ThresholdPolicy, s: SplitScores<'_>) -> Result<Plot> {
         .collect();
     points.sort_by(|a, b| a.0.total_cmp(&b.0));
     let at = value(&Confusion::at(s.scores, s.is_anomaly, s.tau));
-    let ymax = points.iter().map(|p| p.1).fold(at, f64::max);
+    // A cost objective grows with its costs: values beyond the axis limit
+    // (or infinite) are left out of the value axis too, and the caption says so.
+    let y_within = |y: f64| y.abs() <= AXIS_LIMIT;
+    let y_clipped = !y_within(at) || points.iter().any(|p| !y_within(p.1));
+    points.retain(|p| y_within(p.1));
+    let ymax = points
+        .iter()
+        .map(|p| p.1)
+        .fold(if y_within(at) { at } else { 0.0 }, f64::max);
     let ymax = if ymax > 0.0 { ymax * 1.05 } else { 1.0 };
     let points = thin(&points, (xr.end - xr.start, ymax));
     let file = format!("plot-{}-objective.svg", s.split);
@@ -417,9 +425,14 @@ pub fn objective(policy: ThresholdPolicy, s: SplitScores<'_>) -> Result<Plot> {
         file,
         title: format!("{name} against ln ε ({})", s.split),
         caption: format!(
-            "The threshold policy's objective ({name}) at every distinct threshold on the {} split, with the chosen ε; the axis spans the 0.1 % to 99.9 % quantiles of −s(x).{}",
+            "The threshold policy's objective ({name}) at every distinct threshold on the {} split, with the chosen ε; the axis spans the 0.1 % to 99.9 % quantiles of −s(x).{}{}",
             s.split,
-            axis.note()
+            axis.note(),
+            if y_clipped {
+                " Objective values that are infinite or beyond ±1e150 are left out of the value axis (they are not drawn)."
+            } else {
+                ""
+            }
         ),
         svg,
     })
@@ -857,6 +870,13 @@ mod tests {
                     objective(ThresholdPolicy::MaxF1, s).unwrap().caption,
                     score_histogram(s).unwrap().caption,
                 ];
+                // Costs near the largest float make the cost objective
+                // infinite: its value axis is bounded the same way.
+                let costly = ThresholdPolicy::MinCost {
+                    missed_anomaly: 1.7e308,
+                    false_alarm: 1.7e308,
+                };
+                let cost = objective(costly, s).unwrap().caption;
                 for marginal in [None, Some(vec![(1.0, 10.0, 1.0)])] {
                     captions.push(
                         feature_histogram(0, "a", "rows", &scores, marginal)
@@ -864,6 +884,7 @@ mod tests {
                             .caption,
                     );
                 }
+                captions.push(cost);
                 (scores, captions)
             });
             let started = std::time::Instant::now();
@@ -875,10 +896,12 @@ mod tests {
                 std::thread::sleep(std::time::Duration::from_millis(20));
             }
             let (scores, captions) = handle.join().unwrap();
+            // Every set has two rows of one class, whose cost is infinite.
+            assert!(captions[6].contains("value axis"), "{}", captions[6]);
             let huge = scores.iter().any(|v| v.abs() > AXIS_LIMIT);
             // The objective, the score and the feature histograms say so
             // when values were left out of the range.
-            for c in &captions[2..] {
+            for c in &captions[2..6] {
                 assert_eq!(c.contains("beyond ±1e150"), huge, "{scores:?}: {c}");
             }
         }

@@ -674,6 +674,65 @@ pub(crate) fn refuse_repeated_columns(path: &Path, shown: &str, wanted: &[&str])
     Ok(())
 }
 
+/// Refuses a Parquet file whose schema names a column more than once,
+/// naming the first such column and its positions: polars cannot read such a
+/// file at all, whichever columns the spec uses, and would only say that a
+/// name repeats. A file whose footer cannot be read is left to the reader.
+pub(crate) fn refuse_repeated_parquet_columns(path: &Path, shown: &str) -> Result<()> {
+    let Ok(file) = std::fs::File::open(path) else {
+        return Ok(());
+    };
+    let mut reader = ParquetReader::new(file);
+    let Ok(meta) = reader.get_metadata() else {
+        return Ok(());
+    };
+    let names: Vec<&str> = meta
+        .schema_descr
+        .fields()
+        .iter()
+        .map(|f| f.name())
+        .collect();
+    for (i, name) in names.iter().enumerate() {
+        if names[..i].contains(name) {
+            continue;
+        }
+        let at: Vec<String> = (i..names.len())
+            .filter(|&j| names[j] == *name)
+            .map(|j| (j + 1).to_string())
+            .collect();
+        if at.len() > 1 {
+            return Err(Error::Data {
+                path: PathBuf::from(shown),
+                column: Some(name.to_string()),
+                message: format!(
+                    "the file's schema names this column {} times, at positions {}; a \
+                     Parquet file that repeats a column name cannot be read (rename all but one)",
+                    at.len(),
+                    at.join(", ")
+                ),
+                lines: vec![],
+                total: 0,
+                unit: RowUnit::Row,
+            });
+        }
+    }
+    Ok(())
+}
+
+/// Refuses a file whose header or schema repeats a column name: for CSV a
+/// name the spec uses (`wanted`), for Parquet any name.
+pub(crate) fn refuse_repeated_names(
+    path: &Path,
+    shown: &str,
+    format: Format,
+    wanted: &[&str],
+) -> Result<()> {
+    match format {
+        Format::Csv => refuse_repeated_columns(path, shown, wanted),
+        Format::Parquet => refuse_repeated_parquet_columns(path, shown),
+    }
+}
+
 /// One file's columns as read: numeric columns (None = missing), text columns.
 struct FileFrame {
     /// The plain-CSV reader's result (then the other fields are empty but
@@ -820,6 +879,7 @@ fn read_parquet(
     text: &[&Column],
     types: &mut BTreeMap<String, (DataType, String)>,
 ) -> Result<FileFrame> {
+    refuse_repeated_parquet_columns(path, &shown(path, plan))?;
     let ppath = PlRefPath::try_from_path(path).map_err(|e| read_error(path, e))?;
     let lf = LazyFrame::scan_parquet(ppath, ScanArgsParquet::default())
         .map_err(|e| read_error(path, e))?;

@@ -293,9 +293,27 @@ fn a_huge_training_value_is_refused_naming_its_line() {
         d.stderr
     );
     no_output(&d);
-    let d = case.args(["check", "spec.yaml"]).exec();
+    let d = case.clone().args(["check", "spec.yaml"]).exec();
     assert!(d.stdout.contains("beyond ±1e150"), "{}", d.stdout);
     assert!(!d.stdout.contains("problems: none"), "{}", d.stdout);
+    // `standardise` takes moments of its own before the detector does; they
+    // overflowed too, and the run blamed a zero variance on no row.
+    let standardised = spec(&["a", "b", "c"], "  from-column: split").replace(
+        "    - \"a\"\n",
+        "    - {column: a, transform: [standardise]}\n",
+    );
+    case.clone()
+        .file("spec.yaml", standardised)
+        .run_spec()
+        .fails(3, &["column `standardise(a)`", "beyond ±1e150", "line 8"]);
+    // The streamed fit (moments folded block by block) has its own check.
+    let streamed = spec(&["a", "b", "c"], "  from-column: split")
+        .replace("  id-column: id\n", "  id-column: id\n  stream: true\n");
+    let d = case
+        .file("spec.yaml", streamed)
+        .run_spec()
+        .fails(3, &["data.csv", "column `a`", "beyond ±1e150", "line 8"]);
+    no_output(&d);
 }
 
 /// Issue 25: `bootstrap.replicates: 1000000000` was accepted and never
@@ -322,6 +340,19 @@ fn cost_knobs_beyond_their_bound_are_refused_at_the_spec() {
                 "detectors: [{gaussian-mixture: {k-max: 21}}]",
             ),
             "≤ `k-max` ≤ 20",
+        ),
+        (
+            spec(&["a"; 1001], PROTOCOL),
+            "1001 features; at most 1000 are allowed in one set",
+        ),
+        (
+            base.replace(
+                "  features:\n    - \"a\"\n    - \"b\"\n    - \"c\"\n",
+                &(0..101)
+                    .map(|i| format!("    - name: s{i}\n      features: [a]\n"))
+                    .fold("  feature-sets:\n".to_string(), |acc, s| acc + &s),
+            ),
+            "101 feature sets; at most 100 are allowed",
         ),
     ];
     for (text, message) in cases {

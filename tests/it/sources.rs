@@ -223,3 +223,93 @@ fn a_symlink_loop_in_a_data_folder_reads_each_file_once() {
         .sum();
     assert_eq!(total, 312, "{counts}");
 }
+
+/// Issue 25: a Parquet file that names a column twice was refused by polars
+/// as "cannot read as CSV: duplicate: column with name …", with no place.
+/// It is refused naming the column and its positions, in `run`, `check`, the
+/// streamed reader and `score`. polars will not write such a file, so one is
+/// written with a stand-in name of the same length, `LABEL`, which is then
+/// renamed in the footer's schema (the Thrift strings keep their length, so
+/// the file stays well formed).
+#[test]
+fn a_parquet_file_that_repeats_a_column_name_is_refused_naming_it() {
+    let r = rows(200, 8, 34);
+    let labels: Vec<&str> = r
+        .iter()
+        .map(|x| if x.2 { "anomaly" } else { "normal" })
+        .collect();
+    let split: Vec<&str> = (0..r.len())
+        .map(|i| ["train", "train", "validation", "test"][i % 4])
+        .collect();
+    let col = |j: usize| r.iter().map(|x| x.1[j]).collect::<Vec<f64>>();
+    let mut df = DataFrame::new(
+        r.len(),
+        vec![
+            Column::new(
+                "id".into(),
+                r.iter().map(|x| x.0.clone()).collect::<Vec<_>>(),
+            ),
+            Column::new("a".into(), col(0)),
+            Column::new("b".into(), col(1)),
+            Column::new("c".into(), col(2)),
+            Column::new("label".into(), labels.clone()),
+            Column::new("split".into(), split),
+            // A second label column that disagrees with the first.
+            Column::new(
+                "LABEL".into(),
+                labels.iter().rev().copied().collect::<Vec<_>>(),
+            ),
+        ],
+    )
+    .unwrap();
+    let mut bytes = Vec::new();
+    ParquetWriter::new(&mut bytes).finish(&mut df).unwrap();
+    let mut renamed = 0;
+    for i in 0..bytes.len().saturating_sub(4) {
+        if &bytes[i..i + 5] == b"LABEL" {
+            bytes[i..i + 5].copy_from_slice(b"label");
+            renamed += 1;
+        }
+    }
+    assert!(renamed >= 1, "the stand-in name is in the footer");
+
+    let case = Case::new()
+        .file("data.parquet", &bytes)
+        .file(
+            "spec.yaml",
+            spec(&["a", "b", "c"], PROTOCOL).replace("path: data.csv", "path: data.parquet"),
+        )
+        .keys();
+    let said = [
+        "data.parquet",
+        "column `label`",
+        "2 times, at positions 5, 7",
+    ];
+    let d = case.clone().run_spec().fails(3, &said);
+    assert!(!d.stderr.contains("as CSV"), "{}", d.stderr);
+    let d = case.clone().args(["check", "spec.yaml"]).exec();
+    let all = format!("{}{}", d.stdout, d.stderr);
+    assert!(
+        said.iter().all(|s| all.contains(s)) && !all.contains("problems: none"),
+        "{all}"
+    );
+    let streamed = spec(&["a", "b", "c"], "  from-column: split")
+        .replace("path: data.csv", "path: data.parquet")
+        .replace("  id-column: id\n", "  id-column: id\n  stream: true\n");
+    case.clone()
+        .file("spec.yaml", streamed)
+        .run_spec()
+        .fails(3, &said);
+    // `score` reads its input's schema the same way.
+    let fine = crate::util::standard(&r).run_spec().success();
+    Case::new()
+        .file("new.parquet", &bytes)
+        .args([
+            "score",
+            fine.dir.join("out").to_str().unwrap(),
+            "new.parquet",
+            "--out",
+            "scored.csv",
+        ])
+        .fails(3, &["new.parquet", "column `label`", "positions 5, 7"]);
+}
