@@ -542,14 +542,22 @@ impl Ctx<'_> {
             ));
         }
         if plan.missing == MissingPolicy::Refuse {
-            if let Some(j) = missing.iter().position(|m| !m.is_empty()) {
-                return Err(self.data_error(
-                    acc,
-                    &plan.columns[j].name,
-                    "a missing value (set `missing-values: drop-row` to leave such rows out)"
-                        .into(),
-                    &missing[j],
-                ));
+            // Every column with a missing value in this chunk, worded as
+            // the in-memory reader words it.
+            let each: Vec<Error> = (0..self.ncols)
+                .filter(|&j| !missing[j].is_empty())
+                .map(|j| {
+                    self.data_error(
+                        acc,
+                        &plan.columns[j].name,
+                        "a missing value (set `missing-values: drop-row` to leave such rows out)"
+                            .into(),
+                        &missing[j],
+                    )
+                })
+                .collect();
+            if let Some(e) = data::all_missing(each) {
+                return Err(e);
             }
         }
         let c = self.ncols;

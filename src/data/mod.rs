@@ -1243,7 +1243,7 @@ const SHOWN_COLUMNS: usize = 12;
 /// One refusal for every missing value: a column's own error when one column
 /// has them, else every column (up to [`SHOWN_COLUMNS`]) with its first places
 /// and the total count of missing cells, as `check` lists them.
-fn all_missing(missing: Vec<Error>) -> Option<Error> {
+pub(crate) fn all_missing(missing: Vec<Error>) -> Option<Error> {
     if missing.len() <= 1 {
         return missing.into_iter().next();
     }

@@ -354,6 +354,41 @@ fn missing_values_refusal_names_every_cell() {
     );
 }
 
+/// The same refusal in a streamed run (`data.stream: true`): every column
+/// with a missing value in the chunk that holds them, worded alike.
+#[test]
+fn missing_values_refusal_names_every_cell_when_streamed() {
+    let r = rows(50, 4, 1);
+    let mut text = String::from("id,a,b,c,label,split\n");
+    for (id, x, a) in &r {
+        let (label, split) = if *a {
+            ("anomaly", "validation")
+        } else {
+            ("normal", "train")
+        };
+        text.push_str(&format!(
+            "{id},{:.6},{:.6},{:.6},{label},{split}\n",
+            x[0], x[1], x[2]
+        ));
+    }
+    let text = with_blanks(&text, &[(4, 1), (6, 2), (9, 3), (12, 1)]);
+    let streamed = spec(&["a", "b", "c"], "  from-column: split")
+        .replace("  id-column: id\n", "  id-column: id\n  stream: true\n");
+    standard(&r)
+        .file("data.csv", text)
+        .file("spec.yaml", streamed)
+        .run_spec()
+        .fails(
+            3,
+            &[
+                "4 feature values are missing",
+                "column `a` (lines 4, 12)",
+                "column `b` (line 6)",
+                "column `c` (line 9)",
+            ],
+        );
+}
+
 /// The same in a streamed run (`data.stream: true`), which reads in batches.
 #[test]
 fn each_bad_label_value_is_named_with_its_own_lines_when_streamed() {
