@@ -331,39 +331,70 @@ impl BootstrapIntervals {
 /// at `pos[j]`; the normal rows in bins `2j` (gap `j`) and `2j + 1` (tied
 /// with cut point `j`), and `2m` for the last gap.
 struct Bins {
-    /// (cut point, anomalies there), for the cut points with anomalies.
-    pos: Vec<(usize, u64)>,
-    /// (bin, normal rows there), for the non-empty bins.
-    neg: Vec<(usize, u64)>,
+    /// The anomalies' multinomial, over cut points.
+    pos: Multinomial,
+    /// The normal rows' multinomial, over bins.
+    neg: Multinomial,
     /// Cut points above τ.
     flagged: usize,
     /// Whether the gap just below them is above τ.
     gap_flagged: bool,
 }
 
-/// Fills `out` (zeroed) with one Multinomial(`draws`; cᵢ/Σc) vector over the
-/// bins `(i, cᵢ)`, by conditional binomial draws: Xᵢ given the earlier draws
-/// is Binomial(draws left, cᵢ/(mass left)), and the last bin takes the rest.
-fn multinomial(
-    rng: &mut rand_chacha::ChaCha8Rng,
+/// One class's Multinomial(n; cᵢ/n) over bins `(i, cᵢ)`, n = Σcᵢ: where n
+/// rows drawn with replacement from the class fall.
+struct Multinomial {
+    /// (bin, rows there), for the non-empty bins.
+    bins: Vec<(usize, u64)>,
+    /// n.
     draws: u64,
-    bins: &[(usize, u64)],
-    out: &mut [u64],
-) {
-    let mut left = draws;
-    let mut mass: u64 = bins.iter().map(|b| b.1).sum();
-    for &(i, c) in bins {
-        if left == 0 {
-            break;
+    /// When n is at most a few times the number of bins: each row's bin, for
+    /// drawing the n rows themselves (O(n), cheaper there than a binomial per
+    /// bin).
+    rows: Option<Vec<u32>>,
+}
+
+/// Rows per non-empty bin up to which a replicate draws the rows themselves.
+const DIRECT_PER_BIN: u64 = 4;
+
+impl Multinomial {
+    fn new(bins: Vec<(usize, u64)>) -> Self {
+        let draws: u64 = bins.iter().map(|b| b.1).sum();
+        let rows = (draws <= DIRECT_PER_BIN * bins.len() as u64).then(|| {
+            bins.iter()
+                .flat_map(|&(i, c)| std::iter::repeat_n(i as u32, c as usize))
+                .collect()
+        });
+        Multinomial { bins, draws, rows }
+    }
+
+    /// Adds one multinomial vector to `out` (zeroed). Either way is an exact
+    /// draw of it: n independent uniform picks among the n rows, counted per
+    /// bin, is the multinomial's definition; and the chain X₁ ~ Binomial(n,
+    /// c₁/n), Xᵢ given X₁..Xᵢ₋₁ ~ Binomial(n − ΣX, cᵢ/(mass left)), the last
+    /// bin taking the rest, is its factorisation into conditionals.
+    fn draw(&self, rng: &mut rand_chacha::ChaCha8Rng, out: &mut [u64]) {
+        if let Some(rows) = &self.rows {
+            for _ in 0..self.draws {
+                out[rows[crate::rng::below(rng, self.draws) as usize] as usize] += 1;
+            }
+            return;
         }
-        let x = if c >= mass {
-            left
-        } else {
-            crate::rng::binomial(rng, left, c as f64 / mass as f64)
-        };
-        out[i] = x;
-        left -= x;
-        mass -= c;
+        let mut left = self.draws;
+        let mut mass = self.draws;
+        for &(i, c) in &self.bins {
+            if left == 0 {
+                break;
+            }
+            let x = if c >= mass {
+                left
+            } else {
+                crate::rng::binomial(rng, left, c as f64 / mass as f64)
+            };
+            out[i] = x;
+            left -= x;
+            mass -= c;
+        }
     }
 }
 
@@ -383,8 +414,12 @@ fn multinomial(
 /// multinomial vector is drawn exactly as a chain of binomials: X₁ ~
 /// Binomial(n, p₁), and given X₁..Xᵢ₋₁, Xᵢ ~ Binomial(n − ΣX, pᵢ/(1 − Σp)),
 /// the probabilities cᵢ/(mass left) being exact ratios of whole numbers
-/// before rounding. So a replicate here has the distribution of a row-level
-/// replicate, at O(cut points) cost instead of O(rows).
+/// before rounding ([`crate::rng::binomial`] draws each exactly). So a
+/// replicate here has the distribution of a row-level replicate, at
+/// O(cut points) cost instead of O(rows). A class with at most four rows per
+/// non-empty bin (typically the anomalies, few and mostly of distinct
+/// scores) has its n rows drawn one by one instead, which is the same
+/// multinomial and, there, no more than O(cut points) either.
 pub fn bootstrap_summary(
     s: &Summary,
     tau: f64,
@@ -419,11 +454,13 @@ fn replicates(s: &Summary, tau: f64, plan: BootstrapPlan) -> Option<Vec<(f64, f6
         }
     }
     let bins = Bins {
-        pos: (0..m)
-            .filter(|&j| s.pos[j] > 0)
-            .map(|j| (j, s.pos[j]))
-            .collect(),
-        neg,
+        pos: Multinomial::new(
+            (0..m)
+                .filter(|&j| s.pos[j] > 0)
+                .map(|j| (j, s.pos[j]))
+                .collect(),
+        ),
+        neg: Multinomial::new(neg),
         flagged,
         gap_flagged,
     };
@@ -437,8 +474,8 @@ fn replicates(s: &Summary, tau: f64, plan: BootstrapPlan) -> Option<Vec<(f64, f6
                     p_in.fill(0);
                     n_in.fill(0);
                     let mut rng = crate::rng::seeded(plan.seed, u64::from(b));
-                    multinomial(&mut rng, p_total, &bins.pos, p_in);
-                    multinomial(&mut rng, n_total, &bins.neg, n_in);
+                    bins.pos.draw(&mut rng, p_in);
+                    bins.neg.draw(&mut rng, n_in);
                     replicate(&bins, p_in, n_in, pf, nf)
                 },
             )
@@ -871,8 +908,8 @@ mod tests {
             let (flagged, gap_flagged) = sum.split_at(tau).unwrap();
             let m = sum.values.len();
             let bins = Bins {
-                pos: vec![],
-                neg: vec![],
+                pos: Multinomial::new(vec![]),
+                neg: Multinomial::new(vec![]),
                 flagged,
                 gap_flagged,
             };

@@ -17,7 +17,7 @@ use crate::data::{self, Dataset, RowId};
 use crate::detect::{self, Model};
 use crate::error::{Error, Result};
 use crate::features;
-use crate::metrics::{cmp_fraction, Metrics};
+use crate::metrics::{self, cmp_fraction, Metrics};
 use crate::output::{self, RunFiles};
 use crate::record::{
     self, fmt_f64, CandidateRecord, InputRecord, LabelRecord, RunRecord, SelectionRecord,
@@ -157,13 +157,22 @@ fn checked_scores(
 }
 
 /// Every metric of a split at τ from its summary; τ is always one the
-/// summary can count (a cut point, or the midpoint of a searched cut).
+/// summary can count (a cut point, or the midpoint of a searched cut). The
+/// bootstrap is timed apart (`ANOMARK_STAGE_TIMES=1`, part `bootstrap`).
 fn metrics_of(s: &Summary, tau: f64, beta: Option<f64>, plan: &spec::Plan) -> Result<Metrics> {
-    Metrics::of_summary(s, tau, beta, plan.bootstrap).ok_or_else(|| {
+    let bug = || {
         Error::internal(format!(
             "τ `{tau}` falls inside a gap of the evaluation summary"
         ))
-    })
+    };
+    let without = metrics::BootstrapPlan {
+        replicates: 0,
+        ..plan.bootstrap
+    };
+    let mut m = Metrics::of_summary(s, tau, beta, without).ok_or_else(bug)?;
+    let _t = crate::progress::part("bootstrap");
+    m.bootstrap_95 = metrics::bootstrap_summary(s, tau, plan.bootstrap, 0.95).ok_or_else(bug)?;
+    Ok(m)
 }
 
 /// Rows per block when scoring.
