@@ -870,8 +870,8 @@ mod tests {
             .map(|k| f64::from(w[k]))
             .sum();
         let mut c = Confusion::default();
-        for k in 0..r.len() {
-            let wk = u64::from(w[k]);
+        for (k, &wk) in w.iter().enumerate() {
+            let wk = u64::from(wk);
             match (r.sorted[k] > tau, r.anomalous[k]) {
                 (true, true) => c.tp += wk,
                 (true, false) => c.fp += wk,
@@ -916,9 +916,9 @@ mod tests {
             let w = row_draws(&mut rng, &r);
             let mut p_in = vec![0u64; m];
             let mut n_in = vec![0u64; 2 * m + 1];
-            for k in 0..n {
+            for (k, &wk) in w.iter().enumerate() {
                 let (j, on_cut) = sum.locate(r.sorted[k]);
-                let wk = u64::from(w[k]);
+                let wk = u64::from(wk);
                 match (on_cut, r.anomalous[k]) {
                     (true, true) => p_in[j] += wk,
                     (true, false) => n_in[2 * j + 1] += wk,

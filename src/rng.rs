@@ -204,9 +204,9 @@ mod binomial_tests {
     use super::*;
     use statrs::distribution::{Binomial, ChiSquared, ContinuousCDF, Discrete, DiscreteCDF};
 
-    /// The Stirling error table equals ln k! − ((k + ½) ln(k + 1) − (k + 1)
-    /// + ½ ln 2π) from statrs' ln Γ, and the series continues it from k = 10
-    /// within its first omitted term.
+    /// The Stirling error table equals ln k! minus ((k + ½) ln(k + 1) −
+    /// (k + 1) + ½ ln 2π) from statrs' ln Γ, and the series continues it from
+    /// k = 10 within its first omitted term.
     #[test]
     fn stirling_tail_matches_ln_gamma() {
         for k in 0..=30u32 {

@@ -358,8 +358,7 @@ pub fn curve(s: &Summary) -> Vec<crate::threshold::Cut> {
     };
     let mut out = vec![cut(0, 0, s.highest().unwrap_or(0.0))];
     let (mut tp, mut fp) = (0u64, 0u64);
-    for j in 0..=m {
-        let g = &s.gaps[j];
+    for (j, g) in s.gaps.iter().enumerate() {
         if g.count > 0 {
             fp += g.count;
             let next = match j < m && s.pos[j] + s.tied[j] > 0 {
@@ -423,7 +422,9 @@ mod tests {
         let n = 2 + (rng.next_u32() % 300) as usize;
         let levels = 1 + rng.next_u32() % 40;
         let share = 2 + rng.next_u32() % 8;
-        let mut y: Vec<bool> = (0..n).map(|_| rng.next_u32() % share == 0).collect();
+        let mut y: Vec<bool> = (0..n)
+            .map(|_| rng.next_u32().is_multiple_of(share))
+            .collect();
         y[0] = true;
         y[n - 1] = false;
         let specials = [0.0, -0.0, f64::INFINITY, -1e300, 1e-300, -1e-300];

@@ -2,7 +2,9 @@
 //! test split never reaches this module.
 //!
 //! Every policy is an exact search: one sort of the validation scores, then a
-//! walk over every distinct cut point (O(n log n)). Cut point k flags the rows
+//! walk over every distinct cut point (O(n log n)); or, in the pipeline, the
+//! same search over the cut points of the validation scores' evaluation
+//! summary (one pass, no sort; [`cuts_summary`] says why it is the same). Cut point k flags the rows
 //! whose scores are among the k highest distinct values. Among cut points that
 //! are equally good under a policy the one that flags the fewest validation
 //! rows wins, i.e. the highest τ. The chosen τ is the midpoint between the
@@ -135,9 +137,10 @@ pub fn cuts_ranked(r: &Ranked) -> Vec<Cut> {
 ///   only grows, so such a cut is within budget only if the kept one is.
 /// - `recall-target`: recall changes only at anomaly groups, so the first cut
 ///   reaching the target is "flag nothing" or the cut below an anomaly group.
-/// - `precision-target`: precision TP/(TP + FP) falls as FP grows at fixed TP,
-///   and recall is fixed; a cut with TP = 0 has recall 0, below the recall of
-///   every kept cut with an anomaly, and precision 0, as "flag nothing".
+/// - `precision-target`: at fixed TP, precision TP/(TP + FP) falls as FP
+///   grows and recall stays, so such a cut is no better than the kept one
+///   before it; a cut with TP = 0 meets no target above 0, and under a target
+///   of 0 the first cut below an anomaly group meets it with a higher recall.
 /// - `min-cost`: cost = c_miss·FN + c_alarm·FP with c_alarm ≥ 0 grows with FP.
 /// - `fixed`: τ is set in advance; it is added to the summary as a cut point,
 ///   so its counts are read off the summary exactly.
