@@ -284,7 +284,9 @@ impl Summary {
     pub(crate) fn split_at(&self, tau: f64) -> Option<(usize, bool)> {
         let k = self.values.partition_point(|&v| v > tau);
         let g = &self.gaps[k];
-        if g.count == 0 || g.highest <= tau {
+        // A NaN τ (the row-level search's τ for "flag everything" when the
+        // lowest score is −∞) flags nothing under s > τ, as row by row.
+        if g.count == 0 || g.highest <= tau || tau.is_nan() {
             Some((k, false))
         } else if g.lowest > tau {
             Some((k, true))
@@ -557,6 +559,11 @@ mod tests {
                     assert_eq!(json(&m), reference, "case {case}: {p:?}");
                 }
             }
+            assert_eq!(
+                sum.confusion_at(f64::NAN),
+                Some(crate::metrics::Confusion::at(&s, &y, f64::NAN)),
+                "case {case}: a NaN τ flags nothing"
+            );
             // Any τ, as a cut point: the counts of "flag iff s > τ".
             for _ in 0..5 {
                 let tau = match rng.next_u32() % 3 {
