@@ -3,13 +3,17 @@
 
     python3 bench/compare.py --anomark BIN --peer DIR --key KEY --repeats R N [N ...]
 
-Expects, for every N, bench/data/data_N.csv and a spec bench/data/spec_N.yaml
-that `anomark check` has accepted (scripts/bench prepares both). Runs, R times
-each and interleaved (A B C, A B C, ...):
+Expects, for every N, bench/data/data_N.csv and the specs
+bench/data/spec_N.yaml (the default run) and bench/data/spec_N_noci.yaml (the
+same with `bootstrap: {replicates: 0}`) that `anomark check` has accepted
+(scripts/bench prepares them). Runs, R times each and interleaved
+(A A0 B C, A A0 B C, ...):
 
-  A  anomark run SPEC --key KEY --out OUT --open-test --no-wall-clock
-  B  python3 PEER/peer_pipeline.py DATA --no-naive
-  C  a bare polars read of DATA
+  A   anomark run SPEC --key KEY --out OUT --open-test --no-wall-clock
+      (with ANOMARK_STAGE_TIMES=1, for the bootstrap's own time)
+  A0  the same on the spec without intervals
+  B   python3 PEER/peer_pipeline.py DATA --no-naive
+  C   a bare polars read of DATA
 
 measuring process wall time and peak resident memory. Writes the raw records
 to bench/results/bench_N.json and prints Markdown tables of medians on stdout;
@@ -243,18 +247,35 @@ def bench_one(n, args, use_gnu_time):
     spec = DATA / ("spec_%d.yaml" % n)
     ledger = DATA / ("spec_%d.test-ledger.jsonl" % n)
     outdir = DATA / "out" / ("anomark_%d" % n)
+    spec_noci = DATA / ("spec_%d_noci.yaml" % n)
+    ledger_noci = DATA / ("spec_%d_noci.test-ledger.jsonl" % n)
+    outdir_noci = DATA / "out" / ("anomark_%d_noci" % n)
     outdir.parent.mkdir(parents=True, exist_ok=True)
     peer = Path(args.peer) / "peer_pipeline.py"
 
-    def run_anomark():
+    def anomark(spec, ledger, outdir, env=None):
         shutil.rmtree(outdir, ignore_errors=True)
         ledger.unlink(missing_ok=True)
         r = must(timed([args.anomark, "run", spec, "--key", args.key, "--out", outdir,
-                        "--open-test", "--no-wall-clock"], use_gnu_time=use_gnu_time),
+                        "--open-test", "--no-wall-clock"], use_gnu_time=use_gnu_time, env=env),
                  "anomark run %s" % spec)
         _, cands = anomark_candidates(outdir / "run.json")
         r["candidates"] = cands
         return r
+
+    def run_anomark():
+        env = dict(os.environ, ANOMARK_STAGE_TIMES="1")
+        r = anomark(spec, ledger, outdir, env)
+        # The bootstrap's own time: the parts named `bootstrap` (one per
+        # candidate and split; they run side by side, so this is their sum).
+        times = [float(m.group(1)) for m in
+                 re.finditer(r"anomark: stage ([0-9.]+) s\s+bootstrap$", r["stderr"], re.M)]
+        r["bootstrap_s"] = sum(times) if times else None
+        r["bootstrap_parts"] = len(times)
+        return r
+
+    def run_anomark_noci():
+        return anomark(spec_noci, ledger_noci, outdir_noci)
 
     def run_peer():
         r = must(timed([sys.executable, peer, data, "--no-naive"], use_gnu_time=use_gnu_time),
@@ -278,7 +299,8 @@ def bench_one(n, args, use_gnu_time):
         r["height"] = doc["height"]
         return r
 
-    tools = (("anomark", run_anomark), ("peer", run_peer), ("polars-read", run_polars))
+    tools = (("anomark", run_anomark), ("anomark-noci", run_anomark_noci), ("peer", run_peer),
+             ("polars-read", run_polars))
     reps = {name: [] for name, _ in tools}
     for i in range(args.repeats):
         for name, fn in tools:
@@ -296,6 +318,7 @@ def bench_one(n, args, use_gnu_time):
             "wall_s": stats3([r["wall_s"] for r in reps[name]]),
             "rss_mib": stats3([r["rss_mib"] for r in reps[name]]),
             "in_process_s": stats3([r.get("in_process_s") for r in reps[name]]),
+            "bootstrap_s": stats3([r.get("bootstrap_s") for r in reps[name]]),
         }
     n_rows = reps["peer"][0]["n_rows"]
     # agreement: anomark's multivariate-gaussian candidate against the peer's mvn
@@ -351,10 +374,11 @@ def render(docs, machine, repeats):
     parts += ["## Wall time and peak memory (%d repetition%s, interleaved; median [min, max])" %
               (repeats, "" if repeats == 1 else "s"), ""]
     rows = []
-    label = {"anomark": "anomark run --open-test", "peer": "peer_pipeline.py --no-naive",
-             "polars-read": "bare polars read_csv"}
+    label = {"anomark": "anomark run --open-test (default: 1,000 bootstrap replicates)",
+             "anomark-noci": "anomark run --open-test, `bootstrap: {replicates: 0}`",
+             "peer": "peer_pipeline.py --no-naive", "polars-read": "bare polars read_csv"}
     for d in docs:
-        for name in ("anomark", "peer", "polars-read"):
+        for name in ("anomark", "anomark-noci", "peer", "polars-read"):
             s = d["summary"][name]
             w, m, ip = s["wall_s"], s["rss_mib"], s["in_process_s"]
             rows.append(["{:,}".format(d["n"]), "{:,}".format(d["rows"]), label[name],
@@ -367,6 +391,19 @@ def render(docs, machine, repeats):
               "for the bare read, `pl.read_csv` alone. anomark has no in-process clock with "
               "`--no-wall-clock`: its figure is the whole process.", ""]
 
+    parts += ["## The bootstrap's own time (default run; median [min, max])", ""]
+    rows = []
+    for d in docs:
+        s = d["summary"]
+        b = s["anomark"]["bootstrap_s"]
+        aw, a0 = s["anomark"]["wall_s"]["median"], s["anomark-noci"]["wall_s"]["median"]
+        rows.append(["{:,}".format(d["n"]), "{:,}".format(d["rows"]),
+                     "%s [%s, %s]" % (fmt(b["median"]), fmt(b["min"]), fmt(b["max"])),
+                     fmt(None if aw is None or a0 is None else aw - a0)])
+    parts.append(table(["N", "rows", "bootstrap parts, summed s", "default − no-intervals wall s"], rows))
+    parts += ["", "The parts named `bootstrap` under ANOMARK_STAGE_TIMES=1: one per candidate and "
+              "split (1,000 replicates each), summed although they run side by side.", ""]
+
     parts += ["## Ratios of medians", ""]
     rows = []
     for d in docs:
@@ -374,11 +411,15 @@ def render(docs, machine, repeats):
         aw, pw, rw = (s[k]["wall_s"]["median"] for k in ("anomark", "peer", "polars-read"))
         am, pm, rm = (s[k]["rss_mib"]["median"] for k in ("anomark", "peer", "polars-read"))
         pin, rin = s["peer"]["in_process_s"]["median"], s["polars-read"]["in_process_s"]["median"]
-        rows.append(["{:,}".format(d["n"]), fmt_ratio(ratio(pw, aw)), fmt_ratio(ratio(pin, aw)), fmt_ratio(ratio(pm, am)),
+        a0 = s["anomark-noci"]["wall_s"]["median"]
+        rows.append(["{:,}".format(d["n"]), fmt_ratio(ratio(aw, a0)), fmt_ratio(ratio(pw, aw)),
+                     fmt_ratio(ratio(pin, aw)), fmt_ratio(ratio(pm, am)),
                      fmt_ratio(ratio(aw, rw)), fmt_ratio(ratio(aw, rin)), fmt_ratio(ratio(am, rm))])
-    parts.append(table(["N", "peer/anomark wall", "peer in-process/anomark wall", "peer/anomark RSS",
+    parts.append(table(["N", "anomark default/no-intervals wall", "peer/anomark wall",
+                        "peer in-process/anomark wall", "peer/anomark RSS",
                         "anomark/bare-read wall", "anomark wall/bare read_csv in-process",
                         "anomark/bare-read RSS"], rows))
+    parts += ["", "anomark here is the default run (with intervals).", ""]
     parts.append("")
 
     parts += ["## anomark time per row", ""]

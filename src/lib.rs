@@ -8,7 +8,7 @@
 //! record, the scores and a model card.
 //!
 //! Modules, in pipeline order: [`spec`] → [`data`] → [`audit`] (hashes and the
-//! leakage proof) → [`split`] → [`detect`] → [`threshold`] → [`metrics`] →
+//! leakage proof) → [`split`] → [`detect`] → [`summary`] → [`threshold`] → [`metrics`] →
 //! [`card`] → [`output`] and [`sign`]; [`pipeline`] runs them, [`cli`] turns
 //! arguments into a [`Request`], and [`error`] holds the one error type.
 
@@ -38,6 +38,7 @@ pub mod sign;
 pub mod spec;
 pub mod split;
 pub mod stream;
+pub mod summary;
 pub mod threshold;
 
 pub use error::{Error, Result};

@@ -8,6 +8,8 @@
 
 use rayon::prelude::*;
 
+use crate::summary::Summary;
+
 /// z for a two-sided 95 % interval: Φ⁻¹(0.975), as used in Newcombe (1998).
 pub const Z_95: f64 = 1.959_963_984_540_054;
 
@@ -235,122 +237,6 @@ fn ranking(
     (ap, auc)
 }
 
-/// What a bootstrap replicate needs, fixed once per split: the tie groups
-/// of ranking positions that hold an anomaly, and for every row the bucket
-/// its draws are counted in. A replicate then counts draws in a few thousand
-/// buckets (in cache) instead of weighting every ranking position.
-struct Buckets {
-    /// Tie groups holding an anomaly, in ranking order, as indices into
-    /// `bounds`: the group is ranks `bounds[start] .. bounds[end]`.
-    groups: Vec<(usize, usize)>,
-    /// Sorted distinct cut ranks: every such group's start and end, and the
-    /// number of flagged positions.
-    bounds: Vec<usize>,
-    /// `bounds` index of the flagged count.
-    flagged: usize,
-    /// Per anomaly (row order within its class): its group.
-    pos_group: Vec<u32>,
-    /// Per normal row (row order within its class): its bucket, the number
-    /// of cut ranks at or below its rank; bucket `j` holds ranks
-    /// `bounds[j-1] .. bounds[j]`.
-    neg_bucket: Vec<u32>,
-    /// The same in 16 bits when the buckets allow it: the table is read at a
-    /// random place for every draw, and half the size stays in cache.
-    neg_bucket16: Option<Vec<u16>>,
-}
-
-impl Buckets {
-    fn new(r: &Ranked, pos_rank: &[u32], neg_rank: &[u32], flagged: usize) -> Self {
-        let mut spans = Vec::new();
-        let mut start = 0;
-        for &end in &r.ends {
-            if r.anomalous[start..end].iter().any(|&a| a) {
-                spans.push((start, end));
-            }
-            start = end;
-        }
-        let mut bounds: Vec<usize> = spans
-            .iter()
-            .flat_map(|&(s, e)| [s, e])
-            .chain([flagged])
-            .collect();
-        bounds.sort_unstable();
-        bounds.dedup();
-        let at = |rank: usize| bounds.partition_point(|&b| b < rank);
-        let groups: Vec<(usize, usize)> = spans.iter().map(|&(s, e)| (at(s), at(e))).collect();
-        let group_of = |rank: usize| spans.partition_point(|&(_, e)| e <= rank) as u32;
-        let neg_bucket: Vec<u32> = neg_rank
-            .iter()
-            .map(|&k| bounds.partition_point(|&b| b <= k as usize) as u32)
-            .collect();
-        let neg_bucket16 = (bounds.len() < usize::from(u16::MAX))
-            .then(|| neg_bucket.iter().map(|&b| b as u16).collect());
-        Buckets {
-            flagged: at(flagged),
-            pos_group: pos_rank.iter().map(|&k| group_of(k as usize)).collect(),
-            neg_bucket,
-            neg_bucket16,
-            groups,
-            bounds,
-        }
-    }
-
-    /// F1 at τ, average precision and ROC AUC of one replicate, from its
-    /// draw counts per anomaly group (`p_in`) and per normal bucket (`n_in`).
-    ///
-    /// The same arithmetic as [`ranking`] with integer weights: every running
-    /// count is an exact integer in binary64, and a group without a drawn
-    /// anomaly adds exactly zero to both sums, so the bits are the same (a
-    /// test compares them).
-    fn replicate(&self, p_in: &[u64], n_in: &[u64], p_total: f64, n_total: f64) -> (f64, f64, f64) {
-        let (mut ap, mut u) = (0.0, 0.0);
-        let (mut pos_above, mut neg_above) = (0u64, 0u64);
-        let (mut tp_flagged, mut fp_flagged) = (0u64, 0u64);
-        let mut bucket = 0; // next normal bucket not yet counted
-        for (g, &(start, end)) in self.groups.iter().enumerate() {
-            // Buckets 0..=start hold the ranks before the group.
-            while bucket <= start {
-                neg_above += n_in[bucket];
-                bucket += 1;
-            }
-            let mut n = 0;
-            while bucket <= end {
-                n += n_in[bucket];
-                bucket += 1;
-            }
-            let p = p_in[g];
-            if p > 0 {
-                let (pf, nf) = (p as f64, n as f64);
-                let (tp, fp) = ((pos_above + p) as f64, (neg_above + n) as f64);
-                ap += (pf / p_total) * (tp / (tp + fp));
-                u += pf * (n_total - neg_above as f64 - nf) + 0.5 * pf * nf;
-            }
-            pos_above += p;
-            neg_above += n;
-            if end <= self.flagged {
-                tp_flagged = pos_above;
-            }
-        }
-        // Normal draws above the flagged count: buckets 0..=flagged.
-        for &c in &n_in[..=self.flagged.min(n_in.len() - 1)] {
-            fp_flagged += c;
-        }
-        let c = Confusion {
-            tp: tp_flagged,
-            fp: fp_flagged,
-            fn_: p_total as u64 - tp_flagged,
-            tn: n_total as u64 - fp_flagged,
-        };
-        let ap = (p_total > 0.0).then_some(ap);
-        let auc = (p_total > 0.0 && n_total > 0.0).then(|| u / (p_total * n_total));
-        (
-            c.f1().unwrap_or(f64::NAN),
-            ap.unwrap_or(f64::NAN),
-            auc.unwrap_or(f64::NAN),
-        )
-    }
-}
-
 /// Unweighted average precision and ROC AUC.
 fn ap_auc(scores: &[f64], is_anomaly: &[bool]) -> (Option<f64>, Option<f64>) {
     ap_auc_ranked(&ranked(scores, is_anomaly))
@@ -419,6 +305,8 @@ fn interval(mut v: Vec<f64>, confidence: f64) -> Option<Interval> {
 /// Stratified bootstrap: each replicate draws the anomalies and the normal
 /// rows separately, with replacement, keeping both counts; replicate `b` uses
 /// ChaCha8 stream `b` of `seed`, so results do not depend on thread count.
+/// The draws are made on the scores' evaluation summary with τ as a cut
+/// point ([`bootstrap_summary`]).
 pub fn bootstrap(
     scores: &[f64],
     is_anomaly: &[bool],
@@ -426,89 +314,206 @@ pub fn bootstrap(
     plan: BootstrapPlan,
     confidence: f64,
 ) -> BootstrapIntervals {
-    bootstrap_with(scores, is_anomaly, None, tau, plan, confidence)
+    let s = Summary::new(scores, is_anomaly, &[tau]);
+    bootstrap_summary(&s, tau, plan, confidence).unwrap_or(BootstrapIntervals::NONE)
 }
 
-/// [`bootstrap`] with the scores' ranking when it is already at hand.
-fn bootstrap_with(
-    scores: &[f64],
-    is_anomaly: &[bool],
-    ranked_scores: Option<&Ranked>,
-    tau: f64,
-    plan: BootstrapPlan,
-    confidence: f64,
-) -> BootstrapIntervals {
-    let none = BootstrapIntervals {
+impl BootstrapIntervals {
+    /// No intervals (no replicates, or a class without rows).
+    pub const NONE: BootstrapIntervals = BootstrapIntervals {
         f1: None,
         average_precision: None,
         roc_auc: None,
     };
-    let pos: Vec<usize> = (0..scores.len()).filter(|&i| is_anomaly[i]).collect();
-    let neg: Vec<usize> = (0..scores.len()).filter(|&i| !is_anomaly[i]).collect();
-    if plan.replicates == 0 || pos.is_empty() || neg.is_empty() {
-        return none;
+}
+
+/// Where one replicate's draws are counted: per cut point `j`, the anomalies
+/// at `pos[j]`; the normal rows in bins `2j` (gap `j`) and `2j + 1` (tied
+/// with cut point `j`), and `2m` for the last gap.
+struct Bins {
+    /// The anomalies' multinomial, over cut points.
+    pos: Multinomial,
+    /// The normal rows' multinomial, over bins.
+    neg: Multinomial,
+    /// Cut points above τ.
+    flagged: usize,
+    /// Whether the gap just below them is above τ.
+    gap_flagged: bool,
+}
+
+/// One class's Multinomial(n; cᵢ/n) over bins `(i, cᵢ)`, n = Σcᵢ: where n
+/// rows drawn with replacement from the class fall.
+struct Multinomial {
+    /// (bin, rows there), for the non-empty bins.
+    bins: Vec<(usize, u64)>,
+    /// n.
+    draws: u64,
+    /// When n is at most a few times the number of bins: each row's bin, for
+    /// drawing the n rows themselves (O(n), cheaper there than a binomial per
+    /// bin).
+    rows: Option<Vec<u32>>,
+}
+
+/// Rows per non-empty bin up to which a replicate draws the rows themselves.
+const DIRECT_PER_BIN: u64 = 4;
+
+impl Multinomial {
+    fn new(bins: Vec<(usize, u64)>) -> Self {
+        let draws: u64 = bins.iter().map(|b| b.1).sum();
+        let rows = (draws <= DIRECT_PER_BIN * bins.len() as u64).then(|| {
+            bins.iter()
+                .flat_map(|&(i, c)| std::iter::repeat_n(i as u32, c as usize))
+                .collect()
+        });
+        Multinomial { bins, draws, rows }
     }
-    // Weights are kept by ranking position, so a replicate is one sequential
-    // pass; the draws are made in row order within each class.
-    let owned;
-    let r = match ranked_scores {
-        Some(r) => r,
-        None => {
-            owned = ranked(scores, is_anomaly);
-            &owned
+
+    /// Adds one multinomial vector to `out` (zeroed). Either way is an exact
+    /// draw of it: n independent uniform picks among the n rows, counted per
+    /// bin, is the multinomial's definition; and the chain X₁ ~ Binomial(n,
+    /// c₁/n), Xᵢ given X₁..Xᵢ₋₁ ~ Binomial(n − ΣX, cᵢ/(mass left)), the last
+    /// bin taking the rest, is its factorisation into conditionals.
+    fn draw(&self, rng: &mut rand_chacha::ChaCha8Rng, out: &mut [u64]) {
+        if let Some(rows) = &self.rows {
+            for _ in 0..self.draws {
+                out[rows[crate::rng::below(rng, self.draws) as usize] as usize] += 1;
+            }
+            return;
         }
-    };
-    let mut rank = vec![0u32; scores.len()];
-    for (k, &i) in r.order.iter().enumerate() {
-        rank[i] = k as u32;
+        let mut left = self.draws;
+        let mut mass = self.draws;
+        for &(i, c) in &self.bins {
+            if left == 0 {
+                break;
+            }
+            let x = if c >= mass {
+                left
+            } else {
+                crate::rng::binomial(rng, left, c as f64 / mass as f64)
+            };
+            out[i] = x;
+            left -= x;
+            mass -= c;
+        }
     }
-    let pos_rank: Vec<u32> = pos.iter().map(|&i| rank[i]).collect();
-    let neg_rank: Vec<u32> = neg.iter().map(|&i| rank[i]).collect();
-    let flagged = r.sorted.iter().take_while(|&&v| v > tau).count();
-    let buckets = Buckets::new(r, &pos_rank, &neg_rank, flagged);
-    let (p_total, n_total) = (pos.len() as f64, neg.len() as f64);
-    let reps: Vec<(f64, f64, f64)> = (0..plan.replicates)
-        .into_par_iter()
-        .map_init(
-            || {
-                (
-                    vec![0u64; buckets.groups.len()],
-                    vec![0u64; buckets.bounds.len() + 1],
-                )
-            },
-            |(p_in, n_in), b| {
-                p_in.fill(0);
-                n_in.fill(0);
-                let mut rng = crate::rng::seeded(plan.seed, u64::from(b));
-                let len = pos_rank.len() as u64;
-                for _ in 0..pos_rank.len() {
-                    p_in[buckets.pos_group[crate::rng::below(&mut rng, len) as usize] as usize] +=
-                        1;
-                }
-                let len = neg_rank.len() as u64;
-                match &buckets.neg_bucket16 {
-                    Some(table) => {
-                        for _ in 0..neg_rank.len() {
-                            n_in[usize::from(table[crate::rng::below(&mut rng, len) as usize])] +=
-                                1;
-                        }
-                    }
-                    None => {
-                        for _ in 0..neg_rank.len() {
-                            n_in[buckets.neg_bucket[crate::rng::below(&mut rng, len) as usize]
-                                as usize] += 1;
-                        }
-                    }
-                }
-                buckets.replicate(p_in, n_in, p_total, n_total)
-            },
-        )
-        .collect();
-    BootstrapIntervals {
+}
+
+/// The stratified bootstrap on an evaluation summary, at a τ the summary
+/// can count (a cut point, or between a gap and its neighbours); `None` when
+/// it cannot.
+///
+/// A replicate of row-level resampling draws n₁ anomalies uniformly with
+/// replacement from the n₁ anomalies, and n₀ normal rows likewise from the
+/// n₀ normal rows. Every statistic it reports (F1 at τ, average precision,
+/// ROC AUC) depends on the draws only through how many fall in each bin of
+/// the summary: anomalies per cut point, normal rows per gap and per tie
+/// with a cut point (see [`Summary::ap_auc`]; τ is a bin boundary). Each of
+/// the n₁ (or n₀) independent draws falls in bin i with probability cᵢ/n₁
+/// (or cᵢ/n₀), so the vector of counts per bin is exactly
+/// Multinomial(n₁; c/n₁) (and Multinomial(n₀; c/n₀), independent of it). A
+/// multinomial vector is drawn exactly as a chain of binomials: X₁ ~
+/// Binomial(n, p₁), and given X₁..Xᵢ₋₁, Xᵢ ~ Binomial(n − ΣX, pᵢ/(1 − Σp)),
+/// the probabilities cᵢ/(mass left) being exact ratios of whole numbers
+/// before rounding ([`crate::rng::binomial`] draws each exactly). So a
+/// replicate here has the distribution of a row-level replicate, at
+/// O(cut points) cost instead of O(rows). A class with at most four rows per
+/// non-empty bin (typically the anomalies, few and mostly of distinct
+/// scores) has its n rows drawn one by one instead, which is the same
+/// multinomial and, there, no more than O(cut points) either.
+pub fn bootstrap_summary(
+    s: &Summary,
+    tau: f64,
+    plan: BootstrapPlan,
+    confidence: f64,
+) -> Option<BootstrapIntervals> {
+    let (p_total, n_total) = (s.positives(), s.negatives());
+    if plan.replicates == 0 || p_total == 0 || n_total == 0 {
+        return Some(BootstrapIntervals::NONE);
+    }
+    let reps = replicates(s, tau, plan)?;
+    Some(BootstrapIntervals {
         f1: interval(reps.iter().map(|r| r.0).collect(), confidence),
         average_precision: interval(reps.iter().map(|r| r.1).collect(), confidence),
         roc_auc: interval(reps.iter().map(|r| r.2).collect(), confidence),
+    })
+}
+
+/// Every replicate's (F1 at τ, AP, AUC) for [`bootstrap_summary`], in
+/// replicate order; `None` when τ splits a gap.
+fn replicates(s: &Summary, tau: f64, plan: BootstrapPlan) -> Option<Vec<(f64, f64, f64)>> {
+    let (p_total, n_total) = (s.positives(), s.negatives());
+    let (flagged, gap_flagged) = s.split_at(tau)?;
+    let m = s.values.len();
+    let mut neg = Vec::new();
+    for j in 0..=m {
+        if s.gaps[j].count > 0 {
+            neg.push((2 * j, s.gaps[j].count));
+        }
+        if j < m && s.tied[j] > 0 {
+            neg.push((2 * j + 1, s.tied[j]));
+        }
     }
+    let bins = Bins {
+        pos: Multinomial::new(
+            (0..m)
+                .filter(|&j| s.pos[j] > 0)
+                .map(|j| (j, s.pos[j]))
+                .collect(),
+        ),
+        neg: Multinomial::new(neg),
+        flagged,
+        gap_flagged,
+    };
+    let (pf, nf) = (p_total as f64, n_total as f64);
+    Some(
+        (0..plan.replicates)
+            .into_par_iter()
+            .map_init(
+                || (vec![0u64; m], vec![0u64; 2 * m + 1]),
+                |(p_in, n_in), b| {
+                    p_in.fill(0);
+                    n_in.fill(0);
+                    let mut rng = crate::rng::seeded(plan.seed, u64::from(b));
+                    bins.pos.draw(&mut rng, p_in);
+                    bins.neg.draw(&mut rng, n_in);
+                    replicate(&bins, p_in, n_in, pf, nf)
+                },
+            )
+            .collect(),
+    )
+}
+
+/// F1 at τ, average precision and ROC AUC of one replicate's counts per bin
+/// (NaN where undefined), by the walk of [`Summary::ap_auc`].
+fn replicate(
+    bins: &Bins,
+    p_in: &[u64],
+    n_in: &[u64],
+    p_total: f64,
+    n_total: f64,
+) -> (f64, f64, f64) {
+    let m = p_in.len();
+    let (ap, auc) = crate::summary::ranking_walk(
+        (0..m).map(|j| (p_in[j], n_in[2 * j + 1])),
+        (0..=m).map(|j| n_in[2 * j]),
+        p_total,
+        n_total,
+    );
+    let k = bins.flagged;
+    let tp: u64 = p_in[..k].iter().sum();
+    let fp: u64 =
+        n_in[..2 * k].iter().sum::<u64>() + if bins.gap_flagged { n_in[2 * k] } else { 0 };
+    let c = Confusion {
+        tp,
+        fp,
+        fn_: p_total as u64 - tp,
+        tn: n_total as u64 - fp,
+    };
+    (
+        c.f1().unwrap_or(f64::NAN),
+        ap.unwrap_or(f64::NAN),
+        auc.unwrap_or(f64::NAN),
+    )
 }
 
 /// Compares two fractions a/b and c/d exactly (zero denominators count as 0).
@@ -608,7 +613,9 @@ pub struct Metrics {
 }
 
 impl Metrics {
-    /// Every metric of scores against labels at τ.
+    /// Every metric of scores against labels at τ, row by row (the reference
+    /// the summary's numbers are tested against; the bootstrap is drawn on
+    /// the summary either way).
     pub fn of(
         scores: &[f64],
         is_anomaly: &[bool],
@@ -616,29 +623,39 @@ impl Metrics {
         beta: Option<f64>,
         boot: BootstrapPlan,
     ) -> Self {
-        Metrics::of_ranked(
-            scores,
-            is_anomaly,
-            &ranked(scores, is_anomaly),
-            tau,
+        let c = Confusion::at(scores, is_anomaly, tau);
+        let (ap, auc) = ap_auc(scores, is_anomaly);
+        Metrics::from_parts(
+            c,
+            ap,
+            auc,
             beta,
-            boot,
+            bootstrap(scores, is_anomaly, tau, boot, 0.95),
         )
     }
 
-    /// [`Metrics::of`] with the scores' ranking already at hand (the same
-    /// numbers, one sort fewer).
-    pub fn of_ranked(
-        scores: &[f64],
-        is_anomaly: &[bool],
-        ranked_scores: &Ranked,
+    /// Every metric at τ from the split's evaluation summary: the same
+    /// numbers as [`Metrics::of`], to the bit. `None` when τ falls inside a
+    /// gap's normal scores (make τ a cut point of the summary).
+    pub fn of_summary(
+        s: &Summary,
         tau: f64,
         beta: Option<f64>,
         boot: BootstrapPlan,
+    ) -> Option<Self> {
+        let c = s.confusion_at(tau)?;
+        let (ap, auc) = s.ap_auc();
+        let intervals = bootstrap_summary(s, tau, boot, 0.95)?;
+        Some(Metrics::from_parts(c, ap, auc, beta, intervals))
+    }
+
+    fn from_parts(
+        c: Confusion,
+        ap: Option<f64>,
+        auc: Option<f64>,
+        beta: Option<f64>,
+        bootstrap_95: BootstrapIntervals,
     ) -> Self {
-        debug_assert_eq!(ranked_scores.len(), scores.len());
-        let c = Confusion::at(scores, is_anomaly, tau);
-        let (ap, auc) = ap_auc_ranked(ranked_scores);
         Metrics {
             confusion: c,
             precision: c.precision(),
@@ -655,7 +672,7 @@ impl Metrics {
             precision_95: proportion(c.tp, c.tp + c.fp),
             recall_95: proportion(c.tp, c.tp + c.fn_),
             false_positive_rate_95: proportion(c.fp, c.fp + c.tn),
-            bootstrap_95: bootstrap_with(scores, is_anomaly, Some(ranked_scores), tau, boot, 0.95),
+            bootstrap_95,
         }
     }
 }
@@ -825,11 +842,56 @@ mod tests {
         }
     }
 
-    /// A replicate counted by buckets gives the same bits as weighting every
-    /// ranking position by its draws and walking them all ([`ranking`] and a
-    /// full confusion count), on scores with many ties.
+    /// One row-level bootstrap replicate: n₁ anomalies and n₀ normal rows
+    /// drawn uniformly with replacement within their class, as a weight per
+    /// ranking position.
+    fn row_draws(rng: &mut rand_chacha::ChaCha8Rng, r: &Ranked) -> Vec<u32> {
+        let pos: Vec<usize> = (0..r.len()).filter(|&k| r.anomalous[k]).collect();
+        let neg: Vec<usize> = (0..r.len()).filter(|&k| !r.anomalous[k]).collect();
+        let mut w = vec![0u32; r.len()];
+        for stratum in [&pos, &neg] {
+            for _ in 0..stratum.len() {
+                let i = crate::rng::below(rng, stratum.len() as u64) as usize;
+                w[stratum[i]] += 1;
+            }
+        }
+        w
+    }
+
+    /// F1 at τ, AP and AUC of row-level weights, by the row-level walk
+    /// ([`ranking`]) and a full confusion count.
+    fn row_replicate(r: &Ranked, w: &[u32], tau: f64) -> (f64, f64, f64) {
+        let pt: f64 = (0..r.len())
+            .filter(|&k| r.anomalous[k])
+            .map(|k| f64::from(w[k]))
+            .sum();
+        let nt: f64 = (0..r.len())
+            .filter(|&k| !r.anomalous[k])
+            .map(|k| f64::from(w[k]))
+            .sum();
+        let mut c = Confusion::default();
+        for (k, &wk) in w.iter().enumerate() {
+            let wk = u64::from(wk);
+            match (r.sorted[k] > tau, r.anomalous[k]) {
+                (true, true) => c.tp += wk,
+                (true, false) => c.fp += wk,
+                (false, true) => c.fn_ += wk,
+                (false, false) => c.tn += wk,
+            }
+        }
+        let (ap, auc) = ranking(r, |k| f64::from(w[k]), pt, nt);
+        (
+            c.f1().unwrap_or(f64::NAN),
+            ap.unwrap_or(f64::NAN),
+            auc.unwrap_or(f64::NAN),
+        )
+    }
+
+    /// A replicate counted in the summary's bins gives the same bits as
+    /// weighting every ranking position by its draws and walking them all
+    /// ([`ranking`] and a full confusion count), on scores with many ties.
     #[test]
-    fn bucketed_replicate_equals_the_weighted_pass() {
+    fn summary_replicate_equals_the_weighted_pass() {
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(21);
         for case in 0..300 {
             let n = 2 + (rng.next_u32() % 400) as usize;
@@ -842,52 +904,115 @@ mod tests {
                 .collect();
             let tau = f64::from(rng.next_u32() % (levels + 2)) - 0.5;
             let r = ranked(&s, &y);
-            let mut rank = vec![0u32; n];
-            for (k, &i) in r.order.iter().enumerate() {
-                rank[i] = k as u32;
-            }
-            let pos: Vec<u32> = (0..n).filter(|&i| y[i]).map(|i| rank[i]).collect();
-            let neg: Vec<u32> = (0..n).filter(|&i| !y[i]).map(|i| rank[i]).collect();
-            let flagged = r.order.iter().take_while(|&&i| s[i] > tau).count();
-            let b = Buckets::new(&r, &pos, &neg, flagged);
-            // One replicate's draws, counted both ways.
-            let mut w = vec![0u32; n];
-            let mut p_in = vec![0u64; b.groups.len()];
-            let mut n_in = vec![0u64; b.bounds.len() + 1];
-            for (k, stratum) in [&pos, &neg].into_iter().enumerate() {
-                for _ in 0..stratum.len() {
-                    let i = (rng.next_u32() as usize) % stratum.len();
-                    w[stratum[i] as usize] += 1;
-                    if k == 0 {
-                        p_in[b.pos_group[i] as usize] += 1;
-                    } else {
-                        n_in[b.neg_bucket[i] as usize] += 1;
-                    }
-                }
-            }
-            let (pt, nt) = (pos.len() as f64, neg.len() as f64);
-            let mut c = Confusion::default();
-            for (k, (&wk, &a)) in w.iter().zip(&r.anomalous).enumerate() {
+            let sum = Summary::new(&s, &y, &[tau]);
+            let (flagged, gap_flagged) = sum.split_at(tau).unwrap();
+            let m = sum.values.len();
+            let bins = Bins {
+                pos: Multinomial::new(vec![]),
+                neg: Multinomial::new(vec![]),
+                flagged,
+                gap_flagged,
+            };
+            let w = row_draws(&mut rng, &r);
+            let mut p_in = vec![0u64; m];
+            let mut n_in = vec![0u64; 2 * m + 1];
+            for (k, &wk) in w.iter().enumerate() {
+                let (j, on_cut) = sum.locate(r.sorted[k]);
                 let wk = u64::from(wk);
-                match (k < flagged, a) {
-                    (true, true) => c.tp += wk,
-                    (true, false) => c.fp += wk,
-                    (false, true) => c.fn_ += wk,
-                    (false, false) => c.tn += wk,
+                match (on_cut, r.anomalous[k]) {
+                    (true, true) => p_in[j] += wk,
+                    (true, false) => n_in[2 * j + 1] += wk,
+                    (false, _) => n_in[2 * j] += wk,
                 }
             }
-            let (ap, auc) = ranking(&r, |k| f64::from(w[k]), pt, nt);
-            let want = (
-                c.f1().unwrap_or(f64::NAN).to_bits(),
-                ap.unwrap_or(f64::NAN).to_bits(),
-                auc.unwrap_or(f64::NAN).to_bits(),
-            );
-            let got = b.replicate(&p_in, &n_in, pt, nt);
+            let (pt, nt) = (sum.positives() as f64, sum.negatives() as f64);
+            let want = row_replicate(&r, &w, tau);
+            let got = replicate(&bins, &p_in, &n_in, pt, nt);
             assert_eq!(
                 (got.0.to_bits(), got.1.to_bits(), got.2.to_bits()),
-                want,
-                "case {case}: n {n}, flagged {flagged}"
+                (want.0.to_bits(), want.1.to_bits(), want.2.to_bits()),
+                "case {case}: n {n}, τ {tau}"
             );
+        }
+    }
+
+    /// The summary's bootstrap against row-level resampling on one fixed case:
+    /// 4,000 replicates of each (independent streams). The tolerances are
+    /// derived for two independent samples of n = 4,000 from one
+    /// distribution (common practice, no source):
+    /// - means: the difference has standard error s·√(2/n), s the pooled
+    ///   standard deviation of the replicates; allowed: 4 standard errors;
+    /// - quantiles: for the q quantile x̂ of one sample, the other sample's
+    ///   empirical distribution function at x̂ is q + O(√(2q(1 − q)/n)) (the
+    ///   variances of F(x̂) − q and of F̂(x) − F(x) add); allowed: 4 such
+    ///   standard errors (0.0140 at q = 2.5 %), with ties at x̂ counted from
+    ///   the fraction strictly below to the fraction at or below.
+    ///
+    /// Four standard errors make a false alarm about 6·10⁻⁵ per check, and the
+    /// streams are fixed, so the test is deterministic.
+    #[test]
+    fn summary_bootstrap_matches_row_resampling_in_distribution() {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(404);
+        let n = 2_000;
+        let y: Vec<bool> = (0..n).map(|i| i % 50 == 0).collect();
+        let s: Vec<f64> = (0..n)
+            .map(|i| {
+                let v = f64::from(rng.next_u32() % 60) / 20.0 + if y[i] { 1.2 } else { 0.0 };
+                (v * 20.0).round() / 20.0
+            })
+            .collect();
+        let tau = crate::threshold::max_f1(&s, &y).tau;
+        let sum = Summary::new(&s, &y, &[tau]);
+        let reps = 4_000u32;
+        let new = replicates(
+            &sum,
+            tau,
+            BootstrapPlan {
+                replicates: reps,
+                seed: 17,
+            },
+        )
+        .unwrap();
+        let r = ranked(&s, &y);
+        let old: Vec<(f64, f64, f64)> = (0..reps)
+            .map(|b| {
+                let mut g = crate::rng::seeded(18, u64::from(b));
+                row_replicate(&r, &row_draws(&mut g, &r), tau)
+            })
+            .collect();
+        let nf = f64::from(reps);
+        let pick = |v: &[(f64, f64, f64)], i: usize| -> Vec<f64> {
+            let mut x: Vec<f64> = v.iter().map(|t| [t.0, t.1, t.2][i]).collect();
+            x.sort_by(f64::total_cmp);
+            x
+        };
+        for (i, name) in ["F1", "AP", "AUC"].into_iter().enumerate() {
+            let (a, b) = (pick(&new, i), pick(&old, i));
+            let mean = |x: &[f64]| x.iter().sum::<f64>() / nf;
+            let var = |x: &[f64]| {
+                let m = mean(x);
+                x.iter().map(|v| (v - m).powi(2)).sum::<f64>() / (nf - 1.0)
+            };
+            let se = ((var(&a) + var(&b)) / 2.0).sqrt() * (2.0 / nf).sqrt();
+            assert!(
+                (mean(&a) - mean(&b)).abs() <= 4.0 * se,
+                "{name}: means {} and {} (se {se})",
+                mean(&a),
+                mean(&b)
+            );
+            for q in [0.025, 0.975] {
+                let tol = 4.0 * (2.0 * q * (1.0 - q) / nf).sqrt();
+                for (x, other) in [(&a, &b), (&b, &a)] {
+                    let xq = quantile(x, q);
+                    let lt = other.partition_point(|&v| v < xq) as f64 / nf;
+                    let le = other.partition_point(|&v| v <= xq) as f64 / nf;
+                    assert!(
+                        lt <= q + tol && le >= q - tol,
+                        "{name}: the {q} quantile {xq} of one sample lies at [{lt}, {le}] \
+                         of the other (allowed {q} ± {tol})"
+                    );
+                }
+            }
         }
     }
 

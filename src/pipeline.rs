@@ -27,6 +27,7 @@ use crate::spec::{
     self, DetectorKind, MissingPolicy, Plan, SelectionMetric, SplitPlan, ThresholdPolicy,
 };
 use crate::split::{self, Part};
+use crate::summary::Summary;
 use crate::threshold::{self, Choice};
 
 /// The selection rule, in words (also in run.json and the card).
@@ -98,9 +99,9 @@ struct Candidate {
     choice: Choice,
     validation: Metrics,
     validation_scores: Vec<f64>,
-    /// The validation scores ranked once, for the threshold, the metrics
-    /// and the figures.
-    validation_ranked: metrics::Ranked,
+    /// The validation scores' evaluation summary, for the threshold, the
+    /// metrics, the bootstrap and the figures.
+    validation_summary: Summary,
 }
 
 /// A candidate's name: the detector, prefixed by a named feature set.
@@ -158,6 +159,25 @@ fn checked_scores(
         });
     }
     Ok(s)
+}
+
+/// Every metric of a split at τ from its summary; τ is always one the
+/// summary can count (a cut point, or the midpoint of a searched cut). The
+/// bootstrap is timed apart (`ANOMARK_STAGE_TIMES=1`, part `bootstrap`).
+fn metrics_of(s: &Summary, tau: f64, beta: Option<f64>, plan: &spec::Plan) -> Result<Metrics> {
+    let bug = || {
+        Error::internal(format!(
+            "τ `{tau}` falls inside a gap of the evaluation summary"
+        ))
+    };
+    let without = metrics::BootstrapPlan {
+        replicates: 0,
+        ..plan.bootstrap
+    };
+    let mut m = Metrics::of_summary(s, tau, beta, without).ok_or_else(bug)?;
+    let _t = crate::progress::part("bootstrap");
+    m.bootstrap_95 = metrics::bootstrap_summary(s, tau, plan.bootstrap, 0.95).ok_or_else(bug)?;
+    Ok(m)
 }
 
 /// Rows per block when scoring.
@@ -617,26 +637,24 @@ fn execute(
                         drop(t);
                         (model, validation_scores)
                     };
-                    let t = crate::progress::part("ranking");
-                    let validation_ranked = metrics::Ranked::new(&validation_scores, &val_y);
+                    let t = crate::progress::part("summary");
+                    let mut validation_summary = Summary::new(&validation_scores, &val_y, &[]);
                     drop(t);
                     let t = crate::progress::part("threshold");
-                    let choice = threshold::choose_ranked(
+                    let choice = threshold::choose_summary(
                         plan.threshold,
                         &validation_scores,
                         &val_y,
-                        &validation_ranked,
+                        &validation_summary,
                     );
+                    // A τ set in advance (a fixed policy) becomes a cut point.
+                    if validation_summary.confusion_at(choice.tau).is_none() {
+                        validation_summary =
+                            Summary::new(&validation_scores, &val_y, &[choice.tau]);
+                    }
                     drop(t);
                     let t = crate::progress::part("validation metrics");
-                    let validation = Metrics::of_ranked(
-                        &validation_scores,
-                        &val_y,
-                        &validation_ranked,
-                        choice.tau,
-                        beta,
-                        plan.bootstrap,
-                    );
+                    let validation = metrics_of(&validation_summary, choice.tau, beta, &plan)?;
                     drop(t);
                     Ok(Candidate {
                         name,
@@ -646,7 +664,7 @@ fn execute(
                         choice,
                         validation,
                         validation_scores,
-                        validation_ranked,
+                        validation_summary,
                     })
                 })
                 .collect()
@@ -785,12 +803,14 @@ fn execute(
     } else {
         (vec![], vec![vec![]; candidates.len()], vec![], None)
     };
-    // Each candidate's test scores ranked once, for its metrics and figures.
-    let test_ranked: Vec<metrics::Ranked> = {
+    // Each candidate's test scores summarised once, with its τ as a cut
+    // point, for its metrics and figures.
+    let test_summaries: Vec<Summary> = {
         use rayon::prelude::*;
         test_scores
             .par_iter()
-            .map(|ts| metrics::Ranked::new(ts, &test_y))
+            .zip(&candidates)
+            .map(|(ts, c)| Summary::new(ts, &test_y, &[c.choice.tau]))
             .collect()
     };
 
@@ -799,25 +819,30 @@ fn execute(
         use rayon::prelude::*;
         candidates
             .par_iter()
-            .zip(test_scores.par_iter().zip(&test_ranked))
+            .zip(&test_summaries)
             .enumerate()
-            .map(|(i, (c, (ts, tr)))| CandidateRecord {
-                name: c.name.clone(),
-                feature_set: fitted_sets[c.set].set.clone(),
-                detector: detect::name(c.kind).into(),
-                parameter_count: c.model.parameter_count(),
-                params: c.model.params(),
-                tau: c.choice.tau,
-                ln_epsilon: c.choice.ln_epsilon(),
-                threshold_met: c.choice.met,
-                threshold_note: c.choice.note.clone(),
-                validation: c.validation.clone(),
-                test: openings.is_some().then(|| {
-                    Metrics::of_ranked(ts, &test_y, tr, c.choice.tau, beta, plan.bootstrap)
-                }),
-                chosen: i == chosen,
+            .map(|(i, (c, ts))| -> Result<CandidateRecord> {
+                let test = if openings.is_some() {
+                    Some(metrics_of(ts, c.choice.tau, beta, &plan)?)
+                } else {
+                    None
+                };
+                Ok(CandidateRecord {
+                    name: c.name.clone(),
+                    feature_set: fitted_sets[c.set].set.clone(),
+                    detector: detect::name(c.kind).into(),
+                    parameter_count: c.model.parameter_count(),
+                    params: c.model.params(),
+                    tau: c.choice.tau,
+                    ln_epsilon: c.choice.ln_epsilon(),
+                    threshold_met: c.choice.met,
+                    threshold_note: c.choice.note.clone(),
+                    validation: c.validation.clone(),
+                    test,
+                    chosen: i == chosen,
+                })
             })
-            .collect()
+            .collect::<Result<_>>()?
     };
 
     let spec_file = opts
@@ -923,7 +948,7 @@ fn execute(
     // made side by side on all cores, each with the same bytes as alone.
     let score_figures = || -> Result<(Vec<plots::Plot>, Vec<plots::Plot>)> {
         let _t = crate::progress::part("score figures");
-        let val_cuts = threshold::cuts_ranked(&c.validation_ranked);
+        let val_cuts = crate::summary::curve(&c.validation_summary);
         let val = plots::SplitScores {
             split: Part::Validation.name(),
             scores: &c.validation_scores,
@@ -939,7 +964,7 @@ fn execute(
         ];
         let mut test = vec![];
         if rec.test_opened {
-            let test_cuts = threshold::cuts_ranked(&test_ranked[chosen]);
+            let test_cuts = crate::summary::curve(&test_summaries[chosen]);
             let t = plots::SplitScores {
                 split: Part::Test.name(),
                 scores: &test_scores[chosen],

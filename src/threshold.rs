@@ -2,7 +2,9 @@
 //! test split never reaches this module.
 //!
 //! Every policy is an exact search: one sort of the validation scores, then a
-//! walk over every distinct cut point (O(n log n)). Cut point k flags the rows
+//! walk over every distinct cut point (O(n log n)); or, in the pipeline, the
+//! same search over the cut points of the validation scores' evaluation
+//! summary (one pass, no sort; [`cuts_summary`] says why it is the same). Cut point k flags the rows
 //! whose scores are among the k highest distinct values. Among cut points that
 //! are equally good under a policy the one that flags the fewest validation
 //! rows wins, i.e. the highest τ. The chosen τ is the midpoint between the
@@ -18,6 +20,7 @@
 
 use crate::metrics::{cmp_fraction, Confusion, Ranked};
 use crate::spec::ThresholdPolicy;
+use crate::summary::Summary;
 
 /// A chosen operating point.
 #[derive(Debug, Clone)]
@@ -40,7 +43,7 @@ impl Choice {
 }
 
 /// The largest double below `x` (x finite).
-fn below(x: f64) -> f64 {
+pub(crate) fn below(x: f64) -> f64 {
     if x > 0.0 {
         f64::from_bits(x.to_bits() - 1)
     } else if x == 0.0 {
@@ -52,7 +55,7 @@ fn below(x: f64) -> f64 {
 
 /// A τ strictly between `low` and `high` (low < high) when one exists, else
 /// `low`: rows scoring `high` are flagged and rows scoring `low` are not.
-fn between(high: f64, low: f64) -> f64 {
+pub(crate) fn between(high: f64, low: f64) -> f64 {
     let mid = low / 2.0 + high / 2.0;
     if mid > low && mid < high {
         mid
@@ -111,6 +114,74 @@ pub fn cuts_ranked(r: &Ranked) -> Vec<Cut> {
             tau,
         });
         start = end;
+    }
+    cuts
+}
+
+/// The cut points a policy searches, from the split's evaluation summary:
+/// "flag nothing", then the cut just below each group of tied scores that
+/// holds an anomaly (flagging that group and every row above it), with the
+/// same τ and counts as the corresponding cut of [`cuts_ranked`].
+///
+/// The cuts left out are those just below a group of normal rows only. Each
+/// has the counts of the kept cut before it (the last anomaly group above it,
+/// or "flag nothing") with the same TP and more FP, and each policy, given
+/// at least one anomaly (the pipeline refuses a split without one), is then
+/// no better there, so the first best cut of the full search is a kept one:
+///
+/// - `max-f1`: F1 = 2TP/(2TP + FP + FN) falls as FP grows at fixed TP.
+/// - `max-f-beta`: Fβ = (1 + β²)TP/((1 + β²)TP + β²FN + FP) likewise (the
+///   rounded quotient of one numerator over a larger denominator is never
+///   larger).
+/// - `alarm-budget`: recall is fixed at fixed TP, and the false-positive rate
+///   only grows, so such a cut is within budget only if the kept one is.
+/// - `recall-target`: recall changes only at anomaly groups, so the first cut
+///   reaching the target is "flag nothing" or the cut below an anomaly group.
+/// - `precision-target`: at fixed TP, precision TP/(TP + FP) falls as FP
+///   grows and recall stays, so such a cut is no better than the kept one
+///   before it; a cut with TP = 0 meets no target above 0, and under a target
+///   of 0 the first cut below an anomaly group meets it with a higher recall.
+/// - `min-cost`: cost = c_miss·FN + c_alarm·FP with c_alarm ≥ 0 grows with FP.
+/// - `fixed`: τ is set in advance; it is added to the summary as a cut point,
+///   so its counts are read off the summary exactly.
+///
+/// The τ of a kept cut is the midpoint between the group's score and the next
+/// lower score, which is the highest score of the gap below when that gap
+/// holds normal rows: the summary keeps it for that reason.
+pub fn cuts_summary(s: &Summary) -> Vec<Cut> {
+    let positives = s.positives();
+    let negatives = s.negatives();
+    let next_lower = s.next_lower();
+    let mut cuts = Vec::with_capacity(s.pos.iter().filter(|&&p| p > 0).count() + 1);
+    cuts.push(Cut {
+        c: Confusion {
+            tp: 0,
+            fp: 0,
+            fn_: positives,
+            tn: negatives,
+        },
+        tau: s.highest().unwrap_or(0.0),
+    });
+    let (mut tp, mut fp) = (0u64, 0u64);
+    for (j, &v) in s.values.iter().enumerate() {
+        fp += s.gaps[j].count + s.tied[j];
+        tp += s.pos[j];
+        if s.pos[j] == 0 {
+            continue;
+        }
+        let tau = match next_lower[j] {
+            Some(next) => between(v, next),
+            None => below(v),
+        };
+        cuts.push(Cut {
+            c: Confusion {
+                tp,
+                fp,
+                fn_: positives - tp,
+                tn: negatives - fp,
+            },
+            tau,
+        });
     }
     cuts
 }
@@ -202,6 +273,17 @@ pub fn choose_ranked(
     r: &Ranked,
 ) -> Choice {
     choose_from(policy, scores, is_anomaly, || cuts_ranked(r))
+}
+
+/// [`choose`] from the validation summary (no sort; the same choice, see
+/// [`cuts_summary`]). A fixed τ reads the scores.
+pub fn choose_summary(
+    policy: ThresholdPolicy,
+    scores: &[f64],
+    is_anomaly: &[bool],
+    s: &Summary,
+) -> Choice {
+    choose_from(policy, scores, is_anomaly, || cuts_summary(s))
 }
 
 /// [`choose`] with the scores' cut points made by `make_cuts`, which a fixed

@@ -44,8 +44,9 @@ pub struct SplitScores<'a> {
     pub is_anomaly: &'a [bool],
     /// The chosen τ (fixed on validation).
     pub tau: f64,
-    /// Every cut point of these scores, from [`threshold::cuts`] (computed
-    /// once for all of a split's figures).
+    /// The cut points where the curves bend, from [`crate::summary::curve`]
+    /// (at most two per anomaly score, computed once for all of a split's
+    /// figures; the precision-recall and ROC curves through them are exact).
     pub cuts: &'a [threshold::Cut],
 }
 
@@ -425,7 +426,7 @@ pub fn objective(policy: ThresholdPolicy, s: SplitScores<'_>) -> Result<Plot> {
         file,
         title: format!("{name} against ln ε ({})", s.split),
         caption: format!(
-            "The threshold policy's objective ({name}) at every distinct threshold on the {} split, with the chosen ε; the axis spans the 0.1 % to 99.9 % quantiles of −s(x).{}{}",
+            "The threshold policy's objective ({name}) on the {} split, with the chosen ε; the axis spans the 0.1 % to 99.9 % quantiles of −s(x). The curve is thinned: it is exact at every anomaly score and at both ends of each run of normal scores between two anomaly scores, and drawn straight across such a run.{}{}",
             s.split,
             axis.note(),
             if y_clipped {
