@@ -479,6 +479,12 @@ mod tests {
                 tau: None,
                 ln_epsilon: Some(0.0),
             },
+            ThresholdPolicy::Conformal {
+                max_false_positive_rate: 0.1,
+            },
+            ThresholdPolicy::Conformal {
+                max_false_positive_rate: 0.5,
+            },
         ]
     }
 
@@ -549,7 +555,12 @@ mod tests {
                 // The bootstrap's bins, and so its draws, depend on the cut
                 // points (a τ inside a gap splits it in two), not its law:
                 // compared here without it.
-                if !matches!(p, ThresholdPolicy::Fixed { .. }) {
+                // A τ fixed in advance (fixed, conformal) is not a cut of
+                // the summary without it: the pipeline adds it first.
+                if !matches!(
+                    p,
+                    ThresholdPolicy::Fixed { .. } | ThresholdPolicy::Conformal { .. }
+                ) {
                     let off = BootstrapPlan {
                         replicates: 0,
                         ..boot

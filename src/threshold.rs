@@ -144,6 +144,9 @@ pub fn cuts_ranked(r: &Ranked) -> Vec<Cut> {
 /// - `min-cost`: cost = c_miss·FN + c_alarm·FP with c_alarm ≥ 0 grows with FP.
 /// - `fixed`: τ is set in advance; it is added to the summary as a cut point,
 ///   so its counts are read off the summary exactly.
+/// - `conformal`: τ is a validation normal's score fixed by the level alone
+///   (the ⌈(1 − A)(n + 1)⌉-th smallest), not searched; like a fixed τ it is
+///   added to the summary as a cut point, so its counts are exact.
 ///
 /// The τ of a kept cut is the midpoint between the group's score and the next
 /// lower score, which is the highest score of the gap below when that gap
