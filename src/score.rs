@@ -563,15 +563,7 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
             }
         }
     };
-    let lf = scan(&opts.data, in_format, &used)?;
-    let outcome = if let Scorer::Command(..) = run.scorer {
-        // The program runs once, on every row: the input is read whole.
-        lf.collect().and_then(&callback).map(|_| ())
-    } else {
-        lf.sink_batches(PlanCallback::new(callback), true, None)
-            .and_then(|lf| lf.collect_with_engine(Engine::Streaming))
-            .map(|_| ())
-    };
+    let outcome = each_batch(&run.scorer, scan(&opts.data, in_format, &used)?, callback);
     drop(counter);
     let mut st = state.lock().expect("the scoring state is not poisoned");
     if let Some(e) = st.error.take() {
@@ -732,6 +724,21 @@ pub fn check_fdr_level(q: f64) -> Result<()> {
     }
 }
 
+/// Hands the input to `callback` batch by batch on polars' streaming engine;
+/// for an external command, whole (the program runs once, on every row).
+fn each_batch<F>(scorer: &Scorer, lf: LazyFrame, callback: F) -> PolarsResult<()>
+where
+    F: Fn(DataFrame) -> PolarsResult<bool> + Send + Sync + 'static,
+{
+    if let Scorer::Command(..) = scorer {
+        lf.collect().and_then(&callback).map(|_| ())
+    } else {
+        lf.sink_batches(PlanCallback::new(callback), true, None)
+            .and_then(|lf| lf.collect_with_engine(Engine::Streaming))
+            .map(|_| ())
+    }
+}
+
 /// The first pass of `--fdr`: how many rows have each conformal rank j
 /// (p = j / (n + 1)).
 fn rank_counts(
@@ -778,15 +785,7 @@ fn rank_counts(
             }
         }
     };
-    let lf = scan(path, format, used)?;
-    // A command is run once on the whole input, as when the rows are written.
-    let outcome = if let Scorer::Command(..) = run.scorer {
-        lf.collect().and_then(&callback).map(|_| ())
-    } else {
-        lf.sink_batches(PlanCallback::new(callback), true, None)
-            .and_then(|lf| lf.collect_with_engine(Engine::Streaming))
-            .map(|_| ())
-    };
+    let outcome = each_batch(&run.scorer, scan(path, format, used)?, callback);
     drop(counter);
     let mut st = state.lock().expect("the scoring state is not poisoned");
     if let Some(e) = st.error.take() {
