@@ -29,12 +29,26 @@ fn ratio(num: u64, den: u64) -> Option<f64> {
     (den > 0).then(|| num as f64 / den as f64)
 }
 
+/// A threshold τ on the score s(x) = −ln p(x) (or a command's own score). It
+/// owns the flag rule: every path that flags a row (run, score, diff, the
+/// metrics and the figures) asks [`Threshold::flags`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Threshold(pub f64);
+
+impl Threshold {
+    /// The flag rule: a row is flagged when its score exceeds τ, `s > τ`
+    /// (a score equal to τ is not flagged; a NaN τ flags nothing).
+    pub fn flags(&self, s: f64) -> bool {
+        s > self.0
+    }
+}
+
 impl Confusion {
-    /// Counts the decision "flag iff score > τ".
-    pub fn at(scores: &[f64], is_anomaly: &[bool], tau: f64) -> Self {
+    /// Counts the decision [`Threshold::flags`] ("flag iff score > τ").
+    pub fn at(scores: &[f64], is_anomaly: &[bool], t: Threshold) -> Self {
         let mut c = Confusion::default();
         for (&s, &a) in scores.iter().zip(is_anomaly) {
-            match (s > tau, a) {
+            match (t.flags(s), a) {
                 (true, true) => c.tp += 1,
                 (true, false) => c.fp += 1,
                 (false, true) => c.fn_ += 1,
@@ -464,7 +478,11 @@ fn bootstrap_with(
     }
     let pos_rank: Vec<u32> = pos.iter().map(|&i| rank[i]).collect();
     let neg_rank: Vec<u32> = neg.iter().map(|&i| rank[i]).collect();
-    let flagged = r.sorted.iter().take_while(|&&v| v > tau).count();
+    let flagged = r
+        .sorted
+        .iter()
+        .take_while(|&&v| Threshold(tau).flags(v))
+        .count();
     let buckets = Buckets::new(r, &pos_rank, &neg_rank, flagged);
     let (p_total, n_total) = (pos.len() as f64, neg.len() as f64);
     let reps: Vec<(f64, f64, f64)> = (0..plan.replicates)
@@ -637,7 +655,7 @@ impl Metrics {
         boot: BootstrapPlan,
     ) -> Self {
         debug_assert_eq!(ranked_scores.len(), scores.len());
-        let c = Confusion::at(scores, is_anomaly, tau);
+        let c = Confusion::at(scores, is_anomaly, Threshold(tau));
         let (ap, auc) = ap_auc_ranked(ranked_scores);
         Metrics {
             confusion: c,
@@ -848,7 +866,11 @@ mod tests {
             }
             let pos: Vec<u32> = (0..n).filter(|&i| y[i]).map(|i| rank[i]).collect();
             let neg: Vec<u32> = (0..n).filter(|&i| !y[i]).map(|i| rank[i]).collect();
-            let flagged = r.order.iter().take_while(|&&i| s[i] > tau).count();
+            let flagged = r
+                .order
+                .iter()
+                .take_while(|&&i| Threshold(tau).flags(s[i]))
+                .count();
             let b = Buckets::new(&r, &pos, &neg, flagged);
             // One replicate's draws, counted both ways.
             let mut w = vec![0u32; n];
