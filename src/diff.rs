@@ -17,7 +17,7 @@ use serde_json::Value;
 use statrs::distribution::{Binomial, DiscreteCDF};
 
 use crate::error::{Error, Result};
-use crate::metrics::{Confusion, Interval};
+use crate::metrics::{Confusion, Interval, Threshold};
 
 /// McNemar's exact two-sided p-value for `b` and `c` discordant pairs:
 /// min(1, 2 · P(X ≤ min(b, c))) with X ~ Binomial(b + c, ½).
@@ -376,7 +376,10 @@ fn pair(old: &Path, new: &Path, a: &Value, b: &Value) -> Result<Paired> {
     // (label, old flag, new flag) per paired row, in id order.
     let rows: Vec<(bool, bool, bool)> = sa
         .iter()
-        .filter_map(|(id, (label, s))| sb.get(id).map(|(_, t)| (*label, *s > ta, *t > tb)))
+        .filter_map(|(id, (label, s))| {
+            sb.get(id)
+                .map(|(_, t)| (*label, Threshold(ta).flags(*s), Threshold(tb).flags(*t)))
+        })
         .collect();
     let (mut b01, mut c10) = (0u64, 0u64);
     for (label, fa, fb) in &rows {

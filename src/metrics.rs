@@ -31,12 +31,26 @@ fn ratio(num: u64, den: u64) -> Option<f64> {
     (den > 0).then(|| num as f64 / den as f64)
 }
 
+/// A threshold τ on the score s(x) = −ln p(x) (or a command's own score). It
+/// owns the flag rule: every path that flags a row (run, score, diff, the
+/// metrics and the figures) asks [`Threshold::flags`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Threshold(pub f64);
+
+impl Threshold {
+    /// The flag rule: a row is flagged when its score exceeds τ, `s > τ`
+    /// (a score equal to τ is not flagged; a NaN τ flags nothing).
+    pub fn flags(&self, s: f64) -> bool {
+        s > self.0
+    }
+}
+
 impl Confusion {
-    /// Counts the decision "flag iff score > τ".
-    pub fn at(scores: &[f64], is_anomaly: &[bool], tau: f64) -> Self {
+    /// Counts the decision [`Threshold::flags`] ("flag iff score > τ").
+    pub fn at(scores: &[f64], is_anomaly: &[bool], t: Threshold) -> Self {
         let mut c = Confusion::default();
         for (&s, &a) in scores.iter().zip(is_anomaly) {
-            match (s > tau, a) {
+            match (t.flags(s), a) {
                 (true, true) => c.tp += 1,
                 (true, false) => c.fp += 1,
                 (false, true) => c.fn_ += 1,
@@ -623,7 +637,7 @@ impl Metrics {
         beta: Option<f64>,
         boot: BootstrapPlan,
     ) -> Self {
-        let c = Confusion::at(scores, is_anomaly, tau);
+        let c = Confusion::at(scores, is_anomaly, Threshold(tau));
         let (ap, auc) = ap_auc(scores, is_anomaly);
         Metrics::from_parts(
             c,

@@ -24,6 +24,7 @@ use crate::data::Format;
 use crate::detect::{self, Model, Params};
 use crate::error::{Error, Result, RowUnit};
 use crate::features::FittedFeatures;
+use crate::metrics::Threshold;
 use crate::progress::Progress;
 
 /// The columns `score` adds.
@@ -848,7 +849,10 @@ fn score_batch(
     let (tag, fdr_cut) = (tags.run, tags.fdr_cut);
     let n = df.height();
     let (scores, x) = batch_scores(run, used, &df, offset, format, path)?;
-    let flags: Vec<bool> = scores.iter().map(|&s| s > run.tau).collect();
+    let flags: Vec<bool> = scores
+        .iter()
+        .map(|&s| Threshold(run.tau).flags(s))
+        .collect();
     let flagged = flags.iter().filter(|&&f| f).count() as u64;
     let mut added = vec![];
     let mut fdr_flagged = 0;

@@ -282,13 +282,14 @@ impl Summary {
     /// `None` when τ falls strictly inside that gap's normal scores, where
     /// the summary cannot count (τ is then not one of its cut points).
     pub(crate) fn split_at(&self, tau: f64) -> Option<(usize, bool)> {
-        let k = self.values.partition_point(|&v| v > tau);
+        let t = crate::metrics::Threshold(tau);
+        let k = self.values.partition_point(|&v| t.flags(v));
         let g = &self.gaps[k];
         // A NaN τ (the row-level search's τ for "flag everything" when the
         // lowest score is −∞) flags nothing under s > τ, as row by row.
-        if g.count == 0 || g.highest <= tau || tau.is_nan() {
+        if g.count == 0 || !t.flags(g.highest) || tau.is_nan() {
             Some((k, false))
-        } else if g.lowest > tau {
+        } else if t.flags(g.lowest) {
             Some((k, true))
         } else {
             None
@@ -572,7 +573,11 @@ mod tests {
             }
             assert_eq!(
                 sum.confusion_at(f64::NAN),
-                Some(crate::metrics::Confusion::at(&s, &y, f64::NAN)),
+                Some(crate::metrics::Confusion::at(
+                    &s,
+                    &y,
+                    crate::metrics::Threshold(f64::NAN)
+                )),
                 "case {case}: a NaN τ flags nothing"
             );
             // Any τ, as a cut point: the counts of "flag iff s > τ".
@@ -585,7 +590,11 @@ mod tests {
                 let with_tau = Summary::new(&s, &y, &[tau]);
                 assert_eq!(
                     with_tau.confusion_at(tau),
-                    Some(crate::metrics::Confusion::at(&s, &y, tau)),
+                    Some(crate::metrics::Confusion::at(
+                        &s,
+                        &y,
+                        crate::metrics::Threshold(tau)
+                    )),
                     "case {case}: τ {tau}"
                 );
             }

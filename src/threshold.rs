@@ -18,7 +18,7 @@
 //! `met = false` and a note saying so; the pipeline does not select such a
 //! candidate.
 
-use crate::metrics::{cmp_fraction, Confusion, Ranked};
+use crate::metrics::{cmp_fraction, Confusion, Ranked, Threshold};
 use crate::spec::ThresholdPolicy;
 use crate::summary::Summary;
 
@@ -375,7 +375,7 @@ fn choose_from(
         ThresholdPolicy::Fixed { tau, ln_epsilon } => {
             let tau = tau.or(ln_epsilon.map(|l| -l)).unwrap_or(0.0);
             chosen(Cut {
-                c: Confusion::at(scores, is_anomaly, tau),
+                c: Confusion::at(scores, is_anomaly, Threshold(tau)),
                 tau,
             })
         }
@@ -392,14 +392,14 @@ pub fn conformal(scores: &[f64], is_anomaly: &[bool], a: f64) -> Choice {
     let cal = crate::conformal::Calibration::of_normals(scores, is_anomaly);
     match cal.cut(a) {
         Ok(cut) => chosen(Cut {
-            c: Confusion::at(scores, is_anomaly, cut.tau),
+            c: Confusion::at(scores, is_anomaly, Threshold(cut.tau)),
             tau: cut.tau,
         }),
         Err(e) => {
             let tau = cal.sorted().last().copied().unwrap_or(0.0);
             Choice {
                 tau,
-                confusion: Confusion::at(scores, is_anomaly, tau),
+                confusion: Confusion::at(scores, is_anomaly, Threshold(tau)),
                 met: false,
                 note: Some(format!(
                     "a false-alarm level of {a} needs at least {} validation normals, found {}",
@@ -458,7 +458,7 @@ mod tests {
             }
         );
         assert_eq!(c.tau, 0.55);
-        assert_eq!(Confusion::at(&s, &y, c.tau), c.confusion);
+        assert_eq!(Confusion::at(&s, &y, Threshold(c.tau)), c.confusion);
     }
 
     #[test]
@@ -501,11 +501,14 @@ mod tests {
                 .map(|&v| below(v))
                 .chain(std::iter::once(100.0))
                 .collect();
-            let all: Vec<Confusion> = taus.iter().map(|&t| Confusion::at(&s, &y, t)).collect();
+            let all: Vec<Confusion> = taus
+                .iter()
+                .map(|&t| Confusion::at(&s, &y, Threshold(t)))
+                .collect();
             for p in policies {
                 let c = choose(p, &s, &y);
                 assert_eq!(
-                    Confusion::at(&s, &y, c.tau),
+                    Confusion::at(&s, &y, Threshold(c.tau)),
                     c.confusion,
                     "τ reproduces the counts"
                 );

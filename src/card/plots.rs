@@ -16,7 +16,7 @@ use plotters::coord::Shift;
 use plotters::prelude::*;
 
 use crate::error::{Error, Result};
-use crate::metrics::Confusion;
+use crate::metrics::{Confusion, Threshold};
 use crate::spec::ThresholdPolicy;
 use crate::threshold;
 
@@ -261,7 +261,7 @@ pub fn precision_recall(s: SplitScores<'_>) -> Result<Plot> {
         .map(|c| (recall(c), c.tp as f64 / (c.tp + c.fp) as f64))
         .collect();
     let points = thin(&points, (1.0, 1.0));
-    let at = Confusion::at(s.scores, s.is_anomaly, s.tau);
+    let at = Confusion::at(s.scores, s.is_anomaly, Threshold(s.tau));
     let op = (recall(&at), at.precision().unwrap_or(0.0));
     let base =
         s.is_anomaly.iter().filter(|&&a| a).count() as f64 / s.is_anomaly.len().max(1) as f64;
@@ -321,7 +321,7 @@ pub fn roc(s: SplitScores<'_>) -> Result<Plot> {
         .map(|cut| (fpr(&cut.c), recall(&cut.c)))
         .collect();
     let points = thin(&points, (1.0, 1.0));
-    let at = Confusion::at(s.scores, s.is_anomaly, s.tau);
+    let at = Confusion::at(s.scores, s.is_anomaly, Threshold(s.tau));
     let op = (fpr(&at), recall(&at));
     let file = format!("plot-{}-roc.svg", s.split);
     let svg = draw(&file, WIDE, |root| {
@@ -379,7 +379,7 @@ pub fn objective(policy: ThresholdPolicy, s: SplitScores<'_>) -> Result<Plot> {
         .filter(|(x, _)| xr.contains(x))
         .collect();
     points.sort_by(|a, b| a.0.total_cmp(&b.0));
-    let at = value(&Confusion::at(s.scores, s.is_anomaly, s.tau));
+    let at = value(&Confusion::at(s.scores, s.is_anomaly, Threshold(s.tau)));
     // A cost objective grows with its costs: values beyond the axis limit
     // (or infinite) are left out of the value axis too, and the caption says so.
     let y_within = |y: f64| y.abs() <= AXIS_LIMIT;

@@ -28,6 +28,7 @@ mod refusals;
 mod schema;
 mod score;
 mod signing;
+mod snapshots;
 mod sources;
 mod splits;
 mod stream;
