@@ -277,7 +277,11 @@ fn answer(plan: &Plan, rec: &RunRecord) -> Result<crate::card::Answer> {
         AnswerMetric {
             name: "F1".into(),
             cell: cell(m.f1, m.bootstrap_95.f1),
-            method: "stratified bootstrap".into(),
+            method: if plan.bootstrap.replicates == 0 {
+                "none (`bootstrap.replicates: 0`)".into()
+            } else {
+                "stratified bootstrap".into()
+            },
         },
     ];
     let (anomaly, normal) = match &plan.label {
@@ -342,6 +346,7 @@ fn answer(plan: &Plan, rec: &RunRecord) -> Result<crate::card::Answer> {
         ln_epsilon: format!("{:.6}", chosen.ln_epsilon),
         sentence,
         figure,
+        external: matches!(chosen.params, detect::Params::Command { .. }),
     })
 }
 

@@ -78,6 +78,9 @@ pub struct Answer {
     /// The interval figure (point and 95 % bar per metric and candidate),
     /// shown inline in card.html.
     pub figure: Option<plots::Plot>,
+    /// Whether the chosen candidate is an external command, whose scores
+    /// are its own, not −ln p(x).
+    pub external: bool,
 }
 
 /// One row of a metrics table, all values formatted.
