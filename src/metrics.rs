@@ -12,7 +12,7 @@ use rayon::prelude::*;
 pub const Z_95: f64 = 1.959_963_984_540_054;
 
 /// Counts of a binary decision against the labels (anomaly = positive).
-#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 pub struct Confusion {
     /// Anomalies flagged.
     pub tp: u64,
@@ -374,7 +374,7 @@ pub fn roc_auc(scores: &[f64], is_anomaly: &[bool]) -> Option<f64> {
 }
 
 /// How the bootstrap is drawn.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct BootstrapPlan {
     /// Replicates (0 turns the bootstrap off).
@@ -384,7 +384,7 @@ pub struct BootstrapPlan {
 }
 
 /// Percentile intervals from the stratified bootstrap.
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct BootstrapIntervals {
     /// F1 at the fixed τ.
@@ -527,7 +527,7 @@ pub fn cmp_fraction(a: (u64, u64), c: (u64, u64)) -> std::cmp::Ordering {
 }
 
 /// A two-sided interval.
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Interval {
     /// Lower bound.
     pub low: f64,
@@ -553,7 +553,7 @@ pub fn wilson(k: u64, n: u64, z: f64) -> Option<Interval> {
 }
 
 /// Two intervals for one proportion.
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct ProportionIntervals {
     /// Wilson score interval.
@@ -570,7 +570,7 @@ fn proportion(k: u64, n: u64) -> ProportionIntervals {
 }
 
 /// The metrics reported for one candidate on one split (intervals at 95 %).
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct Metrics {
     /// The confusion matrix.

@@ -204,34 +204,14 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
             ],
         });
     }
-    let run: serde_json::Value = serde_json::from_slice(&run_bytes)
-        .map_err(|e| bad_run(dir, format!("`run.json` is not JSON: {e}")))?;
-    let chosen = run["candidates"]
-        .as_array()
-        .and_then(|c| c.iter().find(|c| c["chosen"] == true))
-        .ok_or_else(|| bad_run(dir, "run.json names no chosen candidate".into()))?;
-    let field = |what: &str| {
-        bad_run(
-            dir,
-            format!("run.json: the chosen candidate's {what} is unreadable"),
-        )
-    };
-    let set_name = chosen["feature-set"]
-        .as_str()
-        .ok_or_else(|| field("feature set"))?;
-    let set_value = run["feature-sets"]
-        .as_array()
-        .and_then(|s| s.iter().find(|s| s["set"] == set_name))
-        .ok_or_else(|| field("feature set"))?;
-    let set: FittedFeatures =
-        serde_json::from_value(set_value.clone()).map_err(|_| field("feature set"))?;
-    let params: Params =
-        serde_json::from_value(chosen["params"].clone()).map_err(|_| field("parameters"))?;
-    let tau = chosen["tau"].as_f64().ok_or_else(|| field("τ"))?;
-    let columns: Vec<String> = serde_json::from_value(run["content-columns"].clone())
-        .map_err(|_| bad_run(dir, "run.json: `content-columns` is unreadable".into()))?;
+    let run = crate::record::parse_run(&run_path, &run_bytes)?;
+    let chosen = run.chosen(&run_path)?;
+    let set: FittedFeatures = run.feature_set(&run_path, &chosen.feature_set)?.clone();
+    let params: Params = chosen.params.clone();
+    let tau = chosen.tau;
+    let columns = run.content_columns.clone();
     let names = set.names();
-    let candidate = chosen["name"].as_str().unwrap_or_default().to_string();
+    let candidate = chosen.name.clone();
     let scorer = if let Params::Command { .. } = params {
         let (command, train) = crate::pipeline::chosen_command(dir, &params)?;
         Scorer::Command(Box::new(command), train)
@@ -242,11 +222,9 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
         })
     };
     // Older runs kept neither; both are then simply absent.
-    let calibration = match run.get("calibration") {
+    let calibration = match run.calibration {
         None => None,
         Some(c) => {
-            let c: crate::record::CalibrationRecord = serde_json::from_value(c.clone())
-                .map_err(|_| bad_run(dir, "run.json: `calibration` is unreadable".into()))?;
             if c.candidate != candidate {
                 return Err(bad_run(
                     dir,
@@ -263,14 +241,13 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
             )
         }
     };
-    let drift_reference = match run.get("drift-reference") {
-        None => None,
-        Some(d) => Some(
-            serde_json::from_value(d.clone())
-                .map_err(|_| bad_run(dir, "run.json: `drift-reference` is unreadable".into()))?,
-        ),
+    let drift_reference = run.drift_reference;
+    let conformal_level = match run.threshold_policy {
+        crate::spec::ThresholdPolicy::Conformal {
+            max_false_positive_rate,
+        } => Some(max_false_positive_rate),
+        _ => None,
     };
-    let conformal_level = run["threshold-policy"]["conformal"]["max-false-positive-rate"].as_f64();
     Ok(Recorded {
         candidate,
         set,

@@ -37,7 +37,7 @@ const SHOWN: usize = 5;
 pub struct RowId(pub u64);
 
 /// The file format of a source file.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum Format {
     /// Comma-separated text with a header line.
@@ -88,7 +88,7 @@ pub struct Origin {
 }
 
 /// Rows left out under `missing-values: drop-row`.
-#[derive(Debug, Clone, Default, PartialEq, Eq, serde::Serialize)]
+#[derive(Debug, Clone, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct Dropped {
     /// Dropped normal rows.

@@ -41,7 +41,9 @@ pub const MAX_FEATURE_SETS: usize = 100;
 pub const MAX_FEATURES: usize = 1_000;
 
 /// A split seed.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, serde::Serialize)]
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, serde::Serialize, serde::Deserialize,
+)]
 pub struct Seed(pub u64);
 
 /// A column name together with where the spec names it.
