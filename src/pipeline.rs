@@ -9,6 +9,7 @@ use std::path::{Path, PathBuf};
 use std::time::{Instant, SystemTime};
 
 use crate::audit::hash;
+use crate::audit::leak::Part;
 use crate::card::plots;
 use crate::card::{
     self, CardContext, FeatureRow, FeatureSetRow, InputRow, MetricRow, SplitRow, ThresholdRow,
@@ -26,7 +27,7 @@ use crate::record::{
 use crate::spec::{
     self, DetectorKind, MissingPolicy, Plan, SelectionMetric, SplitPlan, ThresholdPolicy,
 };
-use crate::split::{self, Part};
+use crate::split;
 use crate::threshold::{self, Choice};
 
 /// The selection rule, in words (also in run.json and the card).

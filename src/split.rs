@@ -20,35 +20,10 @@
 use std::collections::BTreeMap;
 
 use crate::audit::hash::ContentHash;
+use crate::audit::leak::Part;
 use crate::data::{Dataset, RowId, TextColumn};
 use crate::error::{Error, Result};
 use crate::spec::{Fractions, Seed, SplitPlan};
-
-/// One of the three splits.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize)]
-#[serde(rename_all = "kebab-case")]
-pub enum Part {
-    /// Fits the detectors.
-    Train,
-    /// Chooses thresholds and the detector.
-    Validation,
-    /// Held out for the final numbers.
-    Test,
-}
-
-impl Part {
-    /// All parts, in order.
-    pub const ALL: [Part; 3] = [Part::Train, Part::Validation, Part::Test];
-
-    /// The name used in files and specs.
-    pub fn name(self) -> &'static str {
-        match self {
-            Part::Train => "train",
-            Part::Validation => "validation",
-            Part::Test => "test",
-        }
-    }
-}
 
 /// Row counts of one split by label.
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize)]

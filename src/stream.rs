@@ -21,13 +21,14 @@ use ndarray::{Array2, ArrayView2};
 use polars::prelude::*;
 
 use crate::audit::hash::{self, ContentHash};
+use crate::audit::leak::Part;
 use crate::data::{self, Dataset, Dropped, Format, Origin, SourceFile};
 use crate::detect::{self, Model};
 use crate::error::{Error, Result, RowUnit};
 use crate::features::{self, FittedFeatures};
 use crate::progress::Progress;
 use crate::spec::{DetectorKind, MissingPolicy, Plan, SplitPlan};
-use crate::split::{Counts, Part};
+use crate::split::Counts;
 
 /// Training rows per block of sufficient statistics.
 pub const BLOCK: usize = 65_536;
