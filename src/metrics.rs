@@ -8,6 +8,8 @@
 
 use rayon::prelude::*;
 
+use crate::spec::BootstrapPlan;
+
 /// z for a two-sided 95 % interval: Φ⁻¹(0.975), as used in Newcombe (1998).
 pub const Z_95: f64 = 1.959_963_984_540_054;
 
@@ -371,16 +373,6 @@ pub fn average_precision(scores: &[f64], is_anomaly: &[bool]) -> Option<f64> {
 /// ROC AUC as the Mann-Whitney statistic U / (n₁ n₀), ties counted one half.
 pub fn roc_auc(scores: &[f64], is_anomaly: &[bool]) -> Option<f64> {
     ap_auc(scores, is_anomaly).1
-}
-
-/// How the bootstrap is drawn.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
-#[serde(rename_all = "kebab-case")]
-pub struct BootstrapPlan {
-    /// Replicates (0 turns the bootstrap off).
-    pub replicates: u32,
-    /// The seed.
-    pub seed: u64,
 }
 
 /// Percentile intervals from the stratified bootstrap.

@@ -97,7 +97,7 @@ pub struct RunRecord {
     /// The threshold policy, as declared.
     pub threshold_policy: ThresholdPolicy,
     /// The bootstrap behind the F1, AP and AUC intervals.
-    pub bootstrap: crate::metrics::BootstrapPlan,
+    pub bootstrap: crate::spec::BootstrapPlan,
     /// How the detector was chosen.
     pub selection: SelectionRecord,
     /// Every candidate.
