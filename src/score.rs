@@ -555,7 +555,12 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         return Err(e);
     }
     if let Err(e) = outcome {
-        return Err(not_a_number(&opts.data, in_format == Format::Csv, &used, e));
+        return Err(crate::data::not_a_number(
+            &opts.data,
+            in_format == Format::Csv,
+            &used,
+            e,
+        ));
     }
     if st.writer.is_none() {
         // No rows: still write the header (CSV) or an empty file with the schema.
@@ -770,7 +775,12 @@ fn rank_counts(
         return Err(e);
     }
     if let Err(e) = outcome {
-        return Err(not_a_number(path, format == Format::Csv, used, e));
+        return Err(crate::data::not_a_number(
+            path,
+            format == Format::Csv,
+            used,
+            e,
+        ));
     }
     Ok(std::mem::take(&mut st.counts))
 }
@@ -937,73 +947,6 @@ fn batch_scores(
         }
     };
     Ok((scores, x))
-}
-
-/// A column with values that are not numbers: its name, the first lines, how many.
-type NotNumber = (String, Vec<u64>, usize);
-
-/// A failed scan: most often a feature value that is not a number. Re-reads
-/// the feature columns as text, streaming, to name the first such lines.
-pub(crate) fn not_a_number(path: &Path, csv: bool, used: &[String], e: PolarsError) -> Error {
-    if !csv {
-        return polars_error(path, e);
-    }
-    let Ok(ppath) = PlRefPath::try_from_path(path) else {
-        return polars_error(path, e);
-    };
-    let text = LazyCsvReader::new(ppath)
-        .with_has_header(true)
-        .with_infer_schema_length(Some(0))
-        .finish()
-        .map(|lf| lf.select(used.iter().map(|c| col(c.as_str())).collect::<Vec<_>>()));
-    let found: Arc<Mutex<Option<NotNumber>>> = Arc::new(Mutex::new(None));
-    let offset = Arc::new(Mutex::new(0u64));
-    let (f2, o2, names) = (found.clone(), offset.clone(), used.to_vec());
-    let scan = text.and_then(|lf| {
-        lf.sink_batches(
-            PlanCallback::new(move |df: DataFrame| {
-                let mut off = o2.lock().expect("not poisoned");
-                let mut found = f2.lock().expect("not poisoned");
-                for name in &names {
-                    let Ok(c) = df.column(name).and_then(|c| c.str().cloned()) else {
-                        continue;
-                    };
-                    let bad: Vec<u64> = c
-                        .iter()
-                        .enumerate()
-                        .filter(|(_, v)| {
-                            v.is_some_and(|s| {
-                                !s.trim().is_empty() && s.trim().parse::<f64>().is_err()
-                            })
-                        })
-                        .map(|(i, _)| *off + i as u64 + 2)
-                        .collect();
-                    if !bad.is_empty() {
-                        let total = bad.len();
-                        *found = Some((name.clone(), bad.into_iter().take(5).collect(), total));
-                        return Ok(true);
-                    }
-                }
-                *off += df.height() as u64;
-                Ok(false)
-            }),
-            true,
-            None,
-        )
-        .and_then(|lf| lf.collect_with_engine(Engine::Streaming))
-    });
-    let found = found.lock().expect("not poisoned").take();
-    match (scan, found) {
-        (_, Some((column, lines, total))) => Error::Data {
-            path: path.to_path_buf(),
-            column: Some(column),
-            message: "a value that is not a number".into(),
-            lines,
-            total,
-            unit: RowUnit::Line,
-        },
-        _ => polars_error(path, e),
-    }
 }
 
 /// blake3 of a run's manifest.json, as the output's `anomark_run` column holds it.

@@ -797,7 +797,7 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
             return Err(e);
         }
         if let Err(e) = outcome {
-            return Err(crate::score::not_a_number(
+            return Err(crate::data::not_a_number(
                 &file.path,
                 file.format == Format::Csv,
                 &used[..columns.len()],
