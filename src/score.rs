@@ -81,7 +81,7 @@ pub struct ScoreSummary {
     /// Peak resident memory of the process, MiB.
     pub peak_rss_mib: Option<f64>,
     /// Conformal p-values and Benjamini-Hochberg flagging (with `--fdr`).
-    pub fdr: Option<FdrSummary>,
+    pub fdr: Option<crate::conformal::FdrSummary>,
     /// The batch's drift against the run (null for a run recorded before
     /// drift references were kept).
     pub drift: Option<crate::drift::DriftReport>,
@@ -89,20 +89,6 @@ pub struct ScoreSummary {
     pub report: Option<PathBuf>,
     /// Warnings, also printed on stderr.
     pub warnings: Vec<String>,
-}
-
-/// Benjamini-Hochberg flagging of one scored batch.
-#[derive(Debug, Clone, serde::Serialize)]
-#[serde(rename_all = "kebab-case")]
-pub struct FdrSummary {
-    /// Q, the level.
-    pub q: f64,
-    /// n, the validation normals the p-values are computed against.
-    pub calibration_normals: usize,
-    /// Rows flagged (p ≤ the cut).
-    pub flagged: u64,
-    /// The cut: the largest p-value flagged (null when none is).
-    pub p_cut: Option<f64>,
 }
 
 /// Which end of `score` a file is, for the wording of a refusal.
@@ -467,7 +453,7 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
             let counts = rank_counts(&run, &used, cal, in_format, &opts.data, opts.progress)?;
             let cut = crate::conformal::bh_ranks(&counts, q);
             fdr_cut = Some(cut.p_cut);
-            Some(FdrSummary {
+            Some(crate::conformal::FdrSummary {
                 q,
                 calibration_normals: cal.len(),
                 flagged: cut.rejected,
