@@ -12,12 +12,13 @@ use std::fmt::Write as _;
 use std::path::Path;
 
 use crate::audit::hash;
+use crate::audit::leak::Part;
 use crate::data::{self, Dataset};
 use crate::error::{Error, Result};
 use crate::features;
 use crate::record::fmt_f64;
 use crate::spec::{self, MissingPolicy, Plan};
-use crate::split::{self, Counts, Part};
+use crate::split::{self, Counts};
 
 /// |skewness| above which a feature is called far from Gaussian: the usual
 /// rule of thumb for a highly skewed sample (Bulmer 1979, "Principles of

@@ -225,6 +225,20 @@ pub fn bh_ranks(counts: &[u64], q: f64) -> BhCut {
     }
 }
 
+/// Benjamini-Hochberg flagging of one scored batch.
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct FdrSummary {
+    /// Q, the level.
+    pub q: f64,
+    /// n, the validation normals the p-values are computed against.
+    pub calibration_normals: usize,
+    /// Rows flagged (p ≤ the cut).
+    pub flagged: u64,
+    /// The cut: the largest p-value flagged (null when none is).
+    pub p_cut: Option<f64>,
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -17,7 +17,7 @@ use serde_json::Value;
 use statrs::distribution::{Binomial, DiscreteCDF};
 
 use crate::error::{Error, Result};
-use crate::metrics::{Confusion, Interval, Threshold};
+use crate::metrics::{Confusion, Interval, Metrics, Threshold};
 
 /// McNemar's exact two-sided p-value for `b` and `c` discordant pairs:
 /// min(1, 2 · P(X ≤ min(b, c))) with X ~ Binomial(b + c, ½).
@@ -58,7 +58,7 @@ pub struct Diff {
     /// Spec fields that differ (dotted paths).
     pub spec_fields: Vec<String>,
     /// Splits whose manifest hash differs, with counts old → new.
-    pub splits: BTreeMap<String, [Value; 2]>,
+    pub splits: BTreeMap<String, [Option<crate::split::Counts>; 2]>,
     /// Rows by content hash: `old split -> new split` → rows that moved so
     /// (`absent` for a row only in one run), when both runs' data is at hand.
     pub rows: Option<BTreeMap<String, usize>>,
@@ -101,7 +101,7 @@ const METRICS: [&str; 6] = [
     "mcc",
 ];
 
-use crate::record::read_json;
+use crate::record::{read_run, CandidateRecord, RunRecord, RUN_JSON};
 
 fn differing_paths(a: &Value, b: &Value, at: &str, out: &mut Vec<String>) {
     match (a, b) {
@@ -124,15 +124,34 @@ fn differing_paths(a: &Value, b: &Value, at: &str, out: &mut Vec<String>) {
     }
 }
 
-fn metric_deltas(a: &Value, b: &Value) -> BTreeMap<String, [Option<f64>; 3]> {
+/// A metric of [`METRICS`] by its recorded name.
+fn metric(m: &Metrics, name: &str) -> Option<f64> {
+    match name {
+        "precision" => m.precision,
+        "recall" => m.recall,
+        "f1" => m.f1,
+        "average-precision" => m.average_precision,
+        "roc-auc" => m.roc_auc,
+        "mcc" => m.mcc,
+        _ => None,
+    }
+}
+
+fn metric_deltas(a: &Metrics, b: &Metrics) -> BTreeMap<String, [Option<f64>; 3]> {
     METRICS
         .iter()
         .map(|m| {
-            let (x, y) = (a[m].as_f64(), b[m].as_f64());
+            let (x, y) = (metric(a, m), metric(b, m));
             let d = x.zip(y).map(|(x, y)| y - x);
             (m.to_string(), [x, y, d])
         })
         .collect()
+}
+
+/// Whether two recorded values write the same JSON (the record's notion of
+/// equal: a NaN and a null are one).
+fn same_json<T: serde::Serialize>(a: &T, b: &T) -> bool {
+    serde_json::to_value(a).ok() == serde_json::to_value(b).ok()
 }
 
 /// Test rows of scores.csv: id → (label, score of `column`).
@@ -162,13 +181,6 @@ fn test_scores(dir: &Path, column: &str) -> Result<BTreeMap<String, (bool, f64)>
     Ok(out)
 }
 
-fn chosen(run: &Value) -> Option<&Value> {
-    run["candidates"]
-        .as_array()?
-        .iter()
-        .find(|c| c["chosen"] == true)
-}
-
 /// Each content hash with its split per row, recomputed from the run's own
 /// spec copy and the data it names, which must still have the recorded
 /// hashes (split assignment only: nothing is fitted or scored).
@@ -178,12 +190,11 @@ fn rows_of(dir: &Path) -> Result<BTreeMap<crate::audit::hash::ContentHash, Vec<&
     let bytes = std::fs::read(&copy).map_err(|e| Error::io(&copy, "reading", e))?;
     let plan = crate::spec::parse(&spec, bytes)?;
     let data = crate::data::load(&plan)?;
-    let run = read_json(dir, "run.json")?;
-    let recorded: Vec<&str> = run["inputs"]
-        .as_array()
-        .into_iter()
-        .flatten()
-        .filter_map(|i| i["blake3"].as_str())
+    let run = read_run(dir)?;
+    let recorded: Vec<&str> = run
+        .inputs
+        .iter()
+        .map(|i| i.digest.blake3.as_str())
         .collect();
     let now: Vec<&str> = data
         .files
@@ -236,18 +247,13 @@ fn row_moves(old: &Path, new: &Path) -> std::result::Result<BTreeMap<String, usi
 
 /// Compares two run directories.
 pub fn diff(old: &Path, new: &Path) -> Result<Diff> {
-    let (a, b) = (read_json(old, "run.json")?, read_json(new, "run.json")?);
-    let by_path = |r: &Value| -> BTreeMap<String, String> {
-        r["inputs"]
-            .as_array()
-            .into_iter()
-            .flatten()
-            .map(|i| {
-                (
-                    i["path"].as_str().unwrap_or("").to_string(),
-                    i["blake3"].as_str().unwrap_or("").to_string(),
-                )
-            })
+    let (a, b) = (read_run(old)?, read_run(new)?);
+    let (path_a, path_b) = (old.join(RUN_JSON), new.join(RUN_JSON));
+    let (xa, xb) = (a.chosen(&path_a)?, b.chosen(&path_b)?);
+    let by_path = |r: &RunRecord| -> BTreeMap<String, String> {
+        r.inputs
+            .iter()
+            .map(|i| (i.path.clone(), i.digest.blake3.clone()))
             .collect()
     };
     let (ia, ib) = (by_path(&a), by_path(&b));
@@ -267,22 +273,20 @@ pub fn diff(old: &Path, new: &Path) -> Result<Diff> {
     differing_paths(&spec(old), &spec(new), "", &mut spec_fields);
     let mut splits = BTreeMap::new();
     for p in ["train", "validation", "test"] {
-        if a["split"]["manifest-blake3"][p] != b["split"]["manifest-blake3"][p] {
+        if a.split.manifest_blake3.get(p) != b.split.manifest_blake3.get(p) {
             splits.insert(
                 p.to_string(),
                 [
-                    a["split"]["counts"][p].clone(),
-                    b["split"]["counts"][p].clone(),
+                    a.split.counts.get(p).copied(),
+                    b.split.counts.get(p).copied(),
                 ],
             );
         }
     }
-    let cands = |r: &Value| -> BTreeMap<String, Value> {
-        r["candidates"]
-            .as_array()
-            .into_iter()
-            .flatten()
-            .map(|c| (c["name"].as_str().unwrap_or("").to_string(), c.clone()))
+    let cands = |r: &RunRecord| -> BTreeMap<String, CandidateRecord> {
+        r.candidates
+            .iter()
+            .map(|c| (c.name.clone(), c.clone()))
             .collect()
     };
     let (ca, cb) = (cands(&a), cands(&b));
@@ -292,16 +296,12 @@ pub fn diff(old: &Path, new: &Path) -> Result<Diff> {
             candidates.insert(
                 name.clone(),
                 CandidateDiff {
-                    params_changed: x["params"] != y["params"],
-                    tau: [
-                        x["tau"].as_f64().unwrap_or(f64::NAN),
-                        y["tau"].as_f64().unwrap_or(f64::NAN),
-                    ],
-                    validation: metric_deltas(&x["validation"], &y["validation"]),
-                    test: if x["test"].is_null() || y["test"].is_null() {
-                        BTreeMap::new()
-                    } else {
-                        metric_deltas(&x["test"], &y["test"])
+                    params_changed: !same_json(&x.params, &y.params),
+                    tau: [x.tau, y.tau],
+                    validation: metric_deltas(&x.validation, &y.validation),
+                    test: match (&x.test, &y.test) {
+                        (Some(s), Some(t)) => metric_deltas(s, t),
+                        _ => BTreeMap::new(),
                     },
                 },
             );
@@ -317,9 +317,8 @@ pub fn diff(old: &Path, new: &Path) -> Result<Diff> {
             .cloned()
             .collect(),
     ];
-    let name = |r: &Value| r["selection"]["chosen"].as_str().unwrap_or("").to_string();
-    let same_test = a["split"]["manifest-blake3"]["test"] == b["split"]["manifest-blake3"]["test"];
-    let both_open = a["test-opened"] == true && b["test-opened"] == true;
+    let same_test = a.split.manifest_blake3.get("test") == b.split.manifest_blake3.get("test");
+    let both_open = a.test_opened && b.test_opened;
     let (paired, no_pairing) = if !same_test {
         (
             None,
@@ -331,7 +330,7 @@ pub fn diff(old: &Path, new: &Path) -> Result<Diff> {
             Some("at least one run kept the test split sealed".to_string()),
         )
     } else {
-        (Some(pair(old, new, &a, &b)?), None)
+        (Some(pair(old, new, xa, xb)?), None)
     };
     let (rows, rows_not_compared) = if splits.is_empty() {
         (Some(BTreeMap::new()), None)
@@ -347,32 +346,18 @@ pub fn diff(old: &Path, new: &Path) -> Result<Diff> {
         splits,
         rows,
         rows_not_compared,
-        features_changed: a["feature-sets"] != b["feature-sets"],
+        features_changed: !same_json(&a.feature_sets, &b.feature_sets),
         candidates,
         only_in,
-        chosen: [name(&a), name(&b)],
+        chosen: [a.selection.chosen.clone(), b.selection.chosen.clone()],
         paired,
         no_pairing,
     })
 }
 
-fn pair(old: &Path, new: &Path, a: &Value, b: &Value) -> Result<Paired> {
-    let missing = |p: &Path| Error::Output {
-        path: p.to_path_buf(),
-        message: "the run record names no chosen candidate".into(),
-    };
-    let (x, y) = (
-        chosen(a).ok_or_else(|| missing(old))?,
-        chosen(b).ok_or_else(|| missing(new))?,
-    );
-    let (sa, sb) = (
-        test_scores(old, x["name"].as_str().unwrap_or(""))?,
-        test_scores(new, y["name"].as_str().unwrap_or(""))?,
-    );
-    let (ta, tb) = (
-        x["tau"].as_f64().unwrap_or(f64::NAN),
-        y["tau"].as_f64().unwrap_or(f64::NAN),
-    );
+fn pair(old: &Path, new: &Path, x: &CandidateRecord, y: &CandidateRecord) -> Result<Paired> {
+    let (sa, sb) = (test_scores(old, &x.name)?, test_scores(new, &y.name)?);
+    let (ta, tb) = (x.tau, y.tau);
     // (label, old flag, new flag) per paired row, in id order.
     let rows: Vec<(bool, bool, bool)> = sa
         .iter()
@@ -472,7 +457,9 @@ pub fn render_text(d: &Diff) -> String {
         let _ = writeln!(s, "splits: identical rows");
     }
     for (p, [x, y]) in &d.splits {
-        let _ = writeln!(s, "split {p}: rows changed ({x} -> {y})");
+        // Counts as compact JSON (`null` when a run lacks the split).
+        let j = |c: &Option<crate::split::Counts>| serde_json::to_string(c).unwrap_or_default();
+        let _ = writeln!(s, "split {p}: rows changed ({} -> {})", j(x), j(y));
     }
     if let Some(m) = &d.rows {
         for (k, n) in m {

@@ -8,121 +8,13 @@
 
 use rayon::prelude::*;
 
+use crate::spec::BootstrapPlan;
 use crate::summary::Summary;
+
+pub use crate::decision::{Confusion, Threshold};
 
 /// z for a two-sided 95 % interval: Φ⁻¹(0.975), as used in Newcombe (1998).
 pub const Z_95: f64 = 1.959_963_984_540_054;
-
-/// Counts of a binary decision against the labels (anomaly = positive).
-#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, serde::Serialize)]
-pub struct Confusion {
-    /// Anomalies flagged.
-    pub tp: u64,
-    /// Normal rows flagged.
-    pub fp: u64,
-    /// Anomalies not flagged.
-    #[serde(rename = "fn")]
-    pub fn_: u64,
-    /// Normal rows not flagged.
-    pub tn: u64,
-}
-
-fn ratio(num: u64, den: u64) -> Option<f64> {
-    (den > 0).then(|| num as f64 / den as f64)
-}
-
-/// A threshold τ on the score s(x) = −ln p(x) (or a command's own score). It
-/// owns the flag rule: every path that flags a row (run, score, diff, the
-/// metrics and the figures) asks [`Threshold::flags`].
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub struct Threshold(pub f64);
-
-impl Threshold {
-    /// The flag rule: a row is flagged when its score exceeds τ, `s > τ`
-    /// (a score equal to τ is not flagged; a NaN τ flags nothing).
-    pub fn flags(&self, s: f64) -> bool {
-        s > self.0
-    }
-}
-
-impl Confusion {
-    /// Counts the decision [`Threshold::flags`] ("flag iff score > τ").
-    pub fn at(scores: &[f64], is_anomaly: &[bool], t: Threshold) -> Self {
-        let mut c = Confusion::default();
-        for (&s, &a) in scores.iter().zip(is_anomaly) {
-            match (t.flags(s), a) {
-                (true, true) => c.tp += 1,
-                (true, false) => c.fp += 1,
-                (false, true) => c.fn_ += 1,
-                (false, false) => c.tn += 1,
-            }
-        }
-        c
-    }
-
-    /// TP / (TP + FP).
-    pub fn precision(&self) -> Option<f64> {
-        ratio(self.tp, self.tp + self.fp)
-    }
-
-    /// TP / (TP + FN).
-    pub fn recall(&self) -> Option<f64> {
-        ratio(self.tp, self.tp + self.fn_)
-    }
-
-    /// F1 = 2TP / (2TP + FP + FN), the harmonic mean of precision and recall.
-    pub fn f1(&self) -> Option<f64> {
-        let (num, den) = self.f1_fraction();
-        ratio(num, den)
-    }
-
-    /// F1 as an exact fraction (numerator, denominator), for exact comparisons.
-    pub fn f1_fraction(&self) -> (u64, u64) {
-        (2 * self.tp, 2 * self.tp + self.fp + self.fn_)
-    }
-
-    /// (TP + TN) / N. Misleading on skewed labels: a detector that flags
-    /// nothing scores N₀/N.
-    pub fn accuracy(&self) -> Option<f64> {
-        ratio(self.tp + self.tn, self.tp + self.fp + self.fn_ + self.tn)
-    }
-
-    /// TN / (TN + FP).
-    pub fn specificity(&self) -> Option<f64> {
-        ratio(self.tn, self.tn + self.fp)
-    }
-
-    /// FP / (FP + TN).
-    pub fn false_positive_rate(&self) -> Option<f64> {
-        ratio(self.fp, self.fp + self.tn)
-    }
-
-    /// (recall + specificity) / 2.
-    pub fn balanced_accuracy(&self) -> Option<f64> {
-        Some((self.recall()? + self.specificity()?) / 2.0)
-    }
-
-    /// Fβ = (1 + β²) TP / ((1 + β²) TP + β² FN + FP).
-    pub fn f_beta(&self, beta: f64) -> Option<f64> {
-        let b2 = beta * beta;
-        let num = (1.0 + b2) * self.tp as f64;
-        let den = num + b2 * self.fn_ as f64 + self.fp as f64;
-        (den > 0.0).then(|| num / den)
-    }
-
-    /// Matthews correlation (TP·TN − FP·FN) / √((TP+FP)(TP+FN)(TN+FP)(TN+FN));
-    /// `None` when a margin is empty.
-    pub fn mcc(&self) -> Option<f64> {
-        let (tp, fp, fn_, tn) = (
-            self.tp as f64,
-            self.fp as f64,
-            self.fn_ as f64,
-            self.tn as f64,
-        );
-        let den = (tp + fp) * (tp + fn_) * (tn + fp) * (tn + fn_);
-        (den > 0.0).then(|| (tp * tn - fp * fn_) / den.sqrt())
-    }
-}
 
 /// Clopper-Pearson ("exact") interval for k successes in n trials: the
 /// α/2 and 1 − α/2 quantiles of Beta(k, n − k + 1) and Beta(k + 1, n − k)
@@ -273,18 +165,8 @@ pub fn roc_auc(scores: &[f64], is_anomaly: &[bool]) -> Option<f64> {
     ap_auc(scores, is_anomaly).1
 }
 
-/// How the bootstrap is drawn.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
-#[serde(rename_all = "kebab-case")]
-pub struct BootstrapPlan {
-    /// Replicates (0 turns the bootstrap off).
-    pub replicates: u32,
-    /// The seed.
-    pub seed: u64,
-}
-
 /// Percentile intervals from the stratified bootstrap.
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct BootstrapIntervals {
     /// F1 at the fixed τ.
@@ -546,7 +428,7 @@ pub fn cmp_fraction(a: (u64, u64), c: (u64, u64)) -> std::cmp::Ordering {
 }
 
 /// A two-sided interval.
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Interval {
     /// Lower bound.
     pub low: f64,
@@ -572,7 +454,7 @@ pub fn wilson(k: u64, n: u64, z: f64) -> Option<Interval> {
 }
 
 /// Two intervals for one proportion.
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct ProportionIntervals {
     /// Wilson score interval.
@@ -589,7 +471,7 @@ fn proportion(k: u64, n: u64) -> ProportionIntervals {
 }
 
 /// The metrics reported for one candidate on one split (intervals at 95 %).
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct Metrics {
     /// The confusion matrix.

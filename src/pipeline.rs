@@ -9,6 +9,7 @@ use std::path::{Path, PathBuf};
 use std::time::{Instant, SystemTime};
 
 use crate::audit::hash;
+use crate::audit::leak::Part;
 use crate::card::plots;
 use crate::card::{
     self, CardContext, FeatureRow, FeatureSetRow, InputRow, MetricRow, SplitRow, ThresholdRow,
@@ -26,7 +27,7 @@ use crate::record::{
 use crate::spec::{
     self, DetectorKind, MissingPolicy, Plan, SelectionMetric, SplitPlan, ThresholdPolicy,
 };
-use crate::split::{self, Part};
+use crate::split;
 use crate::summary::Summary;
 use crate::threshold::{self, Choice};
 
@@ -170,7 +171,7 @@ fn metrics_of(s: &Summary, tau: f64, beta: Option<f64>, plan: &spec::Plan) -> Re
             "τ `{tau}` falls inside a gap of the evaluation summary"
         ))
     };
-    let without = metrics::BootstrapPlan {
+    let without = spec::BootstrapPlan {
         replicates: 0,
         ..plan.bootstrap
     };
@@ -913,7 +914,7 @@ fn execute(
             chosen: candidates[chosen].name.clone(),
         },
         candidates: candidate_records,
-        calibration: record::CalibrationRecord {
+        calibration: Some(record::CalibrationRecord {
             candidate: candidates[chosen].name.clone(),
             validation_normals: val_y.iter().filter(|&&y| !y).count(),
             sorted_scores: crate::conformal::Calibration::of_normals(
@@ -922,8 +923,8 @@ fn execute(
             )
             .sorted()
             .to_vec(),
-        },
-        drift_reference: drift_reference(
+        }),
+        drift_reference: Some(drift_reference(
             &fitted_sets[candidates[chosen].set],
             &data,
             if streamed.is_some() {
@@ -933,7 +934,7 @@ fn execute(
             },
             &splits.validation,
             candidates[chosen].validation.false_positive_rate,
-        )?,
+        )?),
         wall_clock,
     };
 
@@ -1126,7 +1127,9 @@ fn conformal_card(plan: &Plan, rec: &RunRecord) -> Option<card::ConformalCard> {
         return None;
     };
     let chosen = rec.candidates.iter().find(|c| c.chosen)?;
-    let cal = crate::conformal::Calibration::from_sorted(rec.calibration.sorted_scores.clone())?;
+    let cal = crate::conformal::Calibration::from_sorted(
+        rec.calibration.as_ref()?.sorted_scores.clone(),
+    )?;
     let rank = cal.cut(a).ok()?.k;
     let test = chosen.test.as_ref();
     Some(card::ConformalCard {
@@ -1616,8 +1619,12 @@ pub fn verify(dir: &Path, pubkey: &Path) -> Result<crate::sign::Manifest> {
 
 /// Where a run's record says its spec is, relative to the run directory.
 pub fn recorded_spec_path(dir: &Path) -> Result<PathBuf> {
-    let run = record::read_json(dir, "run.json")?;
-    match run["spec"]["path-from-run"].as_str() {
+    spec_path_of(dir, &record::read_run(dir)?)
+}
+
+/// Where `run` (the record of the run directory `dir`) says its spec is.
+fn spec_path_of(dir: &Path, run: &RunRecord) -> Result<PathBuf> {
+    match &run.spec.path_from_run {
         Some(rel) => Ok(dir.join(rel)),
         None => Err(Error::Output {
             path: dir.to_path_buf(),
@@ -1628,18 +1635,17 @@ pub fn recorded_spec_path(dir: &Path) -> Result<PathBuf> {
 
 /// Refuses inputs whose hashes differ from the ones `run` recorded (paths
 /// relative to the spec's folder).
-fn check_recorded_inputs(dir: &Path, spec: &Path, run: &serde_json::Value) -> Result<()> {
+fn check_recorded_inputs(dir: &Path, spec: &Path, run: &RunRecord) -> Result<()> {
     let base = spec.parent().unwrap_or(Path::new(""));
     let mut problems = Vec::new();
-    for input in run["inputs"].as_array().into_iter().flatten() {
-        let rel = input["path"].as_str().unwrap_or_default();
+    for input in &run.inputs {
+        let rel = input.path.as_str();
         let p = base.join(rel);
         match hash::file(&p) {
-            Ok(d) if Some(d.blake3.as_str()) == input["blake3"].as_str() => {}
+            Ok(d) if d.blake3 == input.digest.blake3 => {}
             Ok(d) => problems.push(format!(
                 "input `{rel}` has blake3 {} but the run recorded {}",
-                d.blake3,
-                input["blake3"].as_str().unwrap_or("?")
+                d.blake3, input.digest.blake3
             )),
             Err(e) => problems.push(format!("input `{rel}`: {e}")),
         }
@@ -1716,25 +1722,24 @@ fn rebuild_chosen(dir: &Path) -> Result<(Plan, Dataset, split::Splits, DetectorK
             )],
         });
     }
-    let run = record::read_json(dir, "run.json")?;
+    let run = record::read_run(dir)?;
     check_recorded_inputs(dir, &spec, &run)?;
     let plan = spec::load(&spec)?;
     let data = data::load(&plan)?;
     let hashes = hash::rows(&data.x, &data.is_anomaly);
     let splits = split::assign(&plan.split, &data, &hashes)?;
-    let chosen = run["candidates"]
-        .as_array()
-        .and_then(|c| c.iter().find(|c| c["chosen"] == true))
-        .cloned()
-        .unwrap_or_default();
-    let set_name = chosen["feature-set"].as_str().unwrap_or_default();
-    let detector = chosen["detector"].as_str().unwrap_or_default();
+    let chosen = run.chosen(&dir.join(record::RUN_JSON))?;
+    let set_name = chosen.feature_set.as_str();
+    let detector = chosen.detector.as_str();
     let set = plan
         .feature_sets
         .iter()
         .position(|s| s.name == set_name)
         .ok_or_else(|| Error::internal(format!("feature set `{set_name}` is not in the spec")))?;
-    let command = chosen["params"]["name"].as_str().unwrap_or_default();
+    let command = match &chosen.params {
+        detect::Params::Command { name, .. } => name.as_str(),
+        _ => "",
+    };
     let kind = *plan
         .detectors
         .iter()
@@ -1837,16 +1842,22 @@ pub fn verify_by_recomputation(
     spec: Option<&Path>,
 ) -> Result<crate::sign::Manifest> {
     let manifest = verify(dir, pubkey)?;
-    let spec_buf = match spec {
-        Some(s) => s.to_path_buf(),
-        None => recorded_spec_path(dir)?,
-    };
-    let spec = spec_buf.as_path();
     let fail = |problems: Vec<String>| Error::Verify {
         dir: dir.to_path_buf(),
         problems,
     };
     let read = |p: PathBuf| std::fs::read(&p).map_err(|e| Error::io(p, "reading", e));
+    // A signed run whose record does not read fails verification (exit 1).
+    let run_path = dir.join(record::RUN_JSON);
+    let run = record::parse_run(&run_path, &read(run_path.clone())?).map_err(|e| match e {
+        Error::Output { message, .. } => fail(vec![format!("`run.json` is unreadable: {message}")]),
+        e => e,
+    })?;
+    let spec_buf = match spec {
+        Some(s) => s.to_path_buf(),
+        None => spec_path_of(dir, &run)?,
+    };
+    let spec = spec_buf.as_path();
     let recorded_spec = read(dir.join(SPEC_COPY))?;
     if read(spec.to_path_buf())? != recorded_spec {
         return Err(fail(vec![format!(
@@ -1854,23 +1865,21 @@ pub fn verify_by_recomputation(
             spec.display()
         )]));
     }
-    let run: serde_json::Value = serde_json::from_slice(&read(dir.join("run.json"))?)
-        .map_err(|e| fail(vec![format!("`run.json` is unreadable: {e}")]))?;
     check_recorded_inputs(dir, spec, &run)?;
     let replay = Replay {
-        wall_clock: serde_json::from_value(run["wall-clock"].clone()).unwrap_or(None),
-        openings: serde_json::from_value(run["test-openings"].clone()).unwrap_or(None),
+        wall_clock: run.wall_clock.clone(),
+        openings: run.test_openings.clone(),
         key_fingerprint: manifest.key_fingerprint.clone(),
-        path_from_run: run["spec"]["path-from-run"].as_str().map(str::to_string),
-        provenance: serde_json::from_value(run["provenance"].clone()).unwrap_or(None),
+        path_from_run: run.spec.path_from_run.clone(),
+        provenance: run.provenance.clone(),
     };
     let opts = RunOptions {
         spec: spec.to_path_buf(),
         key: PathBuf::new(),
         out: None,
         templates: None,
-        no_wall_clock: run["wall-clock"].is_null(),
-        open_test: run["test-opened"].as_bool().unwrap_or(false),
+        no_wall_clock: run.wall_clock.is_none(),
+        open_test: run.test_opened,
         progress: crate::progress::Progress::hidden(),
     };
     let files = recompute(&opts, &replay)?;

@@ -24,44 +24,10 @@ pub fn tool() -> String {
     format!("anomark {}", env!("CARGO_PKG_VERSION"))
 }
 
-/// A double as the shortest decimal that reads back to the same bits.
-pub fn fmt_f64(v: f64) -> String {
-    if v.is_finite() {
-        // Rust's `Display` for f64 is the shortest round-trip form (no exponent).
-        format!("{v}")
-    } else if v.is_nan() {
-        "NaN".into()
-    } else if v > 0.0 {
-        "inf".into()
-    } else {
-        "-inf".into()
-    }
-}
-
-/// Appends `v` to `out` as the shortest decimal that reads back to the same
-/// bits, in plain notation like [`fmt_f64`], several times faster: ryu's
-/// digits for 1e-5 ≤ |v| < 1e16 (a trailing `.0` dropped), `Display` for the
-/// rest. ryu and `Display` find the same shortest digits except where two
-/// candidates are equally near the double (ryu then takes the even last
-/// digit), so the text can differ from [`fmt_f64`]'s in that last digit,
-/// never in the value (tested).
-pub fn push_f64(out: &mut String, v: f64) {
-    if !v.is_finite() {
-        out.push_str(&fmt_f64(v));
-        return;
-    }
-    let mut buf = ryu::Buffer::new();
-    let s = buf.format_finite(v);
-    if s.as_bytes().contains(&b'e') {
-        use std::fmt::Write;
-        let _ = write!(out, "{v}");
-    } else {
-        out.push_str(s.strip_suffix(".0").unwrap_or(s));
-    }
-}
+pub use crate::float::{fmt_f64, push_f64};
 
 /// The record of one run.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct RunRecord {
     /// Format version of this record.
@@ -97,23 +63,25 @@ pub struct RunRecord {
     /// The threshold policy, as declared.
     pub threshold_policy: ThresholdPolicy,
     /// The bootstrap behind the F1, AP and AUC intervals.
-    pub bootstrap: crate::metrics::BootstrapPlan,
+    pub bootstrap: crate::spec::BootstrapPlan,
     /// How the detector was chosen.
     pub selection: SelectionRecord,
     /// Every candidate.
     pub candidates: Vec<CandidateRecord>,
     /// The chosen candidate's calibration scores, for conformal p-values
-    /// when scoring new data.
-    pub calibration: CalibrationRecord,
-    /// What a scored batch's drift is measured against.
-    pub drift_reference: DriftReference,
+    /// when scoring new data. Always written; absent (read as `None`) only in
+    /// runs recorded before conformal p-values.
+    pub calibration: Option<CalibrationRecord>,
+    /// What a scored batch's drift is measured against. Always written;
+    /// absent (read as `None`) only in runs recorded before drift reports.
+    pub drift_reference: Option<DriftReference>,
     /// The only wall-clock field: when the run started and how long it took.
     /// Null with `--no-wall-clock`; everything else is reproducible to the byte.
     pub wall_clock: Option<WallClock>,
 }
 
 /// The spec file.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct SpecRecord {
     /// The spec's file name.
@@ -147,7 +115,7 @@ pub fn relative_path(from: &std::path::Path, to: &std::path::Path) -> Option<Str
 }
 
 /// One input file.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct InputRecord {
     /// The path relative to the spec's directory.
@@ -162,7 +130,7 @@ pub struct InputRecord {
 }
 
 /// The label column.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct LabelRecord {
     /// Column name.
@@ -174,7 +142,7 @@ pub struct LabelRecord {
 }
 
 /// The split, with one manifest hash per split.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct SplitRecord {
     /// How the split came out.
@@ -189,7 +157,7 @@ pub struct SplitRecord {
 }
 
 /// The selection rule and its outcome.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct SelectionRecord {
     /// The validation metric that ranks candidates.
@@ -201,7 +169,7 @@ pub struct SelectionRecord {
 }
 
 /// One candidate detector.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct CandidateRecord {
     /// Candidate name (`set/detector` with several feature sets).
@@ -331,14 +299,84 @@ pub struct WallClock {
     pub seconds: f64,
 }
 
-/// Reads a JSON file of a run directory (`run.json`, `manifest.json`).
-pub fn read_json(dir: &std::path::Path, name: &str) -> crate::error::Result<serde_json::Value> {
-    let p = dir.join(name);
+/// The run record's file name in a run directory.
+pub const RUN_JSON: &str = "run.json";
+
+/// Reads a run directory's `run.json` as a [`RunRecord`]: the one reader
+/// behind `verify --data`, `score`, the refit of a chosen detector and
+/// `diff`. A missing file is an I/O error; a field that is missing or of the
+/// wrong type is an output error (exit 4) naming `run.json` and the field's
+/// path, never a default.
+pub fn read_run(dir: &std::path::Path) -> crate::error::Result<RunRecord> {
+    let p = dir.join(RUN_JSON);
     let b = std::fs::read(&p).map_err(|e| crate::error::Error::io(&p, "reading", e))?;
-    serde_json::from_slice(&b).map_err(|e| crate::error::Error::Output {
-        path: p,
-        message: format!("not a run record: {e}"),
-    })
+    parse_run(&p, &b)
+}
+
+/// Parses the bytes of `run.json` (read from `path`, which errors name) as a
+/// [`RunRecord`], with [`read_run`]'s errors. For a caller that has the
+/// bytes already (to check their hash first).
+pub fn parse_run(path: &std::path::Path, bytes: &[u8]) -> crate::error::Result<RunRecord> {
+    let de = &mut serde_json::Deserializer::from_slice(bytes);
+    let rec: RunRecord = serde_path_to_error::deserialize(de).map_err(|e| {
+        let at = e.path().to_string();
+        let inner = e.into_inner();
+        crate::error::Error::Output {
+            path: path.to_path_buf(),
+            message: if at == "." || inner.is_syntax() || inner.is_eof() {
+                format!("not a run record: {inner}")
+            } else {
+                format!("not a run record: field `{at}`: {inner}")
+            },
+        }
+    })?;
+    if rec.format != FORMAT {
+        return Err(crate::error::Error::Output {
+            path: path.to_path_buf(),
+            message: format!(
+                "not a run record: field `format` is {}, this version reads {FORMAT}",
+                rec.format
+            ),
+        });
+    }
+    Ok(rec)
+}
+
+impl RunRecord {
+    /// The chosen candidate (exactly one is marked `chosen`; its name is
+    /// `selection.chosen`). Errors name `path`, the run.json read.
+    pub fn chosen(&self, path: &std::path::Path) -> crate::error::Result<&CandidateRecord> {
+        let mut marked = self.candidates.iter().filter(|c| c.chosen);
+        match (marked.next(), marked.next()) {
+            (Some(c), None) if c.name == self.selection.chosen => Ok(c),
+            (Some(_), None) => Err(crate::error::Error::Output {
+                path: path.to_path_buf(),
+                message: format!(
+                    "not a run record: the candidate marked `chosen` is not `selection.chosen` (`{}`)",
+                    self.selection.chosen
+                ),
+            }),
+            _ => Err(crate::error::Error::Output {
+                path: path.to_path_buf(),
+                message: "not a run record: not exactly one candidate is marked `chosen`".into(),
+            }),
+        }
+    }
+
+    /// The fitted feature set named `name`.
+    pub fn feature_set(
+        &self,
+        path: &std::path::Path,
+        name: &str,
+    ) -> crate::error::Result<&FittedFeatures> {
+        self.feature_sets
+            .iter()
+            .find(|s| s.set == name)
+            .ok_or_else(|| crate::error::Error::Output {
+                path: path.to_path_buf(),
+                message: format!("not a run record: no feature set `{name}` in `feature-sets`"),
+            })
+    }
 }
 
 /// Formats seconds since the Unix epoch as RFC 3339 UTC (to the second).

@@ -82,7 +82,7 @@ pub struct ScoreSummary {
     /// Peak resident memory of the process, MiB.
     pub peak_rss_mib: Option<f64>,
     /// Conformal p-values and Benjamini-Hochberg flagging (with `--fdr`).
-    pub fdr: Option<FdrSummary>,
+    pub fdr: Option<crate::conformal::FdrSummary>,
     /// The batch's drift against the run (null for a run recorded before
     /// drift references were kept).
     pub drift: Option<crate::drift::DriftReport>,
@@ -90,20 +90,6 @@ pub struct ScoreSummary {
     pub report: Option<PathBuf>,
     /// Warnings, also printed on stderr.
     pub warnings: Vec<String>,
-}
-
-/// Benjamini-Hochberg flagging of one scored batch.
-#[derive(Debug, Clone, serde::Serialize)]
-#[serde(rename_all = "kebab-case")]
-pub struct FdrSummary {
-    /// Q, the level.
-    pub q: f64,
-    /// n, the validation normals the p-values are computed against.
-    pub calibration_normals: usize,
-    /// Rows flagged (p ≤ the cut).
-    pub flagged: u64,
-    /// The cut: the largest p-value flagged (null when none is).
-    pub p_cut: Option<f64>,
 }
 
 /// Which end of `score` a file is, for the wording of a refusal.
@@ -205,34 +191,14 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
             ],
         });
     }
-    let run: serde_json::Value = serde_json::from_slice(&run_bytes)
-        .map_err(|e| bad_run(dir, format!("`run.json` is not JSON: {e}")))?;
-    let chosen = run["candidates"]
-        .as_array()
-        .and_then(|c| c.iter().find(|c| c["chosen"] == true))
-        .ok_or_else(|| bad_run(dir, "run.json names no chosen candidate".into()))?;
-    let field = |what: &str| {
-        bad_run(
-            dir,
-            format!("run.json: the chosen candidate's {what} is unreadable"),
-        )
-    };
-    let set_name = chosen["feature-set"]
-        .as_str()
-        .ok_or_else(|| field("feature set"))?;
-    let set_value = run["feature-sets"]
-        .as_array()
-        .and_then(|s| s.iter().find(|s| s["set"] == set_name))
-        .ok_or_else(|| field("feature set"))?;
-    let set: FittedFeatures =
-        serde_json::from_value(set_value.clone()).map_err(|_| field("feature set"))?;
-    let params: Params =
-        serde_json::from_value(chosen["params"].clone()).map_err(|_| field("parameters"))?;
-    let tau = chosen["tau"].as_f64().ok_or_else(|| field("τ"))?;
-    let columns: Vec<String> = serde_json::from_value(run["content-columns"].clone())
-        .map_err(|_| bad_run(dir, "run.json: `content-columns` is unreadable".into()))?;
+    let run = crate::record::parse_run(&run_path, &run_bytes)?;
+    let chosen = run.chosen(&run_path)?;
+    let set: FittedFeatures = run.feature_set(&run_path, &chosen.feature_set)?.clone();
+    let params: Params = chosen.params.clone();
+    let tau = chosen.tau;
+    let columns = run.content_columns.clone();
     let names = set.names();
-    let candidate = chosen["name"].as_str().unwrap_or_default().to_string();
+    let candidate = chosen.name.clone();
     let scorer = if let Params::Command { .. } = params {
         let (command, train) = crate::pipeline::chosen_command(dir, &params)?;
         Scorer::Command(Box::new(command), train)
@@ -243,11 +209,9 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
         })
     };
     // Older runs kept neither; both are then simply absent.
-    let calibration = match run.get("calibration") {
+    let calibration = match run.calibration {
         None => None,
         Some(c) => {
-            let c: crate::record::CalibrationRecord = serde_json::from_value(c.clone())
-                .map_err(|_| bad_run(dir, "run.json: `calibration` is unreadable".into()))?;
             if c.candidate != candidate {
                 return Err(bad_run(
                     dir,
@@ -264,14 +228,13 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
             )
         }
     };
-    let drift_reference = match run.get("drift-reference") {
-        None => None,
-        Some(d) => Some(
-            serde_json::from_value(d.clone())
-                .map_err(|_| bad_run(dir, "run.json: `drift-reference` is unreadable".into()))?,
-        ),
+    let drift_reference = run.drift_reference;
+    let conformal_level = match run.threshold_policy {
+        crate::spec::ThresholdPolicy::Conformal {
+            max_false_positive_rate,
+        } => Some(max_false_positive_rate),
+        _ => None,
     };
-    let conformal_level = run["threshold-policy"]["conformal"]["max-false-positive-rate"].as_f64();
     Ok(Recorded {
         candidate,
         set,
@@ -491,7 +454,7 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
             let counts = rank_counts(&run, &used, cal, in_format, &opts.data, opts.progress)?;
             let cut = crate::conformal::bh_ranks(&counts, q);
             fdr_cut = Some(cut.p_cut);
-            Some(FdrSummary {
+            Some(crate::conformal::FdrSummary {
                 q,
                 calibration_normals: cal.len(),
                 flagged: cut.rejected,
@@ -571,7 +534,12 @@ pub fn score(opts: &ScoreOptions) -> Result<ScoreSummary> {
         return Err(e);
     }
     if let Err(e) = outcome {
-        return Err(not_a_number(&opts.data, in_format == Format::Csv, &used, e));
+        return Err(crate::data::not_a_number(
+            &opts.data,
+            in_format == Format::Csv,
+            &used,
+            e,
+        ));
     }
     if st.writer.is_none() {
         // No rows: still write the header (CSV) or an empty file with the schema.
@@ -793,7 +761,12 @@ fn rank_counts(
         return Err(e);
     }
     if let Err(e) = outcome {
-        return Err(not_a_number(path, format == Format::Csv, used, e));
+        return Err(crate::data::not_a_number(
+            path,
+            format == Format::Csv,
+            used,
+            e,
+        ));
     }
     Ok(std::mem::take(&mut st.counts))
 }
@@ -963,73 +936,6 @@ fn batch_scores(
         }
     };
     Ok((scores, x))
-}
-
-/// A column with values that are not numbers: its name, the first lines, how many.
-type NotNumber = (String, Vec<u64>, usize);
-
-/// A failed scan: most often a feature value that is not a number. Re-reads
-/// the feature columns as text, streaming, to name the first such lines.
-pub(crate) fn not_a_number(path: &Path, csv: bool, used: &[String], e: PolarsError) -> Error {
-    if !csv {
-        return polars_error(path, e);
-    }
-    let Ok(ppath) = PlRefPath::try_from_path(path) else {
-        return polars_error(path, e);
-    };
-    let text = LazyCsvReader::new(ppath)
-        .with_has_header(true)
-        .with_infer_schema_length(Some(0))
-        .finish()
-        .map(|lf| lf.select(used.iter().map(|c| col(c.as_str())).collect::<Vec<_>>()));
-    let found: Arc<Mutex<Option<NotNumber>>> = Arc::new(Mutex::new(None));
-    let offset = Arc::new(Mutex::new(0u64));
-    let (f2, o2, names) = (found.clone(), offset.clone(), used.to_vec());
-    let scan = text.and_then(|lf| {
-        lf.sink_batches(
-            PlanCallback::new(move |df: DataFrame| {
-                let mut off = o2.lock().expect("not poisoned");
-                let mut found = f2.lock().expect("not poisoned");
-                for name in &names {
-                    let Ok(c) = df.column(name).and_then(|c| c.str().cloned()) else {
-                        continue;
-                    };
-                    let bad: Vec<u64> = c
-                        .iter()
-                        .enumerate()
-                        .filter(|(_, v)| {
-                            v.is_some_and(|s| {
-                                !s.trim().is_empty() && s.trim().parse::<f64>().is_err()
-                            })
-                        })
-                        .map(|(i, _)| *off + i as u64 + 2)
-                        .collect();
-                    if !bad.is_empty() {
-                        let total = bad.len();
-                        *found = Some((name.clone(), bad.into_iter().take(5).collect(), total));
-                        return Ok(true);
-                    }
-                }
-                *off += df.height() as u64;
-                Ok(false)
-            }),
-            true,
-            None,
-        )
-        .and_then(|lf| lf.collect_with_engine(Engine::Streaming))
-    });
-    let found = found.lock().expect("not poisoned").take();
-    match (scan, found) {
-        (_, Some((column, lines, total))) => Error::Data {
-            path: path.to_path_buf(),
-            column: Some(column),
-            message: "a value that is not a number".into(),
-            lines,
-            total,
-            unit: RowUnit::Line,
-        },
-        _ => polars_error(path, e),
-    }
 }
 
 /// blake3 of a run's manifest.json, as the output's `anomark_run` column holds it.

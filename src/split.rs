@@ -20,38 +20,13 @@
 use std::collections::BTreeMap;
 
 use crate::audit::hash::ContentHash;
+use crate::audit::leak::Part;
 use crate::data::{Dataset, RowId, TextColumn};
 use crate::error::{Error, Result};
 use crate::spec::{Fractions, Seed, SplitPlan};
 
-/// One of the three splits.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize)]
-#[serde(rename_all = "kebab-case")]
-pub enum Part {
-    /// Fits the detectors.
-    Train,
-    /// Chooses thresholds and the detector.
-    Validation,
-    /// Held out for the final numbers.
-    Test,
-}
-
-impl Part {
-    /// All parts, in order.
-    pub const ALL: [Part; 3] = [Part::Train, Part::Validation, Part::Test];
-
-    /// The name used in files and specs.
-    pub fn name(self) -> &'static str {
-        match self {
-            Part::Train => "train",
-            Part::Validation => "validation",
-            Part::Test => "test",
-        }
-    }
-}
-
 /// Row counts of one split by label.
-#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 pub struct Counts {
     /// Normal rows.
     pub normal: usize,
@@ -112,7 +87,7 @@ impl OpenedTest {
 }
 
 /// Cut points of a time-ordered split, as the time column's text.
-#[derive(Debug, Clone, Default, PartialEq, Eq, serde::Serialize)]
+#[derive(Debug, Clone, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct TimeCuts {
     /// Earliest normal time in validation.
@@ -124,11 +99,11 @@ pub struct TimeCuts {
 }
 
 /// How the split came out, for the record.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct SplitReport {
     /// `protocol`, `groups`, `time` or `from-column`.
-    pub method: &'static str,
+    pub method: std::borrow::Cow<'static, str>,
     /// The seed (protocol and groups).
     pub seed: Option<Seed>,
     /// The counts the fractions ask for, by split (not for `from-column`).
@@ -251,7 +226,7 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
     let rows_with_duplicates = order.repeats.iter().map(|r| r.len()).sum();
 
     let mut report = SplitReport {
-        method: "",
+        method: "".into(),
         seed: None,
         requested: None,
         counts: [Counts::default(); 3],
@@ -262,7 +237,7 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
     };
     let part_of: Vec<Part> = match plan {
         SplitPlan::Protocol { seed, fractions } => {
-            report.method = "protocol";
+            report.method = "protocol".into();
             report.seed = Some(*seed);
             report.requested = Some(requested_counts(data, fractions));
             protocol(data, hashes, *seed, fractions)
@@ -272,7 +247,7 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
             seed,
             fractions,
         } => {
-            report.method = "groups";
+            report.method = "groups".into();
             report.seed = Some(*seed);
             report.requested = Some(requested_counts(data, fractions));
             let groups = &data.text[&column.name];
@@ -281,7 +256,7 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
             parts
         }
         SplitPlan::Time { column, fractions } => {
-            report.method = "time";
+            report.method = "time".into();
             report.requested = Some(requested_counts(data, fractions));
             let times = &data.text[&column.name];
             let (parts, cuts) = by_time(data, hashes, times, fractions);
@@ -289,7 +264,7 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
             parts
         }
         SplitPlan::FromColumn { column, group } => {
-            report.method = "from-column";
+            report.method = "from-column".into();
             let parts = from_column(data, &column.name)?;
             if let Some(g) = group {
                 let values = &data.text[&g.name];
@@ -444,7 +419,7 @@ pub fn streamed(
     }
     check_counts(&counts)?;
     let report = SplitReport {
-        method: "from-column",
+        method: "from-column".into(),
         seed: None,
         requested: None,
         counts,

@@ -21,13 +21,14 @@ use ndarray::{Array2, ArrayView2};
 use polars::prelude::*;
 
 use crate::audit::hash::{self, ContentHash};
+use crate::audit::leak::Part;
 use crate::data::{self, Dataset, Dropped, Format, Origin, SourceFile};
 use crate::detect::{self, Model};
 use crate::error::{Error, Result, RowUnit};
 use crate::features::{self, FittedFeatures};
 use crate::progress::Progress;
 use crate::spec::{DetectorKind, MissingPolicy, Plan, SplitPlan};
-use crate::split::{Counts, Part};
+use crate::split::Counts;
 
 /// Training rows per block of sufficient statistics.
 pub const BLOCK: usize = 65_536;
@@ -804,7 +805,7 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
             return Err(e);
         }
         if let Err(e) = outcome {
-            return Err(crate::score::not_a_number(
+            return Err(crate::data::not_a_number(
                 &file.path,
                 file.format == Format::Csv,
                 &used[..columns.len()],

@@ -20,7 +20,7 @@
 
 use rayon::prelude::*;
 
-use crate::metrics::Confusion;
+use crate::decision::Confusion;
 
 /// The normal rows strictly between two consecutive cut points.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -282,7 +282,7 @@ impl Summary {
     /// `None` when τ falls strictly inside that gap's normal scores, where
     /// the summary cannot count (τ is then not one of its cut points).
     pub(crate) fn split_at(&self, tau: f64) -> Option<(usize, bool)> {
-        let t = crate::metrics::Threshold(tau);
+        let t = crate::decision::Threshold(tau);
         let k = self.values.partition_point(|&v| t.flags(v));
         let g = &self.gaps[k];
         // A NaN τ (the row-level search's τ for "flag everything" when the
@@ -412,7 +412,8 @@ pub(crate) fn ranking_walk(
 mod tests {
     use super::curve;
     use super::*;
-    use crate::metrics::{average_precision, roc_auc, BootstrapPlan, Metrics};
+    use crate::metrics::{average_precision, roc_auc, Metrics};
+    use crate::spec::BootstrapPlan;
     use crate::spec::ThresholdPolicy;
     use crate::threshold::{choose, choose_summary, cuts, cuts_summary};
     use proptest::prelude::*;

@@ -348,7 +348,7 @@ impl DriftContext {
         d: &crate::drift::DriftReport,
         candidate: &str,
         manifest_blake3: &str,
-        fdr: Option<&crate::score::FdrSummary>,
+        fdr: Option<&crate::conformal::FdrSummary>,
     ) -> Self {
         let f4 = |v: f64| format!("{v:.4}");
         DriftContext {

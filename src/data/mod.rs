@@ -15,7 +15,7 @@
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
-use std::sync::Arc;
+use std::sync::{Arc, Mutex};
 
 use ndarray::Array2;
 use polars::prelude::*;
@@ -37,7 +37,7 @@ const SHOWN: usize = 5;
 pub struct RowId(pub u64);
 
 /// The file format of a source file.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum Format {
     /// Comma-separated text with a header line.
@@ -88,7 +88,7 @@ pub struct Origin {
 }
 
 /// Rows left out under `missing-values: drop-row`.
-#[derive(Debug, Clone, Default, PartialEq, Eq, serde::Serialize)]
+#[derive(Debug, Clone, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct Dropped {
     /// Dropped normal rows.
@@ -1363,6 +1363,75 @@ impl Dataset {
             text,
             dropped: Dropped::default(),
         }
+    }
+}
+
+/// A column with values that are not numbers: its name, the first lines, how many.
+type NotNumber = (String, Vec<u64>, usize);
+
+/// A failed scan of `used` columns as numbers (`score`'s input, a streamed
+/// source): most often a value that is not a number. Re-reads the columns
+/// as text, streaming, to name the first such lines (CSV); else the read
+/// error as [`read_error`] maps it.
+pub fn not_a_number(path: &Path, csv: bool, used: &[String], e: PolarsError) -> Error {
+    if !csv {
+        return read_error(path, e);
+    }
+    let Ok(ppath) = PlRefPath::try_from_path(path) else {
+        return read_error(path, e);
+    };
+    let text = LazyCsvReader::new(ppath)
+        .with_has_header(true)
+        .with_infer_schema_length(Some(0))
+        .finish()
+        .map(|lf| lf.select(used.iter().map(|c| col(c.as_str())).collect::<Vec<_>>()));
+    let found: Arc<Mutex<Option<NotNumber>>> = Arc::new(Mutex::new(None));
+    let offset = Arc::new(Mutex::new(0u64));
+    let (f2, o2, names) = (found.clone(), offset.clone(), used.to_vec());
+    let scan = text.and_then(|lf| {
+        lf.sink_batches(
+            PlanCallback::new(move |df: DataFrame| {
+                let mut off = o2.lock().expect("not poisoned");
+                let mut found = f2.lock().expect("not poisoned");
+                for name in &names {
+                    let Ok(c) = df.column(name).and_then(|c| c.str().cloned()) else {
+                        continue;
+                    };
+                    let bad: Vec<u64> = c
+                        .iter()
+                        .enumerate()
+                        .filter(|(_, v)| {
+                            v.is_some_and(|s| {
+                                !s.trim().is_empty() && s.trim().parse::<f64>().is_err()
+                            })
+                        })
+                        .map(|(i, _)| *off + i as u64 + 2)
+                        .collect();
+                    if !bad.is_empty() {
+                        let total = bad.len();
+                        *found = Some((name.clone(), bad.into_iter().take(5).collect(), total));
+                        return Ok(true);
+                    }
+                }
+                *off += df.height() as u64;
+                Ok(false)
+            }),
+            true,
+            None,
+        )
+        .and_then(|lf| lf.collect_with_engine(Engine::Streaming))
+    });
+    let found = found.lock().expect("not poisoned").take();
+    match (scan, found) {
+        (_, Some((column, lines, total))) => Error::Data {
+            path: path.to_path_buf(),
+            column: Some(column),
+            message: "a value that is not a number".into(),
+            lines,
+            total,
+            unit: RowUnit::Line,
+        },
+        _ => read_error(path, e),
     }
 }
 

@@ -185,8 +185,8 @@ pub fn final_scores(
                 "the program is not deterministic: it scored {} as {} with the validation rows \
                  alone and as {} with the test rows added; seed every random choice it makes",
                 place(validation[k]),
-                crate::record::fmt_f64(recorded[k]),
-                crate::record::fmt_f64(scores[k])
+                crate::float::fmt_f64(recorded[k]),
+                crate::float::fmt_f64(scores[k])
             ),
             stderr: vec![],
         });
@@ -284,7 +284,7 @@ pub fn invoke(
             format!(
                 "`{scores_name}`: the score of row {} of `{rows_name}` is `{}`, not a finite number",
                 k + 1,
-                crate::record::fmt_f64(read[k])
+                crate::float::fmt_f64(read[k])
             ),
             stderr,
         ));
@@ -336,7 +336,7 @@ fn write_matrix(
                     if j > 0 {
                         s.push(',');
                     }
-                    crate::record::push_f64(&mut s, *v);
+                    crate::float::push_f64(&mut s, *v);
                 }
                 s.push('\n');
             }

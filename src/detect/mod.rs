@@ -279,16 +279,10 @@ pub fn restore_multivariate(
     multivariate::restore(mean, cov, features)
 }
 
-/// The detector's name in specs, files and cards.
+/// The detector's name in specs, files and cards ([`DetectorKind::name`],
+/// which the spec owns so that `spec` need not import `detect`).
 pub fn name(kind: DetectorKind) -> &'static str {
-    match kind {
-        DetectorKind::IndependentGaussian => "independent-gaussian",
-        DetectorKind::MultivariateGaussian => "multivariate-gaussian",
-        DetectorKind::RobustGaussian { .. } => "robust-gaussian",
-        DetectorKind::GaussianMixture { .. } => "gaussian-mixture",
-        DetectorKind::KnnDistance { .. } => "knn-distance",
-        DetectorKind::Command(_) => "command",
-    }
+    kind.name()
 }
 
 /// The implementation of a kind.

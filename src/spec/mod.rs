@@ -41,8 +41,20 @@ pub const MAX_FEATURE_SETS: usize = 100;
 pub const MAX_FEATURES: usize = 1_000;
 
 /// A split seed.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, serde::Serialize)]
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, serde::Serialize, serde::Deserialize,
+)]
 pub struct Seed(pub u64);
+
+/// How the bootstrap is drawn.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct BootstrapPlan {
+    /// Replicates (0 turns the bootstrap off).
+    pub replicates: u32,
+    /// The seed.
+    pub seed: u64,
+}
 
 /// A column name together with where the spec names it.
 #[derive(Debug, Clone)]
@@ -245,7 +257,7 @@ pub struct Plan {
     /// The validation metric that ranks candidates.
     pub selection: SelectionMetric,
     /// The bootstrap behind the F1, AP and AUC intervals.
-    pub bootstrap: crate::metrics::BootstrapPlan,
+    pub bootstrap: BootstrapPlan,
     /// Card text.
     pub card: CardText,
     /// Default output directory, resolved against the spec's directory.
@@ -1023,8 +1035,8 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
                 continue;
             }
         };
-        let name = crate::detect::name(kind);
-        if detectors.iter().any(|e| crate::detect::name(*e) == name) {
+        let name = kind.name();
+        if detectors.iter().any(|e| e.name() == name) {
             return Err(r.err(d, &field, format!("detector `{name}` is listed twice")));
         }
         let bad = |what: String| Err(r.err(d, &format!("{field}.{name}"), what));
@@ -1088,7 +1100,7 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
                 return bad(format!(
                     "`{}` needs its training rows in memory; streaming fits the \
                      independent-gaussian and multivariate-gaussian from sufficient statistics",
-                    crate::detect::name(*d)
+                    d.name()
                 ));
             }
             for f in feature_sets.iter().flat_map(|s| &s.features) {
@@ -1172,7 +1184,7 @@ pub fn resolve(path: &Path, text: &str, bytes: &[u8], raw: RawSpec) -> Result<Pl
         commands,
         threshold,
         selection,
-        bootstrap: crate::metrics::BootstrapPlan {
+        bootstrap: BootstrapPlan {
             replicates: raw.bootstrap.as_ref().map_or(1000, |b| b.replicates.value),
             seed: raw.bootstrap.as_ref().map_or(1, |b| b.seed),
         },
@@ -1215,7 +1227,7 @@ fn resolve_command(
     }
     if detectors
         .iter()
-        .any(|k| !matches!(k, DetectorKind::Command(_)) && crate::detect::name(*k) == name)
+        .any(|k| !matches!(k, DetectorKind::Command(_)) && k.name() == name)
         || name == "command"
         || commands.iter().any(|e| e.name == name)
     {

@@ -453,6 +453,20 @@ pub enum DetectorKind {
     Command(usize),
 }
 
+impl DetectorKind {
+    /// The detector's name in specs, files and cards.
+    pub fn name(self) -> &'static str {
+        match self {
+            DetectorKind::IndependentGaussian => "independent-gaussian",
+            DetectorKind::MultivariateGaussian => "multivariate-gaussian",
+            DetectorKind::RobustGaussian { .. } => "robust-gaussian",
+            DetectorKind::GaussianMixture { .. } => "gaussian-mixture",
+            DetectorKind::KnnDistance { .. } => "knn-distance",
+            DetectorKind::Command(_) => "command",
+        }
+    }
+}
+
 /// A detector that is an external program: anomark hands it a folder with
 /// the training rows' features and the rows to score, and reads back one
 /// score per row (see the README's contract).

@@ -25,6 +25,7 @@ mod recompute;
 mod reference;
 #[cfg(target_os = "linux")]
 mod refusals;
+mod runrecord;
 mod schema;
 mod score;
 mod signing;
