@@ -180,6 +180,14 @@ pub enum Error {
         /// What is missing and how to give it.
         message: String,
     },
+    /// An error met while working on one named feature set: the inner
+    /// error, with the set it happened in (context added by wrapping).
+    InFeatureSet {
+        /// The feature set's name.
+        set: String,
+        /// What went wrong there.
+        source: Box<Error>,
+    },
     /// A bug.
     Internal {
         /// What went wrong.
@@ -203,6 +211,7 @@ impl Error {
             | Error::Key { .. }
             | Error::Template { .. } => exit::IO,
             Error::Verify { .. } => exit::VERIFY_FAILED,
+            Error::InFeatureSet { source, .. } => source.code(),
             Error::Internal { .. } => exit::INTERNAL,
         }
     }
@@ -306,6 +315,7 @@ impl fmt::Display for Error {
                  (first: {} and {}); identical rows must share one split",
                 splits.0, splits.1, first.0, first.1
             ),
+            Error::InFeatureSet { set, source } => write!(f, "feature set `{set}`: {source}"),
             Error::Protocol { message } => write!(f, "{message}"),
             Error::Usage { message } => write!(f, "{message}"),
             Error::Fit {
@@ -382,6 +392,7 @@ impl std::error::Error for Error {
     fn source(&self) -> Option<&(dyn std::error::Error + 'static)> {
         match self {
             Error::Io { source, .. } => Some(source),
+            Error::InFeatureSet { source, .. } => Some(source.as_ref()),
             _ => None,
         }
     }

@@ -623,7 +623,8 @@ fn execute(
                             &|rows| fitted.apply(&data, rows),
                             &splits.train,
                             &splits.validation,
-                        )?
+                        )
+                        .map_err(|e| in_set(e, set))?
                     } else {
                         let t = crate::progress::part("fitting");
                         let model = match &streamed {
@@ -1159,19 +1160,16 @@ const FIGURE_ROWS: usize = 200_000;
 /// The run directory's copy of the spec's exact bytes.
 pub const SPEC_COPY: &str = "spec.yaml";
 
-/// Names the feature set in a detector's error when there are several.
+/// Wraps an error met on a named feature set with the set's name (a spec
+/// with one unnamed set needs no such context).
 fn in_set(e: Error, set: &spec::FeatureSetPlan) -> Error {
-    match e {
-        Error::Fit {
-            detector,
-            message,
-            features,
-        } if set.named => Error::Fit {
-            detector: format!("{detector}` on feature set `{}", set.name),
-            message,
-            features,
-        },
-        other => other,
+    if set.named {
+        Error::InFeatureSet {
+            set: set.name.clone(),
+            source: Box::new(e),
+        }
+    } else {
+        e
     }
 }
 

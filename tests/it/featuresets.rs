@@ -115,3 +115,26 @@ fn transforms_are_fitted_on_train_only() {
         .unwrap();
     assert!((got - mean).abs() < 1e-9, "{got} vs {mean}");
 }
+
+/// A detector's refusal on a named feature set is wrapped with the set's
+/// name (context added by wrapping, the inner message unchanged) and keeps
+/// the inner error's exit code.
+#[test]
+fn a_fit_refused_on_a_named_feature_set_names_the_set() {
+    // c = 2a exactly: the set `twins` is collinear, so the multivariate
+    // Gaussian refuses its covariance.
+    let r: Rows = positive(&rows(400, 8, 43))
+        .into_iter()
+        .map(|(id, x, a)| (id, vec![x[0], x[1], 2.0 * x[0]], a))
+        .collect();
+    let features = "  feature-sets:\n    - name: plain\n      features: [a, b]\n    - name: twins\n      features: [a, c]\n";
+    Case::new()
+        .file("data.csv", csv(&["a", "b", "c"], &r))
+        .file("spec.yaml", spec_with(features))
+        .keys()
+        .run_spec()
+        .fails(
+            3,
+            &["feature set `twins`: detector `multivariate-gaussian`: "],
+        );
+}
