@@ -838,7 +838,8 @@ fn execute(
                     name: c.name.clone(),
                     feature_set: fitted_sets[c.set].set.clone(),
                     detector: detect::name(c.kind).into(),
-                    parameter_count: c.model.parameter_count(),
+                    parameter_count: Some(c.model.parameter_count())
+                        .filter(|&n| n != detect::UNKNOWN_PARAMETERS),
                     params: c.model.params(),
                     tau: c.choice.tau,
                     ln_epsilon: c.choice.ln_epsilon(),
@@ -1480,11 +1481,9 @@ fn card_context(
             .map(|c| ThresholdRow {
                 candidate: c.name.clone(),
                 chosen: c.chosen,
-                parameters: if c.parameter_count == usize::MAX {
-                    "unknown".into()
-                } else {
-                    c.parameter_count.to_string()
-                },
+                parameters: c
+                    .parameter_count
+                    .map_or_else(|| "unknown".into(), |n| n.to_string()),
                 tau: format!("{:.6}", c.tau),
                 ln_epsilon: format!("{:.6}", c.ln_epsilon),
                 unmet: c.threshold_note.clone(),

@@ -178,8 +178,10 @@ pub struct CandidateRecord {
     pub feature_set: String,
     /// The detector.
     pub detector: String,
-    /// Free parameters (the tie rule's notion of simpler).
-    pub parameter_count: usize,
+    /// Free parameters (the tie rule's notion of simpler); null for an
+    /// external command, whose parameters anomark cannot count (it loses
+    /// every tie on this rule).
+    pub parameter_count: Option<usize>,
     /// Fitted parameters.
     pub params: Params,
     /// Flag iff s(x) > τ.

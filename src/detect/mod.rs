@@ -34,6 +34,11 @@ pub trait Detector {
     fn fit(&self, train: ArrayView2<'_, f64>, features: &[String]) -> Result<Box<dyn Model>>;
 }
 
+/// The parameter count of a model whose parameters anomark cannot see (an
+/// external command): counted as the most, so that a selection tie goes to
+/// a built-in detector, and recorded in run.json as null.
+pub const UNKNOWN_PARAMETERS: usize = usize::MAX;
+
 /// A fitted detector.
 pub trait Model: Send + Sync {
     /// The anomaly score s(x) = −ln p(x) of each row.
@@ -207,9 +212,7 @@ impl Params {
                 mean,
                 ..
             } => training_rows * mean.len(),
-            // Unknown: counted as the most, so that a tie goes to a built-in
-            // detector, whose parameters the record holds.
-            Params::Command { .. } => usize::MAX,
+            Params::Command { .. } => UNKNOWN_PARAMETERS,
         }
     }
 }

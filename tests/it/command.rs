@@ -524,3 +524,21 @@ fn isolation_forest_example_matches_scikit_learn() {
     let card = d.read("out/card.md");
     assert!(card.contains("“isolation-forest” is an external command"));
 }
+
+/// A command's parameter count, which anomark cannot see, is recorded as
+/// null in run.json, not as a number standing in for "unknown".
+#[test]
+fn a_commands_parameter_count_is_recorded_as_null() {
+    if python(&[]).is_none() {
+        return;
+    }
+    let d = case(&rows(300, 16, 5), "", "").run_spec().success();
+    let run = d.json("out/run.json");
+    let command = run["candidates"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["params"]["detector"] == "command")
+        .expect("a command candidate");
+    assert!(command["parameter-count"].is_null(), "{command}");
+}
