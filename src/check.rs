@@ -179,6 +179,15 @@ fn preview(plan: &Plan, data: &Dataset, missing_share: &[f64], report: &mut Chec
     report.counts = Some(by_name(splits.report.counts));
     report.requested = splits.report.requested.map(by_name);
     report.rows_with_duplicates = Some(splits.report.rows_with_duplicates);
+    if let spec::ThresholdPolicy::Conformal {
+        max_false_positive_rate: a,
+    } = plan.threshold
+    {
+        let normals = splits.report.counts[Part::Validation as usize].normal;
+        if let Err(e) = crate::conformal::check_level(a, normals) {
+            report.problems.push(e.to_string());
+        }
+    }
     for set in &plan.feature_sets {
         let fitted = match features::fit(set, data, &splits.train) {
             Ok(f) => f,

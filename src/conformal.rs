@@ -140,6 +140,24 @@ pub fn largest_rank_at_most(a: f64, n: usize) -> usize {
     m
 }
 
+/// Refuses a conformal level A that `validation_normals` rows cannot reach
+/// (A < 1/(n + 1): no rank k ≥ 1 has k/(n + 1) ≤ A), naming the count it
+/// needs; the one wording for `run` and `check`.
+pub fn check_level(a: f64, validation_normals: usize) -> crate::error::Result<()> {
+    if largest_rank_at_most(a, validation_normals) > 0 {
+        return Ok(());
+    }
+    Err(crate::error::Error::Protocol {
+        message: format!(
+            "threshold `conformal`: a false-alarm level of `{}` needs at least `{}` \
+             validation normal rows, and the validation split has `{validation_normals}`; \
+             enlarge the validation split or raise `max-false-positive-rate`",
+            crate::float::fmt_f64(a),
+            normals_needed(a)
+        ),
+    })
+}
+
 /// The fewest calibration rows n with 1 / (n + 1) ≤ a (a in (0, 1]).
 pub fn normals_needed(a: f64) -> usize {
     if a.is_nan() || a <= 0.0 {

@@ -565,18 +565,7 @@ fn execute(
         max_false_positive_rate: a,
     } = plan.threshold
     {
-        let n = val_y.iter().filter(|&&y| !y).count();
-        if crate::conformal::largest_rank_at_most(a, n) == 0 {
-            return Err(Error::Protocol {
-                message: format!(
-                    "threshold `conformal`: a false-alarm level of `{}` needs at least `{}` \
-                     validation normal rows, and the validation split has `{n}`; enlarge the \
-                     validation split or raise `max-false-positive-rate`",
-                    fmt_f64(a),
-                    crate::conformal::normals_needed(a)
-                ),
-            });
-        }
+        crate::conformal::check_level(a, val_y.iter().filter(|&&y| !y).count())?;
     }
     let beta = match plan.threshold {
         ThresholdPolicy::MaxFBeta { beta } => Some(beta),

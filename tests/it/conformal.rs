@@ -159,6 +159,27 @@ fn a_level_below_one_over_n_plus_one_is_refused_with_the_count_needed() {
     );
 }
 
+/// `check` reports in advance, with the run's own words, a conformal level
+/// that the planned validation split is too small for (and exits 1).
+#[test]
+fn check_reports_a_level_the_validation_split_cannot_reach() {
+    let r = rows(300, 20, 44);
+    let d = conformal_case(&r, "0.0001")
+        .args(["check", "spec.yaml"])
+        .exec();
+    assert_eq!(d.code, 1, "{}{}", d.stdout, d.stderr);
+    assert!(
+        d.stdout
+            .contains("needs at least `9999` validation normal rows, and the validation split has"),
+        "{}",
+        d.stdout
+    );
+    let ok = conformal_case(&r, "0.1")
+        .args(["check", "spec.yaml"])
+        .exec();
+    assert_eq!(ok.code, 0, "{}{}", ok.stdout, ok.stderr);
+}
+
 #[test]
 fn fdr_levels_outside_the_open_unit_interval_are_refused() {
     let r = rows(300, 20, 45);
