@@ -142,10 +142,9 @@ fn score_with_a_missing_data_file_is_a_file_problem() {
         .fails(4, &["nowhere.csv", "No such file"]);
 }
 
-/// A folder of Parquet parts with a dangling `.parquet` link: a file problem
-/// naming the link.
-#[test]
-fn dangling_parquet_link_in_a_folder_is_a_file_problem() {
+/// A folder of Parquet parts whose `part-1.parquet` is a link to `target`:
+/// the run is a file problem (exit 4) naming the link, with nothing written.
+fn parquet_link_is_a_file_problem(target: &str) {
     let case = Case::new()
         .file(
             "spec.yaml",
@@ -153,24 +152,21 @@ fn dangling_parquet_link_in_a_folder_is_a_file_problem() {
         )
         .keys();
     crate::sources::parquet(&case.path("parts/part-0.parquet"), &rows(300, 10, 3), false);
-    std::os::unix::fs::symlink("gone.parquet", case.path("parts/part-1.parquet")).unwrap();
+    std::os::unix::fs::symlink(target, case.path("parts/part-1.parquet")).unwrap();
     let d = case.run_spec().fails(4, &["part-1.parquet"]);
     assert!(!d.dir.join("out").exists());
 }
 
-/// A `.parquet` link that points at itself: a file problem naming it.
+/// A dangling `.parquet` link in a folder of parts.
+#[test]
+fn dangling_parquet_link_in_a_folder_is_a_file_problem() {
+    parquet_link_is_a_file_problem("gone.parquet");
+}
+
+/// A `.parquet` link that points at itself.
 #[test]
 fn looping_parquet_link_in_a_folder_is_a_file_problem() {
-    let case = Case::new()
-        .file(
-            "spec.yaml",
-            spec(&["a", "b", "c"], PROTOCOL).replace("path: data.csv", "path: parts"),
-        )
-        .keys();
-    crate::sources::parquet(&case.path("parts/part-0.parquet"), &rows(300, 10, 3), false);
-    std::os::unix::fs::symlink("part-1.parquet", case.path("parts/part-1.parquet")).unwrap();
-    let d = case.run_spec().fails(4, &["part-1.parquet"]);
-    assert!(!d.dir.join("out").exists());
+    parquet_link_is_a_file_problem("part-1.parquet");
 }
 
 /// A data file without read permission is a file problem (exit 4). Skipped
