@@ -153,6 +153,15 @@ pub enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Start a process of a Ballista cluster that runs anomark's engine functions:
+    /// the scheduler, or an executor, with anomark's functions registered.
+    #[cfg(feature = "cluster")]
+    #[command(after_help = example(EX_CLUSTER))]
+    Cluster {
+        /// Which process.
+        #[command(subcommand)]
+        role: ClusterRole,
+    },
     /// Print a shell completion script.
     #[command(after_help = example(EX_COMPLETIONS))]
     Completions {
@@ -166,6 +175,50 @@ pub enum Command {
         /// directory (created if missing; refused if it already holds a page).
         #[arg(long, value_name = "DIR")]
         out: Option<PathBuf>,
+    },
+}
+
+/// The processes of a cluster.
+#[cfg(feature = "cluster")]
+#[derive(Debug, Clone, Subcommand)]
+pub enum ClusterRole {
+    /// The scheduler: plans each job and hands its tasks to the executors.
+    #[command(after_help = example(EX_CLUSTER_SCHEDULER))]
+    Scheduler {
+        /// The address to listen on.
+        #[arg(long, value_name = "HOST:PORT")]
+        bind: String,
+        /// Seconds without a heartbeat (executors send one every 2 s) after which an
+        /// executor is taken as lost and its tasks run elsewhere, 4 to 3600.
+        #[arg(long, value_name = "SECONDS", default_value_t = 30,
+              value_parser = clap::value_parser!(u64).range(4..=3600))]
+        executor_timeout: u64,
+        /// Report this version instead of anomark's own (tests only).
+        #[arg(long, hide = true)]
+        report_version: Option<String>,
+    },
+    /// An executor: runs tasks, keeps shuffle files in its work directory.
+    #[command(after_help = example(EX_CLUSTER))]
+    Executor {
+        /// The scheduler's address.
+        #[arg(long, value_name = "HOST:PORT")]
+        scheduler: String,
+        /// The address to listen on; the next port serves the executor's gRPC.
+        #[arg(long, value_name = "HOST:PORT")]
+        bind: String,
+        /// The directory for shuffle files (default: a new temporary directory).
+        #[arg(long, value_name = "DIR")]
+        work_dir: Option<PathBuf>,
+        /// The executor's memory pool, such as `4GiB` or `512MiB` (default: no limit);
+        /// operators that exceed it spill to the work directory.
+        #[arg(long, value_name = "SIZE", value_parser = memory_size)]
+        memory_limit: Option<u64>,
+        /// Report this version instead of anomark's own (tests only).
+        #[arg(long, hide = true)]
+        report_version: Option<String>,
+        /// Register none of anomark's functions (tests only).
+        #[arg(long, hide = true)]
+        without_functions: bool,
     },
 }
 
@@ -191,7 +244,31 @@ pub const EX_COMPLETIONS: &str =
 /// The example closing `anomark man --help` (also in the README).
 pub const EX_MAN: &str = "anomark man --out man/man1";
 
+/// The example closing `anomark cluster --help` and `anomark cluster
+/// executor --help` (also in the README).
+pub const EX_CLUSTER: &str =
+    "anomark cluster executor --scheduler 10.0.0.5:50050 --bind 10.0.0.6:50051 --work-dir shuffle";
+/// The example closing `anomark cluster scheduler --help` (also in the README).
+pub const EX_CLUSTER_SCHEDULER: &str = "anomark cluster scheduler --bind 0.0.0.0:50050";
+
 /// Every command's closing example, by command name.
+#[cfg(feature = "cluster")]
+pub const EXAMPLES: [(&str, &str); 11] = [
+    ("init", EX_INIT),
+    ("run", EX_RUN),
+    ("score", EX_SCORE),
+    ("check", EX_CHECK),
+    ("verify", EX_VERIFY),
+    ("keygen", EX_KEYGEN),
+    ("schema", EX_SCHEMA),
+    ("diff", EX_DIFF),
+    ("completions", EX_COMPLETIONS),
+    ("man", EX_MAN),
+    ("cluster", EX_CLUSTER),
+];
+
+/// Every command's closing example, by command name.
+#[cfg(not(feature = "cluster"))]
 pub const EXAMPLES: [(&str, &str); 10] = [
     ("init", EX_INIT),
     ("run", EX_RUN),
@@ -291,8 +368,35 @@ impl From<Args> for Request {
             Command::Keygen { private, public } => Request::Keygen { private, public },
             Command::Schema => Request::Schema,
             Command::Diff { old, new, json } => Request::Diff { old, new, json },
+            #[cfg(feature = "cluster")]
+            Command::Cluster { role } => Request::Cluster { role },
         }
     }
+}
+
+/// A memory size: a whole number of bytes, or with a unit `KiB`, `MiB`,
+/// `GiB`, `TiB` (powers of 1,024), at most 1 PiB.
+pub fn memory_size(s: &str) -> Result<u64, String> {
+    let t = s.trim();
+    let split = t.find(|c: char| !c.is_ascii_digit()).unwrap_or(t.len());
+    let (digits, unit) = t.split_at(split);
+    let shift = match unit.trim() {
+        "" | "B" => 0,
+        "KiB" => 10,
+        "MiB" => 20,
+        "GiB" => 30,
+        "TiB" => 40,
+        _ => u32::MAX,
+    };
+    let bad =
+        || format!("must be a size such as `512MiB` or `4GiB` (at most 1024TiB), found `{s}`");
+    let n: u64 = digits.parse().map_err(|_| bad())?;
+    if shift == u32::MAX {
+        return Err(bad());
+    }
+    n.checked_mul(1u64 << shift)
+        .filter(|&b| b > 0 && b <= 1 << 50)
+        .ok_or_else(bad)
 }
 
 /// `--fdr`: a number strictly between 0 and 1.

@@ -58,6 +58,10 @@ pub mod exit {
     pub const DATA: i32 = 3;
     /// A file could not be read or written, or a key is unusable.
     pub const IO: i32 = 4;
+    /// The engine (DataFusion in process, or a cluster) failed or refused:
+    /// unreachable, another anomark version, a failed task, a process that
+    /// could not start.
+    pub const ENGINE: i32 = 5;
     /// A bug in anomark.
     pub const INTERNAL: i32 = 70;
 }
@@ -188,6 +192,11 @@ pub enum Error {
         /// What went wrong there.
         source: Box<Error>,
     },
+    /// The engine running the protocol failed or refused.
+    Engine {
+        /// What was being done and the engine's reason.
+        message: String,
+    },
     /// A bug.
     Internal {
         /// What went wrong.
@@ -211,6 +220,7 @@ impl Error {
             | Error::Key { .. }
             | Error::Template { .. } => exit::IO,
             Error::Verify { .. } => exit::VERIFY_FAILED,
+            Error::Engine { .. } => exit::ENGINE,
             Error::InFeatureSet { source, .. } => source.code(),
             Error::Internal { .. } => exit::INTERNAL,
         }
@@ -379,6 +389,7 @@ impl fmt::Display for Error {
                 }
                 Ok(())
             }
+            Error::Engine { message } => write!(f, "engine: {message}"),
             Error::Internal { message } => write!(
                 f,
                 "internal error: {message}; this is a bug in anomark, please report it \

@@ -25,6 +25,8 @@ pub mod decision;
 pub mod detect;
 pub mod diff;
 pub mod drift;
+#[cfg(feature = "cluster")]
+pub mod engine;
 pub mod error;
 pub mod features;
 pub mod float;
@@ -50,6 +52,12 @@ use std::path::PathBuf;
 /// One thing the user asked for.
 #[derive(Debug, Clone)]
 pub enum Request {
+    /// Start a process of a cluster.
+    #[cfg(feature = "cluster")]
+    Cluster {
+        /// Which process, and how.
+        role: cli::ClusterRole,
+    },
     /// Write a first spec for a data file.
     Init {
         /// What to read and where to write.
@@ -323,6 +331,11 @@ pub fn run(request: &Request) -> Result<Outcome> {
             )
         }
         Request::Schema => spec::schema_json(),
+        #[cfg(feature = "cluster")]
+        Request::Cluster { role } => {
+            cluster(role)?;
+            String::new()
+        }
         Request::Diff { old, new, json } => {
             let d = diff::diff(old, new)?;
             if *json {
@@ -340,4 +353,37 @@ pub fn run(request: &Request) -> Result<Outcome> {
         code,
         warnings,
     })
+}
+
+/// Runs a process of a cluster until it is stopped.
+#[cfg(feature = "cluster")]
+fn cluster(role: &cli::ClusterRole) -> Result<()> {
+    use engine::cluster::{executor, scheduler, ExecutorOptions, SchedulerOptions};
+    let own = || engine::version().to_string();
+    match role {
+        cli::ClusterRole::Scheduler {
+            bind,
+            executor_timeout,
+            report_version,
+        } => scheduler(&SchedulerOptions {
+            bind: bind.clone(),
+            reported_version: report_version.clone().unwrap_or_else(own),
+            executor_timeout_seconds: *executor_timeout,
+        }),
+        cli::ClusterRole::Executor {
+            scheduler,
+            bind,
+            work_dir,
+            memory_limit,
+            report_version,
+            without_functions,
+        } => executor(&ExecutorOptions {
+            scheduler: scheduler.clone(),
+            bind: bind.clone(),
+            work_dir: work_dir.clone(),
+            memory_limit: *memory_limit,
+            without_functions: *without_functions,
+            reported_version: report_version.clone().unwrap_or_else(own),
+        }),
+    }
 }

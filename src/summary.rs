@@ -188,6 +188,41 @@ impl Summary {
         s
     }
 
+    /// The summary on the cut points `values` (from high to low, distinct)
+    /// of rows counted elsewhere: per (code, is_anomaly), the rows, their
+    /// lowest and their highest score, where code `2j + 1` is cut point `j`
+    /// and `2j` the gap above it (an engine's `GROUP BY`). `None` for a
+    /// code beyond the cut points. Rows on a cut point count as anomalies or
+    /// tied normal rows, rows in a gap in its count and extremes, as
+    /// [`Summary::with_cut_points`] counts them.
+    pub fn from_counts(values: Vec<f64>, counts: &[(i64, bool, u64, f64, f64)]) -> Option<Self> {
+        let m = values.len();
+        let mut s = Summary {
+            values,
+            pos: vec![0; m],
+            tied: vec![0; m],
+            gaps: vec![Gap::EMPTY; m + 1],
+        };
+        for &(code, anomaly, n, lowest, highest) in counts {
+            let j = usize::try_from(code / 2).ok()?;
+            if code % 2 == 1 {
+                let slot = if anomaly {
+                    s.pos.get_mut(j)?
+                } else {
+                    s.tied.get_mut(j)?
+                };
+                *slot += n;
+            } else {
+                s.gaps.get_mut(j)?.merge(&Gap {
+                    count: n,
+                    lowest,
+                    highest,
+                });
+            }
+        }
+        Some(s)
+    }
+
     /// Where a score falls: the index of its cut point and `true`, or of
     /// the gap holding it and `false`.
     #[cfg(test)]

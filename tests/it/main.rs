@@ -7,6 +7,8 @@ mod browser;
 mod card;
 mod check;
 mod cli;
+#[cfg(feature = "cluster")]
+mod cluster;
 mod command;
 mod conformal;
 mod detectors;

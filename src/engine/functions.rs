@@ -1,0 +1,765 @@
+//! anomark's protocol as DataFusion functions: every number an engine
+//! computes is computed here by the library's own code (the row hash of
+//! `audit::hash`, the rank key of `split`, the moments of `stream`, the
+//! models of `detect`, the summary of `summary`), so each engine's result is
+//! the in-process result to the bit.
+//!
+//! Values that a function needs from the client (the seed and cut keys of a
+//! split, a model's fitted parameters, the cut points of a summary) travel in
+//! the plan as literal arguments, so executors hold no state.
+
+use std::sync::Arc;
+
+use datafusion::arrow::array::{
+    Array, ArrayRef, BinaryArray, BooleanArray, FixedSizeBinaryArray, FixedSizeBinaryBuilder,
+    Float64Array, Int64Array, Int8Array,
+};
+use datafusion::arrow::datatypes::DataType;
+use datafusion::common::{DataFusionError, Result, ScalarValue};
+use datafusion::logical_expr::function::AccumulatorArgs;
+use datafusion::logical_expr::{
+    Accumulator, AggregateUDF, AggregateUDFImpl, ColumnarValue, ScalarFunctionArgs, ScalarUDF,
+    ScalarUDFImpl, Signature, Volatility,
+};
+
+use crate::audit::hash::ContentHash;
+use crate::spec::Seed;
+use crate::stream::Moments;
+
+/// The row content hash: `anomark_row_hash(is_anomaly, x1, …, xd)`, 32 bytes.
+pub const ROW_HASH: &str = "anomark_row_hash";
+/// The leading 16 bits of a 32-byte key as an integer:
+/// `anomark_prefix16(key)` (a content-hash bucket, or a rank-key bucket).
+pub const PREFIX16: &str = "anomark_prefix16";
+/// The protocol split's rank key: `anomark_rank_key(seed_bytes, hash)`.
+pub const RANK_KEY: &str = "anomark_rank_key";
+/// The protocol split: `anomark_split(cuts, hash, is_anomaly)`, the part
+/// index (0 train, 1 validation, 2 test).
+pub const SPLIT: &str = "anomark_split";
+/// A fitted model's score: `anomark_score(model, x1, …, xd)`.
+pub const SCORE: &str = "anomark_score";
+/// The version guard: `anomark_version_check(client_version)` is true on a
+/// process of the same anomark version and an error naming both otherwise.
+pub const VERSION_CHECK: &str = "anomark_version_check";
+/// One content-hash bucket's moments: `anomark_bucket_moments(hash, x1, …, xd)`.
+pub const BUCKET_MOMENTS: &str = "anomark_bucket_moments";
+/// One content-hash bucket's hashes, sorted: `anomark_bucket_hashes(hash)`.
+pub const BUCKET_HASHES: &str = "anomark_bucket_hashes";
+/// A score's place among a summary's cut points:
+/// `anomark_interval(cut_points, score)` ([`interval_code`]).
+pub const INTERVAL: &str = "anomark_interval";
+/// A score's `total_cmp` order as an integer: `anomark_order_key(score)`.
+pub const ORDER_KEY: &str = "anomark_order_key";
+
+/// The words an engine error carries when a process of another anomark
+/// version refused a task (the client looks for them to name the mismatch).
+pub const VERSION_MISMATCH: &str = "anomark version mismatch";
+
+/// An execution error in DataFusion's type.
+fn fail(message: impl Into<String>) -> DataFusionError {
+    DataFusionError::Execution(message.into())
+}
+
+fn f64s<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a Float64Array> {
+    let f = a
+        .as_any()
+        .downcast_ref::<Float64Array>()
+        .ok_or_else(|| fail(format!("{what}: want Float64, got {}", a.data_type())))?;
+    if f.null_count() > 0 {
+        return Err(fail(format!("{what}: a missing value")));
+    }
+    Ok(f)
+}
+
+fn bools<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a BooleanArray> {
+    let b = a
+        .as_any()
+        .downcast_ref::<BooleanArray>()
+        .ok_or_else(|| fail(format!("{what}: want Boolean, got {}", a.data_type())))?;
+    if b.null_count() > 0 {
+        return Err(fail(format!("{what}: a missing value")));
+    }
+    Ok(b)
+}
+
+fn keys<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a FixedSizeBinaryArray> {
+    let k = a
+        .as_any()
+        .downcast_ref::<FixedSizeBinaryArray>()
+        .ok_or_else(|| fail(format!("{what}: want 32 bytes, got {}", a.data_type())))?;
+    if k.value_length() != 32 || k.null_count() > 0 {
+        return Err(fail(format!("{what}: want 32 bytes, not null")));
+    }
+    Ok(k)
+}
+
+fn binaries<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a BinaryArray> {
+    a.as_any()
+        .downcast_ref::<BinaryArray>()
+        .ok_or_else(|| fail(format!("{what}: want Binary, got {}", a.data_type())))
+}
+
+/// A literal argument's bytes.
+fn literal_bytes<'a>(v: &'a ColumnarValue, what: &str) -> Result<&'a [u8]> {
+    match v {
+        ColumnarValue::Scalar(ScalarValue::Binary(Some(b))) => Ok(b),
+        _ => Err(fail(format!("{what}: want a Binary literal"))),
+    }
+}
+
+/// The little-endian bytes of floats.
+pub(crate) fn le_bytes(v: &[f64]) -> Vec<u8> {
+    v.iter().flat_map(|x| x.to_bits().to_le_bytes()).collect()
+}
+
+/// Floats from little-endian bytes.
+pub(crate) fn from_le_bytes(b: &[u8]) -> Vec<f64> {
+    b.chunks_exact(8)
+        .map(|c| f64::from_bits(u64::from_le_bytes(c.try_into().expect("8 bytes"))))
+        .collect()
+}
+
+/// The rows of `d` feature columns, row-major.
+fn row_major(cols: &[&Float64Array], n: usize) -> ndarray::Array2<f64> {
+    let d = cols.len();
+    let mut x = ndarray::Array2::zeros((n, d));
+    for (j, c) in cols.iter().enumerate() {
+        for (i, v) in c.values().iter().enumerate() {
+            x[[i, j]] = *v;
+        }
+    }
+    x
+}
+
+macro_rules! scalar_udf_boilerplate {
+    ($name:expr) => {
+        fn name(&self) -> &str {
+            $name
+        }
+        fn signature(&self) -> &Signature {
+            &self.signature
+        }
+    };
+}
+
+/// `anomark_row_hash`: `audit::hash::rows` on the batch.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct RowHash {
+    signature: Signature,
+}
+
+impl ScalarUDFImpl for RowHash {
+    scalar_udf_boilerplate!(ROW_HASH);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::FixedSizeBinary(32))
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let n = args.number_rows;
+        let arrays = ColumnarValue::values_to_arrays(&args.args)?;
+        let label = bools(&arrays[0], ROW_HASH)?;
+        let cols: Vec<&Float64Array> = arrays[1..]
+            .iter()
+            .map(|a| f64s(a, ROW_HASH))
+            .collect::<Result<_>>()?;
+        let x = row_major(&cols, n);
+        let is_anomaly: Vec<bool> = (0..n).map(|i| label.value(i)).collect();
+        let hashes = crate::audit::hash::rows(&x, &is_anomaly);
+        let mut b = FixedSizeBinaryBuilder::with_capacity(n, 32);
+        for h in &hashes {
+            b.append_value(h.0)?;
+        }
+        Ok(ColumnarValue::Array(Arc::new(b.finish())))
+    }
+}
+
+/// `anomark_prefix16`: the leading two bytes, big-endian.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct Prefix16 {
+    signature: Signature,
+}
+
+/// A content hash's bucket: its leading 16 bits, big-endian.
+pub fn bucket_of(h: &[u8; 32]) -> u16 {
+    u16::from_be_bytes([h[0], h[1]])
+}
+
+impl ScalarUDFImpl for Prefix16 {
+    scalar_udf_boilerplate!(PREFIX16);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::Int64)
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let arrays = ColumnarValue::values_to_arrays(&args.args)?;
+        let k = keys(&arrays[0], PREFIX16)?;
+        let out: Int64Array = (0..args.number_rows)
+            .map(|i| {
+                let v = k.value(i);
+                Some(i64::from(u16::from_be_bytes([v[0], v[1]])))
+            })
+            .collect();
+        Ok(ColumnarValue::Array(Arc::new(out)))
+    }
+}
+
+/// `anomark_rank_key`: `split::rank_key` under the seed given as 8
+/// little-endian bytes.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct RankKey {
+    signature: Signature,
+}
+
+fn seed_of(b: &[u8]) -> Result<Seed> {
+    let bytes: [u8; 8] = b
+        .get(..8)
+        .and_then(|s| s.try_into().ok())
+        .ok_or_else(|| fail("a seed of 8 bytes"))?;
+    Ok(Seed(u64::from_le_bytes(bytes)))
+}
+
+impl ScalarUDFImpl for RankKey {
+    scalar_udf_boilerplate!(RANK_KEY);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::FixedSizeBinary(32))
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let seed = seed_of(literal_bytes(&args.args[0], RANK_KEY)?)?;
+        let arrays = ColumnarValue::values_to_arrays(&args.args[1..])?;
+        let h = keys(&arrays[0], RANK_KEY)?;
+        let mut b = FixedSizeBinaryBuilder::with_capacity(args.number_rows, 32);
+        for i in 0..args.number_rows {
+            let row: &[u8; 32] = h.value(i).try_into().expect("32 bytes");
+            b.append_value(crate::split::rank_key(seed, row))?;
+        }
+        Ok(ColumnarValue::Array(Arc::new(b.finish())))
+    }
+}
+
+/// Where a protocol split cuts each label's ranking: the seed, and for each
+/// cut the first (rank key, content hash) of the part after it (`None`: the
+/// cut lies after every content, so the part after it is empty).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct SplitCuts {
+    /// The seed of the ranking.
+    pub seed: Seed,
+    /// Normal rows: the starts of validation and of test.
+    pub normal: [Option<[u8; 64]>; 2],
+    /// Anomalies: the start of test (validation starts at the first).
+    pub anomaly: Option<[u8; 64]>,
+}
+
+impl SplitCuts {
+    /// The literal that carries the cuts in a plan.
+    pub fn to_bytes(&self) -> Vec<u8> {
+        let mut v = self.seed.0.to_le_bytes().to_vec();
+        for c in self.normal.iter().chain(std::iter::once(&self.anomaly)) {
+            match c {
+                Some(k) => {
+                    v.push(1);
+                    v.extend_from_slice(k);
+                }
+                None => {
+                    v.push(0);
+                    v.extend_from_slice(&[0; 64]);
+                }
+            }
+        }
+        v
+    }
+
+    pub(crate) fn from_bytes(b: &[u8]) -> Result<SplitCuts> {
+        if b.len() != 8 + 3 * 65 {
+            return Err(fail("split cuts: wrong length"));
+        }
+        let seed = seed_of(b)?;
+        let cut = |i: usize| -> Option<[u8; 64]> {
+            let at = 8 + i * 65;
+            (b[at] == 1).then(|| b[at + 1..at + 65].try_into().expect("64 bytes"))
+        };
+        Ok(SplitCuts {
+            seed,
+            normal: [cut(0), cut(1)],
+            anomaly: cut(2),
+        })
+    }
+
+    /// The part (0 train, 1 validation, 2 test) of a content.
+    pub fn part(&self, hash: &[u8; 32], is_anomaly: bool) -> i8 {
+        let mut key = [0u8; 64];
+        key[..32].copy_from_slice(&crate::split::rank_key(self.seed, hash));
+        key[32..].copy_from_slice(hash);
+        let before = |c: &Option<[u8; 64]>| c.is_none_or(|c| key < c);
+        if is_anomaly {
+            if before(&self.anomaly) {
+                1
+            } else {
+                2
+            }
+        } else if before(&self.normal[0]) {
+            0
+        } else if before(&self.normal[1]) {
+            1
+        } else {
+            2
+        }
+    }
+}
+
+/// `anomark_split`: [`SplitCuts::part`] of each row.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct SplitUdf {
+    signature: Signature,
+}
+
+impl ScalarUDFImpl for SplitUdf {
+    scalar_udf_boilerplate!(SPLIT);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::Int8)
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let cuts = SplitCuts::from_bytes(literal_bytes(&args.args[0], SPLIT)?)?;
+        let arrays = ColumnarValue::values_to_arrays(&args.args[1..])?;
+        let h = keys(&arrays[0], SPLIT)?;
+        let a = bools(&arrays[1], SPLIT)?;
+        let out: Int8Array = (0..args.number_rows)
+            .map(|i| Some(cuts.part(h.value(i).try_into().expect("32 bytes"), a.value(i))))
+            .collect();
+        Ok(ColumnarValue::Array(Arc::new(out)))
+    }
+}
+
+/// A fitted Gaussian as the plan carries it to the scoring function.
+#[derive(Debug, Clone, PartialEq)]
+pub enum ModelParams {
+    /// Independent Gaussian: means and variances.
+    Independent {
+        /// Means.
+        mean: Vec<f64>,
+        /// Variances.
+        variance: Vec<f64>,
+    },
+    /// Multivariate Gaussian: mean and covariance (row-major).
+    Multivariate {
+        /// Mean.
+        mean: Vec<f64>,
+        /// Covariance, row-major.
+        covariance: Vec<f64>,
+    },
+}
+
+impl ModelParams {
+    /// The literal that carries the model in a plan: a tag byte, the
+    /// dimension as a little-endian u32, then the floats' bits.
+    pub fn to_bytes(&self) -> Vec<u8> {
+        let (tag, a, b) = match self {
+            ModelParams::Independent { mean, variance } => (0u8, mean, variance),
+            ModelParams::Multivariate { mean, covariance } => (1u8, mean, covariance),
+        };
+        let mut v = vec![tag];
+        v.extend_from_slice(&(a.len() as u32).to_le_bytes());
+        v.extend(le_bytes(a));
+        v.extend(le_bytes(b));
+        v
+    }
+
+    pub(crate) fn from_bytes(b: &[u8]) -> Result<ModelParams> {
+        if b.len() < 5 {
+            return Err(fail("model: too short"));
+        }
+        let d = u32::from_le_bytes(b[1..5].try_into().expect("4 bytes")) as usize;
+        let f = from_le_bytes(&b[5..]);
+        let (mean, rest) = f.split_at(d.min(f.len()));
+        match b[0] {
+            0 if rest.len() == d => Ok(ModelParams::Independent {
+                mean: mean.to_vec(),
+                variance: rest.to_vec(),
+            }),
+            1 if rest.len() == d * d => Ok(ModelParams::Multivariate {
+                mean: mean.to_vec(),
+                covariance: rest.to_vec(),
+            }),
+            _ => Err(fail("model: malformed")),
+        }
+    }
+
+    /// The library's model of these parameters (`detect::restore_*`: the
+    /// scores of the fitted model, to the bit).
+    pub fn model(&self, features: &[String]) -> crate::Result<Box<dyn crate::detect::Model>> {
+        match self {
+            ModelParams::Independent { mean, variance } => Ok(crate::detect::restore_independent(
+                mean.clone(),
+                variance.clone(),
+            )),
+            ModelParams::Multivariate { mean, covariance } => {
+                crate::detect::restore_multivariate(mean.clone(), covariance.clone(), features)
+            }
+        }
+    }
+}
+
+/// `anomark_score`: the model's scores of the batch's rows.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct ScoreUdf {
+    signature: Signature,
+}
+
+impl ScalarUDFImpl for ScoreUdf {
+    scalar_udf_boilerplate!(SCORE);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::Float64)
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let params = ModelParams::from_bytes(literal_bytes(&args.args[0], SCORE)?)?;
+        let arrays = ColumnarValue::values_to_arrays(&args.args[1..])?;
+        let cols: Vec<&Float64Array> = arrays
+            .iter()
+            .map(|a| f64s(a, SCORE))
+            .collect::<Result<_>>()?;
+        let names: Vec<String> = (0..cols.len()).map(|j| format!("x{j}")).collect();
+        let model = params
+            .model(&names)
+            .map_err(|e| fail(format!("{SCORE}: {e}")))?;
+        let x = row_major(&cols, args.number_rows);
+        let scores = crate::detect::score_in_blocks(model.as_ref(), x.view(), 8192);
+        Ok(ColumnarValue::Array(Arc::new(Float64Array::from(scores))))
+    }
+}
+
+/// `anomark_version_check`: refuses a client of another version.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct VersionCheck {
+    signature: Signature,
+    /// The version this process reports.
+    version: String,
+}
+
+impl VersionCheck {
+    fn check(&self, client: &str, role: &str) -> Result<()> {
+        if client != self.version {
+            return Err(fail(format!(
+                "{VERSION_MISMATCH}: {role} runs anomark {}, the client {client}",
+                self.version
+            )));
+        }
+        Ok(())
+    }
+}
+
+impl ScalarUDFImpl for VersionCheck {
+    scalar_udf_boilerplate!(VERSION_CHECK);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::Boolean)
+    }
+    /// Every planner that optimises the plan (the client, and a cluster's
+    /// scheduler) checks the version here; the expression itself stays, so
+    /// every task checks again where it runs.
+    fn simplify(
+        &self,
+        args: Vec<datafusion::logical_expr::Expr>,
+        _info: &datafusion::logical_expr::simplify::SimplifyContext,
+    ) -> Result<datafusion::logical_expr::simplify::ExprSimplifyResult> {
+        use datafusion::logical_expr::Expr;
+        if let Some(Expr::Literal(v, _)) = args.first() {
+            if let Some(Some(v)) = v.try_as_str() {
+                self.check(v, "the planner (scheduler)")?;
+            }
+        }
+        Ok(datafusion::logical_expr::simplify::ExprSimplifyResult::Original(args))
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        match &args.args[0] {
+            ColumnarValue::Scalar(v) => match v.try_as_str() {
+                Some(Some(v)) => self.check(v, "an executor")?,
+                _ => return Err(fail(format!("{VERSION_CHECK}: want a text literal"))),
+            },
+            _ => return Err(fail(format!("{VERSION_CHECK}: want a text literal"))),
+        }
+        Ok(ColumnarValue::Scalar(ScalarValue::Boolean(Some(true))))
+    }
+}
+
+/// The moments of one content-hash bucket's rows given in any order: the
+/// rows in ascending content-hash order, two-pass (`stream::Moments::of_block`).
+/// Rows with equal hashes have equal content, so their order among
+/// themselves does not change the bits.
+pub fn bucket_moments(hashes: &[[u8; 32]], x: ndarray::ArrayView2<'_, f64>) -> Moments {
+    let mut order: Vec<usize> = (0..hashes.len()).collect();
+    order.sort_by(|&a, &b| hashes[a].cmp(&hashes[b]));
+    let sorted = x.select(ndarray::Axis(0), &order);
+    Moments::of_block(sorted.view())
+}
+
+/// Training moments from per-bucket moments: merged in ascending bucket
+/// order by the pairwise update (a left fold).
+pub fn merge_buckets<'a>(d: usize, buckets: impl IntoIterator<Item = &'a Moments>) -> Moments {
+    let mut m = Moments::empty(d);
+    for b in buckets {
+        m.merge(b);
+    }
+    m
+}
+
+/// The bytes of moments: n as u64, then the mean's and the co-moments' bits.
+pub fn moments_to_bytes(m: &Moments) -> Vec<u8> {
+    let mut v = m.n.to_le_bytes().to_vec();
+    v.extend(le_bytes(&m.mean));
+    v.extend(le_bytes(&m.m2));
+    v
+}
+
+/// Moments from [`moments_to_bytes`], of dimension `d`.
+pub fn moments_from_bytes(b: &[u8], d: usize) -> Result<Moments> {
+    if b.len() != 8 * (1 + d + d * d) {
+        return Err(fail("moments: wrong length"));
+    }
+    let n = u64::from_le_bytes(b[..8].try_into().expect("8 bytes"));
+    let f = from_le_bytes(&b[8..]);
+    Ok(Moments {
+        n,
+        mean: f[..d].to_vec(),
+        m2: f[d..].to_vec(),
+    })
+}
+
+/// The aggregate functions share one shape: a name, any arguments, Binary
+/// state and result.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct Aggregate {
+    name: &'static str,
+    signature: Signature,
+}
+
+impl AggregateUDFImpl for Aggregate {
+    fn name(&self) -> &str {
+        self.name
+    }
+    fn signature(&self) -> &Signature {
+        &self.signature
+    }
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::Binary)
+    }
+    fn accumulator(&self, args: AccumulatorArgs) -> Result<Box<dyn Accumulator>> {
+        let d = args.exprs.len().saturating_sub(1);
+        Ok(match self.name {
+            BUCKET_MOMENTS => Box::new(MomentsAcc {
+                d,
+                hashes: Vec::new(),
+                rows: Vec::new(),
+            }),
+            _ => Box::new(HashesAcc(Vec::new())),
+        })
+    }
+}
+
+/// Keeps a bucket's (hash, row) pairs; evaluates to [`bucket_moments`].
+#[derive(Debug)]
+struct MomentsAcc {
+    d: usize,
+    hashes: Vec<[u8; 32]>,
+    rows: Vec<f64>,
+}
+
+impl MomentsAcc {
+    fn pairs_bytes(&self) -> Vec<u8> {
+        let mut v = Vec::with_capacity(self.hashes.len() * (32 + 8 * self.d));
+        for (h, r) in self
+            .hashes
+            .iter()
+            .zip(self.rows.chunks_exact(self.d.max(1)))
+        {
+            v.extend_from_slice(h);
+            v.extend(le_bytes(r));
+        }
+        v
+    }
+}
+
+impl Accumulator for MomentsAcc {
+    fn update_batch(&mut self, values: &[ArrayRef]) -> Result<()> {
+        let h = keys(&values[0], BUCKET_MOMENTS)?;
+        let cols: Vec<&Float64Array> = values[1..]
+            .iter()
+            .map(|a| f64s(a, BUCKET_MOMENTS))
+            .collect::<Result<_>>()?;
+        for i in 0..h.len() {
+            self.hashes.push(h.value(i).try_into().expect("32 bytes"));
+            self.rows.extend(cols.iter().map(|c| c.value(i)));
+        }
+        Ok(())
+    }
+    fn evaluate(&mut self) -> Result<ScalarValue> {
+        let x = ndarray::ArrayView2::from_shape((self.hashes.len(), self.d), &self.rows)
+            .map_err(|e| fail(e.to_string()))?;
+        let m = bucket_moments(&self.hashes, x);
+        Ok(ScalarValue::Binary(Some(moments_to_bytes(&m))))
+    }
+    fn size(&self) -> usize {
+        std::mem::size_of_val(self) + self.hashes.capacity() * 32 + self.rows.capacity() * 8
+    }
+    fn state(&mut self) -> Result<Vec<ScalarValue>> {
+        Ok(vec![ScalarValue::Binary(Some(self.pairs_bytes()))])
+    }
+    fn merge_batch(&mut self, states: &[ArrayRef]) -> Result<()> {
+        let s = binaries(&states[0], BUCKET_MOMENTS)?;
+        let width = 32 + 8 * self.d;
+        for i in 0..s.len() {
+            if s.is_null(i) {
+                continue;
+            }
+            for pair in s.value(i).chunks_exact(width) {
+                self.hashes.push(pair[..32].try_into().expect("32 bytes"));
+                self.rows.extend(from_le_bytes(&pair[32..]));
+            }
+        }
+        Ok(())
+    }
+}
+
+/// Keeps a bucket's hashes; evaluates to them sorted, concatenated.
+#[derive(Debug)]
+struct HashesAcc(Vec<[u8; 32]>);
+
+impl HashesAcc {
+    fn bytes(&mut self) -> Vec<u8> {
+        self.0.sort_unstable();
+        self.0.concat()
+    }
+}
+
+impl Accumulator for HashesAcc {
+    fn update_batch(&mut self, values: &[ArrayRef]) -> Result<()> {
+        let h = keys(&values[0], BUCKET_HASHES)?;
+        self.0
+            .extend((0..h.len()).map(|i| -> [u8; 32] { h.value(i).try_into().expect("32") }));
+        Ok(())
+    }
+    fn evaluate(&mut self) -> Result<ScalarValue> {
+        Ok(ScalarValue::Binary(Some(self.bytes())))
+    }
+    fn size(&self) -> usize {
+        std::mem::size_of_val(self) + self.0.capacity() * 32
+    }
+    fn state(&mut self) -> Result<Vec<ScalarValue>> {
+        Ok(vec![ScalarValue::Binary(Some(self.bytes()))])
+    }
+    fn merge_batch(&mut self, states: &[ArrayRef]) -> Result<()> {
+        let s = binaries(&states[0], BUCKET_HASHES)?;
+        for i in 0..s.len() {
+            if s.is_valid(i) {
+                self.0.extend(
+                    s.value(i)
+                        .chunks_exact(32)
+                        .map(|c| -> [u8; 32] { c.try_into().expect("32") }),
+                );
+            }
+        }
+        Ok(())
+    }
+}
+
+/// The content hashes of [`BUCKET_HASHES`]' result.
+pub fn hashes_from_bytes(b: &[u8]) -> impl Iterator<Item = ContentHash> + '_ {
+    b.chunks_exact(32)
+        .map(|c| ContentHash(c.try_into().expect("32 bytes")))
+}
+
+/// A score's place in `f64::total_cmp` order as a signed integer (so an
+/// engine's `MIN` and `MAX` follow that order exactly); its own inverse.
+pub fn order_key(v: f64) -> i64 {
+    flip(v.to_bits() as i64)
+}
+
+/// The score of an [`order_key`].
+pub fn from_order_key(k: i64) -> f64 {
+    f64::from_bits(flip(k) as u64)
+}
+
+/// Flips the magnitude bits of a negative number: `total_cmp`'s order as
+/// signed integers; applied twice it gives the bits back.
+fn flip(b: i64) -> i64 {
+    b ^ ((((b >> 63) as u64) >> 1) as i64)
+}
+
+/// Where a score falls among the cut points of a summary (distinct, from
+/// high to low in `total_cmp` order), as `Summary::with_cut_points` places
+/// it: `2j + 1` on cut point `j`, `2j` inside gap `j` (below cut point
+/// `j − 1`, above cut point `j`).
+pub fn interval_code(cut_points: &[f64], v: f64) -> i64 {
+    let j = cut_points.partition_point(|c| c.total_cmp(&v).is_gt());
+    let on_cut = j < cut_points.len() && cut_points[j].total_cmp(&v).is_eq();
+    2 * j as i64 + i64::from(on_cut)
+}
+
+/// `anomark_interval(cut_points, s)`: [`interval_code`] of each score.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct Interval {
+    signature: Signature,
+}
+
+impl ScalarUDFImpl for Interval {
+    scalar_udf_boilerplate!(INTERVAL);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::Int64)
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let cuts = from_le_bytes(literal_bytes(&args.args[0], INTERVAL)?);
+        let arrays = ColumnarValue::values_to_arrays(&args.args[1..])?;
+        let s = f64s(&arrays[0], INTERVAL)?;
+        let out: Int64Array = s
+            .values()
+            .iter()
+            .map(|&v| Some(interval_code(&cuts, v)))
+            .collect();
+        Ok(ColumnarValue::Array(Arc::new(out)))
+    }
+}
+
+/// `anomark_order_key(s)`: [`order_key`] of each score.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct OrderKey {
+    signature: Signature,
+}
+
+impl ScalarUDFImpl for OrderKey {
+    scalar_udf_boilerplate!(ORDER_KEY);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::Int64)
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let arrays = ColumnarValue::values_to_arrays(&args.args)?;
+        let s = f64s(&arrays[0], ORDER_KEY)?;
+        let out: Int64Array = s.values().iter().map(|&v| Some(order_key(v))).collect();
+        Ok(ColumnarValue::Array(Arc::new(out)))
+    }
+}
+
+/// Every scalar function, the version guard reporting `version`.
+pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
+    let any = || Signature::variadic_any(Volatility::Immutable);
+    vec![
+        Arc::new(ScalarUDF::from(RowHash { signature: any() })),
+        Arc::new(ScalarUDF::from(Prefix16 { signature: any() })),
+        Arc::new(ScalarUDF::from(RankKey { signature: any() })),
+        Arc::new(ScalarUDF::from(SplitUdf { signature: any() })),
+        Arc::new(ScalarUDF::from(ScoreUdf { signature: any() })),
+        Arc::new(ScalarUDF::from(Interval { signature: any() })),
+        Arc::new(ScalarUDF::from(OrderKey { signature: any() })),
+        Arc::new(ScalarUDF::from(VersionCheck {
+            signature: Signature::variadic_any(Volatility::Volatile),
+            version: version.to_string(),
+        })),
+    ]
+}
+
+/// Every aggregate function.
+pub fn aggregate_functions() -> Vec<Arc<AggregateUDF>> {
+    [BUCKET_MOMENTS, BUCKET_HASHES]
+        .into_iter()
+        .map(|name| {
+            Arc::new(AggregateUDF::from(Aggregate {
+                name,
+                signature: Signature::variadic_any(Volatility::Immutable),
+            }))
+        })
+        .collect()
+}

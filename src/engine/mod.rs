@@ -1,0 +1,537 @@
+//! The protocol on Apache DataFusion, in-process or on a Ballista cluster
+//! (the `cluster` feature; README, "Running on a cluster").
+//!
+//! [`functions`] holds anomark's functions (the row content hash, the split
+//! rank key and the split, the moments and hashes of a content-hash bucket,
+//! scoring with the fitted parameters in the plan, the evaluation summary);
+//! this module holds the steps a client runs with them on any engine: the
+//! exact protocol split (a histogram pass over the rank keys' leading 16
+//! bits per label and one refinement pass over the buckets that hold a cut),
+//! the leakage check, the training moments and split manifests by
+//! content-hash bucket, and the summary. Every step returns what the
+//! in-process run computes, to the bit, whatever the partitions and batches.
+
+pub mod cluster;
+pub mod functions;
+
+use std::collections::BTreeMap;
+
+use datafusion::arrow::array::{Array, BooleanArray, FixedSizeBinaryArray, Int64Array, Int8Array};
+use datafusion::arrow::record_batch::RecordBatch;
+use datafusion::execution::session_state::{SessionState, SessionStateBuilder};
+use datafusion::execution::FunctionRegistry;
+use datafusion::prelude::{SessionConfig, SessionContext};
+
+use crate::audit::hash::ContentHash;
+use crate::error::{Error, Result};
+use crate::spec::{Fractions, Seed};
+use crate::split::Counts;
+use crate::stream::Moments;
+use crate::summary::Summary;
+use functions::SplitCuts;
+
+/// The anomark version every process of a session must run.
+pub fn version() -> &'static str {
+    env!("CARGO_PKG_VERSION")
+}
+
+/// An engine failure as anomark's error, with what was being done.
+pub fn engine_error(doing: &str, e: impl std::fmt::Display) -> Error {
+    let text = e.to_string();
+    if let Some(at) = text.find(functions::VERSION_MISMATCH) {
+        let rest = &text[at..];
+        let end = rest.find(['\n', '"']).unwrap_or(rest.len());
+        return Error::Engine {
+            message: format!("{doing}: {}", &rest[..end]),
+        };
+    }
+    Error::Engine {
+        message: format!("{doing}: {}", text.trim_end_matches('.')),
+    }
+}
+
+/// Registers anomark's functions on a session state.
+pub fn register_state(state: &mut SessionState, version: &str) -> Result<()> {
+    for f in functions::scalar_functions(version) {
+        state
+            .register_udf(f)
+            .map_err(|e| engine_error("registering anomark's functions", e))?;
+    }
+    for f in functions::aggregate_functions() {
+        state
+            .register_udaf(f)
+            .map_err(|e| engine_error("registering anomark's functions", e))?;
+    }
+    Ok(())
+}
+
+/// Registers anomark's functions on a context (after Ballista has set its
+/// session up: it replaces a function list set earlier).
+pub fn register(ctx: &SessionContext, version: &str) {
+    for f in functions::scalar_functions(version) {
+        ctx.register_udf(f.as_ref().clone());
+    }
+    for f in functions::aggregate_functions() {
+        ctx.register_udaf(f.as_ref().clone());
+    }
+}
+
+/// A session state with anomark's functions.
+pub fn state_with(config: SessionConfig, version: &str) -> Result<SessionState> {
+    let mut state = SessionStateBuilder::new()
+        .with_config(config)
+        .with_default_features()
+        .build();
+    register_state(&mut state, version)?;
+    Ok(state)
+}
+
+/// Runs a query and collects its batches.
+pub async fn collect(ctx: &SessionContext, doing: &str, sql: &str) -> Result<Vec<RecordBatch>> {
+    ctx.sql(sql)
+        .await
+        .map_err(|e| engine_error(doing, e))?
+        .collect()
+        .await
+        .map_err(|e| engine_error(doing, e))
+}
+
+/// A column of a result batch as a concrete array.
+fn column<A: 'static>(b: &RecordBatch, j: usize) -> Result<&A> {
+    b.column(j)
+        .as_any()
+        .downcast_ref::<A>()
+        .ok_or_else(|| Error::internal(format!("engine result column {j} of an unexpected type")))
+}
+
+/// A Binary literal in SQL.
+pub fn sql_bytes(b: &[u8]) -> String {
+    format!("X'{}'", crate::audit::hash::hex(b))
+}
+
+/// A text literal in SQL.
+pub fn sql_text(s: &str) -> String {
+    format!("'{}'", s.replace('\'', "''"))
+}
+
+/// The fractions of one label's parts, as `split` cuts them (normal rows:
+/// train, validation, test; anomalies: validation, test).
+fn fractions_of(anomaly: bool, f: &Fractions) -> Vec<f64> {
+    if anomaly {
+        f.anomaly.to_vec()
+    } else {
+        f.normal.to_vec()
+    }
+}
+
+/// A distinct content in a split's ranking: its (rank key, content hash)
+/// and its number of rows.
+type RankedContent = ([u8; 64], i64);
+
+/// The exact protocol split of the rows of `table` (columns `h`, the
+/// content hash, and `a`, true for a known anomaly): within each label the
+/// contents ranked by (rank key, content hash) and cut at the exact counts
+/// of `split::exact_counts`, a content going whole to the part where its
+/// first row falls, as `split::assign` does.
+///
+/// One histogram pass counts the rows per label and per leading 16 bits of
+/// the rank key; each cut falls in one bucket (or at the start of the next
+/// bucket holding rows), and one refinement pass reads the distinct
+/// contents of those buckets only.
+pub async fn split_cuts(
+    ctx: &SessionContext,
+    table: &str,
+    seed: Seed,
+    fractions: &Fractions,
+) -> Result<SplitCuts> {
+    let doing = "splitting";
+    let seed_lit = sql_bytes(&seed.0.to_le_bytes());
+    let keyed = format!(
+        "SELECT a, h, {rk}({seed_lit}, h) AS k FROM {table}",
+        rk = functions::RANK_KEY
+    );
+    let hist = collect(
+        ctx,
+        doing,
+        &format!(
+            "SELECT a, {p}(k) AS p, COUNT(*) AS n FROM ({keyed}) GROUP BY a, p",
+            p = functions::PREFIX16
+        ),
+    )
+    .await?;
+    // Rows per bucket, by label, in bucket order.
+    let mut buckets: [BTreeMap<i64, i64>; 2] = Default::default();
+    for b in &hist {
+        let (a, p, n) = (
+            column::<BooleanArray>(b, 0)?,
+            column::<Int64Array>(b, 1)?,
+            column::<Int64Array>(b, 2)?,
+        );
+        for i in 0..b.num_rows() {
+            *buckets[usize::from(a.value(i))]
+                .entry(p.value(i))
+                .or_default() += n.value(i);
+        }
+    }
+    // Per label and cut: the bucket holding the cut position, the rows
+    // before that bucket, and the next bucket holding rows.
+    struct Cut {
+        position: i64,
+        bucket: i64,
+        before: i64,
+        next: Option<i64>,
+    }
+    let mut wanted: [Vec<Option<Cut>>; 2] = Default::default();
+    for anomaly in [false, true] {
+        let list = &buckets[usize::from(anomaly)];
+        let total: i64 = list.values().sum();
+        let fr = fractions_of(anomaly, fractions);
+        let counts = crate::split::exact_counts(total as usize, &fr);
+        let mut position = 0i64;
+        for c in &counts[..counts.len() - 1] {
+            position += *c as i64;
+            let mut before = 0;
+            let mut found = None;
+            let mut iter = list.iter().peekable();
+            while let Some((&p, &n)) = iter.next() {
+                if before + n > position {
+                    found = Some(Cut {
+                        position,
+                        bucket: p,
+                        before,
+                        next: iter.peek().map(|(&q, _)| q),
+                    });
+                    break;
+                }
+                before += n;
+            }
+            wanted[usize::from(anomaly)].push(found);
+        }
+    }
+    // One refinement pass: the distinct contents of the buckets in question.
+    let mut sets: [Vec<i64>; 2] = Default::default();
+    for (l, cuts) in wanted.iter().enumerate() {
+        for c in cuts.iter().flatten() {
+            sets[l].push(c.bucket);
+            sets[l].extend(c.next);
+        }
+        sets[l].sort_unstable();
+        sets[l].dedup();
+    }
+    let mut contents: [BTreeMap<i64, Vec<RankedContent>>; 2] = Default::default();
+    if sets.iter().any(|s| !s.is_empty()) {
+        let cond = |anomaly: bool, s: &[i64]| -> String {
+            if s.is_empty() {
+                "FALSE".into()
+            } else {
+                let list: Vec<String> = s.iter().map(|p| p.to_string()).collect();
+                format!(
+                    "({}a AND {p}(k) IN ({}))",
+                    if anomaly { "" } else { "NOT " },
+                    list.join(", "),
+                    p = functions::PREFIX16
+                )
+            }
+        };
+        let rows = collect(
+            ctx,
+            doing,
+            &format!(
+                "SELECT a, k, h, COUNT(*) AS m FROM ({keyed}) WHERE {} OR {} GROUP BY a, k, h",
+                cond(false, &sets[0]),
+                cond(true, &sets[1])
+            ),
+        )
+        .await?;
+        for b in &rows {
+            let (a, k, h, m) = (
+                column::<BooleanArray>(b, 0)?,
+                column::<FixedSizeBinaryArray>(b, 1)?,
+                column::<FixedSizeBinaryArray>(b, 2)?,
+                column::<Int64Array>(b, 3)?,
+            );
+            for i in 0..b.num_rows() {
+                let mut key = [0u8; 64];
+                key[..32].copy_from_slice(k.value(i));
+                key[32..].copy_from_slice(h.value(i));
+                let p = i64::from(u16::from_be_bytes([key[0], key[1]]));
+                contents[usize::from(a.value(i))]
+                    .entry(p)
+                    .or_default()
+                    .push((key, m.value(i)));
+            }
+        }
+        for label in contents.iter_mut() {
+            for list in label.values_mut() {
+                list.sort_unstable();
+            }
+        }
+    }
+    // The first content whose first row is at or after each cut position.
+    let mut starts: [Vec<Option<[u8; 64]>>; 2] = Default::default();
+    for (l, cuts) in wanted.iter().enumerate() {
+        for c in cuts {
+            let start = match c {
+                None => None,
+                Some(c) => {
+                    let mut pos = c.before;
+                    let mut key = None;
+                    for (k, m) in contents[l].get(&c.bucket).into_iter().flatten() {
+                        if pos >= c.position {
+                            key = Some(*k);
+                            break;
+                        }
+                        pos += m;
+                    }
+                    key.or_else(|| {
+                        c.next
+                            .and_then(|q| contents[l].get(&q))
+                            .and_then(|v| v.first())
+                            .map(|(k, _)| *k)
+                    })
+                }
+            };
+            starts[l].push(start);
+        }
+    }
+    Ok(SplitCuts {
+        seed,
+        normal: [starts[0][0], starts[0][1]],
+        anomaly: starts[1][0],
+    })
+}
+
+/// Rows per split and label of `table` (columns `part`, the part index,
+/// and `a`).
+pub async fn counts(ctx: &SessionContext, table: &str) -> Result<[Counts; 3]> {
+    let rows = collect(
+        ctx,
+        "counting the splits",
+        &format!("SELECT part, a, COUNT(*) FROM {table} GROUP BY part, a"),
+    )
+    .await?;
+    let mut out = [Counts::default(); 3];
+    for b in &rows {
+        let (p, a, n) = (
+            column::<Int8Array>(b, 0)?,
+            column::<BooleanArray>(b, 1)?,
+            column::<Int64Array>(b, 2)?,
+        );
+        for i in 0..b.num_rows() {
+            let c = &mut out[p.value(i) as usize];
+            if a.value(i) {
+                c.anomaly += n.value(i) as usize;
+            } else {
+                c.normal += n.value(i) as usize;
+            }
+        }
+    }
+    Ok(out)
+}
+
+/// Contents that sit in more than one split of `table`: how many, and the
+/// first (in content-hash order) with the two lowest parts holding it.
+pub async fn leakage(
+    ctx: &SessionContext,
+    table: &str,
+) -> Result<Option<(usize, ContentHash, [i8; 2])>> {
+    let rows = collect(
+        ctx,
+        "checking for leakage",
+        &format!(
+            "SELECT h, MIN(part) AS lo, MAX(part) AS hi FROM {table} GROUP BY h \
+             HAVING MIN(part) <> MAX(part) ORDER BY h"
+        ),
+    )
+    .await?;
+    let total: usize = rows.iter().map(|b| b.num_rows()).sum();
+    let Some(b) = rows.iter().find(|b| b.num_rows() > 0) else {
+        return Ok(None);
+    };
+    let h = column::<FixedSizeBinaryArray>(b, 0)?;
+    let (lo, hi) = (column::<Int8Array>(b, 1)?, column::<Int8Array>(b, 2)?);
+    Ok(Some((
+        total,
+        ContentHash(h.value(0).try_into().expect("32 bytes")),
+        [lo.value(0), hi.value(0)],
+    )))
+}
+
+/// The training moments of the feature columns `features` of the rows of
+/// `table` in split `part`: each content-hash bucket's moments computed by
+/// the engine ([`functions::bucket_moments`]), merged in bucket order on
+/// the client ([`functions::merge_buckets`]).
+pub async fn moments(
+    ctx: &SessionContext,
+    table: &str,
+    part: i8,
+    features: &[String],
+) -> Result<Moments> {
+    let cols: Vec<String> = features.iter().map(|f| quote(f)).collect();
+    let rows = collect(
+        ctx,
+        "fitting on the training rows",
+        &format!(
+            "SELECT {p}(h) AS b, {m}(h, {cols}) AS mo FROM {table} WHERE part = {part} \
+             GROUP BY b ORDER BY b",
+            p = functions::PREFIX16,
+            m = functions::BUCKET_MOMENTS,
+            cols = cols.join(", ")
+        ),
+    )
+    .await?;
+    let d = features.len();
+    let mut buckets = Vec::new();
+    for b in &rows {
+        let m = column::<datafusion::arrow::array::BinaryArray>(b, 1)?;
+        for i in 0..b.num_rows() {
+            buckets.push(
+                functions::moments_from_bytes(m.value(i), d)
+                    .map_err(|e| engine_error("fitting on the training rows", e))?,
+            );
+        }
+    }
+    Ok(functions::merge_buckets(d, &buckets))
+}
+
+/// The manifest hash of split `part` of `table`: the rows' content hashes
+/// in ascending order (`audit::hash::manifest_of_sorted`), read bucket by
+/// bucket, each bucket sorted by the engine.
+pub async fn manifest(ctx: &SessionContext, table: &str, part: i8) -> Result<String> {
+    let rows = collect(
+        ctx,
+        "hashing the split manifest",
+        &format!(
+            "SELECT {p}(h) AS b, {hs}(h) AS hs FROM {table} WHERE part = {part} \
+             GROUP BY b ORDER BY b",
+            p = functions::PREFIX16,
+            hs = functions::BUCKET_HASHES
+        ),
+    )
+    .await?;
+    let mut all: Vec<&[u8]> = Vec::new();
+    for b in &rows {
+        let hs = column::<datafusion::arrow::array::BinaryArray>(b, 1)?;
+        for i in 0..b.num_rows() {
+            all.push(hs.value(i));
+        }
+    }
+    let hashes: Vec<ContentHash> = all
+        .into_iter()
+        .flat_map(functions::hashes_from_bytes)
+        .collect();
+    Ok(crate::audit::hash::manifest_of_sorted(hashes.iter()))
+}
+
+/// The evaluation summary of the scores in column `score` of the rows of
+/// `table` in split `part`, with the distinct anomaly scores and `extra`
+/// as cut points (`Summary::new`'s definition): one pass collects the
+/// anomaly scores, one counts the rows per cut point and gap (with each
+/// gap's lowest and highest score in `total_cmp` order).
+pub async fn summary(
+    ctx: &SessionContext,
+    table: &str,
+    score: &str,
+    part: i8,
+    extra: &[f64],
+) -> Result<Summary> {
+    let doing = "summarising the scores";
+    let rows = collect(
+        ctx,
+        doing,
+        &format!("SELECT {score} FROM {table} WHERE part = {part} AND a"),
+    )
+    .await?;
+    let mut anomalies = Vec::new();
+    for b in &rows {
+        let s = column::<datafusion::arrow::array::Float64Array>(b, 0)?;
+        anomalies.extend(s.values().iter().copied());
+    }
+    // The cut points exactly as `Summary::new` makes them.
+    let flags = vec![true; anomalies.len()];
+    let cut_points = Summary::new(&anomalies, &flags, extra)
+        .cut_points()
+        .to_vec();
+    let rows = collect(
+        ctx,
+        doing,
+        &format!(
+            "SELECT c, a, COUNT(*), MIN(k), MAX(k) FROM (SELECT {i}({cuts}, {score}) AS c, a, \
+             {o}({score}) AS k FROM {table} WHERE part = {part}) GROUP BY c, a",
+            i = functions::INTERVAL,
+            o = functions::ORDER_KEY,
+            cuts = sql_bytes(&functions::le_bytes(&cut_points))
+        ),
+    )
+    .await?;
+    let mut counts = Vec::new();
+    for b in &rows {
+        let (c, a, n, lo, hi) = (
+            column::<Int64Array>(b, 0)?,
+            column::<BooleanArray>(b, 1)?,
+            column::<Int64Array>(b, 2)?,
+            column::<Int64Array>(b, 3)?,
+            column::<Int64Array>(b, 4)?,
+        );
+        for i in 0..b.num_rows() {
+            counts.push((
+                c.value(i),
+                a.value(i),
+                n.value(i) as u64,
+                functions::from_order_key(lo.value(i)),
+                functions::from_order_key(hi.value(i)),
+            ));
+        }
+    }
+    Summary::from_counts(cut_points, &counts)
+        .ok_or_else(|| Error::internal("an interval code beyond the summary's cut points"))
+}
+
+/// Creates the view `name` over the table `source`: the column `a` (true
+/// for a known anomaly, the SQL expression `is_anomaly`), the content
+/// columns `columns`, and `h`, each row's content hash. Every batch read
+/// passes the version guard first, so no process of another anomark
+/// version computes anything of the run.
+pub async fn hashed_view(
+    ctx: &SessionContext,
+    name: &str,
+    source: &str,
+    is_anomaly: &str,
+    columns: &[String],
+) -> Result<()> {
+    let cols: Vec<String> = columns.iter().map(|c| quote(c)).collect();
+    let cols = cols.join(", ");
+    collect(
+        ctx,
+        "reading the data",
+        &format!(
+            "CREATE VIEW {name} AS SELECT a, {cols}, {hash}(a, {cols}) AS h FROM \
+             (SELECT {is_anomaly} AS a, {cols} FROM {source} WHERE {guard}({v}))",
+            hash = functions::ROW_HASH,
+            guard = functions::VERSION_CHECK,
+            v = sql_text(version()),
+        ),
+    )
+    .await?;
+    Ok(())
+}
+
+/// A column name quoted for SQL.
+pub fn quote(name: &str) -> String {
+    format!("\"{}\"", name.replace('"', "\"\""))
+}
+
+/// A session on one machine with `partitions` target partitions and
+/// batches of `batch` rows, anomark's functions registered.
+pub fn local_context(partitions: usize, batch: usize) -> Result<SessionContext> {
+    let config = SessionConfig::new()
+        .with_target_partitions(partitions)
+        .with_batch_size(batch);
+    Ok(SessionContext::new_with_state(state_with(
+        config,
+        version(),
+    )?))
+}
+
+#[cfg(test)]
+mod tests;

@@ -1,0 +1,482 @@
+//! Each engine step against the in-process computation, bit for bit, on
+//! generated rows with duplicates, in one partition and in several
+//! partitions with small batches.
+
+use std::collections::BTreeMap;
+use std::sync::Arc;
+
+use datafusion::arrow::array::{ArrayRef, BooleanArray, Float64Array, Int8Array};
+use datafusion::arrow::datatypes::{DataType, Field, Schema};
+use datafusion::arrow::record_batch::RecordBatch;
+use datafusion::datasource::MemTable;
+use ndarray::Array2;
+
+use super::*;
+use crate::audit::hash;
+use crate::audit::leak::Part;
+use crate::data::Dataset;
+use crate::spec::SplitPlan;
+
+const D: usize = 3;
+
+/// `n` rows of three features from a small range (so that identical rows
+/// occur), every seventh row an anomaly shifted away from the normals.
+fn rows(n: usize, seed: u64) -> (Array2<f64>, Vec<bool>) {
+    let mut state = seed.wrapping_mul(0x9E37_79B9_7F4A_7C15) | 1;
+    let mut next = move || {
+        state ^= state << 13;
+        state ^= state >> 7;
+        state ^= state << 17;
+        state
+    };
+    let mut x = Array2::zeros((n, D));
+    let mut a = vec![false; n];
+    for i in 0..n {
+        a[i] = i % 7 == 3;
+        for j in 0..D {
+            let v = (next() % 40) as f64 * 0.25 + j as f64;
+            x[[i, j]] = if a[i] { v + 20.0 } else { v };
+        }
+    }
+    (x, a)
+}
+
+/// A session over the rows in `partitions` partitions of batches of `batch`
+/// rows, with the view `hashed` (columns a, x0.., h).
+async fn session(x: &Array2<f64>, a: &[bool], partitions: usize, batch: usize) -> SessionContext {
+    let ctx = local_context(partitions, batch).unwrap();
+    let mut fields = vec![Field::new("a", DataType::Boolean, false)];
+    fields.extend((0..D).map(|j| Field::new(format!("x{j}"), DataType::Float64, false)));
+    let schema = Arc::new(Schema::new(fields));
+    let n = a.len();
+    let per = n.div_ceil(partitions);
+    let mut parts = Vec::new();
+    for p in 0..partitions {
+        let lo = (p * per).min(n);
+        let hi = ((p + 1) * per).min(n);
+        let mut batches = Vec::new();
+        let mut at = lo;
+        while at < hi {
+            let end = (at + batch).min(hi);
+            let mut cols: Vec<ArrayRef> = vec![Arc::new(BooleanArray::from(a[at..end].to_vec()))];
+            for j in 0..D {
+                cols.push(Arc::new(Float64Array::from(
+                    (at..end).map(|i| x[[i, j]]).collect::<Vec<_>>(),
+                )));
+            }
+            batches.push(RecordBatch::try_new(schema.clone(), cols).unwrap());
+            at = end;
+        }
+        parts.push(batches);
+    }
+    let table = MemTable::try_new(schema, parts).unwrap();
+    ctx.register_table("data", Arc::new(table)).unwrap();
+    ctx.sql(&format!(
+        "CREATE VIEW hashed AS SELECT a, x0, x1, x2, {}(a, x0, x1, x2) AS h FROM data",
+        functions::ROW_HASH
+    ))
+    .await
+    .unwrap();
+    ctx
+}
+
+fn runtime() -> tokio::runtime::Runtime {
+    tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .unwrap()
+}
+
+/// (partitions, batch rows) of every configuration tested.
+const CONFIGS: [(usize, usize); 3] = [(1, 8192), (4, 7), (3, 100)];
+
+fn fractions() -> Fractions {
+    Fractions {
+        normal: [0.6, 0.2, 0.2],
+        anomaly: [0.5, 0.5],
+    }
+}
+
+/// The in-process split (`split::assign`) of the rows: each row's part.
+fn in_process_parts(x: &Array2<f64>, a: &[bool], seed: u64) -> (Vec<i8>, crate::split::Splits) {
+    let data = Dataset::for_tests(x.clone(), a.to_vec(), BTreeMap::new());
+    let hashes = hash::rows(&data.x, &data.is_anomaly);
+    let plan = SplitPlan::Protocol {
+        seed: Seed(seed),
+        fractions: fractions(),
+    };
+    let splits = crate::split::assign(&plan, &data, &hashes).unwrap();
+    let mut part = vec![-1i8; a.len()];
+    for r in &splits.train {
+        part[r.0 as usize] = Part::Train as i8;
+    }
+    for r in &splits.validation {
+        part[r.0 as usize] = Part::Validation as i8;
+    }
+    let test: Vec<usize> = (0..a.len()).filter(|&i| part[i] < 0).collect();
+    for i in test {
+        part[i] = Part::Test as i8;
+    }
+    (part, splits)
+}
+
+/// Reads (a, x0.., h, part, score?) of the `assigned` view in row order.
+async fn read(ctx: &SessionContext, sql: &str) -> Vec<RecordBatch> {
+    collect(ctx, "test", sql).await.unwrap()
+}
+
+#[test]
+fn row_hash_equals_the_library() {
+    let (x, a) = rows(500, 1);
+    let want = hash::rows(&x, &a);
+    runtime().block_on(async {
+        for (p, b) in CONFIGS {
+            let ctx = session(&x, &a, p, b).await;
+            // Row order is kept by a scan of a memory table with no shuffle.
+            let out = read(&ctx, "SELECT h FROM hashed").await;
+            let mut got = Vec::new();
+            for b in &out {
+                let h = column::<FixedSizeBinaryArray>(b, 0).unwrap();
+                got.extend((0..b.num_rows()).map(|i| h.value(i).to_vec()));
+            }
+            let mut want: Vec<Vec<u8>> = want.iter().map(|h| h.0.to_vec()).collect();
+            got.sort();
+            want.sort();
+            assert_eq!(got, want, "{p} partitions, batches of {b}");
+        }
+    });
+}
+
+/// The steps of a run on the engine, for one configuration.
+struct Outcome {
+    parts: Vec<(Vec<u8>, i8)>,
+    counts: [Counts; 3],
+    leaks: Option<(usize, ContentHash, [i8; 2])>,
+    moments: Moments,
+    manifests: Vec<String>,
+    summary: Summary,
+}
+
+async fn run_steps(x: &Array2<f64>, a: &[bool], seed: u64, p: usize, b: usize) -> Outcome {
+    let ctx = session(x, a, p, b).await;
+    let cuts = split_cuts(&ctx, "hashed", Seed(seed), &fractions())
+        .await
+        .unwrap();
+    ctx.sql(&format!(
+        "CREATE VIEW assigned AS SELECT *, {}({}, h, a) AS part FROM hashed",
+        functions::SPLIT,
+        sql_bytes(&cuts.to_bytes())
+    ))
+    .await
+    .unwrap();
+    let mut parts = Vec::new();
+    for batch in read(&ctx, "SELECT h, part FROM assigned").await {
+        let h = column::<FixedSizeBinaryArray>(&batch, 0).unwrap();
+        let part = column::<Int8Array>(&batch, 1).unwrap();
+        parts.extend((0..batch.num_rows()).map(|i| (h.value(i).to_vec(), part.value(i))));
+    }
+    parts.sort();
+    let names: Vec<String> = (0..D).map(|j| format!("x{j}")).collect();
+    let moments = moments(&ctx, "assigned", 0, &names).await.unwrap();
+    let mut manifests = Vec::new();
+    for part in 0..3 {
+        manifests.push(manifest(&ctx, "assigned", part).await.unwrap());
+    }
+    let model = functions::ModelParams::Independent {
+        mean: moments.mean.clone(),
+        variance: moments
+            .covariance()
+            .iter()
+            .step_by(D + 1)
+            .copied()
+            .collect(),
+    };
+    ctx.sql(&format!(
+        "CREATE VIEW scored AS SELECT *, {}({}, x0, x1, x2) AS s FROM assigned",
+        functions::SCORE,
+        sql_bytes(&model.to_bytes())
+    ))
+    .await
+    .unwrap();
+    Outcome {
+        parts,
+        counts: counts(&ctx, "assigned").await.unwrap(),
+        leaks: leakage(&ctx, "assigned").await.unwrap(),
+        moments,
+        manifests,
+        summary: summary(&ctx, "scored", "s", 1, &[1.5]).await.unwrap(),
+    }
+}
+
+/// The bucketed training moments computed in process: training rows
+/// grouped by their hash's leading 16 bits, each bucket in hash order,
+/// two-pass, merged in bucket order.
+fn in_process_moments(x: &Array2<f64>, hashes: &[ContentHash], train: &[usize]) -> Moments {
+    let mut buckets: BTreeMap<u16, Vec<usize>> = BTreeMap::new();
+    for &i in train {
+        buckets
+            .entry(functions::bucket_of(&hashes[i].0))
+            .or_default()
+            .push(i);
+    }
+    let mut m = Moments::empty(D);
+    for rows in buckets.values_mut() {
+        rows.sort_by_key(|&i| hashes[i]);
+        m.merge(&Moments::of_block(x.select(ndarray::Axis(0), rows).view()));
+    }
+    m
+}
+
+#[test]
+fn every_step_equals_the_in_process_run_in_every_configuration() {
+    let (x, a) = rows(3000, 2);
+    let seed = 42;
+    let hashes = hash::rows(&x, &a);
+    let (part, splits) = in_process_parts(&x, &a, seed);
+    let mut want_parts: Vec<(Vec<u8>, i8)> = hashes
+        .iter()
+        .zip(&part)
+        .map(|(h, p)| (h.0.to_vec(), *p))
+        .collect();
+    want_parts.sort();
+    let train: Vec<usize> = splits.train.iter().map(|r| r.0 as usize).collect();
+    let want_moments = in_process_moments(&x, &hashes, &train);
+    let sorted = |p: i8| {
+        let mut v: Vec<ContentHash> = (0..a.len())
+            .filter(|&i| part[i] == p)
+            .map(|i| hashes[i])
+            .collect();
+        v.sort();
+        hash::manifest_of_sorted(v.iter())
+    };
+    let want_manifests: Vec<String> = (0..3).map(sorted).collect();
+    assert_eq!(want_manifests[2], splits.test.manifest());
+    // The independent Gaussian fitted in process on the same moments, and
+    // its validation scores summarised by `Summary::new`.
+    let variance: Vec<f64> = want_moments
+        .covariance()
+        .iter()
+        .step_by(D + 1)
+        .copied()
+        .collect();
+    let model = crate::detect::restore_independent(want_moments.mean.clone(), variance);
+    let val: Vec<usize> = splits.validation.iter().map(|r| r.0 as usize).collect();
+    let scores = model.score(x.select(ndarray::Axis(0), &val).view());
+    let labels: Vec<bool> = val.iter().map(|&i| a[i]).collect();
+    let want_summary = Summary::new(&scores, &labels, &[1.5]);
+    runtime().block_on(async {
+        for (p, b) in CONFIGS {
+            let got = run_steps(&x, &a, seed, p, b).await;
+            let at = format!("{p} partitions, batches of {b}");
+            assert!(got.parts == want_parts, "split, {at}");
+            assert_eq!(got.counts, splits.report.counts, "{at}");
+            assert_eq!(got.leaks, None, "{at}");
+            assert_eq!(got.moments.n, want_moments.n, "{at}");
+            let bits = |m: &Moments| -> Vec<u64> {
+                m.mean.iter().chain(&m.m2).map(|v| v.to_bits()).collect()
+            };
+            assert_eq!(bits(&got.moments), bits(&want_moments), "moments, {at}");
+            assert_eq!(got.manifests, want_manifests, "{at}");
+            assert!(got.summary == want_summary, "summary, {at}");
+        }
+    });
+}
+
+#[test]
+fn the_split_is_exact_at_cuts_inside_duplicate_runs() {
+    // Few distinct contents with many copies each: cuts fall inside runs
+    // of identical rows, and buckets hold one content each.
+    for (n, seed) in [(300, 3), (200, 4), (141, 5)] {
+        let (mut x, a) = rows(n, seed);
+        for i in 0..n {
+            for j in 0..D {
+                x[[i, j]] = (x[[i, j]] * 0.5).floor();
+            }
+        }
+        let hashes = hash::rows(&x, &a);
+        let (part, _) = in_process_parts(&x, &a, seed);
+        let mut want: Vec<(Vec<u8>, i8)> = hashes
+            .iter()
+            .zip(&part)
+            .map(|(h, p)| (h.0.to_vec(), *p))
+            .collect();
+        want.sort();
+        runtime().block_on(async {
+            for (p, b) in CONFIGS {
+                let ctx = session(&x, &a, p, b).await;
+                let cuts = split_cuts(&ctx, "hashed", Seed(seed), &fractions())
+                    .await
+                    .unwrap();
+                let mut got: Vec<(Vec<u8>, i8)> = hashes
+                    .iter()
+                    .zip(&a)
+                    .map(|(h, &an)| (h.0.to_vec(), cuts.part(&h.0, an)))
+                    .collect();
+                got.sort();
+                assert!(got == want, "{n} rows, {p} partitions");
+            }
+        });
+    }
+}
+
+#[test]
+fn leakage_names_the_shared_content() {
+    let (x, a) = rows(300, 6);
+    let hashes = hash::rows(&x, &a);
+    runtime().block_on(async {
+        for (p, b) in CONFIGS {
+            let ctx = session(&x, &a, p, b).await;
+            // Rows split by position: identical rows land apart.
+            ctx.sql(
+                "CREATE VIEW assigned AS SELECT *, CAST(CASE WHEN x0 < 3 THEN 0 \
+                 WHEN x1 < 4 THEN 1 ELSE 2 END AS TINYINT) AS part FROM hashed",
+            )
+            .await
+            .unwrap();
+            ctx.sql(
+                "CREATE VIEW leaky AS SELECT a, h, CAST(CASE WHEN x2 < 5 THEN 1 ELSE 2 END \
+                 AS TINYINT) AS part FROM hashed UNION ALL SELECT a, h, CAST(2 AS TINYINT) \
+                 AS part FROM hashed WHERE x2 < 2.5",
+            )
+            .await
+            .unwrap();
+            assert_eq!(leakage(&ctx, "assigned").await.unwrap(), None);
+            let (count, first, parts) = leakage(&ctx, "leaky").await.unwrap().unwrap();
+            let mut shared: Vec<ContentHash> = (0..a.len())
+                .filter(|&i| x[[i, 2]] < 2.5)
+                .map(|i| hashes[i])
+                .collect();
+            shared.sort();
+            shared.dedup();
+            assert_eq!((count, first, parts), (shared.len(), shared[0], [1, 2]));
+        }
+    });
+}
+
+#[test]
+fn the_summary_of_no_anomaly_and_extreme_scores() {
+    // Scores with ties, negative zero and infinities against Summary::new.
+    let scores = [
+        0.0,
+        -0.0,
+        1.0,
+        1.0,
+        f64::INFINITY,
+        -3.0,
+        2.5,
+        2.5,
+        f64::NEG_INFINITY,
+    ];
+    let labels = [false, true, false, true, false, false, true, false, false];
+    let want = Summary::new(&scores, &labels, &[0.5]);
+    runtime().block_on(async {
+        let ctx = local_context(2, 2).unwrap();
+        let schema = Arc::new(Schema::new(vec![
+            Field::new("s", DataType::Float64, false),
+            Field::new("a", DataType::Boolean, false),
+            Field::new("part", DataType::Int8, false),
+        ]));
+        let batch = RecordBatch::try_new(
+            schema.clone(),
+            vec![
+                Arc::new(Float64Array::from(scores.to_vec())),
+                Arc::new(BooleanArray::from(labels.to_vec())),
+                Arc::new(Int8Array::from(vec![1i8; scores.len()])),
+            ],
+        )
+        .unwrap();
+        let (b1, b2) = (batch.slice(0, 4), batch.slice(4, 5));
+        let table = MemTable::try_new(schema, vec![vec![b1], vec![b2]]).unwrap();
+        ctx.register_table("t", Arc::new(table)).unwrap();
+        let got = summary(&ctx, "t", "s", 1, &[0.5]).await.unwrap();
+        assert!(got == want);
+        let empty = summary(&ctx, "t", "s", 2, &[0.5]).await.unwrap();
+        assert!(empty == Summary::new(&[], &[], &[0.5]));
+    });
+}
+
+#[test]
+fn a_process_of_another_version_is_refused_by_name() {
+    runtime().block_on(async {
+        let config = SessionConfig::new().with_target_partitions(2);
+        let ctx = SessionContext::new_with_state(state_with(config, "0.0.0-other").unwrap());
+        let e = collect(
+            &ctx,
+            "starting the session",
+            &format!(
+                "SELECT {}({})",
+                functions::VERSION_CHECK,
+                sql_text(version())
+            ),
+        )
+        .await
+        .unwrap_err();
+        let text = e.to_string();
+        assert!(
+            text.contains("runs anomark 0.0.0-other")
+                && text.contains(&format!("the client {}", version())),
+            "{text}"
+        );
+        assert_eq!(e.code(), crate::error::exit::ENGINE);
+    });
+}
+
+#[test]
+fn literals_round_trip() {
+    let cuts = SplitCuts {
+        seed: Seed(7),
+        normal: [Some([3; 64]), None],
+        anomaly: Some([9; 64]),
+    };
+    assert_eq!(SplitCuts::from_bytes(&cuts.to_bytes()).unwrap(), cuts);
+    let m = functions::ModelParams::Multivariate {
+        mean: vec![1.0, -0.0],
+        covariance: vec![2.0, 0.5, 0.5, f64::MIN_POSITIVE],
+    };
+    assert_eq!(
+        functions::ModelParams::from_bytes(&m.to_bytes()).unwrap(),
+        m
+    );
+}
+
+#[test]
+fn interval_codes_and_order_keys_follow_the_summary() {
+    let values = [
+        f64::NEG_INFINITY,
+        -2.5,
+        -0.0,
+        0.0,
+        1e-300,
+        1.0,
+        1.0 + f64::EPSILON,
+        7.25,
+        f64::MAX,
+        f64::INFINITY,
+    ];
+    // Keys in total_cmp order, and back to the same bits.
+    for w in values.windows(2) {
+        assert!(
+            functions::order_key(w[0]) < functions::order_key(w[1]),
+            "{w:?}"
+        );
+    }
+    for v in values {
+        assert_eq!(
+            functions::from_order_key(functions::order_key(v)).to_bits(),
+            v.to_bits()
+        );
+    }
+    let labels = [
+        true, false, true, false, false, true, false, true, false, false,
+    ];
+    let s = Summary::new(&values, &labels, &[0.5]);
+    for v in values.iter().chain(&[0.5, 3.0, -7.0]) {
+        let (j, on_cut) = s.locate(*v);
+        assert_eq!(
+            functions::interval_code(s.cut_points(), *v),
+            2 * j as i64 + i64::from(on_cut),
+            "{v}"
+        );
+    }
+}

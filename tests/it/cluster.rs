@@ -1,0 +1,278 @@
+//! A Ballista cluster of anomark processes on 127.0.0.1 (the `cluster`
+//! feature): a scheduler and two executors started as separate processes of
+//! the `anomark` binary, anomark's engine steps run on it and compared with
+//! the same steps in one process (whose equality with the in-process run,
+//! bit for bit, `engine::tests` shows); processes of another version or
+//! without anomark's functions refused by name. Every process is stopped by
+//! the test, whatever happens.
+
+use std::net::TcpListener;
+use std::path::Path;
+use std::process::{Child, Command, Stdio};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use anomark::engine::{self, cluster, functions};
+use anomark::spec::{Fractions, Seed};
+use datafusion::arrow::array::{ArrayRef, Float64Array, StringArray};
+use datafusion::arrow::datatypes::{DataType, Field, Schema};
+use datafusion::arrow::record_batch::RecordBatch;
+use datafusion::parquet::arrow::ArrowWriter;
+use datafusion::prelude::{ParquetReadOptions, SessionContext};
+
+use crate::util::BIN;
+
+/// The processes of one cluster, killed and waited for when dropped.
+struct Processes(Vec<Child>);
+
+impl Drop for Processes {
+    fn drop(&mut self) {
+        for c in &mut self.0 {
+            let _ = c.kill();
+            let _ = c.wait();
+        }
+    }
+}
+
+/// A port `p` such that `p` and `p + 1` are free now (an executor takes both).
+fn free_ports() -> u16 {
+    loop {
+        let a = TcpListener::bind("127.0.0.1:0").unwrap();
+        let p = a.local_addr().unwrap().port();
+        if p < u16::MAX && TcpListener::bind(("127.0.0.1", p + 1)).is_ok() {
+            return p;
+        }
+    }
+}
+
+fn spawn(args: &[String], log: &Path) -> Child {
+    Command::new(BIN)
+        .args(args)
+        .stdin(Stdio::null())
+        .stdout(Stdio::null())
+        .stderr(std::fs::File::create(log).unwrap())
+        .spawn()
+        .unwrap()
+}
+
+/// Starts a scheduler and one executor per entry of `executors` (extra
+/// arguments each), returning the processes and the scheduler's address.
+fn start(dir: &Path, scheduler: &[&str], executors: &[&[&str]]) -> (Processes, String) {
+    let port = free_ports();
+    let addr = format!("127.0.0.1:{port}");
+    let mut args: Vec<String> = ["cluster", "scheduler", "--bind", &addr]
+        .iter()
+        .map(|s| s.to_string())
+        .collect();
+    args.extend(scheduler.iter().map(|s| s.to_string()));
+    let mut procs = Processes(vec![spawn(&args, &dir.join("scheduler.log"))]);
+    for (i, extra) in executors.iter().enumerate() {
+        let work = dir.join(format!("work{i}"));
+        std::fs::create_dir_all(&work).unwrap();
+        let mut args: Vec<String> = vec![
+            "cluster".into(),
+            "executor".into(),
+            "--scheduler".into(),
+            addr.clone(),
+            "--bind".into(),
+            format!("127.0.0.1:{}", free_ports()),
+            "--work-dir".into(),
+            work.to_string_lossy().into_owned(),
+            "--memory-limit".into(),
+            "256MiB".into(),
+        ];
+        args.extend(extra.iter().map(|s| s.to_string()));
+        procs
+            .0
+            .push(spawn(&args, &dir.join(format!("executor{i}.log"))));
+    }
+    (procs, format!("df://{addr}"))
+}
+
+fn runtime() -> tokio::runtime::Runtime {
+    tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .unwrap()
+}
+
+/// Connects once the scheduler answers and `executors` executors have
+/// registered (a query needs them), or returns the last error after 60 s.
+async fn connect(url: &str) -> anomark::Result<SessionContext> {
+    let start = Instant::now();
+    loop {
+        match cluster::connect(url, 4).await {
+            Ok(ctx) => return Ok(ctx),
+            Err(e) if start.elapsed() > Duration::from_secs(60) => return Err(e),
+            Err(e) if e.to_string().contains("version mismatch") => return Err(e),
+            Err(e) if e.to_string().contains("anomark's functions") => return Err(e),
+            Err(_) => tokio::time::sleep(Duration::from_millis(250)).await,
+        }
+    }
+}
+
+const D: usize = 3;
+
+/// Four Parquet parts of generated rows (label text, three features),
+/// with identical rows and every seventh row an anomaly.
+fn write_parts(dir: &Path, rows_per_part: usize) {
+    std::fs::create_dir_all(dir).unwrap();
+    let mut fields = vec![Field::new("label", DataType::Utf8, false)];
+    fields.extend((0..D).map(|j| Field::new(format!("x{j}"), DataType::Float64, false)));
+    let schema = Arc::new(Schema::new(fields));
+    let mut state = 0x2545_F491_4F6C_DD1Du64;
+    for part in 0..4 {
+        let mut label = Vec::new();
+        let mut cols = vec![Vec::new(); D];
+        for i in 0..rows_per_part {
+            let anomaly = (part * rows_per_part + i) % 7 == 3;
+            label.push(if anomaly { "fault" } else { "ok" });
+            for (j, c) in cols.iter_mut().enumerate() {
+                state ^= state << 13;
+                state ^= state >> 7;
+                state ^= state << 17;
+                let v = (state % 40) as f64 * 0.25 + j as f64;
+                c.push(if anomaly { v + 20.0 } else { v });
+            }
+        }
+        let mut arrays: Vec<ArrayRef> = vec![Arc::new(StringArray::from(label))];
+        arrays.extend(
+            cols.into_iter()
+                .map(|c| Arc::new(Float64Array::from(c)) as ArrayRef),
+        );
+        let batch = RecordBatch::try_new(schema.clone(), arrays).unwrap();
+        let file = std::fs::File::create(dir.join(format!("part-{part}.parquet"))).unwrap();
+        let mut w = ArrowWriter::try_new(file, schema.clone(), None).unwrap();
+        w.write(&batch).unwrap();
+        w.close().unwrap();
+    }
+}
+
+/// What the engine steps give: split cuts, counts, leakage, training
+/// moments' bits, manifests and the validation summary's bytes.
+#[derive(Debug, PartialEq)]
+struct Outcome {
+    cuts: Vec<u8>,
+    counts: String,
+    leaks: bool,
+    moments: Vec<u64>,
+    manifests: Vec<String>,
+    summary: String,
+}
+
+async fn steps(ctx: &SessionContext, parts: &Path) -> anomark::Result<Outcome> {
+    let e = |e: datafusion::error::DataFusionError| engine::engine_error("test", e);
+    ctx.register_parquet(
+        "data",
+        &format!("{}/", parts.display()),
+        ParquetReadOptions::default(),
+    )
+    .await
+    .map_err(e)?;
+    let names: Vec<String> = (0..D).map(|j| format!("x{j}")).collect();
+    engine::hashed_view(ctx, "hashed", "data", "label = 'fault'", &names).await?;
+    let fractions = Fractions {
+        normal: [0.6, 0.2, 0.2],
+        anomaly: [0.5, 0.5],
+    };
+    let cuts = engine::split_cuts(ctx, "hashed", Seed(7), &fractions).await?;
+    let cut_lit = engine::sql_bytes(&cuts.to_bytes());
+    engine::collect(
+        ctx,
+        "test",
+        &format!(
+            "CREATE VIEW assigned AS SELECT *, {}({cut_lit}, h, a) AS part FROM hashed",
+            functions::SPLIT
+        ),
+    )
+    .await?;
+    let moments = engine::moments(ctx, "assigned", 0, &names).await?;
+    let mut manifests = Vec::new();
+    for p in 0..3 {
+        manifests.push(engine::manifest(ctx, "assigned", p).await?);
+    }
+    let model = functions::ModelParams::Multivariate {
+        mean: moments.mean.clone(),
+        covariance: moments.covariance(),
+    };
+    engine::collect(
+        ctx,
+        "test",
+        &format!(
+            "CREATE VIEW scored AS SELECT *, {}({}, x0, x1, x2) AS s FROM assigned",
+            functions::SCORE,
+            engine::sql_bytes(&model.to_bytes())
+        ),
+    )
+    .await?;
+    let summary = engine::summary(ctx, "scored", "s", 1, &[]).await?;
+    Ok(Outcome {
+        cuts: cuts.to_bytes(),
+        counts: format!("{:?}", engine::counts(ctx, "assigned").await?),
+        leaks: engine::leakage(ctx, "assigned").await?.is_some(),
+        moments: moments
+            .mean
+            .iter()
+            .chain(&moments.m2)
+            .map(|v| v.to_bits())
+            .collect(),
+        manifests,
+        summary: format!("{summary:?}"),
+    })
+}
+
+#[test]
+fn the_engine_steps_on_a_cluster_equal_one_process() {
+    let dir = tempfile::tempdir().unwrap();
+    let parts = dir.path().join("parts");
+    write_parts(&parts, 2_000);
+    let rt = runtime();
+    let local = rt.block_on(async {
+        let ctx = engine::local_context(1, 8192).unwrap();
+        steps(&ctx, &parts).await.unwrap()
+    });
+    assert!(!local.leaks);
+    let (procs, url) = start(dir.path(), &[], &[&[], &[]]);
+    let remote = rt.block_on(async {
+        let ctx = connect(&url).await?;
+        steps(&ctx, &parts).await
+    });
+    drop(procs);
+    assert_eq!(remote.unwrap(), local);
+}
+
+#[test]
+fn processes_of_another_version_or_without_functions_are_refused_by_name() {
+    let dir = tempfile::tempdir().unwrap();
+    let rt = runtime();
+    let own = engine::version();
+    for (scheduler, executor, words) in [
+        (
+            &["--report-version", "0.0.0-other"][..],
+            &[][..],
+            "the planner (scheduler) runs anomark 0.0.0-other".to_string(),
+        ),
+        (
+            &[][..],
+            &["--report-version", "0.0.0-other"][..],
+            "an executor runs anomark 0.0.0-other".to_string(),
+        ),
+        (
+            &[][..],
+            &["--without-functions"][..],
+            "anomark's functions".to_string(),
+        ),
+    ] {
+        let (procs, url) = start(dir.path(), scheduler, &[executor]);
+        let got = rt.block_on(connect(&url));
+        drop(procs);
+        let e = got.err().expect("refused");
+        let text = e.to_string();
+        assert!(text.contains(&words), "{text}");
+        if words.contains("runs anomark") {
+            assert!(text.contains(&format!("the client {own}")), "{text}");
+        }
+        assert_eq!(e.code(), 5, "{text}");
+    }
+}
