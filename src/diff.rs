@@ -185,8 +185,8 @@ fn test_scores(dir: &Path, column: &str) -> Result<BTreeMap<String, (bool, f64)>
 /// spec copy and the data it names, which must still have the recorded
 /// hashes (split assignment only: nothing is fitted or scored).
 fn rows_of(dir: &Path) -> Result<BTreeMap<crate::audit::hash::ContentHash, Vec<&'static str>>> {
-    let spec = crate::pipeline::recorded_spec_path(dir)?;
-    let copy = dir.join(crate::pipeline::SPEC_COPY);
+    let spec = crate::protocol::recorded_spec_path(dir)?;
+    let copy = dir.join(crate::protocol::SPEC_COPY);
     let bytes = std::fs::read(&copy).map_err(|e| Error::io(&copy, "reading", e))?;
     let plan = crate::spec::parse(&spec, bytes)?;
     let data = crate::data::load(&plan)?;
@@ -264,7 +264,7 @@ pub fn diff(old: &Path, new: &Path) -> Result<Diff> {
         }
     }
     let spec = |d: &Path| -> Value {
-        std::fs::read_to_string(d.join(crate::pipeline::SPEC_COPY))
+        std::fs::read_to_string(d.join(crate::protocol::SPEC_COPY))
             .ok()
             .and_then(|t| serde_saphyr::from_str::<Value>(&t).ok())
             .unwrap_or(Value::Null)

@@ -9,7 +9,7 @@
 //!
 //! Modules, in pipeline order: [`spec`] → [`data`] → [`audit`] (hashes and the
 //! leakage proof) → [`split`] → [`detect`] → [`summary`] → [`threshold`] → [`metrics`] →
-//! [`card`] → [`output`] and [`sign`]; [`pipeline`] runs them, [`cli`] turns
+//! [`card`] → [`output`] and [`sign`]; [`protocol`] runs them, [`cli`] turns
 //! arguments into a [`Request`], and [`error`] holds the one error type.
 
 #![deny(missing_docs)]
@@ -31,8 +31,8 @@ pub mod float;
 pub mod init;
 pub mod metrics;
 pub mod output;
-pub mod pipeline;
 pub mod progress;
+pub mod protocol;
 pub mod record;
 pub mod rng;
 pub mod score;
@@ -68,7 +68,7 @@ pub enum Request {
     /// Run a spec.
     Run {
         /// What to run.
-        opts: pipeline::RunOptions,
+        opts: protocol::RunOptions,
         /// Print the summary as JSON.
         json: bool,
     },
@@ -247,7 +247,7 @@ pub fn run(request: &Request) -> Result<Outcome> {
             })
         }
         Request::Run { opts, json } => {
-            let s = pipeline::run(opts)?;
+            let s = protocol::run(opts)?;
             warnings = s.warnings.clone();
             if *json {
                 return Ok(Outcome {
@@ -298,9 +298,9 @@ pub fn run(request: &Request) -> Result<Outcome> {
             spec,
         } => {
             let m = if *data {
-                pipeline::verify_by_recomputation(dir, pubkey, spec.as_deref())?
+                protocol::verify_by_recomputation(dir, pubkey, spec.as_deref())?
             } else {
-                pipeline::verify(dir, pubkey)?
+                protocol::verify(dir, pubkey)?
             };
             format!(
                 "verified: {} ({} files, signature by {}{})\n",

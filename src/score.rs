@@ -200,12 +200,12 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
     let names = set.names();
     let candidate = chosen.name.clone();
     let scorer = if let Params::Command { .. } = params {
-        let (command, train) = crate::pipeline::chosen_command(dir, &params)?;
+        let (command, train) = crate::protocol::chosen_command(dir, &params)?;
         Scorer::Command(Box::new(command), train)
     } else {
         Scorer::Model(match detect::restore(&params, &names)? {
             Some(m) => m,
-            None => crate::pipeline::refit_chosen(dir, &params)?,
+            None => crate::protocol::refit_chosen(dir, &params)?,
         })
     };
     // Older runs kept neither; both are then simply absent.

@@ -59,7 +59,7 @@ impl SealedTest {
         self.rows.iter().map(|r| hashes[r.0 as usize]).collect()
     }
 
-    /// Opens the test split. Called from `pipeline` only, after selection
+    /// Opens the test split. Called from `protocol::open` only, after selection
     /// and after the opening is on the ledger.
     pub(crate) fn open(self) -> OpenedTest {
         OpenedTest { rows: self.rows }

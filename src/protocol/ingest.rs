@@ -1,0 +1,209 @@
+//! The first stage: the rows, their content hashes and the splits (with the
+//! leakage proof), whichever way the rows arrive.
+//!
+//! A way of reading is an [`Ingest`]: [`InMemory`] reads every row
+//! (`data::load`, `audit::hash::rows`, `split::assign`), [`Streaming`] reads
+//! the source in bounded chunks and keeps only the training rows' moments
+//! (`stream::load`, `split::streamed`). Both return the same [`Ingested`],
+//! which every later stage reads; [`reader`] picks one for a plan. Another
+//! way of reading rows (an engine) is one more type implementing [`Ingest`]
+//! and one more arm in [`reader`]: no later stage changes.
+
+use std::collections::BTreeMap;
+
+use crate::audit::hash::{self, ContentHash};
+use crate::audit::leak::Part;
+use crate::data::{self, Dataset, RowId};
+use crate::error::Result;
+use crate::features::FittedFeatures;
+use crate::progress::Progress;
+use crate::spec::Plan;
+use crate::split::{self, Counts, SealedTest, SplitReport};
+use crate::stream::Moments;
+
+/// How the training rows reached the fit.
+pub enum Training {
+    /// Every training row is held in [`Rows::data`] (the rows [`Rows::train`]).
+    Rows,
+    /// The training rows were summarised and dropped: per feature set, the
+    /// fitted (parameter-free) features and the rows' moments, and the train
+    /// manifest computed while they passed.
+    Moments {
+        /// Per feature set, its fitted features.
+        fitted: Vec<FittedFeatures>,
+        /// Per feature set, the training rows' moments.
+        moments: Vec<Moments>,
+        /// The train split's manifest hash.
+        manifest: String,
+    },
+}
+
+/// The rows a run works on, split: everything but the sealed test split.
+pub struct Rows {
+    /// The rows held (all of them, or validation and test when streamed).
+    pub data: Dataset,
+    /// The content hash of each held row.
+    pub hashes: Vec<ContentHash>,
+    /// The training rows held (empty when streamed), in content-hash order.
+    pub train: Vec<RowId>,
+    /// The validation rows, in content-hash order.
+    pub validation: Vec<RowId>,
+    /// How the split came out.
+    pub report: SplitReport,
+    /// How the training rows reach the fit.
+    pub training: Training,
+}
+
+/// What the ingest stage returns: the rows and the sealed test split.
+pub struct Ingested {
+    /// The rows, split.
+    pub rows: Rows,
+    /// The test rows, sealed until the test opening.
+    pub test: SealedTest,
+}
+
+/// A way of reading a plan's rows into [`Ingested`].
+pub trait Ingest {
+    /// Reads, hashes and splits the rows the plan names.
+    fn ingest(&self, plan: &Plan, progress: &Progress) -> Result<Ingested>;
+}
+
+/// Every row read into memory.
+pub struct InMemory;
+
+/// The source read in bounded chunks (`data.stream: true`).
+pub struct Streaming;
+
+/// The way of reading `plan` asks for.
+pub fn reader(plan: &Plan) -> Box<dyn Ingest> {
+    if plan.stream {
+        Box::new(Streaming)
+    } else {
+        Box::new(InMemory)
+    }
+}
+
+/// The content hashes and the splits of rows already read (the one place
+/// where rows in memory are hashed and split; `check` previews a split
+/// through it).
+pub fn hash_and_split(plan: &Plan, data: &Dataset) -> Result<(Vec<ContentHash>, split::Splits)> {
+    let hashes = hash::rows(&data.x, &data.is_anomaly);
+    let splits = split::assign(&plan.split, data, &hashes)?;
+    Ok((hashes, splits))
+}
+
+impl Ingest for InMemory {
+    fn ingest(&self, plan: &Plan, progress: &Progress) -> Result<Ingested> {
+        let stage = progress.stage("reading the data");
+        let data = data::load(plan)?;
+        drop(stage);
+        let stage = progress.stage(format!("hashing {} rows", data.len()));
+        let hashes = hash::rows(&data.x, &data.is_anomaly);
+        drop(stage);
+        let stage = progress.stage("splitting and checking for leakage");
+        let splits = split::assign(&plan.split, &data, &hashes)?;
+        drop(stage);
+        Ok(Ingested::of(data, hashes, splits, Training::Rows))
+    }
+}
+
+impl Ingest for Streaming {
+    fn ingest(&self, plan: &Plan, progress: &Progress) -> Result<Ingested> {
+        let s = crate::stream::load(plan, progress)?;
+        let stage = progress.stage("splitting and checking for leakage");
+        let splits = split::streamed(
+            &s.data,
+            &s.hashes,
+            &s.parts,
+            &s.train_hashes,
+            s.train_counts,
+        )?;
+        drop(stage);
+        let training = Training::Moments {
+            fitted: s.fitted,
+            moments: s.moments,
+            manifest: hash::manifest(&s.train_hashes),
+        };
+        Ok(Ingested::of(s.data, s.hashes, splits, training))
+    }
+}
+
+impl Ingested {
+    fn of(
+        data: Dataset,
+        hashes: Vec<ContentHash>,
+        splits: split::Splits,
+        training: Training,
+    ) -> Self {
+        let split::Splits {
+            train,
+            validation,
+            test,
+            report,
+        } = splits;
+        Ingested {
+            rows: Rows {
+                data,
+                hashes,
+                train,
+                validation,
+                report,
+                training,
+            },
+            test,
+        }
+    }
+
+    /// Each split's manifest hash by split name.
+    pub fn manifests(&self) -> BTreeMap<String, String> {
+        let r = &self.rows;
+        let mut manifests: BTreeMap<String, String> =
+            [(Part::Train, &r.train), (Part::Validation, &r.validation)]
+                .iter()
+                .map(|(p, rows)| {
+                    // Each list is in canonical (content hash, row) order.
+                    let hs = rows.iter().map(|r| &self.rows.hashes[r.0 as usize]);
+                    (p.name().to_string(), hash::manifest_of_sorted(hs))
+                })
+                .collect();
+        manifests.insert(Part::Test.name().into(), self.test.manifest().to_string());
+        if let Training::Moments { manifest, .. } = &r.training {
+            manifests.insert(Part::Train.name().into(), manifest.clone());
+        }
+        manifests
+    }
+
+    /// The test split's counts by label, readable while it is sealed.
+    pub fn test_counts(&self) -> Counts {
+        self.test.counts()
+    }
+}
+
+impl Rows {
+    /// Whether the training rows were streamed, not kept.
+    pub fn streamed(&self) -> bool {
+        matches!(self.training, Training::Moments { .. })
+    }
+
+    /// The labels of the validation rows, in their order.
+    pub fn validation_labels(&self) -> Vec<bool> {
+        self.labels(&self.validation)
+    }
+
+    /// The labels of `rows`, in their order.
+    pub fn labels(&self, rows: &[RowId]) -> Vec<bool> {
+        rows.iter()
+            .map(|r| self.data.is_anomaly[r.0 as usize])
+            .collect()
+    }
+
+    /// The normal validation rows (what the figures and the drift
+    /// reference show when the training rows were not kept).
+    pub fn validation_normals(&self) -> Vec<RowId> {
+        self.validation
+            .iter()
+            .copied()
+            .filter(|r| !self.data.is_anomaly[r.0 as usize])
+            .collect()
+    }
+}
