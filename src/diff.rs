@@ -207,8 +207,11 @@ fn rows_of(dir: &Path) -> Result<BTreeMap<crate::audit::hash::ContentHash, Vec<&
             message: "its inputs changed since the run".into(),
         });
     }
-    let hashes = crate::audit::hash::rows(&data.x, &data.is_anomaly);
-    let s = crate::split::assign(&plan.split, &data, &hashes)?;
+    let (hashes, s) = crate::protocol::ingest::hash_and_split(
+        &plan,
+        &data,
+        &crate::progress::Progress::hidden(),
+    )?;
     let mut out: BTreeMap<_, Vec<&'static str>> = BTreeMap::new();
     for r in &s.train {
         out.entry(hashes[r.0 as usize]).or_default().push("train");

@@ -35,6 +35,7 @@ pub mod progress;
 pub mod protocol;
 pub mod record;
 pub mod rng;
+pub mod rules;
 pub mod score;
 pub mod sign;
 pub mod spec;

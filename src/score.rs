@@ -890,14 +890,13 @@ fn batch_scores(
             .map(|(i, _)| format.place(offset + i as u64))
             .collect();
         if !missing.is_empty() {
-            return Err(Error::Data {
+            return Err(crate::rules::missing_value_to_score(crate::rules::At {
                 path: path.to_path_buf(),
-                column: Some(name.clone()),
-                message: "a missing value: every feature column needs a number in every row".into(),
+                column: name.clone(),
                 total: missing.len(),
                 lines: missing.into_iter().take(5).collect(),
                 unit,
-            });
+            }));
         }
         let idx = run
             .columns

@@ -671,24 +671,15 @@ fn from_column(data: &Dataset, column: &str) -> Result<Vec<Part>> {
     let mut bad = Vec::new();
     let mut parts = Vec::with_capacity(values.len());
     for (i, v) in values.iter().enumerate() {
-        parts.push(match v {
-            "train" => Part::Train,
-            "validation" => Part::Validation,
-            "test" => Part::Test,
-            _ => {
-                bad.push(RowId(i as u64));
-                Part::Train
-            }
-        });
+        parts.push(crate::rules::part_of(v).unwrap_or_else(|| {
+            bad.push(RowId(i as u64));
+            Part::Train
+        }));
     }
     if let Some(first) = bad.first() {
-        return Err(data.error(
-            column,
-            format!(
-                "split value `{}` is not one of `train`, `validation`, `test`",
-                &values[first.0 as usize]
-            ),
-            &bad,
+        return Err(crate::rules::unknown_split(
+            data.at(column, &bad),
+            &values[first.0 as usize],
         ));
     }
     let known_in_train: Vec<RowId> = (0..data.len())
@@ -696,12 +687,8 @@ fn from_column(data: &Dataset, column: &str) -> Result<Vec<Part>> {
         .map(|i| RowId(i as u64))
         .collect();
     if !known_in_train.is_empty() {
-        return Err(data.error(
-            column,
-            "a known anomaly is assigned to `train`; detectors are fitted on normal rows only, \
-             so known anomalies belong in validation and test"
-                .into(),
-            &known_in_train,
+        return Err(crate::rules::anomaly_in_train(
+            data.at(column, &known_in_train),
         ));
     }
     Ok(parts)

@@ -27,6 +27,7 @@ use crate::detect::{self, Model};
 use crate::error::{Error, Result, RowUnit};
 use crate::features::{self, FittedFeatures};
 use crate::progress::Progress;
+use crate::rules;
 use crate::spec::{DetectorKind, MissingPolicy, Plan, SplitPlan};
 use crate::split::Counts;
 
@@ -154,13 +155,7 @@ pub fn fit(kind: DetectorKind, m: &Moments, names: &[String]) -> Result<Box<dyn 
         .map(|j| names[j].clone())
         .collect();
     if !constant.is_empty() {
-        return Err(Error::Fit {
-            detector: name.into(),
-            message: "a feature has zero variance on the training rows (every value is the same), \
-                      so its density is degenerate; drop it or fix the data"
-                .into(),
-            features: constant,
-        });
+        return Err(rules::zero_variance(name, constant));
     }
     match kind {
         DetectorKind::IndependentGaussian => {
@@ -168,16 +163,7 @@ pub fn fit(kind: DetectorKind, m: &Moments, names: &[String]) -> Result<Box<dyn 
             Ok(detect::restore_independent(m.mean.clone(), variance))
         }
         DetectorKind::MultivariateGaussian => {
-            if m.n as usize <= d {
-                return Err(Error::Fit {
-                    detector: name.into(),
-                    message: format!(
-                        "{} training rows cannot determine a covariance over {d} features",
-                        m.n
-                    ),
-                    features: vec![],
-                });
-            }
+            rules::refuse_too_few_for_covariance(name, m.n, d)?;
             detect::restore_multivariate(m.mean.clone(), cov, names)
         }
         other => Err(Error::internal(format!(
@@ -328,18 +314,15 @@ struct Ctx<'a> {
 }
 
 impl Ctx<'_> {
-    fn data_error(&self, acc: &Acc, column: &str, message: String, rows: &[u64]) -> Error {
+    /// Where `rows` (0-based rows of the current file) of `column` are.
+    fn at(&self, acc: &Acc, column: &str, rows: &[u64]) -> rules::At {
         let f = &self.files[acc.file as usize];
-        Error::Data {
+        rules::At {
             path: f.shown.clone().into(),
-            column: Some(column.into()),
-            message,
+            column: column.into(),
             total: rows.len(),
             lines: rows.iter().take(5).map(|&r| f.format.place(r)).collect(),
-            unit: match f.format {
-                Format::Csv => RowUnit::Line,
-                Format::Parquet => RowUnit::Row,
-            },
+            unit: f.format.unit(),
         }
     }
 
@@ -382,26 +365,22 @@ impl Ctx<'_> {
                 if let Some(&first) = huge.first() {
                     let o = acc.pending_origin[first];
                     let file = &self.files[o.file as usize];
-                    return Err(Error::Data {
-                        path: file.shown.clone().into(),
-                        column: Some(name.clone()),
-                        message: "a training value is beyond ±1e150 (after transforms): the \
-                                  fitted moments would overflow; fix the value or transform \
-                                  the feature (`log`)"
-                            .into(),
-                        total: huge.len(),
-                        lines: huge
-                            .iter()
-                            .map(|&r| acc.pending_origin[r])
-                            .filter(|p| p.file == o.file)
-                            .take(5)
-                            .map(|p| file.format.place(p.row))
-                            .collect(),
-                        unit: match file.format {
-                            Format::Csv => RowUnit::Line,
-                            Format::Parquet => RowUnit::Row,
+                    return Err(rules::beyond_train_limit(
+                        rules::At {
+                            path: file.shown.clone().into(),
+                            column: name.clone(),
+                            total: huge.len(),
+                            lines: huge
+                                .iter()
+                                .map(|&r| acc.pending_origin[r])
+                                .filter(|p| p.file == o.file)
+                                .take(5)
+                                .map(|p| file.format.place(p.row))
+                                .collect(),
+                            unit: file.format.unit(),
                         },
-                    });
+                        rules::MOMENTS_OVERFLOW,
+                    ));
                 }
             }
             let block = Moments::of_block(x.view());
@@ -430,23 +409,20 @@ impl Ctx<'_> {
         let mut missing: Vec<Vec<u64>> = vec![vec![]; self.ncols];
         for i in 0..n {
             let r = acc.row + i as u64;
-            let a = match labels[i].as_deref() {
-                Some(v) if v == label.normal => false,
-                Some(v) if v == label.anomaly => true,
-                _ => {
+            let a = labels[i]
+                .as_deref()
+                .and_then(|v| rules::label_of(v.as_bytes(), &label.normal, &label.anomaly))
+                .unwrap_or_else(|| {
                     bad_label.push(r);
                     false
-                }
-            };
-            let p = match splits[i].as_deref() {
-                Some("train") => Part::Train,
-                Some("validation") => Part::Validation,
-                Some("test") => Part::Test,
-                _ => {
+                });
+            let p = splits[i]
+                .as_deref()
+                .and_then(rules::part_of)
+                .unwrap_or_else(|| {
                     bad_split.push(r);
                     Part::Train
-                }
-            };
+                });
             if a && p == Part::Train {
                 anomaly_in_train.push(r);
             }
@@ -479,10 +455,7 @@ impl Ctx<'_> {
         if values.len() > 1 {
             // Several undeclared values: each with its own lines.
             let f = &self.files[acc.file as usize];
-            let unit = match f.format {
-                Format::Csv => RowUnit::Line,
-                Format::Parquet => RowUnit::Row,
-            };
+            let unit = f.format.unit();
             let each: Vec<(&str, String)> = values
                 .iter()
                 .take(5)
@@ -492,70 +465,44 @@ impl Ctx<'_> {
                     (*v, crate::error::places(&places, rows.len(), unit))
                 })
                 .collect();
-            return Err(Error::Data {
-                path: f.shown.clone().into(),
-                column: Some(label.column.name.clone()),
-                message: crate::data::bad_labels_message(
-                    &label.normal,
-                    &label.anomaly,
-                    &each,
-                    values.len(),
-                ),
-                lines: vec![],
-                total: 0,
+            return Err(rules::undeclared_labels(
+                f.shown.clone().into(),
+                &label.column.name,
                 unit,
-            });
+                (&label.normal, &label.anomaly),
+                &each,
+                values.len(),
+            ));
         }
         if let Some(&first) = bad_label.first() {
             let i = (first - acc.row) as usize;
-            return Err(self.data_error(
-                acc,
-                &label.column.name,
-                format!(
-                    "label `{}` is neither `{}` (normal) nor `{}` (anomaly)",
-                    labels[i].as_deref().unwrap_or(""),
-                    label.normal,
-                    label.anomaly
-                ),
-                &bad_label,
+            return Err(rules::undeclared_label(
+                self.at(acc, &label.column.name, &bad_label),
+                labels[i].as_deref().unwrap_or(""),
+                &label.normal,
+                &label.anomaly,
             ));
         }
         if let Some(&first) = bad_split.first() {
             let i = (first - acc.row) as usize;
-            return Err(self.data_error(
-                acc,
-                split_col,
-                format!(
-                    "split value `{}` is not one of `train`, `validation`, `test`",
-                    splits[i].as_deref().unwrap_or("")
-                ),
-                &bad_split,
+            return Err(rules::unknown_split(
+                self.at(acc, split_col, &bad_split),
+                splits[i].as_deref().unwrap_or(""),
             ));
         }
         if !anomaly_in_train.is_empty() {
-            return Err(self.data_error(
+            return Err(rules::anomaly_in_train(self.at(
                 acc,
                 split_col,
-                "a known anomaly is assigned to `train`; detectors are fitted on normal rows only, \
-                 so known anomalies belong in validation and test"
-                    .into(),
                 &anomaly_in_train,
-            ));
+            )));
         }
         if plan.missing == MissingPolicy::Refuse {
             // Every column with a missing value in this chunk, worded as
             // the in-memory reader words it.
             let each: Vec<Error> = (0..self.ncols)
                 .filter(|&j| !missing[j].is_empty())
-                .map(|j| {
-                    self.data_error(
-                        acc,
-                        &plan.columns[j].name,
-                        "a missing value (set `missing-values: drop-row` to leave such rows out)"
-                            .into(),
-                        &missing[j],
-                    )
-                })
+                .map(|j| rules::missing_value(self.at(acc, &plan.columns[j].name, &missing[j])))
                 .collect();
             if let Some(e) = data::all_missing(each) {
                 return Err(e);

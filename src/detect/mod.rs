@@ -357,13 +357,7 @@ pub(crate) fn refuse_constant(
     if constant.is_empty() {
         Ok(())
     } else {
-        Err(Error::Fit {
-            detector: detector.into(),
-            message: "a feature has zero variance on the training rows (every value is the same), \
-                      so its density is degenerate; drop it or fix the data"
-                .into(),
-            features: constant,
-        })
+        Err(crate::rules::zero_variance(detector, constant))
     }
 }
 

@@ -83,12 +83,20 @@ pub fn reader(plan: &Plan) -> Box<dyn Ingest> {
     }
 }
 
-/// The content hashes and the splits of rows already read (the one place
-/// where rows in memory are hashed and split; `check` previews a split
-/// through it).
-pub fn hash_and_split(plan: &Plan, data: &Dataset) -> Result<(Vec<ContentHash>, split::Splits)> {
+/// The content hashes and the splits (with the leakage proof) of rows
+/// already read: the one place where rows in memory are hashed and split
+/// (for [`InMemory`], `check`'s preview and `diff`'s row moves).
+pub fn hash_and_split(
+    plan: &Plan,
+    data: &Dataset,
+    progress: &Progress,
+) -> Result<(Vec<ContentHash>, split::Splits)> {
+    let stage = progress.stage(format!("hashing {} rows", data.len()));
     let hashes = hash::rows(&data.x, &data.is_anomaly);
+    drop(stage);
+    let stage = progress.stage("splitting and checking for leakage");
     let splits = split::assign(&plan.split, data, &hashes)?;
+    drop(stage);
     Ok((hashes, splits))
 }
 
@@ -97,12 +105,7 @@ impl Ingest for InMemory {
         let stage = progress.stage("reading the data");
         let data = data::load(plan)?;
         drop(stage);
-        let stage = progress.stage(format!("hashing {} rows", data.len()));
-        let hashes = hash::rows(&data.x, &data.is_anomaly);
-        drop(stage);
-        let stage = progress.stage("splitting and checking for leakage");
-        let splits = split::assign(&plan.split, &data, &hashes)?;
-        drop(stage);
+        let (hashes, splits) = hash_and_split(plan, &data, progress)?;
         Ok(Ingested::of(data, hashes, splits, Training::Rows))
     }
 }

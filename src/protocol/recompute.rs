@@ -81,7 +81,7 @@ fn check_recorded_inputs(dir: &Path, spec: &Path, run: &RunRecord) -> Result<()>
                 "input `{rel}` has blake3 {} but the run recorded {}",
                 d.blake3, input.digest.blake3
             )),
-            Err(e) => problems.push(format!("input `{rel}`: {e}")),
+            Err(e) => problems.push(e.in_file(rel).to_string()),
         }
     }
     if !problems.is_empty() {

@@ -113,10 +113,11 @@ pub(crate) fn checked_scores(
     };
     if let Some(k) = s.iter().position(|v| v.is_nan()) {
         return Err(Error::Fit {
-            detector: name.into(),
+            detector: String::new(),
             message: format!("the score of {} is not a number", data.place(rows[k])),
             features: vec![],
-        });
+        }
+        .in_candidate(name));
     }
     Ok(s)
 }
