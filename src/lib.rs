@@ -9,8 +9,9 @@
 //!
 //! Modules, in pipeline order: [`spec`] → [`data`] → [`audit`] (hashes and the
 //! leakage proof) → [`split`] → [`detect`] → [`summary`] → [`threshold`] → [`metrics`] →
-//! [`card`] → [`output`] and [`sign`]; [`protocol`] runs them, [`cli`] turns
-//! arguments into a [`Request`], and [`error`] holds the one error type.
+//! [`card`] → [`output`] and [`sign`]; [`protocol`] runs them as a chain of
+//! typed stages, [`cli`] turns arguments into a [`Request`], [`error`] holds
+//! the one error type and [`rules`] words each rule rows and fits must meet.
 
 #![deny(missing_docs)]
 

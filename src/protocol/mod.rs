@@ -124,21 +124,9 @@ fn execute(
     replay: Option<&Replay>,
     path_from_run: Option<String>,
 ) -> Result<(RunFiles, RunSummary)> {
-    let started = SystemTime::now();
-    let clock = Instant::now();
+    let started = (SystemTime::now(), Instant::now());
     let progress = opts.progress;
-    // The repository state as the run begins, read by git in the background
-    // while the data is read (a recomputation keeps the recorded state).
-    let provenance = match replay {
-        Some(r) => {
-            let p = r.provenance.clone();
-            std::thread::spawn(move || p)
-        }
-        None => {
-            let spec = opts.spec.clone();
-            std::thread::spawn(move || crate::audit::provenance::of(&spec))
-        }
-    };
+    let provenance = provenance_in_background(opts, replay);
 
     let ingested = ingest::reader(&plan).ingest(&plan, &progress)?;
     // Fit and choose on train and validation only.
@@ -155,15 +143,6 @@ fn execute(
     let opened = open::test(&plan, &rows, test, chosen, ledger)?;
 
     let stage = progress.stage("test metrics and intervals");
-    let measured = (!opts.no_wall_clock).then(|| WallClock {
-        started_utc: record::rfc3339(
-            started
-                .duration_since(SystemTime::UNIX_EPOCH)
-                .map(|d| d.as_secs())
-                .unwrap_or(0),
-        ),
-        seconds: (clock.elapsed().as_millis() as f64) / 1000.0,
-    });
     let header = report::Header {
         spec_file: opts
             .spec
@@ -172,10 +151,7 @@ fn execute(
             .unwrap_or_default(),
         path_from_run,
         provenance: provenance.join().unwrap_or(None),
-        wall_clock: match replay {
-            Some(r) => r.wall_clock.clone(),
-            None => measured,
-        },
+        wall_clock: wall_clock(opts, replay, started),
         manifests,
         test_counts,
     };
@@ -192,4 +168,43 @@ fn execute(
     )?;
     drop(stage);
     Ok((files, report::summary(&rec, opened.warnings)?))
+}
+
+/// The repository state as the run begins, read by git in the background
+/// while the data is read (a recomputation keeps the recorded state).
+fn provenance_in_background(
+    opts: &RunOptions,
+    replay: Option<&Replay>,
+) -> std::thread::JoinHandle<Option<crate::audit::provenance::Provenance>> {
+    match replay {
+        Some(r) => {
+            let p = r.provenance.clone();
+            std::thread::spawn(move || p)
+        }
+        None => {
+            let spec = opts.spec.clone();
+            std::thread::spawn(move || crate::audit::provenance::of(&spec))
+        }
+    }
+}
+
+/// The wall-clock field: when the run started and how long it has taken so
+/// far (null with `--no-wall-clock`; a recomputation keeps the recorded one).
+fn wall_clock(
+    opts: &RunOptions,
+    replay: Option<&Replay>,
+    (started, clock): (SystemTime, Instant),
+) -> Option<WallClock> {
+    if let Some(r) = replay {
+        return r.wall_clock.clone();
+    }
+    (!opts.no_wall_clock).then(|| WallClock {
+        started_utc: record::rfc3339(
+            started
+                .duration_since(SystemTime::UNIX_EPOCH)
+                .map(|d| d.as_secs())
+                .unwrap_or(0),
+        ),
+        seconds: (clock.elapsed().as_millis() as f64) / 1000.0,
+    })
 }
