@@ -37,6 +37,7 @@ pub use recompute::{
     chosen_command, recompute, recorded_spec_path, refit_chosen, verify, verify_by_recomputation,
     Replay,
 };
+pub use report::{RunSummary, SPEC_COPY};
 
 /// What `anomark run` needs.
 #[derive(Debug, Clone)]
@@ -57,31 +58,6 @@ pub struct RunOptions {
     /// Progress display for the long stages.
     pub progress: crate::progress::Progress,
 }
-
-/// What a run produced (printed as JSON with `run --json`).
-#[derive(Debug, Clone, serde::Serialize)]
-#[serde(rename_all = "kebab-case")]
-pub struct RunSummary {
-    /// Where the run directory is.
-    pub out: PathBuf,
-    /// The chosen candidate.
-    pub chosen: String,
-    /// Validation F1 of the chosen candidate.
-    pub validation_f1: Option<f64>,
-    /// Test F1 of the chosen candidate (None when the test split stayed sealed).
-    pub test_f1: Option<f64>,
-    /// τ of the chosen candidate.
-    pub tau: f64,
-    /// Whether the test split was opened.
-    pub test_opened: bool,
-    /// Peak resident memory of the process, MiB (not recorded in run.json).
-    pub peak_rss_mib: Option<f64>,
-    /// Warnings for stderr (a test split opened under several specs).
-    pub warnings: Vec<String>,
-}
-
-/// The run directory's copy of the spec's exact bytes.
-pub const SPEC_COPY: &str = "spec.yaml";
 
 /// Runs the whole protocol and writes the signed run directory.
 pub fn run(opts: &RunOptions) -> Result<RunSummary> {

@@ -8,7 +8,7 @@ use std::path::{Path, PathBuf};
 
 use super::ingest::Rows;
 use super::open::Opened;
-use super::{choose, fit, wording, RunSummary, SPEC_COPY};
+use super::{choose, fit, wording};
 use crate::audit::leak::Part;
 use crate::card::{self, plots};
 use crate::data::{self, Dataset, RowId};
@@ -22,6 +22,31 @@ use crate::record::{
 };
 use crate::spec::Plan;
 use crate::split;
+
+/// What a run produced (printed as JSON with `run --json`).
+#[derive(Debug, Clone, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub struct RunSummary {
+    /// Where the run directory is.
+    pub out: PathBuf,
+    /// The chosen candidate.
+    pub chosen: String,
+    /// Validation F1 of the chosen candidate.
+    pub validation_f1: Option<f64>,
+    /// Test F1 of the chosen candidate (None when the test split stayed sealed).
+    pub test_f1: Option<f64>,
+    /// τ of the chosen candidate.
+    pub tau: f64,
+    /// Whether the test split was opened.
+    pub test_opened: bool,
+    /// Peak resident memory of the process, MiB (not recorded in run.json).
+    pub peak_rss_mib: Option<f64>,
+    /// Warnings for stderr (a test split opened under several specs).
+    pub warnings: Vec<String>,
+}
+
+/// The run directory's copy of the spec's exact bytes.
+pub const SPEC_COPY: &str = "spec.yaml";
 
 /// What the record takes from outside the computation.
 pub(crate) struct Header {
