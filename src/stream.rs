@@ -407,6 +407,7 @@ impl Ctx<'_> {
         let mut bad_split = Vec::new();
         let mut anomaly_in_train = Vec::new();
         let mut missing: Vec<Vec<u64>> = vec![vec![]; self.ncols];
+        let mut infinite: Vec<Vec<u64>> = vec![vec![]; self.ncols];
         for i in 0..n {
             let r = acc.row + i as u64;
             let a = labels[i]
@@ -427,10 +428,20 @@ impl Ctx<'_> {
                 anomaly_in_train.push(r);
             }
             let mut has_missing = false;
+            // As the in-memory reader reads them: a NaN is a missing value,
+            // an infinite value is refused.
             for (j, col) in numeric.iter().enumerate() {
-                if col[i].is_none() {
-                    missing[j].push(r);
-                    has_missing = true;
+                match col[i] {
+                    None => {
+                        missing[j].push(r);
+                        has_missing = true;
+                    }
+                    Some(v) if v.is_nan() => {
+                        missing[j].push(r);
+                        has_missing = true;
+                    }
+                    Some(v) if v.is_infinite() => infinite[j].push(r),
+                    Some(_) => {}
                 }
             }
             if has_missing && plan.missing == MissingPolicy::DropRow {
@@ -449,6 +460,13 @@ impl Ctx<'_> {
             } else {
                 keep.push(Some((a, p)));
             }
+        }
+        if let Some(j) = (0..self.ncols).find(|&j| !infinite[j].is_empty()) {
+            return Err(rules::infinite(self.at(
+                acc,
+                &plan.columns[j].name,
+                &infinite[j],
+            )));
         }
         let label_of = |r: u64| labels[(r - acc.row) as usize].as_deref().unwrap_or("");
         let values = crate::data::by_value(bad_label.iter().map(|&r| (r, label_of(r))));

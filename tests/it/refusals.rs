@@ -757,16 +757,19 @@ fn stale_temporaries_are_reported_not_removed() {
 /// Each row rule refuses a file in the same words whichever way its rows
 /// arrive: read whole, or streamed in chunks (`data.stream: true`), both
 /// calling `rules` (one undeclared label, one unknown split value, one known
-/// anomaly placed in train, one missing value: each alone in a file).
+/// anomaly placed in train, one missing value, a `NaN` read as a missing
+/// value, one infinite value: each alone in a file).
 #[test]
 fn every_row_rule_reads_alike_in_memory_and_streamed() {
     let r = rows(50, 4, 1);
     // (file line, column index, new value, what the message names)
-    let defects: [(usize, usize, &str, &str); 4] = [
+    let defects: [(usize, usize, &str, &str); 6] = [
         (7, 4, "Normal", "label `Normal` is neither"),
         (9, 5, "holdout", "split value `holdout`"),
         (0, 5, "train", "a known anomaly is assigned to `train`"),
         (11, 2, "", "a feature value is missing"),
+        (13, 1, "NaN", "a feature value is missing"),
+        (15, 3, "inf", "a feature value is infinite"),
     ];
     for (line, column, value, names) in defects {
         let mut text = String::from("id,a,b,c,label,split\n");
