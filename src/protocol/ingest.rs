@@ -7,7 +7,11 @@
 //! (`stream::load`, `split::streamed`). Both return the same [`Ingested`],
 //! which every later stage reads; [`reader`] picks one for a plan. Another
 //! way of reading rows (an engine) is one more type implementing [`Ingest`]
-//! and one more arm in [`reader`]: no later stage changes.
+//! and one more arm in [`reader`]: no later stage changes. Such a reader
+//! refuses rows through [`crate::rules`] (so its words are the others'),
+//! and may hand over the training rows as moments, building its splits with
+//! `split::streamed` from the held rows' parts and the training rows'
+//! sorted content hashes, as [`Streaming`] does.
 
 use std::collections::BTreeMap;
 
