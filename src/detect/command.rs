@@ -306,8 +306,8 @@ pub fn invoke(
     ))
 }
 
-/// Quotes a CSV field when it needs it (RFC 4180).
-fn csv_field(s: &str) -> String {
+/// Quotes a CSV field when it needs it (RFC 4180); also for scores.csv.
+pub(crate) fn csv_field(s: &str) -> String {
     if s.contains([',', '"', '\n', '\r']) {
         format!("\"{}\"", s.replace('"', "\"\""))
     } else {

@@ -12,7 +12,7 @@ use super::{choose, fit, wording};
 use crate::audit::leak::Part;
 use crate::card::{self, plots};
 use crate::data::{self, Dataset, RowId};
-use crate::detect;
+use crate::detect::{self, command::csv_field};
 use crate::error::{Error, Result};
 use crate::features;
 use crate::output::RunFiles;
@@ -325,15 +325,6 @@ pub(crate) fn summary(rec: &RunRecord, warnings: Vec<String>) -> Result<RunSumma
         peak_rss_mib: None,
         warnings,
     })
-}
-
-/// Quotes a CSV field when it needs it (RFC 4180).
-fn csv_field(s: &str) -> String {
-    if s.contains([',', '"', '\n', '\r']) {
-        format!("\"{}\"", s.replace('"', "\"\""))
-    } else {
-        s.to_string()
-    }
 }
 
 /// The drift reference: the chosen feature set's values on a systematic
