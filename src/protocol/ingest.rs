@@ -214,3 +214,68 @@ impl Rows {
             .collect()
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The contract every reader keeps: the same file read whole and
+    /// streamed gives the same splits (the same contents in the same
+    /// canonical order, the same counts) and the same manifests. Invented
+    /// rows, for this check only.
+    #[test]
+    fn in_memory_and_streamed_ingest_agree_on_the_splits() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut csv = String::from("id,a,b,label,split\n");
+        for i in 0..60u32 {
+            // Row 7 repeats row 6 (content, label, split): copies stay together.
+            let v = if i == 7 { 6 } else { i };
+            let anomaly = v % 10 == 3;
+            let split = match (anomaly, v % 5) {
+                (true, _) if (v / 10) % 2 == 0 => "validation",
+                (true, _) => "test",
+                (false, 0) => "validation",
+                (false, 1) => "test",
+                _ => "train",
+            };
+            let label = if anomaly { "bad" } else { "ok" };
+            csv.push_str(&format!(
+                "r{i},{}.5,{},{label},{split}\n",
+                v * 7 % 13,
+                v * 3 % 11
+            ));
+        }
+        std::fs::write(dir.path().join("data.csv"), csv).unwrap();
+        let spec = |stream: bool| {
+            format!(
+                "format: 1\ndata:\n  path: data.csv\n  id-column: id\n  stream: {stream}\n  \
+                 label:\n    column: label\n    normal: ok\n    anomaly: bad\n  features: [a, \
+                 b]\nsplit:\n  from-column: split\ndetectors: [independent-gaussian]\n\
+                 threshold: max-f1\ncard:\n  title: t\n  owner: o\n  intended-use: u\n"
+            )
+        };
+        let hidden = Progress::hidden();
+        let read = |stream: bool| {
+            let path = dir.path().join(format!("spec-{stream}.yaml"));
+            let plan = crate::spec::parse(&path, spec(stream).into_bytes()).unwrap();
+            reader(&plan).ingest(&plan, &hidden).unwrap()
+        };
+        let (whole, streamed) = (read(false), read(true));
+        assert!(!whole.rows.streamed() && streamed.rows.streamed());
+        let contents = |i: &Ingested| -> Vec<ContentHash> {
+            i.rows
+                .validation
+                .iter()
+                .map(|r| i.rows.hashes[r.0 as usize])
+                .collect()
+        };
+        assert_eq!(contents(&whole), contents(&streamed));
+        assert_eq!(
+            whole.test.contents(&whole.rows.hashes),
+            streamed.test.contents(&streamed.rows.hashes)
+        );
+        assert_eq!(whole.rows.report.counts, streamed.rows.report.counts);
+        assert_eq!(whole.manifests(), streamed.manifests());
+        assert_eq!(whole.test_counts(), streamed.test_counts());
+    }
+}
