@@ -7,7 +7,7 @@
 //! only, opens the test split once, and writes a signed run directory: the run
 //! record, the scores and a model card.
 //!
-//! Modules, in pipeline order: [`spec`] → [`data`] → [`audit`] (hashes and the
+//! Modules, in protocol order: [`spec`] → [`data`] → [`audit`] (hashes and the
 //! leakage proof) → [`split`] → [`detect`] → [`summary`] → [`threshold`] → [`metrics`] →
 //! [`card`] → [`output`] and [`sign`]; [`protocol`] runs them as a chain of
 //! typed stages, [`cli`] turns arguments into a [`Request`], [`error`] holds

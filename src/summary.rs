@@ -420,7 +420,7 @@ mod tests {
     use rand_chacha::rand_core::{Rng, SeedableRng};
 
     /// Scores with many ties, signed zeros and +∞, and at least one anomaly
-    /// and one normal row (as the pipeline guarantees). No −∞: "flag every
+    /// and one normal row (as the protocol guarantees). No −∞: "flag every
     /// row" has no τ below it (the row-level search's τ is then NaN).
     fn random_case(rng: &mut rand_chacha::ChaCha8Rng) -> (Vec<f64>, Vec<bool>) {
         let n = 2 + (rng.next_u32() % 300) as usize;
@@ -558,7 +558,7 @@ mod tests {
                 // points (a τ inside a gap splits it in two), not its law:
                 // compared here without it.
                 // A τ fixed in advance (fixed, conformal) is not a cut of
-                // the summary without it: the pipeline adds it first.
+                // the summary without it: the protocol adds it first.
                 if !matches!(
                     p,
                     ThresholdPolicy::Fixed { .. } | ThresholdPolicy::Conformal { .. }

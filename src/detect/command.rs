@@ -74,9 +74,9 @@ pub struct Invocation {
 }
 
 /// A command's fitted state: what anomark knows of it, which is its
-/// provenance only. It cannot score rows by itself (the pipeline hands rows
+/// provenance only. It cannot score rows by itself (the protocol hands rows
 /// to the program in one folder), so [`Model::score`] gives NaN, which the
-/// pipeline refuses.
+/// protocol refuses.
 struct External {
     params: Params,
 }

@@ -312,7 +312,7 @@ pub fn build(kind: DetectorKind) -> Box<dyn Detector> {
 }
 
 /// The stand-in for an external command, which is not fitted in process
-/// (the pipeline runs it through [`command`]).
+/// (the protocol runs it through [`command`]).
 struct NotFittable;
 
 impl Detector for NotFittable {
