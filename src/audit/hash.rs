@@ -12,14 +12,20 @@ use crate::error::{Error, Result};
 
 /// Domain tag of the row encoding, version 1.
 const ROW_TAG: &[u8] = b"anomark/row/v1\0";
-/// Domain tag of a split manifest, version 1.
-const MANIFEST_TAG: &[u8] = b"anomark/manifest/v1\0";
+/// Domain tag of a split manifest, version 2 (over content-hash buckets).
+const MANIFEST_TAG: &[u8] = b"anomark/manifest/v2\0";
 
 /// The blake3 hash of one row's canonical content.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
 pub struct ContentHash(pub [u8; 32]);
 
 impl ContentHash {
+    /// The row's bucket: the big-endian `u16` of the hash's first two bytes
+    /// (the split manifests and the training moments are defined on them).
+    pub fn bucket(&self) -> u16 {
+        u16::from_be_bytes([self.0[0], self.0[1]])
+    }
+
     /// Lowercase hex.
     pub fn to_hex(&self) -> String {
         hex(&self.0)
@@ -253,36 +259,90 @@ pub fn bytes(b: &[u8]) -> String {
     blake3::hash(b).to_hex().to_string()
 }
 
-/// The hash of a split manifest: blake3 over the tag `anomark/manifest/v1\0`
-/// followed by the 32-byte content hashes of the split's rows in ascending
-/// byte order (a hash repeats once per identical row).
+/// The hash of a split manifest, defined on content-hash buckets
+/// ([`ContentHash::bucket`]) so that any partitioning of the rows gives it:
+/// blake3 over the tag `anomark/manifest/v2\0` followed, for each non-empty
+/// bucket in ascending order, by the bucket's number (2 bytes, big-endian)
+/// and its digest ([`manifest_bucket_digest`]: blake3 over the 32-byte
+/// content hashes of the bucket's rows in ascending byte order, a hash
+/// repeated once per identical row). An empty split hashes the tag alone.
 pub fn manifest(hashes: &[ContentHash]) -> String {
     let mut sorted = hashes.to_vec();
     sorted.sort_unstable();
     manifest_of_sorted(sorted.iter())
 }
 
-/// [`manifest`] of hashes given in ascending order (a split's rows are kept
-/// in canonical order), read once and not copied.
-pub fn manifest_of_sorted<'a>(hashes: impl Iterator<Item = &'a ContentHash>) -> String {
+/// One bucket's digest in a split manifest: blake3 over its rows' 32-byte
+/// content hashes, given in ascending byte order.
+pub fn manifest_bucket_digest<'a>(sorted: impl IntoIterator<Item = &'a ContentHash>) -> [u8; 32] {
     let mut h = blake3::Hasher::new();
-    h.update(MANIFEST_TAG);
-    let mut buf = Vec::with_capacity(1 << 16);
     let mut last: Option<&ContentHash> = None;
-    for c in hashes {
+    for c in sorted {
         debug_assert!(
             last.is_none_or(|l| l <= c),
-            "manifest_of_sorted: hashes out of order"
+            "manifest_bucket_digest: hashes out of order"
         );
         last = Some(c);
-        buf.extend_from_slice(&c.0);
-        if buf.len() >= 1 << 16 {
-            h.update(&buf);
-            buf.clear();
+        h.update(&c.0);
+    }
+    *h.finalize().as_bytes()
+}
+
+/// [`manifest`] from the digests of its non-empty buckets computed elsewhere
+/// (each by [`manifest_bucket_digest`]), in any order; a bucket named twice
+/// is refused, since its rows would count twice.
+pub fn manifest_of_buckets(mut buckets: Vec<(u16, [u8; 32])>) -> Result<String> {
+    buckets.sort_by_key(|b| b.0);
+    if let Some(w) = buckets.windows(2).find(|w| w[0].0 == w[1].0) {
+        return Err(Error::internal(format!(
+            "bucket {} of a split manifest is given twice",
+            w[0].0
+        )));
+    }
+    Ok(of_bucket_digests(&buckets))
+}
+
+/// The manifest over its buckets' digests, in ascending bucket order.
+fn of_bucket_digests(buckets: &[(u16, [u8; 32])]) -> String {
+    let mut h = blake3::Hasher::new();
+    h.update(MANIFEST_TAG);
+    for (b, digest) in buckets {
+        h.update(&b.to_be_bytes());
+        h.update(digest);
+    }
+    h.finalize().to_hex().to_string()
+}
+
+/// [`manifest`] of hashes given in ascending order (a split's rows are kept
+/// in canonical order), not copied; the buckets' digests are made on all
+/// cores.
+pub fn manifest_of_sorted<'a>(hashes: impl Iterator<Item = &'a ContentHash>) -> String {
+    use rayon::prelude::*;
+    let hashes: Vec<&ContentHash> = hashes.collect();
+    let mut runs: Vec<std::ops::Range<usize>> = Vec::new();
+    let mut start = 0;
+    for i in 1..=hashes.len() {
+        if i == hashes.len() || hashes[i].bucket() != hashes[start].bucket() {
+            if i > start {
+                runs.push(start..i);
+            }
+            start = i;
         }
     }
-    h.update(&buf);
-    h.finalize().to_hex().to_string()
+    let digests: Vec<(u16, [u8; 32])> = runs
+        .par_iter()
+        .map(|r| {
+            (
+                hashes[r.start].bucket(),
+                manifest_bucket_digest(hashes[r.clone()].iter().copied()),
+            )
+        })
+        .collect();
+    debug_assert!(
+        digests.windows(2).all(|w| w[0].0 < w[1].0),
+        "manifest_of_sorted: hashes out of order"
+    );
+    of_bucket_digests(&digests)
 }
 
 #[cfg(test)]
@@ -433,12 +493,35 @@ mod tests {
         let unsorted = manifest(&many);
         many.sort_unstable();
         assert_eq!(manifest_of_sorted(many.iter()), unsorted);
-        // The definition: blake3 over the tag and the sorted hashes.
+        // The definition written out: blake3 over the tag, then per
+        // non-empty bucket in order its number (big-endian) and the blake3
+        // of its sorted hashes.
         let mut h = blake3::Hasher::new();
-        h.update(MANIFEST_TAG);
+        h.update(b"anomark/manifest/v2\0");
+        let mut per: Vec<(u16, blake3::Hasher)> = Vec::new();
         for c in &many {
-            h.update(&c.0);
+            let b = u16::from_be_bytes([c.0[0], c.0[1]]);
+            if per.last().is_none_or(|l| l.0 != b) {
+                per.push((b, blake3::Hasher::new()));
+            }
+            per.last_mut().unwrap().1.update(&c.0);
+        }
+        let mut digests = Vec::new();
+        for (b, d) in &per {
+            h.update(&b.to_be_bytes());
+            h.update(d.finalize().as_bytes());
+            digests.push((*b, *d.finalize().as_bytes()));
         }
         assert_eq!(unsorted, h.finalize().to_hex().to_string());
+        // From bucket digests computed elsewhere, in any order.
+        digests.reverse();
+        assert_eq!(manifest_of_buckets(digests.clone()).unwrap(), unsorted);
+        digests.push(digests[0]);
+        assert!(manifest_of_buckets(digests).is_err());
+        // An empty split: the tag alone.
+        assert_eq!(
+            manifest(&[]),
+            blake3::hash(b"anomark/manifest/v2\0").to_hex().to_string()
+        );
     }
 }
