@@ -604,6 +604,10 @@ fn execute(
         let names = fitted.names();
         let t = crate::progress::part("feature matrices, train and validation");
         let train = fitted.apply(&data, &splits.train)?;
+        // Checked here, before any detector is fitted.
+        let val_x = SplitFeatures::of(&fitted, &data, &splits.validation)?;
+        drop(t);
+        let t = crate::progress::part("training moments");
         // The Gaussians fit from the training moments on content-hash
         // buckets, the same bits however the rows arrived (`moments`).
         let train_moments = match &streamed {
@@ -615,8 +619,6 @@ fn execute(
             }
             None => None,
         };
-        // Checked here, before any detector is fitted.
-        let val_x = SplitFeatures::of(&fitted, &data, &splits.validation)?;
         drop(t);
         // The candidates of one feature set are independent: fitted side by
         // side, each with the same bits as alone, and kept in spec order (the
