@@ -263,32 +263,44 @@ impl Fold {
         hashes: &[ContentHash],
         x: ArrayView2<'_, f64>,
     ) -> Result<()> {
-        use rayon::prelude::*;
-        if hashes.len() != x.nrows() {
-            return Err(Error::internal(format!(
-                "{} content hashes for {} training rows",
-                hashes.len(),
-                x.nrows()
-            )));
-        }
         debug_assert!(
             hashes.windows(2).all(|w| w[0] <= w[1]),
             "rows in content-hash order"
         );
+        let buckets: Vec<u16> = hashes.iter().map(bucket).collect();
+        self.add_sorted_buckets(&buckets, x)
+    }
+
+    /// [`Fold::add_sorted_rows`] given only each row's bucket (`buckets[i]`
+    /// is row i's), the rows still in ascending content-hash order.
+    pub fn add_sorted_buckets(&mut self, buckets: &[u16], x: ArrayView2<'_, f64>) -> Result<()> {
+        use rayon::prelude::*;
+        if buckets.len() != x.nrows() {
+            return Err(Error::internal(format!(
+                "{} buckets for {} training rows",
+                buckets.len(),
+                x.nrows()
+            )));
+        }
         // The runs of rows sharing a bucket, in bucket order.
         let mut runs: Vec<std::ops::Range<usize>> = Vec::new();
         let mut start = 0;
-        for i in 1..=hashes.len() {
-            if i == hashes.len() || bucket(&hashes[i]) != bucket(&hashes[start]) {
+        for i in 1..=buckets.len() {
+            if i == buckets.len() || buckets[i] != buckets[start] {
+                if buckets.get(i).is_some_and(|&b| b < buckets[start]) {
+                    return Err(Error::internal(
+                        "the training rows are not in content-hash order",
+                    ));
+                }
                 runs.push(start..i);
                 start = i;
             }
         }
         if let (Some(first), Some(last)) = (runs.first(), self.last) {
-            if bucket(&hashes[first.start]) <= last {
+            if buckets[first.start] <= last {
                 return Err(Error::internal(format!(
                     "bucket {} of the training moments is out of order or given twice",
-                    bucket(&hashes[first.start])
+                    buckets[first.start]
                 )));
             }
         }
@@ -314,7 +326,7 @@ impl Fold {
                     .merge_raw(r.len() as u64, mean, m2, &mut self.delta);
             }
             if let Some(r) = stretch.last() {
-                self.last = Some(bucket(&hashes[r.start]));
+                self.last = Some(buckets[r.start]);
             }
         }
         Ok(())
@@ -351,6 +363,14 @@ const TASK: usize = 64;
 pub fn of_sorted_rows(hashes: &[ContentHash], x: ArrayView2<'_, f64>) -> Result<Moments> {
     let mut fold = Fold::new(x.ncols());
     fold.add_sorted_rows(hashes, x)?;
+    Ok(fold.finish())
+}
+
+/// [`of_sorted_rows`] given only each row's bucket (`buckets[i]` is row
+/// i's), the rows in ascending content-hash order.
+pub fn of_sorted_buckets(buckets: &[u16], x: ArrayView2<'_, f64>) -> Result<Moments> {
+    let mut fold = Fold::new(x.ncols());
+    fold.add_sorted_buckets(buckets, x)?;
     Ok(fold.finish())
 }
 

@@ -613,9 +613,12 @@ fn execute(
         let train_moments = match &streamed {
             Some(t) => Some(t.moments[si].clone()),
             None if plan.detectors.iter().any(|&k| detect::fits_from_moments(k)) => {
-                let hs: Vec<hash::ContentHash> =
-                    splits.train.iter().map(|r| hashes[r.0 as usize]).collect();
-                Some(crate::moments::of_sorted_rows(&hs, train.view())?)
+                let buckets: Vec<u16> = splits
+                    .train
+                    .iter()
+                    .map(|r| hashes[r.0 as usize].bucket())
+                    .collect();
+                Some(crate::moments::of_sorted_buckets(&buckets, train.view())?)
             }
             None => None,
         };

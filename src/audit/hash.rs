@@ -304,13 +304,15 @@ pub fn manifest_of_buckets(mut buckets: Vec<(u16, [u8; 32])>) -> Result<String> 
 
 /// The manifest over its buckets' digests, in ascending bucket order.
 fn of_bucket_digests(buckets: &[(u16, [u8; 32])]) -> String {
-    let mut h = blake3::Hasher::new();
-    h.update(MANIFEST_TAG);
+    // One message in one buffer, hashed at once (the crate works on many
+    // chunks side by side only when given them together).
+    let mut msg = Vec::with_capacity(MANIFEST_TAG.len() + 34 * buckets.len());
+    msg.extend_from_slice(MANIFEST_TAG);
     for (b, digest) in buckets {
-        h.update(&b.to_be_bytes());
-        h.update(digest);
+        msg.extend_from_slice(&b.to_be_bytes());
+        msg.extend_from_slice(digest);
     }
-    h.finalize().to_hex().to_string()
+    blake3::hash(&msg).to_hex().to_string()
 }
 
 /// [`manifest_bucket_digest`] of each run of `hashes`, on all cores: the
@@ -338,19 +340,23 @@ fn bucket_digests(hashes: &[&ContentHash], runs: &[std::ops::Range<usize>]) -> V
         .collect();
     let mut out = vec![[0u8; 32]; runs.len()];
     let done: Vec<(usize, [u8; 32])> = groups
-        .par_iter()
-        .flat_map_iter(|&(k, group)| {
-            let len = 32 * k;
-            let mut buf = vec![0u8; LANES * len];
-            for (l, msg) in buf.chunks_exact_mut(len.max(1)).enumerate().take(LANES) {
-                let r = &runs[group[l.min(group.len() - 1)]];
-                for (slot, h) in msg.chunks_exact_mut(32).zip(&hashes[r.clone()]) {
-                    slot.copy_from_slice(&h.0);
+        .par_chunks(64)
+        .flat_map_iter(|task| {
+            let mut buf = vec![0u8; LANES * MAX_LEN];
+            let mut done = Vec::with_capacity(task.len() * LANES);
+            for &(k, group) in task {
+                let len = 32 * k;
+                for (l, msg) in buf.chunks_exact_mut(len).enumerate().take(LANES) {
+                    let r = &runs[group[l.min(group.len() - 1)]];
+                    for (slot, h) in msg.chunks_exact_mut(32).zip(&hashes[r.clone()]) {
+                        slot.copy_from_slice(&h.0);
+                    }
                 }
+                let mut digests = [[0u8; 32]; LANES];
+                hash16(&buf, len, len, &mut digests);
+                done.extend(group.iter().copied().zip(digests));
             }
-            let mut digests = [[0u8; 32]; LANES];
-            hash16(&buf, len, len, &mut digests);
-            group.iter().copied().zip(digests).collect::<Vec<_>>()
+            done
         })
         .chain(long.par_iter().map(|&i| {
             (
