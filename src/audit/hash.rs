@@ -320,7 +320,7 @@ fn of_bucket_digests(buckets: &[(u16, [u8; 32])]) -> String {
 /// by [`super::lanes`], grouped by length (a short last group repeats its
 /// last run, whose extra digests are dropped), longer runs by the crate;
 /// the same bytes either way (`lanes` is tested against the crate).
-fn bucket_digests(hashes: &[&ContentHash], runs: &[std::ops::Range<usize>]) -> Vec<[u8; 32]> {
+fn bucket_digests(hashes: &[ContentHash], runs: &[std::ops::Range<usize>]) -> Vec<[u8; 32]> {
     use super::lanes::{hash16, LANES, MAX_LEN};
     use rayon::prelude::*;
     let most = MAX_LEN / 32;
@@ -358,12 +358,10 @@ fn bucket_digests(hashes: &[&ContentHash], runs: &[std::ops::Range<usize>]) -> V
             }
             done
         })
-        .chain(long.par_iter().map(|&i| {
-            (
-                i,
-                manifest_bucket_digest(hashes[runs[i].clone()].iter().copied()),
-            )
-        }))
+        .chain(
+            long.par_iter()
+                .map(|&i| (i, manifest_bucket_digest(&hashes[runs[i].clone()]))),
+        )
         .collect();
     for (i, digest) in done {
         out[i] = digest;
@@ -375,7 +373,9 @@ fn bucket_digests(hashes: &[&ContentHash], runs: &[std::ops::Range<usize>]) -> V
 /// in canonical order), not copied; the buckets' digests are made on all
 /// cores.
 pub fn manifest_of_sorted<'a>(hashes: impl Iterator<Item = &'a ContentHash>) -> String {
-    let hashes: Vec<&ContentHash> = hashes.collect();
+    // Copied once into one run of memory: a split's rows are read from all
+    // over the table of hashes, and the digests then read them sequentially.
+    let hashes: Vec<ContentHash> = hashes.copied().collect();
     let mut runs: Vec<std::ops::Range<usize>> = Vec::new();
     let mut start = 0;
     for i in 1..=hashes.len() {
