@@ -243,7 +243,7 @@ impl TrainRows {
             }
             for i in 0..k {
                 let hits: Vec<usize> = (0..strides.len())
-                    .filter(|&s| (g + i) % strides[s] == 0)
+                    .filter(|&s| (g + i).is_multiple_of(strides[s]))
                     .collect();
                 if hits.is_empty() {
                     continue;
