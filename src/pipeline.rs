@@ -499,6 +499,21 @@ pub fn recompute(opts: &RunOptions, replay: &Replay) -> Result<RunFiles> {
     .map(|r| r.0)
 }
 
+/// What a streamed reading keeps of the training rows.
+struct StreamedTrain {
+    /// Per feature set: the fitted (parameter-free) features.
+    fitted: Vec<features::FittedFeatures>,
+    /// Per feature set: the training moments.
+    moments: Vec<crate::moments::Moments>,
+    /// The train split's manifest hash.
+    manifest: String,
+    /// Training rows.
+    rows: usize,
+    /// The sampled training rows, and the two samples of them (figures, drift).
+    sample: Dataset,
+    samples: Vec<Vec<RowId>>,
+}
+
 fn execute(
     opts: &RunOptions,
     plan: Plan,
@@ -525,7 +540,7 @@ fn execute(
     // Streamed: the training rows are summarised by moments per feature set
     // and their content hashes; only validation and test rows are kept.
     let (data, hashes, splits, streamed) = if plan.stream {
-        let s = crate::stream::load(&plan, &progress)?;
+        let s = crate::stream::load(&plan, &progress, &[FIGURE_ROWS, record::DRIFT_SAMPLE_ROWS])?;
         let stage = progress.stage("splitting and checking for leakage");
         let splits = split::streamed(
             &s.data,
@@ -535,12 +550,20 @@ fn execute(
             s.train_counts,
         )?;
         drop(stage);
-        let train_manifest = hash::manifest(&s.train_hashes);
+        let train_manifest = hash::manifest_of_sorted(s.train_hashes.iter());
+        let train_rows = s.train_hashes.len();
         (
             s.data,
             s.hashes,
             splits,
-            Some((s.fitted, s.moments, train_manifest)),
+            Some(StreamedTrain {
+                fitted: s.fitted,
+                moments: s.moments,
+                manifest: train_manifest,
+                rows: train_rows,
+                sample: s.train_sample,
+                samples: s.samples,
+            }),
         )
     } else {
         let stage = progress.stage("reading the data");
@@ -575,7 +598,7 @@ fn execute(
     let mut candidates = Vec::new();
     for (si, set) in plan.feature_sets.iter().enumerate() {
         let fitted = match &streamed {
-            Some((f, _, _)) => f[si].clone(),
+            Some(t) => t.fitted[si].clone(),
             None => features::fit(set, &data, &splits.train)?,
         };
         let names = fitted.names();
@@ -583,6 +606,22 @@ fn execute(
         let train = fitted.apply(&data, &splits.train)?;
         // Checked here, before any detector is fitted.
         let val_x = SplitFeatures::of(&fitted, &data, &splits.validation)?;
+        drop(t);
+        let t = crate::progress::part("training moments");
+        // The Gaussians fit from the training moments on content-hash
+        // buckets, the same bits however the rows arrived (`moments`).
+        let train_moments = match &streamed {
+            Some(t) => Some(t.moments[si].clone()),
+            None if plan.detectors.iter().any(|&k| detect::fits_from_moments(k)) => {
+                let buckets: Vec<u16> = splits
+                    .train
+                    .iter()
+                    .map(|r| hashes[r.0 as usize].bucket())
+                    .collect();
+                Some(crate::moments::of_sorted_buckets(&buckets, train.view())?)
+            }
+            None => None,
+        };
         drop(t);
         // The candidates of one feature set are independent: fitted side by
         // side, each with the same bits as alone, and kept in spec order (the
@@ -616,9 +655,11 @@ fn execute(
                         .map_err(|e| in_set(e, set))?
                     } else {
                         let t = crate::progress::part("fitting");
-                        let model = match &streamed {
-                            Some((_, moments, _)) => crate::stream::fit(kind, &moments[si], &names),
-                            None => detect::build(kind).fit(train.view(), &names),
+                        let model = match &train_moments {
+                            Some(m) if detect::fits_from_moments(kind) => {
+                                detect::fit_moments(kind, m, &names)
+                            }
+                            _ => detect::build(kind).fit(train.view(), &names),
                         }
                         .map_err(|e| in_set(e, set))?;
                         drop(t);
@@ -699,8 +740,8 @@ fn execute(
     })
     .collect();
     manifests.insert(Part::Test.name().into(), test_manifest.clone());
-    if let Some((_, _, train_manifest)) = &streamed {
-        manifests.insert(Part::Train.name().into(), train_manifest.clone());
+    if let Some(t) = &streamed {
+        manifests.insert(Part::Train.name().into(), t.manifest.clone());
     }
 
     // Every choice is fixed. Only a final run opens the test split, once, and
@@ -860,6 +901,25 @@ fn execute(
         Some(r) => r.wall_clock.clone(),
         None => measured,
     };
+    // The training rows the card's feature figures and the drift reference
+    // show: every k-th in content-hash order, k = ⌈rows / limit⌉, taken
+    // here from the rows in memory, or kept by the streamed reader (`0` is
+    // its sample for the figures, `1` for the drift reference).
+    let train_rows = match &streamed {
+        Some(t) => t.rows,
+        None => splits.train.len(),
+    };
+    let train_sample = |which: usize, limit: usize| -> (&Dataset, Vec<RowId>, usize) {
+        let stride = train_rows.div_ceil(limit).max(1);
+        match &streamed {
+            Some(t) => (&t.sample, t.samples[which].clone(), stride),
+            None => (
+                &data,
+                splits.train.iter().copied().step_by(stride).collect(),
+                stride,
+            ),
+        }
+    };
     let rec = RunRecord {
         format: record::FORMAT,
         tool: record::tool(),
@@ -915,17 +975,16 @@ fn execute(
             .sorted()
             .to_vec(),
         }),
-        drift_reference: Some(drift_reference(
-            &fitted_sets[candidates[chosen].set],
-            &data,
-            if streamed.is_some() {
-                None
-            } else {
-                Some(&splits.train)
-            },
-            &splits.validation,
-            candidates[chosen].validation.false_positive_rate,
-        )?),
+        drift_reference: Some({
+            let (shown, sampled, stride) = train_sample(1, record::DRIFT_SAMPLE_ROWS);
+            drift_reference(
+                &fitted_sets[candidates[chosen].set],
+                shown,
+                &sampled,
+                (train_rows, stride),
+                candidates[chosen].validation.false_positive_rate,
+            )?
+        }),
         wall_clock,
     };
 
@@ -979,37 +1038,20 @@ fn execute(
     };
     let feature_figures = || -> Result<Vec<plots::Plot>> {
         let _t = crate::progress::part("feature figures");
-        // A streamed run kept no training rows: its figures show the validation
-        // split's normal rows under the density fitted to the training rows.
-        let (shown_rows, shown_as) = if streamed.is_some() {
-            let normal: Vec<RowId> = splits
-                .validation
-                .iter()
-                .copied()
-                .filter(|r| !data.is_anomaly[r.0 as usize])
-                .collect();
-            (
-                normal,
-                "validation normal rows (the training rows were streamed, not kept)",
-            )
-        } else {
-            (splits.train.clone(), "training rows")
-        };
         // A histogram needs no more than a systematic sample: every k-th row in
         // canonical (content-hash) order, so the figure does not depend on the
-        // file's row order and a large run does not copy all its rows again.
-        let stride = shown_rows.len().div_ceil(FIGURE_ROWS).max(1);
-        let sampled: Vec<RowId> = shown_rows.iter().copied().step_by(stride).collect();
+        // file's row order (nor on how the rows were read) and a large run
+        // does not copy all its rows again.
+        let (shown, sampled, stride) = train_sample(0, FIGURE_ROWS);
         let shown_as = if stride > 1 {
             format!(
-                "{shown_as}, one in every {stride} of {} in content-hash order ({} rows)",
-                shown_rows.len(),
+                "training rows, one in every {stride} of {train_rows} in content-hash order ({} rows)",
                 sampled.len()
             )
         } else {
-            shown_as.to_string()
+            "training rows".to_string()
         };
-        let columns = set.columns(&data, &sampled)?;
+        let columns = set.columns(shown, &sampled)?;
         use rayon::prelude::*;
         set.names()
             .par_iter()
@@ -1064,39 +1106,23 @@ fn execute(
 }
 
 /// The drift reference: the chosen feature set's values on a systematic
-/// sample (every k-th row in canonical order, at most
-/// [`record::DRIFT_SAMPLE_ROWS`]) of the training rows, or of the validation
-/// normal rows when the training rows were streamed and not kept.
+/// sample of the training rows (`sampled` of `shown`: every `stride`-th of
+/// the `rows` training rows in canonical order, at most
+/// [`record::DRIFT_SAMPLE_ROWS`]).
 fn drift_reference(
     set: &features::FittedFeatures,
-    data: &data::Dataset,
-    train: Option<&[RowId]>,
-    validation: &[RowId],
+    shown: &data::Dataset,
+    sampled: &[RowId],
+    (rows, stride): (usize, usize),
     fpr: Option<f64>,
 ) -> Result<record::DriftReference> {
-    let (rows, what): (Vec<RowId>, &str) = match train {
-        Some(t) => (t.to_vec(), "training rows"),
-        None => (
-            validation
-                .iter()
-                .copied()
-                .filter(|r| !data.is_anomaly[r.0 as usize])
-                .collect(),
-            "validation normal rows (the training rows were streamed, not kept)",
-        ),
-    };
-    let stride = rows.len().div_ceil(record::DRIFT_SAMPLE_ROWS).max(1);
-    let sampled: Vec<RowId> = rows.iter().copied().step_by(stride).collect();
-    let columns = set.columns(data, &sampled)?;
+    let columns = set.columns(shown, sampled)?;
     Ok(record::DriftReference {
         feature_set: set.set.clone(),
         rows: if stride > 1 {
-            format!(
-                "{what}, one in every {stride} of {} in content-hash order",
-                rows.len()
-            )
+            format!("training rows, one in every {stride} of {rows} in content-hash order")
         } else {
-            format!("all {} {what}", rows.len())
+            format!("all {rows} training rows")
         },
         sample_rows: sampled.len(),
         validation_false_positive_rate: fpr,
