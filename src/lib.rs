@@ -31,6 +31,7 @@ pub mod features;
 pub mod float;
 pub mod init;
 pub mod metrics;
+pub mod moments;
 pub mod output;
 pub mod progress;
 pub mod protocol;

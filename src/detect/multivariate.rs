@@ -8,7 +8,7 @@
 use nalgebra::DMatrix;
 use ndarray::ArrayView2;
 
-use super::{ln, refuse_constant, Detector, Model, Params, HALF_LN_2PI};
+use super::{ln, Detector, Model, Params, HALF_LN_2PI};
 use crate::error::Result;
 use crate::rules;
 
@@ -369,11 +369,15 @@ pub(crate) fn refuse_too_few(detector: &str, m: usize, d: usize) -> Result<()> {
 }
 
 impl Detector for MultivariateGaussian {
+    /// The rows taken as one bucket of [`crate::moments`], in the order
+    /// given (a run fits from the content-hash buckets' moments instead,
+    /// through [`super::fit_moments`], the one place of the refusals).
     fn fit(&self, train: ArrayView2<'_, f64>, features: &[String]) -> Result<Box<dyn Model>> {
-        refuse_constant(NAME, train, features)?;
-        refuse_too_few(NAME, train.nrows(), train.ncols())?;
-        let (mean, cov) = moments(train, None);
-        Ok(Box::new(Fitted(Gaussian::new(mean, cov, NAME, features)?)))
+        super::fit_moments(
+            crate::spec::DetectorKind::MultivariateGaussian,
+            &crate::moments::Moments::of_bucket(train),
+            features,
+        )
     }
 }
 

@@ -3,7 +3,8 @@
 //!
 //! A way of reading is an [`Ingest`]: [`InMemory`] reads every row
 //! (`data::load`, `audit::hash::rows`, `split::assign`), [`Streaming`] reads
-//! the source in bounded chunks and keeps only the training rows' moments
+//! the source in bounded chunks and keeps of the training rows only their
+//! moments and a systematic sample for the figures and the drift reference
 //! (`stream::load`, `split::streamed`). Both return the same [`Ingested`],
 //! which every later stage reads; [`reader`] picks one for a plan. Another
 //! way of reading rows (an engine) is one more type implementing [`Ingest`]
@@ -20,18 +21,19 @@ use crate::audit::leak::Part;
 use crate::data::{self, Dataset, RowId};
 use crate::error::Result;
 use crate::features::FittedFeatures;
+use crate::moments::Moments;
 use crate::progress::Progress;
 use crate::spec::Plan;
 use crate::split::{self, Counts, SealedTest, SplitReport};
-use crate::stream::Moments;
 
 /// How the training rows reached the fit.
 pub enum Training {
     /// Every training row is held in [`Rows::data`] (the rows [`Rows::train`]).
     Rows,
     /// The training rows were summarised and dropped: per feature set, the
-    /// fitted (parameter-free) features and the rows' moments, and the train
-    /// manifest computed while they passed.
+    /// fitted (parameter-free) features and the rows' moments, the train
+    /// manifest computed while they passed, and a systematic sample of them
+    /// kept for the figures and the drift reference.
     Moments {
         /// Per feature set, its fitted features.
         fitted: Vec<FittedFeatures>,
@@ -39,6 +41,12 @@ pub enum Training {
         moments: Vec<Moments>,
         /// The train split's manifest hash.
         manifest: String,
+        /// How many training rows there were.
+        rows: usize,
+        /// The sampled training rows (source columns), in content-hash order.
+        sample: Box<Dataset>,
+        /// The rows of `sample` for each of [`SAMPLE_LIMITS`].
+        samples: Vec<Vec<RowId>>,
     },
 }
 
@@ -65,6 +73,20 @@ pub struct Ingested {
     /// The test rows, sealed until the test opening.
     pub test: SealedTest,
 }
+
+/// The sample sizes a reader that drops the training rows keeps them for:
+/// the feature figures' ([`FIGURES`]) and the drift reference's ([`DRIFT`]).
+pub const SAMPLE_LIMITS: [usize; 2] = [FIGURE_ROWS, crate::record::DRIFT_SAMPLE_ROWS];
+
+/// At most this many training rows feed each feature figure (a systematic
+/// sample above).
+pub const FIGURE_ROWS: usize = 200_000;
+
+/// Which of [`SAMPLE_LIMITS`] the feature figures use.
+pub const FIGURES: usize = 0;
+
+/// Which of [`SAMPLE_LIMITS`] the drift reference uses.
+pub const DRIFT: usize = 1;
 
 /// A way of reading a plan's rows into [`Ingested`].
 pub trait Ingest {
@@ -116,7 +138,7 @@ impl Ingest for InMemory {
 
 impl Ingest for Streaming {
     fn ingest(&self, plan: &Plan, progress: &Progress) -> Result<Ingested> {
-        let s = crate::stream::load(plan, progress)?;
+        let s = crate::stream::load(plan, progress, &SAMPLE_LIMITS)?;
         let stage = progress.stage("splitting and checking for leakage");
         let splits = split::streamed(
             &s.data,
@@ -129,7 +151,10 @@ impl Ingest for Streaming {
         let training = Training::Moments {
             fitted: s.fitted,
             moments: s.moments,
-            manifest: hash::manifest(&s.train_hashes),
+            manifest: hash::manifest_of_sorted(s.train_hashes.iter()),
+            rows: s.train_hashes.len(),
+            sample: Box::new(s.train_sample),
+            samples: s.samples,
         };
         Ok(Ingested::of(s.data, s.hashes, splits, training))
     }
@@ -204,14 +229,30 @@ impl Rows {
             .collect()
     }
 
-    /// The normal validation rows (what the figures and the drift
-    /// reference show when the training rows were not kept).
-    pub fn validation_normals(&self) -> Vec<RowId> {
-        self.validation
-            .iter()
-            .copied()
-            .filter(|r| !self.data.is_anomaly[r.0 as usize])
-            .collect()
+    /// How many training rows there were.
+    pub fn train_rows(&self) -> usize {
+        match &self.training {
+            Training::Moments { rows, .. } => *rows,
+            Training::Rows => self.train.len(),
+        }
+    }
+
+    /// A systematic sample of the training rows for the limit
+    /// `SAMPLE_LIMITS[which]`: every k-th in content-hash order, k = ⌈rows /
+    /// limit⌉, taken from the rows held, or kept by the reader that dropped
+    /// them. Returns the rows' dataset, the sampled rows and k.
+    pub fn train_sample(&self, which: usize) -> (&Dataset, Vec<RowId>, usize) {
+        let stride = self.train_rows().div_ceil(SAMPLE_LIMITS[which]).max(1);
+        match &self.training {
+            Training::Moments {
+                sample, samples, ..
+            } => (sample, samples[which].clone(), stride),
+            Training::Rows => (
+                &self.data,
+                self.train.iter().copied().step_by(stride).collect(),
+                stride,
+            ),
+        }
     }
 }
 

@@ -6,7 +6,7 @@
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
-use super::ingest::Rows;
+use super::ingest::{self, Rows};
 use super::open::Opened;
 use super::{choose, fit, wording};
 use crate::audit::leak::Part;
@@ -163,17 +163,16 @@ pub(crate) fn record(
             .sorted()
             .to_vec(),
         }),
-        drift_reference: Some(drift_reference(
-            &fitted.sets[best.set],
-            data,
-            if rows.streamed() {
-                None
-            } else {
-                Some(&rows.train)
-            },
-            &rows.validation,
-            best.validation.false_positive_rate,
-        )?),
+        drift_reference: Some({
+            let (shown, sampled, stride) = rows.train_sample(ingest::DRIFT);
+            drift_reference(
+                &fitted.sets[best.set],
+                shown,
+                &sampled,
+                (rows.train_rows(), stride),
+                best.validation.false_positive_rate,
+            )?
+        }),
         wall_clock: header.wall_clock,
     })
 }
@@ -242,31 +241,21 @@ pub(crate) fn files(
     };
     let feature_figures = || -> Result<Vec<plots::Plot>> {
         let _t = crate::progress::part("feature figures");
-        // A streamed run kept no training rows: its figures show the validation
-        // split's normal rows under the density fitted to the training rows.
-        let (shown_rows, shown_as) = if rows.streamed() {
-            (
-                rows.validation_normals(),
-                "validation normal rows (the training rows were streamed, not kept)",
-            )
-        } else {
-            (rows.train.clone(), "training rows")
-        };
         // A histogram needs no more than a systematic sample: every k-th row in
         // canonical (content-hash) order, so the figure does not depend on the
-        // file's row order and a large run does not copy all its rows again.
-        let stride = shown_rows.len().div_ceil(FIGURE_ROWS).max(1);
-        let sampled: Vec<RowId> = shown_rows.iter().copied().step_by(stride).collect();
+        // file's row order (nor on how the rows were read) and a large run
+        // does not copy all its rows again.
+        let (shown, sampled, stride) = rows.train_sample(ingest::FIGURES);
         let shown_as = if stride > 1 {
             format!(
-                "{shown_as}, one in every {stride} of {} in content-hash order ({} rows)",
-                shown_rows.len(),
+                "training rows, one in every {stride} of {} in content-hash order ({} rows)",
+                rows.train_rows(),
                 sampled.len()
             )
         } else {
-            shown_as.to_string()
+            "training rows".to_string()
         };
-        let columns = set.columns(data, &sampled)?;
+        let columns = set.columns(shown, &sampled)?;
         use rayon::prelude::*;
         set.names()
             .par_iter()
@@ -328,39 +317,23 @@ pub(crate) fn summary(rec: &RunRecord, warnings: Vec<String>) -> Result<RunSumma
 }
 
 /// The drift reference: the chosen feature set's values on a systematic
-/// sample (every k-th row in canonical order, at most
-/// [`record::DRIFT_SAMPLE_ROWS`]) of the training rows, or of the validation
-/// normal rows when the training rows were streamed and not kept.
+/// sample of the training rows (`sampled` of `shown`: every `stride`-th of
+/// the `rows` training rows in canonical order, at most
+/// [`record::DRIFT_SAMPLE_ROWS`]).
 fn drift_reference(
     set: &features::FittedFeatures,
-    data: &data::Dataset,
-    train: Option<&[RowId]>,
-    validation: &[RowId],
+    shown: &data::Dataset,
+    sampled: &[RowId],
+    (rows, stride): (usize, usize),
     fpr: Option<f64>,
 ) -> Result<record::DriftReference> {
-    let (rows, what): (Vec<RowId>, &str) = match train {
-        Some(t) => (t.to_vec(), "training rows"),
-        None => (
-            validation
-                .iter()
-                .copied()
-                .filter(|r| !data.is_anomaly[r.0 as usize])
-                .collect(),
-            "validation normal rows (the training rows were streamed, not kept)",
-        ),
-    };
-    let stride = rows.len().div_ceil(record::DRIFT_SAMPLE_ROWS).max(1);
-    let sampled: Vec<RowId> = rows.iter().copied().step_by(stride).collect();
-    let columns = set.columns(data, &sampled)?;
+    let columns = set.columns(shown, sampled)?;
     Ok(record::DriftReference {
         feature_set: set.set.clone(),
         rows: if stride > 1 {
-            format!(
-                "{what}, one in every {stride} of {} in content-hash order",
-                rows.len()
-            )
+            format!("training rows, one in every {stride} of {rows} in content-hash order")
         } else {
-            format!("all {} {what}", rows.len())
+            format!("all {rows} training rows")
         },
         sample_rows: sampled.len(),
         validation_false_positive_rate: fpr,
@@ -372,9 +345,6 @@ fn drift_reference(
             .collect(),
     })
 }
-
-/// At most this many rows feed each feature figure (a systematic sample above).
-const FIGURE_ROWS: usize = 200_000;
 
 fn by_name(counts: [split::Counts; 3]) -> std::collections::BTreeMap<String, split::Counts> {
     Part::ALL

@@ -1,8 +1,12 @@
 //! The second stage, one feature set at a time: the features fitted on the
 //! training rows, the training data a detector is fitted from (the rows'
-//! feature matrix, or their moments when streamed) and the validation
-//! features, every refused value reported before any detector is fitted.
+//! feature matrix, and their moments on content-hash buckets for the
+//! detectors that fit from moments, the only data a streamed run keeps) and
+//! the validation features, every refused value reported before any
+//! detector is fitted.
 //! Also the features of any split and its checked scores.
+
+use std::borrow::Cow;
 
 use ndarray::Array2;
 
@@ -11,19 +15,11 @@ use crate::data::{Dataset, RowId};
 use crate::detect::{self, Model};
 use crate::error::{Error, Result};
 use crate::features::{self, FittedFeatures};
+use crate::moments::Moments;
 use crate::spec::{DetectorKind, Plan};
-use crate::stream::Moments;
 
 /// Rows per block when scoring.
 pub(crate) const SCORE_BLOCK: usize = 8192;
-
-/// What a detector of one feature set is fitted from.
-enum TrainingData<'a> {
-    /// The training rows' feature matrix.
-    Rows(Array2<f64>),
-    /// The training rows' moments (a streamed run).
-    Moments(&'a Moments),
-}
 
 /// One feature set, ready for its detectors.
 pub(crate) struct SetTraining<'a> {
@@ -31,7 +27,11 @@ pub(crate) struct SetTraining<'a> {
     pub fitted: FittedFeatures,
     /// Their names.
     pub names: Vec<String>,
-    train: TrainingData<'a>,
+    /// The training rows' feature matrix (empty when the rows were streamed).
+    train: Array2<f64>,
+    /// The training rows' moments on content-hash buckets, when a detector
+    /// fits from them: the reader's, or computed here from the rows.
+    moments: Option<Cow<'a, Moments>>,
     /// The validation rows' features.
     pub validation: SplitFeatures,
 }
@@ -40,7 +40,7 @@ pub(crate) struct SetTraining<'a> {
 /// made and the validation features checked (a refused value is reported
 /// here, before any detector is fitted).
 pub(crate) fn of_set<'a>(plan: &Plan, rows: &'a Rows, si: usize) -> Result<SetTraining<'a>> {
-    let (fitted, moments) = match &rows.training {
+    let (fitted, streamed) = match &rows.training {
         Training::Moments {
             fitted, moments, ..
         } => (fitted[si].clone(), Some(&moments[si])),
@@ -54,25 +54,41 @@ pub(crate) fn of_set<'a>(plan: &Plan, rows: &'a Rows, si: usize) -> Result<SetTr
     let train = fitted.apply(&rows.data, &rows.train)?;
     let validation = SplitFeatures::of(&fitted, &rows.data, &rows.validation)?;
     drop(t);
-    let train = match moments {
-        Some(m) => TrainingData::Moments(m),
-        None => TrainingData::Rows(train),
+    let t = crate::progress::part("training moments");
+    // The Gaussians fit from the training moments on content-hash buckets,
+    // the same bits however the rows arrived (`moments`).
+    let moments = match streamed {
+        Some(m) => Some(Cow::Borrowed(m)),
+        None if plan.detectors.iter().any(|&k| detect::fits_from_moments(k)) => {
+            let buckets: Vec<u16> = rows
+                .train
+                .iter()
+                .map(|r| rows.hashes[r.0 as usize].bucket())
+                .collect();
+            Some(Cow::Owned(crate::moments::of_sorted_buckets(
+                &buckets,
+                train.view(),
+            )?))
+        }
+        None => None,
     };
+    drop(t);
     Ok(SetTraining {
         fitted,
         names,
         train,
+        moments,
         validation,
     })
 }
 
 impl SetTraining<'_> {
     /// A detector of kind `kind` (fitted in process) fitted on the training
-    /// data: from the rows, or from their moments.
+    /// data: from the moments when it fits from them, else from the rows.
     pub fn fit(&self, kind: DetectorKind) -> Result<Box<dyn Model>> {
-        match &self.train {
-            TrainingData::Moments(m) => crate::stream::fit(kind, m, &self.names),
-            TrainingData::Rows(x) => detect::build(kind).fit(x.view(), &self.names),
+        match &self.moments {
+            Some(m) if detect::fits_from_moments(kind) => detect::fit_moments(kind, m, &self.names),
+            _ => detect::build(kind).fit(self.train.view(), &self.names),
         }
     }
 }
