@@ -105,13 +105,7 @@ fn a_missing_column_is_a_problem_with_a_suggestion() {
 /// feature set.
 #[test]
 fn a_constant_feature_is_reported_as_the_run_refuses_it() {
-    let r: crate::util::Rows = rows(100, 4, 1)
-        .into_iter()
-        .map(|(id, mut x, a)| {
-            x[2] = 4.0;
-            (id, x, a)
-        })
-        .collect();
+    let r = crate::util::with_constant_c(rows(100, 4, 1));
     let d = standard(&r).args(["check", "spec.yaml"]).exec();
     assert_eq!(d.code, 1, "{}{}", d.stdout, d.stderr);
     let run = standard(&r).run_spec().fails(3, &["`c`"]);
