@@ -770,7 +770,7 @@ fn execute(
         };
         let same: Vec<&crate::audit::ledger::Entry> = entries
             .iter()
-            .filter(|e| e.test_manifest == test_manifest)
+            .filter(|e| splits.test.is_recorded_by(&e.test_manifest))
             .collect();
         let mut specs: Vec<String> = same.iter().map(|e| e.spec_blake3.clone()).collect();
         specs.sort();
