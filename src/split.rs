@@ -40,6 +40,9 @@ pub struct SealedTest {
     rows: Vec<RowId>,
     counts: Counts,
     manifest: String,
+    /// The manifest in the earlier format (see
+    /// [`crate::audit::hash::manifest_v1_of_sorted`]), for the ledger only.
+    manifest_v1: String,
 }
 
 impl SealedTest {
@@ -51,6 +54,13 @@ impl SealedTest {
     /// The blake3 of the test split's manifest (hashing is not opening).
     pub fn manifest(&self) -> &str {
         &self.manifest
+    }
+
+    /// Whether a test-ledger entry records an opening of this split: its
+    /// manifest, or the earlier format's (entries written before manifests
+    /// were bucketed), so that an opening then still counts.
+    pub fn is_recorded_by(&self, ledger_manifest: &str) -> bool {
+        ledger_manifest == self.manifest || ledger_manifest == self.manifest_v1
     }
 
     /// The content hashes of the test rows, for comparing splits between
@@ -317,6 +327,9 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
             manifest: crate::audit::hash::manifest_of_sorted(
                 test.iter().map(|r| &hashes[r.0 as usize]),
             ),
+            manifest_v1: crate::audit::hash::manifest_v1_of_sorted(
+                test.iter().map(|r| &hashes[r.0 as usize]),
+            ),
             rows: test,
             counts: counts[2],
         },
@@ -436,6 +449,11 @@ pub fn streamed(
         validation,
         test: SealedTest {
             manifest: crate::audit::hash::manifest(&test),
+            manifest_v1: {
+                let mut sorted = test.clone();
+                sorted.sort_unstable();
+                crate::audit::hash::manifest_v1_of_sorted(sorted.iter())
+            },
             rows: test_rows,
             counts: counts[2],
         },
@@ -891,6 +909,32 @@ mod tests {
                 prop_assert_eq!(pa, pb);
             }
         }
+    }
+
+    /// A ledger entry written before manifests were bucketed names the test
+    /// split by `anomark/manifest/v1`: blake3 of the tag and the rows'
+    /// content hashes in ascending order, written out here from that
+    /// definition. The split recognises it, and its current manifest, and
+    /// nothing else.
+    #[test]
+    fn the_test_split_recognises_ledger_entries_of_both_formats() {
+        let rows: Vec<(u32, bool, u32, u32)> = (0..200u32).map(|i| (i, i >= 180, i, i)).collect();
+        let (data, hashes) = dataset(&rows);
+        let s = assign(&plans(7)[0], &data, &hashes).unwrap();
+        let mut test = s.test.contents(&hashes);
+        test.sort_unstable();
+        let mut h = blake3::Hasher::new();
+        h.update(b"anomark/manifest/v1\0");
+        for c in &test {
+            h.update(&c.0);
+        }
+        let v1 = h.finalize().to_hex().to_string();
+        assert!(s.test.is_recorded_by(&v1));
+        assert!(s.test.is_recorded_by(s.test.manifest()));
+        assert_ne!(v1, s.test.manifest());
+        assert!(!s
+            .test
+            .is_recorded_by(&crate::audit::hash::manifest(&test[1..])));
     }
 
     #[test]

@@ -272,6 +272,26 @@ pub fn manifest(hashes: &[ContentHash]) -> String {
     manifest_of_sorted(sorted.iter())
 }
 
+/// A split manifest in the earlier format, `anomark/manifest/v1`: blake3
+/// over the tag `anomark/manifest/v1\0` and the rows' 32-byte content
+/// hashes in ascending order. Runs no longer record it; it is computed only
+/// to recognise the test-ledger entries that runs before the bucketed format
+/// recorded, so that a test split opened then still counts as opened.
+pub fn manifest_v1_of_sorted<'a>(hashes: impl Iterator<Item = &'a ContentHash>) -> String {
+    let mut h = blake3::Hasher::new();
+    h.update(b"anomark/manifest/v1\0");
+    let mut buf = Vec::with_capacity(1 << 16);
+    for c in hashes {
+        buf.extend_from_slice(&c.0);
+        if buf.len() >= 1 << 16 {
+            h.update(&buf);
+            buf.clear();
+        }
+    }
+    h.update(&buf);
+    h.finalize().to_hex().to_string()
+}
+
 /// One bucket's digest in a split manifest: blake3 over its rows' 32-byte
 /// content hashes, given in ascending byte order.
 pub fn manifest_bucket_digest<'a>(sorted: impl IntoIterator<Item = &'a ContentHash>) -> [u8; 32] {

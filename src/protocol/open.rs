@@ -92,7 +92,7 @@ pub(crate) fn test(
     };
     let same: Vec<&ledger::Entry> = entries
         .iter()
-        .filter(|e| e.test_manifest == test_manifest)
+        .filter(|e| sealed.is_recorded_by(&e.test_manifest))
         .collect();
     let mut specs: Vec<String> = same.iter().map(|e| e.spec_blake3.clone()).collect();
     specs.sort();
