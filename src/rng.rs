@@ -137,6 +137,17 @@ fn stirling_tail(k: f64) -> f64 {
 /// region, else when v·α/(a/u_s² + b) ≤ f(k)/f(m), the exact ratio of
 /// binomial probabilities ([`BtrsRatio::accepts`]).
 fn binomial_btrs(rng: &mut ChaCha8Rng, n: u64, p: f64) -> u64 {
+    btrs_with(rng, n, p, BtrsRatio::accepts)
+}
+
+/// BTRS with the given form of its acceptance test (the tests compare the
+/// product form with the logarithm form on whole draws).
+fn btrs_with(
+    rng: &mut ChaCha8Rng,
+    n: u64,
+    p: f64,
+    accepts: impl Fn(&BtrsRatio, f64, f64) -> bool,
+) -> u64 {
     let nf = n as f64;
     let spq = (nf * p * (1.0 - p)).sqrt();
     let b = 1.15 + 2.53 * spq;
@@ -163,7 +174,7 @@ fn binomial_btrs(rng: &mut ChaCha8Rng, n: u64, p: f64) -> u64 {
         if us >= 0.07 && v <= v_r {
             return k as u64;
         }
-        if ratio.accepts(v * alpha / (a / (us * us) + b), k) {
+        if accepts(&ratio, v * alpha / (a / (us * us) + b), k) {
             return k as u64;
         }
     }
@@ -397,41 +408,12 @@ mod binomial_tests {
             assert_eq!(same, near, "n {n} p {p}");
         }
         // Whole draws: the sampler against one that always takes logarithms.
-        fn log_only(rng: &mut ChaCha8Rng, n: u64, p: f64) -> u64 {
-            let nf = n as f64;
-            let spq = (nf * p * (1.0 - p)).sqrt();
-            let b = 1.15 + 2.53 * spq;
-            let a = -0.0873 + 0.0248 * b + 0.01 * p;
-            let c = nf * p + 0.5;
-            let v_r = 0.92 - 4.2 / b;
-            let alpha = (2.83 + 5.1 / b) * spq;
-            let t = BtrsRatio {
-                n: nf,
-                r: p / (1.0 - p),
-                m: ((nf + 1.0) * p).floor(),
-            };
-            loop {
-                let u = unit(rng) - 0.5;
-                let v = unit(rng);
-                let us = 0.5 - u.abs();
-                if us <= 0.0 {
-                    continue;
-                }
-                let k = ((2.0 * a / us + b) * u + c).floor();
-                if k < 0.0 || k > nf {
-                    continue;
-                }
-                if (us >= 0.07 && v <= v_r) || t.log_accepts(v * alpha / (a / (us * us) + b), k) {
-                    return k as u64;
-                }
-            }
-        }
         for &(n, p) in &[(100u64, 0.2), (20_000, 0.004), (3_000_000, 0.4)] {
             let (mut x, mut y) = (seeded(11, n), seeded(11, n));
             for _ in 0..100_000 {
                 assert_eq!(
                     binomial_btrs(&mut x, n, p),
-                    log_only(&mut y, n, p),
+                    btrs_with(&mut y, n, p, BtrsRatio::log_accepts),
                     "n {n} p {p}"
                 );
             }

@@ -5,29 +5,39 @@
 
 use crate::util::*;
 
-/// Rows with a fixed split column: normals 60/20/20, anomalies half and half.
-fn with_split(r: &Rows) -> String {
-    let normals = r.iter().filter(|x| !x.2).count();
-    let mut s = String::from("id,a,b,c,label,split\n");
+/// The split column's values for rows in order (`true`: an anomaly):
+/// normals 60/20/20 by their order, anomalies alternating test and
+/// validation.
+fn split_values(anomalous: impl Iterator<Item = bool> + Clone) -> Vec<&'static str> {
+    let normals = anomalous.clone().filter(|a| !a).count();
     let (mut n, mut k) = (0, 0);
-    for (id, x, a) in r {
-        let split = if *a {
-            k += 1;
-            if k % 2 == 0 {
-                "validation"
+    anomalous
+        .map(|a| {
+            if a {
+                k += 1;
+                if k % 2 == 0 {
+                    "validation"
+                } else {
+                    "test"
+                }
             } else {
-                "test"
+                n += 1;
+                if n * 10 <= normals * 6 {
+                    "train"
+                } else if n * 10 <= normals * 8 {
+                    "validation"
+                } else {
+                    "test"
+                }
             }
-        } else {
-            n += 1;
-            if n * 10 <= normals * 6 {
-                "train"
-            } else if n * 10 <= normals * 8 {
-                "validation"
-            } else {
-                "test"
-            }
-        };
+        })
+        .collect()
+}
+
+/// Rows with a fixed split column ([`split_values`]).
+fn with_split(r: &Rows) -> String {
+    let mut s = String::from("id,a,b,c,label,split\n");
+    for ((id, x, a), split) in r.iter().zip(split_values(r.iter().map(|x| x.2))) {
         s.push_str(&format!(
             "{id},{:.6},{:.6},{:.6},{},{split}\n",
             x[0],
@@ -217,27 +227,11 @@ fn the_pump_housing_example_streams_to_the_same_bytes() {
     let mut lines = demo.lines();
     let header = lines.next().unwrap();
     let rows: Vec<&str> = lines.collect();
-    let normals = rows.iter().filter(|l| l.ends_with(",pass")).count();
-    let (mut n, mut k) = (0, 0);
     let mut text = format!("{header},split\n");
-    for l in &rows {
-        let split = if l.ends_with(",fail") {
-            k += 1;
-            if k % 2 == 0 {
-                "validation"
-            } else {
-                "test"
-            }
-        } else {
-            n += 1;
-            if n * 10 <= normals * 6 {
-                "train"
-            } else if n * 10 <= normals * 8 {
-                "validation"
-            } else {
-                "test"
-            }
-        };
+    for (l, split) in rows
+        .iter()
+        .zip(split_values(rows.iter().map(|l| l.ends_with(",fail"))))
+    {
         text.push_str(&format!("{l},{split}\n"));
     }
     let example =
