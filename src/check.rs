@@ -11,14 +11,13 @@ use std::collections::BTreeMap;
 use std::fmt::Write as _;
 use std::path::Path;
 
-use crate::audit::hash;
 use crate::audit::leak::Part;
 use crate::data::{self, Dataset};
 use crate::error::{Error, Result};
 use crate::features;
 use crate::record::fmt_f64;
 use crate::spec::{self, MissingPolicy, Plan};
-use crate::split::{self, Counts};
+use crate::split::Counts;
 
 /// |skewness| above which a feature is called far from Gaussian: the usual
 /// rule of thumb for a highly skewed sample (Bulmer 1979, "Principles of
@@ -167,9 +166,12 @@ pub fn check(spec_path: &Path) -> Result<CheckReport> {
 }
 
 fn preview(plan: &Plan, data: &Dataset, missing_share: &[f64], report: &mut CheckReport) {
-    let hashes = hash::rows(&data.x, &data.is_anomaly);
-    let splits = match split::assign(&plan.split, data, &hashes) {
-        Ok(s) => s,
+    let splits = match crate::protocol::ingest::hash_and_split(
+        plan,
+        data,
+        &crate::progress::Progress::hidden(),
+    ) {
+        Ok((_, s)) => s,
         Err(e) => {
             report.problems.push(e.to_string());
             return;
@@ -209,11 +211,11 @@ fn preview(plan: &Plan, data: &Dataset, missing_share: &[f64], report: &mut Chec
             let min = v.iter().copied().fold(f64::INFINITY, f64::min);
             let max = v.iter().copied().fold(f64::NEG_INFINITY, f64::max);
             if min == max {
+                let e = crate::rules::zero_variance("", vec![f.name.clone()]);
                 report.problems.push(
-                    Error::Fit {
-                        detector: format!("feature set `{}`", set.name),
-                        message: "a feature has zero variance on the would-be training rows".into(),
-                        features: vec![f.name.clone()],
+                    Error::InFeatureSet {
+                        set: set.name.clone(),
+                        source: Box::new(e),
                     }
                     .to_string(),
                 );

@@ -7,8 +7,8 @@ use std::path::PathBuf;
 use clap::{Parser, Subcommand};
 use clap_complete::Shell;
 
-use crate::pipeline::RunOptions;
 use crate::progress::Progress;
+use crate::protocol::RunOptions;
 use crate::score::ScoreOptions;
 use crate::Request;
 

@@ -185,8 +185,8 @@ fn test_scores(dir: &Path, column: &str) -> Result<BTreeMap<String, (bool, f64)>
 /// spec copy and the data it names, which must still have the recorded
 /// hashes (split assignment only: nothing is fitted or scored).
 fn rows_of(dir: &Path) -> Result<BTreeMap<crate::audit::hash::ContentHash, Vec<&'static str>>> {
-    let spec = crate::pipeline::recorded_spec_path(dir)?;
-    let copy = dir.join(crate::pipeline::SPEC_COPY);
+    let spec = crate::protocol::recorded_spec_path(dir)?;
+    let copy = dir.join(crate::protocol::SPEC_COPY);
     let bytes = std::fs::read(&copy).map_err(|e| Error::io(&copy, "reading", e))?;
     let plan = crate::spec::parse(&spec, bytes)?;
     let data = crate::data::load(&plan)?;
@@ -207,8 +207,11 @@ fn rows_of(dir: &Path) -> Result<BTreeMap<crate::audit::hash::ContentHash, Vec<&
             message: "its inputs changed since the run".into(),
         });
     }
-    let hashes = crate::audit::hash::rows(&data.x, &data.is_anomaly);
-    let s = crate::split::assign(&plan.split, &data, &hashes)?;
+    let (hashes, s) = crate::protocol::ingest::hash_and_split(
+        &plan,
+        &data,
+        &crate::progress::Progress::hidden(),
+    )?;
     let mut out: BTreeMap<_, Vec<&'static str>> = BTreeMap::new();
     for r in &s.train {
         out.entry(hashes[r.0 as usize]).or_default().push("train");
@@ -264,7 +267,7 @@ pub fn diff(old: &Path, new: &Path) -> Result<Diff> {
         }
     }
     let spec = |d: &Path| -> Value {
-        std::fs::read_to_string(d.join(crate::pipeline::SPEC_COPY))
+        std::fs::read_to_string(d.join(crate::protocol::SPEC_COPY))
             .ok()
             .and_then(|t| serde_saphyr::from_str::<Value>(&t).ok())
             .unwrap_or(Value::Null)

@@ -111,9 +111,11 @@ pub enum Error {
         /// What is missing or wrong.
         message: String,
     },
-    /// A detector cannot be fitted to the training rows.
+    /// A detector (or a feature's transform) cannot be fitted to the
+    /// training rows.
     Fit {
-        /// The detector.
+        /// The detector; empty where none is being fitted yet (a transform,
+        /// `check`'s preview), the feature set then wrapping the error.
         detector: String,
         /// What went wrong.
         message: String,
@@ -197,6 +199,24 @@ pub enum Error {
         /// What was being done and the engine's reason.
         message: String,
     },
+    /// An error met on one file: the inner error, with the file it
+    /// concerns (context added by wrapping; the exit code is the inner
+    /// error's).
+    InFile {
+        /// The file, as the user knows it.
+        path: PathBuf,
+        /// What went wrong there.
+        source: Box<Error>,
+    },
+    /// An error met on one candidate (a feature set's detector): the inner
+    /// error, with the candidate's name (context added by wrapping; the
+    /// exit code is the inner error's).
+    InCandidate {
+        /// The candidate's name.
+        name: String,
+        /// What went wrong there.
+        source: Box<Error>,
+    },
     /// A bug.
     Internal {
         /// What went wrong.
@@ -221,7 +241,9 @@ impl Error {
             | Error::Template { .. } => exit::IO,
             Error::Verify { .. } => exit::VERIFY_FAILED,
             Error::Engine { .. } => exit::ENGINE,
-            Error::InFeatureSet { source, .. } => source.code(),
+            Error::InFeatureSet { source, .. }
+            | Error::InFile { source, .. }
+            | Error::InCandidate { source, .. } => source.code(),
             Error::Internal { .. } => exit::INTERNAL,
         }
     }
@@ -232,6 +254,22 @@ impl Error {
             path: path.into(),
             action,
             source,
+        }
+    }
+
+    /// This error, met on the file `path`.
+    pub fn in_file(self, path: impl Into<PathBuf>) -> Self {
+        Error::InFile {
+            path: path.into(),
+            source: Box::new(self),
+        }
+    }
+
+    /// This error, met on the candidate `name`.
+    pub fn in_candidate(self, name: impl Into<String>) -> Self {
+        Error::InCandidate {
+            name: name.into(),
+            source: Box::new(self),
         }
     }
 
@@ -326,6 +364,8 @@ impl fmt::Display for Error {
                 splits.0, splits.1, first.0, first.1
             ),
             Error::InFeatureSet { set, source } => write!(f, "feature set `{set}`: {source}"),
+            Error::InFile { path, source } => write!(f, "file `{}`: {source}", path.display()),
+            Error::InCandidate { name, source } => write!(f, "candidate `{name}`: {source}"),
             Error::Protocol { message } => write!(f, "{message}"),
             Error::Usage { message } => write!(f, "{message}"),
             Error::Fit {
@@ -333,7 +373,12 @@ impl fmt::Display for Error {
                 message,
                 features,
             } => {
-                write!(f, "detector `{detector}`: {message}")?;
+                // No detector yet (a transform, `check`'s preview): the
+                // caller wraps the error in its feature set.
+                if !detector.is_empty() {
+                    write!(f, "detector `{detector}`: ")?;
+                }
+                write!(f, "{message}")?;
                 if !features.is_empty() {
                     write!(f, " (features: {})", list(features))?;
                 }
@@ -403,7 +448,9 @@ impl std::error::Error for Error {
     fn source(&self) -> Option<&(dyn std::error::Error + 'static)> {
         match self {
             Error::Io { source, .. } => Some(source),
-            Error::InFeatureSet { source, .. } => Some(source.as_ref()),
+            Error::InFeatureSet { source, .. }
+            | Error::InFile { source, .. }
+            | Error::InCandidate { source, .. } => Some(source.as_ref()),
             _ => None,
         }
     }
@@ -498,6 +545,25 @@ mod tests {
         };
         assert_eq!(e.to_string(), "`run` needs `--key PATH`");
         assert_eq!(e.code(), exit::USAGE);
+    }
+
+    #[test]
+    fn a_wrapper_keeps_the_inner_message_whole_and_its_exit_code() {
+        let inner = || Error::Fit {
+            detector: String::new(),
+            message: "the score of line 4 is not a number".into(),
+            features: vec![],
+        };
+        let e = inner().in_candidate("a/gaussian");
+        assert_eq!(
+            e.to_string(),
+            "candidate `a/gaussian`: the score of line 4 is not a number"
+        );
+        assert_eq!(e.code(), exit::DATA);
+        let e = Error::io("d.csv", "reading", std::io::ErrorKind::NotFound.into()).in_file("d.csv");
+        assert!(e.to_string().starts_with("file `d.csv`: reading `d.csv`: "));
+        assert_eq!(e.code(), exit::IO);
+        assert!(std::error::Error::source(&e).is_some());
     }
 
     #[test]

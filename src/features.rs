@@ -357,11 +357,7 @@ fn refuse_beyond_limit(
     if huge.is_empty() {
         return Ok(());
     }
-    Err(data.error(
-        name,
-        format!("a training value is beyond ±1e150 {why}"),
-        &huge,
-    ))
+    Err(crate::rules::beyond_train_limit(data.at(name, &huge), why))
 }
 
 /// Fits every transform of a feature set on the training rows.
@@ -407,12 +403,15 @@ pub fn fit(set: &FeatureSetPlan, data: &Dataset, train: &[RowId]) -> Result<Fitt
                     )?;
                     let (mean, var) = mean_var(&v);
                     if var.sqrt() <= f64::EPSILON * mean.abs() || var == 0.0 {
-                        return Err(Error::Fit {
-                            detector: format!("feature set `{}`", set.name),
-                            message:
-                                "`standardise` needs a feature that varies on the training rows"
-                                    .into(),
-                            features: vec![f.name.clone()],
+                        return Err(Error::InFeatureSet {
+                            set: set.name.clone(),
+                            source: Box::new(Error::Fit {
+                                detector: String::new(),
+                                message:
+                                    "`standardise` needs a feature that varies on the training rows"
+                                        .into(),
+                                features: vec![f.name.clone()],
+                            }),
                         });
                     }
                     Fitted::Standardise {
@@ -426,14 +425,7 @@ pub fn fit(set: &FeatureSetPlan, data: &Dataset, train: &[RowId]) -> Result<Fitt
             }
             steps.push(fitted);
         }
-        refuse_beyond_limit(
-            data,
-            &f.name,
-            train,
-            &v,
-            "(after transforms): the fitted moments would overflow; fix the value or \
-             transform the feature (`log`)",
-        )?;
+        refuse_beyond_limit(data, &f.name, train, &v, crate::rules::MOMENTS_OVERFLOW)?;
         features.push(FittedFeature {
             name: f.name.clone(),
             input: f.input,

@@ -7,10 +7,11 @@
 //! only, opens the test split once, and writes a signed run directory: the run
 //! record, the scores and a model card.
 //!
-//! Modules, in pipeline order: [`spec`] → [`data`] → [`audit`] (hashes and the
+//! Modules, in protocol order: [`spec`] → [`data`] → [`audit`] (hashes and the
 //! leakage proof) → [`split`] → [`detect`] → [`summary`] → [`threshold`] → [`metrics`] →
-//! [`card`] → [`output`] and [`sign`]; [`pipeline`] runs them, [`cli`] turns
-//! arguments into a [`Request`], and [`error`] holds the one error type.
+//! [`card`] → [`output`] and [`sign`]; [`protocol`] runs them as a chain of
+//! typed stages, [`cli`] turns arguments into a [`Request`], [`error`] holds
+//! the one error type and [`rules`] words each rule rows and fits must meet.
 
 #![deny(missing_docs)]
 
@@ -32,11 +33,13 @@ pub mod features;
 pub mod float;
 pub mod init;
 pub mod metrics;
+pub mod moments;
 pub mod output;
-pub mod pipeline;
 pub mod progress;
+pub mod protocol;
 pub mod record;
 pub mod rng;
+pub mod rules;
 pub mod score;
 pub mod sign;
 pub mod spec;
@@ -76,7 +79,7 @@ pub enum Request {
     /// Run a spec.
     Run {
         /// What to run.
-        opts: pipeline::RunOptions,
+        opts: protocol::RunOptions,
         /// Print the summary as JSON.
         json: bool,
     },
@@ -255,7 +258,7 @@ pub fn run(request: &Request) -> Result<Outcome> {
             })
         }
         Request::Run { opts, json } => {
-            let s = pipeline::run(opts)?;
+            let s = protocol::run(opts)?;
             warnings = s.warnings.clone();
             if *json {
                 return Ok(Outcome {
@@ -306,9 +309,9 @@ pub fn run(request: &Request) -> Result<Outcome> {
             spec,
         } => {
             let m = if *data {
-                pipeline::verify_by_recomputation(dir, pubkey, spec.as_deref())?
+                protocol::verify_by_recomputation(dir, pubkey, spec.as_deref())?
             } else {
-                pipeline::verify(dir, pubkey)?
+                protocol::verify(dir, pubkey)?
             };
             format!(
                 "verified: {} ({} files, signature by {}{})\n",

@@ -223,20 +223,6 @@ impl BootstrapIntervals {
     };
 }
 
-/// Where one replicate's draws are counted: per cut point `j`, the anomalies
-/// at `pos[j]`; the normal rows in bins `2j` (gap `j`) and `2j + 1` (tied
-/// with cut point `j`), and `2m` for the last gap.
-struct Bins {
-    /// The anomalies' multinomial, over cut points.
-    pos: Multinomial,
-    /// The normal rows' multinomial, over bins.
-    neg: Multinomial,
-    /// Cut points above τ.
-    flagged: usize,
-    /// Whether the gap just below them is above τ.
-    gap_flagged: bool,
-}
-
 /// One class's Multinomial(n; cᵢ/n) over bins `(i, cᵢ)`, n = Σcᵢ: where n
 /// rows drawn with replacement from the class fall.
 struct Multinomial {
@@ -334,82 +320,212 @@ pub fn bootstrap_summary(
     })
 }
 
+/// Where a replicate's normal rows are counted: the summary's normal bins
+/// in walk order (bin 2j: the gap above cut point j; 2j + 1: the rows tied
+/// with it; 2m: the gap below the last), as prefix sums, and τ's boundary.
+struct NormalBins {
+    /// `prefix[t]`: normal rows in bins below `t` (2m + 2 entries).
+    prefix: Vec<u64>,
+    /// Normal rows in bins below this one are flagged at τ.
+    tau_bin: usize,
+    /// When the rows are few next to the bins: each row's bin, for drawing
+    /// the rows themselves (as [`Multinomial`] does).
+    rows: Option<Vec<u32>>,
+}
+
+impl NormalBins {
+    /// The bins of summary `s`, with τ splitting it after `flagged` cut
+    /// points (and the gap below them when `gap_flagged`).
+    fn new(s: &Summary, flagged: usize, gap_flagged: bool) -> Self {
+        let m = s.values.len();
+        let mut prefix = Vec::with_capacity(2 * m + 2);
+        let mut acc = 0u64;
+        prefix.push(0);
+        for j in 0..=m {
+            acc += s.gaps[j].count;
+            prefix.push(acc);
+            if j < m {
+                acc += s.tied[j];
+                prefix.push(acc);
+            }
+        }
+        let non_empty = prefix.windows(2).filter(|w| w[1] > w[0]).count() as u64;
+        NormalBins {
+            rows: (acc <= DIRECT_PER_BIN * non_empty).then(|| {
+                prefix
+                    .windows(2)
+                    .enumerate()
+                    .flat_map(|(t, w)| std::iter::repeat_n(t as u32, (w[1] - w[0]) as usize))
+                    .collect()
+            }),
+            prefix,
+            tau_bin: 2 * flagged + usize::from(gap_flagged),
+        }
+    }
+}
+
 /// Every replicate's (F1 at τ, AP, AUC) for [`bootstrap_summary`], in
 /// replicate order; `None` when τ splits a gap.
+///
+/// A replicate first draws the anomalies per cut point, then the normal rows
+/// per *segment*: the bins between two drawn cut points merged into one, the
+/// rows tied with a drawn cut point apart, and τ's boundary kept. Every
+/// statistic reads the normal rows only through how many lie above each drawn
+/// cut point, tie with it, or lie above τ (an anomaly drawn zero times adds
+/// nothing to AP or AUC), and those are sums of whole segments. Merging cells
+/// of a multinomial gives the multinomial of the merged cells, and the
+/// segments depend on the anomaly draw alone, which is independent of the
+/// normal draw; so given the anomalies, the segment counts are exactly
+/// Multinomial(n₀; segment rows / n₀), and the replicate has the
+/// distribution of a row-level one. About 1 − e⁻¹ ≈ 63 % of distinct
+/// anomaly scores are drawn in a replicate, so this needs about two thirds
+/// of the binomial draws one per bin would, and the walk visits drawn cut
+/// points only.
 fn replicates(s: &Summary, tau: f64, plan: BootstrapPlan) -> Option<Vec<(f64, f64, f64)>> {
     let (p_total, n_total) = (s.positives(), s.negatives());
     let (flagged, gap_flagged) = s.split_at(tau)?;
     let m = s.values.len();
-    let mut neg = Vec::new();
-    for j in 0..=m {
-        if s.gaps[j].count > 0 {
-            neg.push((2 * j, s.gaps[j].count));
-        }
-        if j < m && s.tied[j] > 0 {
-            neg.push((2 * j + 1, s.tied[j]));
-        }
-    }
-    let bins = Bins {
-        pos: Multinomial::new(
-            (0..m)
-                .filter(|&j| s.pos[j] > 0)
-                .map(|j| (j, s.pos[j]))
-                .collect(),
-        ),
-        neg: Multinomial::new(neg),
-        flagged,
-        gap_flagged,
-    };
-    let (pf, nf) = (p_total as f64, n_total as f64);
+    let normal = NormalBins::new(s, flagged, gap_flagged);
+    let pos = Multinomial::new(
+        (0..m)
+            .filter(|&j| s.pos[j] > 0)
+            .map(|j| (j, s.pos[j]))
+            .collect(),
+    );
     Some(
         (0..plan.replicates)
             .into_par_iter()
             .map_init(
-                || (vec![0u64; m], vec![0u64; 2 * m + 1]),
+                || (vec![0u64; m], Vec::new()),
                 |(p_in, n_in), b| {
-                    p_in.fill(0);
-                    n_in.fill(0);
                     let mut rng = crate::rng::seeded(plan.seed, u64::from(b));
-                    bins.pos.draw(&mut rng, p_in);
-                    bins.neg.draw(&mut rng, n_in);
-                    replicate(&bins, p_in, n_in, pf, nf)
+                    p_in.fill(0);
+                    pos.draw(&mut rng, p_in);
+                    let drawn = match &normal.rows {
+                        Some(rows) => {
+                            // Few rows: draw them one by one into bins.
+                            let total = rows.len() as u64;
+                            n_in.clear();
+                            n_in.resize(normal.prefix.len() - 1, 0);
+                            for _ in 0..total {
+                                n_in[rows[crate::rng::below(&mut rng, total) as usize] as usize] +=
+                                    1;
+                            }
+                            Some(&n_in[..])
+                        }
+                        None => None,
+                    };
+                    replicate(&normal, flagged, p_in, drawn, &mut rng, p_total, n_total)
                 },
             )
             .collect(),
     )
 }
 
-/// F1 at τ, average precision and ROC AUC of one replicate's counts per bin
-/// (NaN where undefined), by the walk of [`Summary::ap_auc`].
+/// One replicate's F1 at τ, average precision and ROC AUC (NaN where
+/// undefined), given its anomalies per cut point: the walk of
+/// [`Summary::ap_auc`] over the drawn cut points, each segment's normal rows
+/// taken as it is reached (from `n_in`, the rows already drawn per bin, or
+/// else by the chain of conditional binomials). Below τ and the last drawn
+/// cut point nothing is read, so nothing is drawn.
 fn replicate(
-    bins: &Bins,
+    bins: &NormalBins,
+    flagged: usize,
     p_in: &[u64],
-    n_in: &[u64],
-    p_total: f64,
-    n_total: f64,
+    n_in: Option<&[u64]>,
+    rng: &mut rand_chacha::ChaCha8Rng,
+    p_total: u64,
+    n_total: u64,
 ) -> (f64, f64, f64) {
-    let m = p_in.len();
-    let (ap, auc) = crate::summary::ranking_walk(
-        (0..m).map(|j| (p_in[j], n_in[2 * j + 1])),
-        (0..=m).map(|j| n_in[2 * j]),
-        p_total,
-        n_total,
-    );
-    let k = bins.flagged;
-    let tp: u64 = p_in[..k].iter().sum();
-    let fp: u64 =
-        n_in[..2 * k].iter().sum::<u64>() + if bins.gap_flagged { n_in[2 * k] } else { 0 };
+    let mut normals = Segments::new(bins, n_in);
+    let mut walk = crate::summary::RankingWalk::new(p_total as f64, n_total as f64);
+    let (mut tp, mut fp, mut tau_done) = (0u64, 0u64, false);
+    for (j, &p) in p_in.iter().enumerate() {
+        if p == 0 {
+            continue;
+        }
+        if j < flagged {
+            tp += p;
+        }
+        if !tau_done && bins.tau_bin <= 2 * j + 1 {
+            let x = normals.take(bins.tau_bin, rng);
+            fp += x;
+            walk.gap(x);
+            tau_done = true;
+        }
+        let gap = normals.take(2 * j + 1, rng);
+        let tied = normals.take(2 * j + 2, rng);
+        if !tau_done {
+            // τ's boundary lies below bin 2j + 1: both are flagged.
+            fp += gap + tied;
+        }
+        walk.gap(gap);
+        walk.cut(p, tied);
+    }
+    if !tau_done {
+        fp += normals.take(bins.tau_bin, rng);
+    }
+    let (ap, auc) = walk.finish();
     let c = Confusion {
         tp,
         fp,
-        fn_: p_total as u64 - tp,
-        tn: n_total as u64 - fp,
+        fn_: p_total - tp,
+        tn: n_total - fp,
     };
     (
         c.f1().unwrap_or(f64::NAN),
         ap.unwrap_or(f64::NAN),
         auc.unwrap_or(f64::NAN),
     )
+}
+
+/// A replicate's normal rows, segment by segment down the bins: each
+/// [`Segments::take`] returns the rows in the bins from the last boundary to
+/// the next.
+struct Segments<'a> {
+    bins: &'a NormalBins,
+    /// Rows already drawn per bin, or `None` to draw them per segment.
+    n_in: Option<&'a [u64]>,
+    /// The next segment's first bin.
+    start: usize,
+    /// Rows not yet placed, and the summary's rows in the bins left.
+    left: u64,
+    mass: u64,
+}
+
+impl<'a> Segments<'a> {
+    fn new(bins: &'a NormalBins, n_in: Option<&'a [u64]>) -> Self {
+        let total = bins.prefix[bins.prefix.len() - 1];
+        Segments {
+            bins,
+            n_in,
+            start: 0,
+            left: total,
+            mass: total,
+        }
+    }
+
+    /// The rows in bins `start..end` (none when `end` is not past `start`):
+    /// summed from the drawn bins, or drawn as the next link of the chain
+    /// X ~ Binomial(rows left, segment rows / rows in the bins left).
+    fn take(&mut self, end: usize, rng: &mut rand_chacha::ChaCha8Rng) -> u64 {
+        let end = end.max(self.start);
+        let start = std::mem::replace(&mut self.start, end);
+        if let Some(n_in) = self.n_in {
+            return n_in[start..end].iter().sum();
+        }
+        let c = self.bins.prefix[end] - self.bins.prefix[start];
+        let x = if c == 0 || self.left == 0 {
+            0
+        } else if c >= self.mass {
+            self.left
+        } else {
+            crate::rng::binomial(rng, self.left, c as f64 / self.mass as f64)
+        };
+        self.left -= x;
+        self.mass -= c;
+        x
+    }
 }
 
 /// Compares two fractions a/b and c/d exactly (zero denominators count as 0).
@@ -803,12 +919,6 @@ mod tests {
             let sum = Summary::new(&s, &y, &[tau]);
             let (flagged, gap_flagged) = sum.split_at(tau).unwrap();
             let m = sum.values.len();
-            let bins = Bins {
-                pos: Multinomial::new(vec![]),
-                neg: Multinomial::new(vec![]),
-                flagged,
-                gap_flagged,
-            };
             let w = row_draws(&mut rng, &r);
             let mut p_in = vec![0u64; m];
             let mut n_in = vec![0u64; 2 * m + 1];
@@ -821,9 +931,17 @@ mod tests {
                     (false, _) => n_in[2 * j] += wk,
                 }
             }
-            let (pt, nt) = (sum.positives() as f64, sum.negatives() as f64);
             let want = row_replicate(&r, &w, tau);
-            let got = replicate(&bins, &p_in, &n_in, pt, nt);
+            let bins = NormalBins::new(&sum, flagged, gap_flagged);
+            let got = replicate(
+                &bins,
+                flagged,
+                &p_in,
+                Some(&n_in),
+                &mut rng,
+                sum.positives(),
+                sum.negatives(),
+            );
             assert_eq!(
                 (got.0.to_bits(), got.1.to_bits(), got.2.to_bits()),
                 (want.0.to_bits(), want.1.to_bits(), want.2.to_bits()),
@@ -849,6 +967,7 @@ mod tests {
     #[test]
     fn summary_bootstrap_matches_row_resampling_in_distribution() {
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(404);
+        // Tied scores, many normal rows per bin (the chain of binomials).
         let n = 2_000;
         let y: Vec<bool> = (0..n).map(|i| i % 50 == 0).collect();
         let s: Vec<f64> = (0..n)
@@ -857,6 +976,18 @@ mod tests {
                 (v * 20.0).round() / 20.0
             })
             .collect();
+        same_distribution(&s, &y);
+        // Distinct scores, a few normal rows per bin (rows drawn one by one).
+        let n = 600;
+        let y: Vec<bool> = (0..n).map(|i| i % 4 == 0).collect();
+        let s: Vec<f64> = (0..n)
+            .map(|i| crate::rng::unit(&mut rng) + if y[i] { 0.6 } else { 0.0 })
+            .collect();
+        same_distribution(&s, &y);
+    }
+
+    fn same_distribution(s: &[f64], y: &[bool]) {
+        let (s, y) = (s.to_vec(), y.to_vec());
         let tau = crate::threshold::max_f1(&s, &y).tau;
         let sum = Summary::new(&s, &y, &[tau]);
         let reps = 4_000u32;

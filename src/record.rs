@@ -1,7 +1,7 @@
 //! The run record (`run.json`) and the one place where numbers are formatted
 //! for text outputs.
 //!
-//! Everything here is data: the pipeline fills it, the writers serialise it.
+//! Everything here is data: the protocol fills it, the writers serialise it.
 //! Maps are `BTreeMap`s so that key order never depends on hashing, and floats
 //! are written as the shortest decimal that reads back to the same double
 //! (serde_json's and [`fmt_f64`]'s rule), so the bytes are the same everywhere.

@@ -134,10 +134,20 @@ fn stirling_tail(k: f64) -> f64 {
 
 /// Hörmann's (1993) BTRS for n·p ≥ 10, p ≤ ½: a candidate k from the
 /// transformed uniform pair (u, v), accepted at once inside the squeeze
-/// region, else when ln(v·α/(a/u_s² + b)) ≤ ln(f(k)/f(m)), with the ratio of
-/// binomial probabilities written through Stirling's formula and its error
-/// terms fc (exact to 10⁻¹⁰ in the log), so the test is the exact ratio.
+/// region, else when v·α/(a/u_s² + b) ≤ f(k)/f(m), the exact ratio of
+/// binomial probabilities ([`BtrsRatio::accepts`]).
 fn binomial_btrs(rng: &mut ChaCha8Rng, n: u64, p: f64) -> u64 {
+    btrs_with(rng, n, p, BtrsRatio::accepts)
+}
+
+/// BTRS with the given form of its acceptance test (the tests compare the
+/// product form with the logarithm form on whole draws).
+fn btrs_with(
+    rng: &mut ChaCha8Rng,
+    n: u64,
+    p: f64,
+    accepts: impl Fn(&BtrsRatio, f64, f64) -> bool,
+) -> u64 {
     let nf = n as f64;
     let spq = (nf * p * (1.0 - p)).sqrt();
     let b = 1.15 + 2.53 * spq;
@@ -145,8 +155,11 @@ fn binomial_btrs(rng: &mut ChaCha8Rng, n: u64, p: f64) -> u64 {
     let c = nf * p + 0.5;
     let v_r = 0.92 - 4.2 / b;
     let alpha = (2.83 + 5.1 / b) * spq;
-    let r = p / (1.0 - p);
-    let m = ((nf + 1.0) * p).floor();
+    let ratio = BtrsRatio {
+        n: nf,
+        r: p / (1.0 - p),
+        m: ((nf + 1.0) * p).floor(),
+    };
     loop {
         let u = unit(rng) - 0.5;
         let v = unit(rng);
@@ -161,20 +174,80 @@ fn binomial_btrs(rng: &mut ChaCha8Rng, n: u64, p: f64) -> u64 {
         if us >= 0.07 && v <= v_r {
             return k as u64;
         }
-        let v = libm::log(v * alpha / (a / (us * us) + b));
-        // ln f(k)/f(m) = ln m! + ln (n − m)! − ln k! − ln (n − k)! + (k − m) ln r,
-        // r = p/q, each ln j! as (j + ½) ln(j + 1) − (j + 1) + ½ ln 2π + fc(j),
-        // grouped so that no large terms cancel.
-        let bound = (m + 0.5) * libm::log((m + 1.0) / (r * (nf - m + 1.0)))
-            + (nf + 1.0) * libm::log((nf - m + 1.0) / (nf - k + 1.0))
-            + (k + 0.5) * libm::log(r * (nf - k + 1.0) / (k + 1.0))
-            + stirling_tail(m)
-            + stirling_tail(nf - m)
-            - stirling_tail(k)
-            - stirling_tail(nf - k);
-        if v <= bound {
+        if accepts(&ratio, v * alpha / (a / (us * us) + b), k) {
             return k as u64;
         }
+    }
+}
+
+/// Candidates at most this far from the mode are tested by the product of
+/// successive probability ratios (at most this many factors, cheaper than
+/// the five logarithms of the other test); farther ones by logarithms.
+const PRODUCT_SPAN: f64 = 24.0;
+
+/// Modes up to which the product is used: each factor of
+/// [`BtrsRatio::product_accepts`] is below 2m + 2, so the products of at
+/// most [`PRODUCT_SPAN`] factors stay far inside the doubles' range.
+const PRODUCT_MODE_LIMIT: f64 = 1e9;
+
+/// BTRS's acceptance test: whether a transformed uniform v lies under
+/// f(k)/f(m), f the Binomial(n, p) probability and m its mode, r = p/(1 − p).
+struct BtrsRatio {
+    n: f64,
+    r: f64,
+    m: f64,
+}
+
+impl BtrsRatio {
+    /// The test, by the product of successive ratios near the mode and by
+    /// logarithms elsewhere. Both evaluate the same inequality; they can
+    /// differ only where v is within a few roundings of f(k)/f(m) (relative
+    /// 10⁻¹⁴), so the draws are those of the exact test
+    /// (`rng::binomial_tests::product_and_log_tests_draw_alike`).
+    fn accepts(&self, v: f64, k: f64) -> bool {
+        if (k - self.m).abs() <= PRODUCT_SPAN && self.m <= PRODUCT_MODE_LIMIT {
+            self.product_accepts(v, k)
+        } else {
+            self.log_accepts(v, k)
+        }
+    }
+
+    /// f(i)/f(i − 1) = (n − i + 1)·r/i, so f(k)/f(m) is the product of
+    /// those for i in m + 1..=k (k > m), or the inverse of the product for i
+    /// in k + 1..=m (k < m); compared as v·denominator ≤ numerator.
+    fn product_accepts(&self, v: f64, k: f64) -> bool {
+        let (mut num, mut den) = (1.0, 1.0);
+        if k > self.m {
+            let mut i = self.m + 1.0;
+            while i <= k {
+                num *= (self.n - i + 1.0) * self.r;
+                den *= i;
+                i += 1.0;
+            }
+        } else {
+            let mut i = k + 1.0;
+            while i <= self.m {
+                num *= i;
+                den *= (self.n - i + 1.0) * self.r;
+                i += 1.0;
+            }
+        }
+        v * den <= num
+    }
+
+    /// ln f(k)/f(m) = ln m! + ln (n − m)! − ln k! − ln (n − k)! + (k − m) ln r,
+    /// each ln j! as (j + ½) ln(j + 1) − (j + 1) + ½ ln 2π + fc(j), grouped so
+    /// that no large terms cancel (exact to 10⁻¹⁰ in the log).
+    fn log_accepts(&self, v: f64, k: f64) -> bool {
+        let (n, r, m) = (self.n, self.r, self.m);
+        let bound = (m + 0.5) * libm::log((m + 1.0) / (r * (n - m + 1.0)))
+            + (n + 1.0) * libm::log((n - m + 1.0) / (n - k + 1.0))
+            + (k + 0.5) * libm::log(r * (n - k + 1.0) / (k + 1.0))
+            + stirling_tail(m)
+            + stirling_tail(n - m)
+            - stirling_tail(k)
+            - stirling_tail(n - k);
+        libm::log(v) <= bound
     }
 }
 
@@ -300,6 +373,50 @@ mod binomial_tests {
                 chi2 <= critical,
                 "n {n} p {p}: χ² {chi2} over {df} df, 0.999 quantile {critical}"
             );
+        }
+    }
+
+    /// The product test near the mode decides as the logarithm test does:
+    /// on candidates and uniforms spread over each case's support (every
+    /// decision compared), and on the draws themselves (a sampler using the
+    /// logarithms alone gives the same sequence). Equal decisions are the
+    /// same inequality evaluated two ways (common practice, no source).
+    #[test]
+    fn product_and_log_tests_draw_alike() {
+        let mut rng = seeded(3, 9);
+        for &(n, p) in &[
+            (40u64, 0.3),
+            (1_000, 0.02),
+            (200_000, 0.0004),
+            (5_000_000, 0.5),
+        ] {
+            let nf = n as f64;
+            let t = BtrsRatio {
+                n: nf,
+                r: p / (1.0 - p),
+                m: ((nf + 1.0) * p).floor(),
+            };
+            let (mut near, mut same) = (0u32, 0u32);
+            for _ in 0..20_000 {
+                let k = (t.m + (below(&mut rng, 49) as f64) - PRODUCT_SPAN).clamp(0.0, nf);
+                let v = unit(&mut rng);
+                if (k - t.m).abs() <= PRODUCT_SPAN {
+                    near += 1;
+                    same += u32::from(t.product_accepts(v, k) == t.log_accepts(v, k));
+                }
+            }
+            assert_eq!(same, near, "n {n} p {p}");
+        }
+        // Whole draws: the sampler against one that always takes logarithms.
+        for &(n, p) in &[(100u64, 0.2), (20_000, 0.004), (3_000_000, 0.4)] {
+            let (mut x, mut y) = (seeded(11, n), seeded(11, n));
+            for _ in 0..100_000 {
+                assert_eq!(
+                    binomial_btrs(&mut x, n, p),
+                    btrs_with(&mut y, n, p, BtrsRatio::log_accepts),
+                    "n {n} p {p}"
+                );
+            }
         }
     }
 

@@ -200,12 +200,12 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
     let names = set.names();
     let candidate = chosen.name.clone();
     let scorer = if let Params::Command { .. } = params {
-        let (command, train) = crate::pipeline::chosen_command(dir, &params)?;
+        let (command, train) = crate::protocol::chosen_command(dir, &params)?;
         Scorer::Command(Box::new(command), train)
     } else {
         Scorer::Model(match detect::restore(&params, &names)? {
             Some(m) => m,
-            None => crate::pipeline::refit_chosen(dir, &params)?,
+            None => crate::protocol::refit_chosen(dir, &params)?,
         })
     };
     // Older runs kept neither; both are then simply absent.
@@ -890,14 +890,13 @@ fn batch_scores(
             .map(|(i, _)| format.place(offset + i as u64))
             .collect();
         if !missing.is_empty() {
-            return Err(Error::Data {
+            return Err(crate::rules::missing_value_to_score(crate::rules::At {
                 path: path.to_path_buf(),
-                column: Some(name.clone()),
-                message: "a missing value: every feature column needs a number in every row".into(),
+                column: name.clone(),
                 total: missing.len(),
                 lines: missing.into_iter().take(5).collect(),
                 unit,
-            });
+            }));
         }
         let idx = run
             .columns

@@ -40,6 +40,9 @@ pub struct SealedTest {
     rows: Vec<RowId>,
     counts: Counts,
     manifest: String,
+    /// The manifest in the earlier format (see
+    /// [`crate::audit::hash::manifest_v1_of_sorted`]), for the ledger only.
+    manifest_v1: String,
 }
 
 impl SealedTest {
@@ -53,13 +56,20 @@ impl SealedTest {
         &self.manifest
     }
 
+    /// Whether a test-ledger entry records an opening of this split: its
+    /// manifest, or the earlier format's (entries written before manifests
+    /// were bucketed), so that an opening then still counts.
+    pub fn is_recorded_by(&self, ledger_manifest: &str) -> bool {
+        ledger_manifest == self.manifest || ledger_manifest == self.manifest_v1
+    }
+
     /// The content hashes of the test rows, for comparing splits between
     /// runs (`diff`): hashes only, no scores and no labels.
     pub fn contents(&self, hashes: &[ContentHash]) -> Vec<ContentHash> {
         self.rows.iter().map(|r| hashes[r.0 as usize]).collect()
     }
 
-    /// Opens the test split. Called from `pipeline` only, after selection
+    /// Opens the test split. Called from `protocol::open` only, after selection
     /// and after the opening is on the ledger.
     pub(crate) fn open(self) -> OpenedTest {
         OpenedTest { rows: self.rows }
@@ -317,6 +327,9 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
             manifest: crate::audit::hash::manifest_of_sorted(
                 test.iter().map(|r| &hashes[r.0 as usize]),
             ),
+            manifest_v1: crate::audit::hash::manifest_v1_of_sorted(
+                test.iter().map(|r| &hashes[r.0 as usize]),
+            ),
             rows: test,
             counts: counts[2],
         },
@@ -436,6 +449,11 @@ pub fn streamed(
         validation,
         test: SealedTest {
             manifest: crate::audit::hash::manifest(&test),
+            manifest_v1: {
+                let mut sorted = test.clone();
+                sorted.sort_unstable();
+                crate::audit::hash::manifest_v1_of_sorted(sorted.iter())
+            },
             rows: test_rows,
             counts: counts[2],
         },
@@ -671,24 +689,15 @@ fn from_column(data: &Dataset, column: &str) -> Result<Vec<Part>> {
     let mut bad = Vec::new();
     let mut parts = Vec::with_capacity(values.len());
     for (i, v) in values.iter().enumerate() {
-        parts.push(match v {
-            "train" => Part::Train,
-            "validation" => Part::Validation,
-            "test" => Part::Test,
-            _ => {
-                bad.push(RowId(i as u64));
-                Part::Train
-            }
-        });
+        parts.push(crate::rules::part_of(v).unwrap_or_else(|| {
+            bad.push(RowId(i as u64));
+            Part::Train
+        }));
     }
     if let Some(first) = bad.first() {
-        return Err(data.error(
-            column,
-            format!(
-                "split value `{}` is not one of `train`, `validation`, `test`",
-                &values[first.0 as usize]
-            ),
-            &bad,
+        return Err(crate::rules::unknown_split(
+            data.at(column, &bad),
+            &values[first.0 as usize],
         ));
     }
     let known_in_train: Vec<RowId> = (0..data.len())
@@ -696,12 +705,8 @@ fn from_column(data: &Dataset, column: &str) -> Result<Vec<Part>> {
         .map(|i| RowId(i as u64))
         .collect();
     if !known_in_train.is_empty() {
-        return Err(data.error(
-            column,
-            "a known anomaly is assigned to `train`; detectors are fitted on normal rows only, \
-             so known anomalies belong in validation and test"
-                .into(),
-            &known_in_train,
+        return Err(crate::rules::anomaly_in_train(
+            data.at(column, &known_in_train),
         ));
     }
     Ok(parts)
@@ -904,6 +909,32 @@ mod tests {
                 prop_assert_eq!(pa, pb);
             }
         }
+    }
+
+    /// A ledger entry written before manifests were bucketed names the test
+    /// split by `anomark/manifest/v1`: blake3 of the tag and the rows'
+    /// content hashes in ascending order, written out here from that
+    /// definition. The split recognises it, and its current manifest, and
+    /// nothing else.
+    #[test]
+    fn the_test_split_recognises_ledger_entries_of_both_formats() {
+        let rows: Vec<(u32, bool, u32, u32)> = (0..200u32).map(|i| (i, i >= 180, i, i)).collect();
+        let (data, hashes) = dataset(&rows);
+        let s = assign(&plans(7)[0], &data, &hashes).unwrap();
+        let mut test = s.test.contents(&hashes);
+        test.sort_unstable();
+        let mut h = blake3::Hasher::new();
+        h.update(b"anomark/manifest/v1\0");
+        for c in &test {
+            h.update(&c.0);
+        }
+        let v1 = h.finalize().to_hex().to_string();
+        assert!(s.test.is_recorded_by(&v1));
+        assert!(s.test.is_recorded_by(s.test.manifest()));
+        assert_ne!(v1, s.test.manifest());
+        assert!(!s
+            .test
+            .is_recorded_by(&crate::audit::hash::manifest(&test[1..])));
     }
 
     #[test]

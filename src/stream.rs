@@ -2,129 +2,49 @@
 //! in fixed-size chunks by the plain-CSV reader (`data::fast::Chunks`), and
 //! anything else (Parquet, or a CSV file the plain reader gives up on, which
 //! is then read again from its first line) by polars' streaming engine in
-//! batches. Either way, training rows are hashed and folded
-//! into mergeable sufficient statistics (count, mean and co-moment matrix per
-//! feature set), block by block, and then dropped. Only the validation and
-//! test rows, and 32 bytes of content hash per training row (for the train
-//! manifest and the leakage check), stay in memory.
+//! batches. Only the validation and test rows, and 32 bytes of content hash
+//! per training row (for the train manifest and the leakage check), stay in
+//! memory.
 //!
-//! Blocks are fixed runs of [`BLOCK`] training rows in file order, whatever
-//! batches the engine delivers, and blocks merge in order by the pairwise
-//! update of Chan, Golub and LeVeque (1979), so the same file gives the same
-//! bits on every run and thread count. (The bits differ in the last places from
-//! an in-memory fit, which sums in content-hash order.)
+//! Training rows are checked in fixed blocks of [`BLOCK`] rows in file order
+//! (so a refused value is named as before any fit), then kept as records
+//! (content hash and source values) in [`PARTITIONS`] partitions by the
+//! hash's first byte, held in memory up to [`SPILL_BYTES`] and beyond that
+//! appended to temporary files. When the source is read, the partitions are
+//! taken in order, each sorted by content hash (ties in reading order), and
+//! their buckets folded into the training moments of every feature set by
+//! [`crate::moments`]: the same bits as an in-memory run of the same rows,
+//! whatever chunks or batches the readers hand over. The same pass keeps the
+//! systematic samples of training rows (every k-th in content-hash order)
+//! that the card's feature figures and the drift reference show.
 
 use std::collections::BTreeMap;
 use std::sync::{Arc, Mutex};
 
-use ndarray::{Array2, ArrayView2};
+use ndarray::Array2;
 use polars::prelude::*;
 
 use crate::audit::hash::{self, ContentHash};
 use crate::audit::leak::Part;
-use crate::data::{self, Dataset, Dropped, Format, Origin, SourceFile};
-use crate::detect::{self, Model};
+use crate::data::{self, Dataset, Dropped, Format, Origin, RowId, SourceFile};
 use crate::error::{Error, Result, RowUnit};
 use crate::features::{self, FittedFeatures};
+use crate::moments::{Fold, Moments};
 use crate::progress::Progress;
-use crate::spec::{DetectorKind, MissingPolicy, Plan, SplitPlan};
+use crate::rules;
+use crate::spec::{MissingPolicy, Plan, SplitPlan};
 use crate::split::Counts;
 
-/// Training rows per block of sufficient statistics.
+/// Training rows per block of checks (file order).
 pub const BLOCK: usize = 65_536;
 
-/// Count, mean and co-moment matrix Σ (x − x̄)(x − x̄)ᵀ (row-major, d × d).
-#[derive(Debug, Clone, PartialEq)]
-pub struct Moments {
-    /// Rows.
-    pub n: u64,
-    /// Mean.
-    pub mean: Vec<f64>,
-    /// Co-moment matrix.
-    pub m2: Vec<f64>,
-}
+/// Partitions of the kept training rows, by the content hash's first byte
+/// (each holds 256 of the moments' buckets, in order).
+pub const PARTITIONS: usize = 256;
 
-impl Moments {
-    /// No rows yet.
-    pub fn empty(d: usize) -> Self {
-        Moments {
-            n: 0,
-            mean: vec![0.0; d],
-            m2: vec![0.0; d * d],
-        }
-    }
-
-    /// The moments of one block, two-pass (mean first, then centred products).
-    pub fn of_block(x: ArrayView2<'_, f64>) -> Self {
-        let (n, d) = x.dim();
-        let mut mean = vec![0.0; d];
-        for row in x.rows() {
-            for (s, v) in mean.iter_mut().zip(row.iter()) {
-                *s += v;
-            }
-        }
-        for s in mean.iter_mut() {
-            *s /= n as f64;
-        }
-        let mut m2 = vec![0.0; d * d];
-        let mut c = vec![0.0; d];
-        for row in x.rows() {
-            for (cj, (v, mu)) in c.iter_mut().zip(row.iter().zip(&mean)) {
-                *cj = v - mu;
-            }
-            for a in 0..d {
-                for b in 0..=a {
-                    m2[a * d + b] += c[a] * c[b];
-                }
-            }
-        }
-        for a in 0..d {
-            for b in 0..a {
-                m2[b * d + a] = m2[a * d + b];
-            }
-        }
-        Moments {
-            n: n as u64,
-            mean,
-            m2,
-        }
-    }
-
-    /// Folds `other` in: the pairwise update (Chan, Golub and LeVeque 1979).
-    pub fn merge(&mut self, other: &Moments) {
-        if other.n == 0 {
-            return;
-        }
-        if self.n == 0 {
-            *self = other.clone();
-            return;
-        }
-        let d = self.mean.len();
-        let (na, nb) = (self.n as f64, other.n as f64);
-        let n = na + nb;
-        let delta: Vec<f64> = other
-            .mean
-            .iter()
-            .zip(&self.mean)
-            .map(|(b, a)| b - a)
-            .collect();
-        for (m, dl) in self.mean.iter_mut().zip(&delta) {
-            *m += dl * (nb / n);
-        }
-        let w = na * nb / n;
-        for a in 0..d {
-            for b in 0..d {
-                self.m2[a * d + b] += other.m2[a * d + b] + delta[a] * delta[b] * w;
-            }
-        }
-        self.n += other.n;
-    }
-
-    /// The maximum-likelihood covariance M2 / n.
-    pub fn covariance(&self) -> Vec<f64> {
-        self.m2.iter().map(|v| v / self.n as f64).collect()
-    }
-}
+/// Bytes of training records held in memory before they are appended to the
+/// partitions' temporary files (`ANOMARK_SPILL_BYTES` lowers it, for tests).
+pub const SPILL_BYTES: usize = 256 << 20;
 
 /// What streaming the source produced.
 pub struct Streamed {
@@ -140,50 +60,220 @@ pub struct Streamed {
     pub train_counts: Counts,
     /// Per feature set: the fitted (parameter-free) features.
     pub fitted: Vec<FittedFeatures>,
-    /// Per feature set: the training rows' moments.
+    /// Per feature set: the training rows' moments ([`crate::moments`]).
     pub moments: Vec<Moments>,
+    /// The sampled training rows (source columns), in content-hash order.
+    pub train_sample: Dataset,
+    /// Per limit asked of [`load`]: the rows of `train_sample` that are every
+    /// k-th training row in content-hash order, k = ⌈training rows / limit⌉.
+    pub samples: Vec<Vec<RowId>>,
 }
 
-/// Fits a Gaussian detector from training moments.
-pub fn fit(kind: DetectorKind, m: &Moments, names: &[String]) -> Result<Box<dyn Model>> {
-    let name = detect::name(kind);
-    let d = m.mean.len();
-    let cov = m.covariance();
-    let constant: Vec<String> = (0..d)
-        .filter(|&j| cov[j * d + j] <= 0.0 || !cov[j * d + j].is_finite())
-        .map(|j| names[j].clone())
-        .collect();
-    if !constant.is_empty() {
-        return Err(Error::Fit {
-            detector: name.into(),
-            message: "a feature has zero variance on the training rows (every value is the same), \
-                      so its density is degenerate; drop it or fix the data"
-                .into(),
-            features: constant,
-        });
+/// The training rows kept for the moments: records of the content hash and
+/// the source values (little-endian binary64), in [`PARTITIONS`] partitions
+/// by the hash's first byte, each in reading order.
+struct TrainRows {
+    /// Bytes per record.
+    width: usize,
+    /// Each partition's records not yet written out.
+    held: Vec<Vec<u8>>,
+    /// Bytes of each partition already in its file.
+    written: Vec<u64>,
+    held_bytes: usize,
+    limit: usize,
+    dir: Option<(tempfile::TempDir, crate::cleanup::Registered)>,
+}
+
+impl TrainRows {
+    fn new(columns: usize) -> Self {
+        let limit = std::env::var("ANOMARK_SPILL_BYTES")
+            .ok()
+            .and_then(|v| v.parse().ok())
+            .unwrap_or(SPILL_BYTES);
+        TrainRows {
+            width: 32 + 8 * columns,
+            held: vec![Vec::new(); PARTITIONS],
+            written: vec![0; PARTITIONS],
+            held_bytes: 0,
+            limit,
+            dir: None,
+        }
     }
-    match kind {
-        DetectorKind::IndependentGaussian => {
-            let variance = (0..d).map(|j| cov[j * d + j]).collect();
-            Ok(detect::restore_independent(m.mean.clone(), variance))
+
+    fn write_error(path: &std::path::Path, e: std::io::Error) -> Error {
+        Error::Io {
+            path: path.to_path_buf(),
+            action: "writing the streamed training rows aside",
+            source: e,
         }
-        DetectorKind::MultivariateGaussian => {
-            if m.n as usize <= d {
-                return Err(Error::Fit {
-                    detector: name.into(),
-                    message: format!(
-                        "{} training rows cannot determine a covariance over {d} features",
-                        m.n
-                    ),
-                    features: vec![],
-                });
+    }
+
+    fn file(&mut self, p: usize) -> Result<std::path::PathBuf> {
+        if self.dir.is_none() {
+            let dir = tempfile::Builder::new()
+                .prefix(".anomark-train-rows-")
+                .tempdir()
+                .map_err(|e| Self::write_error(&std::env::temp_dir(), e))?;
+            let guard = crate::cleanup::register(dir.path());
+            self.dir = Some((dir, guard));
+        }
+        let (dir, _) = self.dir.as_ref().expect("made above");
+        Ok(dir.path().join(format!("{p:03}")))
+    }
+
+    fn push(&mut self, h: &ContentHash, values: &[f64]) -> Result<()> {
+        let part = &mut self.held[h.0[0] as usize];
+        part.extend_from_slice(&h.0);
+        for v in values {
+            part.extend_from_slice(&v.to_le_bytes());
+        }
+        self.held_bytes += self.width;
+        if self.held_bytes > self.limit {
+            self.spill()?;
+        }
+        Ok(())
+    }
+
+    /// Appends every partition's held records to its file.
+    fn spill(&mut self) -> Result<()> {
+        use std::io::Write;
+        for p in 0..PARTITIONS {
+            if self.held[p].is_empty() {
+                continue;
             }
-            detect::restore_multivariate(m.mean.clone(), cov, names)
+            let path = self.file(p)?;
+            let mut f = std::fs::OpenOptions::new()
+                .create(true)
+                .append(true)
+                .open(&path)
+                .map_err(|e| Self::write_error(&path, e))?;
+            f.write_all(&self.held[p])
+                .map_err(|e| Self::write_error(&path, e))?;
+            self.written[p] += self.held[p].len() as u64;
+            self.held[p].clear();
         }
-        other => Err(Error::internal(format!(
-            "`{}` cannot be fitted from moments",
-            detect::name(other)
-        ))),
+        self.held_bytes = 0;
+        Ok(())
+    }
+
+    /// Each partition's length in bytes, to return to with [`TrainRows::reset`].
+    fn mark(&self) -> Vec<u64> {
+        (0..PARTITIONS)
+            .map(|p| self.written[p] + self.held[p].len() as u64)
+            .collect()
+    }
+
+    fn reset(&mut self, mark: &[u64]) -> Result<()> {
+        for (p, &len) in mark.iter().enumerate() {
+            if len >= self.written[p] {
+                self.held[p].truncate((len - self.written[p]) as usize);
+            } else {
+                let path = self.file(p)?;
+                std::fs::OpenOptions::new()
+                    .write(true)
+                    .open(&path)
+                    .and_then(|f| f.set_len(len))
+                    .map_err(|e| Self::write_error(&path, e))?;
+                self.written[p] = len;
+                self.held[p].clear();
+            }
+        }
+        self.held_bytes = self.held.iter().map(Vec::len).sum();
+        Ok(())
+    }
+
+    /// Partition `p`'s records, in reading order.
+    fn take(&mut self, p: usize) -> Result<Vec<u8>> {
+        let mut bytes = Vec::new();
+        if self.written[p] > 0 {
+            let path = self.file(p)?;
+            bytes = std::fs::read(&path).map_err(|e| Error::Io {
+                path: path.clone(),
+                action: "reading the streamed training rows back",
+                source: e,
+            })?;
+        }
+        bytes.append(&mut self.held[p]);
+        Ok(bytes)
+    }
+
+    /// Folds the kept rows into each feature set's moments, partition by
+    /// partition in order, and keeps every `strides[k]`-th row (in
+    /// content-hash order) for the samples.
+    fn finish(
+        mut self,
+        fitted: &[FittedFeatures],
+        columns: &[String],
+        strides: &[usize],
+    ) -> Result<(Vec<Moments>, Dataset, Vec<Vec<RowId>>)> {
+        let c = columns.len();
+        let mut folds: Vec<Fold> = fitted.iter().map(|f| Fold::new(f.features.len())).collect();
+        let mut sample_x: Vec<f64> = Vec::new();
+        let mut samples: Vec<Vec<RowId>> = vec![Vec::new(); strides.len()];
+        let mut g = 0usize;
+        for p in 0..PARTITIONS {
+            let bytes = self.take(p)?;
+            let k = bytes.len() / self.width;
+            let record = |i: usize| &bytes[i * self.width..(i + 1) * self.width];
+            let hash_of = |i: usize| {
+                let mut h = [0u8; 32];
+                h.copy_from_slice(&record(i)[..32]);
+                ContentHash(h)
+            };
+            let value = |i: usize, j: usize| {
+                let at = 32 + 8 * j;
+                let mut b = [0u8; 8];
+                b.copy_from_slice(&record(i)[at..at + 8]);
+                f64::from_le_bytes(b)
+            };
+            // Content-hash order; equal hashes keep their reading order.
+            let mut order: Vec<usize> = (0..k).collect();
+            order.sort_by_key(|&i| hash_of(i));
+            let hashes: Vec<ContentHash> = order.iter().map(|&i| hash_of(i)).collect();
+            let values: Vec<Vec<f64>> = (0..c)
+                .map(|j| order.iter().map(|&i| value(i, j)).collect())
+                .collect();
+            for (f, fold) in fitted.iter().zip(folds.iter_mut()) {
+                let x = f.apply_columns(&values, k).map_err(|fault| {
+                    Error::internal(format!(
+                        "a checked training row was refused: {}: {}",
+                        fault.feature, fault.reason
+                    ))
+                })?;
+                fold.add_sorted_rows(&hashes, x.view())?;
+            }
+            for i in 0..k {
+                let hits: Vec<usize> = (0..strides.len())
+                    .filter(|&s| (g + i).is_multiple_of(strides[s]))
+                    .collect();
+                if hits.is_empty() {
+                    continue;
+                }
+                let at = RowId((sample_x.len() / c.max(1)) as u64);
+                sample_x.extend(values.iter().map(|col| col[i]));
+                for s in hits {
+                    samples[s].push(at);
+                }
+            }
+            g += k;
+        }
+        let n = sample_x.len() / c.max(1);
+        let sample = Dataset {
+            files: vec![],
+            columns: columns.to_vec(),
+            x: Array2::from_shape_vec((n, c), sample_x)
+                .map_err(|e| Error::internal(format!("the sampled training rows: {e}")))?,
+            is_anomaly: vec![false; n],
+            origin: vec![Origin { file: 0, row: 0 }; n],
+            ids: None,
+            text: BTreeMap::new(),
+            dropped: Dropped::default(),
+        };
+        Ok((
+            folds.into_iter().map(Fold::finish).collect(),
+            sample,
+            samples,
+        ))
     }
 }
 
@@ -257,7 +347,7 @@ struct Mark {
     pending: Vec<f64>,
     pending_origin: Vec<Origin>,
     train_counts: Counts,
-    moments: Vec<Moments>,
+    kept: Vec<u64>,
     dropped: Dropped,
 }
 
@@ -275,12 +365,12 @@ impl Acc {
             pending: self.pending.clone(),
             pending_origin: self.pending_origin.clone(),
             train_counts: self.train_counts,
-            moments: self.moments.clone(),
+            kept: self.kept.mark(),
             dropped: self.dropped.clone(),
         }
     }
 
-    fn reset(&mut self, m: Mark) {
+    fn reset(&mut self, m: Mark) -> Result<()> {
         self.x.truncate(m.lens[0]);
         self.is_anomaly.truncate(m.lens[1]);
         self.parts.truncate(m.lens[1]);
@@ -293,10 +383,11 @@ impl Acc {
         self.pending = m.pending;
         self.pending_origin = m.pending_origin;
         self.train_counts = m.train_counts;
-        self.moments = m.moments;
+        self.kept.reset(&m.kept)?;
         self.dropped = m.dropped;
         self.row = 0;
         self.error = None;
+        Ok(())
     }
 }
 
@@ -315,7 +406,7 @@ struct Acc {
     pending_origin: Vec<Origin>,
     train_hashes: Vec<ContentHash>,
     train_counts: Counts,
-    moments: Vec<Moments>,
+    kept: TrainRows,
     dropped: Dropped,
     error: Option<Error>,
 }
@@ -328,22 +419,20 @@ struct Ctx<'a> {
 }
 
 impl Ctx<'_> {
-    fn data_error(&self, acc: &Acc, column: &str, message: String, rows: &[u64]) -> Error {
+    /// Where `rows` (0-based rows of the current file) of `column` are.
+    fn at(&self, acc: &Acc, column: &str, rows: &[u64]) -> rules::At {
         let f = &self.files[acc.file as usize];
-        Error::Data {
+        rules::At {
             path: f.shown.clone().into(),
-            column: Some(column.into()),
-            message,
+            column: column.into(),
             total: rows.len(),
             lines: rows.iter().take(5).map(|&r| f.format.place(r)).collect(),
-            unit: match f.format {
-                Format::Csv => RowUnit::Line,
-                Format::Parquet => RowUnit::Row,
-            },
+            unit: f.format.unit(),
         }
     }
 
-    /// Folds the first `rows` pending training rows into the moments.
+    /// Checks the first `rows` pending training rows' features (finite and
+    /// within the training bound) and moves the rows to the kept ones.
     fn fold(&self, acc: &mut Acc, rows: usize) -> Result<()> {
         if rows == 0 {
             return Ok(());
@@ -352,7 +441,7 @@ impl Ctx<'_> {
         let columns: Vec<Vec<f64>> = (0..c)
             .map(|j| (0..rows).map(|i| acc.pending[i * c + j]).collect())
             .collect();
-        for (s, f) in self.fitted.iter().enumerate() {
+        for f in self.fitted {
             let x = f.apply_columns(&columns, rows).map_err(|fault| {
                 let o = acc.pending_origin[fault.rows[0]];
                 let file = &self.files[o.file as usize];
@@ -382,30 +471,30 @@ impl Ctx<'_> {
                 if let Some(&first) = huge.first() {
                     let o = acc.pending_origin[first];
                     let file = &self.files[o.file as usize];
-                    return Err(Error::Data {
-                        path: file.shown.clone().into(),
-                        column: Some(name.clone()),
-                        message: "a training value is beyond ±1e150 (after transforms): the \
-                                  fitted moments would overflow; fix the value or transform \
-                                  the feature (`log`)"
-                            .into(),
-                        total: huge.len(),
-                        lines: huge
-                            .iter()
-                            .map(|&r| acc.pending_origin[r])
-                            .filter(|p| p.file == o.file)
-                            .take(5)
-                            .map(|p| file.format.place(p.row))
-                            .collect(),
-                        unit: match file.format {
-                            Format::Csv => RowUnit::Line,
-                            Format::Parquet => RowUnit::Row,
+                    return Err(rules::beyond_train_limit(
+                        rules::At {
+                            path: file.shown.clone().into(),
+                            column: name.clone(),
+                            total: huge.len(),
+                            lines: huge
+                                .iter()
+                                .map(|&r| acc.pending_origin[r])
+                                .filter(|p| p.file == o.file)
+                                .take(5)
+                                .map(|p| file.format.place(p.row))
+                                .collect(),
+                            unit: file.format.unit(),
                         },
-                    });
+                        rules::MOMENTS_OVERFLOW,
+                    ));
                 }
             }
-            let block = Moments::of_block(x.view());
-            acc.moments[s].merge(&block);
+        }
+        // The pending rows are the last training rows hashed.
+        let first = acc.train_hashes.len() - acc.pending_origin.len();
+        for i in 0..rows {
+            let h = acc.train_hashes[first + i];
+            acc.kept.push(&h, &acc.pending[i * c..(i + 1) * c])?;
         }
         acc.pending.drain(..rows * c);
         acc.pending_origin.drain(..rows);
@@ -428,33 +517,41 @@ impl Ctx<'_> {
         let mut bad_split = Vec::new();
         let mut anomaly_in_train = Vec::new();
         let mut missing: Vec<Vec<u64>> = vec![vec![]; self.ncols];
+        let mut infinite: Vec<Vec<u64>> = vec![vec![]; self.ncols];
         for i in 0..n {
             let r = acc.row + i as u64;
-            let a = match labels[i].as_deref() {
-                Some(v) if v == label.normal => false,
-                Some(v) if v == label.anomaly => true,
-                _ => {
+            let a = labels[i]
+                .as_deref()
+                .and_then(|v| rules::label_of(v.as_bytes(), &label.normal, &label.anomaly))
+                .unwrap_or_else(|| {
                     bad_label.push(r);
                     false
-                }
-            };
-            let p = match splits[i].as_deref() {
-                Some("train") => Part::Train,
-                Some("validation") => Part::Validation,
-                Some("test") => Part::Test,
-                _ => {
+                });
+            let p = splits[i]
+                .as_deref()
+                .and_then(rules::part_of)
+                .unwrap_or_else(|| {
                     bad_split.push(r);
                     Part::Train
-                }
-            };
+                });
             if a && p == Part::Train {
                 anomaly_in_train.push(r);
             }
             let mut has_missing = false;
+            // As the in-memory reader reads them: a NaN is a missing value,
+            // an infinite value is refused.
             for (j, col) in numeric.iter().enumerate() {
-                if col[i].is_none() {
-                    missing[j].push(r);
-                    has_missing = true;
+                match col[i] {
+                    None => {
+                        missing[j].push(r);
+                        has_missing = true;
+                    }
+                    Some(v) if v.is_nan() => {
+                        missing[j].push(r);
+                        has_missing = true;
+                    }
+                    Some(v) if v.is_infinite() => infinite[j].push(r),
+                    Some(_) => {}
                 }
             }
             if has_missing && plan.missing == MissingPolicy::DropRow {
@@ -474,15 +571,19 @@ impl Ctx<'_> {
                 keep.push(Some((a, p)));
             }
         }
+        if let Some(j) = (0..self.ncols).find(|&j| !infinite[j].is_empty()) {
+            return Err(rules::infinite(self.at(
+                acc,
+                &plan.columns[j].name,
+                &infinite[j],
+            )));
+        }
         let label_of = |r: u64| labels[(r - acc.row) as usize].as_deref().unwrap_or("");
         let values = crate::data::by_value(bad_label.iter().map(|&r| (r, label_of(r))));
         if values.len() > 1 {
             // Several undeclared values: each with its own lines.
             let f = &self.files[acc.file as usize];
-            let unit = match f.format {
-                Format::Csv => RowUnit::Line,
-                Format::Parquet => RowUnit::Row,
-            };
+            let unit = f.format.unit();
             let each: Vec<(&str, String)> = values
                 .iter()
                 .take(5)
@@ -492,70 +593,44 @@ impl Ctx<'_> {
                     (*v, crate::error::places(&places, rows.len(), unit))
                 })
                 .collect();
-            return Err(Error::Data {
-                path: f.shown.clone().into(),
-                column: Some(label.column.name.clone()),
-                message: crate::data::bad_labels_message(
-                    &label.normal,
-                    &label.anomaly,
-                    &each,
-                    values.len(),
-                ),
-                lines: vec![],
-                total: 0,
+            return Err(rules::undeclared_labels(
+                f.shown.clone().into(),
+                &label.column.name,
                 unit,
-            });
+                (&label.normal, &label.anomaly),
+                &each,
+                values.len(),
+            ));
         }
         if let Some(&first) = bad_label.first() {
             let i = (first - acc.row) as usize;
-            return Err(self.data_error(
-                acc,
-                &label.column.name,
-                format!(
-                    "label `{}` is neither `{}` (normal) nor `{}` (anomaly)",
-                    labels[i].as_deref().unwrap_or(""),
-                    label.normal,
-                    label.anomaly
-                ),
-                &bad_label,
+            return Err(rules::undeclared_label(
+                self.at(acc, &label.column.name, &bad_label),
+                labels[i].as_deref().unwrap_or(""),
+                &label.normal,
+                &label.anomaly,
             ));
         }
         if let Some(&first) = bad_split.first() {
             let i = (first - acc.row) as usize;
-            return Err(self.data_error(
-                acc,
-                split_col,
-                format!(
-                    "split value `{}` is not one of `train`, `validation`, `test`",
-                    splits[i].as_deref().unwrap_or("")
-                ),
-                &bad_split,
+            return Err(rules::unknown_split(
+                self.at(acc, split_col, &bad_split),
+                splits[i].as_deref().unwrap_or(""),
             ));
         }
         if !anomaly_in_train.is_empty() {
-            return Err(self.data_error(
+            return Err(rules::anomaly_in_train(self.at(
                 acc,
                 split_col,
-                "a known anomaly is assigned to `train`; detectors are fitted on normal rows only, \
-                 so known anomalies belong in validation and test"
-                    .into(),
                 &anomaly_in_train,
-            ));
+            )));
         }
         if plan.missing == MissingPolicy::Refuse {
             // Every column with a missing value in this chunk, worded as
             // the in-memory reader words it.
             let each: Vec<Error> = (0..self.ncols)
                 .filter(|&j| !missing[j].is_empty())
-                .map(|j| {
-                    self.data_error(
-                        acc,
-                        &plan.columns[j].name,
-                        "a missing value (set `missing-values: drop-row` to leave such rows out)"
-                            .into(),
-                        &missing[j],
-                    )
-                })
+                .map(|j| rules::missing_value(self.at(acc, &plan.columns[j].name, &missing[j])))
                 .collect();
             if let Some(e) = data::all_missing(each) {
                 return Err(e);
@@ -614,13 +689,13 @@ fn plain_file(
     fi: usize,
     split: &crate::spec::Column,
     counter: &crate::progress::Stage,
-) -> bool {
+) -> Result<bool> {
     let label = plan.label.as_ref().expect("checked by the spec");
     let numeric: Vec<&crate::spec::Column> = plan.columns.iter().collect();
     let mut text: Vec<&crate::spec::Column> = vec![&label.column, split];
     text.extend(plan.id_column.iter());
     let Some(mut chunks) = data::fast::Chunks::open(&files[fi].path, &numeric, &text, None) else {
-        return false;
+        return Ok(false);
     };
     let mut a = acc.lock().expect("not poisoned");
     let mark = a.mark();
@@ -653,13 +728,15 @@ fn plain_file(
     if done {
         files[fi].rows = a.row as usize;
     } else {
-        a.reset(mark);
+        a.reset(mark)?;
     }
-    done
+    Ok(done)
 }
 
-/// Streams the plan's one labelled source.
-pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
+/// Streams the plan's one labelled source, keeping for each of
+/// `sample_limits` every k-th training row in content-hash order,
+/// k = ⌈training rows / limit⌉ (as an in-memory run samples them).
+pub fn load(plan: &Plan, progress: &Progress, sample_limits: &[usize]) -> Result<Streamed> {
     let SplitPlan::FromColumn { column: split, .. } = &plan.split else {
         return Err(Error::internal("streaming needs a from-column split"));
     };
@@ -704,10 +781,7 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
         pending_origin: vec![],
         train_hashes: vec![],
         train_counts: Counts::default(),
-        moments: fitted
-            .iter()
-            .map(|f| Moments::empty(f.features.len()))
-            .collect(),
+        kept: TrainRows::new(columns.len()),
         dropped: Dropped::default(),
         error: None,
     }));
@@ -738,7 +812,7 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
             a.row = 0;
         }
         if file.format == Format::Csv
-            && plain_file(plan, &acc, &fitted, &mut files, fi, split, &counter)
+            && plain_file(plan, &acc, &fitted, &mut files, fi, split, &counter)?
         {
             continue;
         }
@@ -828,6 +902,14 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
     };
     ctx.fold(&mut a, rest)?;
     a.train_hashes.sort_unstable();
+    let strides: Vec<usize> = sample_limits
+        .iter()
+        .map(|&l| a.train_hashes.len().div_ceil(l.max(1)).max(1))
+        .collect();
+    let stage = progress.stage("folding the training rows' moments");
+    let kept = std::mem::replace(&mut a.kept, TrainRows::new(0));
+    let (moments, train_sample, samples) = kept.finish(&fitted, &columns, &strides)?;
+    drop(stage);
     let n = a.is_anomaly.len();
     let x = Array2::from_shape_vec((n, columns.len()), std::mem::take(&mut a.x))
         .map_err(|e| Error::internal(format!("the kept rows: {e}")))?;
@@ -847,39 +929,8 @@ pub fn load(plan: &Plan, progress: &Progress) -> Result<Streamed> {
         train_hashes: a.train_hashes,
         train_counts: a.train_counts,
         fitted,
-        moments: a.moments,
+        moments,
+        train_sample,
+        samples,
     })
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-    use ndarray::array;
-
-    #[test]
-    fn merged_blocks_equal_the_moments_of_all_rows() {
-        // Welford / Chan: merging the moments of two halves gives the moments
-        // of the whole (common practice, no source); here to 1e-12 relative.
-        let x = array![
-            [1.0, 10.0],
-            [2.0, 12.5],
-            [4.0, 9.0],
-            [8.0, 15.0],
-            [3.0, 11.0],
-            [5.5, 13.0],
-            [7.0, 8.5]
-        ];
-        let whole = Moments::of_block(x.view());
-        let mut merged = Moments::of_block(x.slice(ndarray::s![..3, ..]));
-        merged.merge(&Moments::of_block(x.slice(ndarray::s![3.., ..])));
-        assert_eq!(merged.n, 7);
-        for (a, b) in merged.mean.iter().zip(&whole.mean) {
-            assert!((a - b).abs() <= 1e-12 * b.abs());
-        }
-        for (a, b) in merged.m2.iter().zip(&whole.m2) {
-            assert!((a - b).abs() <= 1e-12 * b.abs().max(1.0), "{a} {b}");
-        }
-        // Python's statistics.pvariance([1, 2, 4, 8, 3, 5.5, 7]) = 5.76530612244898.
-        assert!((merged.covariance()[0] - 5.765_306_122_448_98).abs() < 1e-12);
-    }
 }

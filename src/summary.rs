@@ -417,30 +417,72 @@ pub fn curve(s: &Summary) -> Vec<crate::threshold::Cut> {
 
 /// The walk of [`Summary::ap_auc`] over (anomalies, tied normals) per cut
 /// point and normals per gap, with class totals `p_total`, `n_total`: shared
-/// with the bootstrap, which walks drawn counts the same way.
+/// with the bootstrap, which walks drawn counts the same way
+/// ([`RankingWalk`]).
 pub(crate) fn ranking_walk(
     at_cuts: impl Iterator<Item = (u64, u64)>,
     mut gaps: impl Iterator<Item = u64>,
     p_total: f64,
     n_total: f64,
 ) -> (Option<f64>, Option<f64>) {
-    let (mut ap, mut u) = (0.0, 0.0);
-    let (mut pos_above, mut neg_above) = (0u64, 0u64);
+    let mut walk = RankingWalk::new(p_total, n_total);
     for (p, n) in at_cuts {
-        neg_above += gaps.next().unwrap_or(0);
+        walk.gap(gaps.next().unwrap_or(0));
+        walk.cut(p, n);
+    }
+    walk.finish()
+}
+
+/// Average precision and ROC AUC accumulated down a ranking, cut point by
+/// cut point from the highest score: the one place of that arithmetic, for
+/// the summary and for every bootstrap replicate.
+pub(crate) struct RankingWalk {
+    ap: f64,
+    u: f64,
+    pos_above: u64,
+    neg_above: u64,
+    p_total: f64,
+    n_total: f64,
+}
+
+impl RankingWalk {
+    /// A walk over a ranking with these class totals.
+    pub(crate) fn new(p_total: f64, n_total: f64) -> Self {
+        RankingWalk {
+            ap: 0.0,
+            u: 0.0,
+            pos_above: 0,
+            neg_above: 0,
+            p_total,
+            n_total,
+        }
+    }
+
+    /// `n` normal rows between the last cut point and the next.
+    pub(crate) fn gap(&mut self, n: u64) {
+        self.neg_above += n;
+    }
+
+    /// A cut point with `p` anomalies and `n` normal rows tied with them.
+    pub(crate) fn cut(&mut self, p: u64, n: u64) {
         if p > 0 {
             let (pf, nf) = (p as f64, n as f64);
-            let (tp, fp) = ((pos_above + p) as f64, (neg_above + n) as f64);
-            ap += (pf / p_total) * (tp / (tp + fp));
+            let (tp, fp) = ((self.pos_above + p) as f64, (self.neg_above + n) as f64);
+            self.ap += (pf / self.p_total) * (tp / (tp + fp));
             // Anomalies here beat the normal rows below; ties count one half.
-            u += pf * (n_total - neg_above as f64 - nf) + 0.5 * pf * nf;
+            self.u += pf * (self.n_total - self.neg_above as f64 - nf) + 0.5 * pf * nf;
         }
-        pos_above += p;
-        neg_above += n;
+        self.pos_above += p;
+        self.neg_above += n;
     }
-    let ap = (p_total > 0.0).then_some(ap);
-    let auc = (p_total > 0.0 && n_total > 0.0).then(|| u / (p_total * n_total));
-    (ap, auc)
+
+    /// (AP, AUC); `None` where a class has no rows.
+    pub(crate) fn finish(self) -> (Option<f64>, Option<f64>) {
+        let ap = (self.p_total > 0.0).then_some(self.ap);
+        let auc = (self.p_total > 0.0 && self.n_total > 0.0)
+            .then(|| self.u / (self.p_total * self.n_total));
+        (ap, auc)
+    }
 }
 
 #[cfg(test)]
@@ -455,7 +497,7 @@ mod tests {
     use rand_chacha::rand_core::{Rng, SeedableRng};
 
     /// Scores with many ties, signed zeros and +∞, and at least one anomaly
-    /// and one normal row (as the pipeline guarantees). No −∞: "flag every
+    /// and one normal row (as the protocol guarantees). No −∞: "flag every
     /// row" has no τ below it (the row-level search's τ is then NaN).
     fn random_case(rng: &mut rand_chacha::ChaCha8Rng) -> (Vec<f64>, Vec<bool>) {
         let n = 2 + (rng.next_u32() % 300) as usize;
@@ -593,7 +635,7 @@ mod tests {
                 // points (a τ inside a gap splits it in two), not its law:
                 // compared here without it.
                 // A τ fixed in advance (fixed, conformal) is not a cut of
-                // the summary without it: the pipeline adds it first.
+                // the summary without it: the protocol adds it first.
                 if !matches!(
                     p,
                     ThresholdPolicy::Fixed { .. } | ThresholdPolicy::Conformal { .. }

@@ -2,7 +2,7 @@
 //! test split never reaches this module.
 //!
 //! Every policy is an exact search: one sort of the validation scores, then a
-//! walk over every distinct cut point (O(n log n)); or, in the pipeline, the
+//! walk over every distinct cut point (O(n log n)); or, in the protocol, the
 //! same search over the cut points of the validation scores' evaluation
 //! summary (one pass, no sort; [`cuts_summary`] says why it is the same). Cut point k flags the rows
 //! whose scores are among the k highest distinct values. Among cut points that
@@ -15,7 +15,7 @@
 //!
 //! A policy that no cut point meets (a precision target above every
 //! achievable precision) returns the closest achievable point with
-//! `met = false` and a note saying so; the pipeline does not select such a
+//! `met = false` and a note saying so; the protocol does not select such a
 //! candidate.
 
 use crate::metrics::{cmp_fraction, Confusion, Ranked, Threshold};
@@ -126,7 +126,7 @@ pub fn cuts_ranked(r: &Ranked) -> Vec<Cut> {
 /// The cuts left out are those just below a group of normal rows only. Each
 /// has the counts of the kept cut before it (the last anomaly group above it,
 /// or "flag nothing") with the same TP and more FP, and each policy, given
-/// at least one anomaly (the pipeline refuses a split without one), is then
+/// at least one anomaly (the protocol refuses a split without one), is then
 /// no better there, so the first best cut of the full search is a kept one:
 ///
 /// - `max-f1`: F1 = 2TP/(2TP + FP + FN) falls as FP grows at fixed TP.
@@ -386,7 +386,7 @@ fn choose_from(
 /// smallest score of the n validation normals (taken from their sorted
 /// scores directly, not from the cut points), and s > τ flags exactly the rows
 /// with conformal p-value ≤ A (see [`crate::conformal::Calibration::cut`]).
-/// A level below 1/(n + 1) is unmet (the pipeline refuses it before this
+/// A level below 1/(n + 1) is unmet (the protocol refuses it before this
 /// point, naming the number of validation normals it would need).
 pub fn conformal(scores: &[f64], is_anomaly: &[bool], a: f64) -> Choice {
     let cal = crate::conformal::Calibration::of_normals(scores, is_anomaly);

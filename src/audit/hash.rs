@@ -12,14 +12,20 @@ use crate::error::{Error, Result};
 
 /// Domain tag of the row encoding, version 1.
 const ROW_TAG: &[u8] = b"anomark/row/v1\0";
-/// Domain tag of a split manifest, version 1.
-const MANIFEST_TAG: &[u8] = b"anomark/manifest/v1\0";
+/// Domain tag of a split manifest, version 2 (over content-hash buckets).
+const MANIFEST_TAG: &[u8] = b"anomark/manifest/v2\0";
 
 /// The blake3 hash of one row's canonical content.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
 pub struct ContentHash(pub [u8; 32]);
 
 impl ContentHash {
+    /// The row's bucket: the big-endian `u16` of the hash's first two bytes
+    /// (the split manifests and the training moments are defined on them).
+    pub fn bucket(&self) -> u16 {
+        u16::from_be_bytes([self.0[0], self.0[1]])
+    }
+
     /// Lowercase hex.
     pub fn to_hex(&self) -> String {
         hex(&self.0)
@@ -253,28 +259,29 @@ pub fn bytes(b: &[u8]) -> String {
     blake3::hash(b).to_hex().to_string()
 }
 
-/// The hash of a split manifest: blake3 over the tag `anomark/manifest/v1\0`
-/// followed by the 32-byte content hashes of the split's rows in ascending
-/// byte order (a hash repeats once per identical row).
+/// The hash of a split manifest, defined on content-hash buckets
+/// ([`ContentHash::bucket`]) so that any partitioning of the rows gives it:
+/// blake3 over the tag `anomark/manifest/v2\0` followed, for each non-empty
+/// bucket in ascending order, by the bucket's number (2 bytes, big-endian)
+/// and its digest ([`manifest_bucket_digest`]: blake3 over the 32-byte
+/// content hashes of the bucket's rows in ascending byte order, a hash
+/// repeated once per identical row). An empty split hashes the tag alone.
 pub fn manifest(hashes: &[ContentHash]) -> String {
     let mut sorted = hashes.to_vec();
     sorted.sort_unstable();
     manifest_of_sorted(sorted.iter())
 }
 
-/// [`manifest`] of hashes given in ascending order (a split's rows are kept
-/// in canonical order), read once and not copied.
-pub fn manifest_of_sorted<'a>(hashes: impl Iterator<Item = &'a ContentHash>) -> String {
+/// A split manifest in the earlier format, `anomark/manifest/v1`: blake3
+/// over the tag `anomark/manifest/v1\0` and the rows' 32-byte content
+/// hashes in ascending order. Runs no longer record it; it is computed only
+/// to recognise the test-ledger entries that runs before the bucketed format
+/// recorded, so that a test split opened then still counts as opened.
+pub fn manifest_v1_of_sorted<'a>(hashes: impl Iterator<Item = &'a ContentHash>) -> String {
     let mut h = blake3::Hasher::new();
-    h.update(MANIFEST_TAG);
+    h.update(b"anomark/manifest/v1\0");
     let mut buf = Vec::with_capacity(1 << 16);
-    let mut last: Option<&ContentHash> = None;
     for c in hashes {
-        debug_assert!(
-            last.is_none_or(|l| l <= c),
-            "manifest_of_sorted: hashes out of order"
-        );
-        last = Some(c);
         buf.extend_from_slice(&c.0);
         if buf.len() >= 1 << 16 {
             h.update(&buf);
@@ -283,6 +290,132 @@ pub fn manifest_of_sorted<'a>(hashes: impl Iterator<Item = &'a ContentHash>) -> 
     }
     h.update(&buf);
     h.finalize().to_hex().to_string()
+}
+
+/// One bucket's digest in a split manifest: blake3 over its rows' 32-byte
+/// content hashes, given in ascending byte order.
+pub fn manifest_bucket_digest<'a>(sorted: impl IntoIterator<Item = &'a ContentHash>) -> [u8; 32] {
+    let mut h = blake3::Hasher::new();
+    let mut last: Option<&ContentHash> = None;
+    for c in sorted {
+        debug_assert!(
+            last.is_none_or(|l| l <= c),
+            "manifest_bucket_digest: hashes out of order"
+        );
+        last = Some(c);
+        h.update(&c.0);
+    }
+    *h.finalize().as_bytes()
+}
+
+/// [`manifest`] from the digests of its non-empty buckets computed elsewhere
+/// (each by [`manifest_bucket_digest`]), in any order; a bucket named twice
+/// is refused, since its rows would count twice.
+pub fn manifest_of_buckets(mut buckets: Vec<(u16, [u8; 32])>) -> Result<String> {
+    buckets.sort_by_key(|b| b.0);
+    if let Some(w) = buckets.windows(2).find(|w| w[0].0 == w[1].0) {
+        return Err(Error::internal(format!(
+            "bucket {} of a split manifest is given twice",
+            w[0].0
+        )));
+    }
+    Ok(of_bucket_digests(&buckets))
+}
+
+/// The manifest over its buckets' digests, in ascending bucket order.
+fn of_bucket_digests(buckets: &[(u16, [u8; 32])]) -> String {
+    // One message in one buffer, hashed at once (the crate works on many
+    // chunks side by side only when given them together).
+    let mut msg = Vec::with_capacity(MANIFEST_TAG.len() + 34 * buckets.len());
+    msg.extend_from_slice(MANIFEST_TAG);
+    for (b, digest) in buckets {
+        msg.extend_from_slice(&b.to_be_bytes());
+        msg.extend_from_slice(digest);
+    }
+    blake3::hash(&msg).to_hex().to_string()
+}
+
+/// [`manifest_bucket_digest`] of each run of `hashes`, on all cores: the
+/// runs of up to 32 rows (one BLAKE3 chunk) sixteen at a time side by side
+/// by [`super::lanes`], grouped by length (a short last group repeats its
+/// last run, whose extra digests are dropped), longer runs by the crate;
+/// the same bytes either way (`lanes` is tested against the crate).
+fn bucket_digests(hashes: &[ContentHash], runs: &[std::ops::Range<usize>]) -> Vec<[u8; 32]> {
+    use super::lanes::{hash16, LANES, MAX_LEN};
+    use rayon::prelude::*;
+    let most = MAX_LEN / 32;
+    let mut by_len: Vec<Vec<usize>> = vec![Vec::new(); most + 1];
+    let mut long = Vec::new();
+    for (i, r) in runs.iter().enumerate() {
+        if r.len() <= most {
+            by_len[r.len()].push(i);
+        } else {
+            long.push(i);
+        }
+    }
+    let groups: Vec<(usize, &[usize])> = by_len
+        .iter()
+        .enumerate()
+        .flat_map(|(k, v)| v.chunks(LANES).map(move |c| (k, c)))
+        .collect();
+    let mut out = vec![[0u8; 32]; runs.len()];
+    let done: Vec<(usize, [u8; 32])> = groups
+        .par_chunks(64)
+        .flat_map_iter(|task| {
+            let mut buf = vec![0u8; LANES * MAX_LEN];
+            let mut done = Vec::with_capacity(task.len() * LANES);
+            for &(k, group) in task {
+                let len = 32 * k;
+                for (l, msg) in buf.chunks_exact_mut(len).enumerate().take(LANES) {
+                    let r = &runs[group[l.min(group.len() - 1)]];
+                    for (slot, h) in msg.chunks_exact_mut(32).zip(&hashes[r.clone()]) {
+                        slot.copy_from_slice(&h.0);
+                    }
+                }
+                let mut digests = [[0u8; 32]; LANES];
+                hash16(&buf, len, len, &mut digests);
+                done.extend(group.iter().copied().zip(digests));
+            }
+            done
+        })
+        .chain(
+            long.par_iter()
+                .map(|&i| (i, manifest_bucket_digest(&hashes[runs[i].clone()]))),
+        )
+        .collect();
+    for (i, digest) in done {
+        out[i] = digest;
+    }
+    out
+}
+
+/// [`manifest`] of hashes given in ascending order (a split's rows are kept
+/// in canonical order), not copied; the buckets' digests are made on all
+/// cores.
+pub fn manifest_of_sorted<'a>(hashes: impl Iterator<Item = &'a ContentHash>) -> String {
+    // Copied once into one run of memory: a split's rows are read from all
+    // over the table of hashes, and the digests then read them sequentially.
+    let hashes: Vec<ContentHash> = hashes.copied().collect();
+    let mut runs: Vec<std::ops::Range<usize>> = Vec::new();
+    let mut start = 0;
+    for i in 1..=hashes.len() {
+        if i == hashes.len() || hashes[i].bucket() != hashes[start].bucket() {
+            if i > start {
+                runs.push(start..i);
+            }
+            start = i;
+        }
+    }
+    let digests: Vec<(u16, [u8; 32])> = runs
+        .iter()
+        .map(|r| hashes[r.start].bucket())
+        .zip(bucket_digests(&hashes, &runs))
+        .collect();
+    debug_assert!(
+        digests.windows(2).all(|w| w[0].0 < w[1].0),
+        "manifest_of_sorted: hashes out of order"
+    );
+    of_bucket_digests(&digests)
 }
 
 #[cfg(test)]
@@ -433,12 +566,61 @@ mod tests {
         let unsorted = manifest(&many);
         many.sort_unstable();
         assert_eq!(manifest_of_sorted(many.iter()), unsorted);
-        // The definition: blake3 over the tag and the sorted hashes.
+        // The definition written out: blake3 over the tag, then per
+        // non-empty bucket in order its number (big-endian) and the blake3
+        // of its sorted hashes.
         let mut h = blake3::Hasher::new();
-        h.update(MANIFEST_TAG);
+        h.update(b"anomark/manifest/v2\0");
+        let mut per: Vec<(u16, blake3::Hasher)> = Vec::new();
         for c in &many {
-            h.update(&c.0);
+            let b = u16::from_be_bytes([c.0[0], c.0[1]]);
+            if per.last().is_none_or(|l| l.0 != b) {
+                per.push((b, blake3::Hasher::new()));
+            }
+            per.last_mut().unwrap().1.update(&c.0);
+        }
+        let mut digests = Vec::new();
+        for (b, d) in &per {
+            h.update(&b.to_be_bytes());
+            h.update(d.finalize().as_bytes());
+            digests.push((*b, *d.finalize().as_bytes()));
         }
         assert_eq!(unsorted, h.finalize().to_hex().to_string());
+        // From bucket digests computed elsewhere, in any order.
+        digests.reverse();
+        assert_eq!(manifest_of_buckets(digests.clone()).unwrap(), unsorted);
+        digests.push(digests[0]);
+        assert!(manifest_of_buckets(digests).is_err());
+        // Buckets of every run length from 1 to 40 rows (beyond one BLAKE3
+        // chunk from 33), several of each length, some hashes repeated:
+        // the side-by-side digests equal the crate's, bucket by bucket.
+        let mut crafted: Vec<ContentHash> = Vec::new();
+        for b in 0u16..400 {
+            let k = 1 + (b as usize * 7) % 40;
+            for j in 0..k {
+                let mut h = [(j % 5) as u8; 32];
+                h[..2].copy_from_slice(&(b * 163).to_be_bytes());
+                h[2] = (j / 2) as u8;
+                crafted.push(ContentHash(h));
+            }
+        }
+        crafted.sort_unstable();
+        let mut by_bucket: Vec<(u16, [u8; 32])> = Vec::new();
+        for run in crafted.chunk_by(|a, b| a.bucket() == b.bucket()) {
+            let mut h = blake3::Hasher::new();
+            for c in run {
+                h.update(&c.0);
+            }
+            by_bucket.push((run[0].bucket(), *h.finalize().as_bytes()));
+        }
+        assert_eq!(
+            manifest_of_sorted(crafted.iter()),
+            manifest_of_buckets(by_bucket).unwrap()
+        );
+        // An empty split: the tag alone.
+        assert_eq!(
+            manifest(&[]),
+            blake3::hash(b"anomark/manifest/v2\0").to_hex().to_string()
+        );
     }
 }

@@ -427,13 +427,8 @@ fn parse_block(
                         }
                         Slot::Label => {
                             let l = label?;
-                            *out.labels.get_mut(row)? = if field == l.normal.as_bytes() {
-                                false
-                            } else if field == l.anomaly.as_bytes() {
-                                true
-                            } else {
-                                return None;
-                            };
+                            *out.labels.get_mut(row)? =
+                                crate::rules::label_of(field, l.normal, l.anomaly)?;
                         }
                         Slot::Skip | Slot::Number(_) => {}
                     }

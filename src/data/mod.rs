@@ -22,6 +22,7 @@ use polars::prelude::*;
 
 use crate::audit::hash::{self, FileDigest};
 use crate::error::{Error, Result, RowUnit};
+use crate::rules;
 use crate::spec::{Column, MissingPolicy, Plan, SourcePlan};
 
 pub(crate) mod fast;
@@ -47,7 +48,7 @@ pub enum Format {
 }
 
 impl Format {
-    fn unit(self) -> RowUnit {
+    pub(crate) fn unit(self) -> RowUnit {
         match self {
             Format::Csv => RowUnit::Line,
             Format::Parquet => RowUnit::Row,
@@ -162,11 +163,24 @@ impl Dataset {
     /// A data error about `rows` (all assumed from the first row's file, which
     /// is the one named; rows from other files are counted, not listed).
     pub fn error(&self, column: &str, message: String, rows: &[RowId]) -> Error {
-        let (f, places) = self.places(rows);
+        let at = self.at(column, rows);
         Error::Data {
-            path: PathBuf::from(&f.shown),
-            column: Some(column.to_string()),
+            path: at.path,
+            column: Some(at.column),
             message,
+            lines: at.lines,
+            total: at.total,
+            unit: at.unit,
+        }
+    }
+
+    /// Where `rows` of `column` are, for a refusal by [`rules`] (the first
+    /// row's file is named; rows from other files are counted, not listed).
+    pub fn at(&self, column: &str, rows: &[RowId]) -> rules::At {
+        let (f, places) = self.places(rows);
+        rules::At {
+            path: PathBuf::from(&f.shown),
+            column: column.to_string(),
             lines: places,
             total: rows.len(),
             unit: f.format.unit(),
@@ -198,13 +212,7 @@ impl Dataset {
         let values = by_value(bad.iter().map(|(r, v)| (*r, v.as_str())));
         let rows: Vec<RowId> = bad.iter().map(|r| r.0).collect();
         if let [(v, _)] = values.as_slice() {
-            return self.error(
-                column,
-                format!(
-                    "label `{v}` is neither the normal value `{normal}` nor the anomaly value `{anomaly}`"
-                ),
-                &rows,
-            );
+            return rules::undeclared_label(self.at(column, &rows), v, normal, anomaly);
         }
         let (f, _) = self.places(&rows);
         let each: Vec<(&str, String)> = values
@@ -212,14 +220,14 @@ impl Dataset {
             .take(SHOWN)
             .map(|(v, rows)| (*v, self.places_in_words(rows, &f.shown)))
             .collect();
-        Error::Data {
-            path: PathBuf::from(&f.shown),
-            column: Some(column.to_string()),
-            message: bad_labels_message(normal, anomaly, &each, values.len()),
-            lines: vec![],
-            total: 0,
-            unit: f.format.unit(),
-        }
+        rules::undeclared_labels(
+            PathBuf::from(&f.shown),
+            column,
+            f.format.unit(),
+            (normal, anomaly),
+            &each,
+            values.len(),
+        )
     }
 }
 
@@ -327,28 +335,6 @@ pub(crate) fn by_value<'a, R>(bad: impl Iterator<Item = (R, &'a str)>) -> Vec<(&
         values[k].1.push(r);
     }
     values
-}
-
-/// The refusal of `distinct` undeclared label values, each of the first
-/// ones (`each`: the value and its places in words) with its own places.
-pub(crate) fn bad_labels_message(
-    normal: &str,
-    anomaly: &str,
-    each: &[(&str, String)],
-    distinct: usize,
-) -> String {
-    let mut shown: Vec<String> = each
-        .iter()
-        .map(|(v, places)| format!("`{v}` ({places})"))
-        .collect();
-    if distinct > each.len() {
-        shown.push(format!("and {} more values", distinct - each.len()));
-    }
-    format!(
-        "{distinct} different labels are neither the normal value `{normal}` nor the anomaly \
-         value `{anomaly}`: {}",
-        shown.join(", ")
-    )
 }
 
 /// A file's column names and, for each, whether it is numeric (every CSV
@@ -1081,14 +1067,11 @@ pub fn inspect(plan: &Plan) -> Result<Inspection> {
                             let k = label_k.expect("the label is a text column");
                             for (i, v) in frame.text[k].iter().enumerate() {
                                 let v = v.as_deref().unwrap_or_default();
-                                if v == l.normal {
-                                    is_anomaly.push(false);
-                                } else if v == l.anomaly {
-                                    is_anomaly.push(true);
-                                } else {
+                                let a = rules::label_of(v.as_bytes(), &l.normal, &l.anomaly);
+                                if a.is_none() {
                                     bad_label.push((RowId((start + i) as u64), v.to_string()));
-                                    is_anomaly.push(false);
                                 }
+                                is_anomaly.push(a.unwrap_or(false));
                             }
                         }
                     }
@@ -1164,14 +1147,10 @@ pub fn inspect(plan: &Plan) -> Result<Inspection> {
     for (j, c) in numeric.iter().enumerate() {
         if let Some((_, v)) = not_number[j].first() {
             let rows: Vec<RowId> = not_number[j].iter().map(|r| r.0).collect();
-            problems.push(data.error(&c.name, format!("value `{v}` is not a number"), &rows));
+            problems.push(rules::not_a_number(data.at(&c.name, &rows), Some(v)));
         }
         if !non_finite[j].is_empty() {
-            problems.push(data.error(
-                &c.name,
-                "a feature value is infinite".into(),
-                &non_finite[j],
-            ));
+            problems.push(rules::infinite(data.at(&c.name, &non_finite[j])));
         }
     }
     if let (false, Some(l)) = (bad_label.is_empty(), label) {
@@ -1182,20 +1161,14 @@ pub fn inspect(plan: &Plan) -> Result<Inspection> {
             continue;
         }
         if !empty_text[k].is_empty() {
-            problems.push(data.error(&c.name, "a value is missing".into(), &empty_text[k]));
+            problems.push(rules::empty_text(data.at(&c.name, &empty_text[k])));
         }
     }
     let missing = numeric
         .iter()
         .enumerate()
         .filter(|(j, _)| !missing_rows[*j].is_empty())
-        .map(|(j, c)| {
-            data.error(
-                &c.name,
-                "a feature value is missing".into(),
-                &missing_rows[j],
-            )
-        })
+        .map(|(j, c)| rules::missing_value(data.at(&c.name, &missing_rows[j])))
         .collect();
 
     for (k, c) in text_cols.iter().enumerate() {
@@ -1423,14 +1396,16 @@ pub fn not_a_number(path: &Path, csv: bool, used: &[String], e: PolarsError) -> 
     });
     let found = found.lock().expect("not poisoned").take();
     match (scan, found) {
-        (_, Some((column, lines, total))) => Error::Data {
-            path: path.to_path_buf(),
-            column: Some(column),
-            message: "a value that is not a number".into(),
-            lines,
-            total,
-            unit: RowUnit::Line,
-        },
+        (_, Some((column, lines, total))) => rules::not_a_number(
+            rules::At {
+                path: path.to_path_buf(),
+                column,
+                lines,
+                total,
+                unit: RowUnit::Line,
+            },
+            None,
+        ),
         _ => read_error(path, e),
     }
 }

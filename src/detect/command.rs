@@ -74,9 +74,9 @@ pub struct Invocation {
 }
 
 /// A command's fitted state: what anomark knows of it, which is its
-/// provenance only. It cannot score rows by itself (the pipeline hands rows
+/// provenance only. It cannot score rows by itself (the protocol hands rows
 /// to the program in one folder), so [`Model::score`] gives NaN, which the
-/// pipeline refuses.
+/// protocol refuses.
 struct External {
     params: Params,
 }
@@ -306,8 +306,8 @@ pub fn invoke(
     ))
 }
 
-/// Quotes a CSV field when it needs it (RFC 4180).
-fn csv_field(s: &str) -> String {
+/// Quotes a CSV field when it needs it (RFC 4180); also for scores.csv.
+pub(crate) fn csv_field(s: &str) -> String {
     if s.contains([',', '"', '\n', '\r']) {
         format!("\"{}\"", s.replace('"', "\"\""))
     } else {

@@ -5,7 +5,7 @@
 
 use ndarray::ArrayView2;
 
-use super::{ln, means, refuse_constant, Detector, Model, Params, HALF_LN_2PI};
+use super::{ln, Detector, Model, Params, HALF_LN_2PI};
 use crate::error::Result;
 
 /// The independent-Gaussian detector.
@@ -20,26 +20,15 @@ struct Fitted {
 }
 
 impl Detector for IndependentGaussian {
+    /// The rows taken as one bucket of [`crate::moments`], in the order
+    /// given (a run fits from the content-hash buckets' moments instead,
+    /// through [`super::fit_moments`], the one place of the refusals).
     fn fit(&self, train: ArrayView2<'_, f64>, features: &[String]) -> Result<Box<dyn Model>> {
-        refuse_constant("independent-gaussian", train, features)?;
-        let mean = means(train);
-        let m = train.nrows() as f64;
-        // Two-pass variance: the centred sum of squares, divided by m (the
-        // maximum-likelihood estimate).
-        let mut ss = vec![0.0; train.ncols()];
-        for row in train.rows() {
-            for ((s, v), mu) in ss.iter_mut().zip(row.iter()).zip(&mean) {
-                let c = v - mu;
-                *s += c * c;
-            }
-        }
-        let variance: Vec<f64> = ss.into_iter().map(|s| s / m).collect();
-        let constant = variance.iter().map(|v| HALF_LN_2PI + 0.5 * ln(*v)).sum();
-        Ok(Box::new(Fitted {
-            mean,
-            variance,
-            constant,
-        }))
+        super::fit_moments(
+            crate::spec::DetectorKind::IndependentGaussian,
+            &crate::moments::Moments::of_bucket(train),
+            features,
+        )
     }
 }
 

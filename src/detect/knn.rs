@@ -34,7 +34,7 @@ use ndarray::ArrayView2;
 use rayon::prelude::*;
 
 use super::{ln, refuse_constant, Detector, Model, Params};
-use crate::error::{Error, Result};
+use crate::error::Result;
 
 const NAME: &str = "knn-distance";
 /// Smallest distance used (see the module docs).
@@ -118,11 +118,7 @@ impl KnnDistance {
         refuse_constant(NAME, train, features)?;
         let (m, d) = train.dim();
         if m < self.k {
-            return Err(Error::Fit {
-                detector: NAME.into(),
-                message: format!("{m} training rows are fewer than k = {}", self.k),
-                features: vec![],
-            });
+            return Err(crate::rules::too_few_for_k(NAME, m, self.k));
         }
         let mean = super::means(train);
         let sd: Vec<f64> = (0..d)

@@ -267,19 +267,50 @@ pub fn restore(params: &Params, features: &[String]) -> Result<Option<Box<dyn Mo
     })))
 }
 
-/// The independent Gaussian with given means and variances (streamed fits).
-pub fn restore_independent(mean: Vec<f64>, variance: Vec<f64>) -> Box<dyn Model> {
-    independent::restore(mean, variance)
+/// Whether a detector is fitted from the training moments alone
+/// ([`fit_moments`]): the independent and the multivariate Gaussian.
+pub fn fits_from_moments(kind: DetectorKind) -> bool {
+    matches!(
+        kind,
+        DetectorKind::IndependentGaussian | DetectorKind::MultivariateGaussian
+    )
 }
 
-/// The multivariate Gaussian with a given mean and covariance (row-major),
-/// refusing an ill-conditioned covariance (streamed fits).
-pub fn restore_multivariate(
-    mean: Vec<f64>,
-    cov: Vec<f64>,
-    features: &[String],
+/// Fits a Gaussian detector from the training moments
+/// ([`crate::moments`]): mean x̄ and maximum-likelihood (co)variance M / n.
+/// The one place of these two detectors' refusals: a feature of zero
+/// variance (a constant feature has exactly zero, see
+/// [`crate::moments::Moments::of_bucket`]), too few rows for a covariance,
+/// an ill-conditioned covariance.
+pub fn fit_moments(
+    kind: DetectorKind,
+    m: &crate::moments::Moments,
+    names: &[String],
 ) -> Result<Box<dyn Model>> {
-    multivariate::restore(mean, cov, features)
+    let detector = name(kind);
+    let d = m.mean.len();
+    let cov = m.covariance();
+    let constant: Vec<String> = (0..d)
+        .filter(|&j| cov[j * d + j] <= 0.0 || !cov[j * d + j].is_finite())
+        .map(|j| names[j].clone())
+        .collect();
+    if !constant.is_empty() {
+        return Err(crate::rules::zero_variance(detector, constant));
+    }
+    match kind {
+        DetectorKind::IndependentGaussian => {
+            let variance = (0..d).map(|j| cov[j * d + j]).collect();
+            Ok(independent::restore(m.mean.clone(), variance))
+        }
+        DetectorKind::MultivariateGaussian => {
+            multivariate::refuse_too_few(detector, m.n as usize, d)?;
+            multivariate::restore(m.mean.clone(), cov, names)
+        }
+        other => Err(Error::internal(format!(
+            "`{}` cannot be fitted from moments",
+            name(other)
+        ))),
+    }
 }
 
 /// The detector's name in specs, files and cards ([`DetectorKind::name`],
@@ -312,7 +343,7 @@ pub fn build(kind: DetectorKind) -> Box<dyn Detector> {
 }
 
 /// The stand-in for an external command, which is not fitted in process
-/// (the pipeline runs it through [`command`]).
+/// (the protocol runs it through [`command`]).
 struct NotFittable;
 
 impl Detector for NotFittable {
@@ -357,13 +388,7 @@ pub(crate) fn refuse_constant(
     if constant.is_empty() {
         Ok(())
     } else {
-        Err(Error::Fit {
-            detector: detector.into(),
-            message: "a feature has zero variance on the training rows (every value is the same), \
-                      so its density is degenerate; drop it or fix the data"
-                .into(),
-            features: constant,
-        })
+        Err(crate::rules::zero_variance(detector, constant))
     }
 }
 

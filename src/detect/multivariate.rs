@@ -8,8 +8,9 @@
 use nalgebra::DMatrix;
 use ndarray::ArrayView2;
 
-use super::{ln, refuse_constant, Detector, Model, Params, HALF_LN_2PI};
-use crate::error::{Error, Result};
+use super::{ln, Detector, Model, Params, HALF_LN_2PI};
+use crate::error::Result;
+use crate::rules;
 
 /// Largest condition number of the correlation matrix that is accepted. At
 /// 1e10 the quadratic form keeps about six significant digits in binary64
@@ -219,11 +220,9 @@ impl Gaussian {
         let d = mean.len();
         refuse_ill_conditioned(&cov, d, features, detector)?;
         let sigma = DMatrix::from_row_slice(d, d, &cov);
-        let chol = sigma.cholesky().ok_or_else(|| Error::Fit {
-            detector: detector.into(),
-            message: "the covariance is not positive definite".into(),
-            features: features.to_vec(),
-        })?;
+        let chol = sigma
+            .cholesky()
+            .ok_or_else(|| rules::not_positive_definite(detector, features))?;
         let l = chol.l();
         let mut flat = vec![0.0; d * d];
         let mut ln_det = 0.0;
@@ -366,25 +365,19 @@ const BLOCK: usize = 8;
 
 /// Refuses fewer rows than needed for a covariance over `d` features.
 pub(crate) fn refuse_too_few(detector: &str, m: usize, d: usize) -> Result<()> {
-    if m <= d {
-        return Err(Error::Fit {
-            detector: detector.into(),
-            message: format!(
-                "{m} training rows cannot determine a covariance over {d} features \
-                 (more rows than features are needed)"
-            ),
-            features: vec![],
-        });
-    }
-    Ok(())
+    rules::refuse_too_few_for_covariance(detector, m as u64, d)
 }
 
 impl Detector for MultivariateGaussian {
+    /// The rows taken as one bucket of [`crate::moments`], in the order
+    /// given (a run fits from the content-hash buckets' moments instead,
+    /// through [`super::fit_moments`], the one place of the refusals).
     fn fit(&self, train: ArrayView2<'_, f64>, features: &[String]) -> Result<Box<dyn Model>> {
-        refuse_constant(NAME, train, features)?;
-        refuse_too_few(NAME, train.nrows(), train.ncols())?;
-        let (mean, cov) = moments(train, None);
-        Ok(Box::new(Fitted(Gaussian::new(mean, cov, NAME, features)?)))
+        super::fit_moments(
+            crate::spec::DetectorKind::MultivariateGaussian,
+            &crate::moments::Moments::of_bucket(train),
+            features,
+        )
     }
 }
 
@@ -410,11 +403,7 @@ fn refuse_ill_conditioned(
 ) -> Result<()> {
     let sd: Vec<f64> = (0..d).map(|i| cov[i * d + i].sqrt()).collect();
     if let Some(j) = sd.iter().position(|s| !s.is_finite() || *s <= 0.0) {
-        return Err(Error::Fit {
-            detector: detector.into(),
-            message: "a feature has zero variance in the fitted covariance".into(),
-            features: vec![features[j].clone()],
-        });
+        return Err(rules::zero_variance_in_covariance(detector, &features[j]));
     }
     let corr = DMatrix::from_fn(d, d, |i, j| cov[i * d + j] / (sd[i] * sd[j]));
     let eigen = corr.symmetric_eigen();
@@ -443,15 +432,12 @@ fn refuse_ill_conditioned(
     } else {
         "infinite".into()
     };
-    Err(Error::Fit {
-        detector: detector.into(),
-        message: format!(
-            "the covariance is singular or nearly so (condition number of the correlation \
-             matrix {condition}, limit {MAX_CONDITION:e}): some features are nearly linear \
-             combinations of others; drop one of those named or use independent-gaussian"
-        ),
-        features: involved.into_iter().map(|(_, f)| f).collect(),
-    })
+    Err(rules::ill_conditioned(
+        detector,
+        &condition,
+        MAX_CONDITION,
+        involved.into_iter().map(|(_, f)| f).collect(),
+    ))
 }
 
 impl Model for Fitted {

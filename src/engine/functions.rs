@@ -1,6 +1,6 @@
 //! anomark's protocol as DataFusion functions: every number an engine
 //! computes is computed here by the library's own code (the row hash of
-//! `audit::hash`, the rank key of `split`, the moments of `stream`, the
+//! `audit::hash`, the rank key of `split`, the bucketed moments of `moments` and manifests of `audit::hash`, the
 //! models of `detect`, the summary of `summary`), so each engine's result is
 //! the in-process result to the bit.
 //!
@@ -23,8 +23,8 @@ use datafusion::logical_expr::{
 };
 
 use crate::audit::hash::ContentHash;
+use crate::moments::Moments;
 use crate::spec::Seed;
-use crate::stream::Moments;
 
 /// The row content hash: `anomark_row_hash(is_anomaly, x1, …, xd)`, 32 bytes.
 pub const ROW_HASH: &str = "anomark_row_hash";
@@ -43,8 +43,8 @@ pub const SCORE: &str = "anomark_score";
 pub const VERSION_CHECK: &str = "anomark_version_check";
 /// One content-hash bucket's moments: `anomark_bucket_moments(hash, x1, …, xd)`.
 pub const BUCKET_MOMENTS: &str = "anomark_bucket_moments";
-/// One content-hash bucket's hashes, sorted: `anomark_bucket_hashes(hash)`.
-pub const BUCKET_HASHES: &str = "anomark_bucket_hashes";
+/// One content-hash bucket's manifest digest: `anomark_bucket_digest(hash)`.
+pub const BUCKET_DIGEST: &str = "anomark_bucket_digest";
 /// A score's place among a summary's cut points:
 /// `anomark_interval(cut_points, score)` ([`interval_code`]).
 pub const INTERVAL: &str = "anomark_interval";
@@ -381,18 +381,28 @@ impl ModelParams {
         }
     }
 
-    /// The library's model of these parameters (`detect::restore_*`: the
-    /// scores of the fitted model, to the bit).
+    /// The library's model of these parameters (`detect::restore`, as
+    /// `anomark score` rebuilds a run's model: the scores of the fitted
+    /// model, to the bit).
     pub fn model(&self, features: &[String]) -> crate::Result<Box<dyn crate::detect::Model>> {
-        match self {
-            ModelParams::Independent { mean, variance } => Ok(crate::detect::restore_independent(
-                mean.clone(),
-                variance.clone(),
-            )),
-            ModelParams::Multivariate { mean, covariance } => {
-                crate::detect::restore_multivariate(mean.clone(), covariance.clone(), features)
-            }
-        }
+        use crate::detect::Params;
+        let params = match self {
+            ModelParams::Independent { mean, variance } => Params::IndependentGaussian {
+                mean: mean.clone(),
+                variance: variance.clone(),
+            },
+            ModelParams::Multivariate { mean, covariance } => Params::MultivariateGaussian {
+                mean: mean.clone(),
+                covariance: covariance
+                    .chunks(mean.len().max(1))
+                    .map(|r| r.to_vec())
+                    .collect(),
+                // Not read when rebuilding the model.
+                ln_det_covariance: f64::NAN,
+            },
+        };
+        crate::detect::restore(&params, features)?
+            .ok_or_else(|| crate::Error::internal("a Gaussian that cannot be rebuilt"))
     }
 }
 
@@ -478,24 +488,14 @@ impl ScalarUDFImpl for VersionCheck {
 }
 
 /// The moments of one content-hash bucket's rows given in any order: the
-/// rows in ascending content-hash order, two-pass (`stream::Moments::of_block`).
-/// Rows with equal hashes have equal content, so their order among
-/// themselves does not change the bits.
+/// rows put in ascending content-hash order and handed to
+/// `moments::Moments::of_bucket` (rows with equal hashes have equal content,
+/// so their order among themselves does not change the bits).
 pub fn bucket_moments(hashes: &[[u8; 32]], x: ndarray::ArrayView2<'_, f64>) -> Moments {
     let mut order: Vec<usize> = (0..hashes.len()).collect();
     order.sort_by(|&a, &b| hashes[a].cmp(&hashes[b]));
     let sorted = x.select(ndarray::Axis(0), &order);
-    Moments::of_block(sorted.view())
-}
-
-/// Training moments from per-bucket moments: merged in ascending bucket
-/// order by the pairwise update (a left fold).
-pub fn merge_buckets<'a>(d: usize, buckets: impl IntoIterator<Item = &'a Moments>) -> Moments {
-    let mut m = Moments::empty(d);
-    for b in buckets {
-        m.merge(b);
-    }
-    m
+    Moments::of_bucket(sorted.view())
 }
 
 /// The bytes of moments: n as u64, then the mean's and the co-moments' bits.
@@ -615,7 +615,9 @@ impl Accumulator for MomentsAcc {
     }
 }
 
-/// Keeps a bucket's hashes; evaluates to them sorted, concatenated.
+/// Keeps a bucket's hashes (its state: them sorted, concatenated);
+/// evaluates to the bucket's manifest digest
+/// (`audit::hash::manifest_bucket_digest` of them sorted).
 #[derive(Debug)]
 struct HashesAcc(Vec<[u8; 32]>);
 
@@ -628,13 +630,16 @@ impl HashesAcc {
 
 impl Accumulator for HashesAcc {
     fn update_batch(&mut self, values: &[ArrayRef]) -> Result<()> {
-        let h = keys(&values[0], BUCKET_HASHES)?;
+        let h = keys(&values[0], BUCKET_DIGEST)?;
         self.0
             .extend((0..h.len()).map(|i| -> [u8; 32] { h.value(i).try_into().expect("32") }));
         Ok(())
     }
     fn evaluate(&mut self) -> Result<ScalarValue> {
-        Ok(ScalarValue::Binary(Some(self.bytes())))
+        self.0.sort_unstable();
+        let sorted: Vec<ContentHash> = self.0.iter().map(|h| ContentHash(*h)).collect();
+        let digest = crate::audit::hash::manifest_bucket_digest(&sorted);
+        Ok(ScalarValue::Binary(Some(digest.to_vec())))
     }
     fn size(&self) -> usize {
         std::mem::size_of_val(self) + self.0.capacity() * 32
@@ -643,7 +648,7 @@ impl Accumulator for HashesAcc {
         Ok(vec![ScalarValue::Binary(Some(self.bytes()))])
     }
     fn merge_batch(&mut self, states: &[ArrayRef]) -> Result<()> {
-        let s = binaries(&states[0], BUCKET_HASHES)?;
+        let s = binaries(&states[0], BUCKET_DIGEST)?;
         for i in 0..s.len() {
             if s.is_valid(i) {
                 self.0.extend(
@@ -655,12 +660,6 @@ impl Accumulator for HashesAcc {
         }
         Ok(())
     }
-}
-
-/// The content hashes of [`BUCKET_HASHES`]' result.
-pub fn hashes_from_bytes(b: &[u8]) -> impl Iterator<Item = ContentHash> + '_ {
-    b.chunks_exact(32)
-        .map(|c| ContentHash(c.try_into().expect("32 bytes")))
 }
 
 /// A score's place in `f64::total_cmp` order as a signed integer (so an
@@ -753,7 +752,7 @@ pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
 
 /// Every aggregate function.
 pub fn aggregate_functions() -> Vec<Arc<AggregateUDF>> {
-    [BUCKET_MOMENTS, BUCKET_HASHES]
+    [BUCKET_MOMENTS, BUCKET_DIGEST]
         .into_iter()
         .map(|name| {
             Arc::new(AggregateUDF::from(Aggregate {

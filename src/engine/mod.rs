@@ -24,9 +24,9 @@ use datafusion::prelude::{SessionConfig, SessionContext};
 
 use crate::audit::hash::ContentHash;
 use crate::error::{Error, Result};
+use crate::moments::Moments;
 use crate::spec::{Fractions, Seed};
 use crate::split::Counts;
-use crate::stream::Moments;
 use crate::summary::Summary;
 use functions::SplitCuts;
 
@@ -359,21 +359,22 @@ pub async fn leakage(
 
 /// The training moments of the feature columns `features` of the rows of
 /// `table` in split `part`: each content-hash bucket's moments computed by
-/// the engine ([`functions::bucket_moments`]), merged in bucket order on
-/// the client ([`functions::merge_buckets`]).
+/// the engine ([`functions::bucket_moments`]), folded on the client by
+/// `moments::fold_buckets`, the library's one definition.
 pub async fn moments(
     ctx: &SessionContext,
     table: &str,
     part: i8,
     features: &[String],
 ) -> Result<Moments> {
+    let doing = "fitting on the training rows";
     let cols: Vec<String> = features.iter().map(|f| quote(f)).collect();
     let rows = collect(
         ctx,
-        "fitting on the training rows",
+        doing,
         &format!(
             "SELECT {p}(h) AS b, {m}(h, {cols}) AS mo FROM {table} WHERE part = {part} \
-             GROUP BY b ORDER BY b",
+             GROUP BY b",
             p = functions::PREFIX16,
             m = functions::BUCKET_MOMENTS,
             cols = cols.join(", ")
@@ -383,44 +384,53 @@ pub async fn moments(
     let d = features.len();
     let mut buckets = Vec::new();
     for b in &rows {
-        let m = column::<datafusion::arrow::array::BinaryArray>(b, 1)?;
+        let (id, m) = (
+            column::<Int64Array>(b, 0)?,
+            column::<datafusion::arrow::array::BinaryArray>(b, 1)?,
+        );
         for i in 0..b.num_rows() {
-            buckets.push(
-                functions::moments_from_bytes(m.value(i), d)
-                    .map_err(|e| engine_error("fitting on the training rows", e))?,
-            );
+            let bucket = u16::try_from(id.value(i))
+                .map_err(|_| Error::internal("a content-hash bucket beyond 16 bits"))?;
+            let moments =
+                functions::moments_from_bytes(m.value(i), d).map_err(|e| engine_error(doing, e))?;
+            buckets.push((bucket, moments));
         }
     }
-    Ok(functions::merge_buckets(d, &buckets))
+    crate::moments::fold_buckets(d, buckets)
 }
 
-/// The manifest hash of split `part` of `table`: the rows' content hashes
-/// in ascending order (`audit::hash::manifest_of_sorted`), read bucket by
-/// bucket, each bucket sorted by the engine.
+/// The manifest hash of split `part` of `table`: each content-hash bucket's
+/// digest computed by the engine (`audit::hash::manifest_bucket_digest` of
+/// its sorted hashes), joined on the client by
+/// `audit::hash::manifest_of_buckets`, the library's one definition.
 pub async fn manifest(ctx: &SessionContext, table: &str, part: i8) -> Result<String> {
     let rows = collect(
         ctx,
         "hashing the split manifest",
         &format!(
-            "SELECT {p}(h) AS b, {hs}(h) AS hs FROM {table} WHERE part = {part} \
-             GROUP BY b ORDER BY b",
+            "SELECT {p}(h) AS b, {dg}(h) AS dg FROM {table} WHERE part = {part} GROUP BY b",
             p = functions::PREFIX16,
-            hs = functions::BUCKET_HASHES
+            dg = functions::BUCKET_DIGEST
         ),
     )
     .await?;
-    let mut all: Vec<&[u8]> = Vec::new();
+    let mut buckets = Vec::new();
     for b in &rows {
-        let hs = column::<datafusion::arrow::array::BinaryArray>(b, 1)?;
+        let (id, dg) = (
+            column::<Int64Array>(b, 0)?,
+            column::<datafusion::arrow::array::BinaryArray>(b, 1)?,
+        );
         for i in 0..b.num_rows() {
-            all.push(hs.value(i));
+            let bucket = u16::try_from(id.value(i))
+                .map_err(|_| Error::internal("a content-hash bucket beyond 16 bits"))?;
+            let digest: [u8; 32] = dg
+                .value(i)
+                .try_into()
+                .map_err(|_| Error::internal("a bucket digest of other than 32 bytes"))?;
+            buckets.push((bucket, digest));
         }
     }
-    let hashes: Vec<ContentHash> = all
-        .into_iter()
-        .flat_map(functions::hashes_from_bytes)
-        .collect();
-    Ok(crate::audit::hash::manifest_of_sorted(hashes.iter()))
+    crate::audit::hash::manifest_of_buckets(buckets)
 }
 
 /// The evaluation summary of the scores in column `score` of the rows of

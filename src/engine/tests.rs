@@ -209,23 +209,11 @@ async fn run_steps(x: &Array2<f64>, a: &[bool], seed: u64, p: usize, b: usize) -
     }
 }
 
-/// The bucketed training moments computed in process: training rows
-/// grouped by their hash's leading 16 bits, each bucket in hash order,
-/// two-pass, merged in bucket order.
+/// The training moments computed in process by the library's one
+/// definition (`moments::of_rows`).
 fn in_process_moments(x: &Array2<f64>, hashes: &[ContentHash], train: &[usize]) -> Moments {
-    let mut buckets: BTreeMap<u16, Vec<usize>> = BTreeMap::new();
-    for &i in train {
-        buckets
-            .entry(functions::bucket_of(&hashes[i].0))
-            .or_default()
-            .push(i);
-    }
-    let mut m = Moments::empty(D);
-    for rows in buckets.values_mut() {
-        rows.sort_by_key(|&i| hashes[i]);
-        m.merge(&Moments::of_block(x.select(ndarray::Axis(0), rows).view()));
-    }
-    m
+    let h: Vec<ContentHash> = train.iter().map(|&i| hashes[i]).collect();
+    crate::moments::of_rows(&h, x.select(ndarray::Axis(0), train).view()).unwrap()
 }
 
 #[test]
@@ -243,24 +231,23 @@ fn every_step_equals_the_in_process_run_in_every_configuration() {
     let train: Vec<usize> = splits.train.iter().map(|r| r.0 as usize).collect();
     let want_moments = in_process_moments(&x, &hashes, &train);
     let sorted = |p: i8| {
-        let mut v: Vec<ContentHash> = (0..a.len())
+        let v: Vec<ContentHash> = (0..a.len())
             .filter(|&i| part[i] == p)
             .map(|i| hashes[i])
             .collect();
-        v.sort();
-        hash::manifest_of_sorted(v.iter())
+        hash::manifest(&v)
     };
     let want_manifests: Vec<String> = (0..3).map(sorted).collect();
     assert_eq!(want_manifests[2], splits.test.manifest());
     // The independent Gaussian fitted in process on the same moments, and
     // its validation scores summarised by `Summary::new`.
-    let variance: Vec<f64> = want_moments
-        .covariance()
-        .iter()
-        .step_by(D + 1)
-        .copied()
-        .collect();
-    let model = crate::detect::restore_independent(want_moments.mean.clone(), variance);
+    let names: Vec<String> = (0..D).map(|j| format!("x{j}")).collect();
+    let model = crate::detect::fit_moments(
+        crate::spec::DetectorKind::IndependentGaussian,
+        &want_moments,
+        &names,
+    )
+    .unwrap();
     let val: Vec<usize> = splits.validation.iter().map(|r| r.0 as usize).collect();
     let scores = model.score(x.select(ndarray::Axis(0), &val).view());
     let labels: Vec<bool> = val.iter().map(|&i| a[i]).collect();

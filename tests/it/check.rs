@@ -99,3 +99,18 @@ fn a_missing_column_is_a_problem_with_a_suggestion() {
     );
     assert!(d.stdout.contains("did you mean `b`?"), "{}", d.stdout);
 }
+
+/// A feature constant on the would-be training rows is reported by `check`
+/// in the words a run refuses it with (`rules::zero_variance`), under its
+/// feature set.
+#[test]
+fn a_constant_feature_is_reported_as_the_run_refuses_it() {
+    let r = crate::util::with_constant_c(rows(100, 4, 1));
+    let d = standard(&r).args(["check", "spec.yaml"]).exec();
+    assert_eq!(d.code, 1, "{}{}", d.stdout, d.stderr);
+    let run = standard(&r).run_spec().fails(3, &["`c`"]);
+    let words = "a feature has zero variance on the training rows (every value is the same), \
+                 so its density is degenerate; drop it or fix the data (features: `c`)";
+    assert!(d.stdout.contains(words), "{}", d.stdout);
+    assert!(run.stderr.contains(words), "{}", run.stderr);
+}

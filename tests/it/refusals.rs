@@ -753,3 +753,71 @@ fn stale_temporaries_are_reported_not_removed() {
     assert!(c.stderr.contains(".anomark-partial-Ab12Cd"), "{}", c.stderr);
     assert!(case.path(".anomark-partial-Ab12Cd").exists());
 }
+
+/// Each row rule refuses a file in the same words whichever way its rows
+/// arrive: read whole, or streamed in chunks (`data.stream: true`), both
+/// calling `rules` (one undeclared label, one unknown split value, one known
+/// anomaly placed in train, one missing value, a `NaN` read as a missing
+/// value, one infinite value: each alone in a file).
+#[test]
+fn every_row_rule_reads_alike_in_memory_and_streamed() {
+    let r = rows(50, 4, 1);
+    // (file line, column index, new value, what the message names)
+    let defects: [(usize, usize, &str, &str); 6] = [
+        (7, 4, "Normal", "label `Normal` is neither"),
+        (9, 5, "holdout", "split value `holdout`"),
+        (0, 5, "train", "a known anomaly is assigned to `train`"),
+        (11, 2, "", "a feature value is missing"),
+        (13, 1, "NaN", "a feature value is missing"),
+        (15, 3, "inf", "a feature value is infinite"),
+    ];
+    for (line, column, value, names) in defects {
+        let mut text = String::from("id,a,b,c,label,split\n");
+        let mut first_anomaly = None;
+        for (i, (id, x, a)) in r.iter().enumerate() {
+            let (label, split) = if *a {
+                ("anomaly", "validation")
+            } else {
+                ("normal", "train")
+            };
+            if *a && first_anomaly.is_none() {
+                first_anomaly = Some(i + 2);
+            }
+            text.push_str(&format!(
+                "{id},{:.6},{:.6},{:.6},{label},{split}\n",
+                x[0], x[1], x[2]
+            ));
+        }
+        // Line 0 stands for the first anomaly's line.
+        let line = if line == 0 {
+            first_anomaly.unwrap()
+        } else {
+            line
+        };
+        let text: String = text
+            .lines()
+            .enumerate()
+            .map(|(i, l)| {
+                let mut f: Vec<&str> = l.split(',').collect();
+                if i + 1 == line {
+                    f[column] = value;
+                }
+                format!("{}\n", f.join(","))
+            })
+            .collect();
+        let whole = spec(&["a", "b", "c"], "  from-column: split");
+        let streamed = whole.replace("  id-column: id\n", "  id-column: id\n  stream: true\n");
+        let at = format!("line {line}");
+        let a = standard(&r)
+            .file("data.csv", text.clone())
+            .file("spec.yaml", whole)
+            .run_spec()
+            .fails(3, &["data.csv", names, &at]);
+        let b = standard(&r)
+            .file("data.csv", text)
+            .file("spec.yaml", streamed)
+            .run_spec()
+            .fails(3, &["data.csv", names, &at]);
+        assert_eq!(a.stderr, b.stderr, "{names}");
+    }
+}

@@ -223,7 +223,8 @@ fn bad_new_data_is_refused_naming_file_column_and_lines() {
     score(&case, "nob.csv", "o1.csv", &[]).fails(3, &["nob.csv", "`b`", "did you mean `b_`?"]);
     score(&case, "text.csv", "o2.csv", &[])
         .fails(3, &["text.csv", "`b`", "line 3", "not a number"]);
-    score(&case, "gap.csv", "o3.csv", &[]).fails(3, &["gap.csv", "line 3", "missing value"]);
+    score(&case, "gap.csv", "o3.csv", &[])
+        .fails(3, &["gap.csv", "line 3", "a feature value is missing"]);
     // Nothing half-written: no output and no temporary file is left.
     let left: Vec<String> = std::fs::read_dir(case.dir.path())
         .unwrap()

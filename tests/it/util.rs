@@ -199,6 +199,16 @@ pub const PROTOCOL: &str = "  protocol:\n    seed: 7";
 /// Rows of (id, features, is_anomaly).
 pub type Rows = Vec<(String, Vec<f64>, bool)>;
 
+/// The rows with feature `c` set to 4 in every row (a constant feature).
+pub fn with_constant_c(rows: Rows) -> Rows {
+    rows.into_iter()
+        .map(|(id, mut x, a)| {
+            x[2] = 4.0;
+            (id, x, a)
+        })
+        .collect()
+}
+
 /// Seeded Gaussian rows: normals N(0, 1) in three features with a correlation
 /// between a and b; anomalies shifted by 3 in a and −3 in b. Values are
 /// written with 6 decimals, so the CSV round-trips exactly as text.

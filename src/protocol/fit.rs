@@ -1,0 +1,224 @@
+//! The third stage: every candidate (feature set × detector) fitted on the
+//! training data, scored on validation, summarised once and given its
+//! threshold by the policy, with its validation metrics. Nothing here sees
+//! the test split.
+
+use super::ingest::Rows;
+use super::train::{self, SetTraining};
+use crate::detect::{self, Model};
+use crate::error::{Error, Result};
+use crate::features::FittedFeatures;
+use crate::metrics::{self, Metrics};
+use crate::spec::{self, DetectorKind, Plan, ThresholdPolicy};
+use crate::summary::Summary;
+use crate::threshold::{self, Choice};
+
+/// One fitted candidate with its validation results.
+pub(crate) struct Candidate {
+    /// Its name (the detector, prefixed by a named feature set).
+    pub name: String,
+    /// Its feature set's index.
+    pub set: usize,
+    /// Its detector.
+    pub kind: DetectorKind,
+    /// The fitted model.
+    pub model: Box<dyn Model>,
+    /// Its threshold.
+    pub choice: Choice,
+    /// Its validation metrics at that threshold.
+    pub validation: Metrics,
+    /// Its validation scores, in the validation rows' order.
+    pub validation_scores: Vec<f64>,
+    /// The validation scores' evaluation summary, for the threshold, the
+    /// metrics, the bootstrap and the figures.
+    pub validation_summary: Summary,
+}
+
+/// What the fit stage returns: the fitted feature sets and every candidate,
+/// in spec order.
+pub(crate) struct Fitted {
+    /// Per feature set, its fitted features.
+    pub sets: Vec<FittedFeatures>,
+    /// The candidates, feature sets then detectors in spec order.
+    pub candidates: Vec<Candidate>,
+    /// The validation rows' labels.
+    pub validation_labels: Vec<bool>,
+    /// The β of an Fβ policy.
+    pub beta: Option<f64>,
+}
+
+/// Fits, scores and thresholds every candidate on `rows`.
+pub(crate) fn candidates(
+    plan: &Plan,
+    rows: &Rows,
+    progress: &crate::progress::Progress,
+) -> Result<Fitted> {
+    let val_y = rows.validation_labels();
+    if let ThresholdPolicy::Conformal {
+        max_false_positive_rate: a,
+    } = plan.threshold
+    {
+        crate::conformal::check_level(a, val_y.iter().filter(|&&y| !y).count())?;
+    }
+    let beta = match plan.threshold {
+        ThresholdPolicy::MaxFBeta { beta } => Some(beta),
+        _ => None,
+    };
+    let mut sets = Vec::new();
+    let mut candidates = Vec::new();
+    for (si, set) in plan.feature_sets.iter().enumerate() {
+        let training = train::of_set(plan, rows, si)?;
+        // The candidates of one feature set are independent: fitted side by
+        // side, each with the same bits as alone, and kept in spec order (the
+        // first failure in that order is the one reported).
+        let names_shown: Vec<String> = plan
+            .detectors
+            .iter()
+            .map(|&kind| candidate_name(set, kind, plan))
+            .collect();
+        let stage = progress.stage(format!(
+            "fitting and thresholding {}",
+            names_shown.join(", ")
+        ));
+        let built: Vec<Result<Candidate>> = {
+            use rayon::prelude::*;
+            plan.detectors
+                .par_iter()
+                .zip(names_shown)
+                .map(|(&kind, name)| {
+                    candidate(plan, rows, &training, (si, kind, name), &val_y, beta)
+                })
+                .collect()
+        };
+        drop(stage);
+        for c in built {
+            candidates.push(c?);
+        }
+        sets.push(training.fitted);
+    }
+    Ok(Fitted {
+        sets,
+        candidates,
+        validation_labels: val_y,
+        beta,
+    })
+}
+
+/// One candidate: fitted (or, for an external command, run once on the
+/// training and validation rows), scored on validation, thresholded.
+fn candidate(
+    plan: &Plan,
+    rows: &Rows,
+    training: &SetTraining<'_>,
+    (si, kind, name): (usize, DetectorKind, String),
+    val_y: &[bool],
+    beta: Option<f64>,
+) -> Result<Candidate> {
+    let set = &plan.feature_sets[si];
+    let fitted = &training.fitted;
+    let (model, validation_scores) = if let DetectorKind::Command(i) = kind {
+        // An external program: one invocation with the
+        // training and the validation rows' features.
+        let _t = crate::progress::part("external command");
+        detect::command::validation_scores(
+            &plan.commands[i],
+            &training.names,
+            &|r| fitted.apply(&rows.data, r),
+            &rows.train,
+            &rows.validation,
+        )
+        .map_err(|e| in_set(e, set))?
+    } else {
+        let t = crate::progress::part("fitting");
+        let model = training.fit(kind).map_err(|e| in_set(e, set))?;
+        drop(t);
+        let t = crate::progress::part("validation scores");
+        let validation_scores = train::checked_scores(
+            &name,
+            model.as_ref(),
+            (fitted, &training.validation),
+            &rows.validation,
+            &rows.data,
+        )?;
+        drop(t);
+        (model, validation_scores)
+    };
+    let t = crate::progress::part("summary");
+    let mut validation_summary = Summary::new(&validation_scores, val_y, &[]);
+    drop(t);
+    let t = crate::progress::part("threshold");
+    let choice = threshold::choose_summary(
+        plan.threshold,
+        &validation_scores,
+        val_y,
+        &validation_summary,
+    );
+    // A τ set in advance (a fixed policy) becomes a cut point.
+    if validation_summary.confusion_at(choice.tau).is_none() {
+        validation_summary = Summary::new(&validation_scores, val_y, &[choice.tau]);
+    }
+    drop(t);
+    let t = crate::progress::part("validation metrics");
+    let validation = metrics_of(&validation_summary, choice.tau, beta, plan)?;
+    drop(t);
+    Ok(Candidate {
+        name,
+        set: si,
+        kind,
+        model,
+        choice,
+        validation,
+        validation_scores,
+        validation_summary,
+    })
+}
+
+/// A candidate's name: the detector, prefixed by a named feature set.
+fn candidate_name(set: &spec::FeatureSetPlan, kind: DetectorKind, plan: &Plan) -> String {
+    let detector = match kind {
+        DetectorKind::Command(i) => plan.commands[i].name.as_str(),
+        _ => detect::name(kind),
+    };
+    if set.named {
+        format!("{}/{detector}", set.name)
+    } else {
+        detector.to_string()
+    }
+}
+
+/// Every metric of a split at τ from its summary; τ is always one the
+/// summary can count (a cut point, or the midpoint of a searched cut). The
+/// bootstrap is timed apart (`ANOMARK_STAGE_TIMES=1`, part `bootstrap`).
+pub(crate) fn metrics_of(
+    s: &Summary,
+    tau: f64,
+    beta: Option<f64>,
+    plan: &spec::Plan,
+) -> Result<Metrics> {
+    let bug = || {
+        Error::internal(format!(
+            "τ `{tau}` falls inside a gap of the evaluation summary"
+        ))
+    };
+    let without = spec::BootstrapPlan {
+        replicates: 0,
+        ..plan.bootstrap
+    };
+    let mut m = Metrics::of_summary(s, tau, beta, without).ok_or_else(bug)?;
+    let _t = crate::progress::part("bootstrap");
+    m.bootstrap_95 = metrics::bootstrap_summary(s, tau, plan.bootstrap, 0.95).ok_or_else(bug)?;
+    Ok(m)
+}
+
+/// Wraps an error met on a named feature set with the set's name (a spec
+/// with one unnamed set needs no such context).
+fn in_set(e: Error, set: &spec::FeatureSetPlan) -> Error {
+    if set.named {
+        Error::InFeatureSet {
+            set: set.name.clone(),
+            source: Box::new(e),
+        }
+    } else {
+        e
+    }
+}

@@ -1,0 +1,186 @@
+//! The protocol, as a short chain of typed stages, each returning the next
+//! resolved type:
+//!
+//! spec ([`crate::spec::Plan`]) → [`ingest`] (rows, content hashes, splits
+//! with the leakage proof, the test split sealed: `Ingested`) → [`train`]
+//! and [`fit`] (per feature set the training data, as rows or as moments;
+//! every candidate fitted, scored on validation and thresholded: `Fitted`)
+//! → [`choose`] (the selection on validation: `Chosen`) → [`open`] (the
+//! test split opened once, on a final run only: `Opened`) → [`report`]
+//! (run.json, scores.csv, figures and the card, worded in [`wording`]) →
+//! the signed directory.
+//!
+//! [`recompute`] runs the same chain again to verify a run and rebuilds a
+//! run's chosen detector for `score`. The rules the stages apply to rows and
+//! fits are worded once in [`crate::rules`].
+
+use std::path::PathBuf;
+use std::time::{Instant, SystemTime};
+
+use crate::card;
+use crate::error::{Error, Result};
+use crate::output::{self, RunFiles};
+use crate::record::{self, WallClock};
+use crate::spec::{self, Plan};
+
+pub mod choose;
+pub mod fit;
+pub mod ingest;
+pub mod open;
+pub mod recompute;
+pub mod report;
+pub mod train;
+pub mod wording;
+
+pub use choose::{policy_name, selection_rule};
+pub use recompute::{
+    chosen_command, recompute, recorded_spec_path, refit_chosen, verify, verify_by_recomputation,
+    Replay,
+};
+pub use report::{RunSummary, SPEC_COPY};
+
+/// What `anomark run` needs.
+#[derive(Debug, Clone)]
+pub struct RunOptions {
+    /// The spec file.
+    pub spec: PathBuf,
+    /// The private key (empty when none was given: `anomark::run` then
+    /// refuses before reading anything and says how to make one).
+    pub key: PathBuf,
+    /// The output directory (else the spec's `output`).
+    pub out: Option<PathBuf>,
+    /// A directory of templates that replace built-in ones.
+    pub templates: Option<PathBuf>,
+    /// Leave the wall-clock field null, making the directory byte-identical across runs.
+    pub no_wall_clock: bool,
+    /// The final run: open the test split once and record it on the ledger.
+    pub open_test: bool,
+    /// Progress display for the long stages.
+    pub progress: crate::progress::Progress,
+}
+
+/// Runs the whole protocol and writes the signed run directory.
+pub fn run(opts: &RunOptions) -> Result<RunSummary> {
+    let plan = spec::load(&opts.spec)?;
+    let out = match (&opts.out, &plan.output) {
+        (Some(o), _) => o.clone(),
+        (None, Some(o)) => o.clone(),
+        (None, None) => {
+            return Err(Error::Output {
+                path: opts.spec.clone(),
+                message: "no output directory: pass `--out DIR` or set `output` in the spec".into(),
+            })
+        }
+    };
+    output::check_target(&out)?;
+    if let Some(d) = &opts.templates {
+        card::check_overrides(d)?;
+    }
+    if opts.open_test {
+        crate::audit::ledger::check_path(&plan.ledger)?;
+    }
+    let key = crate::sign::load_private(&opts.key)?;
+    let fingerprint = crate::sign::fingerprint(&key.verifying_key());
+    let from_run = record::relative_path(&out, &opts.spec);
+    let stale = crate::cleanup::stale_beside(&out);
+    let (files, mut summary) = execute(opts, plan, &fingerprint, None, from_run)?;
+    summary.warnings.extend(stale);
+    let stage = opts.progress.stage("signing and writing the run directory");
+    summary.out = files.commit(&out, &key)?;
+    drop(stage);
+    summary.peak_rss_mib = crate::progress::peak_rss_mib();
+    Ok(summary)
+}
+
+/// The stages in order, from a loaded plan to the run directory's files.
+fn execute(
+    opts: &RunOptions,
+    plan: Plan,
+    fingerprint: &str,
+    replay: Option<&Replay>,
+    path_from_run: Option<String>,
+) -> Result<(RunFiles, RunSummary)> {
+    let started = (SystemTime::now(), Instant::now());
+    let progress = opts.progress;
+    let provenance = provenance_in_background(opts, replay);
+
+    let ingested = ingest::reader(&plan).ingest(&plan, &progress)?;
+    // Fit and choose on train and validation only.
+    let fitted = fit::candidates(&plan, &ingested.rows, &progress)?;
+    let chosen = choose::choose(&plan, fitted)?;
+    let manifests = ingested.manifests();
+    let test_counts = ingested.test_counts();
+    let ingest::Ingested { rows, test } = ingested;
+    // Every choice is fixed: only a final run opens the test split, once.
+    let ledger = opts.open_test.then_some(match replay {
+        Some(r) => open::Ledger::Replay(r.openings.as_ref()),
+        None => open::Ledger::Append,
+    });
+    let opened = open::test(&plan, &rows, test, chosen, ledger)?;
+
+    let stage = progress.stage("test metrics and intervals");
+    let header = report::Header {
+        spec_file: opts
+            .spec
+            .file_name()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_default(),
+        path_from_run,
+        provenance: provenance.join().unwrap_or(None),
+        wall_clock: wall_clock(opts, replay, started),
+        manifests,
+        test_counts,
+    };
+    let rec = report::record(&plan, &rows, &opened, header)?;
+    drop(stage);
+    let stage = progress.stage("writing the card and figures");
+    let files = report::files(
+        &plan,
+        &rows,
+        &opened,
+        &rec,
+        opts.templates.as_deref(),
+        fingerprint,
+    )?;
+    drop(stage);
+    Ok((files, report::summary(&rec, opened.warnings)?))
+}
+
+/// The repository state as the run begins, read by git in the background
+/// while the data is read (a recomputation keeps the recorded state).
+fn provenance_in_background(
+    opts: &RunOptions,
+    replay: Option<&Replay>,
+) -> std::thread::JoinHandle<Option<crate::audit::provenance::Provenance>> {
+    match replay {
+        Some(r) => {
+            let p = r.provenance.clone();
+            std::thread::spawn(move || p)
+        }
+        None => {
+            let spec = opts.spec.clone();
+            std::thread::spawn(move || crate::audit::provenance::of(&spec))
+        }
+    }
+}
+
+/// The wall-clock field: when the run started and how long it has taken so
+/// far (null with `--no-wall-clock`; a recomputation keeps the recorded one).
+fn wall_clock(
+    opts: &RunOptions,
+    replay: Option<&Replay>,
+    (started, clock): (SystemTime, Instant),
+) -> Option<WallClock> {
+    if let Some(r) = replay {
+        return r.wall_clock.clone();
+    }
+    (!opts.no_wall_clock).then(|| WallClock {
+        started_utc: record::rfc3339(
+            started
+                .duration_since(SystemTime::UNIX_EPOCH)
+                .map(|d| d.as_secs())
+                .unwrap_or(0),
+        ),
+        seconds: (clock.elapsed().as_millis() as f64) / 1000.0,
+    })
+}
