@@ -418,4 +418,16 @@ mod tests {
     fn clap_definition_is_consistent() {
         Args::command().debug_assert();
     }
+
+    /// Binary units (IEC 80000-13: KiB = 2^10 bytes, MiB = 2^20, GiB = 2^30).
+    #[test]
+    fn memory_sizes_in_binary_units_with_an_upper_bound() {
+        assert_eq!(memory_size("512MiB"), Ok(512 << 20));
+        assert_eq!(memory_size("4GiB"), Ok(4 << 30));
+        assert_eq!(memory_size("1024TiB"), Ok(1 << 50));
+        assert_eq!(memory_size("4096"), Ok(4096));
+        for bad in ["", "0", "1025TiB", "4GB", "-1GiB", "1.5GiB", "GiB"] {
+            assert!(memory_size(bad).is_err(), "{bad}");
+        }
+    }
 }
