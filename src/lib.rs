@@ -35,6 +35,7 @@ pub mod init;
 pub mod metrics;
 pub mod moments;
 pub mod output;
+pub mod part;
 pub mod progress;
 pub mod protocol;
 pub mod record;

@@ -15,8 +15,8 @@
 
 use std::path::PathBuf;
 
-use crate::audit::leak::Part;
 use crate::error::{Error, RowUnit};
+use crate::part::Part;
 
 /// Where a row rule is broken: the file, the column and the first places
 /// (file lines for CSV, rows for Parquet), with how many rows in all.

@@ -12,31 +12,7 @@ use crate::audit::hash::ContentHash;
 use crate::data::{Dataset, RowId};
 use crate::error::{Error, Result};
 
-/// One of the three splits.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize)]
-#[serde(rename_all = "kebab-case")]
-pub enum Part {
-    /// Fits the detectors.
-    Train,
-    /// Chooses thresholds and the detector.
-    Validation,
-    /// Held out for the final numbers.
-    Test,
-}
-
-impl Part {
-    /// All parts, in order.
-    pub const ALL: [Part; 3] = [Part::Train, Part::Validation, Part::Test];
-
-    /// The name used in files and specs.
-    pub fn name(self) -> &'static str {
-        match self {
-            Part::Train => "train",
-            Part::Validation => "validation",
-            Part::Test => "test",
-        }
-    }
-}
+pub use crate::part::Part;
 
 const NAMES: [&str; 3] = ["train", "validation", "test"];
 
