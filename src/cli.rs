@@ -252,8 +252,7 @@ pub const EX_CLUSTER: &str =
 pub const EX_CLUSTER_SCHEDULER: &str = "anomark cluster scheduler --bind 0.0.0.0:50050";
 
 /// Every command's closing example, by command name.
-#[cfg(feature = "cluster")]
-pub const EXAMPLES: [(&str, &str); 11] = [
+pub const EXAMPLES: &[(&str, &str)] = &[
     ("init", EX_INIT),
     ("run", EX_RUN),
     ("score", EX_SCORE),
@@ -264,22 +263,8 @@ pub const EXAMPLES: [(&str, &str); 11] = [
     ("diff", EX_DIFF),
     ("completions", EX_COMPLETIONS),
     ("man", EX_MAN),
+    #[cfg(feature = "cluster")]
     ("cluster", EX_CLUSTER),
-];
-
-/// Every command's closing example, by command name.
-#[cfg(not(feature = "cluster"))]
-pub const EXAMPLES: [(&str, &str); 10] = [
-    ("init", EX_INIT),
-    ("run", EX_RUN),
-    ("score", EX_SCORE),
-    ("check", EX_CHECK),
-    ("verify", EX_VERIFY),
-    ("keygen", EX_KEYGEN),
-    ("schema", EX_SCHEMA),
-    ("diff", EX_DIFF),
-    ("completions", EX_COMPLETIONS),
-    ("man", EX_MAN),
 ];
 
 fn example(line: &'static str) -> String {

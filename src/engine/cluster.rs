@@ -58,7 +58,9 @@ pub fn host_port(what: &str, s: &str) -> Result<(String, u16)> {
     Ok((host.to_string(), port))
 }
 
-fn runtime() -> Result<tokio::runtime::Runtime> {
+/// The engine's tokio runtime, on every core (the cluster commands, the
+/// client and the tests).
+pub fn runtime() -> Result<tokio::runtime::Runtime> {
     tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()

@@ -81,11 +81,7 @@ async fn session(x: &Array2<f64>, a: &[bool], partitions: usize, batch: usize) -
 }
 
 fn runtime() -> tokio::runtime::Runtime {
-    tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .unwrap()
+    super::cluster::runtime().unwrap()
 }
 
 /// (partitions, batch rows) of every configuration tested.

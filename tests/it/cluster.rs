@@ -90,11 +90,7 @@ fn start(dir: &Path, scheduler: &[&str], executors: &[&[&str]]) -> (Processes, S
 }
 
 fn runtime() -> tokio::runtime::Runtime {
-    tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .unwrap()
+    anomark::engine::cluster::runtime().unwrap()
 }
 
 /// Connects once the scheduler answers and `executors` executors have

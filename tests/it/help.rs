@@ -27,7 +27,7 @@ fn every_help_ends_with_an_example_from_the_readme() {
         d.stdout.trim_end().lines().last().unwrap().trim(),
         anomark::cli::EX_INIT
     );
-    for (name, example) in anomark::cli::EXAMPLES {
+    for &(name, example) in anomark::cli::EXAMPLES {
         let d = Case::new().args([name, "--help"]).success();
         let last = d.stdout.trim_end().lines().last().unwrap().trim();
         assert_eq!(last, example, "`anomark {name} --help` ends with: {last}");
