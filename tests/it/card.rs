@@ -17,18 +17,7 @@ fn plot_files(d: &Done) -> Vec<String> {
 #[test]
 fn a_validation_run_draws_validation_figures_and_a_final_run_adds_test_figures() {
     let case = standard(&rows(300, 16, 21));
-    let sealed = case
-        .clone()
-        .args([
-            "run",
-            "spec.yaml",
-            "--key",
-            "key.pem",
-            "--out",
-            "out",
-            "--no-wall-clock",
-        ])
-        .success();
+    let sealed = case.clone().run_sealed().success();
     let files = plot_files(&sealed);
     assert_eq!(
         files,
@@ -138,18 +127,7 @@ fn wilson(k: f64, n: f64) -> (f64, f64) {
 #[test]
 fn the_card_answers_first_sealed_and_final() {
     let case = standard(&rows(300, 16, 21));
-    let sealed = case
-        .clone()
-        .args([
-            "run",
-            "spec.yaml",
-            "--key",
-            "key.pem",
-            "--out",
-            "out",
-            "--no-wall-clock",
-        ])
-        .success();
+    let sealed = case.clone().run_sealed().success();
     let check = |d: &Done, split: &str| {
         let run = d.json("out/run.json");
         let chosen = run["candidates"]

@@ -192,18 +192,7 @@ fn test_rows_reach_the_program_only_in_a_final_run() {
     }
     let data = rows(300, 16, 6);
     let c = case(&data, ", --copy-to, seen", "");
-    let d = c
-        .clone()
-        .args([
-            "run",
-            "spec.yaml",
-            "--key",
-            "key.pem",
-            "--out",
-            "out",
-            "--no-wall-clock",
-        ])
-        .success();
+    let d = c.clone().run_sealed().success();
     let run = d.json("out/run.json");
     let cand = &run["candidates"][1];
     let inv = cand["params"]["invocations"].as_array().unwrap();

@@ -70,22 +70,7 @@ fn edited_and_resigned_numbers_are_caught() {
         .unwrap();
     std::fs::write(&scores, lines.join("\n") + "\n").unwrap();
     // Re-sign with the same key, as a careless or dishonest author could.
-    let manifest_path = case.path("out/manifest.json");
-    let mut m: anomark::sign::Manifest =
-        serde_json::from_slice(&std::fs::read(&manifest_path).unwrap()).unwrap();
-    m.files.insert(
-        "scores.csv".into(),
-        anomark::audit::hash::file(&scores).unwrap(),
-    );
-    let mut bytes = serde_json::to_vec_pretty(&m).unwrap();
-    bytes.push(b'\n');
-    std::fs::write(&manifest_path, &bytes).unwrap();
-    let key = anomark::sign::load_private(&case.path("key.pem")).unwrap();
-    std::fs::write(
-        case.path("out/manifest.sig"),
-        anomark::sign::sign(&key, &bytes),
-    )
-    .unwrap();
+    case.resign("scores.csv");
     let plain = case
         .clone()
         .args(["verify", "out", "--pubkey", "key.pub.pem"])

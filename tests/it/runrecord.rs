@@ -13,22 +13,7 @@ fn edit_and_resign(case: &Case, edit: impl FnOnce(&mut serde_json::Value)) {
         serde_json::from_slice(&std::fs::read(&run_path).unwrap()).unwrap();
     edit(&mut run);
     std::fs::write(&run_path, serde_json::to_vec_pretty(&run).unwrap()).unwrap();
-    let manifest_path = case.path("out/manifest.json");
-    let mut m: anomark::sign::Manifest =
-        serde_json::from_slice(&std::fs::read(&manifest_path).unwrap()).unwrap();
-    m.files.insert(
-        "run.json".into(),
-        anomark::audit::hash::file(&run_path).unwrap(),
-    );
-    let mut bytes = serde_json::to_vec_pretty(&m).unwrap();
-    bytes.push(b'\n');
-    std::fs::write(&manifest_path, &bytes).unwrap();
-    let key = anomark::sign::load_private(&case.path("key.pem")).unwrap();
-    std::fs::write(
-        case.path("out/manifest.sig"),
-        anomark::sign::sign(&key, &bytes),
-    )
-    .unwrap();
+    case.resign("run.json");
 }
 
 fn every_candidate(

@@ -73,9 +73,9 @@ impl Case {
         self
     }
 
-    /// The usual run: `run spec.yaml --key key.pem --out out --no-wall-clock`.
-    /// The usual final run: `run spec.yaml --key key.pem --out out --no-wall-clock --open-test`.
-    pub fn run_spec(self) -> Self {
+    /// The usual run, test split sealed: `run spec.yaml --key key.pem --out
+    /// out --no-wall-clock`.
+    pub fn run_sealed(self) -> Self {
         self.args([
             "run",
             "spec.yaml",
@@ -84,8 +84,37 @@ impl Case {
             "--out",
             "out",
             "--no-wall-clock",
-            "--open-test",
         ])
+    }
+
+    /// The usual final run: `run spec.yaml --key key.pem --out out
+    /// --no-wall-clock --open-test`.
+    pub fn run_spec(mut self) -> Self {
+        self = self.run_sealed();
+        self.args.push("--open-test".into());
+        self
+    }
+
+    /// Records `out/NAME`'s new hash in `out/manifest.json` and signs the
+    /// manifest again with `key.pem`, as an author who edited a signed run
+    /// directory could.
+    pub fn resign(&self, name: &str) {
+        let manifest_path = self.path("out/manifest.json");
+        let mut m: anomark::sign::Manifest =
+            serde_json::from_slice(&std::fs::read(&manifest_path).unwrap()).unwrap();
+        m.files.insert(
+            name.into(),
+            anomark::audit::hash::file(&self.path(&format!("out/{name}"))).unwrap(),
+        );
+        let mut bytes = serde_json::to_vec_pretty(&m).unwrap();
+        bytes.push(b'\n');
+        std::fs::write(&manifest_path, &bytes).unwrap();
+        let key = anomark::sign::load_private(&self.path("key.pem")).unwrap();
+        std::fs::write(
+            self.path("out/manifest.sig"),
+            anomark::sign::sign(&key, &bytes),
+        )
+        .unwrap();
     }
 
     pub fn exec(&self) -> Done {
