@@ -722,7 +722,9 @@ async fn train_sample(
         &format!("SELECT h, f, r, {xl} FROM assigned WHERE part = 0{order}"),
     )
     .await?;
-    let mut all: Vec<(([u8; 32], i64, i64), Vec<f64>)> = Vec::new();
+    // (content hash, file, row) with the row's values.
+    type Keyed = (([u8; 32], i64, i64), Vec<f64>);
+    let mut all: Vec<Keyed> = Vec::new();
     let mut kept: Vec<(usize, Vec<f64>)> = Vec::new();
     let mut k = 0usize;
     for b in &rows {
