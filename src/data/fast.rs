@@ -174,7 +174,10 @@ fn parse_body(
         .map(|b| memchr::memchr_iter(b'\n', b).count() + usize::from(!b.ends_with(b"\n")))
         .collect();
     let height: usize = heights.iter().sum();
-    let mut values = vec![0.0; height * d];
+    // The matrix, the largest output, is zeroed (and its pages first
+    // touched) on all cores rather than by one allocation on this thread.
+    let mut values: Vec<f64> = Vec::with_capacity(height * d);
+    values.par_extend(rayon::iter::repeat_n(0.0, height * d));
     let mut labels = vec![false; if label.is_some() { height } else { 0 }];
     // Where each text value ends: block-relative while the blocks are
     // parsed, then moved by the bytes of the blocks before.
