@@ -63,6 +63,15 @@ pub enum Command {
         /// validation, and record the opening in the spec's test ledger.
         #[arg(long)]
         open_test: bool,
+        /// Read, split and summarise the rows on an engine: `local` (Apache
+        /// DataFusion in this process) or `df://HOST:PORT` (a Ballista cluster's
+        /// scheduler); needs the `cluster` feature. Default: in this process.
+        #[arg(long, value_name = "ENGINE")]
+        engine: Option<String>,
+        /// With `--engine local`: the memory pool, such as `512MiB` or `2GiB` (at
+        /// most 1024TiB; default: no limit); operators beyond it spill to disk.
+        #[arg(long, value_name = "SIZE", value_parser = memory_size)]
+        memory_limit: Option<u64>,
         /// Show no progress (progress is drawn only on a terminal anyway).
         #[arg(long, short)]
         quiet: bool,
@@ -301,6 +310,8 @@ impl From<Args> for Request {
                 templates,
                 no_wall_clock,
                 open_test,
+                engine,
+                memory_limit,
                 quiet,
                 json,
             } => Request::Run {
@@ -314,6 +325,8 @@ impl From<Args> for Request {
                     no_wall_clock,
                     open_test,
                     progress: Progress::new(quiet || json),
+                    engine: crate::protocol::Engine::parse(engine.as_deref(), memory_limit)
+                        .unwrap_or_else(|e| crate::protocol::Engine::Refused(e.to_string())),
                 },
                 json,
             },

@@ -75,6 +75,11 @@ pub struct RunRecord {
     /// What a scored batch's drift is measured against. Always written;
     /// absent (read as `None`) only in runs recorded before drift reports.
     pub drift_reference: Option<DriftReference>,
+    /// The engine the run's rows were read, split and summarised on
+    /// (`--engine`: `local` or the cluster's `df://HOST:PORT`); absent for a
+    /// run in this process. Every other field is the same on every engine.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub engine: Option<String>,
     /// The only wall-clock field: when the run started and how long it took.
     /// Null with `--no-wall-clock`; everything else is reproducible to the byte.
     pub wall_clock: Option<WallClock>,

@@ -209,9 +209,16 @@ fn part_at(cuts: &[usize], p: usize) -> usize {
 }
 
 fn requested_counts(data: &Dataset, f: &Fractions) -> [Counts; 3] {
+    let anomalies = data.is_anomaly.iter().filter(|&&a| a).count();
+    requested_of([data.len() - anomalies, anomalies], f)
+}
+
+/// The rows each split should hold by the fractions `f`, of `totals`
+/// (normal, anomalous) rows ([`exact_counts`] per label).
+pub fn requested_of(totals: [usize; 2], f: &Fractions) -> [Counts; 3] {
     let mut out = [Counts::default(); 3];
     for anomaly in [false, true] {
-        let n = data.is_anomaly.iter().filter(|&&a| a == anomaly).count();
+        let n = totals[usize::from(anomaly)];
         let (parts, fr) = parts_for(anomaly, f);
         for (p, c) in parts.iter().zip(exact_counts(n, &fr)) {
             if anomaly {
@@ -312,11 +319,7 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
     check_counts(&counts)?;
     report.counts = counts;
     if let Some(req) = report.requested {
-        report.rows_off_requested_counts = counts
-            .iter()
-            .zip(&req)
-            .map(|(c, r)| c.normal.saturating_sub(r.normal) + c.anomaly.saturating_sub(r.anomaly))
-            .sum();
+        report.rows_off_requested_counts = off_requested(&counts, &req);
     }
 
     let [train, validation, test] = lists;
@@ -332,6 +335,50 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
             ),
             rows: test,
             counts: counts[2],
+        },
+        report,
+    })
+}
+
+/// Rows beyond the requested counts `req`, over every split and label
+/// (identical rows go whole to one split, so a split may hold more).
+pub fn off_requested(counts: &[Counts; 3], req: &[Counts; 3]) -> usize {
+    counts
+        .iter()
+        .zip(req)
+        .map(|(c, r)| c.normal.saturating_sub(r.normal) + c.anomaly.saturating_sub(r.anomaly))
+        .sum()
+}
+
+/// The splits of rows split on an engine (`--engine`): `data` holds only the
+/// validation and test rows (`parts`, each row's split), the training rows
+/// stayed on the engine, which counted every split (`report.counts`) and
+/// refused shared content already. Each list is put in canonical (content
+/// hash, row) order and the test split sealed, as [`assign`] does.
+pub fn held(
+    data: &Dataset,
+    hashes: &[ContentHash],
+    parts: &[Part],
+    report: SplitReport,
+) -> Result<Splits> {
+    check_counts(&report.counts)?;
+    let mut lists: [Vec<RowId>; 3] = Default::default();
+    for (i, p) in parts.iter().enumerate().take(data.len()) {
+        lists[*p as usize].push(RowId(i as u64));
+    }
+    for list in lists.iter_mut() {
+        list.sort_by_key(|r| (hashes[r.0 as usize], *r));
+    }
+    let [train, validation, test] = lists;
+    let sorted: Vec<&ContentHash> = test.iter().map(|r| &hashes[r.0 as usize]).collect();
+    Ok(Splits {
+        train,
+        validation,
+        test: SealedTest {
+            manifest: crate::audit::hash::manifest_of_sorted(sorted.iter().copied()),
+            manifest_v1: crate::audit::hash::manifest_v1_of_sorted(sorted.iter().copied()),
+            counts: report.counts[2],
+            rows: test,
         },
         report,
     })

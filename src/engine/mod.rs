@@ -13,6 +13,7 @@
 
 pub mod cluster;
 pub mod functions;
+pub mod run;
 
 use std::collections::BTreeMap;
 

@@ -161,7 +161,9 @@ impl Ingest for Streaming {
 }
 
 impl Ingested {
-    fn of(
+    /// The stage's result from rows read, their hashes, their splits and
+    /// the training rows (held, or summarised by the reader).
+    pub(crate) fn of(
         data: Dataset,
         hashes: Vec<ContentHash>,
         splits: split::Splits,

@@ -57,11 +57,125 @@ pub struct RunOptions {
     pub open_test: bool,
     /// Progress display for the long stages.
     pub progress: crate::progress::Progress,
+    /// Where the rows are read, split and summarised.
+    pub engine: Engine,
+}
+
+/// Where a run's rows are read, split and summarised (`--engine`).
+#[derive(Debug, Clone, PartialEq, Eq, Default)]
+pub enum Engine {
+    /// In this process, in memory or streamed as the spec says (the default).
+    #[default]
+    InProcess,
+    /// Apache DataFusion in this process, with an optional memory pool limit
+    /// in bytes (operators beyond it spill to disk): `--engine local`.
+    Local {
+        /// The memory pool's limit in bytes (`--memory-limit`).
+        memory_limit: Option<u64>,
+    },
+    /// A Ballista cluster whose scheduler listens at `url`
+    /// (`--engine df://HOST:PORT`).
+    Cluster {
+        /// `df://HOST:PORT`.
+        url: String,
+    },
+    /// An `--engine` / `--memory-limit` that [`Engine::parse`] refused, with
+    /// its message: `run` stops with it (a usage error) before reading anything.
+    Refused(String),
+}
+
+impl Engine {
+    /// `--engine VALUE` with `--memory-limit` (only with `local`): `local`
+    /// or `df://HOST:PORT`; anything else refused by name.
+    pub fn parse(value: Option<&str>, memory_limit: Option<u64>) -> Result<Engine> {
+        let usage = |message: String| Err(Error::Usage { message });
+        match value {
+            None if memory_limit.is_some() => {
+                usage("`--memory-limit` needs `--engine local`".into())
+            }
+            None => Ok(Engine::InProcess),
+            Some("local") => Ok(Engine::Local { memory_limit }),
+            Some(url) if url.starts_with("df://") => {
+                if memory_limit.is_some() {
+                    return usage(
+                        "`--memory-limit` is for `--engine local`; a cluster's executors take \
+                         theirs at `anomark cluster executor --memory-limit`"
+                            .into(),
+                    );
+                }
+                let rest = &url["df://".len()..];
+                match rest.rsplit_once(':') {
+                    Some((host, port)) if !host.is_empty() && port.parse::<u16>().is_ok() => {
+                        Ok(Engine::Cluster { url: url.into() })
+                    }
+                    _ => usage(format!(
+                        "`--engine` must be `local` or `df://HOST:PORT`, such as \
+                         df://127.0.0.1:50050, not `{url}`"
+                    )),
+                }
+            }
+            Some(other) => usage(format!(
+                "`--engine` must be `local` or `df://HOST:PORT`, not `{other}`"
+            )),
+        }
+    }
+
+    /// The run record's engine field: `local`, the cluster's URL, or none.
+    pub fn recorded(&self) -> Option<String> {
+        match self {
+            Engine::InProcess => None,
+            Engine::Local { .. } => Some("local".into()),
+            Engine::Cluster { url } => Some(url.clone()),
+            Engine::Refused(_) => None,
+        }
+    }
+
+    /// Refuses a plan this engine cannot run, with the reason, before
+    /// anything is read or written (an engine needs the `cluster` feature).
+    fn check(&self, plan: &Plan) -> Result<()> {
+        match self {
+            Engine::InProcess => return Ok(()),
+            Engine::Refused(message) => {
+                return Err(Error::Usage {
+                    message: message.clone(),
+                })
+            }
+            Engine::Local { .. } | Engine::Cluster { .. } => {}
+        }
+        #[cfg(feature = "cluster")]
+        {
+            crate::engine::run::check_scope(plan, matches!(self, Engine::Cluster { .. }))
+        }
+        #[cfg(not(feature = "cluster"))]
+        {
+            let _ = plan;
+            Err(Error::Usage {
+                message: format!(
+                    "`--engine {}` needs anomark built with the `cluster` feature \
+                     (`cargo build --release --features cluster`); this build runs in \
+                     process only",
+                    self.recorded().unwrap_or_default()
+                ),
+            })
+        }
+    }
+
+    /// The reader of a plan's rows on this engine.
+    fn reader(&self, plan: &Plan) -> Box<dyn ingest::Ingest> {
+        match self {
+            Engine::InProcess => ingest::reader(plan),
+            #[cfg(feature = "cluster")]
+            e => Box::new(crate::engine::run::OnEngine(e.clone())),
+            #[cfg(not(feature = "cluster"))]
+            _ => ingest::reader(plan),
+        }
+    }
 }
 
 /// Runs the whole protocol and writes the signed run directory.
 pub fn run(opts: &RunOptions) -> Result<RunSummary> {
     let plan = spec::load(&opts.spec)?;
+    opts.engine.check(&plan)?;
     let out = match (&opts.out, &plan.output) {
         (Some(o), _) => o.clone(),
         (None, Some(o)) => o.clone(),
@@ -104,7 +218,7 @@ fn execute(
     let progress = opts.progress;
     let provenance = provenance_in_background(opts, replay);
 
-    let ingested = ingest::reader(&plan).ingest(&plan, &progress)?;
+    let ingested = opts.engine.reader(&plan).ingest(&plan, &progress)?;
     // Fit and choose on train and validation only.
     let fitted = fit::candidates(&plan, &ingested.rows, &progress)?;
     let chosen = choose::choose(&plan, fitted)?;
@@ -133,6 +247,10 @@ fn execute(
         path_from_run,
         provenance: provenance.join().unwrap_or(None),
         wall_clock: wall_clock(opts, replay, started),
+        engine: match replay {
+            Some(r) => r.engine.clone(),
+            None => opts.engine.recorded(),
+        },
         manifests,
         test_counts,
     };
@@ -187,4 +305,64 @@ fn wall_clock(
         ),
         seconds: (clock.elapsed().as_millis() as f64) / 1000.0,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// `--engine` and `--memory-limit` as the command line gives them.
+    #[test]
+    fn engines_parse_and_refuse_by_name() {
+        assert_eq!(Engine::parse(None, None).unwrap(), Engine::InProcess);
+        assert_eq!(
+            Engine::parse(Some("local"), Some(1 << 30)).unwrap(),
+            Engine::Local {
+                memory_limit: Some(1 << 30)
+            }
+        );
+        let url = "df://127.0.0.1:50050";
+        assert_eq!(
+            Engine::parse(Some(url), None).unwrap(),
+            Engine::Cluster { url: url.into() }
+        );
+        assert_eq!(
+            Engine::parse(Some(url), None).unwrap().recorded(),
+            Some(url.into())
+        );
+        for (engine, limit, words) in [
+            (Some("spark://h:1"), None, "`--engine` must be"),
+            (Some("df://h"), None, "df://HOST:PORT"),
+            (Some("df://:7"), None, "df://HOST:PORT"),
+            (
+                Some(url),
+                Some(1),
+                "`--memory-limit` is for `--engine local`",
+            ),
+            (None, Some(1), "`--memory-limit` needs `--engine local`"),
+        ] {
+            let e = Engine::parse(engine, limit).unwrap_err();
+            assert!(e.to_string().contains(words), "{e}");
+            assert_eq!(e.code(), 2);
+        }
+    }
+
+    /// A build without the `cluster` feature refuses an engine, naming the
+    /// feature, before anything is read.
+    #[cfg(not(feature = "cluster"))]
+    #[test]
+    fn an_engine_needs_the_cluster_feature() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("spec.yaml");
+        let spec = "format: 1\ndata:\n  path: absent.csv\n  label:\n    column: l\n    \
+                    normal: ok\n    anomaly: bad\n  features: [a]\nsplit:\n  protocol:\n    \
+                    seed: 1\ndetectors: [independent-gaussian]\nthreshold: max-f1\ncard:\n  \
+                    title: t\n  owner: o\n  intended-use: u\n";
+        let plan = crate::spec::parse(&path, spec.as_bytes().to_vec()).unwrap();
+        let e = Engine::Local { memory_limit: None }
+            .check(&plan)
+            .unwrap_err();
+        assert!(e.to_string().contains("`cluster` feature"), "{e}");
+        assert_eq!(e.code(), 2);
+    }
 }

@@ -29,6 +29,9 @@ pub struct Replay {
     pub path_from_run: Option<String>,
     /// The recorded repository state of the spec (it may have moved on since).
     pub provenance: Option<crate::audit::provenance::Provenance>,
+    /// The recorded engine field: a run made on an engine is recomputed in
+    /// this process, to the same bytes but for that field, which is kept.
+    pub engine: Option<String>,
 }
 
 /// Recomputes a run in memory from its spec, data and the recorded values
@@ -304,6 +307,7 @@ pub fn verify_by_recomputation(
         key_fingerprint: manifest.key_fingerprint.clone(),
         path_from_run: run.spec.path_from_run.clone(),
         provenance: run.provenance.clone(),
+        engine: run.engine.clone(),
     };
     let opts = RunOptions {
         spec: spec.to_path_buf(),
@@ -313,6 +317,7 @@ pub fn verify_by_recomputation(
         no_wall_clock: run.wall_clock.is_none(),
         open_test: run.test_opened,
         progress: crate::progress::Progress::hidden(),
+        engine: super::Engine::InProcess,
     };
     let files = recompute(&opts, &replay)?;
     // The scores first: a differing score (a program that is not

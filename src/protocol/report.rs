@@ -59,6 +59,8 @@ pub(crate) struct Header {
     pub provenance: Option<crate::audit::provenance::Provenance>,
     /// The wall-clock field.
     pub wall_clock: Option<WallClock>,
+    /// The engine field (`None` for a run in this process).
+    pub engine: Option<String>,
     /// Each split's manifest hash by name.
     pub manifests: BTreeMap<String, String>,
     /// The test split's counts.
@@ -187,6 +189,7 @@ pub(crate) fn record(
                 best.validation.false_positive_rate,
             )?
         }),
+        engine: header.engine,
         wall_clock: header.wall_clock,
     })
 }

@@ -280,3 +280,315 @@ fn processes_of_another_version_or_without_functions_are_refused_by_name() {
         assert_eq!(e.code(), 5, "{text}");
     }
 }
+
+/// The pump-housing example on Parquet parts: the demo CSV's rows written
+/// as `files` Parquet parts (id and label as text, the readings as numbers),
+/// and the example spec reading the directory, with 50 bootstrap
+/// replicates (to keep the test short) and no output or ledger of its own.
+fn pump_housing_on_parts(dir: &Path, files: usize) {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let demo = std::fs::read_to_string(root.join("demo-data/pump-housings.csv")).unwrap();
+    let mut lines = demo.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    let rows: Vec<Vec<&str>> = lines.map(|l| l.split(',').collect()).collect();
+    let text = |c: usize| c == 0 || c == header.len() - 1;
+    let schema = Arc::new(Schema::new(
+        header
+            .iter()
+            .enumerate()
+            .map(|(c, h)| {
+                let t = if text(c) {
+                    DataType::Utf8
+                } else {
+                    DataType::Float64
+                };
+                Field::new(*h, t, false)
+            })
+            .collect::<Vec<_>>(),
+    ));
+    let parts = dir.join("parts");
+    std::fs::create_dir_all(&parts).unwrap();
+    for (p, chunk) in rows.chunks(rows.len().div_ceil(files)).enumerate() {
+        let arrays: Vec<ArrayRef> = (0..header.len())
+            .map(|c| -> ArrayRef {
+                if text(c) {
+                    Arc::new(StringArray::from(
+                        chunk.iter().map(|r| r[c]).collect::<Vec<_>>(),
+                    ))
+                } else {
+                    Arc::new(Float64Array::from(
+                        chunk
+                            .iter()
+                            .map(|r| r[c].parse::<f64>().unwrap())
+                            .collect::<Vec<_>>(),
+                    ))
+                }
+            })
+            .collect();
+        let batch = RecordBatch::try_new(schema.clone(), arrays).unwrap();
+        let file = std::fs::File::create(parts.join(format!("part-{p}.parquet"))).unwrap();
+        let mut w = ArrowWriter::try_new(file, schema.clone(), None).unwrap();
+        w.write(&batch).unwrap();
+        w.close().unwrap();
+    }
+    let example =
+        std::fs::read_to_string(root.join("specs-examples/pump-housing-leak-screen.yaml")).unwrap();
+    let spec = example
+        .replace("../demo-data/pump-housings.csv", "parts")
+        .lines()
+        .filter(|l| !l.starts_with("output:") && !l.starts_with("ledger:"))
+        .collect::<Vec<_>>()
+        .join("\n")
+        + "\nbootstrap:\n  replicates: 50\n";
+    std::fs::write(dir.join("spec.yaml"), spec).unwrap();
+}
+
+/// Runs `anomark ARGS` in `dir`, returning (exit code, stderr).
+fn anomark(dir: &Path, args: &[&str]) -> (i32, String) {
+    let out = Command::new(BIN)
+        .current_dir(dir)
+        .args(args)
+        .output()
+        .unwrap();
+    (
+        out.status.code().unwrap_or(-1),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+/// A final run of `spec.yaml` in `dir` into `out`, with `extra` arguments.
+fn final_run(dir: &Path, extra: &[&str]) {
+    let mut args = vec![
+        "run",
+        "spec.yaml",
+        "--key",
+        "key.pem",
+        "--out",
+        "out",
+        "--no-wall-clock",
+        "--open-test",
+        "--quiet",
+    ];
+    args.extend(extra);
+    let (code, stderr) = anomark(dir, &args);
+    assert_eq!(code, 0, "anomark {}: {stderr}", args.join(" "));
+}
+
+/// Every file of run directory `dir` but the signature and the manifest.
+fn run_files(dir: &Path) -> std::collections::BTreeMap<String, Vec<u8>> {
+    let mut out = std::collections::BTreeMap::new();
+    let mut stack = vec![dir.to_path_buf()];
+    while let Some(d) = stack.pop() {
+        for e in std::fs::read_dir(&d).unwrap() {
+            let p = e.unwrap().path();
+            if p.is_dir() {
+                stack.push(p);
+                continue;
+            }
+            let name = p.strip_prefix(dir).unwrap().to_string_lossy().into_owned();
+            if name != "manifest.json" && name != "manifest.sig" {
+                out.insert(name, std::fs::read(&p).unwrap());
+            }
+        }
+    }
+    out
+}
+
+/// The same spec and Parquet parts run in memory, with `--engine local`
+/// (under a memory limit) and on a cluster of a scheduler and two executors
+/// give the same run directory, byte for byte, but for run.json's one
+/// `engine` field; an engine run verifies by recomputation in memory.
+#[test]
+fn an_example_on_parquet_parts_gives_the_same_run_on_every_engine() {
+    let top = tempfile::tempdir().unwrap();
+    // Three parts in memory and on `--engine local`; one part in memory and
+    // on the cluster (a cluster reads a source of one file for now).
+    let dir = |name: &str, files: usize| {
+        let d = top.path().join(name);
+        std::fs::create_dir_all(&d).unwrap();
+        pump_housing_on_parts(&d, files);
+        let (code, stderr) = anomark(
+            &d,
+            &["keygen", "--private", "key.pem", "--public", "key.pub.pem"],
+        );
+        assert_eq!(code, 0, "{stderr}");
+        d
+    };
+    let (base, local, base1, remote) = (
+        dir("memory", 3),
+        dir("local", 3),
+        dir("memory1", 1),
+        dir("cluster", 1),
+    );
+    // One key for all (the card shows its fingerprint).
+    for d in [&local, &base1, &remote] {
+        for f in ["key.pem", "key.pub.pem"] {
+            std::fs::copy(base.join(f), d.join(f)).unwrap();
+        }
+    }
+    final_run(&base, &[]);
+    final_run(&base1, &[]);
+    final_run(&local, &["--engine", "local", "--memory-limit", "256MiB"]);
+    let (procs, url) = start(top.path(), &[], &[&[], &[]]);
+    let ready = runtime().block_on(connect(&url)).map(drop);
+    // A stalled cluster fails the test within two minutes, showing the logs.
+    let outcome = ready.map(|_| {
+        let mut child = Command::new(BIN)
+            .current_dir(&remote)
+            .args([
+                "run",
+                "spec.yaml",
+                "--key",
+                "key.pem",
+                "--out",
+                "out",
+                "--no-wall-clock",
+                "--open-test",
+                "--quiet",
+                "--engine",
+                &url,
+            ])
+            .stdout(Stdio::null())
+            .stderr(Stdio::piped())
+            .spawn()
+            .unwrap();
+        let started = Instant::now();
+        while child.try_wait().unwrap().is_none() && started.elapsed() < Duration::from_secs(120) {
+            std::thread::sleep(Duration::from_millis(50));
+        }
+        let _ = child.kill();
+        child.wait_with_output().unwrap()
+    });
+    drop(procs);
+    let out = outcome.unwrap();
+    let logs: String = ["scheduler.log", "executor0.log", "executor1.log"]
+        .iter()
+        .map(|f| {
+            let text = std::fs::read_to_string(top.path().join(f)).unwrap_or_default();
+            let tail: Vec<&str> = text.lines().rev().take(15).collect();
+            format!(
+                "{f}:\n{}\n",
+                tail.into_iter().rev().collect::<Vec<_>>().join("\n")
+            )
+        })
+        .collect();
+    assert!(
+        out.status.success(),
+        "the run on the cluster: {}\n{logs}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+
+    for (dir, base, engine) in [
+        (&local, &base, "local".to_string()),
+        (&remote, &base1, url.clone()),
+    ] {
+        let want = run_files(&base.join("out"));
+        assert!(want.contains_key("scores.csv") && want.contains_key("card.html"));
+        let mut got = run_files(&dir.join("out"));
+        let record = String::from_utf8(got.remove("run.json").unwrap()).unwrap();
+        let field = format!("  \"engine\": \"{engine}\",\n");
+        assert!(record.contains(&field), "{record}");
+        assert_eq!(
+            record.replacen(&field, "", 1),
+            String::from_utf8(want["run.json"].clone()).unwrap(),
+            "run.json on {engine}"
+        );
+        for (name, bytes) in &want {
+            if name != "run.json" {
+                assert!(got.get(name) == Some(bytes), "{name} differs on {engine}");
+            }
+        }
+        assert_eq!(got.len() + 1, want.len(), "files on {engine}");
+        // The engine run recomputed in this process gives the same bytes.
+        let (code, stderr) = anomark(dir, &["verify", "out", "--pubkey", "key.pub.pem", "--data"]);
+        assert_eq!(code, 0, "verify --data of the run on {engine}: {stderr}");
+    }
+}
+
+/// A spec beyond an engine's scope is refused with the reason before
+/// anything is read or written.
+#[test]
+fn specs_beyond_an_engines_scope_are_refused_with_nothing_written() {
+    let dir = tempfile::tempdir().unwrap();
+    pump_housing_on_parts(dir.path(), 3);
+    let (code, stderr) = anomark(
+        dir.path(),
+        &["keygen", "--private", "key.pem", "--public", "key.pub.pem"],
+    );
+    assert_eq!(code, 0, "{stderr}");
+    let spec = std::fs::read_to_string(dir.path().join("spec.yaml")).unwrap();
+    let cases = [
+        (
+            spec.replace(
+                "  - multivariate-gaussian\n",
+                "  - multivariate-gaussian\n  - knn-distance: {k: 3}\n",
+            ),
+            vec!["`detectors` cannot run on an engine", "knn-distance"],
+        ),
+        (
+            spec.replace(
+                "    - vacuum_mbar\n",
+                "    - {column: vacuum_mbar, transform: log}\n",
+            ),
+            vec!["cannot run on an engine", "vacuum_mbar", "transforms"],
+        ),
+        (
+            spec.replace("  features:\n", "  missing-values: drop-row\n  features:\n"),
+            vec!["`data.missing-values` cannot run on an engine"],
+        ),
+    ];
+    for (text, words) in cases {
+        std::fs::write(dir.path().join("scope.yaml"), &text).unwrap();
+        assert_ne!(text, spec);
+        for engine in ["local", "df://127.0.0.1:9"] {
+            let (code, stderr) = anomark(
+                dir.path(),
+                &[
+                    "run",
+                    "scope.yaml",
+                    "--key",
+                    "key.pem",
+                    "--out",
+                    "out",
+                    "--engine",
+                    engine,
+                ],
+            );
+            assert_eq!(code, 2, "{stderr}");
+            for w in &words {
+                assert!(stderr.contains(w), "`{w}` not in: {stderr}");
+            }
+            assert!(!dir.path().join("out").exists());
+        }
+    }
+    // On a cluster, a source of several files.
+    let (code, stderr) = anomark(
+        dir.path(),
+        &[
+            "run",
+            "spec.yaml",
+            "--key",
+            "key.pem",
+            "--out",
+            "out",
+            "--engine",
+            "df://127.0.0.1:9",
+        ],
+    );
+    assert_eq!(code, 2, "{stderr}");
+    assert!(stderr.contains("a source of one file"), "{stderr}");
+    assert!(!dir.path().join("out").exists());
+    // A malformed engine, and a memory limit for a cluster, are usage errors.
+    for args in [
+        &["--engine", "spark://h:1"][..],
+        &["--engine", "df://127.0.0.1:9", "--memory-limit", "1GiB"][..],
+        &["--memory-limit", "1GiB"][..],
+    ] {
+        let mut all = vec!["run", "spec.yaml", "--key", "key.pem", "--out", "out"];
+        all.extend(args);
+        let (code, stderr) = anomark(dir.path(), &all);
+        assert_eq!(code, 2, "{stderr}");
+        assert!(stderr.contains("--"), "{stderr}");
+        assert!(!dir.path().join("out").exists());
+    }
+}
