@@ -320,6 +320,65 @@ pub fn bootstrap_summary(
     })
 }
 
+/// A bootstrap running beside the rest of the run: started on rayon's pool
+/// as soon as its summary exists, so that its replicates fill the cores the
+/// run's single-threaded parts leave idle, and waited for when the record
+/// is written. The intervals are those of [`bootstrap_summary`], to the bit:
+/// the replicates' streams do not depend on when or where they run.
+pub struct PendingIntervals {
+    /// The result, once received.
+    done: std::sync::OnceLock<Option<BootstrapIntervals>>,
+    /// Where the running bootstrap sends it (`None` when it was ready at once).
+    rx: std::sync::Mutex<Option<std::sync::mpsc::Receiver<Option<BootstrapIntervals>>>>,
+}
+
+impl PendingIntervals {
+    /// Starts the bootstrap of summary `s` at τ (at once when there is
+    /// nothing to draw).
+    pub fn start(s: &Summary, tau: f64, plan: BootstrapPlan, confidence: f64) -> Self {
+        let (p_total, n_total) = (s.positives(), s.negatives());
+        if plan.replicates == 0 || p_total == 0 || n_total == 0 {
+            return PendingIntervals::ready(bootstrap_summary(s, tau, plan, confidence));
+        }
+        let (tx, rx) = std::sync::mpsc::channel();
+        let s = s.clone();
+        rayon::spawn(move || {
+            let _t = crate::progress::part("bootstrap");
+            // A panic would abort the pool: it becomes a missing result,
+            // reported by `wait`.
+            let r = std::panic::catch_unwind(|| bootstrap_summary(&s, tau, plan, confidence));
+            let _ = tx.send(r.ok().flatten());
+        });
+        PendingIntervals {
+            done: std::sync::OnceLock::new(),
+            rx: std::sync::Mutex::new(Some(rx)),
+        }
+    }
+
+    /// Intervals known already.
+    pub fn ready(r: Option<BootstrapIntervals>) -> Self {
+        PendingIntervals {
+            done: std::sync::OnceLock::from(r),
+            rx: std::sync::Mutex::new(None),
+        }
+    }
+
+    /// The intervals, once the bootstrap has finished; `None` when τ split a
+    /// gap of the summary (or the bootstrap failed). Call it outside rayon's
+    /// pool: a pool thread waiting here could hold the thread the bootstrap
+    /// needs.
+    pub fn wait(&self) -> Option<BootstrapIntervals> {
+        debug_assert!(
+            rayon::current_thread_index().is_none(),
+            "PendingIntervals::wait on a pool thread"
+        );
+        *self.done.get_or_init(|| {
+            let rx = self.rx.lock().ok().and_then(|mut g| g.take());
+            rx.and_then(|rx| rx.recv().ok().flatten())
+        })
+    }
+}
+
 /// Where a replicate's normal rows are counted: the summary's normal bins
 /// in walk order (bin 2j: the gap above cut point j; 2j + 1: the rows tied
 /// with it; 2m: the gap below the last), as prefix sums, and τ's boundary.
@@ -381,17 +440,37 @@ impl NormalBins {
 /// anomaly scores are drawn in a replicate, so this needs about two thirds
 /// of the binomial draws one per bin would, and the walk visits drawn cut
 /// points only.
+///
+/// The anomalies scoring above every normal row (the head of the ranking,
+/// most of them for a detector that separates well) are drawn as one cell
+/// per side of τ: each contributes p/n₁ to AP (its precision is 1) and
+/// p·n₀ to the Mann-Whitney sum whatever its place in the head, so only the
+/// head's count on each side of τ is read, and merging multinomial cells is
+/// again exact. The cost of a replicate is then O(anomaly scores below the
+/// first normal row), however many anomalies the head holds.
 fn replicates(s: &Summary, tau: f64, plan: BootstrapPlan) -> Option<Vec<(f64, f64, f64)>> {
     let (p_total, n_total) = (s.positives(), s.negatives());
     let (flagged, gap_flagged) = s.split_at(tau)?;
     let m = s.values.len();
     let normal = NormalBins::new(s, flagged, gap_flagged);
-    let pos = Multinomial::new(
-        (0..m)
-            .filter(|&j| s.pos[j] > 0)
-            .map(|j| (j, s.pos[j]))
-            .collect(),
-    );
+    // The head: the cut points with no normal row above them or tied with
+    // them. Every drawn anomaly there has precision 1 and every normal row
+    // below it, so the statistics read the head's anomalies only through how
+    // many are drawn on each side of τ: each side is one cell, counted at
+    // its last cut point.
+    let head = (0..m)
+        .take_while(|&j| normal.prefix[2 * j + 2] == 0)
+        .count();
+    let split = head.min(flagged);
+    let mut cells: Vec<(usize, u64)> = [(0, split), (split, head)]
+        .into_iter()
+        .filter_map(|(lo, hi)| {
+            let c: u64 = s.pos[lo..hi].iter().sum();
+            (c > 0).then(|| (hi - 1, c))
+        })
+        .collect();
+    cells.extend((head..m).filter(|&j| s.pos[j] > 0).map(|j| (j, s.pos[j])));
+    let pos = Multinomial::new(cells);
     Some(
         (0..plan.replicates)
             .into_par_iter()
@@ -984,11 +1063,30 @@ mod tests {
             .map(|i| crate::rng::unit(&mut rng) + if y[i] { 0.6 } else { 0.0 })
             .collect();
         same_distribution(&s, &y);
+        // A head of anomalies above every normal row, a few among them.
+        let n = 1_000;
+        let y: Vec<bool> = (0..n).map(|i| i % 10 == 0).collect();
+        let s: Vec<f64> = (0..n)
+            .map(|i| {
+                let u = crate::rng::unit(&mut rng);
+                match (y[i], i % 60 == 0) {
+                    (true, false) => 2.0 + u,
+                    (true, true) => 0.8 + u * 0.4,
+                    (false, _) => u,
+                }
+            })
+            .collect();
+        same_distribution(&s, &y);
+        // τ inside the head: its anomalies on both sides.
+        same_distribution_at(&s, &y, 2.5);
     }
 
     fn same_distribution(s: &[f64], y: &[bool]) {
+        same_distribution_at(s, y, crate::threshold::max_f1(s, y).tau);
+    }
+
+    fn same_distribution_at(s: &[f64], y: &[bool], tau: f64) {
         let (s, y) = (s.to_vec(), y.to_vec());
-        let tau = crate::threshold::max_f1(&s, &y).tau;
         let sum = Summary::new(&s, &y, &[tau]);
         let reps = 4_000u32;
         let new = replicates(

@@ -177,11 +177,13 @@ fn bucket_generic(xs: &[f64], d: usize, mean: &mut [f64], m2: &mut [f64], c: &mu
 }
 
 /// Each run's bucket moments (the runs index rows of the row-major `xs`),
-/// into `out`: per run d mean values then d × d co-moments, zero on entry.
+/// into `out`: per run d mean values then d × d co-moments (each run's
+/// share zeroed here, by the task, while it is about to be used).
 #[inline(always)]
 fn buckets_generic(xs: &[f64], d: usize, runs: &[std::ops::Range<usize>], out: &mut [f64]) {
     let mut c = vec![0.0; d];
     for (r, o) in runs.iter().zip(out.chunks_exact_mut(d + d * d)) {
+        o.fill(0.0);
         let (mean, m2) = o.split_at_mut(d);
         bucket_generic(&xs[r.start * d..r.end * d], d, mean, m2, &mut c);
     }
@@ -315,7 +317,6 @@ impl Fold {
         let mut out = vec![0.0; STRETCH * width];
         for stretch in runs.chunks(STRETCH) {
             let out = &mut out[..stretch.len() * width];
-            out.fill(0.0);
             // Buckets side by side, each computed whole by one task.
             out.par_chunks_mut(TASK * width)
                 .zip(stretch.par_chunks(TASK))

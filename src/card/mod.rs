@@ -17,7 +17,12 @@ use crate::error::{Error, Result};
 pub const BUILTIN: &[(&str, &str)] = &[
     ("card.md", include_str!("../../templates/card.md")),
     ("card.html", include_str!("../../templates/card.html")),
+    ("base.css", BASE_CSS),
 ];
+
+/// The style rules the card and the drift report share (included by both
+/// HTML templates).
+const BASE_CSS: &str = include_str!("../../templates/base.css");
 
 /// A value and its one 95 % interval, formatted for a compact table cell.
 #[derive(Debug, Clone, serde::Serialize)]
@@ -400,6 +405,8 @@ pub fn render_drift(ctx: &DriftContext) -> Result<String> {
     let name = "drift.html";
     env.add_template(name, include_str!("../../templates/drift.html"))
         .map_err(|e| template_error(name, e))?;
+    env.add_template("base.css", BASE_CSS)
+        .map_err(|e| template_error("base.css", e))?;
     let mut s = env
         .get_template(name)
         .and_then(|t| t.render(minijinja::value::Serde(ctx)))

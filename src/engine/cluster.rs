@@ -10,7 +10,7 @@ use std::sync::Arc;
 use ballista::prelude::{SessionConfigExt, SessionContextExt};
 use datafusion::prelude::{SessionConfig, SessionContext};
 
-use super::{engine_error, functions, register, state_with, version};
+use super::{engine_error, functions, register, state_with, version, Deadline};
 use crate::error::{Error, Result};
 
 /// How `anomark cluster scheduler` runs.
@@ -169,13 +169,36 @@ pub fn cluster_error(doing: &str, e: impl std::fmt::Display) -> Error {
     engine_error(doing, e)
 }
 
+/// How a client session on a cluster runs.
+#[derive(Debug, Clone, Copy)]
+pub struct ConnectOptions {
+    /// The target partitions of the session's plans.
+    pub partitions: usize,
+    /// How long the client waits for each query's answer, the handshake
+    /// included, before it fails with [`Error::Engine`].
+    pub deadline: Deadline,
+}
+
+impl ConnectOptions {
+    /// `partitions` target partitions and the default [`Deadline`].
+    pub fn new(partitions: usize) -> Self {
+        ConnectOptions {
+            partitions,
+            deadline: Deadline::default(),
+        }
+    }
+}
+
 /// A client session on the cluster whose scheduler listens at `url`
 /// (`df://HOST:PORT`), after the handshake: the scheduler plans, and an
 /// executor runs, a query that every process of another anomark version
-/// refuses, naming both versions.
-pub async fn connect(url: &str, partitions: usize) -> Result<SessionContext> {
+/// refuses, naming both versions. Every query of the session, the
+/// handshake included, is bounded by `opts.deadline`.
+pub async fn connect(url: &str, opts: &ConnectOptions) -> Result<SessionContext> {
     let doing = format!("connecting to the cluster at `{url}`");
-    let config = SessionConfig::new_with_ballista().with_target_partitions(partitions);
+    let config = opts
+        .deadline
+        .on(SessionConfig::new_with_ballista().with_target_partitions(opts.partitions));
     let state = state_with(config, version())?;
     let ctx = SessionContext::remote_with_state(url, state)
         .await

@@ -87,14 +87,88 @@ pub fn state_with(config: SessionConfig, version: &str) -> Result<SessionState> 
     Ok(state)
 }
 
-/// Runs a query and collects its batches.
+/// How long the client waits for the engine's answer to one query before it
+/// gives up with [`Error::Engine`]: a stalled engine (a cluster that lost an
+/// executor and does not recover, a scheduler that stopped answering) ends
+/// the client's work instead of holding it forever. Carried in the session's
+/// configuration ([`Deadline::on`]), so every query of a session (each
+/// engine step, [`collect`]) is bounded by it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Deadline {
+    seconds: u64,
+}
+
+impl Deadline {
+    /// The deadline of a session that sets none: one hour per query.
+    pub const DEFAULT_SECONDS: u64 = 3_600;
+    /// The longest deadline accepted: seven days per query.
+    pub const MAX_SECONDS: u64 = 604_800;
+
+    /// A deadline of `seconds` per query, 1 to [`Deadline::MAX_SECONDS`].
+    pub fn seconds(seconds: u64) -> Result<Self> {
+        if (1..=Self::MAX_SECONDS).contains(&seconds) {
+            Ok(Deadline { seconds })
+        } else {
+            Err(Error::Usage {
+                message: format!(
+                    "the engine's deadline must be 1 to {} seconds, not {seconds}",
+                    Self::MAX_SECONDS
+                ),
+            })
+        }
+    }
+
+    /// The deadline in seconds.
+    pub fn as_seconds(self) -> u64 {
+        self.seconds
+    }
+
+    /// `config` with this deadline for every query of its sessions.
+    pub fn on(self, config: SessionConfig) -> SessionConfig {
+        config.with_extension(std::sync::Arc::new(self))
+    }
+
+    /// The deadline of the session `ctx` (the default if it sets none).
+    pub fn of(ctx: &SessionContext) -> Self {
+        ctx.state()
+            .config()
+            .get_extension::<Deadline>()
+            .map_or_else(Deadline::default, |d| *d)
+    }
+}
+
+impl Default for Deadline {
+    fn default() -> Self {
+        Deadline {
+            seconds: Self::DEFAULT_SECONDS,
+        }
+    }
+}
+
+/// Runs a query and collects its batches, within the session's
+/// [`Deadline`]: past it the query is abandoned and the error names what
+/// was being done.
 pub async fn collect(ctx: &SessionContext, doing: &str, sql: &str) -> Result<Vec<RecordBatch>> {
-    ctx.sql(sql)
+    let deadline = Deadline::of(ctx);
+    let query = async {
+        ctx.sql(sql)
+            .await
+            .map_err(|e| engine_error(doing, e))?
+            .collect()
+            .await
+            .map_err(|e| engine_error(doing, e))
+    };
+    tokio::time::timeout(std::time::Duration::from_secs(deadline.as_seconds()), query)
         .await
-        .map_err(|e| engine_error(doing, e))?
-        .collect()
-        .await
-        .map_err(|e| engine_error(doing, e))
+        .unwrap_or_else(|_| {
+            Err(Error::Engine {
+                message: format!(
+                    "{doing}: the engine gave no answer within the deadline of {} s, and the \
+                 query was abandoned",
+                    deadline.as_seconds()
+                ),
+            })
+        })
 }
 
 /// A column of a result batch as a concrete array.
@@ -533,7 +607,8 @@ pub fn quote(name: &str) -> String {
 }
 
 /// A session on one machine with `partitions` target partitions and
-/// batches of `batch` rows, anomark's functions registered.
+/// batches of `batch` rows, anomark's functions registered (the default
+/// [`Deadline`]).
 pub fn local_context(partitions: usize, batch: usize) -> Result<SessionContext> {
     let config = SessionConfig::new()
         .with_target_partitions(partitions)

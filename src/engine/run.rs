@@ -173,7 +173,9 @@ async fn context(engine: &Engine) -> Result<SessionContext> {
             super::register_state(&mut state, version())?;
             SessionContext::new_with_state(state)
         }
-        Engine::Cluster { url } => super::cluster::connect(url, partitions).await?,
+        Engine::Cluster { url } => {
+            super::cluster::connect(url, &super::cluster::ConnectOptions::new(partitions)).await?
+        }
         Engine::InProcess | Engine::Refused(_) => {
             return Err(Error::internal("an engine ingest without an engine"))
         }
@@ -722,7 +724,7 @@ async fn train_sample(
         &format!("SELECT h, f, r, {xl} FROM assigned WHERE part = 0{order}"),
     )
     .await?;
-    // (content hash, file, row) with the row's values.
+    // (content hash, file, row) and the row's values.
     type Keyed = (([u8; 32], i64, i64), Vec<f64>);
     let mut all: Vec<Keyed> = Vec::new();
     let mut kept: Vec<(usize, Vec<f64>)> = Vec::new();

@@ -463,3 +463,82 @@ fn interval_codes_and_order_keys_follow_the_summary() {
         );
     }
 }
+
+/// A table whose one partition never yields a batch (a stalled engine),
+/// holding no thread: the stream waits on a task that sleeps for an hour.
+#[derive(Debug)]
+struct Stalled(datafusion::arrow::datatypes::SchemaRef);
+
+impl datafusion::physical_plan::streaming::PartitionStream for Stalled {
+    fn schema(&self) -> &datafusion::arrow::datatypes::SchemaRef {
+        &self.0
+    }
+
+    fn execute(
+        &self,
+        _: Arc<datafusion::execution::TaskContext>,
+    ) -> datafusion::execution::SendableRecordBatchStream {
+        let mut b = datafusion::physical_plan::stream::RecordBatchReceiverStream::builder(
+            self.0.clone(),
+            1,
+        );
+        let tx = b.tx();
+        b.spawn(async move {
+            tokio::time::sleep(std::time::Duration::from_secs(3_600)).await;
+            drop(tx);
+            Ok(())
+        });
+        b.build()
+    }
+}
+
+#[test]
+fn a_query_past_its_deadline_fails_naming_the_step_and_the_deadline() {
+    let schema = Arc::new(Schema::new(vec![Field::new("x", DataType::Float64, false)]));
+    let config = Deadline::seconds(1)
+        .unwrap()
+        .on(SessionConfig::new().with_target_partitions(1));
+    let ctx = SessionContext::new_with_state(state_with(config, version()).unwrap());
+    assert_eq!(Deadline::of(&ctx).as_seconds(), 1);
+    let table = datafusion::catalog::streaming::StreamingTable::try_new(
+        schema.clone(),
+        vec![Arc::new(Stalled(schema))],
+    )
+    .unwrap();
+    ctx.register_table("stalled", Arc::new(table)).unwrap();
+    let started = std::time::Instant::now();
+    let e = runtime()
+        .block_on(collect(
+            &ctx,
+            "counting the splits",
+            "SELECT COUNT(*) FROM stalled",
+        ))
+        .unwrap_err();
+    let waited = started.elapsed();
+    assert!(matches!(e, Error::Engine { .. }), "{e}");
+    assert_eq!(e.code(), 5);
+    assert_eq!(
+        e.to_string(),
+        "engine: counting the splits: the engine gave no answer within the deadline of 1 s, \
+         and the query was abandoned"
+    );
+    assert!(
+        waited >= std::time::Duration::from_secs(1) && waited.as_secs() < 30,
+        "{waited:?}"
+    );
+}
+
+#[test]
+fn a_deadline_is_bounded_and_defaults_to_an_hour() {
+    assert_eq!(Deadline::default().as_seconds(), 3_600);
+    assert_eq!(
+        Deadline::of(&local_context(1, 8).unwrap()),
+        Deadline::default()
+    );
+    assert_eq!(Deadline::seconds(604_800).unwrap().as_seconds(), 604_800);
+    for bad in [0, 604_801] {
+        let e = Deadline::seconds(bad).unwrap_err();
+        assert_eq!(e.code(), 2, "{e}");
+        assert!(e.to_string().contains("1 to 604800 seconds"), "{e}");
+    }
+}

@@ -25,8 +25,11 @@ pub(crate) struct Candidate {
     pub model: Box<dyn Model>,
     /// Its threshold.
     pub choice: Choice,
-    /// Its validation metrics at that threshold.
+    /// Its validation metrics at that threshold, the bootstrap intervals
+    /// apart: they are computed beside the run ([`Candidate::validation_intervals`]).
     pub validation: Metrics,
+    /// Its validation metrics' bootstrap intervals, running.
+    pub validation_intervals: metrics::PendingIntervals,
     /// Its validation scores, in the validation rows' order.
     pub validation_scores: Vec<f64>,
     /// The validation scores' evaluation summary, for the threshold, the
@@ -159,7 +162,8 @@ fn candidate(
     }
     drop(t);
     let t = crate::progress::part("validation metrics");
-    let validation = metrics_of(&validation_summary, choice.tau, beta, plan)?;
+    let (validation, validation_intervals) =
+        metrics_of(&validation_summary, choice.tau, beta, plan)?;
     drop(t);
     Ok(Candidate {
         name,
@@ -168,6 +172,7 @@ fn candidate(
         model,
         choice,
         validation,
+        validation_intervals,
         validation_scores,
         validation_summary,
     })
@@ -188,26 +193,41 @@ fn candidate_name(set: &spec::FeatureSetPlan, kind: DetectorKind, plan: &Plan) -
 
 /// Every metric of a split at τ from its summary; τ is always one the
 /// summary can count (a cut point, or the midpoint of a searched cut). The
-/// bootstrap is timed apart (`ANOMARK_STAGE_TIMES=1`, part `bootstrap`).
+/// bootstrap intervals are left empty and started beside the run (their
+/// own time is the part `bootstrap` under `ANOMARK_STAGE_TIMES=1`).
 pub(crate) fn metrics_of(
     s: &Summary,
     tau: f64,
     beta: Option<f64>,
     plan: &spec::Plan,
-) -> Result<Metrics> {
-    let bug = || {
-        Error::internal(format!(
-            "τ `{tau}` falls inside a gap of the evaluation summary"
-        ))
-    };
+) -> Result<(Metrics, metrics::PendingIntervals)> {
     let without = spec::BootstrapPlan {
         replicates: 0,
         ..plan.bootstrap
     };
-    let mut m = Metrics::of_summary(s, tau, beta, without).ok_or_else(bug)?;
-    let _t = crate::progress::part("bootstrap");
-    m.bootstrap_95 = metrics::bootstrap_summary(s, tau, plan.bootstrap, 0.95).ok_or_else(bug)?;
-    Ok(m)
+    let m = Metrics::of_summary(s, tau, beta, without).ok_or_else(|| tau_in_gap(tau))?;
+    Ok((
+        m,
+        metrics::PendingIntervals::start(s, tau, plan.bootstrap, 0.95),
+    ))
+}
+
+/// The metrics with their intervals, once these are computed.
+pub(crate) fn with_intervals(
+    m: &Metrics,
+    pending: &metrics::PendingIntervals,
+    tau: f64,
+) -> Result<Metrics> {
+    Ok(Metrics {
+        bootstrap_95: pending.wait().ok_or_else(|| tau_in_gap(tau))?,
+        ..m.clone()
+    })
+}
+
+fn tau_in_gap(tau: f64) -> Error {
+    Error::internal(format!(
+        "τ `{tau}` falls inside a gap of the evaluation summary"
+    ))
 }
 
 /// Wraps an error met on a named feature set with the set's name (a spec

@@ -232,7 +232,12 @@ fn execute(
     });
     let opened = open::test(&plan, &rows, test, chosen, ledger)?;
 
-    let stage = progress.stage("test metrics and intervals");
+    // scores.csv and the figures while the bootstrap intervals, started as
+    // each summary was made, are computed beside them.
+    let stage = progress.stage("scores.csv and figures");
+    let artifacts = report::artifacts(&plan, &rows, &opened)?;
+    drop(stage);
+    let stage = progress.stage("the record, once the intervals are in");
     let header = report::Header {
         spec_file: opts
             .spec
@@ -251,12 +256,11 @@ fn execute(
     };
     let rec = report::record(&plan, &rows, &opened, header)?;
     drop(stage);
-    let stage = progress.stage("writing the card and figures");
+    let stage = progress.stage("writing the card");
     let files = report::files(
         &plan,
-        &rows,
-        &opened,
         &rec,
+        artifacts,
         opts.templates.as_deref(),
         fingerprint,
     )?;

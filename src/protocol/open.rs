@@ -14,6 +14,7 @@ use crate::audit::ledger;
 use crate::data::RowId;
 use crate::detect;
 use crate::error::Result;
+use crate::metrics::{Metrics, PendingIntervals};
 use crate::record::{self, TestOpenings};
 use crate::spec::{DetectorKind, Plan};
 use crate::split::SealedTest;
@@ -38,6 +39,10 @@ pub(crate) struct Test {
     pub scores: Vec<Vec<f64>>,
     /// Per candidate, its test summary with its τ as a cut point.
     pub summaries: Vec<Summary>,
+    /// Per candidate, its test metrics at τ, the bootstrap intervals apart.
+    pub metrics: Vec<Metrics>,
+    /// Per candidate, its test metrics' bootstrap intervals, running.
+    pub intervals: Vec<PendingIntervals>,
     /// The ledger's summary of openings of this test split.
     pub openings: TestOpenings,
 }
@@ -169,6 +174,14 @@ pub(crate) fn test(
             .map(|(ts, c)| Summary::new(ts, &labels, &[c.choice.tau]))
             .collect()
     };
+    // Their point metrics now; their intervals beside the report's files.
+    let (metrics, intervals) = summaries
+        .iter()
+        .zip(&fitted.candidates)
+        .map(|(s, c)| super::fit::metrics_of(s, c.choice.tau, fitted.beta, plan))
+        .collect::<Result<Vec<_>>>()?
+        .into_iter()
+        .unzip();
     Ok(Opened {
         chosen,
         test: Some(Test {
@@ -176,6 +189,8 @@ pub(crate) fn test(
             labels,
             scores,
             summaries,
+            metrics,
+            intervals,
             openings,
         }),
         warnings,

@@ -15,6 +15,7 @@ use crate::data::{self, Dataset, RowId};
 use crate::detect::{self, command::csv_field};
 use crate::error::{Error, Result};
 use crate::features;
+use crate::metrics::Metrics;
 use crate::output::RunFiles;
 use crate::record::{
     self, CandidateRecord, InputRecord, LabelRecord, RunRecord, SelectionRecord, SpecRecord,
@@ -78,17 +79,30 @@ pub(crate) fn record(
     let fitted = &chosen.fitted;
     let candidates = &fitted.candidates;
     let data = &rows.data;
-    let beta = fitted.beta;
+    // The intervals started beside the run, waited for here (outside
+    // rayon's pool).
+    let validation: Vec<Metrics> = candidates
+        .iter()
+        .map(|c| fit::with_intervals(&c.validation, &c.validation_intervals, c.choice.tau))
+        .collect::<Result<_>>()?;
+    let test: Vec<Option<Metrics>> = candidates
+        .iter()
+        .enumerate()
+        .map(|(i, c)| {
+            opened
+                .test
+                .as_ref()
+                .map(|t| fit::with_intervals(&t.metrics[i], &t.intervals[i], c.choice.tau))
+                .transpose()
+        })
+        .collect::<Result<_>>()?;
     let candidate_records: Vec<CandidateRecord> = {
         use rayon::prelude::*;
         candidates
             .par_iter()
+            .zip(validation.into_par_iter().zip(test))
             .enumerate()
-            .map(|(i, c)| -> Result<CandidateRecord> {
-                let test = match &opened.test {
-                    Some(t) => Some(fit::metrics_of(&t.summaries[i], c.choice.tau, beta, plan)?),
-                    None => None,
-                };
+            .map(|(i, (c, (validation, test)))| -> Result<CandidateRecord> {
                 Ok(CandidateRecord {
                     name: c.name.clone(),
                     feature_set: fitted.sets[c.set].set.clone(),
@@ -100,7 +114,7 @@ pub(crate) fn record(
                     ln_epsilon: c.choice.ln_epsilon(),
                     threshold_met: c.choice.met,
                     threshold_note: c.choice.note.clone(),
-                    validation: c.validation.clone(),
+                    validation,
                     test,
                     chosen: i == chosen.index,
                 })
@@ -180,28 +194,26 @@ pub(crate) fn record(
     })
 }
 
-/// The run directory's files: run.json, the spec's copy, scores.csv, the
-/// figures and the card.
-pub(crate) fn files(
-    plan: &Plan,
-    rows: &Rows,
-    opened: &Opened,
-    rec: &RunRecord,
-    templates: Option<&Path>,
-    fingerprint: &str,
-) -> Result<RunFiles> {
+/// The run directory's files that need no record: scores.csv and the
+/// figures, made while the bootstrap intervals are still being computed.
+pub(crate) struct Artifacts {
+    /// scores.csv, in parts.
+    scores: Vec<Vec<u8>>,
+    /// The validation figures.
+    validation: Vec<plots::Plot>,
+    /// The test figures (none while the test split stays sealed).
+    test: Vec<plots::Plot>,
+    /// The feature figures.
+    features: Vec<plots::Plot>,
+}
+
+/// scores.csv and the figures.
+pub(crate) fn artifacts(plan: &Plan, rows: &Rows, opened: &Opened) -> Result<Artifacts> {
     let data = &rows.data;
     let fitted = &opened.chosen.fitted;
     let candidates = &fitted.candidates;
     let chosen = opened.chosen.index;
     let val_y = &fitted.validation_labels;
-    let mut files = RunFiles::default();
-    let mut run_json = serde_json::to_vec_pretty(rec)
-        .map_err(|e| Error::internal(format!("serialising run.json: {e}")))?;
-    run_json.push(b'\n');
-    files.add("run.json", run_json);
-    files.add(SPEC_COPY, plan.spec_bytes.clone());
-    let mut ctx = wording::card_context(plan, rec, &rec.spec.file, fingerprint)?;
     let c = &candidates[chosen];
     let set = &fitted.sets[c.set];
     let params = c.model.params();
@@ -282,9 +294,35 @@ pub(crate) fn files(
     };
     let (scores, (by_score, by_feature)) =
         rayon::join(scores, || rayon::join(score_figures, feature_figures));
-    files.add_parts("scores.csv", scores);
-    (ctx.plots_validation, ctx.plots_test) = by_score?;
-    ctx.plots_features = by_feature?;
+    let (validation, test) = by_score?;
+    Ok(Artifacts {
+        scores,
+        validation,
+        test,
+        features: by_feature?,
+    })
+}
+
+/// The run directory's files: run.json, the spec's copy, scores.csv, the
+/// figures and the card.
+pub(crate) fn files(
+    plan: &Plan,
+    rec: &RunRecord,
+    artifacts: Artifacts,
+    templates: Option<&Path>,
+    fingerprint: &str,
+) -> Result<RunFiles> {
+    let mut files = RunFiles::default();
+    let mut run_json = serde_json::to_vec_pretty(rec)
+        .map_err(|e| Error::internal(format!("serialising run.json: {e}")))?;
+    run_json.push(b'\n');
+    files.add("run.json", run_json);
+    files.add(SPEC_COPY, plan.spec_bytes.clone());
+    let mut ctx = wording::card_context(plan, rec, &rec.spec.file, fingerprint)?;
+    files.add_parts("scores.csv", artifacts.scores);
+    ctx.plots_validation = artifacts.validation;
+    ctx.plots_test = artifacts.test;
+    ctx.plots_features = artifacts.features;
     for p in ctx
         .plots_validation
         .iter()

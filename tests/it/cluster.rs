@@ -23,7 +23,7 @@ use datafusion::prelude::{ParquetReadOptions, SessionContext};
 use crate::util::BIN;
 
 /// The processes of one cluster, killed and waited for when dropped.
-struct Processes(Vec<Child>);
+pub(crate) struct Processes(pub(crate) Vec<Child>);
 
 impl Drop for Processes {
     fn drop(&mut self) {
@@ -57,7 +57,7 @@ fn spawn(args: &[String], log: &Path) -> Child {
 
 /// Starts a scheduler and one executor per entry of `executors` (extra
 /// arguments each), returning the processes and the scheduler's address.
-fn start(dir: &Path, scheduler: &[&str], executors: &[&[&str]]) -> (Processes, String) {
+pub(crate) fn start(dir: &Path, scheduler: &[&str], executors: &[&[&str]]) -> (Processes, String) {
     let port = free_ports();
     let addr = format!("127.0.0.1:{port}");
     let mut args: Vec<String> = ["cluster", "scheduler", "--bind", &addr]
@@ -89,16 +89,24 @@ fn start(dir: &Path, scheduler: &[&str], executors: &[&[&str]]) -> (Processes, S
     (procs, format!("df://{addr}"))
 }
 
-fn runtime() -> tokio::runtime::Runtime {
+pub(crate) fn runtime() -> tokio::runtime::Runtime {
     anomark::engine::cluster::runtime().unwrap()
 }
 
 /// Connects once the scheduler answers and `executors` executors have
 /// registered (a query needs them), or returns the last error after 60 s.
 async fn connect(url: &str) -> anomark::Result<SessionContext> {
+    connect_with(url, &cluster::ConnectOptions::new(4)).await
+}
+
+/// [`connect`] with the session's options.
+pub(crate) async fn connect_with(
+    url: &str,
+    opts: &cluster::ConnectOptions,
+) -> anomark::Result<SessionContext> {
     let start = Instant::now();
     loop {
-        match cluster::connect(url, 4).await {
+        match cluster::connect(url, opts).await {
             Ok(ctx) => return Ok(ctx),
             Err(e) if start.elapsed() > Duration::from_secs(60) => return Err(e),
             Err(e) if e.to_string().contains("version mismatch") => return Err(e),
@@ -112,7 +120,7 @@ const D: usize = 3;
 
 /// Four Parquet parts of generated rows (label text, three features),
 /// with identical rows and every seventh row an anomaly.
-fn write_parts(dir: &Path, rows_per_part: usize) {
+pub(crate) fn write_parts(dir: &Path, rows_per_part: usize) {
     std::fs::create_dir_all(dir).unwrap();
     let mut fields = vec![Field::new("label", DataType::Utf8, false)];
     fields.extend((0..D).map(|j| Field::new(format!("x{j}"), DataType::Float64, false)));
@@ -148,7 +156,7 @@ fn write_parts(dir: &Path, rows_per_part: usize) {
 /// What the engine steps give: split cuts, counts, leakage, training
 /// moments' bits, manifests and the validation summary's bytes.
 #[derive(Debug, PartialEq)]
-struct Outcome {
+pub(crate) struct Outcome {
     cuts: Vec<u8>,
     counts: String,
     leaks: bool,
@@ -157,7 +165,7 @@ struct Outcome {
     summary: String,
 }
 
-async fn steps(ctx: &SessionContext, parts: &Path) -> anomark::Result<Outcome> {
+pub(crate) async fn steps(ctx: &SessionContext, parts: &Path) -> anomark::Result<Outcome> {
     let e = |e: datafusion::error::DataFusionError| engine::engine_error("test", e);
     ctx.register_parquet(
         "data",

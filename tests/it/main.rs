@@ -9,6 +9,8 @@ mod check;
 mod cli;
 #[cfg(feature = "cluster")]
 mod cluster;
+#[cfg(feature = "cluster")]
+mod cluster_kill;
 mod command;
 mod conformal;
 mod detectors;
