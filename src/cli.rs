@@ -72,6 +72,11 @@ pub enum Command {
         /// most 1024TiB; default: no limit); operators beyond it spill to disk.
         #[arg(long, value_name = "SIZE", value_parser = memory_size)]
         memory_limit: Option<u64>,
+        /// With `--engine`: how long to wait for the engine's answer to one
+        /// query, 1 to 604800 seconds (default 3600); past it the run fails
+        /// with exit code 5 and writes nothing.
+        #[arg(long, value_name = "SECONDS")]
+        engine_deadline: Option<u64>,
         /// Show no progress (progress is drawn only on a terminal anyway).
         #[arg(long, short)]
         quiet: bool,
@@ -312,6 +317,7 @@ impl From<Args> for Request {
                 open_test,
                 engine,
                 memory_limit,
+                engine_deadline,
                 quiet,
                 json,
             } => Request::Run {
@@ -325,8 +331,12 @@ impl From<Args> for Request {
                     no_wall_clock,
                     open_test,
                     progress: Progress::new(quiet || json),
-                    engine: crate::protocol::Engine::parse(engine.as_deref(), memory_limit)
-                        .unwrap_or_else(|e| crate::protocol::Engine::Refused(e.to_string())),
+                    engine: crate::protocol::Engine::parse(
+                        engine.as_deref(),
+                        memory_limit,
+                        engine_deadline,
+                    )
+                    .unwrap_or_else(|e| crate::protocol::Engine::Refused(e.to_string())),
                 },
                 json,
             },

@@ -100,9 +100,9 @@ pub struct Deadline {
 
 impl Deadline {
     /// The deadline of a session that sets none: one hour per query.
-    pub const DEFAULT_SECONDS: u64 = 3_600;
+    pub const DEFAULT_SECONDS: u64 = crate::protocol::ENGINE_DEADLINE_DEFAULT_SECONDS;
     /// The longest deadline accepted: seven days per query.
-    pub const MAX_SECONDS: u64 = 604_800;
+    pub const MAX_SECONDS: u64 = crate::protocol::ENGINE_DEADLINE_MAX_SECONDS;
 
     /// A deadline of `seconds` per query, 1 to [`Deadline::MAX_SECONDS`].
     pub fn seconds(seconds: u64) -> Result<Self> {

@@ -155,8 +155,12 @@ const ORDER_SETTINGS: [&str; 2] = [
 async fn context(engine: &Engine) -> Result<SessionContext> {
     let partitions = std::thread::available_parallelism().map_or(1, |n| n.get());
     let ctx = match engine {
-        Engine::Local { memory_limit } => {
-            let config = SessionConfig::new().with_target_partitions(partitions);
+        Engine::Local {
+            memory_limit,
+            deadline,
+        } => {
+            let config = super::Deadline::seconds(*deadline)?
+                .on(SessionConfig::new().with_target_partitions(partitions));
             let mut runtime = RuntimeEnvBuilder::new();
             if let Some(limit) = memory_limit {
                 let limit = usize::try_from(*limit).unwrap_or(usize::MAX);
@@ -173,8 +177,12 @@ async fn context(engine: &Engine) -> Result<SessionContext> {
             super::register_state(&mut state, version())?;
             SessionContext::new_with_state(state)
         }
-        Engine::Cluster { url } => {
-            super::cluster::connect(url, &super::cluster::ConnectOptions::new(partitions)).await?
+        Engine::Cluster { url, deadline } => {
+            let opts = super::cluster::ConnectOptions {
+                partitions,
+                deadline: super::Deadline::seconds(*deadline)?,
+            };
+            super::cluster::connect(url, &opts).await?
         }
         Engine::InProcess | Engine::Refused(_) => {
             return Err(Error::internal("an engine ingest without an engine"))

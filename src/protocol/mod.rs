@@ -61,6 +61,12 @@ pub struct RunOptions {
     pub engine: Engine,
 }
 
+/// How long a run on an engine waits for the engine's answer to one query
+/// when `--engine-deadline` is not given: one hour.
+pub const ENGINE_DEADLINE_DEFAULT_SECONDS: u64 = 3_600;
+/// The longest `--engine-deadline`: seven days per query.
+pub const ENGINE_DEADLINE_MAX_SECONDS: u64 = 604_800;
+
 /// Where a run's rows are read, split and summarised (`--engine`).
 #[derive(Debug, Clone, PartialEq, Eq, Default)]
 pub enum Engine {
@@ -72,12 +78,17 @@ pub enum Engine {
     Local {
         /// The memory pool's limit in bytes (`--memory-limit`).
         memory_limit: Option<u64>,
+        /// Seconds the client waits for one query's answer (`--engine-deadline`).
+        deadline: u64,
     },
     /// A Ballista cluster whose scheduler listens at `url`
     /// (`--engine df://HOST:PORT`).
     Cluster {
         /// `df://HOST:PORT`.
         url: String,
+        /// Seconds the client waits for one query's answer, the handshake
+        /// included (`--engine-deadline`).
+        deadline: u64,
     },
     /// An `--engine` / `--memory-limit` that [`Engine::parse`] refused, with
     /// its message: `run` stops with it (a usage error) before reading anything.
@@ -85,16 +96,34 @@ pub enum Engine {
 }
 
 impl Engine {
-    /// `--engine VALUE` with `--memory-limit` (only with `local`): `local`
-    /// or `df://HOST:PORT`; anything else refused by name.
-    pub fn parse(value: Option<&str>, memory_limit: Option<u64>) -> Result<Engine> {
+    /// `--engine VALUE` with `--memory-limit` (only with `local`) and
+    /// `--engine-deadline` (1 to [`ENGINE_DEADLINE_MAX_SECONDS`]): `local` or
+    /// `df://HOST:PORT`; anything else refused by name.
+    pub fn parse(
+        value: Option<&str>,
+        memory_limit: Option<u64>,
+        deadline: Option<u64>,
+    ) -> Result<Engine> {
         let usage = |message: String| Err(Error::Usage { message });
+        if value.is_none() && deadline.is_some() {
+            return usage("`--engine-deadline` needs `--engine`".into());
+        }
+        let deadline = deadline.unwrap_or(ENGINE_DEADLINE_DEFAULT_SECONDS);
+        if !(1..=ENGINE_DEADLINE_MAX_SECONDS).contains(&deadline) {
+            return usage(format!(
+                "`--engine-deadline` must be 1 to {ENGINE_DEADLINE_MAX_SECONDS} seconds, not \
+                 {deadline}"
+            ));
+        }
         match value {
             None if memory_limit.is_some() => {
                 usage("`--memory-limit` needs `--engine local`".into())
             }
             None => Ok(Engine::InProcess),
-            Some("local") => Ok(Engine::Local { memory_limit }),
+            Some("local") => Ok(Engine::Local {
+                memory_limit,
+                deadline,
+            }),
             Some(url) if url.starts_with("df://") => {
                 if memory_limit.is_some() {
                     return usage(
@@ -106,7 +135,10 @@ impl Engine {
                 let rest = &url["df://".len()..];
                 match rest.rsplit_once(':') {
                     Some((host, port)) if !host.is_empty() && port.parse::<u16>().is_ok() => {
-                        Ok(Engine::Cluster { url: url.into() })
+                        Ok(Engine::Cluster {
+                            url: url.into(),
+                            deadline,
+                        })
                     }
                     _ => usage(format!(
                         "`--engine` must be `local` or `df://HOST:PORT`, such as \
@@ -125,7 +157,7 @@ impl Engine {
         match self {
             Engine::InProcess => None,
             Engine::Local { .. } => Some("local".into()),
-            Engine::Cluster { url } => Some(url.clone()),
+            Engine::Cluster { url, .. } => Some(url.clone()),
             Engine::Refused(_) => None,
         }
     }
@@ -314,34 +346,59 @@ mod tests {
     /// `--engine` and `--memory-limit` as the command line gives them.
     #[test]
     fn engines_parse_and_refuse_by_name() {
-        assert_eq!(Engine::parse(None, None).unwrap(), Engine::InProcess);
+        assert_eq!(Engine::parse(None, None, None).unwrap(), Engine::InProcess);
         assert_eq!(
-            Engine::parse(Some("local"), Some(1 << 30)).unwrap(),
+            Engine::parse(Some("local"), Some(1 << 30), None).unwrap(),
             Engine::Local {
-                memory_limit: Some(1 << 30)
+                memory_limit: Some(1 << 30),
+                deadline: ENGINE_DEADLINE_DEFAULT_SECONDS,
             }
         );
         let url = "df://127.0.0.1:50050";
         assert_eq!(
-            Engine::parse(Some(url), None).unwrap(),
-            Engine::Cluster { url: url.into() }
+            Engine::parse(Some(url), None, Some(90)).unwrap(),
+            Engine::Cluster {
+                url: url.into(),
+                deadline: 90
+            }
         );
         assert_eq!(
-            Engine::parse(Some(url), None).unwrap().recorded(),
+            Engine::parse(Some(url), None, None).unwrap().recorded(),
             Some(url.into())
         );
-        for (engine, limit, words) in [
-            (Some("spark://h:1"), None, "`--engine` must be"),
-            (Some("df://h"), None, "df://HOST:PORT"),
-            (Some("df://:7"), None, "df://HOST:PORT"),
+        let week = ENGINE_DEADLINE_MAX_SECONDS;
+        assert!(Engine::parse(Some(url), None, Some(week)).is_ok());
+        for (engine, limit, deadline, words) in [
+            (Some("spark://h:1"), None, None, "`--engine` must be"),
+            (Some("df://h"), None, None, "df://HOST:PORT"),
+            (Some("df://:7"), None, None, "df://HOST:PORT"),
             (
                 Some(url),
                 Some(1),
+                None,
                 "`--memory-limit` is for `--engine local`",
             ),
-            (None, Some(1), "`--memory-limit` needs `--engine local`"),
+            (
+                None,
+                Some(1),
+                None,
+                "`--memory-limit` needs `--engine local`",
+            ),
+            (None, None, Some(5), "`--engine-deadline` needs `--engine`"),
+            (
+                Some("local"),
+                None,
+                Some(0),
+                "must be 1 to 604800 seconds, not 0",
+            ),
+            (
+                Some(url),
+                None,
+                Some(week + 1),
+                "must be 1 to 604800 seconds",
+            ),
         ] {
-            let e = Engine::parse(engine, limit).unwrap_err();
+            let e = Engine::parse(engine, limit, deadline).unwrap_err();
             assert!(e.to_string().contains(words), "{e}");
             assert_eq!(e.code(), 2);
         }
@@ -359,9 +416,12 @@ mod tests {
                     seed: 1\ndetectors: [independent-gaussian]\nthreshold: max-f1\ncard:\n  \
                     title: t\n  owner: o\n  intended-use: u\n";
         let plan = crate::spec::parse(&path, spec.as_bytes().to_vec()).unwrap();
-        let e = Engine::Local { memory_limit: None }
-            .check(&plan)
-            .unwrap_err();
+        let e = Engine::Local {
+            memory_limit: None,
+            deadline: ENGINE_DEADLINE_DEFAULT_SECONDS,
+        }
+        .check(&plan)
+        .unwrap_err();
         assert!(e.to_string().contains("`cluster` feature"), "{e}");
         assert_eq!(e.code(), 2);
     }
