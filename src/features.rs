@@ -360,6 +360,28 @@ fn refuse_beyond_limit(
     Err(crate::rules::beyond_train_limit(data.at(name, &huge), why))
 }
 
+/// Every feature set of `plan` fitted without training rows, for readers
+/// that summarise the training rows instead of holding them (the streamed
+/// reader, an engine): they take only sets whose features have no fitted
+/// parameters, so an empty dataset with the plan's columns fits them all.
+pub fn fit_without_rows(plan: &crate::spec::Plan) -> Result<Vec<FittedFeatures>> {
+    let columns: Vec<String> = plan.columns.iter().map(|c| c.name.clone()).collect();
+    let empty = Dataset {
+        files: vec![],
+        x: ndarray::Array2::zeros((0, columns.len())),
+        columns,
+        is_anomaly: vec![],
+        origin: vec![],
+        ids: None,
+        text: std::collections::BTreeMap::new(),
+        dropped: crate::data::Dropped::default(),
+    };
+    plan.feature_sets
+        .iter()
+        .map(|s| fit(s, &empty, &[]))
+        .collect()
+}
+
 /// Fits every transform of a feature set on the training rows.
 pub fn fit(set: &FeatureSetPlan, data: &Dataset, train: &[RowId]) -> Result<FittedFeatures> {
     // One row-major pass proves every input within ±TRAIN_LIMIT; only then

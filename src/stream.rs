@@ -743,21 +743,7 @@ pub fn load(plan: &Plan, progress: &Progress, sample_limits: &[usize]) -> Result
     let source = &plan.sources[0];
     let paths = data::expand(source, plan)?;
     let columns: Vec<String> = plan.columns.iter().map(|c| c.name.clone()).collect();
-    let empty = Dataset {
-        files: vec![],
-        columns: columns.clone(),
-        x: Array2::zeros((0, columns.len())),
-        is_anomaly: vec![],
-        origin: vec![],
-        ids: None,
-        text: BTreeMap::new(),
-        dropped: Dropped::default(),
-    };
-    let fitted: Vec<FittedFeatures> = plan
-        .feature_sets
-        .iter()
-        .map(|s| features::fit(s, &empty, &[]))
-        .collect::<Result<_>>()?;
+    let fitted: Vec<FittedFeatures> = features::fit_without_rows(plan)?;
     let mut files = Vec::new();
     for p in &paths {
         files.push(SourceFile {

@@ -468,21 +468,8 @@ async fn ingest(
 
     let stage = progress.stage("summarising the training rows on the engine");
     check_train_limit(ctx, plan, &files).await?;
-    let empty = Dataset {
-        files: vec![],
-        columns: plan.columns.iter().map(|c| c.name.clone()).collect(),
-        x: Array2::zeros((0, nx)),
-        is_anomaly: vec![],
-        origin: vec![],
-        ids: None,
-        text: BTreeMap::new(),
-        dropped: Dropped::default(),
-    };
-    let fitted: Vec<FittedFeatures> = plan
-        .feature_sets
-        .iter()
-        .map(|s| features::fit(s, &empty, &[]))
-        .collect::<Result<_>>()?;
+    let fitted: Vec<FittedFeatures> = features::fit_without_rows(plan)?;
+    let columns: Vec<String> = plan.columns.iter().map(|c| c.name.clone()).collect();
     let mut moments = Vec::with_capacity(plan.feature_sets.len());
     for set in &plan.feature_sets {
         let cols: Vec<String> = set
@@ -497,8 +484,7 @@ async fn ingest(
     }
     let manifest = super::manifest(ctx, "assigned", Part::Train as i8).await?;
     let train_rows = counts[0].normal + counts[0].anomaly;
-    let (sample, samples) =
-        train_sample(ctx, nx, train_rows, empty.columns.clone(), sorted_on_engine).await?;
+    let (sample, samples) = train_sample(ctx, nx, train_rows, columns, sorted_on_engine).await?;
     drop(stage);
 
     let stage = progress.stage("reading the validation and test rows");

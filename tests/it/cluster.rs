@@ -356,8 +356,8 @@ fn anomark(dir: &Path, args: &[&str]) -> (i32, String) {
     )
 }
 
-/// A final run of `spec.yaml` in `dir` into `out`, with `extra` arguments.
-fn final_run(dir: &Path, extra: &[&str]) {
+/// The arguments of a final run of `spec.yaml` into `out`, with `extra`.
+fn final_run_args<'a>(extra: &[&'a str]) -> Vec<&'a str> {
     let mut args = vec![
         "run",
         "spec.yaml",
@@ -370,6 +370,12 @@ fn final_run(dir: &Path, extra: &[&str]) {
         "--quiet",
     ];
     args.extend(extra);
+    args
+}
+
+/// A final run of `spec.yaml` in `dir` into `out`, with `extra` arguments.
+fn final_run(dir: &Path, extra: &[&str]) {
+    let args = final_run_args(extra);
     let (code, stderr) = anomark(dir, &args);
     assert_eq!(code, 0, "anomark {}: {stderr}", args.join(" "));
 }
@@ -435,19 +441,7 @@ fn an_example_on_parquet_parts_gives_the_same_run_on_every_engine() {
     let outcome = ready.map(|_| {
         let mut child = Command::new(BIN)
             .current_dir(&remote)
-            .args([
-                "run",
-                "spec.yaml",
-                "--key",
-                "key.pem",
-                "--out",
-                "out",
-                "--no-wall-clock",
-                "--open-test",
-                "--quiet",
-                "--engine",
-                &url,
-            ])
+            .args(final_run_args(&["--engine", &url]))
             .stdout(Stdio::null())
             .stderr(Stdio::piped())
             .spawn()
