@@ -744,16 +744,10 @@ pub fn load(plan: &Plan, progress: &Progress, sample_limits: &[usize]) -> Result
     let paths = data::expand(source, plan)?;
     let columns: Vec<String> = plan.columns.iter().map(|c| c.name.clone()).collect();
     let fitted: Vec<FittedFeatures> = features::fit_without_rows(plan)?;
-    let mut files = Vec::new();
-    for p in &paths {
-        files.push(SourceFile {
-            path: p.clone(),
-            shown: data::shown(p, plan),
-            format: data::format_of(p, plan, source)?,
-            digest: hash::file(p)?,
-            rows: 0,
-        });
-    }
+    let mut files = paths
+        .iter()
+        .map(|p| SourceFile::hashed(p, plan, source))
+        .collect::<Result<Vec<_>>>()?;
     let acc = Arc::new(Mutex::new(Acc {
         file: 0,
         row: 0,

@@ -79,6 +79,21 @@ pub struct SourceFile {
     pub rows: usize,
 }
 
+impl SourceFile {
+    /// File `path` of source `s`, its bytes hashed, its rows not yet counted
+    /// (for readers that count them as they pass: the streamed reader, an
+    /// engine).
+    pub(crate) fn hashed(path: &Path, plan: &Plan, s: &SourcePlan) -> Result<SourceFile> {
+        Ok(SourceFile {
+            path: path.to_path_buf(),
+            shown: shown(path, plan),
+            format: format_of(path, plan, s)?,
+            digest: hash::file(path)?,
+            rows: 0,
+        })
+    }
+}
+
 /// Where a row came from.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct Origin {

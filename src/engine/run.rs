@@ -27,7 +27,7 @@ use datafusion::prelude::{CsvReadOptions, ParquetReadOptions, SessionConfig, Ses
 use ndarray::Array2;
 
 use super::{collect, engine_error, functions, sql_bytes, sql_text, version};
-use crate::audit::hash::{self, ContentHash};
+use crate::audit::hash::ContentHash;
 use crate::data::{self, Dataset, Dropped, Format, Origin, RowId, SourceFile, TextColumn};
 use crate::error::{Error, Result};
 use crate::features::{self, FittedFeatures};
@@ -262,16 +262,10 @@ async fn ingest(
         _ => None,
     };
     let stage = progress.stage("hashing the source files");
-    let mut files = Vec::with_capacity(paths.len());
-    for p in &paths {
-        files.push(SourceFile {
-            path: p.clone(),
-            shown: data::shown(p, plan),
-            format: data::format_of(p, plan, source)?,
-            digest: hash::file(p)?,
-            rows: 0,
-        });
-    }
+    let mut files = paths
+        .iter()
+        .map(|p| SourceFile::hashed(p, plan, source))
+        .collect::<Result<Vec<_>>>()?;
     drop(stage);
     let stage = progress.stage("registering the source files");
     let nx = plan.columns.len();
