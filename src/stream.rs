@@ -257,18 +257,7 @@ impl TrainRows {
             }
             g += k;
         }
-        let n = sample_x.len() / c.max(1);
-        let sample = Dataset {
-            files: vec![],
-            columns: columns.to_vec(),
-            x: Array2::from_shape_vec((n, c), sample_x)
-                .map_err(|e| Error::internal(format!("the sampled training rows: {e}")))?,
-            is_anomaly: vec![false; n],
-            origin: vec![Origin { file: 0, row: 0 }; n],
-            ids: None,
-            text: BTreeMap::new(),
-            dropped: Dropped::default(),
-        };
+        let sample = Dataset::sample_of(columns.to_vec(), sample_x)?;
         Ok((
             folds.into_iter().map(Fold::finish).collect(),
             sample,

@@ -79,6 +79,28 @@ pub struct SourceFile {
     pub rows: usize,
 }
 
+impl Dataset {
+    /// Sampled training rows held apart from their source (a reader that
+    /// summarises the training rows keeps a systematic sample of them for
+    /// the figures and the drift reference): `x` row-major with `columns`,
+    /// every row a normal one, no ids or text.
+    pub(crate) fn sample_of(columns: Vec<String>, x: Vec<f64>) -> Result<Dataset> {
+        let n = x.len() / columns.len().max(1);
+        let x = Array2::from_shape_vec((n, columns.len()), x)
+            .map_err(|e| Error::internal(format!("the sampled training rows: {e}")))?;
+        Ok(Dataset {
+            files: vec![],
+            columns,
+            x,
+            is_anomaly: vec![false; n],
+            origin: vec![Origin { file: 0, row: 0 }; n],
+            ids: None,
+            text: BTreeMap::new(),
+            dropped: Dropped::default(),
+        })
+    }
+}
+
 impl SourceFile {
     /// File `path` of source `s`, its bytes hashed, its rows not yet counted
     /// (for readers that count them as they pass: the streamed reader, an

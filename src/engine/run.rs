@@ -754,18 +754,7 @@ async fn train_sample(
         }
         x.extend_from_slice(values);
     }
-    let n = kept.len();
-    let sample = Dataset {
-        files: vec![],
-        columns,
-        x: Array2::from_shape_vec((n, nx), x)
-            .map_err(|e| Error::internal(format!("the sampled training rows: {e}")))?,
-        is_anomaly: vec![false; n],
-        origin: vec![Origin { file: 0, row: 0 }; n],
-        ids: None,
-        text: BTreeMap::new(),
-        dropped: Dropped::default(),
-    };
+    let sample = Dataset::sample_of(columns, x)?;
     Ok((sample, samples))
 }
 
