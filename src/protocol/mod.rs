@@ -176,7 +176,7 @@ impl Engine {
         }
         #[cfg(feature = "cluster")]
         {
-            crate::engine::run::check_scope(plan, matches!(self, Engine::Cluster { .. }))
+            crate::engine::run::check_scope(plan)
         }
         #[cfg(not(feature = "cluster"))]
         {
