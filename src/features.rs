@@ -105,13 +105,112 @@ fn always(_: f64) -> bool {
     true
 }
 
+/// The content columns an input reads: (a, b), with b = a for a plain column.
+fn input_columns(input: FeatureInput) -> (usize, usize) {
+    match input {
+        FeatureInput::Column(a) => (a, a),
+        FeatureInput::Ratio(a, b)
+        | FeatureInput::Difference(a, b)
+        | FeatureInput::Product(a, b) => (a, b),
+    }
+}
+
+/// The raw value of an input from the values `a` and `b` of its columns
+/// (`b` is not read for a plain column): the one definition of a ratio,
+/// difference and product, in memory, streamed and on an engine.
+pub fn combine(input: FeatureInput, a: f64, b: f64) -> f64 {
+    match input {
+        FeatureInput::Column(_) => a,
+        FeatureInput::Ratio(..) => a / b,
+        FeatureInput::Difference(..) => a - b,
+        FeatureInput::Product(..) => a * b,
+    }
+}
+
 /// The raw value of an input in one row of the content columns.
 fn input_value(input: FeatureInput, row: &[f64]) -> f64 {
+    let (a, b) = input_columns(input);
+    combine(input, row[a], row[b])
+}
+
+/// Why an input's value is refused when it is not finite.
+fn input_refusal(input: FeatureInput) -> &'static str {
     match input {
-        FeatureInput::Column(a) => row[a],
-        FeatureInput::Ratio(a, b) => row[a] / row[b],
-        FeatureInput::Difference(a, b) => row[a] - row[b],
-        FeatureInput::Product(a, b) => row[a] * row[b],
+        FeatureInput::Ratio(..) => "the ratio is not finite (a zero denominator)",
+        _ => "the derived value is not finite",
+    }
+}
+
+/// Why a value outside transform `kind`'s domain (`rule`) is refused.
+fn domain_refusal(kind: TransformKind, rule: &str) -> String {
+    format!(
+        "`{}` cannot take this value: {rule}",
+        crate::spec::transform_name(kind)
+    )
+}
+
+/// The first rule a feature's value on a training row breaks, in the order
+/// [`fit`] checks them; the order of the variants is that order.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
+pub enum TrainRefusal {
+    /// The input (a ratio, difference or product) is not finite.
+    Input,
+    /// Transform `k` (0-based, in order) cannot take the value.
+    Domain(usize),
+    /// The value after the transforms is beyond ±[`TRAIN_LIMIT`] (or NaN).
+    Limit,
+}
+
+impl FittedFeature {
+    /// The feature's value on a training row whose input columns hold `a`
+    /// and `b` (`b` is not read for a plain column), or the first rule it
+    /// breaks, checked as [`fit`] checks the training rows: the input
+    /// finite, each transform's domain, then the bound of the moments. The
+    /// arithmetic is that of [`FittedFeatures::apply`] (same operations,
+    /// same order), so the same row gives the same bits.
+    pub fn train_value(&self, a: f64, b: f64) -> std::result::Result<f64, TrainRefusal> {
+        let mut v = combine(self.input, a, b);
+        if !v.is_finite() {
+            return Err(TrainRefusal::Input);
+        }
+        for (k, t) in self.transforms.iter().enumerate() {
+            if let Some((_, ok)) = domain(t.kind()) {
+                if !ok(v) {
+                    return Err(TrainRefusal::Domain(k));
+                }
+            }
+            v = t.apply(v);
+        }
+        if v.is_nan() || v.abs() > TRAIN_LIMIT {
+            return Err(TrainRefusal::Limit);
+        }
+        Ok(v)
+    }
+
+    /// The refusal of training rows at `at` (the feature named as its
+    /// column) that break `refusal`, in [`fit`]'s words.
+    pub fn train_refusal(&self, refusal: TrainRefusal, at: crate::rules::At) -> Error {
+        let message = match refusal {
+            TrainRefusal::Input => input_refusal(self.input).to_string(),
+            TrainRefusal::Domain(k) => {
+                let kind = self
+                    .transforms
+                    .get(k)
+                    .map_or(TransformKind::Log, |t| t.kind());
+                domain_refusal(kind, domain(kind).map_or("", |d| d.0))
+            }
+            TrainRefusal::Limit => {
+                return crate::rules::beyond_train_limit(at, crate::rules::MOMENTS_OVERFLOW)
+            }
+        };
+        Error::Data {
+            path: at.path,
+            column: Some(at.column),
+            message,
+            lines: at.lines,
+            total: at.total,
+            unit: at.unit,
+        }
     }
 }
 
@@ -160,12 +259,8 @@ fn raw(data: &Dataset, input: FeatureInput, rows: &[RowId], name: &str) -> Resul
         .iter()
         .map(|r| {
             let i = r.0 as usize;
-            match input {
-                FeatureInput::Column(a) => x[(i, a)],
-                FeatureInput::Ratio(a, b) => x[(i, a)] / x[(i, b)],
-                FeatureInput::Difference(a, b) => x[(i, a)] - x[(i, b)],
-                FeatureInput::Product(a, b) => x[(i, a)] * x[(i, b)],
-            }
+            let (a, b) = input_columns(input);
+            combine(input, x[(i, a)], x[(i, b)])
         })
         .collect();
     let bad: Vec<RowId> = rows
@@ -175,11 +270,7 @@ fn raw(data: &Dataset, input: FeatureInput, rows: &[RowId], name: &str) -> Resul
         .map(|(r, _)| *r)
         .collect();
     if !bad.is_empty() {
-        let why = match input {
-            FeatureInput::Ratio(..) => "the ratio is not finite (a zero denominator)",
-            _ => "the derived value is not finite",
-        };
-        return Err(data.error(name, why.into(), &bad));
+        return Err(data.error(name, input_refusal(input).into(), &bad));
     }
     Ok(v)
 }
@@ -325,14 +416,7 @@ fn check_domain(
             .map(|(r, _)| *r)
             .collect();
         if !bad.is_empty() {
-            return Err(data.error(
-                name,
-                format!(
-                    "`{}` cannot take this value: {rule}",
-                    crate::spec::transform_name(kind)
-                ),
-                &bad,
-            ));
+            return Err(data.error(name, domain_refusal(kind, rule), &bad));
         }
     }
     Ok(())
@@ -493,14 +577,9 @@ impl FittedFeatures {
             })
         };
         for (j, f) in self.features.iter().enumerate() {
-            let x = |c: usize, i: usize| columns[c][i];
+            let (a, b) = input_columns(f.input);
             let mut v: Vec<f64> = (0..n)
-                .map(|i| match f.input {
-                    FeatureInput::Column(a) => x(a, i),
-                    FeatureInput::Ratio(a, b) => x(a, i) / x(b, i),
-                    FeatureInput::Difference(a, b) => x(a, i) - x(b, i),
-                    FeatureInput::Product(a, b) => x(a, i) * x(b, i),
-                })
+                .map(|i| combine(f.input, columns[a][i], columns[b][i]))
                 .collect();
             let why = match f.input {
                 FeatureInput::Ratio(..) => "the ratio is not finite (a zero denominator)",
@@ -511,10 +590,7 @@ impl FittedFeatures {
             }
             for step in &f.transforms {
                 if let Some((rule, ok)) = domain(step.kind()) {
-                    let reason = format!(
-                        "`{}` cannot take this value: {rule}",
-                        crate::spec::transform_name(step.kind())
-                    );
+                    let reason = domain_refusal(step.kind(), rule);
                     if let Some(e) = fault(f, reason, &v, &|x| !ok(x)) {
                         return Err(e);
                     }

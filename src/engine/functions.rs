@@ -1,7 +1,7 @@
 //! anomark's protocol as DataFusion functions: every number an engine
 //! computes is computed here by the library's own code (the row hash of
 //! `audit::hash`, the rank key of `split`, the bucketed moments of `moments` and manifests of `audit::hash`, the
-//! models of `detect`, the summary of `summary`), so each engine's result is
+//! features of `features`, the models of `detect`, the summary of `summary`), so each engine's result is
 //! the in-process result to the bit.
 //!
 //! Values that a function needs from the client (the seed and cut keys of a
@@ -50,6 +50,14 @@ pub const BUCKET_DIGEST: &str = "anomark_bucket_digest";
 pub const INTERVAL: &str = "anomark_interval";
 /// A score's `total_cmp` order as an integer: `anomark_order_key(score)`.
 pub const ORDER_KEY: &str = "anomark_order_key";
+
+/// A feature's value on a training row: `anomark_feature(feature, a, b)`,
+/// `features::FittedFeature::train_value` (NaN where a rule is broken;
+/// [`FEATURE_CHECK`] names the rule).
+pub const FEATURE: &str = "anomark_feature";
+/// The first rule a feature's value on a training row breaks:
+/// `anomark_feature_check(feature, a, b)`, a [`refusal_code`] (0: none).
+pub const FEATURE_CHECK: &str = "anomark_feature_check";
 
 /// The words an engine error carries when a process of another anomark
 /// version refused a task (the client looks for them to name the mismatch).
@@ -732,6 +740,125 @@ impl ScalarUDFImpl for OrderKey {
     }
 }
 
+/// A feature without fitted parameters as bytes for [`FEATURE`] and
+/// [`FEATURE_CHECK`]: its input's kind (0 column, 1 ratio, 2 difference,
+/// 3 product), then one byte per transform (0 `log`, 1 `log1p`, 2 `sqrt`);
+/// `None` for a transform with fitted parameters.
+pub fn feature_to_bytes(f: &crate::features::FittedFeature) -> Option<Vec<u8>> {
+    use crate::features::Fitted;
+    use crate::spec::FeatureInput;
+    let mut b = vec![match f.input {
+        FeatureInput::Column(_) => 0,
+        FeatureInput::Ratio(..) => 1,
+        FeatureInput::Difference(..) => 2,
+        FeatureInput::Product(..) => 3,
+    }];
+    for t in &f.transforms {
+        b.push(match t {
+            Fitted::Log => 0,
+            Fitted::Log1p => 1,
+            Fitted::Sqrt => 2,
+            _ => return None,
+        });
+    }
+    Some(b)
+}
+
+/// The feature of [`feature_to_bytes`] (its input reading columns 0 and 1:
+/// the function is handed their values).
+pub fn feature_from_bytes(b: &[u8]) -> Result<crate::features::FittedFeature> {
+    use crate::features::Fitted;
+    use crate::spec::FeatureInput;
+    let (&kind, rest) = b.split_first().ok_or_else(|| fail("an empty feature"))?;
+    let input = match kind {
+        0 => FeatureInput::Column(0),
+        1 => FeatureInput::Ratio(0, 1),
+        2 => FeatureInput::Difference(0, 1),
+        3 => FeatureInput::Product(0, 1),
+        k => return Err(fail(format!("a feature input of kind {k}"))),
+    };
+    let transforms = rest
+        .iter()
+        .map(|t| match t {
+            0 => Ok(Fitted::Log),
+            1 => Ok(Fitted::Log1p),
+            2 => Ok(Fitted::Sqrt),
+            k => Err(fail(format!("a transform of kind {k}"))),
+        })
+        .collect::<Result<Vec<_>>>()?;
+    Ok(crate::features::FittedFeature {
+        name: String::new(),
+        input,
+        from: String::new(),
+        transforms,
+    })
+}
+
+/// A training refusal as an integer ordered as the rules are checked: 1 the
+/// input, 2 + k transform k, 2 + the number of transforms the bound (0: none).
+pub fn refusal_code(r: Option<crate::features::TrainRefusal>, transforms: usize) -> i64 {
+    use crate::features::TrainRefusal;
+    match r {
+        None => 0,
+        Some(TrainRefusal::Input) => 1,
+        Some(TrainRefusal::Domain(k)) => 2 + k as i64,
+        Some(TrainRefusal::Limit) => 2 + transforms as i64,
+    }
+}
+
+/// The refusal of a [`refusal_code`] (`None` for 0 or a code out of range).
+pub fn refusal_of_code(code: i64, transforms: usize) -> Option<crate::features::TrainRefusal> {
+    use crate::features::TrainRefusal;
+    let t = transforms as i64;
+    match code {
+        1 => Some(TrainRefusal::Input),
+        c if (2..2 + t).contains(&c) => Some(TrainRefusal::Domain((c - 2) as usize)),
+        c if c == 2 + t => Some(TrainRefusal::Limit),
+        _ => None,
+    }
+}
+
+/// `anomark_feature` and `anomark_feature_check`: a feature's training
+/// value, or the code of the rule it breaks.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct FeatureUdf {
+    signature: Signature,
+    name: &'static str,
+}
+
+impl ScalarUDFImpl for FeatureUdf {
+    fn name(&self) -> &str {
+        self.name
+    }
+    fn signature(&self) -> &Signature {
+        &self.signature
+    }
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(if self.name == FEATURE {
+            DataType::Float64
+        } else {
+            DataType::Int64
+        })
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let f = feature_from_bytes(literal_bytes(&args.args[0], self.name)?)?;
+        let arrays = ColumnarValue::values_to_arrays(&args.args[1..])?;
+        let (a, b) = (f64s(&arrays[0], self.name)?, f64s(&arrays[1], self.name)?);
+        let values = a.values().iter().zip(b.values().iter());
+        if self.name == FEATURE {
+            let out: Float64Array = values
+                .map(|(&a, &b)| Some(f.train_value(a, b).unwrap_or(f64::NAN)))
+                .collect();
+            Ok(ColumnarValue::Array(Arc::new(out)))
+        } else {
+            let out: Int64Array = values
+                .map(|(&a, &b)| Some(refusal_code(f.train_value(a, b).err(), f.transforms.len())))
+                .collect();
+            Ok(ColumnarValue::Array(Arc::new(out)))
+        }
+    }
+}
+
 /// Every scalar function, the version guard reporting `version`.
 pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
     let any = || Signature::variadic_any(Volatility::Immutable);
@@ -743,6 +870,14 @@ pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
         Arc::new(ScalarUDF::from(ScoreUdf { signature: any() })),
         Arc::new(ScalarUDF::from(Interval { signature: any() })),
         Arc::new(ScalarUDF::from(OrderKey { signature: any() })),
+        Arc::new(ScalarUDF::from(FeatureUdf {
+            signature: any(),
+            name: FEATURE,
+        })),
+        Arc::new(ScalarUDF::from(FeatureUdf {
+            signature: any(),
+            name: FEATURE_CHECK,
+        })),
         Arc::new(ScalarUDF::from(VersionCheck {
             signature: Signature::variadic_any(Volatility::Volatile),
             version: version.to_string(),

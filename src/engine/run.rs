@@ -35,7 +35,7 @@ use crate::part::Part;
 use crate::progress::Progress;
 use crate::protocol::ingest::{Ingest, Ingested, Training, SAMPLE_LIMITS};
 use crate::protocol::Engine;
-use crate::spec::{DetectorKind, FeatureInput, MissingPolicy, Plan, SplitPlan};
+use crate::spec::{DetectorKind, FeatureInput, MissingPolicy, Plan, SplitPlan, TransformKind};
 use crate::split::{self, SplitReport};
 
 /// The ingest stage on an engine (`Engine::Local` or `Engine::Cluster`).
@@ -56,8 +56,10 @@ impl Ingest for OnEngine {
 /// Refuses, with the reason, a plan an engine does not run: anything but
 /// one labelled CSV or Parquet source (a file, a glob or a directory of
 /// parts), a protocol or from-column split (without groups), the
-/// independent and multivariate Gaussians, features that are plain
-/// columns, and `missing-values: refuse`. Reads no data, writes nothing.
+/// independent and multivariate Gaussians, features without fitted
+/// parameters (columns, ratios, differences and products, with `log`,
+/// `log1p` and `sqrt`), and `missing-values: refuse`. Reads no data, writes
+/// nothing.
 pub fn check_scope(plan: &Plan) -> Result<()> {
     let spec = plan.spec_path.display();
     let refuse = |field: &str, why: String| Error::Usage {
@@ -116,15 +118,23 @@ pub fn check_scope(plan: &Plan) -> Result<()> {
     }
     for set in &plan.feature_sets {
         for f in &set.features {
-            if !matches!(f.input, FeatureInput::Column(_)) || !f.transforms.is_empty() {
+            let fitted = f.transforms.iter().find(|t| {
+                !matches!(
+                    t,
+                    TransformKind::Log | TransformKind::Log1p | TransformKind::Sqrt
+                )
+            });
+            if let Some(&t) = fitted {
                 return Err(plan.error_at(
                     &f.at,
                     "data.features",
                     format!(
-                        "feature `{}` cannot run on an engine (`--engine`): an engine reads \
-                         features that are plain columns, without ratios, differences, products \
-                         or transforms",
-                        f.name
+                        "feature `{}` cannot run on an engine (`--engine`): its transform `{}` \
+                         has a parameter fitted on the training rows; an engine computes \
+                         columns, ratios, differences and products with the transforms \
+                         without fitted parameters (`log`, `log1p`, `sqrt`)",
+                        f.name,
+                        crate::spec::transform_name(t)
                     ),
                 ));
             }
@@ -462,21 +472,9 @@ async fn ingest(
     drop(stage);
 
     let stage = progress.stage("summarising the training rows on the engine");
-    check_train_limit(ctx, plan, &files).await?;
     let fitted: Vec<FittedFeatures> = features::fit_without_rows(plan)?;
     let columns: Vec<String> = plan.columns.iter().map(|c| c.name.clone()).collect();
-    let mut moments = Vec::with_capacity(plan.feature_sets.len());
-    for set in &plan.feature_sets {
-        let cols: Vec<String> = set
-            .features
-            .iter()
-            .map(|f| match f.input {
-                FeatureInput::Column(j) => format!("x{j}"),
-                _ => unreachable!("refused by the scope"),
-            })
-            .collect();
-        moments.push(super::moments(ctx, "assigned", Part::Train as i8, &cols).await?);
-    }
+    let moments = train_moments(ctx, &fitted, &files).await?;
     let manifest = super::manifest(ctx, "assigned", Part::Train as i8).await?;
     let train_rows = counts[0].normal + counts[0].anomaly;
     let (sample, samples) = train_sample(ctx, nx, train_rows, columns, sorted_on_engine).await?;
@@ -637,48 +635,134 @@ async fn check_rows(
     Ok(())
 }
 
-/// Refuses training values beyond ±`features::TRAIN_LIMIT`, as the fit
-/// from moments does for a streamed run (features are plain columns here).
-async fn check_train_limit(ctx: &SessionContext, plan: &Plan, files: &[SourceFile]) -> Result<()> {
-    let limit = format!("{:e}", features::TRAIN_LIMIT);
-    for set in &plan.feature_sets {
-        for f in &set.features {
-            let FeatureInput::Column(j) = f.input else {
-                continue;
-            };
-            let cond = format!("part = 0 AND abs(x{j}) > {limit}");
-            let rows = collect(
-                ctx,
-                "checking the training rows",
-                &format!(
-                    "SELECT COUNT(*) OVER () AS n, f, r FROM assigned WHERE {cond} \
-                     ORDER BY f, r LIMIT 5"
-                ),
-            )
-            .await?;
-            let Some(b) = rows.iter().find(|b| b.num_rows() > 0) else {
-                continue;
-            };
-            let (n, fi, r) = (i64s(b, 0)?, i64s(b, 1)?, i64s(b, 2)?);
-            let first = fi.value(0);
-            let file = &files[first as usize];
-            let lines = (0..b.num_rows())
-                .filter(|&i| fi.value(i) == first)
-                .map(|i| file.format.place(r.value(i) as u64))
-                .collect();
-            return Err(crate::rules::beyond_train_limit(
-                crate::rules::At {
-                    path: file.shown.clone().into(),
-                    column: f.name.clone(),
-                    lines,
-                    total: n.value(0) as usize,
-                    unit: file.format.unit(),
-                },
-                crate::rules::MOMENTS_OVERFLOW,
-            ));
+/// The SQL of feature `f` on the rows of `assigned`: a plain column as
+/// it is, anything else by [`functions::FEATURE`] (or `check`,
+/// [`functions::FEATURE_CHECK`]), the library's one definition.
+fn feature_sql(f: &features::FittedFeature, check: bool) -> Result<String> {
+    let bytes = functions::feature_to_bytes(f)
+        .ok_or_else(|| Error::internal("a fitted transform past the engine's scope"))?;
+    let (a, b) = match f.input {
+        FeatureInput::Column(a) => (a, a),
+        FeatureInput::Ratio(a, b)
+        | FeatureInput::Difference(a, b)
+        | FeatureInput::Product(a, b) => (a, b),
+    };
+    Ok(match (check, bytes.as_slice()) {
+        (false, [0]) => format!("x{a}"),
+        _ => format!(
+            "{}({}, x{a}, x{b})",
+            if check {
+                functions::FEATURE_CHECK
+            } else {
+                functions::FEATURE
+            },
+            sql_bytes(&bytes)
+        ),
+    })
+}
+
+/// The training moments of each feature set (`fitted`, without fitted
+/// parameters), computed on the engine from the features' values there
+/// ([`functions::FEATURE`]), after refusing, as the in-memory fit does and
+/// in its order (set by set, feature by feature, rule by rule), training
+/// rows whose feature is not finite, outside a transform's domain, or
+/// beyond ±`features::TRAIN_LIMIT`: one pass finds the first rule broken
+/// per feature, two more name the rows of the first feature refused.
+async fn train_moments(
+    ctx: &SessionContext,
+    fitted: &[FittedFeatures],
+    files: &[SourceFile],
+) -> Result<Vec<crate::moments::Moments>> {
+    let doing = "checking the training rows";
+    let all: Vec<&features::FittedFeature> = fitted.iter().flat_map(|s| &s.features).collect();
+    if !all.is_empty() {
+        let mins = all
+            .iter()
+            .enumerate()
+            .map(|(k, f)| Ok(format!("MIN(NULLIF({}, 0)) AS m{k}", feature_sql(f, true)?)))
+            .collect::<Result<Vec<_>>>()?;
+        let found = collect(
+            ctx,
+            doing,
+            &format!("SELECT {} FROM assigned WHERE part = 0", mins.join(", ")),
+        )
+        .await?;
+        if let Some(b) = found.iter().find(|b| b.num_rows() > 0) {
+            for (k, f) in all.iter().enumerate() {
+                let code = i64s(b, k)?;
+                if code.is_null(0) {
+                    continue;
+                }
+                let code = code.value(0);
+                let refusal = functions::refusal_of_code(code, f.transforms.len())
+                    .ok_or_else(|| Error::internal("a feature refusal code out of range"))?;
+                // As the in-memory fit names them: the training rows in
+                // (content hash, row) order, the first one's file, and its
+                // first rows so refused.
+                let cond = format!("part = 0 AND {} = {code}", feature_sql(f, true)?);
+                let first = collect(
+                    ctx,
+                    doing,
+                    &format!(
+                        "SELECT COUNT(*) OVER () AS n, f FROM assigned WHERE {cond} \
+                         ORDER BY h, f, r LIMIT 1"
+                    ),
+                )
+                .await?;
+                let b = first
+                    .iter()
+                    .find(|b| b.num_rows() > 0)
+                    .ok_or_else(|| Error::internal("a refused training row not found"))?;
+                let (n, fi) = (i64s(b, 0)?.value(0), i64s(b, 1)?.value(0));
+                let rows = collect(
+                    ctx,
+                    doing,
+                    &format!(
+                        "SELECT r FROM assigned WHERE {cond} AND f = {fi} ORDER BY h, r LIMIT 5"
+                    ),
+                )
+                .await?;
+                let file = &files[fi as usize];
+                let mut lines = Vec::new();
+                for b in &rows {
+                    let r = i64s(b, 0)?;
+                    lines.extend((0..b.num_rows()).map(|i| file.format.place(r.value(i) as u64)));
+                }
+                return Err(f.train_refusal(
+                    refusal,
+                    crate::rules::At {
+                        path: file.shown.clone().into(),
+                        column: f.name.clone(),
+                        lines,
+                        total: n as usize,
+                        unit: file.format.unit(),
+                    },
+                ));
+            }
         }
     }
-    Ok(())
+    let mut moments = Vec::with_capacity(fitted.len());
+    for (si, set) in fitted.iter().enumerate() {
+        let cols = set
+            .features
+            .iter()
+            .enumerate()
+            .map(|(j, f)| Ok(format!("{} AS g{j}", feature_sql(f, false)?)))
+            .collect::<Result<Vec<_>>>()?;
+        let view = format!("anomark_set{si}");
+        collect(
+            ctx,
+            "computing the features",
+            &format!(
+                "CREATE VIEW {view} AS SELECT h, part, {} FROM assigned",
+                cols.join(", ")
+            ),
+        )
+        .await?;
+        let names: Vec<String> = (0..set.features.len()).map(|j| format!("g{j}")).collect();
+        moments.push(super::moments(ctx, &view, Part::Train as i8, &names).await?);
+    }
+    Ok(moments)
 }
 
 /// The systematic samples of the training rows for each of

@@ -542,3 +542,141 @@ fn a_deadline_is_bounded_and_defaults_to_an_hour() {
         assert!(e.to_string().contains("1 to 604800 seconds"), "{e}");
     }
 }
+
+/// `anomark_feature` gives the bits of `FittedFeatures::apply` for every
+/// input kind and transform without fitted parameters, in several
+/// partitions, and `anomark_feature_check` the first rule a training value
+/// breaks, in `features::fit`'s order (input, each transform's domain, the
+/// bound).
+#[test]
+fn features_on_the_engine_equal_the_library() {
+    use crate::features::{Fitted, FittedFeature, FittedFeatures, TrainRefusal};
+    use crate::spec::FeatureInput;
+    let (mut x, a) = rows(3_000, 11);
+    // Zeros and negatives: refused ratios, logs and square roots.
+    for i in (0..3_000).step_by(97) {
+        x[[i, 1]] = 0.0;
+    }
+    for i in (5..3_000).step_by(89) {
+        x[[i, 0]] = -x[[i, 0]] - 1.5;
+    }
+    let feature = |input, transforms| FittedFeature {
+        name: "f".into(),
+        input,
+        from: String::new(),
+        transforms,
+    };
+    let cases = [
+        feature(FeatureInput::Column(0), vec![]),
+        feature(FeatureInput::Column(2), vec![Fitted::Log]),
+        feature(FeatureInput::Ratio(0, 1), vec![Fitted::Log1p]),
+        feature(
+            FeatureInput::Difference(2, 0),
+            vec![Fitted::Sqrt, Fitted::Log],
+        ),
+        feature(FeatureInput::Product(0, 2), vec![]),
+        feature(FeatureInput::Ratio(2, 1), vec![Fitted::Sqrt]),
+    ];
+    let data = Dataset::sample_of(
+        vec!["x0".into(), "x1".into(), "x2".into()],
+        x.iter().copied().collect(),
+    )
+    .unwrap();
+    let rt = runtime();
+    for partitions in [1, 3] {
+        let ctx = rt.block_on(session(&x, &a, partitions, 257));
+        for f in &cases {
+            let (p, q) = match f.input {
+                FeatureInput::Column(p) => (p, p),
+                FeatureInput::Ratio(p, q)
+                | FeatureInput::Difference(p, q)
+                | FeatureInput::Product(p, q) => (p, q),
+            };
+            let lit = sql_bytes(&functions::feature_to_bytes(f).unwrap());
+            let got = rt.block_on(read(
+                &ctx,
+                &format!(
+                    "SELECT x{p} AS u, x{q} AS w, {}({lit}, x{p}, x{q}), {}({lit}, x{p}, x{q}) FROM data",
+                    functions::FEATURE,
+                    functions::FEATURE_CHECK
+                ),
+            ));
+            let mut seen = 0;
+            for b in &got {
+                let col = |j| column::<Float64Array>(b, j).unwrap().clone();
+                let (xa, xb, v) = (col(0), col(1), col(2));
+                let code = column::<datafusion::arrow::array::Int64Array>(b, 3).unwrap();
+                for i in 0..b.num_rows() {
+                    let (va, vb) = (xa.value(i), xb.value(i));
+                    // The library on the same row: the fit's checks, and
+                    // `apply`'s value where they pass.
+                    let want = f.train_value(va, vb);
+                    let c = functions::refusal_code(want.err(), f.transforms.len());
+                    assert_eq!(code.value(i), c);
+                    assert_eq!(
+                        functions::refusal_of_code(c, f.transforms.len()),
+                        want.err()
+                    );
+                    match want {
+                        Ok(w) => {
+                            assert_eq!(v.value(i).to_bits(), w.to_bits());
+                            let mut row = vec![0.0; 3];
+                            row[p] = va;
+                            row[q] = vb;
+                            let one = Dataset::sample_of(
+                                vec!["x0".into(), "x1".into(), "x2".into()],
+                                row,
+                            )
+                            .unwrap();
+                            let set = FittedFeatures {
+                                set: "s".into(),
+                                features: vec![f.clone()],
+                            };
+                            let m = set.apply(&one, &[crate::data::RowId(0)]).unwrap();
+                            assert_eq!(m[(0, 0)].to_bits(), w.to_bits());
+                        }
+                        Err(r) => {
+                            assert!(v.value(i).is_nan());
+                            if r == TrainRefusal::Input {
+                                assert!(!matches!(f.input, FeatureInput::Column(_)));
+                            }
+                        }
+                    }
+                    seen += 1;
+                }
+            }
+            assert_eq!(seen, 3_000);
+        }
+    }
+    // Some rows of each kind of refusal occur above.
+    let refusals: Vec<Option<TrainRefusal>> = (0..3_000)
+        .flat_map(|i| {
+            let row = data.x.row(i).to_vec();
+            cases
+                .iter()
+                .map(move |f| {
+                    let (p, q) = match f.input {
+                        FeatureInput::Column(p) => (p, p),
+                        FeatureInput::Ratio(p, q)
+                        | FeatureInput::Difference(p, q)
+                        | FeatureInput::Product(p, q) => (p, q),
+                    };
+                    f.train_value(row[p], row[q]).err()
+                })
+                .collect::<Vec<_>>()
+        })
+        .collect();
+    for r in [
+        TrainRefusal::Input,
+        TrainRefusal::Domain(0),
+        TrainRefusal::Domain(1),
+    ] {
+        assert!(refusals.contains(&Some(r)), "{r:?}");
+    }
+    // Features with fitted parameters have no bytes.
+    assert!(functions::feature_to_bytes(&feature(
+        FeatureInput::Column(0),
+        vec![Fitted::BoxCox { lambda: 0.5 }]
+    ))
+    .is_none());
+}

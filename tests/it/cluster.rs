@@ -347,6 +347,26 @@ fn pump_housing_on_parts(dir: &Path, files: usize) -> Vec<usize> {
     written
 }
 
+/// The example's spec in `dir` with a second feature set of features
+/// without fitted parameters: a ratio, a difference and a product, and
+/// `log`, `sqrt` and `log1p` on them and on a column.
+fn with_derived_features(dir: &Path) {
+    let path = dir.join("spec.yaml");
+    let spec = std::fs::read_to_string(&path).unwrap();
+    let plain = "  features:\n    - shot_pressure_mpa\n    - die_temp_c\n    - fill_time_ms\n    \
+                 - cooling_time_s\n    - vacuum_mbar\n    - wall_thickness_mm\n";
+    assert!(spec.contains(plain), "{spec}");
+    let sets = "  feature-sets:\n    - name: readings\n      features: [shot_pressure_mpa, \
+                die_temp_c, fill_time_ms, cooling_time_s, vacuum_mbar, wall_thickness_mm]\n    \
+                - name: derived\n      features:\n        - shot_pressure_mpa\n        \
+                - {ratio: [fill_time_ms, die_temp_c], name: fill_per_degree, transform: log}\n        \
+                - {difference: [die_temp_c, shot_pressure_mpa], name: temp_less_pressure}\n        \
+                - {product: [cooling_time_s, wall_thickness_mm], name: cooling_by_wall, \
+                transform: [sqrt, log1p]}\n        \
+                - {column: vacuum_mbar, transform: log}\n";
+    std::fs::write(&path, spec.replace(plain, sets)).unwrap();
+}
+
 /// Runs `anomark ARGS` in `dir`, returning (exit code, stderr).
 fn anomark(dir: &Path, args: &[&str]) -> (i32, String) {
     let out = Command::new(BIN)
@@ -408,7 +428,9 @@ fn run_files(dir: &Path) -> std::collections::BTreeMap<String, Vec<u8>> {
 /// (under a memory limit) and on a cluster of a scheduler and two executors
 /// give the same run directory, byte for byte, but for run.json's one
 /// `engine` field; each engine reads every row of every part once; an
-/// engine run verifies by recomputation in memory.
+/// engine run verifies by recomputation in memory. The spec has the
+/// example's feature set and one of ratios, differences, products and
+/// transforms without fitted parameters, computed on the engine.
 #[test]
 fn an_example_on_parquet_parts_gives_the_same_run_on_every_engine() {
     let top = tempfile::tempdir().unwrap();
@@ -418,6 +440,7 @@ fn an_example_on_parquet_parts_gives_the_same_run_on_every_engine() {
         let d = top.path().join(name);
         std::fs::create_dir_all(&d).unwrap();
         written = pump_housing_on_parts(&d, 3);
+        with_derived_features(&d);
         let (code, stderr) = anomark(
             &d,
             &["keygen", "--private", "key.pem", "--public", "key.pub.pem"],
@@ -564,9 +587,23 @@ fn specs_beyond_an_engines_scope_are_refused_with_nothing_written() {
         (
             spec.replace(
                 "    - vacuum_mbar\n",
-                "    - {column: vacuum_mbar, transform: log}\n",
+                "    - {column: vacuum_mbar, transform: [log, box-cox]}\n",
             ),
-            vec!["cannot run on an engine", "vacuum_mbar", "transforms"],
+            vec![
+                "cannot run on an engine",
+                "vacuum_mbar",
+                "`box-cox` has a parameter fitted on the training rows",
+            ],
+        ),
+        (
+            spec.replace(
+                "    - vacuum_mbar\n",
+                "    - {ratio: [vacuum_mbar, die_temp_c], transform: standardise}\n",
+            ),
+            vec![
+                "cannot run on an engine",
+                "`standardise` has a parameter fitted",
+            ],
         ),
         (
             spec.replace("  features:\n", "  missing-values: drop-row\n  features:\n"),
@@ -609,5 +646,88 @@ fn specs_beyond_an_engines_scope_are_refused_with_nothing_written() {
         assert_eq!(code, 2, "{stderr}");
         assert!(stderr.contains("--"), "{stderr}");
         assert!(!dir.path().join("out").exists());
+    }
+}
+
+/// A training value a feature cannot take is refused on an engine with the
+/// in-memory run's error and exit code (the feature, the rule, the file and
+/// its first rows), nothing written: a `log` after a `sqrt` of a product
+/// that is zero on every row, and a ratio over a zero denominator.
+#[test]
+fn a_refused_training_feature_is_named_as_in_memory() {
+    let dir = tempfile::tempdir().unwrap();
+    pump_housing_on_parts(dir.path(), 2);
+    let (code, stderr) = anomark(
+        dir.path(),
+        &["keygen", "--private", "key.pem", "--public", "key.pub.pem"],
+    );
+    assert_eq!(code, 0, "{stderr}");
+    // The parts again with a column `none_c`, zero on every row.
+    let zero = dir.path().join("zero");
+    std::fs::create_dir_all(&zero).unwrap();
+    write_with_zero_column(&dir.path().join("parts"), &zero);
+    let spec = std::fs::read_to_string(dir.path().join("spec.yaml")).unwrap();
+    for (feature, words) in [
+        (
+            "{product: [die_temp_c, none_c], name: none, transform: [sqrt, log]}",
+            "`log` cannot take this value",
+        ),
+        (
+            "{ratio: [die_temp_c, none_c], name: per_none}",
+            "the ratio is not finite",
+        ),
+    ] {
+        let text = spec.replace("path: parts", "path: zero").replace(
+            "    - vacuum_mbar\n",
+            &format!("    - vacuum_mbar\n    - {feature}\n"),
+        );
+        std::fs::write(dir.path().join("refused.yaml"), &text).unwrap();
+        let run = |extra: &[&str]| {
+            let mut args = vec!["run", "refused.yaml", "--key", "key.pem", "--out", "out"];
+            args.extend(extra);
+            let (code, stderr) = anomark(dir.path(), &args);
+            assert!(!dir.path().join("out").exists(), "{stderr}");
+            (code, stderr)
+        };
+        let (code, memory) = run(&[]);
+        assert_eq!(code, 3, "{memory}");
+        assert!(memory.contains(words), "{memory}");
+        let (code, local) = run(&["--engine", "local"]);
+        assert_eq!(code, 3, "{local}");
+        assert_eq!(local, memory);
+    }
+}
+
+/// The Parquet parts of `from` written to `to` with one more column,
+/// `none_c`, zero on every row.
+fn write_with_zero_column(from: &Path, to: &Path) {
+    use datafusion::parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
+    for e in std::fs::read_dir(from).unwrap() {
+        let p = e.unwrap().path();
+        let reader = ParquetRecordBatchReaderBuilder::try_new(std::fs::File::open(&p).unwrap())
+            .unwrap()
+            .build()
+            .unwrap();
+        let mut writer: Option<ArrowWriter<std::fs::File>> = None;
+        for batch in reader {
+            let batch = batch.unwrap();
+            let mut fields: Vec<Field> = batch
+                .schema()
+                .fields()
+                .iter()
+                .map(|f| f.as_ref().clone())
+                .collect();
+            fields.push(Field::new("none_c", DataType::Float64, false));
+            let schema = Arc::new(Schema::new(fields));
+            let mut cols = batch.columns().to_vec();
+            cols.push(Arc::new(Float64Array::from(vec![0.0; batch.num_rows()])));
+            let out = RecordBatch::try_new(schema.clone(), cols).unwrap();
+            let w = writer.get_or_insert_with(|| {
+                let file = std::fs::File::create(to.join(p.file_name().unwrap())).unwrap();
+                ArrowWriter::try_new(file, schema, None).unwrap()
+            });
+            w.write(&out).unwrap();
+        }
+        writer.unwrap().close().unwrap();
     }
 }
