@@ -193,7 +193,7 @@ fn sync_all_at_once<D: Send>(
                     scope.spawn(move || {
                         file.sync_all()
                             .map(|()| (name.clone(), digest))
-                            .map_err(|e| Error::io(&dir.join(&name), "writing", e))
+                            .map_err(|e| Error::io(dir.join(&name), "writing", e))
                     })
                 })
                 .collect();
