@@ -875,15 +875,13 @@ fn read_csv_polars(
         let mut col = Vec::with_capacity(values.len());
         let mut bad = Vec::new();
         for (i, v) in values.into_iter().enumerate() {
-            match v.as_deref().map(str::trim) {
-                None | Some("") => col.push(None),
-                Some(s) => match s.parse::<f64>() {
-                    Ok(v) => col.push(Some(v)),
-                    Err(_) => {
-                        bad.push((i, s.to_string()));
-                        col.push(Some(f64::NAN));
-                    }
-                },
+            match v.as_deref().map(text_number) {
+                None | Some(Ok(None)) => col.push(None),
+                Some(Ok(Some(v))) => col.push(Some(v)),
+                Some(Err(s)) => {
+                    bad.push((i, s.to_string()));
+                    col.push(Some(f64::NAN));
+                }
             }
         }
         frame.numeric.push(col);
@@ -893,6 +891,19 @@ fn read_csv_polars(
         frame.text.push(text_values(&df, path, &c.name)?);
     }
     Ok(frame)
+}
+
+/// A feature value read as text: `Ok(None)` when empty (missing, once
+/// trimmed), `Ok(Some(v))` a number (Rust's correctly rounded `f64` parse of
+/// the trimmed text; `NaN` and `inf` spelt out parse, and are then refused
+/// as missing and infinite), `Err(trimmed)` not a number. The one
+/// definition for text read in process and on an engine.
+pub fn text_number(s: &str) -> std::result::Result<Option<f64>, &str> {
+    let s = s.trim();
+    if s.is_empty() {
+        return Ok(None);
+    }
+    s.parse::<f64>().map(Some).map_err(|_| s)
 }
 
 fn read_parquet(

@@ -59,6 +59,14 @@ pub const FEATURE: &str = "anomark_feature";
 /// `anomark_feature_check(feature, a, b)`, a [`refusal_code`] (0: none).
 pub const FEATURE_CHECK: &str = "anomark_feature_check";
 
+/// A feature value read as text as a number: `anomark_number(text)`,
+/// `data::text_number` (null when empty; NaN when not a number, which
+/// [`NOT_NUMBER`] finds).
+pub const NUMBER: &str = "anomark_number";
+/// True for a text value that is not a number: `anomark_not_number(text)`,
+/// `data::text_number` (false for a null or empty value).
+pub const NOT_NUMBER: &str = "anomark_not_number";
+
 /// The words an engine error carries when a process of another anomark
 /// version refused a task (the client looks for them to name the mismatch).
 pub const VERSION_MISMATCH: &str = "anomark version mismatch";
@@ -859,6 +867,52 @@ impl ScalarUDFImpl for FeatureUdf {
     }
 }
 
+/// `anomark_number` and `anomark_not_number`: text values read by the
+/// library's number parser.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct NumberUdf {
+    signature: Signature,
+    name: &'static str,
+}
+
+impl ScalarUDFImpl for NumberUdf {
+    fn name(&self) -> &str {
+        self.name
+    }
+    fn signature(&self) -> &Signature {
+        &self.signature
+    }
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(if self.name == NUMBER {
+            DataType::Float64
+        } else {
+            DataType::Boolean
+        })
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let arrays = ColumnarValue::values_to_arrays(&args.args)?;
+        let text = datafusion::arrow::compute::cast(&arrays[0], &DataType::Utf8)?;
+        let text = text
+            .as_any()
+            .downcast_ref::<datafusion::arrow::array::StringArray>()
+            .ok_or_else(|| fail(format!("{}: want text", self.name)))?;
+        let parsed = text.iter().map(|v| v.map(crate::data::text_number));
+        if self.name == NUMBER {
+            let out: Float64Array = parsed
+                .map(|v| match v {
+                    None | Some(Ok(None)) => None,
+                    Some(Ok(Some(x))) => Some(x),
+                    Some(Err(_)) => Some(f64::NAN),
+                })
+                .collect();
+            Ok(ColumnarValue::Array(Arc::new(out)))
+        } else {
+            let out: BooleanArray = parsed.map(|v| Some(matches!(v, Some(Err(_))))).collect();
+            Ok(ColumnarValue::Array(Arc::new(out)))
+        }
+    }
+}
+
 /// Every scalar function, the version guard reporting `version`.
 pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
     let any = || Signature::variadic_any(Volatility::Immutable);
@@ -873,6 +927,14 @@ pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
         Arc::new(ScalarUDF::from(FeatureUdf {
             signature: any(),
             name: FEATURE,
+        })),
+        Arc::new(ScalarUDF::from(NumberUdf {
+            signature: any(),
+            name: NUMBER,
+        })),
+        Arc::new(ScalarUDF::from(NumberUdf {
+            signature: any(),
+            name: NOT_NUMBER,
         })),
         Arc::new(ScalarUDF::from(FeatureUdf {
             signature: any(),

@@ -310,21 +310,12 @@ async fn ingest(
             .unwrap_or_default();
         let registered = match file.format {
             Format::Csv => {
-                // Features as numbers, every other column as text.
+                // Every column as text: features are read by the library's
+                // number parser (`functions::NUMBER`), and a value that is
+                // not a number is refused as in process (`check_rows`).
                 let fields: Vec<Field> = names
                     .iter()
-                    .map(|n| {
-                        let numeric = plan.columns.iter().any(|c| &c.name == n);
-                        Field::new(
-                            n,
-                            if numeric {
-                                DataType::Float64
-                            } else {
-                                DataType::Utf8
-                            },
-                            true,
-                        )
-                    })
+                    .map(|n| Field::new(n, DataType::Utf8, true))
                     .collect();
                 let schema = Schema::new(fields);
                 ctx.register_csv(
@@ -359,7 +350,16 @@ async fn ingest(
             cols.push(format!("CAST({} AS VARCHAR) AS sp", q(&c.name)));
         }
         for (j, c) in plan.columns.iter().enumerate() {
-            cols.push(format!("CAST({} AS DOUBLE) AS x{j}", q(&c.name)));
+            cols.push(match file.format {
+                Format::Csv => format!("{}({}) AS x{j}", functions::NUMBER, q(&c.name)),
+                Format::Parquet => format!("CAST({} AS DOUBLE) AS x{j}", q(&c.name)),
+            });
+        }
+        for (j, c) in plan.columns.iter().enumerate() {
+            cols.push(match file.format {
+                Format::Csv => format!("CAST({} AS VARCHAR) AS t{j}", q(&c.name)),
+                Format::Parquet => format!("CAST(NULL AS VARCHAR) AS t{j}"),
+            });
         }
         selects.push(format!("SELECT {} FROM {table}", cols.join(", ")));
     }
@@ -528,7 +528,16 @@ async fn check_rows(
 ) -> Result<()> {
     let label = plan.label.as_ref().expect("checked by the scope");
     let (normal, anomaly) = (sql_text(&label.normal), sql_text(&label.anomaly));
-    let mut rules = vec![Rule {
+    // A CSV feature value that is not a number first, as in process.
+    let mut rules: Vec<Rule> = (0..plan.columns.len())
+        .map(|j| Rule {
+            cond: format!("{}(t{j})", functions::NOT_NUMBER),
+            column: plan.columns[j].name.clone(),
+            value: Some(format!("COALESCE(t{j}, '')")),
+            refusal: |at, v, _| crate::rules::not_a_number(at, Some(v.trim())),
+        })
+        .collect();
+    rules.push(Rule {
         cond: format!("lab IS NULL OR (lab <> {normal} AND lab <> {anomaly})"),
         column: label.column.name.clone(),
         value: Some("COALESCE(lab, '')".into()),
@@ -536,7 +545,7 @@ async fn check_rows(
             let l = plan.label.as_ref().expect("checked by the scope");
             crate::rules::undeclared_label(at, v, &l.normal, &l.anomaly)
         },
-    }];
+    });
     if let Some(c) = &plan.id_column {
         rules.push(Rule {
             cond: "id IS NULL OR id = ''".into(),

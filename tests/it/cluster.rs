@@ -731,3 +731,101 @@ fn write_with_zero_column(from: &Path, to: &Path) {
         writer.unwrap().close().unwrap();
     }
 }
+
+/// The pump-housing example on its CSV (copied into `dir`, the spec
+/// reading it, 50 bootstrap replicates, no output or ledger of its own),
+/// with a key pair; `edit` changes the CSV's text.
+fn pump_housing_csv(dir: &Path, edit: impl Fn(String) -> String) {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let demo = std::fs::read_to_string(root.join("demo-data/pump-housings.csv")).unwrap();
+    std::fs::write(dir.join("housings.csv"), edit(demo)).unwrap();
+    let example =
+        std::fs::read_to_string(root.join("specs-examples/pump-housing-leak-screen.yaml")).unwrap();
+    let spec = example
+        .replace("../demo-data/pump-housings.csv", "housings.csv")
+        .lines()
+        .filter(|l| !l.starts_with("output:") && !l.starts_with("ledger:"))
+        .collect::<Vec<_>>()
+        .join("\n")
+        + "\nbootstrap:\n  replicates: 50\n";
+    std::fs::write(dir.join("spec.yaml"), spec).unwrap();
+    let (code, stderr) = anomark(
+        dir,
+        &["keygen", "--private", "key.pem", "--public", "key.pub.pem"],
+    );
+    assert_eq!(code, 0, "{stderr}");
+}
+
+/// A CSV source on `--engine local`: its numbers read by the library's
+/// parser give the in-memory run byte for byte; a value that is not a
+/// number is refused with the in-memory run's error and exit code (3, the
+/// file, the column, the value and its lines), nothing written.
+#[test]
+fn a_csv_on_an_engine_reads_numbers_as_in_memory() {
+    let top = tempfile::tempdir().unwrap();
+    let (memory, local) = (top.path().join("memory"), top.path().join("local"));
+    for d in [&memory, &local] {
+        std::fs::create_dir_all(d).unwrap();
+        pump_housing_csv(d, |t| t);
+    }
+    for f in ["key.pem", "key.pub.pem"] {
+        std::fs::copy(memory.join(f), local.join(f)).unwrap();
+    }
+    final_run(&memory, &[]);
+    final_run(&local, &["--engine", "local"]);
+    let want = run_files(&memory.join("out"));
+    let mut got = run_files(&local.join("out"));
+    let record = String::from_utf8(got.remove("run.json").unwrap()).unwrap();
+    assert_eq!(
+        record.replacen("  \"engine\": \"local\",\n", "", 1),
+        String::from_utf8(want["run.json"].clone()).unwrap()
+    );
+    for (name, bytes) in &want {
+        if name != "run.json" {
+            assert!(got.get(name) == Some(bytes), "{name} differs");
+        }
+    }
+
+    // Two values of `die_temp_c` that are not numbers (lines 5 and 9; one
+    // with spaces around it, shown trimmed), and one in another column
+    // later (line 12): the first column's are named.
+    let bad = top.path().join("bad");
+    std::fs::create_dir_all(&bad).unwrap();
+    pump_housing_csv(&bad, |t| {
+        t.lines()
+            .enumerate()
+            .map(|(i, l)| {
+                let mut cells: Vec<String> = l.split(',').map(str::to_string).collect();
+                match i + 1 {
+                    5 => cells[2] = " 2o8.1 ".into(),
+                    9 => cells[2] = "n/a".into(),
+                    12 => cells[5] = "fifty".into(),
+                    _ => {}
+                }
+                cells.join(",") + "\n"
+            })
+            .collect()
+    });
+    let run = |extra: &[&str]| {
+        let mut args = vec!["run", "spec.yaml", "--key", "key.pem", "--out", "out"];
+        args.extend(extra);
+        let (code, stderr) = anomark(&bad, &args);
+        assert!(!bad.join("out").exists(), "{stderr}");
+        (code, stderr)
+    };
+    let (code, in_memory) = run(&[]);
+    assert_eq!(code, 3, "{in_memory}");
+    for w in [
+        "housings.csv",
+        "die_temp_c",
+        "`2o8.1`",
+        "not a number",
+        "5",
+        "9",
+    ] {
+        assert!(in_memory.contains(w), "`{w}` not in {in_memory}");
+    }
+    let (code, engine) = run(&["--engine", "local"]);
+    assert_eq!(code, 3, "{engine}");
+    assert_eq!(engine, in_memory);
+}
