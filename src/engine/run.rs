@@ -100,6 +100,15 @@ pub fn check_scope(plan: &Plan, cluster: bool) -> Result<()> {
                 .into(),
         ));
     }
+    if let crate::spec::ThresholdPolicy::Conformal { .. } = plan.threshold {
+        return Err(refuse(
+            "threshold",
+            "the conformal policy takes τ from every candidate's sorted validation-normal \
+             scores, which an engine does not send to the client (it sends summaries); \
+             choose another policy, or run in process"
+                .into(),
+        ));
+    }
     for d in &plan.detectors {
         if !matches!(
             d,

@@ -25,6 +25,7 @@ use crate::spec::{self, Plan};
 
 pub mod choose;
 pub mod fit;
+pub mod held;
 pub mod ingest;
 pub mod open;
 pub mod recompute;

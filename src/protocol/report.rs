@@ -6,6 +6,7 @@
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
+use super::held::Held;
 use super::ingest::{self, Rows};
 use super::open::Opened;
 use super::{choose, fit, wording};
@@ -169,15 +170,22 @@ pub(crate) fn record(
             chosen: best.name.clone(),
         },
         candidates: candidate_records,
-        calibration: Some(record::CalibrationRecord {
-            candidate: best.name.clone(),
-            validation_normals: val_y.iter().filter(|&&y| !y).count(),
-            sorted_scores: crate::conformal::Calibration::of_normals(
-                &best.validation_scores,
-                val_y,
-            )
-            .sorted()
-            .to_vec(),
+        calibration: Some(match &rows.held {
+            Held::Rows => record::CalibrationRecord {
+                candidate: best.name.clone(),
+                validation_normals: val_y.iter().filter(|&&y| !y).count(),
+                sorted_scores: crate::conformal::Calibration::of_normals(
+                    &best.validation_scores,
+                    val_y,
+                )
+                .sorted()
+                .to_vec(),
+            },
+            Held::Engine(e) => record::CalibrationRecord {
+                candidate: best.name.clone(),
+                validation_normals: splits.counts[Part::Validation as usize].normal,
+                sorted_scores: e.sorted_normals(Part::Validation, best.set, best.model.as_ref())?,
+            },
         }),
         drift_reference: Some({
             let (shown, sampled, stride) = rows.train_sample(ingest::DRIFT);
@@ -197,8 +205,8 @@ pub(crate) fn record(
 /// The run directory's files that need no record: scores.csv and the
 /// figures, made while the bootstrap intervals are still being computed.
 pub(crate) struct Artifacts {
-    /// scores.csv, in parts.
-    scores: Vec<Vec<u8>>,
+    /// scores.csv, in parts (none when the rows are on an engine).
+    scores: Option<Vec<Vec<u8>>>,
     /// The validation figures.
     validation: Vec<plots::Plot>,
     /// The test figures (none while the test split stays sealed).
@@ -222,12 +230,27 @@ pub(crate) fn artifacts(plan: &Plan, rows: &Rows, opened: &Opened) -> Result<Art
     // made side by side on all cores, each with the same bytes as alone.
     let score_figures = || -> Result<(Vec<plots::Plot>, Vec<plots::Plot>)> {
         let _t = crate::progress::part("score figures");
+        let tau = c.choice.tau;
+        // What the figures read of a split's scores: from the scores, or
+        // asked of the engine that holds the rows.
+        let facts =
+            |part: Part, scores: &[f64], labels: &[bool], summary: &crate::summary::Summary| {
+                match &rows.held {
+                    Held::Rows => Ok(plots::ScoreFacts::of(scores, labels, tau)),
+                    Held::Engine(e) => e.facts(part, c.set, c.model.as_ref(), summary, tau),
+                }
+            };
         let val_cuts = crate::summary::curve(&c.validation_summary);
-        let val = plots::SplitScores {
+        let val_facts = facts(
+            Part::Validation,
+            &c.validation_scores,
+            val_y,
+            &c.validation_summary,
+        )?;
+        let val = plots::SplitFigures {
             split: Part::Validation.name(),
-            scores: &c.validation_scores,
-            is_anomaly: val_y,
-            tau: c.choice.tau,
+            facts: &val_facts,
+            tau,
             cuts: &val_cuts,
         };
         let validation = vec![
@@ -239,11 +262,16 @@ pub(crate) fn artifacts(plan: &Plan, rows: &Rows, opened: &Opened) -> Result<Art
         let mut figures = vec![];
         if let Some(test) = test {
             let test_cuts = crate::summary::curve(&test.summaries[chosen]);
-            let t = plots::SplitScores {
+            let test_facts = facts(
+                Part::Test,
+                &test.scores[chosen],
+                &test.labels,
+                &test.summaries[chosen],
+            )?;
+            let t = plots::SplitFigures {
                 split: Part::Test.name(),
-                scores: &test.scores[chosen],
-                is_anomaly: &test.labels,
-                tau: c.choice.tau,
+                facts: &test_facts,
+                tau,
                 cuts: &test_cuts,
             };
             figures = vec![
@@ -284,13 +312,15 @@ pub(crate) fn artifacts(plan: &Plan, rows: &Rows, opened: &Opened) -> Result<Art
     let no_test: Vec<Vec<f64>> = vec![vec![]; candidates.len()];
     let scores = || {
         let _t = crate::progress::part("scores.csv");
-        scores_csv(
-            data,
-            candidates,
-            &rows.validation,
-            test.map_or(&[][..], |t| &t.rows),
-            test.map_or(&no_test, |t| &t.scores),
-        )
+        matches!(rows.held, Held::Rows).then(|| {
+            scores_csv(
+                data,
+                candidates,
+                &rows.validation,
+                test.map_or(&[][..], |t| &t.rows),
+                test.map_or(&no_test, |t| &t.scores),
+            )
+        })
     };
     let (scores, (by_score, by_feature)) =
         rayon::join(scores, || rayon::join(score_figures, feature_figures));
@@ -319,7 +349,9 @@ pub(crate) fn files(
     files.add("run.json", run_json);
     files.add(SPEC_COPY, plan.spec_bytes.clone());
     let mut ctx = wording::card_context(plan, rec, &rec.spec.file, fingerprint)?;
-    files.add_parts("scores.csv", artifacts.scores);
+    if let Some(scores) = artifacts.scores {
+        files.add_parts("scores.csv", scores);
+    }
     ctx.plots_validation = artifacts.validation;
     ctx.plots_test = artifacts.test;
     ctx.plots_features = artifacts.features;

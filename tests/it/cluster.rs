@@ -530,6 +530,16 @@ fn specs_beyond_an_engines_scope_are_refused_with_nothing_written() {
             spec.replace("  features:\n", "  missing-values: drop-row\n  features:\n"),
             vec!["`data.missing-values` cannot run on an engine"],
         ),
+        (
+            spec.replace(
+                "threshold: max-f1\n",
+                "threshold:\n  conformal: {max-false-positive-rate: 0.05}\n",
+            ),
+            vec![
+                "`threshold` cannot run on an engine",
+                "sorted validation-normal",
+            ],
+        ),
     ];
     for (text, words) in cases {
         std::fs::write(dir.path().join("scope.yaml"), &text).unwrap();

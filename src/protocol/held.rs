@@ -1,0 +1,62 @@
+//! How the held splits (validation and test) are scored and summarised,
+//! whichever way their rows arrived: in memory ([`Held::Rows`]: every row
+//! scored, and the summaries, the threshold, the figures and the
+//! calibration made from the scores), or on an engine ([`Held::Engine`]:
+//! the rows stay where they are and the stages ask for exactly the
+//! summaries they read, each computed there by the library's own
+//! functions, so that every number is the same to the bit).
+//!
+//! What a stage reads of a held split's scores, and so what an engine
+//! returns: the evaluation summary ([`crate::summary::Summary`], with the
+//! cut points the stage fixes first), the figures' facts
+//! ([`crate::card::plots::ScoreFacts`]: order statistics at the ranks the
+//! axes need, then histogram counts on the bins those fix) and, for the
+//! chosen candidate only, the validation normals' sorted scores that
+//! run.json records as the conformal calibration. The conformal threshold
+//! policy reads those sorted scores of every candidate; an engine run
+//! refuses it at the scope.
+
+use crate::card::plots::ScoreFacts;
+use crate::detect::Model;
+use crate::error::Result;
+use crate::part::Part;
+use crate::summary::Summary;
+
+/// Where the held splits' rows are.
+#[derive(Default)]
+pub enum Held {
+    /// In [`super::ingest::Rows::data`], scored row by row.
+    #[default]
+    Rows,
+    /// On an engine, asked for summaries.
+    Engine(Box<dyn HeldSplits>),
+}
+
+/// The held splits on an engine: each method scores the rows of a split
+/// (validation or test) with a fitted candidate of feature set `set` (its
+/// parameters carried to the engine) and returns a summary of the scores.
+pub trait HeldSplits: Send + Sync {
+    /// The validation split's manifest hash (computed where its rows are).
+    fn validation_manifest(&self) -> &str;
+
+    /// The evaluation summary of `part`'s scores under `model`, with the
+    /// distinct anomaly scores and `extra` as cut points
+    /// (`Summary::new`'s definition); a score that is not a number is
+    /// refused, naming its row, as for rows in memory.
+    fn summary(&self, part: Part, set: usize, model: &dyn Model, extra: &[f64]) -> Result<Summary>;
+
+    /// The score figures' facts of `part` under `model` at τ, whose
+    /// evaluation summary (with τ countable) is `summary`.
+    fn facts(
+        &self,
+        part: Part,
+        set: usize,
+        model: &dyn Model,
+        summary: &Summary,
+        tau: f64,
+    ) -> Result<ScoreFacts>;
+
+    /// The scores of `part`'s normal rows under `model`, in ascending
+    /// `f64::total_cmp` order (no row identity: no place, id or label).
+    fn sorted_normals(&self, part: Part, set: usize, model: &dyn Model) -> Result<Vec<f64>>;
+}
