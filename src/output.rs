@@ -60,6 +60,11 @@ impl RunFiles {
         self.files.insert(name.to_string(), parts);
     }
 
+    /// Removes a file, if added.
+    pub fn remove(&mut self, name: &str) {
+        self.files.remove(name);
+    }
+
     /// A file's bytes, if added.
     pub fn get(&self, name: &str) -> Option<std::borrow::Cow<'_, [u8]>> {
         self.files.get(name).map(|parts| match parts.as_slice() {

@@ -397,6 +397,19 @@ pub fn held(
     })
 }
 
+/// The splits of rows held elsewhere (an engine), from their counts and
+/// the test split's manifest: no row lists, the counts checked as for rows
+/// in memory.
+pub fn summarised(report: SplitReport, test_manifest: String) -> Result<Splits> {
+    check_counts(&report.counts)?;
+    Ok(Splits {
+        train: vec![],
+        validation: vec![],
+        test: SealedTest::summarised(report.counts[2], test_manifest),
+        report,
+    })
+}
+
 /// Rows that share their content with another row of a hash-sorted list.
 fn duplicated_rows(sorted: &[ContentHash]) -> usize {
     let mut n = 0;

@@ -50,6 +50,10 @@ pub const BUCKET_DIGEST: &str = "anomark_bucket_digest";
 pub const INTERVAL: &str = "anomark_interval";
 /// A score's `total_cmp` order as an integer: `anomark_order_key(score)`.
 pub const ORDER_KEY: &str = "anomark_order_key";
+/// `anomark_axis_prefix(s, shift)`: [`axis_prefix`] of each score.
+pub const AXIS_PREFIX: &str = "anomark_axis_prefix";
+/// `anomark_bin(range, s)`: [`score_bin`] of each score.
+pub const BIN: &str = "anomark_bin";
 
 /// The words an engine error carries when a process of another anomark
 /// version refused a task (the client looks for them to name the mismatch).
@@ -732,6 +736,86 @@ impl ScalarUDFImpl for OrderKey {
     }
 }
 
+/// The leading `64 − shift` bits of a score's [`order_key`] (an
+/// arithmetic shift, so prefixes keep `f64::total_cmp` order), `None` for a
+/// score beyond the figures' axis limit (`card::plots::within_axis_limit`):
+/// the digits by which the figures' order statistics are found exactly, 16
+/// bits a pass.
+pub fn axis_prefix(v: f64, shift: u32) -> Option<i64> {
+    crate::card::plots::within_axis_limit(v).then(|| order_key(v) >> shift.min(63))
+}
+
+/// The score histogram's bin of a score on `range` (`card::plots::bin_of`
+/// with `card::plots::SCORE_BINS` bins), −1 outside it.
+pub fn score_bin(range: &std::ops::Range<f64>, v: f64) -> i64 {
+    crate::card::plots::bin_of(v, range, crate::card::plots::SCORE_BINS).map_or(-1, |b| b as i64)
+}
+
+/// An integer literal argument.
+fn literal_i64(v: &ColumnarValue, what: &str) -> Result<i64> {
+    match v {
+        ColumnarValue::Scalar(s) => match s {
+            ScalarValue::Int64(Some(x)) => Ok(*x),
+            ScalarValue::Int32(Some(x)) => Ok(i64::from(*x)),
+            ScalarValue::UInt64(Some(x)) => Ok(*x as i64),
+            _ => Err(fail(format!("{what}: want an integer literal"))),
+        },
+        _ => Err(fail(format!("{what}: want an integer literal"))),
+    }
+}
+
+/// `anomark_axis_prefix(s, shift)`: [`axis_prefix`] of each score.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct AxisPrefix {
+    signature: Signature,
+}
+
+impl ScalarUDFImpl for AxisPrefix {
+    scalar_udf_boilerplate!(AXIS_PREFIX);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::Int64)
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let shift = literal_i64(&args.args[1], AXIS_PREFIX)?;
+        let shift = u32::try_from(shift)
+            .ok()
+            .filter(|s| *s < 64)
+            .ok_or_else(|| fail(format!("{AXIS_PREFIX}: a shift of 0 to 63")))?;
+        let arrays = ColumnarValue::values_to_arrays(&args.args[..1])?;
+        let s = f64s(&arrays[0], AXIS_PREFIX)?;
+        let out: Int64Array = s.values().iter().map(|&v| axis_prefix(v, shift)).collect();
+        Ok(ColumnarValue::Array(Arc::new(out)))
+    }
+}
+
+/// `anomark_bin(range, s)`: [`score_bin`] of each score, the range's two
+/// ends carried in the plan.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct Bin {
+    signature: Signature,
+}
+
+impl ScalarUDFImpl for Bin {
+    scalar_udf_boilerplate!(BIN);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::Int64)
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let ends = from_le_bytes(literal_bytes(&args.args[0], BIN)?);
+        let [start, end] = ends[..] else {
+            return Err(fail(format!("{BIN}: want the range's two ends")));
+        };
+        let arrays = ColumnarValue::values_to_arrays(&args.args[1..])?;
+        let s = f64s(&arrays[0], BIN)?;
+        let out: Int64Array = s
+            .values()
+            .iter()
+            .map(|&v| Some(score_bin(&(start..end), v)))
+            .collect();
+        Ok(ColumnarValue::Array(Arc::new(out)))
+    }
+}
+
 /// Every scalar function, the version guard reporting `version`.
 pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
     let any = || Signature::variadic_any(Volatility::Immutable);
@@ -743,6 +827,8 @@ pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
         Arc::new(ScalarUDF::from(ScoreUdf { signature: any() })),
         Arc::new(ScalarUDF::from(Interval { signature: any() })),
         Arc::new(ScalarUDF::from(OrderKey { signature: any() })),
+        Arc::new(ScalarUDF::from(AxisPrefix { signature: any() })),
+        Arc::new(ScalarUDF::from(Bin { signature: any() })),
         Arc::new(ScalarUDF::from(VersionCheck {
             signature: Signature::variadic_any(Volatility::Volatile),
             version: version.to_string(),

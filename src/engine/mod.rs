@@ -13,6 +13,7 @@
 
 pub mod cluster;
 pub mod functions;
+pub(crate) mod held;
 pub mod run;
 
 use std::collections::BTreeMap;

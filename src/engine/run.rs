@@ -15,8 +15,7 @@
 use std::collections::BTreeMap;
 
 use datafusion::arrow::array::{
-    Array, ArrayRef, BooleanArray, FixedSizeBinaryArray, Float64Array, Int64Array, Int8Array,
-    StringArray,
+    Array, ArrayRef, FixedSizeBinaryArray, Float64Array, Int64Array, StringArray,
 };
 use datafusion::arrow::compute::cast;
 use datafusion::arrow::datatypes::{DataType, Field, Schema};
@@ -26,13 +25,14 @@ use datafusion::execution::session_state::SessionStateBuilder;
 use datafusion::prelude::{CsvReadOptions, ParquetReadOptions, SessionConfig, SessionContext};
 use ndarray::Array2;
 
+use super::held::HeldOnEngine;
 use super::{collect, engine_error, functions, sql_bytes, sql_text, version};
-use crate::audit::hash::ContentHash;
-use crate::data::{self, Dataset, Dropped, Format, Origin, RowId, SourceFile, TextColumn};
+use crate::data::{self, Dataset, Dropped, Format, RowId, SourceFile};
 use crate::error::{Error, Result};
 use crate::features::{self, FittedFeatures};
 use crate::part::Part;
 use crate::progress::Progress;
+use crate::protocol::held::Held;
 use crate::protocol::ingest::{Ingest, Ingested, Training, SAMPLE_LIMITS};
 use crate::protocol::Engine;
 use crate::spec::{DetectorKind, FeatureInput, MissingPolicy, Plan, SplitPlan};
@@ -43,14 +43,43 @@ pub struct OnEngine(pub Engine);
 
 impl Ingest for OnEngine {
     fn ingest(&self, plan: &Plan, progress: &Progress) -> Result<Ingested> {
-        super::cluster::runtime()?.block_on(async {
+        let runtime = super::cluster::runtime()?;
+        let (ctx, mut ingested, held) = runtime.block_on(async {
             let stage = progress.stage("starting the engine session");
             let ctx = context(&self.0).await?;
             drop(stage);
             let sorted_on_engine = matches!(self.0, Engine::Local { .. });
-            ingest(&ctx, plan, progress, sorted_on_engine).await
-        })
+            let (ingested, held) = ingest(&ctx, plan, progress, sorted_on_engine).await?;
+            Ok::<_, Error>((ctx, ingested, held))
+        })?;
+        // The validation and test rows stay on the engine; the later
+        // stages ask it for their summaries in this session.
+        let (files, validation_manifest) = held;
+        ingested.rows.held = Held::Engine(Box::new(HeldOnEngine {
+            runtime,
+            ctx,
+            sets: feature_columns(plan),
+            files,
+            validation_manifest,
+        }));
+        Ok(ingested)
     }
+}
+
+/// Per feature set, its columns in the engine's views (`x0`, `x3`, …).
+fn feature_columns(plan: &Plan) -> Vec<Vec<String>> {
+    plan.feature_sets
+        .iter()
+        .map(|set| {
+            set.features
+                .iter()
+                .map(|f| match f.input {
+                    FeatureInput::Column(j) => format!("x{j}"),
+                    _ => unreachable!("refused by the scope"),
+                })
+                .collect()
+        })
+        .collect()
 }
 
 /// Refuses, with the reason, a plan an engine does not run: anything but
@@ -256,13 +285,15 @@ fn place(files: &[SourceFile], f: i64, r: i64) -> String {
 }
 
 /// Reads, checks, hashes and splits the plan's rows on the engine; returns
-/// the validation and test rows with the training rows' summaries.
+/// the splits' counts and manifests with the training rows' summaries (no
+/// rows), and the source's files with the validation manifest for the
+/// held splits' summaries.
 async fn ingest(
     ctx: &SessionContext,
     plan: &Plan,
     progress: &Progress,
     sorted_on_engine: bool,
-) -> Result<Ingested> {
+) -> Result<(Ingested, (Vec<SourceFile>, String))> {
     let source = &plan.sources[0];
     let label = plan.label.as_ref().expect("checked by the scope");
     let paths = data::expand(source, plan)?;
@@ -490,8 +521,9 @@ async fn ingest(
     let (sample, samples) = train_sample(ctx, nx, train_rows, columns, sorted_on_engine).await?;
     drop(stage);
 
-    let stage = progress.stage("reading the validation and test rows");
-    let (data, hashes, parts) = held_rows(ctx, plan, files, nx).await?;
+    let stage = progress.stage("hashing the validation and test manifests");
+    let validation_manifest = super::manifest(ctx, "assigned", Part::Validation as i8).await?;
+    let test_manifest = super::manifest(ctx, "assigned", Part::Test as i8).await?;
     drop(stage);
 
     let stage = progress.stage("splitting and checking for leakage");
@@ -515,8 +547,19 @@ async fn ingest(
         report.rows_off_requested_counts = split::off_requested(&counts, &req);
         report.requested = Some(req);
     }
-    let splits = split::held(&data, &hashes, &parts, report)?;
+    let splits = split::summarised(report, test_manifest)?;
     drop(stage);
+    // No row on the client: the files read and the columns, for the record.
+    let data = Dataset {
+        files: files.clone(),
+        columns: plan.columns.iter().map(|c| c.name.clone()).collect(),
+        x: Array2::zeros((0, nx)),
+        is_anomaly: vec![],
+        origin: vec![],
+        ids: None,
+        text: BTreeMap::new(),
+        dropped: Dropped::default(),
+    };
     let training = Training::Moments {
         fitted,
         moments,
@@ -525,7 +568,10 @@ async fn ingest(
         sample: Box::new(sample),
         samples,
     };
-    Ok(Ingested::of(data, hashes, splits, training))
+    Ok((
+        Ingested::of(data, vec![], splits, training),
+        (files, validation_manifest),
+    ))
 }
 
 /// Refuses the first row rule broken anywhere, naming the rows (the first
@@ -765,91 +811,4 @@ async fn train_sample(
     }
     let sample = Dataset::sample_of(columns, x)?;
     Ok((sample, samples))
-}
-
-/// The validation and test rows, read back from the engine in file order
-/// (file, then row in it), with their content hashes and splits.
-async fn held_rows(
-    ctx: &SessionContext,
-    plan: &Plan,
-    files: Vec<SourceFile>,
-    nx: usize,
-) -> Result<(Dataset, Vec<ContentHash>, Vec<Part>)> {
-    let xl = (0..nx)
-        .map(|j| format!("x{j}"))
-        .collect::<Vec<_>>()
-        .join(", ");
-    let id = if plan.id_column.is_some() { "id" } else { "''" };
-    let rows = collect(
-        ctx,
-        "reading the validation and test rows",
-        &format!("SELECT f, r, a, h, part, {id}, {xl} FROM assigned WHERE part > 0"),
-    )
-    .await?;
-    struct Row {
-        at: (i64, i64),
-        a: bool,
-        h: ContentHash,
-        part: i8,
-        id: String,
-        x: Vec<f64>,
-    }
-    let mut held = Vec::new();
-    for b in &rows {
-        let (f, r) = (i64s(b, 0)?, i64s(b, 1)?);
-        let a = super::column::<BooleanArray>(b, 2)?;
-        let h = super::column::<FixedSizeBinaryArray>(b, 3)?;
-        let part = super::column::<Int8Array>(b, 4)?;
-        let ids = texts(b, 5)?;
-        let cols: Vec<Float64Array> = (0..nx).map(|j| f64s(b, j + 6)).collect::<Result<_>>()?;
-        for i in 0..b.num_rows() {
-            held.push(Row {
-                at: (f.value(i), r.value(i)),
-                a: a.value(i),
-                h: ContentHash(
-                    h.value(i)
-                        .try_into()
-                        .map_err(|_| Error::internal("a content hash of other than 32 bytes"))?,
-                ),
-                part: part.value(i),
-                id: ids.value(i).to_string(),
-                x: cols.iter().map(|c| c.value(i)).collect(),
-            });
-        }
-    }
-    held.sort_unstable_by_key(|r| r.at);
-    let n = held.len();
-    let mut x = Vec::with_capacity(n * nx);
-    let mut ids = plan.id_column.as_ref().map(|_| TextColumn::default());
-    let (mut is_anomaly, mut origin, mut hashes, mut parts) = (
-        Vec::with_capacity(n),
-        Vec::with_capacity(n),
-        Vec::with_capacity(n),
-        Vec::with_capacity(n),
-    );
-    for r in held {
-        x.extend_from_slice(&r.x);
-        if let Some(ids) = ids.as_mut() {
-            ids.push(&r.id);
-        }
-        is_anomaly.push(r.a);
-        origin.push(Origin {
-            file: r.at.0 as u32,
-            row: r.at.1 as u64,
-        });
-        hashes.push(r.h);
-        parts.push(Part::ALL[r.part as usize]);
-    }
-    let data = Dataset {
-        files,
-        columns: plan.columns.iter().map(|c| c.name.clone()).collect(),
-        x: Array2::from_shape_vec((n, nx), x)
-            .map_err(|e| Error::internal(format!("the held rows: {e}")))?,
-        is_anomaly,
-        origin,
-        ids,
-        text: BTreeMap::new(),
-        dropped: Dropped::default(),
-    };
-    Ok((data, hashes, parts))
 }

@@ -175,10 +175,10 @@ fn candidate(
             // the summary alone (the conformal policy is refused at the scope).
             let _t = crate::progress::part("summary on the engine");
             let part = crate::part::Part::Validation;
-            let mut s = e.summary(part, si, model.as_ref(), &[])?;
+            let mut s = e.summary(&name, part, si, model.as_ref(), &[])?;
             if let Some(tau) = threshold::fixed_tau(plan.threshold) {
                 if s.confusion_at(tau).is_none() {
-                    s = e.summary(part, si, model.as_ref(), &[tau])?;
+                    s = e.summary(&name, part, si, model.as_ref(), &[tau])?;
                 }
             }
             let choice = threshold::choose_on_summary(plan.threshold, &s).ok_or_else(|| {

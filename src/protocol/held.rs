@@ -39,11 +39,19 @@ pub trait HeldSplits: Send + Sync {
     /// The validation split's manifest hash (computed where its rows are).
     fn validation_manifest(&self) -> &str;
 
-    /// The evaluation summary of `part`'s scores under `model`, with the
+    /// The evaluation summary of `part`'s scores under `model` (of the
+    /// candidate `name`, named in a refusal), with the
     /// distinct anomaly scores and `extra` as cut points
     /// (`Summary::new`'s definition); a score that is not a number is
     /// refused, naming its row, as for rows in memory.
-    fn summary(&self, part: Part, set: usize, model: &dyn Model, extra: &[f64]) -> Result<Summary>;
+    fn summary(
+        &self,
+        name: &str,
+        part: Part,
+        set: usize,
+        model: &dyn Model,
+        extra: &[f64],
+    ) -> Result<Summary>;
 
     /// The score figures' facts of `part` under `model` at τ, whose
     /// evaluation summary (with τ countable) is `summary`.

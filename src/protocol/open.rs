@@ -139,7 +139,15 @@ pub(crate) fn test(
         let summaries: Vec<Summary> = fitted
             .candidates
             .iter()
-            .map(|c| e.summary(Part::Test, c.set, c.model.as_ref(), &[c.choice.tau]))
+            .map(|c| {
+                e.summary(
+                    &c.name,
+                    Part::Test,
+                    c.set,
+                    c.model.as_ref(),
+                    &[c.choice.tau],
+                )
+            })
             .collect::<Result<_>>()?;
         let scores = vec![Vec::new(); summaries.len()];
         return finish(

@@ -1,0 +1,435 @@
+//! The held splits (validation and test) on an engine
+//! ([`crate::protocol::held::HeldSplits`]): their rows stay in the engine's
+//! `assigned` view; a candidate's scores are computed there by
+//! `anomark_score` with its fitted parameters carried in the plan, and the
+//! client receives only what a stage reads of them:
+//!
+//! - the evaluation summary (`engine::summary`: the anomaly scores, then the
+//!   rows per cut point and gap), with a score that is not a number refused
+//!   first, naming its row as in process;
+//! - the score figures' facts: the order statistics the axes need
+//!   (`card::plots::axis_ranks`), found exactly by four grouping passes of
+//!   16 bits each over the scores' order keys (`functions::axis_prefix`),
+//!   then the histogram counts per class on the bins those fix
+//!   (`functions::score_bin`), each at most 65,536 groups a pass;
+//! - for the chosen candidate, the validation normals' scores in ascending
+//!   order, which run.json records as the conformal calibration (one number
+//!   per validation normal, without place, id or label).
+//!
+//! Every number is the library's: the engine functions call it.
+
+use std::collections::BTreeMap;
+
+use datafusion::arrow::array::{Array, Int64Array};
+use datafusion::prelude::SessionContext;
+
+use super::{collect, functions, sql_bytes};
+use crate::card::plots::{self, ScoreAxes, ScoreFacts};
+use crate::data::SourceFile;
+use crate::detect::{Model, Params};
+use crate::error::{Error, Result};
+use crate::part::Part;
+use crate::protocol::held::HeldSplits;
+use crate::summary::Summary;
+
+/// The held splits of an engine run: the session (and the runtime that
+/// drives it) in which the `assigned` view holds every row with its split.
+pub(crate) struct HeldOnEngine {
+    /// Drives the session's queries (a cluster's connection lives in it).
+    pub runtime: tokio::runtime::Runtime,
+    /// The session with the `assigned` view.
+    pub ctx: SessionContext,
+    /// Per feature set, its columns in the view (`x0`, `x3`, …).
+    pub sets: Vec<Vec<String>>,
+    /// The source's files, to name a row.
+    pub files: Vec<SourceFile>,
+    /// The validation split's manifest.
+    pub validation_manifest: String,
+}
+
+/// Bits of an order key resolved per pass of the order statistics.
+const DIGIT: u32 = 16;
+
+impl HeldOnEngine {
+    /// The SQL of `model`'s score of a row of the view (feature set `set`).
+    fn score_sql(&self, set: usize, model: &dyn Model) -> Result<String> {
+        let params = match model.params() {
+            Params::IndependentGaussian { mean, variance } => {
+                functions::ModelParams::Independent { mean, variance }
+            }
+            Params::MultivariateGaussian {
+                mean, covariance, ..
+            } => functions::ModelParams::Multivariate {
+                mean,
+                covariance: covariance.concat(),
+            },
+            _ => return Err(Error::internal("a detector an engine does not score")),
+        };
+        Ok(format!(
+            "{}({}, {})",
+            functions::SCORE,
+            sql_bytes(&params.to_bytes()),
+            self.sets[set].join(", ")
+        ))
+    }
+
+    /// The `k`-th smallest (from 0, in `f64::total_cmp` order) of the
+    /// scores `score` of split `part` within the figures' axis limit, for
+    /// each `k` of `ranks` (each below the count of such scores), found by
+    /// grouping on 16 more bits of the order key a pass; and that count.
+    async fn order_statistics(
+        &self,
+        part: Part,
+        score: &str,
+        ranks: impl FnOnce(u64) -> Vec<usize>,
+    ) -> Result<(u64, Vec<f64>)> {
+        let doing = "ordering the scores for the figures";
+        // Per wanted rank: the prefix found so far and the rank within it.
+        let mut targets: Vec<(i64, u64)> = Vec::new();
+        let mut kept = 0u64;
+        let mut ranks = Some(ranks);
+        for pass in 0..4u32 {
+            let shift = 64 - DIGIT * (pass + 1);
+            let prefix = format!("{}({score}, {shift})", functions::AXIS_PREFIX);
+            let within = if pass == 0 {
+                String::new()
+            } else {
+                let parents: std::collections::BTreeSet<i64> =
+                    targets.iter().map(|t| t.0).collect();
+                if parents.is_empty() {
+                    break;
+                }
+                let list: Vec<String> = parents.iter().map(|p| p.to_string()).collect();
+                format!(
+                    " AND {}({score}, {}) IN ({})",
+                    functions::AXIS_PREFIX,
+                    shift + DIGIT,
+                    list.join(", ")
+                )
+            };
+            let rows = collect(
+                &self.ctx,
+                doing,
+                &format!(
+                    "SELECT p, COUNT(*) FROM (SELECT {prefix} AS p FROM assigned WHERE part = \
+                     {part}{within}) WHERE p IS NOT NULL GROUP BY p",
+                    part = part as i8
+                ),
+            )
+            .await?;
+            let mut groups: BTreeMap<i64, u64> = BTreeMap::new();
+            for b in &rows {
+                let (p, n) = (super::column::<Int64Array>(b, 0)?, int64s(b, 1)?);
+                for i in 0..b.num_rows() {
+                    *groups.entry(p.value(i)).or_default() += n.value(i) as u64;
+                }
+            }
+            if pass == 0 {
+                kept = groups.values().sum();
+                let wanted = (ranks.take().expect("once"))(kept);
+                if wanted.iter().any(|&k| k as u64 >= kept) {
+                    return Err(Error::internal("an order statistic beyond the scores"));
+                }
+                targets = wanted.into_iter().map(|k| (0, k as u64)).collect();
+            }
+            for t in targets.iter_mut() {
+                // The groups under the target's prefix, in ascending order.
+                let mut rank = t.1;
+                let mut found = None;
+                for (&p, &n) in &groups {
+                    if pass > 0 && p >> DIGIT != t.0 {
+                        continue;
+                    }
+                    if rank < n {
+                        found = Some(p);
+                        break;
+                    }
+                    rank -= n;
+                }
+                let p = found.ok_or_else(|| {
+                    Error::internal("an order statistic not found in its prefix's groups")
+                })?;
+                *t = (p, rank);
+            }
+        }
+        Ok((
+            kept,
+            targets
+                .iter()
+                .map(|t| functions::from_order_key(t.0))
+                .collect(),
+        ))
+    }
+
+    async fn summary_async(
+        &self,
+        name: &str,
+        part: Part,
+        score: &str,
+        extra: &[f64],
+    ) -> Result<Summary> {
+        // A score that is not a number, refused as in process: the first in
+        // the split's canonical (content hash, row) order.
+        let nan = collect(
+            &self.ctx,
+            "checking the scores",
+            &format!(
+                "SELECT f, r FROM (SELECT h, f, r, {score} AS s FROM assigned WHERE part = {}) \
+                 WHERE isnan(s) ORDER BY h, f, r LIMIT 1",
+                part as i8
+            ),
+        )
+        .await?;
+        if let Some(b) = nan.iter().find(|b| b.num_rows() > 0) {
+            let (f, r) = (int64s(b, 0)?, int64s(b, 1)?);
+            let file = &self.files[f.value(0) as usize];
+            let at = format!(
+                "{} {} {}",
+                file.shown,
+                file.format.unit().word(),
+                file.format.place(r.value(0) as u64)
+            );
+            return Err(Error::Fit {
+                detector: String::new(),
+                message: format!("the score of {at} is not a number"),
+                features: vec![],
+            }
+            .in_candidate(name));
+        }
+        super::summary(&self.ctx, "assigned", score, part as i8, extra).await
+    }
+
+    async fn facts_async(
+        &self,
+        part: Part,
+        score: &str,
+        summary: &Summary,
+        tau: f64,
+    ) -> Result<ScoreFacts> {
+        let at = summary
+            .confusion_at(tau)
+            .ok_or_else(|| Error::internal("τ inside a gap of the figures' summary"))?;
+        let (kept, values) = self
+            .order_statistics(part, score, |kept| plots::axis_ranks(kept as usize))
+            .await?;
+        let axes = ScoreAxes::new(summary.rows() - kept, &values, tau);
+        let r = axes.score_range();
+        let rows = collect(
+            &self.ctx,
+            "counting the scores per histogram bin",
+            &format!(
+                "SELECT a, b, COUNT(*) FROM (SELECT a, {}({}, {score}) AS b FROM assigned WHERE \
+                 part = {}) GROUP BY a, b",
+                functions::BIN,
+                sql_bytes(&functions::le_bytes(&[r.start, r.end])),
+                part as i8
+            ),
+        )
+        .await?;
+        let mut classes = [
+            (vec![0u64; plots::SCORE_BINS], 0u64),
+            (vec![0u64; plots::SCORE_BINS], 0u64),
+        ];
+        for b in &rows {
+            let a = super::column::<datafusion::arrow::array::BooleanArray>(b, 0)?;
+            let (bin, n) = (super::column::<Int64Array>(b, 1)?, int64s(b, 2)?);
+            for i in 0..b.num_rows() {
+                let class = &mut classes[usize::from(a.value(i))];
+                let n = n.value(i) as u64;
+                match usize::try_from(bin.value(i)) {
+                    Ok(k) if k < plots::SCORE_BINS => class.0[k] += n,
+                    _ => class.1 += n,
+                }
+            }
+        }
+        let [normal, anomalous] = classes;
+        ScoreFacts::new(at, axes, normal, anomalous)
+    }
+
+    async fn sorted_normals_async(&self, part: Part, score: &str) -> Result<Vec<f64>> {
+        let rows = collect(
+            &self.ctx,
+            "reading the calibration scores",
+            &format!(
+                "SELECT {}({score}) FROM assigned WHERE part = {} AND NOT a",
+                functions::ORDER_KEY,
+                part as i8
+            ),
+        )
+        .await?;
+        let mut keys = Vec::new();
+        for b in &rows {
+            keys.extend_from_slice(super::column::<Int64Array>(b, 0)?.values());
+        }
+        // Order keys sort as `f64::total_cmp` does; equal keys, equal bits.
+        keys.sort_unstable();
+        Ok(keys.into_iter().map(functions::from_order_key).collect())
+    }
+}
+
+/// A count column as Int64.
+fn int64s(b: &datafusion::arrow::record_batch::RecordBatch, j: usize) -> Result<Int64Array> {
+    let a = datafusion::arrow::compute::cast(
+        b.column(j),
+        &datafusion::arrow::datatypes::DataType::Int64,
+    )
+    .map_err(|e| super::engine_error("reading the engine's result", e))?;
+    a.as_any()
+        .downcast_ref::<Int64Array>()
+        .cloned()
+        .ok_or_else(|| Error::internal("an engine result not castable to Int64"))
+}
+
+impl HeldSplits for HeldOnEngine {
+    fn validation_manifest(&self) -> &str {
+        &self.validation_manifest
+    }
+
+    fn summary(
+        &self,
+        name: &str,
+        part: Part,
+        set: usize,
+        model: &dyn Model,
+        extra: &[f64],
+    ) -> Result<Summary> {
+        let score = self.score_sql(set, model)?;
+        self.runtime
+            .block_on(self.summary_async(name, part, &score, extra))
+    }
+
+    fn facts(
+        &self,
+        part: Part,
+        set: usize,
+        model: &dyn Model,
+        summary: &Summary,
+        tau: f64,
+    ) -> Result<ScoreFacts> {
+        let score = self.score_sql(set, model)?;
+        self.runtime
+            .block_on(self.facts_async(part, &score, summary, tau))
+    }
+
+    fn sorted_normals(&self, part: Part, set: usize, model: &dyn Model) -> Result<Vec<f64>> {
+        let score = self.score_sql(set, model)?;
+        self.runtime
+            .block_on(self.sorted_normals_async(part, &score))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use std::sync::Arc;
+
+    use datafusion::arrow::array::{
+        ArrayRef, BooleanArray, FixedSizeBinaryArray, Float64Array, Int64Array, Int8Array,
+    };
+    use datafusion::arrow::datatypes::{DataType, Field, Schema};
+    use datafusion::arrow::record_batch::RecordBatch;
+    use datafusion::datasource::MemTable;
+
+    use super::*;
+
+    /// The held splits' summaries made on an engine (three partitions of
+    /// small batches) equal those made from the scores in memory, bit for
+    /// bit: the evaluation summary, the figures' facts (order statistics
+    /// found 16 bits a pass, then the bins) and the calibration's sorted
+    /// scores. Invented rows with ties, both zeros, scores beyond the axis
+    /// limit and infinite ones (squares that overflow), for this check only.
+    #[test]
+    fn the_held_summaries_on_an_engine_equal_those_from_the_scores() {
+        let n = 3000usize;
+        let mut state = 0x2929_u64;
+        let mut next = move || {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            state
+        };
+        let x: Vec<f64> = (0..n)
+            .map(|i| match i % 97 {
+                0 => 1e80,
+                1 => -1e200,
+                2 => 0.0,
+                3 => -0.0,
+                _ => (next() % 4000) as f64 / 64.0 - 30.0,
+            })
+            .collect();
+        let a: Vec<bool> = (0..n).map(|i| i % 11 == 5).collect();
+        let part: Vec<i8> = (0..n).map(|i| if i % 3 == 0 { 2 } else { 1 }).collect();
+        let params = functions::ModelParams::Independent {
+            mean: vec![1.25],
+            variance: vec![4.0],
+        };
+        let model = params.model(&["x0".to_string()]).unwrap();
+        let schema = Arc::new(Schema::new(vec![
+            Field::new("h", DataType::FixedSizeBinary(32), false),
+            Field::new("f", DataType::Int64, false),
+            Field::new("r", DataType::Int64, false),
+            Field::new("a", DataType::Boolean, false),
+            Field::new("part", DataType::Int8, false),
+            Field::new("x0", DataType::Float64, false),
+        ]));
+        let h: Vec<[u8; 32]> = (0..n).map(|i| [(i % 251) as u8; 32]).collect();
+        let columns: Vec<ArrayRef> = vec![
+            Arc::new(FixedSizeBinaryArray::try_from_iter(h.iter()).unwrap()),
+            Arc::new(Int64Array::from(vec![0i64; n])),
+            Arc::new(Int64Array::from((0..n as i64).collect::<Vec<_>>())),
+            Arc::new(BooleanArray::from(a.clone())),
+            Arc::new(Int8Array::from(part.clone())),
+            Arc::new(Float64Array::from(x.clone())),
+        ];
+        let batch = RecordBatch::try_new(schema.clone(), columns).unwrap();
+        let parts: Vec<Vec<RecordBatch>> = (0..3)
+            .map(|p| {
+                let (lo, hi) = (p * n / 3, (p + 1) * n / 3);
+                (lo..hi)
+                    .step_by(100)
+                    .map(|at| batch.slice(at, 100.min(hi - at)))
+                    .collect()
+            })
+            .collect();
+        let runtime = super::super::cluster::runtime().unwrap();
+        let ctx = super::super::local_context(3, 100).unwrap();
+        ctx.register_table(
+            "assigned",
+            Arc::new(MemTable::try_new(schema, parts).unwrap()),
+        )
+        .unwrap();
+        let held = HeldOnEngine {
+            runtime,
+            ctx,
+            sets: vec![vec!["x0".into()]],
+            files: vec![],
+            validation_manifest: String::new(),
+        };
+        for p in [Part::Validation, Part::Test] {
+            let rows: Vec<usize> = (0..n).filter(|&i| part[i] == p as i8).collect();
+            let xs = ndarray::Array2::from_shape_fn((rows.len(), 1), |(i, _)| x[rows[i]]);
+            let scores = crate::detect::score_in_blocks(model.as_ref(), xs.view(), 8192);
+            let labels: Vec<bool> = rows.iter().map(|&i| a[i]).collect();
+            assert!(scores.iter().any(|s| s.is_infinite()));
+            assert!(scores
+                .iter()
+                .any(|s| s.is_finite() && !plots::within_axis_limit(*s)));
+            let got = held.summary("c", p, 0, model.as_ref(), &[]).unwrap();
+            assert!(got == Summary::new(&scores, &labels, &[]), "{p:?}");
+            // τ a cut point, and a τ the summary must be told of.
+            for tau in [scores[labels.iter().position(|&y| y).unwrap()], 3.0] {
+                let s = held.summary("c", p, 0, model.as_ref(), &[tau]).unwrap();
+                assert!(s == Summary::new(&scores, &labels, &[tau]));
+                let facts = held.facts(p, 0, model.as_ref(), &s, tau).unwrap();
+                assert_eq!(
+                    facts,
+                    ScoreFacts::of(&scores, &labels, tau),
+                    "{p:?} τ {tau}"
+                );
+            }
+            let sorted = held.sorted_normals(p, 0, model.as_ref()).unwrap();
+            let want = crate::conformal::Calibration::of_normals(&scores, &labels);
+            let bits = |v: &[f64]| v.iter().map(|s| s.to_bits()).collect::<Vec<_>>();
+            assert_eq!(bits(&sorted), bits(want.sorted()));
+        }
+    }
+}
