@@ -54,6 +54,8 @@ pub const ORDER_KEY: &str = "anomark_order_key";
 pub const AXIS_PREFIX: &str = "anomark_axis_prefix";
 /// `anomark_bin(range, s)`: [`score_bin`] of each score.
 pub const BIN: &str = "anomark_bin";
+/// `anomark_score_row(part, f, r, a, s1, …)`: `audit::hash::score_row`.
+pub const SCORE_ROW: &str = "anomark_score_row";
 
 /// The words an engine error carries when a process of another anomark
 /// version refused a task (the client looks for them to name the mismatch).
@@ -816,6 +818,54 @@ impl ScalarUDFImpl for Bin {
     }
 }
 
+/// `anomark_score_row(part, f, r, a, s1, …)`: each row's
+/// `audit::hash::score_row` (split, file, row in file, label, scores).
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct ScoreRow {
+    signature: Signature,
+}
+
+impl ScalarUDFImpl for ScoreRow {
+    scalar_udf_boilerplate!(SCORE_ROW);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::FixedSizeBinary(32))
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let n = args.number_rows;
+        let arrays = ColumnarValue::values_to_arrays(&args.args)?;
+        if arrays.len() < 4 {
+            return Err(fail(format!("{SCORE_ROW}: want part, f, r, a and scores")));
+        }
+        let int = |a: &ArrayRef| -> Result<Int64Array> {
+            let c = datafusion::arrow::compute::cast(a, &DataType::Int64)?;
+            c.as_any()
+                .downcast_ref::<Int64Array>()
+                .cloned()
+                .ok_or_else(|| fail(format!("{SCORE_ROW}: want integers")))
+        };
+        let (part, f, r) = (int(&arrays[0])?, int(&arrays[1])?, int(&arrays[2])?);
+        let a = bools(&arrays[3], SCORE_ROW)?;
+        let scores: Vec<&Float64Array> = arrays[4..]
+            .iter()
+            .map(|c| f64s(c, SCORE_ROW))
+            .collect::<Result<_>>()?;
+        let hashes: Vec<[u8; 32]> = (0..n)
+            .map(|i| {
+                crate::audit::hash::score_row(
+                    part.value(i) as u8,
+                    f.value(i) as u32,
+                    r.value(i) as u64,
+                    a.value(i),
+                    scores.iter().map(|s| s.value(i)),
+                )
+                .0
+            })
+            .collect();
+        let out = FixedSizeBinaryArray::try_from_iter(hashes.iter())?;
+        Ok(ColumnarValue::Array(Arc::new(out)))
+    }
+}
+
 /// Every scalar function, the version guard reporting `version`.
 pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
     let any = || Signature::variadic_any(Volatility::Immutable);
@@ -829,6 +879,7 @@ pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
         Arc::new(ScalarUDF::from(OrderKey { signature: any() })),
         Arc::new(ScalarUDF::from(AxisPrefix { signature: any() })),
         Arc::new(ScalarUDF::from(Bin { signature: any() })),
+        Arc::new(ScalarUDF::from(ScoreRow { signature: any() })),
         Arc::new(ScalarUDF::from(VersionCheck {
             signature: Signature::variadic_any(Volatility::Volatile),
             version: version.to_string(),

@@ -64,6 +64,11 @@ pub trait HeldSplits: Send + Sync {
         tau: f64,
     ) -> Result<ScoreFacts>;
 
+    /// The scores digest (`audit::hash::scores_digest`) of the validation
+    /// rows, and the test rows when `test` (the test split was opened),
+    /// under every candidate's model (feature set, model), in spec order.
+    fn scores_digest(&self, candidates: &[(usize, &dyn Model)], test: bool) -> Result<String>;
+
     /// The scores of `part`'s normal rows under `model`, in ascending
     /// `f64::total_cmp` order (no row identity: no place, id or label).
     fn sorted_normals(&self, part: Part, set: usize, model: &dyn Model) -> Result<Vec<f64>>;

@@ -197,9 +197,49 @@ pub(crate) fn record(
                 best.validation.false_positive_rate,
             )?
         }),
+        scores_digest: Some(scores_digest(rows, opened)?),
         engine: header.engine,
         wall_clock: header.wall_clock,
     })
+}
+
+/// The scores digest of the scored rows (validation, and test once opened):
+/// from the scores in memory (scores.csv's rows), or computed on the engine
+/// that holds the rows.
+fn scores_digest(rows: &Rows, opened: &Opened) -> Result<String> {
+    let candidates = &opened.chosen.fitted.candidates;
+    let test = opened.test.as_ref();
+    if let Held::Engine(e) = &rows.held {
+        let models: Vec<(usize, &dyn detect::Model)> = candidates
+            .iter()
+            .map(|c| (c.set, c.model.as_ref()))
+            .collect();
+        return e.scores_digest(&models, test.is_some());
+    }
+    use rayon::prelude::*;
+    let data = &rows.data;
+    let hashed = |part: Part, list: &[RowId], score: &(dyn Fn(usize, usize) -> f64 + Sync)| {
+        list.par_iter()
+            .enumerate()
+            .map(|(k, r)| {
+                let o = data.origin[r.0 as usize];
+                crate::audit::hash::score_row(
+                    part as u8,
+                    o.file,
+                    o.row,
+                    data.is_anomaly[r.0 as usize],
+                    (0..candidates.len()).map(|ci| score(ci, k)),
+                )
+            })
+            .collect::<Vec<_>>()
+    };
+    let mut all = hashed(Part::Validation, &rows.validation, &|ci, k| {
+        candidates[ci].validation_scores[k]
+    });
+    if let Some(t) = test {
+        all.extend(hashed(Part::Test, &t.rows, &|ci, k| t.scores[ci][k]));
+    }
+    Ok(crate::audit::hash::scores_digest(&all))
 }
 
 /// The run directory's files that need no record: scores.csv and the
