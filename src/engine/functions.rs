@@ -56,17 +56,20 @@ pub const AXIS_PREFIX: &str = "anomark_axis_prefix";
 pub const BIN: &str = "anomark_bin";
 /// `anomark_score_row(part, f, r, a, s1, …)`: `audit::hash::score_row`.
 pub const SCORE_ROW: &str = "anomark_score_row";
+/// `anomark_write_scores(dir, names, g, part, f, r, a, s1, …)`: writes a
+/// group's scored rows as one Parquet part (`engine::held::ScoresWriter`).
+pub const WRITE_SCORES: &str = "anomark_write_scores";
 
 /// The words an engine error carries when a process of another anomark
 /// version refused a task (the client looks for them to name the mismatch).
 pub const VERSION_MISMATCH: &str = "anomark version mismatch";
 
 /// An execution error in DataFusion's type.
-fn fail(message: impl Into<String>) -> DataFusionError {
+pub(crate) fn fail(message: impl Into<String>) -> DataFusionError {
     DataFusionError::Execution(message.into())
 }
 
-fn f64s<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a Float64Array> {
+pub(crate) fn f64s<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a Float64Array> {
     let f = a
         .as_any()
         .downcast_ref::<Float64Array>()
@@ -77,7 +80,7 @@ fn f64s<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a Float64Array> {
     Ok(f)
 }
 
-fn bools<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a BooleanArray> {
+pub(crate) fn bools<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a BooleanArray> {
     let b = a
         .as_any()
         .downcast_ref::<BooleanArray>()
@@ -99,14 +102,14 @@ fn keys<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a FixedSizeBinaryArray> {
     Ok(k)
 }
 
-fn binaries<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a BinaryArray> {
+pub(crate) fn binaries<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a BinaryArray> {
     a.as_any()
         .downcast_ref::<BinaryArray>()
         .ok_or_else(|| fail(format!("{what}: want Binary, got {}", a.data_type())))
 }
 
 /// A literal argument's bytes.
-fn literal_bytes<'a>(v: &'a ColumnarValue, what: &str) -> Result<&'a [u8]> {
+pub(crate) fn literal_bytes<'a>(v: &'a ColumnarValue, what: &str) -> Result<&'a [u8]> {
     match v {
         ColumnarValue::Scalar(ScalarValue::Binary(Some(b))) => Ok(b),
         _ => Err(fail(format!("{what}: want a Binary literal"))),
@@ -552,6 +555,7 @@ impl AggregateUDFImpl for Aggregate {
                 hashes: Vec::new(),
                 rows: Vec::new(),
             }),
+            WRITE_SCORES => Box::new(super::held::ScoresWriter::default()),
             _ => Box::new(HashesAcc(Vec::new())),
         })
     }
@@ -889,7 +893,7 @@ pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
 
 /// Every aggregate function.
 pub fn aggregate_functions() -> Vec<Arc<AggregateUDF>> {
-    [BUCKET_MOMENTS, BUCKET_DIGEST]
+    [BUCKET_MOMENTS, BUCKET_DIGEST, WRITE_SCORES]
         .into_iter()
         .map(|name| {
             Arc::new(AggregateUDF::from(Aggregate {

@@ -264,6 +264,43 @@ impl HeldOnEngine {
         super::manifest(&self.ctx, "anomark_scored", 0).await
     }
 
+    async fn write_scores_async(
+        &self,
+        dir: &std::path::Path,
+        scores: &[String],
+        names: &[String],
+        test: bool,
+    ) -> Result<Vec<String>> {
+        let parts = if test { "1, 2" } else { "1" };
+        let rows = collect(
+            &self.ctx,
+            "writing the scores",
+            &format!(
+                "SELECT {w}({dir}, {names}, g, part, f, r, a, {scores}) FROM (SELECT *, \
+                 CAST({p}(h) / {per} AS BIGINT) AS g FROM assigned WHERE part IN ({parts})) \
+                 GROUP BY g",
+                w = functions::WRITE_SCORES,
+                dir = sql_bytes(dir.to_string_lossy().as_bytes()),
+                names = sql_bytes(names.join("\n").as_bytes()),
+                scores = scores.join(", "),
+                p = functions::PREFIX16,
+                per = 65_536 / SCORE_PARTS,
+            ),
+        )
+        .await?;
+        let mut files = Vec::new();
+        for b in &rows {
+            let c = super::column::<datafusion::arrow::array::BinaryArray>(b, 0)?;
+            for i in 0..b.num_rows() {
+                if !c.value(i).is_empty() {
+                    files.push(String::from_utf8_lossy(c.value(i)).into_owned());
+                }
+            }
+        }
+        files.sort();
+        Ok(files)
+    }
+
     async fn sorted_normals_async(&self, part: Part, score: &str) -> Result<Vec<f64>> {
         let rows = collect(
             &self.ctx,
@@ -282,6 +319,206 @@ impl HeldOnEngine {
         // Order keys sort as `f64::total_cmp` does; equal keys, equal bits.
         keys.sort_unstable();
         Ok(keys.into_iter().map(functions::from_order_key).collect())
+    }
+}
+
+/// Parts of the scores written by an engine: at most 256, one per first
+/// byte of the rows' content hashes (so a part's rows, and its bytes, do
+/// not depend on how the engine partitioned them).
+pub const SCORE_PARTS: usize = 256;
+
+/// `anomark_write_scores`'s accumulator: one group's scored rows (split,
+/// file, row in file, label, each candidate's score), kept encoded until
+/// the group is complete, then written as one Parquet file, rows in
+/// (split, file, row) order, into the folder named by the call.
+#[derive(Debug, Default)]
+pub(crate) struct ScoresWriter {
+    /// The group, the folder and the candidates' names (`\n`-joined).
+    header: Option<(i64, Vec<u8>, Vec<u8>)>,
+    /// Scores a row.
+    k: usize,
+    /// Rows: split (1 byte), file and row (i64 LE each), label (1 byte),
+    /// then `k` scores (f64 LE).
+    rows: Vec<u8>,
+}
+
+type DfResult<T> = datafusion::common::Result<T>;
+
+impl ScoresWriter {
+    fn state_bytes(&self) -> Vec<u8> {
+        let mut v = Vec::new();
+        if let Some((g, dir, names)) = &self.header {
+            v.extend_from_slice(&g.to_le_bytes());
+            for b in [dir, names] {
+                v.extend_from_slice(&(b.len() as u32).to_le_bytes());
+                v.extend_from_slice(b);
+            }
+            v.extend_from_slice(&(self.k as u32).to_le_bytes());
+            v.extend_from_slice(&self.rows);
+        }
+        v
+    }
+
+    fn row_width(&self) -> usize {
+        18 + 8 * self.k
+    }
+}
+
+impl datafusion::logical_expr::Accumulator for ScoresWriter {
+    fn update_batch(&mut self, values: &[datafusion::arrow::array::ArrayRef]) -> DfResult<()> {
+        use datafusion::arrow::compute::cast;
+        use datafusion::arrow::datatypes::DataType;
+        const W: &str = functions::WRITE_SCORES;
+        if values.len() < 7 || values[0].is_empty() {
+            return Ok(());
+        }
+        let int = |a: &datafusion::arrow::array::ArrayRef| -> DfResult<Int64Array> {
+            cast(a, &DataType::Int64)?
+                .as_any()
+                .downcast_ref::<Int64Array>()
+                .cloned()
+                .ok_or_else(|| functions::fail(format!("{W}: want integers")))
+        };
+        let (dir, names) = (
+            functions::binaries(&values[0], W)?,
+            functions::binaries(&values[1], W)?,
+        );
+        let (g, part, f, r) = (
+            int(&values[2])?,
+            int(&values[3])?,
+            int(&values[4])?,
+            int(&values[5])?,
+        );
+        let a = functions::bools(&values[6], W)?;
+        let scores: Vec<&datafusion::arrow::array::Float64Array> = values[7..]
+            .iter()
+            .map(|c| functions::f64s(c, W))
+            .collect::<DfResult<_>>()?;
+        if self.header.is_none() {
+            self.header = Some((g.value(0), dir.value(0).to_vec(), names.value(0).to_vec()));
+            self.k = scores.len();
+        }
+        for i in 0..part.len() {
+            self.rows.push(part.value(i) as u8);
+            self.rows.extend_from_slice(&f.value(i).to_le_bytes());
+            self.rows.extend_from_slice(&r.value(i).to_le_bytes());
+            self.rows.push(u8::from(a.value(i)));
+            for s in &scores {
+                self.rows.extend_from_slice(&s.value(i).to_le_bytes());
+            }
+        }
+        Ok(())
+    }
+
+    fn evaluate(&mut self) -> DfResult<datafusion::common::ScalarValue> {
+        use datafusion::arrow::array::{ArrayRef, Float64Array, StringArray};
+        use datafusion::arrow::datatypes::{DataType, Field, Schema};
+        let Some((g, dir, names)) = self.header.clone() else {
+            return Ok(datafusion::common::ScalarValue::Binary(Some(vec![])));
+        };
+        let w = self.row_width();
+        let mut rows: Vec<&[u8]> = self.rows.chunks_exact(w).collect();
+        let key = |b: &[u8]| {
+            (
+                b[0],
+                i64::from_le_bytes(b[1..9].try_into().expect("8 bytes")),
+                i64::from_le_bytes(b[9..17].try_into().expect("8 bytes")),
+            )
+        };
+        rows.sort_unstable_by_key(|b| key(b));
+        let names = String::from_utf8_lossy(&names).into_owned();
+        let names: Vec<&str> = names.split('\n').collect();
+        let mut fields = vec![
+            Field::new("split", DataType::Utf8, false),
+            Field::new("file", DataType::Int64, false),
+            Field::new("row", DataType::Int64, false),
+            Field::new("label", DataType::Int64, false),
+        ];
+        fields.extend(
+            names
+                .iter()
+                .map(|n| Field::new(*n, DataType::Float64, false)),
+        );
+        let schema = std::sync::Arc::new(Schema::new(fields));
+        let mut columns: Vec<ArrayRef> = vec![
+            std::sync::Arc::new(StringArray::from(
+                rows.iter()
+                    .map(|b| Part::ALL[usize::from(b[0]).min(2)].name())
+                    .collect::<Vec<_>>(),
+            )),
+            std::sync::Arc::new(Int64Array::from(
+                rows.iter().map(|b| key(b).1).collect::<Vec<_>>(),
+            )),
+            std::sync::Arc::new(Int64Array::from(
+                rows.iter().map(|b| key(b).2).collect::<Vec<_>>(),
+            )),
+            std::sync::Arc::new(Int64Array::from(
+                rows.iter().map(|b| i64::from(b[17])).collect::<Vec<_>>(),
+            )),
+        ];
+        for c in 0..self.k {
+            columns.push(std::sync::Arc::new(Float64Array::from(
+                rows.iter()
+                    .map(|b| {
+                        f64::from_le_bytes(b[18 + 8 * c..26 + 8 * c].try_into().expect("8 bytes"))
+                    })
+                    .collect::<Vec<_>>(),
+            )));
+        }
+        let batch = datafusion::arrow::record_batch::RecordBatch::try_new(schema.clone(), columns)?;
+        let name = format!("part-{g:03}.parquet");
+        let path = std::path::Path::new(&*String::from_utf8_lossy(&dir)).join(&name);
+        let file = std::fs::File::create(&path)
+            .map_err(|e| functions::fail(format!("creating `{}`: {e}", path.display())))?;
+        let mut writer = datafusion::parquet::arrow::ArrowWriter::try_new(file, schema, None)?;
+        writer.write(&batch)?;
+        writer.close()?;
+        Ok(datafusion::common::ScalarValue::Binary(Some(
+            name.into_bytes(),
+        )))
+    }
+
+    fn size(&self) -> usize {
+        std::mem::size_of_val(self) + self.rows.capacity()
+    }
+
+    fn state(&mut self) -> DfResult<Vec<datafusion::common::ScalarValue>> {
+        Ok(vec![datafusion::common::ScalarValue::Binary(Some(
+            self.state_bytes(),
+        ))])
+    }
+
+    fn merge_batch(&mut self, states: &[datafusion::arrow::array::ArrayRef]) -> DfResult<()> {
+        let s = functions::binaries(&states[0], functions::WRITE_SCORES)?;
+        for i in 0..s.len() {
+            if s.is_null(i) || s.value(i).is_empty() {
+                continue;
+            }
+            let b = s.value(i);
+            let malformed =
+                || functions::fail(format!("{}: a malformed state", functions::WRITE_SCORES));
+            let u32_at = |at: usize| -> DfResult<usize> {
+                Ok(u32::from_le_bytes(
+                    b.get(at..at + 4)
+                        .ok_or_else(malformed)?
+                        .try_into()
+                        .expect("4 bytes"),
+                ) as usize)
+            };
+            let g = i64::from_le_bytes(b.get(..8).ok_or_else(malformed)?.try_into().expect("8"));
+            let dl = u32_at(8)?;
+            let dir = b.get(12..12 + dl).ok_or_else(malformed)?.to_vec();
+            let nl = u32_at(12 + dl)?;
+            let names = b.get(16 + dl..16 + dl + nl).ok_or_else(malformed)?.to_vec();
+            let k = u32_at(16 + dl + nl)?;
+            if self.header.is_none() {
+                self.header = Some((g, dir, names));
+                self.k = k;
+            }
+            self.rows
+                .extend_from_slice(b.get(20 + dl + nl..).ok_or_else(malformed)?);
+        }
+        Ok(())
     }
 }
 
@@ -336,6 +573,21 @@ impl HeldSplits for HeldOnEngine {
             .collect::<Result<_>>()?;
         self.runtime
             .block_on(self.scores_digest_async(&scores, test))
+    }
+
+    fn write_scores(
+        &self,
+        dir: &std::path::Path,
+        candidates: &[(usize, &dyn Model)],
+        names: &[String],
+        test: bool,
+    ) -> Result<Vec<String>> {
+        let scores: Vec<String> = candidates
+            .iter()
+            .map(|(set, model)| self.score_sql(*set, *model))
+            .collect::<Result<_>>()?;
+        self.runtime
+            .block_on(self.write_scores_async(dir, &scores, names, test))
     }
 
     fn sorted_normals(&self, part: Part, set: usize, model: &dyn Model) -> Result<Vec<f64>> {

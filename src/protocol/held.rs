@@ -69,6 +69,19 @@ pub trait HeldSplits: Send + Sync {
     /// under every candidate's model (feature set, model), in spec order.
     fn scores_digest(&self, candidates: &[(usize, &dyn Model)], test: bool) -> Result<String>;
 
+    /// Writes every scored row (validation, and test when `test`) with
+    /// each candidate's score (columns `names`, candidates in spec order) as
+    /// Parquet parts into `dir`, where the rows are (a cluster's executors
+    /// write them; `dir` is on a filesystem they share with the client).
+    /// Returns the parts' file names, sorted.
+    fn write_scores(
+        &self,
+        dir: &std::path::Path,
+        candidates: &[(usize, &dyn Model)],
+        names: &[String],
+        test: bool,
+    ) -> Result<Vec<String>>;
+
     /// The scores of `part`'s normal rows under `model`, in ascending
     /// `f64::total_cmp` order (no row identity: no place, id or label).
     fn sorted_normals(&self, part: Part, set: usize, model: &dyn Model) -> Result<Vec<f64>>;

@@ -268,6 +268,51 @@ fn scores_line_difference(recorded: &str, recomputed: &str, line: usize) -> Stri
     }
 }
 
+/// The scores digest (`audit::hash::scores_digest`) of the Parquet parts
+/// an engine wrote (`names`, relative to `dir`): every row's split, file,
+/// row, label and the candidates' scores in the parts' column order.
+fn parts_digest(dir: &Path, names: &[&String]) -> Result<String> {
+    use polars::prelude::*;
+    let mut rows = Vec::new();
+    for name in names {
+        let path = dir.join(name);
+        let bad = |e: &dyn std::fmt::Display| Error::Verify {
+            dir: dir.to_path_buf(),
+            problems: vec![format!("the scores part `{name}` does not read: {e}")],
+        };
+        let file = std::fs::File::open(&path).map_err(|e| Error::io(&path, "reading", e))?;
+        let df = ParquetReader::new(file).finish().map_err(|e| bad(&e))?;
+        let cols = df.columns();
+        if cols.len() < 4 {
+            return Err(bad(&"fewer than four columns"));
+        }
+        let split = cols[0].str().map_err(|e| bad(&e))?;
+        let f = cols[1].i64().map_err(|e| bad(&e))?;
+        let r = cols[2].i64().map_err(|e| bad(&e))?;
+        let label = cols[3].i64().map_err(|e| bad(&e))?;
+        let scores: Vec<&Float64Chunked> = cols[4..]
+            .iter()
+            .map(|c| c.f64().map_err(|e| bad(&e)))
+            .collect::<Result<_>>()?;
+        for i in 0..df.height() {
+            let part = match split.get(i) {
+                Some("validation") => 1u8,
+                Some("test") => 2,
+                other => return Err(bad(&format!("a row of split {other:?}"))),
+            };
+            let (Some(f), Some(r), Some(a)) = (f.get(i), r.get(i), label.get(i)) else {
+                return Err(bad(&"a missing value"));
+            };
+            let s: Vec<f64> = scores
+                .iter()
+                .map(|c| c.get(i).ok_or_else(|| bad(&"a missing score")))
+                .collect::<Result<_>>()?;
+            rows.push(hash::score_row(part, f as u32, r as u64, a == 1, s));
+        }
+    }
+    Ok(hash::scores_digest(&rows))
+}
+
 /// Verifies a run directory, then recomputes it from `spec` and the data it
 /// names (refusing if the spec or an input's hash differs from the record)
 /// and confirms that every file matches, reporting the first difference.
@@ -320,10 +365,24 @@ pub fn verify_by_recomputation(
         engine: super::Engine::InProcess,
     };
     let mut files = recompute(&opts, &replay)?;
+    let parts: Vec<&String> = manifest
+        .files
+        .keys()
+        .filter(|n| n.starts_with(&format!("{}/", super::report::SCORES_PARTS)))
+        .collect();
     if run.engine.is_some() {
-        // A run on an engine leaves its scores on the engine: recomputed
-        // in process, every other file is compared.
+        // A run on an engine wrote its scores as Parquet parts, scores.csv
+        // in process: both give the scores digest, which run.json records
+        // and the recomputed run.json (compared below) computes again.
         files.remove("scores.csv");
+        let digest = parts_digest(dir, &parts)?;
+        if run.scores_digest.as_deref() != Some(digest.as_str()) {
+            return Err(fail(vec![format!(
+                "the scores' Parquet parts give the scores digest {digest}, but `run.json` \
+                 records {}",
+                run.scores_digest.as_deref().unwrap_or("none")
+            )]));
+        }
     }
     // The scores first: a differing score (a program that is not
     // deterministic) is named by its row rather than by what it changed.
@@ -333,6 +392,9 @@ pub fn verify_by_recomputation(
         .filter(|n| *n == "scores.csv")
         .chain(manifest.files.keys().filter(|n| *n != "scores.csv"));
     for name in scores_first {
+        if run.engine.is_some() && parts.contains(&name) {
+            continue;
+        }
         let recorded = read(dir.join(name))?;
         match files.get(name) {
             Some(b) if *b == *recorded.as_slice() => {}

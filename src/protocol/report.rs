@@ -245,8 +245,8 @@ fn scores_digest(rows: &Rows, opened: &Opened) -> Result<String> {
 /// The run directory's files that need no record: scores.csv and the
 /// figures, made while the bootstrap intervals are still being computed.
 pub(crate) struct Artifacts {
-    /// scores.csv, in parts (none when the rows are on an engine).
-    scores: Option<Vec<Vec<u8>>>,
+    /// The scored rows: scores.csv, or the Parquet parts an engine wrote.
+    scores: ScoresOut,
     /// The validation figures.
     validation: Vec<plots::Plot>,
     /// The test figures (none while the test split stays sealed).
@@ -255,8 +255,25 @@ pub(crate) struct Artifacts {
     features: Vec<plots::Plot>,
 }
 
-/// scores.csv and the figures.
-pub(crate) fn artifacts(plan: &Plan, rows: &Rows, opened: &Opened) -> Result<Artifacts> {
+/// The scored rows as the run directory holds them.
+enum ScoresOut {
+    /// scores.csv, in parts (the rows in this process).
+    Csv(Vec<Vec<u8>>),
+    /// Parquet parts an engine wrote into the staging folder (their names).
+    Parts(crate::output::Staging, Vec<String>),
+}
+
+/// The run directory's folder of the scores' Parquet parts on an engine.
+pub const SCORES_PARTS: &str = "scores";
+
+/// scores.csv (or, on an engine, the scores' Parquet parts written into
+/// `staging`) and the figures.
+pub(crate) fn artifacts(
+    plan: &Plan,
+    rows: &Rows,
+    opened: &Opened,
+    staging: Option<crate::output::Staging>,
+) -> Result<Artifacts> {
     let data = &rows.data;
     let fitted = &opened.chosen.fitted;
     let candidates = &fitted.candidates;
@@ -350,23 +367,34 @@ pub(crate) fn artifacts(plan: &Plan, rows: &Rows, opened: &Opened) -> Result<Art
             .collect::<Result<_>>()
     };
     let no_test: Vec<Vec<f64>> = vec![vec![]; candidates.len()];
-    let scores = || {
+    let scores = move || -> Result<ScoresOut> {
         let _t = crate::progress::part("scores.csv");
-        matches!(rows.held, Held::Rows).then(|| {
-            scores_csv(
+        match &rows.held {
+            Held::Rows => Ok(ScoresOut::Csv(scores_csv(
                 data,
                 candidates,
                 &rows.validation,
                 test.map_or(&[][..], |t| &t.rows),
                 test.map_or(&no_test, |t| &t.scores),
-            )
-        })
+            ))),
+            Held::Engine(e) => {
+                let staging = staging
+                    .ok_or_else(|| Error::internal("an engine run without a staging folder"))?;
+                let models: Vec<(usize, &dyn detect::Model)> = candidates
+                    .iter()
+                    .map(|c| (c.set, c.model.as_ref()))
+                    .collect();
+                let names: Vec<String> = candidates.iter().map(|c| c.name.clone()).collect();
+                let parts = e.write_scores(staging.path(), &models, &names, test.is_some())?;
+                Ok(ScoresOut::Parts(staging, parts))
+            }
+        }
     };
     let (scores, (by_score, by_feature)) =
         rayon::join(scores, || rayon::join(score_figures, feature_figures));
     let (validation, test) = by_score?;
     Ok(Artifacts {
-        scores,
+        scores: scores?,
         validation,
         test,
         features: by_feature?,
@@ -389,8 +417,14 @@ pub(crate) fn files(
     files.add("run.json", run_json);
     files.add(SPEC_COPY, plan.spec_bytes.clone());
     let mut ctx = wording::card_context(plan, rec, &rec.spec.file, fingerprint)?;
-    if let Some(scores) = artifacts.scores {
-        files.add_parts("scores.csv", scores);
+    match artifacts.scores {
+        ScoresOut::Csv(scores) => files.add_parts("scores.csv", scores),
+        ScoresOut::Parts(staging, parts) => {
+            for p in parts {
+                files.add_moved(&format!("{SCORES_PARTS}/{p}"), staging.path().join(&p));
+            }
+            files.keep_staging(staging);
+        }
     }
     ctx.plots_validation = artifacts.validation;
     ctx.plots_test = artifacts.test;

@@ -343,6 +343,83 @@ fn pump_housing_on_parts(dir: &Path, files: usize) {
     std::fs::write(dir.join("spec.yaml"), spec).unwrap();
 }
 
+/// One scored row: id, split, label, each candidate's score's bits.
+type ScoredRow = (String, String, String, Vec<u64>);
+
+/// scores.csv's rows (plain ids), sorted.
+fn csv_rows(csv: &[u8]) -> Vec<ScoredRow> {
+    let text = String::from_utf8(csv.to_vec()).unwrap();
+    let mut rows: Vec<ScoredRow> = text
+        .lines()
+        .skip(1)
+        .map(|l| {
+            let f: Vec<&str> = l.split(',').collect();
+            (
+                f[0].to_string(),
+                f[1].to_string(),
+                f[2].to_string(),
+                f[3..]
+                    .iter()
+                    .map(|v| v.parse::<f64>().unwrap().to_bits())
+                    .collect(),
+            )
+        })
+        .collect();
+    rows.sort();
+    rows
+}
+
+/// The rows of the scores' Parquet parts of the run in `dir` (whose source
+/// was the demo file in `files` parts), each named by the demo row's id.
+fn parts_rows(dir: &Path, parts: &[String], files: usize) -> Vec<ScoredRow> {
+    use datafusion::arrow::array::{Array, Int64Array};
+    use datafusion::parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let demo = std::fs::read_to_string(root.join("demo-data/pump-housings.csv")).unwrap();
+    let ids: Vec<&str> = demo
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').next().unwrap())
+        .collect();
+    let chunk = ids.len().div_ceil(files);
+    let mut rows = Vec::new();
+    for p in parts {
+        let file = std::fs::File::open(dir.join("out").join(p)).unwrap();
+        let reader = ParquetRecordBatchReaderBuilder::try_new(file)
+            .unwrap()
+            .build()
+            .unwrap();
+        for b in reader {
+            let b = b.unwrap();
+            let col = |j: usize| b.column(j).clone();
+            let split = col(0);
+            let split = split.as_any().downcast_ref::<StringArray>().unwrap();
+            let (f, r) = (col(1), col(2));
+            let f = f.as_any().downcast_ref::<Int64Array>().unwrap();
+            let r = r.as_any().downcast_ref::<Int64Array>().unwrap();
+            let label = col(3);
+            let label = label.as_any().downcast_ref::<Int64Array>().unwrap();
+            for i in 0..b.num_rows() {
+                let at = f.value(i) as usize * chunk + r.value(i) as usize;
+                rows.push((
+                    ids[at].to_string(),
+                    split.value(i).to_string(),
+                    label.value(i).to_string(),
+                    (4..b.num_columns())
+                        .map(|j| {
+                            let c = col(j);
+                            let c = c.as_any().downcast_ref::<Float64Array>().unwrap();
+                            c.value(i).to_bits()
+                        })
+                        .collect(),
+                ));
+            }
+        }
+    }
+    rows.sort();
+    rows
+}
+
 /// Runs `anomark ARGS` in `dir`, returning (exit code, stderr).
 fn anomark(dir: &Path, args: &[&str]) -> (i32, String) {
     let out = Command::new(BIN)
@@ -487,14 +564,36 @@ fn an_example_on_parquet_parts_gives_the_same_run_on_every_engine() {
             String::from_utf8(want["run.json"].clone()).unwrap(),
             "run.json on {engine}"
         );
-        // The scores stay on the engine: every other file is the same.
+        // The engine wrote the scores as Parquet parts (no scores.csv):
+        // their rows are scores.csv's, value for value; every other file is
+        // the same.
         assert!(!got.contains_key("scores.csv"), "scores.csv on {engine}");
+        let parts: Vec<String> = got
+            .keys()
+            .filter(|n| n.starts_with("scores/part-") && n.ends_with(".parquet"))
+            .cloned()
+            .collect();
+        assert!(!parts.is_empty(), "no scores parts on {engine}");
+        let files = if engine == "local" { 3 } else { 1 };
+        assert_eq!(
+            parts_rows(dir, &parts, files),
+            csv_rows(&want["scores.csv"]),
+            "scores on {engine}"
+        );
         for (name, bytes) in &want {
             if name != "run.json" && name != "scores.csv" {
                 assert!(got.get(name) == Some(bytes), "{name} differs on {engine}");
             }
         }
-        assert_eq!(got.len() + 2, want.len(), "files on {engine}");
+        assert_eq!(got.len() + 2, want.len() + parts.len(), "files on {engine}");
+        // Each part is listed with its hash in the signed manifest.
+        let manifest: serde_json::Value =
+            serde_json::from_slice(&std::fs::read(dir.join("out").join("manifest.json")).unwrap())
+                .unwrap();
+        for p in &parts {
+            let listed = manifest["files"][p]["blake3"].as_str().unwrap();
+            assert_eq!(listed, blake3::hash(&got[p]).to_hex().as_str(), "{p}");
+        }
         // The engine run recomputed in this process gives the same bytes.
         let (code, stderr) = anomark(dir, &["verify", "out", "--pubkey", "key.pub.pem", "--data"]);
         assert_eq!(code, 0, "verify --data of the run on {engine}: {stderr}");
