@@ -8,9 +8,9 @@
 //! leakage, counts the splits, and summarises the training rows: their
 //! moments by content-hash bucket per feature set, the train manifest by
 //! bucket digests, and a systematic sample (every k-th row in content-hash
-//! order) for the figures and the drift reference. The client then holds
-//! the validation and test rows only, read back from the engine, and every
-//! later stage runs as for a streamed run: the same numbers, to the bit.
+//! order) for the figures and the drift reference. The validation and test
+//! rows stay on the engine (`super::held`): the later stages ask it for the
+//! summaries they read, the same numbers, to the bit.
 
 use std::collections::BTreeMap;
 
