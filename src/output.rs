@@ -156,36 +156,36 @@ impl RunFiles {
                 std::fs::create_dir_all(dir).map_err(|e| Error::io(dir, "creating", e))?;
             }
         }
-        // Files are written, flushed and hashed on all cores; the manifest
-        // lists them in name order whatever the order of completion.
+        // Files are written and hashed on all cores; the manifest lists them
+        // in name order whatever the order of completion.
         use rayon::prelude::*;
-        let mut digests: BTreeMap<String, crate::audit::hash::FileDigest> = self
+        let mut written: Vec<(String, std::fs::File, crate::audit::hash::FileDigest)> = self
             .files
             .par_iter()
             .map(|(name, parts)| {
-                write_synced(&tmp.path().join(name), parts)?;
+                let path = tmp.path().join(name);
+                let file = write_unsynced(&path, parts)?;
                 let mut hasher = blake3::Hasher::new();
                 for p in parts {
                     hasher.update(p);
                 }
-                Ok((
-                    name.clone(),
-                    crate::audit::hash::FileDigest {
-                        bytes: parts.iter().map(|p| p.len() as u64).sum(),
-                        blake3: hasher.finalize().to_hex().to_string(),
-                    },
-                ))
+                let digest = crate::audit::hash::FileDigest {
+                    bytes: parts.iter().map(|p| p.len() as u64).sum(),
+                    blake3: hasher.finalize().to_hex().to_string(),
+                };
+                Ok((name.clone(), file, digest))
             })
             .collect::<Result<_>>()?;
-        // Files an engine wrote: moved in, synced and hashed as they are.
+        // Files an engine wrote: moved in, hashed as they are, and flushed
+        // with the others.
         for (name, from) in &self.moved {
             let to = tmp.path().join(name);
             std::fs::rename(from, &to).map_err(|e| Error::io(&to, "moving into place", e))?;
-            std::fs::File::open(&to)
-                .and_then(|f| f.sync_all())
-                .map_err(|e| Error::io(&to, "syncing", e))?;
-            digests.insert(name.clone(), crate::audit::hash::file(&to)?);
+            let digest = crate::audit::hash::file(&to)?;
+            let file = std::fs::File::open(&to).map_err(|e| Error::io(&to, "reading", e))?;
+            written.push((name.clone(), file, digest));
         }
+        let digests = sync_all_at_once(tmp.path(), written)?;
         let manifest = Manifest {
             format: 1,
             tool: crate::record::tool(),
@@ -195,11 +195,18 @@ impl RunFiles {
         let mut manifest_bytes = serde_json::to_vec_pretty(&manifest)
             .map_err(|e| Error::internal(format!("serialising the manifest: {e}")))?;
         manifest_bytes.push(b'\n');
-        write_synced(&tmp.path().join(MANIFEST), &[&manifest_bytes])?;
-        write_synced(
-            &tmp.path().join(SIGNATURE),
-            &[sign::sign(key, &manifest_bytes).as_bytes()],
-        )?;
+        let signature = sign::sign(key, &manifest_bytes);
+        let last = [
+            (MANIFEST, manifest_bytes.as_slice()),
+            (SIGNATURE, signature.as_bytes()),
+        ]
+        .into_iter()
+        .map(|(name, bytes)| {
+            let file = write_unsynced(&tmp.path().join(name), &[bytes])?;
+            Ok((name.to_string(), file, ()))
+        })
+        .collect::<Result<Vec<_>>>()?;
+        sync_all_at_once(tmp.path(), last)?;
 
         fail_point("before-rename")?;
         pause_point("before-rename");
@@ -222,14 +229,58 @@ impl RunFiles {
     }
 }
 
-fn write_synced<B: AsRef<[u8]>>(path: &Path, parts: &[B]) -> Result<()> {
+/// Creates `path` and writes `parts` to it, not yet flushed to the disk.
+fn write_unsynced<B: AsRef<[u8]>>(path: &Path, parts: &[B]) -> Result<std::fs::File> {
     use std::io::Write;
     let mut f = std::fs::File::create(path).map_err(|e| Error::io(path, "creating", e))?;
     parts
         .iter()
         .try_for_each(|p| f.write_all(p.as_ref()))
-        .and_then(|_| f.sync_all())
-        .map_err(|e| Error::io(path, "writing", e))
+        .map_err(|e| Error::io(path, "writing", e))?;
+    Ok(f)
+}
+
+/// Files flushed to the disk at most this many at a time.
+const SYNCS_IN_FLIGHT: usize = 64;
+
+/// Flushes every written file to the disk, each from its own thread (up to
+/// [`SYNCS_IN_FLIGHT`] at once): a journalling file system commits the
+/// flushes that wait together in one journal commit, where flushing the
+/// files one after another waits for one commit each. Returns the digests
+/// by name once every file is on the disk.
+fn sync_all_at_once<D: Send>(
+    dir: &Path,
+    written: Vec<(String, std::fs::File, D)>,
+) -> Result<BTreeMap<String, D>> {
+    let mut out = BTreeMap::new();
+    let mut written = written.into_iter().peekable();
+    while written.peek().is_some() {
+        let batch: Vec<_> = written.by_ref().take(SYNCS_IN_FLIGHT).collect();
+        let synced: Vec<Result<(String, D)>> = std::thread::scope(|scope| {
+            let handles: Vec<_> = batch
+                .into_iter()
+                .map(|(name, file, digest)| {
+                    scope.spawn(move || {
+                        file.sync_all()
+                            .map(|()| (name.clone(), digest))
+                            .map_err(|e| Error::io(dir.join(&name), "writing", e))
+                    })
+                })
+                .collect();
+            handles
+                .into_iter()
+                .map(|h| {
+                    h.join()
+                        .unwrap_or_else(|_| Err(Error::internal("a file flush panicked")))
+                })
+                .collect()
+        });
+        for r in synced {
+            let (name, digest) = r?;
+            out.insert(name, digest);
+        }
+    }
+    Ok(out)
 }
 
 /// Test hook: `ANOMARK_FAIL_AT=<point>` makes the run fail at that point, to

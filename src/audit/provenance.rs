@@ -17,7 +17,11 @@ pub struct Provenance {
 }
 
 fn git(dir: &Path, args: &[&str]) -> Option<String> {
+    // Without optional locks `git status` leaves the index as it is (it
+    // would otherwise refresh it, writing into the user's repository and
+    // taking a lock a concurrent git command of theirs could meet).
     let out = Command::new("git")
+        .arg("--no-optional-locks")
         .arg("-C")
         .arg(dir)
         .args(args)
@@ -89,9 +93,21 @@ mod tests {
             "-qm",
             "t",
         ]);
+        // A file touched with the same content: a plain `git status` would
+        // refresh the index's stat data and rewrite it; reading the state
+        // must leave the repository's files as they were.
+        let index = std::fs::read(d.path().join(".git/index")).unwrap();
+        let later = std::time::SystemTime::now() + std::time::Duration::from_secs(5);
+        std::fs::File::options()
+            .write(true)
+            .open(d.path().join("s.yaml"))
+            .unwrap()
+            .set_modified(later)
+            .unwrap();
         let p = of(&d.path().join("s.yaml")).unwrap();
         assert_eq!(p.commit.len(), 40);
         assert!(!p.dirty);
+        assert_eq!(std::fs::read(d.path().join(".git/index")).unwrap(), index);
         std::fs::write(d.path().join("s.yaml"), "y").unwrap();
         assert!(of(&d.path().join("s.yaml")).unwrap().dirty);
     }

@@ -51,7 +51,18 @@ pub(crate) fn of_set<'a>(plan: &Plan, rows: &'a Rows, si: usize) -> Result<SetTr
     };
     let names = fitted.names();
     let t = crate::progress::part("feature matrices, train and validation");
-    let train = fitted.apply(&rows.data, &rows.train)?;
+    // When every detector fits from the moments and the features are the
+    // source columns themselves, the training rows' matrix would only feed
+    // the moments: they are folded from the source rows a stretch of whole
+    // buckets at a time instead ([`moments_in_stretches`]), and no training
+    // matrix is made.
+    let from_moments = plan.detectors.iter().all(|&k| detect::fits_from_moments(k));
+    let direct = streamed.is_none() && from_moments && fitted.is_identity(&rows.data);
+    let train = if direct {
+        Array2::zeros((0, names.len()))
+    } else {
+        fitted.apply(&rows.data, &rows.train)?
+    };
     let validation = SplitFeatures::of(&fitted, &rows.data, &rows.validation)?;
     drop(t);
     let t = crate::progress::part("training moments");
@@ -65,10 +76,17 @@ pub(crate) fn of_set<'a>(plan: &Plan, rows: &'a Rows, si: usize) -> Result<SetTr
                 .iter()
                 .map(|r| rows.hashes[r.0 as usize].bucket())
                 .collect();
-            Some(Cow::Owned(crate::moments::of_sorted_buckets(
-                &buckets,
-                train.view(),
-            )?))
+            Some(Cow::Owned(if direct {
+                moments_in_stretches(
+                    &fitted,
+                    &rows.data,
+                    &rows.train,
+                    &buckets,
+                    MOMENT_STRETCH_ROWS,
+                )?
+            } else {
+                crate::moments::of_sorted_buckets(&buckets, train.view())?
+            }))
         }
         None => None,
     };
@@ -80,6 +98,36 @@ pub(crate) fn of_set<'a>(plan: &Plan, rows: &'a Rows, si: usize) -> Result<SetTr
         moments,
         validation,
     })
+}
+
+/// Training rows copied per stretch by [`moments_in_stretches`] (at least;
+/// a stretch ends with its last bucket).
+const MOMENT_STRETCH_ROWS: usize = 1 << 16;
+
+/// The moments of the training rows `train` (in content-hash order, `buckets`
+/// their buckets) from their features copied a stretch of whole buckets (at
+/// least `stretch` rows) at a time: the same bits as [`crate::moments::of_sorted_buckets`] over the
+/// whole matrix, since each bucket is computed from all its rows and the
+/// buckets are folded in the same order; a stretch's copy stays in cache.
+fn moments_in_stretches(
+    fitted: &FittedFeatures,
+    data: &Dataset,
+    train: &[RowId],
+    buckets: &[u16],
+    stretch: usize,
+) -> Result<Moments> {
+    let mut fold = crate::moments::Fold::new(fitted.features.len());
+    let mut lo = 0;
+    while lo < train.len() {
+        let mut hi = (lo + stretch.max(1)).min(train.len());
+        while hi < train.len() && buckets[hi] == buckets[hi - 1] {
+            hi += 1;
+        }
+        let x = fitted.apply(data, &train[lo..hi])?;
+        fold.add_sorted_buckets(&buckets[lo..hi], x.view())?;
+        lo = hi;
+    }
+    Ok(fold.finish())
 }
 
 impl SetTraining<'_> {
@@ -136,4 +184,57 @@ pub(crate) fn checked_scores(
         .in_candidate(name));
     }
     Ok(s)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::features::FittedFeature;
+    use crate::spec::FeatureInput;
+
+    /// Folding the moments a few rows at a time, the stretches ending with
+    /// their last bucket, gives the bits of the moments of the whole
+    /// training matrix (rows in a scrambled source order, buckets repeated
+    /// across stretch ends).
+    #[test]
+    fn moments_in_stretches_equal_the_whole_matrix() {
+        let (n, d) = (300usize, 3usize);
+        let x: Vec<f64> = (0..n * d)
+            .map(|i| ((i * 7919 % 1009) as f64 - 500.0) / 37.0)
+            .collect();
+        let data = Dataset::sample_of(vec!["a".into(), "b".into(), "c".into()], x).unwrap();
+        let fitted = FittedFeatures {
+            set: "s".into(),
+            features: (0..d)
+                .map(|j| FittedFeature {
+                    name: data.columns[j].clone(),
+                    input: FeatureInput::Column(j),
+                    from: String::new(),
+                    transforms: vec![],
+                })
+                .collect(),
+        };
+        assert!(fitted.is_identity(&data));
+        // Training rows in a scrambled order of the source, with buckets
+        // ascending and each bucket holding one to five rows.
+        let train: Vec<RowId> = (0..n as u64).map(|i| RowId(i * 131 % n as u64)).collect();
+        let mut buckets: Vec<u16> = (0..n).map(|i| (i / (1 + i % 5)) as u16).collect();
+        buckets.sort_unstable();
+        let whole = fitted.apply(&data, &train).unwrap();
+        let want = crate::moments::of_sorted_buckets(&buckets, whole.view()).unwrap();
+        let bits = |m: &Moments| {
+            (
+                m.n,
+                m.mean
+                    .iter()
+                    .chain(&m.m2)
+                    .map(|v| v.to_bits())
+                    .collect::<Vec<_>>(),
+            )
+        };
+        for stretch in [1, 2, 7, 64, n, 10 * n] {
+            let got = moments_in_stretches(&fitted, &data, &train, &buckets, stretch).unwrap();
+            assert_eq!(bits(&got), bits(&want), "stretch {stretch}");
+        }
+    }
 }
