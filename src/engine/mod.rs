@@ -15,6 +15,7 @@ pub mod cluster;
 pub mod functions;
 pub(crate) mod held;
 pub mod run;
+pub(crate) mod sample;
 
 use std::collections::BTreeMap;
 

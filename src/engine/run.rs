@@ -14,9 +14,7 @@
 
 use std::collections::BTreeMap;
 
-use datafusion::arrow::array::{
-    Array, ArrayRef, FixedSizeBinaryArray, Float64Array, Int64Array, StringArray,
-};
+use datafusion::arrow::array::{Array, ArrayRef, Int64Array, StringArray};
 use datafusion::arrow::compute::cast;
 use datafusion::arrow::datatypes::{DataType, Field, Schema};
 use datafusion::arrow::record_batch::RecordBatch;
@@ -48,8 +46,7 @@ impl Ingest for OnEngine {
             let stage = progress.stage("starting the engine session");
             let ctx = context(&self.0).await?;
             drop(stage);
-            let sorted_on_engine = matches!(self.0, Engine::Local { .. });
-            let (ingested, held) = ingest(&ctx, plan, progress, sorted_on_engine).await?;
+            let (ingested, held) = ingest(&ctx, plan, progress).await?;
             Ok::<_, Error>((ctx, ingested, held))
         })?;
         // The validation and test rows stay on the engine; the later
@@ -232,17 +229,6 @@ async fn context(engine: &Engine) -> Result<SessionContext> {
     Ok(ctx)
 }
 
-/// A result column as Float64 (cast on the client when the engine chose
-/// another numeric type).
-fn f64s(b: &RecordBatch, j: usize) -> Result<Float64Array> {
-    let a: ArrayRef = cast(b.column(j), &DataType::Float64)
-        .map_err(|e| engine_error("reading the engine's result", e))?;
-    a.as_any()
-        .downcast_ref::<Float64Array>()
-        .cloned()
-        .ok_or_else(|| Error::internal("an engine result not castable to Float64"))
-}
-
 /// A result column as Int64.
 fn i64s(b: &RecordBatch, j: usize) -> Result<Int64Array> {
     let a: ArrayRef = cast(b.column(j), &DataType::Int64)
@@ -292,7 +278,6 @@ async fn ingest(
     ctx: &SessionContext,
     plan: &Plan,
     progress: &Progress,
-    sorted_on_engine: bool,
 ) -> Result<(Ingested, (Vec<SourceFile>, String))> {
     let source = &plan.sources[0];
     let label = plan.label.as_ref().expect("checked by the scope");
@@ -518,7 +503,7 @@ async fn ingest(
     }
     let manifest = super::manifest(ctx, "assigned", Part::Train as i8).await?;
     let train_rows = counts[0].normal + counts[0].anomaly;
-    let (sample, samples) = train_sample(ctx, nx, train_rows, columns, sorted_on_engine).await?;
+    let (sample, samples) = train_sample(ctx, nx, train_rows, columns).await?;
     drop(stage);
 
     let stage = progress.stage("hashing the validation and test manifests");
@@ -743,62 +728,27 @@ async fn train_sample(
     nx: usize,
     train_rows: usize,
     columns: Vec<String>,
-    sorted_on_engine: bool,
 ) -> Result<(Dataset, Vec<Vec<RowId>>)> {
     let strides: Vec<usize> = SAMPLE_LIMITS
         .iter()
         .map(|&l| train_rows.div_ceil(l.max(1)).max(1))
         .collect();
-    let xl = (0..nx)
-        .map(|j| format!("x{j}"))
-        .collect::<Vec<_>>()
-        .join(", ");
-    // In process the engine sorts; on a cluster the client does (a full
-    // sort merged across partitions stalled Ballista 55 in the suite's
-    // cluster), then keeps every k-th row.
-    let order = if sorted_on_engine {
-        " ORDER BY h, f, r"
-    } else {
-        ""
-    };
-    let rows = collect(
-        ctx,
-        "sampling the training rows",
-        &format!("SELECT h, f, r, {xl} FROM assigned WHERE part = 0{order}"),
-    )
-    .await?;
-    // (content hash, file, row) and the row's values.
-    type Keyed = (([u8; 32], i64, i64), Vec<f64>);
-    let mut all: Vec<Keyed> = Vec::new();
-    let mut kept: Vec<(usize, Vec<f64>)> = Vec::new();
-    let mut k = 0usize;
-    for b in &rows {
-        let h = super::column::<FixedSizeBinaryArray>(b, 0)?;
-        let (f, r) = (i64s(b, 1)?, i64s(b, 2)?);
-        let cols: Vec<Float64Array> = (0..nx).map(|j| f64s(b, j + 3)).collect::<Result<_>>()?;
-        for i in 0..b.num_rows() {
-            let values = cols.iter().map(|c| c.value(i)).collect();
-            if !sorted_on_engine {
-                let key: [u8; 32] = h
-                    .value(i)
-                    .try_into()
-                    .map_err(|_| Error::internal("a content hash of other than 32 bytes"))?;
-                all.push(((key, f.value(i), r.value(i)), values));
-            } else if strides.iter().any(|s| k.is_multiple_of(*s)) {
-                kept.push((k, values));
-            }
-            k += 1;
-        }
-    }
-    if !sorted_on_engine {
-        all.sort_unstable_by_key(|row| row.0);
-        kept = all
-            .into_iter()
-            .enumerate()
-            .filter(|(k, _)| strides.iter().any(|s| k.is_multiple_of(*s)))
-            .map(|(k, (_, values))| (k, values))
-            .collect();
-    }
+    // Each content-hash bucket numbered on its own and every k-th row kept
+    // on the engine (`super::sample`): no sort merged across partitions (one
+    // stalled Ballista 55 in the suite's cluster), no training row sent to
+    // the client but the sampled ones.
+    let kept = super::sample::every_kth(ctx, nx, &strides).await?;
+    sample_of(kept, &strides, columns, nx)
+}
+
+/// The sampled training rows (their rank in content-hash order and their
+/// values, in rank order) as the sample dataset and, per stride, its rows.
+fn sample_of(
+    kept: Vec<(usize, Vec<f64>)>,
+    strides: &[usize],
+    columns: Vec<String>,
+    nx: usize,
+) -> Result<(Dataset, Vec<Vec<RowId>>)> {
     let mut samples: Vec<Vec<RowId>> = vec![Vec::new(); strides.len()];
     let mut x = Vec::with_capacity(kept.len() * nx);
     for (at, (k, values)) in kept.iter().enumerate() {
