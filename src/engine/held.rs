@@ -719,4 +719,74 @@ mod tests {
         let got = held.scores_digest(&[(0, model.as_ref())], true).unwrap();
         assert_eq!(got, crate::audit::hash::scores_digest(&rows));
     }
+
+    /// A score that is not a number is refused on the engine as in process:
+    /// the candidate named, and the first such row in the split's canonical
+    /// (content hash, file, row) order named by its file and line.
+    #[test]
+    fn a_score_that_is_not_a_number_is_refused_naming_its_row() {
+        let schema = Arc::new(Schema::new(vec![
+            Field::new("h", DataType::FixedSizeBinary(32), false),
+            Field::new("f", DataType::Int64, false),
+            Field::new("r", DataType::Int64, false),
+            Field::new("a", DataType::Boolean, false),
+            Field::new("part", DataType::Int8, false),
+            Field::new("x0", DataType::Float64, false),
+        ]));
+        // Rows 1 and 3 score NaN; row 3's content hash sorts first.
+        let h: Vec<[u8; 32]> = vec![[5; 32], [9; 32], [7; 32], [2; 32]];
+        let columns: Vec<ArrayRef> = vec![
+            Arc::new(FixedSizeBinaryArray::try_from_iter(h.iter()).unwrap()),
+            Arc::new(Int64Array::from(vec![0i64; 4])),
+            Arc::new(Int64Array::from(vec![0i64, 1, 2, 3])),
+            Arc::new(BooleanArray::from(vec![false, true, false, false])),
+            Arc::new(Int8Array::from(vec![1i8; 4])),
+            Arc::new(Float64Array::from(vec![1.0, f64::NAN, 2.0, f64::NAN])),
+        ];
+        let batch = RecordBatch::try_new(schema.clone(), columns).unwrap();
+        let ctx = super::super::local_context(2, 2).unwrap();
+        ctx.register_table(
+            "assigned",
+            Arc::new(MemTable::try_new(schema, vec![vec![batch]]).unwrap()),
+        )
+        .unwrap();
+        let held = HeldOnEngine {
+            runtime: super::super::cluster::runtime().unwrap(),
+            ctx,
+            sets: vec![vec!["x0".into()]],
+            files: vec![SourceFile {
+                path: "data.csv".into(),
+                shown: "data.csv".into(),
+                format: crate::data::Format::Csv,
+                digest: crate::audit::hash::FileDigest {
+                    bytes: 0,
+                    blake3: String::new(),
+                },
+                rows: 4,
+            }],
+            validation_manifest: String::new(),
+        };
+        let model = functions::ModelParams::Independent {
+            mean: vec![0.0],
+            variance: vec![1.0],
+        }
+        .model(&["x0".to_string()])
+        .unwrap();
+        let e = held
+            .summary(
+                "pumps/independent-gaussian",
+                Part::Validation,
+                0,
+                model.as_ref(),
+                &[],
+            )
+            .unwrap_err();
+        let text = e.to_string();
+        assert!(text.contains("pumps/independent-gaussian"), "{text}");
+        assert!(
+            text.contains("the score of data.csv line 5 is not a number"),
+            "{text}"
+        );
+        assert_eq!(e.code(), 3);
+    }
 }
