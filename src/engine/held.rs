@@ -45,6 +45,8 @@ pub(crate) struct HeldOnEngine {
     pub files: Vec<SourceFile>,
     /// The validation split's manifest.
     pub validation_manifest: String,
+    /// Whether the view has the rows' ids (`id`).
+    pub ids: bool,
 }
 
 /// Bits of an order key resolved per pass of the order statistics.
@@ -276,9 +278,14 @@ impl HeldOnEngine {
             &self.ctx,
             "writing the scores",
             &format!(
-                "SELECT {w}({dir}, {names}, g, part, f, r, a, {scores}) FROM (SELECT *, \
+                "SELECT {w}({dir}, {names}, g, part, f, r, a, {id}, {scores}) FROM (SELECT *, \
                  CAST({p}(h) / {per} AS BIGINT) AS g FROM assigned WHERE part IN ({parts})) \
                  GROUP BY g",
+                id = if self.ids {
+                    "id"
+                } else {
+                    "CAST(NULL AS VARCHAR)"
+                },
                 w = functions::WRITE_SCORES,
                 dir = sql_bytes(dir.to_string_lossy().as_bytes()),
                 names = sql_bytes(names.join("\n").as_bytes()),
@@ -328,39 +335,72 @@ impl HeldOnEngine {
 pub const SCORE_PARTS: usize = 256;
 
 /// `anomark_write_scores`'s accumulator: one group's scored rows (split,
-/// file, row in file, label, each candidate's score), kept encoded until
-/// the group is complete, then written as one Parquet file, rows in
+/// file, row in file, label, id, each candidate's score), kept encoded
+/// until the group is complete, then written as one Parquet file, rows in
 /// (split, file, row) order, into the folder named by the call.
 #[derive(Debug, Default)]
 pub(crate) struct ScoresWriter {
-    /// The group, the folder and the candidates' names (`\n`-joined).
-    header: Option<(i64, Vec<u8>, Vec<u8>)>,
+    /// The group, the folder, the candidates' names (`\n`-joined) and
+    /// whether the rows have ids.
+    header: Option<(i64, Vec<u8>, Vec<u8>, bool)>,
     /// Scores a row.
     k: usize,
     /// Rows: split (1 byte), file and row (i64 LE each), label (1 byte),
-    /// then `k` scores (f64 LE).
+    /// the id's length (u32 LE) and bytes, then `k` scores (f64 LE).
     rows: Vec<u8>,
 }
 
 type DfResult<T> = datafusion::common::Result<T>;
 
+/// One decoded row of a [`ScoresWriter`].
+struct ScoredRow<'a> {
+    part: u8,
+    file: i64,
+    row: i64,
+    label: u8,
+    id: &'a [u8],
+    scores: &'a [u8],
+}
+
 impl ScoresWriter {
     fn state_bytes(&self) -> Vec<u8> {
         let mut v = Vec::new();
-        if let Some((g, dir, names)) = &self.header {
+        if let Some((g, dir, names, ids)) = &self.header {
             v.extend_from_slice(&g.to_le_bytes());
             for b in [dir, names] {
                 v.extend_from_slice(&(b.len() as u32).to_le_bytes());
                 v.extend_from_slice(b);
             }
+            v.push(u8::from(*ids));
             v.extend_from_slice(&(self.k as u32).to_le_bytes());
             v.extend_from_slice(&self.rows);
         }
         v
     }
 
-    fn row_width(&self) -> usize {
-        18 + 8 * self.k
+    /// The rows, decoded.
+    fn decoded(&self) -> DfResult<Vec<ScoredRow<'_>>> {
+        let bad = || functions::fail(format!("{}: a malformed row", functions::WRITE_SCORES));
+        let b = &self.rows;
+        let mut out = Vec::new();
+        let mut at = 0;
+        while at < b.len() {
+            let fixed = b.get(at..at + 22).ok_or_else(bad)?;
+            let n = u32::from_le_bytes(fixed[18..22].try_into().expect("4 bytes")) as usize;
+            let id = b.get(at + 22..at + 22 + n).ok_or_else(bad)?;
+            let end = at + 22 + n + 8 * self.k;
+            let scores = b.get(at + 22 + n..end).ok_or_else(bad)?;
+            out.push(ScoredRow {
+                part: fixed[0],
+                file: i64::from_le_bytes(fixed[1..9].try_into().expect("8 bytes")),
+                row: i64::from_le_bytes(fixed[9..17].try_into().expect("8 bytes")),
+                label: fixed[17],
+                id,
+                scores,
+            });
+            at = end;
+        }
+        Ok(out)
     }
 }
 
@@ -369,7 +409,7 @@ impl datafusion::logical_expr::Accumulator for ScoresWriter {
         use datafusion::arrow::compute::cast;
         use datafusion::arrow::datatypes::DataType;
         const W: &str = functions::WRITE_SCORES;
-        if values.len() < 7 || values[0].is_empty() {
+        if values.len() < 8 || values[0].is_empty() {
             return Ok(());
         }
         let int = |a: &datafusion::arrow::array::ArrayRef| -> DfResult<Int64Array> {
@@ -390,12 +430,24 @@ impl datafusion::logical_expr::Accumulator for ScoresWriter {
             int(&values[5])?,
         );
         let a = functions::bools(&values[6], W)?;
-        let scores: Vec<&datafusion::arrow::array::Float64Array> = values[7..]
+        let ids = cast(&values[7], &DataType::Utf8)?;
+        let ids = ids
+            .as_any()
+            .downcast_ref::<datafusion::arrow::array::StringArray>()
+            .ok_or_else(|| functions::fail(format!("{W}: want text ids")))?;
+        let scores: Vec<&datafusion::arrow::array::Float64Array> = values[8..]
             .iter()
             .map(|c| functions::f64s(c, W))
             .collect::<DfResult<_>>()?;
         if self.header.is_none() {
-            self.header = Some((g.value(0), dir.value(0).to_vec(), names.value(0).to_vec()));
+            // A run without an id column passes NULL ids.
+            let with_ids = ids.null_count() < ids.len();
+            self.header = Some((
+                g.value(0),
+                dir.value(0).to_vec(),
+                names.value(0).to_vec(),
+                with_ids,
+            ));
             self.k = scores.len();
         }
         for i in 0..part.len() {
@@ -403,6 +455,10 @@ impl datafusion::logical_expr::Accumulator for ScoresWriter {
             self.rows.extend_from_slice(&f.value(i).to_le_bytes());
             self.rows.extend_from_slice(&r.value(i).to_le_bytes());
             self.rows.push(u8::from(a.value(i)));
+            let id = if ids.is_null(i) { "" } else { ids.value(i) };
+            self.rows
+                .extend_from_slice(&(id.len() as u32).to_le_bytes());
+            self.rows.extend_from_slice(id.as_bytes());
             for s in &scores {
                 self.rows.extend_from_slice(&s.value(i).to_le_bytes());
             }
@@ -413,58 +469,56 @@ impl datafusion::logical_expr::Accumulator for ScoresWriter {
     fn evaluate(&mut self) -> DfResult<datafusion::common::ScalarValue> {
         use datafusion::arrow::array::{ArrayRef, Float64Array, StringArray};
         use datafusion::arrow::datatypes::{DataType, Field, Schema};
-        let Some((g, dir, names)) = self.header.clone() else {
+        let Some((g, dir, names, with_ids)) = self.header.clone() else {
             return Ok(datafusion::common::ScalarValue::Binary(Some(vec![])));
         };
-        let w = self.row_width();
-        let mut rows: Vec<&[u8]> = self.rows.chunks_exact(w).collect();
-        let key = |b: &[u8]| {
-            (
-                b[0],
-                i64::from_le_bytes(b[1..9].try_into().expect("8 bytes")),
-                i64::from_le_bytes(b[9..17].try_into().expect("8 bytes")),
-            )
-        };
-        rows.sort_unstable_by_key(|b| key(b));
+        let mut rows = self.decoded()?;
+        rows.sort_unstable_by_key(|r| (r.part, r.file, r.row));
         let names = String::from_utf8_lossy(&names).into_owned();
         let names: Vec<&str> = names.split('\n').collect();
-        let mut fields = vec![
+        let mut fields = Vec::new();
+        let mut columns: Vec<ArrayRef> = Vec::new();
+        if with_ids {
+            fields.push(Field::new("id", DataType::Utf8, false));
+            columns.push(std::sync::Arc::new(StringArray::from(
+                rows.iter()
+                    .map(|r| String::from_utf8_lossy(r.id).into_owned())
+                    .collect::<Vec<_>>(),
+            )));
+        }
+        fields.extend([
             Field::new("split", DataType::Utf8, false),
             Field::new("file", DataType::Int64, false),
             Field::new("row", DataType::Int64, false),
             Field::new("label", DataType::Int64, false),
-        ];
-        fields.extend(
-            names
-                .iter()
-                .map(|n| Field::new(*n, DataType::Float64, false)),
-        );
-        let schema = std::sync::Arc::new(Schema::new(fields));
-        let mut columns: Vec<ArrayRef> = vec![
+        ]);
+        columns.extend([
             std::sync::Arc::new(StringArray::from(
                 rows.iter()
-                    .map(|b| Part::ALL[usize::from(b[0]).min(2)].name())
+                    .map(|r| Part::ALL[usize::from(r.part).min(2)].name())
                     .collect::<Vec<_>>(),
+            )) as ArrayRef,
+            std::sync::Arc::new(Int64Array::from(
+                rows.iter().map(|r| r.file).collect::<Vec<_>>(),
             )),
             std::sync::Arc::new(Int64Array::from(
-                rows.iter().map(|b| key(b).1).collect::<Vec<_>>(),
+                rows.iter().map(|r| r.row).collect::<Vec<_>>(),
             )),
             std::sync::Arc::new(Int64Array::from(
-                rows.iter().map(|b| key(b).2).collect::<Vec<_>>(),
+                rows.iter().map(|r| i64::from(r.label)).collect::<Vec<_>>(),
             )),
-            std::sync::Arc::new(Int64Array::from(
-                rows.iter().map(|b| i64::from(b[17])).collect::<Vec<_>>(),
-            )),
-        ];
-        for c in 0..self.k {
+        ]);
+        for (c, name) in names.iter().enumerate().take(self.k) {
+            fields.push(Field::new(*name, DataType::Float64, false));
             columns.push(std::sync::Arc::new(Float64Array::from(
                 rows.iter()
-                    .map(|b| {
-                        f64::from_le_bytes(b[18 + 8 * c..26 + 8 * c].try_into().expect("8 bytes"))
+                    .map(|r| {
+                        f64::from_le_bytes(r.scores[8 * c..8 * c + 8].try_into().expect("8 bytes"))
                     })
                     .collect::<Vec<_>>(),
             )));
         }
+        let schema = std::sync::Arc::new(Schema::new(fields));
         let batch = datafusion::arrow::record_batch::RecordBatch::try_new(schema.clone(), columns)?;
         let name = format!("part-{g:03}.parquet");
         let path = std::path::Path::new(&*String::from_utf8_lossy(&dir)).join(&name);
@@ -510,13 +564,14 @@ impl datafusion::logical_expr::Accumulator for ScoresWriter {
             let dir = b.get(12..12 + dl).ok_or_else(malformed)?.to_vec();
             let nl = u32_at(12 + dl)?;
             let names = b.get(16 + dl..16 + dl + nl).ok_or_else(malformed)?.to_vec();
-            let k = u32_at(16 + dl + nl)?;
+            let with_ids = *b.get(16 + dl + nl).ok_or_else(malformed)? == 1;
+            let k = u32_at(17 + dl + nl)?;
             if self.header.is_none() {
-                self.header = Some((g, dir, names));
+                self.header = Some((g, dir, names, with_ids));
                 self.k = k;
             }
             self.rows
-                .extend_from_slice(b.get(20 + dl + nl..).ok_or_else(malformed)?);
+                .extend_from_slice(b.get(21 + dl + nl..).ok_or_else(malformed)?);
         }
         Ok(())
     }
@@ -682,6 +737,7 @@ mod tests {
             sets: vec![vec!["x0".into()]],
             files: vec![],
             validation_manifest: String::new(),
+            ids: false,
         };
         for p in [Part::Validation, Part::Test] {
             let rows: Vec<usize> = (0..n).filter(|&i| part[i] == p as i8).collect();
@@ -765,6 +821,7 @@ mod tests {
                 rows: 4,
             }],
             validation_manifest: String::new(),
+            ids: false,
         };
         let model = functions::ModelParams::Independent {
             mean: vec![0.0],

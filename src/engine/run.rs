@@ -58,6 +58,7 @@ impl Ingest for OnEngine {
             sets: feature_columns(plan),
             files,
             validation_manifest,
+            ids: plan.id_column.is_some(),
         }));
         Ok(ingested)
     }

@@ -268,12 +268,23 @@ fn scores_line_difference(recorded: &str, recomputed: &str, line: usize) -> Stri
     }
 }
 
-/// The scores digest (`audit::hash::scores_digest`) of the Parquet parts
-/// an engine wrote (`names`, relative to `dir`): every row's split, file,
-/// row, label and the candidates' scores in the parts' column order.
-fn parts_digest(dir: &Path, names: &[&String]) -> Result<String> {
+/// The rows of the scores' Parquet parts an engine wrote (`names`,
+/// relative to the run directory `dir`), part after part.
+pub(crate) struct PartsRows {
+    /// The candidates' names, in the parts' column order.
+    pub candidates: Vec<String>,
+    /// Per row: its id (when the run has an id column), split (1
+    /// validation, 2 test), file, row in file, label, and each candidate's score.
+    pub rows: Vec<(Option<String>, u8, u32, u64, bool, Vec<f64>)>,
+}
+
+/// Reads the scores' Parquet parts `names` of the run directory `dir`.
+pub(crate) fn read_parts(dir: &Path, names: &[&String]) -> Result<PartsRows> {
     use polars::prelude::*;
-    let mut rows = Vec::new();
+    let mut out = PartsRows {
+        candidates: vec![],
+        rows: vec![],
+    };
     for name in names {
         let path = dir.join(name);
         let bad = |e: &dyn std::fmt::Display| Error::Verify {
@@ -282,17 +293,33 @@ fn parts_digest(dir: &Path, names: &[&String]) -> Result<String> {
         };
         let file = std::fs::File::open(&path).map_err(|e| Error::io(&path, "reading", e))?;
         let df = ParquetReader::new(file).finish().map_err(|e| bad(&e))?;
-        let cols = df.columns();
-        if cols.len() < 4 {
-            return Err(bad(&"fewer than four columns"));
-        }
-        let split = cols[0].str().map_err(|e| bad(&e))?;
-        let f = cols[1].i64().map_err(|e| bad(&e))?;
-        let r = cols[2].i64().map_err(|e| bad(&e))?;
-        let label = cols[3].i64().map_err(|e| bad(&e))?;
-        let scores: Vec<&Float64Chunked> = cols[4..]
+        let col = |n: &str| df.column(n).map_err(|e| bad(&e));
+        let ids = match df.column("id") {
+            Ok(c) => Some(c.str().map_err(|e| bad(&e))?.clone()),
+            Err(_) => None,
+        };
+        let split = col("split")?.str().map_err(|e| bad(&e))?.clone();
+        let f = col("file")?.i64().map_err(|e| bad(&e))?.clone();
+        let r = col("row")?.i64().map_err(|e| bad(&e))?.clone();
+        let label = col("label")?.i64().map_err(|e| bad(&e))?.clone();
+        let names: Vec<String> = df
+            .get_column_names()
             .iter()
-            .map(|c| c.f64().map_err(|e| bad(&e)))
+            .map(|n| n.to_string())
+            .collect();
+        let first = names
+            .iter()
+            .position(|n| n == "label")
+            .map_or(names.len(), |k| k + 1);
+        let candidates = names[first..].to_vec();
+        if out.candidates.is_empty() {
+            out.candidates = candidates.clone();
+        } else if out.candidates != candidates {
+            return Err(bad(&"other score columns than the other parts"));
+        }
+        let scores: Vec<Float64Chunked> = candidates
+            .iter()
+            .map(|n| col(n).and_then(|c| c.f64().map_err(|e| bad(&e)).cloned()))
             .collect::<Result<_>>()?;
         for i in 0..df.height() {
             let part = match split.get(i) {
@@ -307,9 +334,23 @@ fn parts_digest(dir: &Path, names: &[&String]) -> Result<String> {
                 .iter()
                 .map(|c| c.get(i).ok_or_else(|| bad(&"a missing score")))
                 .collect::<Result<_>>()?;
-            rows.push(hash::score_row(part, f as u32, r as u64, a == 1, s));
+            let id = ids.as_ref().and_then(|c| c.get(i)).map(str::to_string);
+            out.rows.push((id, part, f as u32, r as u64, a == 1, s));
         }
     }
+    Ok(out)
+}
+
+/// The scores digest (`audit::hash::scores_digest`) of the Parquet parts
+/// an engine wrote (`names`, relative to `dir`): every row's split, file,
+/// row, label and the candidates' scores in the parts' column order.
+fn parts_digest(dir: &Path, names: &[&String]) -> Result<String> {
+    let parts = read_parts(dir, names)?;
+    let rows: Vec<hash::ContentHash> = parts
+        .rows
+        .iter()
+        .map(|(_, part, f, r, a, s)| hash::score_row(*part, *f, *r, *a, s.iter().copied()))
+        .collect();
     Ok(hash::scores_digest(&rows))
 }
 

@@ -369,8 +369,9 @@ fn csv_rows(csv: &[u8]) -> Vec<ScoredRow> {
     rows
 }
 
-/// The rows of the scores' Parquet parts of the run in `dir` (whose source
-/// was the demo file in `files` parts), each named by the demo row's id.
+/// The rows of the scores' Parquet parts of the run in `dir`, each named by
+/// its id (checked against the demo row at its file and row, the source
+/// having been the demo file in `files` parts).
 fn parts_rows(dir: &Path, parts: &[String], files: usize) -> Vec<ScoredRow> {
     use datafusion::arrow::array::{Array, Int64Array};
     use datafusion::parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
@@ -391,23 +392,32 @@ fn parts_rows(dir: &Path, parts: &[String], files: usize) -> Vec<ScoredRow> {
             .unwrap();
         for b in reader {
             let b = b.unwrap();
-            let col = |j: usize| b.column(j).clone();
-            let split = col(0);
+            let schema = b.schema();
+            let col = |n: &str| b.column(schema.index_of(n).unwrap()).clone();
+            let (id, split) = (col("id"), col("split"));
+            let id = id.as_any().downcast_ref::<StringArray>().unwrap();
             let split = split.as_any().downcast_ref::<StringArray>().unwrap();
-            let (f, r) = (col(1), col(2));
+            let (f, r, label) = (col("file"), col("row"), col("label"));
             let f = f.as_any().downcast_ref::<Int64Array>().unwrap();
             let r = r.as_any().downcast_ref::<Int64Array>().unwrap();
-            let label = col(3);
             let label = label.as_any().downcast_ref::<Int64Array>().unwrap();
+            let first = schema.index_of("label").unwrap() + 1;
             for i in 0..b.num_rows() {
                 let at = f.value(i) as usize * chunk + r.value(i) as usize;
+                assert_eq!(
+                    id.value(i),
+                    ids[at],
+                    "the id of file {} row {}",
+                    f.value(i),
+                    r.value(i)
+                );
                 rows.push((
-                    ids[at].to_string(),
+                    id.value(i).to_string(),
                     split.value(i).to_string(),
                     label.value(i).to_string(),
-                    (4..b.num_columns())
+                    (first..b.num_columns())
                         .map(|j| {
-                            let c = col(j);
+                            let c = b.column(j);
                             let c = c.as_any().downcast_ref::<Float64Array>().unwrap();
                             c.value(i).to_bits()
                         })
@@ -597,6 +607,27 @@ fn an_example_on_parquet_parts_gives_the_same_run_on_every_engine() {
         // The engine run recomputed in this process gives the same bytes.
         let (code, stderr) = anomark(dir, &["verify", "out", "--pubkey", "key.pub.pem", "--data"]);
         assert_eq!(code, 0, "verify --data of the run on {engine}: {stderr}");
+        // `diff` pairs the engine run's test rows, read from its parts, with
+        // the in-memory run's scores.csv: the same rows, no discordant pair.
+        let old = base.join("out");
+        let out = Command::new(BIN)
+            .current_dir(dir)
+            .args(["diff", old.to_str().unwrap(), "out", "--json"])
+            .output()
+            .unwrap();
+        assert!(
+            out.status.success(),
+            "diff on {engine}: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+        let tested = csv_rows(&want["scores.csv"])
+            .iter()
+            .filter(|r| r.1 == "test")
+            .count();
+        assert_eq!(v["paired"]["rows"], tested, "{v}");
+        assert_eq!(v["paired"]["old-right-new-wrong"], 0, "{v}");
+        assert_eq!(v["paired"]["old-wrong-new-right"], 0, "{v}");
     }
 }
 
