@@ -273,10 +273,14 @@ fn scores_line_difference(recorded: &str, recomputed: &str, line: usize) -> Stri
 pub(crate) struct PartsRows {
     /// The candidates' names, in the parts' column order.
     pub candidates: Vec<String>,
-    /// Per row: its id (when the run has an id column), split (1
-    /// validation, 2 test), file, row in file, label, and each candidate's score.
-    pub rows: Vec<(Option<String>, u8, u32, u64, bool, Vec<f64>)>,
+    /// The rows.
+    pub rows: Vec<PartRow>,
 }
+
+/// One row of the scores' parts: its id (when the run has an id column),
+/// split (1 validation, 2 test), file, row in file, label, and each
+/// candidate's score.
+pub(crate) type PartRow = (Option<String>, u8, u32, u64, bool, Vec<f64>);
 
 /// Reads the scores' Parquet parts `names` of the run directory `dir`.
 pub(crate) fn read_parts(dir: &Path, names: &[&String]) -> Result<PartsRows> {
