@@ -154,9 +154,17 @@ fn same_json<T: serde::Serialize>(a: &T, b: &T) -> bool {
     serde_json::to_value(a).ok() == serde_json::to_value(b).ok()
 }
 
-/// Test rows of scores.csv: id → (label, score of `column`).
+/// Test rows of scores.csv: id → (label, score of `column`); for a run
+/// on an engine, of its scores' Parquet parts (keyed by id, or by the row's
+/// place among all the inputs' rows, as scores.csv's `row`).
 fn test_scores(dir: &Path, column: &str) -> Result<BTreeMap<String, (bool, f64)>> {
     let p = dir.join("scores.csv");
+    if !p.exists() {
+        let folder = dir.join(crate::protocol::report::SCORES_PARTS);
+        if folder.is_dir() {
+            return parts_test_scores(dir, column);
+        }
+    }
     let text = std::fs::read_to_string(&p).map_err(|e| Error::io(&p, "reading", e))?;
     let mut lines = text.lines();
     let header: Vec<&str> = lines.next().unwrap_or("").split(',').collect();
@@ -176,6 +184,48 @@ fn test_scores(dir: &Path, column: &str) -> Result<BTreeMap<String, (bool, f64)>
                 .and_then(|v| v.parse::<f64>().ok())
                 .unwrap_or(f64::NAN);
             out.insert(f[0].to_string(), (f[2] == "1", s));
+        }
+    }
+    Ok(out)
+}
+
+/// [`test_scores`] of a run whose scores are Parquet parts.
+fn parts_test_scores(dir: &Path, column: &str) -> Result<BTreeMap<String, (bool, f64)>> {
+    let folder = dir.join(crate::protocol::report::SCORES_PARTS);
+    let mut names: Vec<String> = std::fs::read_dir(&folder)
+        .map_err(|e| Error::io(&folder, "reading", e))?
+        .filter_map(|e| e.ok())
+        .map(|e| e.file_name().to_string_lossy().into_owned())
+        .filter(|n| n.ends_with(".parquet"))
+        .map(|n| format!("{}/{n}", crate::protocol::report::SCORES_PARTS))
+        .collect();
+    names.sort();
+    let refs: Vec<&String> = names.iter().collect();
+    let parts = crate::protocol::recompute::read_parts(dir, &refs)?;
+    let k = parts
+        .candidates
+        .iter()
+        .position(|c| c == column)
+        .ok_or_else(|| Error::Output {
+            path: folder.clone(),
+            message: format!("no score column `{column}`"),
+        })?;
+    let run = read_run(dir)?;
+    let firsts: Vec<u64> = run
+        .inputs
+        .iter()
+        .scan(0u64, |at, i| {
+            let first = *at;
+            *at += i.rows as u64;
+            Some(first)
+        })
+        .collect();
+    let mut out = BTreeMap::new();
+    for (id, part, f, r, a, s) in parts.rows {
+        if part == 2 {
+            let key = id
+                .unwrap_or_else(|| (firsts.get(f as usize).copied().unwrap_or(0) + r).to_string());
+            out.insert(key, (a, s[k]));
         }
     }
     Ok(out)

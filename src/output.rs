@@ -47,6 +47,46 @@ pub fn check_target(target: &Path) -> Result<()> {
 #[derive(Debug, Default)]
 pub struct RunFiles {
     files: BTreeMap<String, Vec<Vec<u8>>>,
+    /// Files already written elsewhere (by an engine, in `staging`), moved
+    /// into the run directory at [`RunFiles::commit`]: name → path.
+    moved: BTreeMap<String, PathBuf>,
+    /// The folder holding them until then (removed with it).
+    staging: Option<Staging>,
+}
+
+/// A temporary folder beside a run directory's target, for files an engine
+/// writes before the run directory is made; removed when dropped (and on
+/// an interruption).
+#[derive(Debug)]
+pub struct Staging {
+    dir: tempfile::TempDir,
+    _registered: crate::cleanup::Registered,
+}
+
+impl Staging {
+    /// A new staging folder in `target`'s parent folder.
+    pub fn beside(target: &Path) -> Result<Staging> {
+        let parent = match target.parent() {
+            Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
+            _ => PathBuf::from("."),
+        };
+        std::fs::create_dir_all(&parent)
+            .map_err(|e| Error::io(&parent, "creating output parent", e))?;
+        let dir = tempfile::Builder::new()
+            .prefix(".anomark-partial-scores-")
+            .tempdir_in(&parent)
+            .map_err(|e| Error::io(&parent, "creating temporary directory in", e))?;
+        let registered = crate::cleanup::register(dir.path());
+        Ok(Staging {
+            dir,
+            _registered: registered,
+        })
+    }
+
+    /// The folder.
+    pub fn path(&self) -> &Path {
+        self.dir.path()
+    }
 }
 
 impl RunFiles {
@@ -58,6 +98,27 @@ impl RunFiles {
     /// Adds a file made of `parts`, in order.
     pub fn add_parts(&mut self, name: &str, parts: Vec<Vec<u8>>) {
         self.files.insert(name.to_string(), parts);
+    }
+
+    /// Adds the file `name` written at `path` in `staging` (kept until the
+    /// commit moves it in).
+    pub fn add_moved(&mut self, name: &str, path: PathBuf) {
+        self.moved.insert(name.to_string(), path);
+    }
+
+    /// Keeps the staging folder of the moved files until the commit.
+    pub fn keep_staging(&mut self, staging: Staging) {
+        self.staging = Some(staging);
+    }
+
+    /// The names of the files moved in at the commit.
+    pub fn moved_names(&self) -> Vec<String> {
+        self.moved.keys().cloned().collect()
+    }
+
+    /// Removes a file, if added.
+    pub fn remove(&mut self, name: &str) {
+        self.files.remove(name);
     }
 
     /// A file's bytes, if added.
@@ -90,7 +151,7 @@ impl RunFiles {
         // Removed on SIGINT or SIGTERM until renamed into place.
         let registered = crate::cleanup::register(tmp.path());
 
-        for name in self.files.keys() {
+        for name in self.files.keys().chain(self.moved.keys()) {
             if let Some(dir) = tmp.path().join(name).parent() {
                 std::fs::create_dir_all(dir).map_err(|e| Error::io(dir, "creating", e))?;
             }
@@ -98,7 +159,7 @@ impl RunFiles {
         // Files are written and hashed on all cores; the manifest lists them
         // in name order whatever the order of completion.
         use rayon::prelude::*;
-        let written: Vec<(String, std::fs::File, crate::audit::hash::FileDigest)> = self
+        let mut written: Vec<(String, std::fs::File, crate::audit::hash::FileDigest)> = self
             .files
             .par_iter()
             .map(|(name, parts)| {
@@ -115,6 +176,15 @@ impl RunFiles {
                 Ok((name.clone(), file, digest))
             })
             .collect::<Result<_>>()?;
+        // Files an engine wrote: moved in, hashed as they are, and flushed
+        // with the others.
+        for (name, from) in &self.moved {
+            let to = tmp.path().join(name);
+            std::fs::rename(from, &to).map_err(|e| Error::io(&to, "moving into place", e))?;
+            let digest = crate::audit::hash::file(&to)?;
+            let file = std::fs::File::open(&to).map_err(|e| Error::io(&to, "reading", e))?;
+            written.push((name.clone(), file, digest));
+        }
         let digests = sync_all_at_once(tmp.path(), written)?;
         let manifest = Manifest {
             format: 1,

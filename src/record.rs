@@ -75,6 +75,13 @@ pub struct RunRecord {
     /// What a scored batch's drift is measured against. Always written;
     /// absent (read as `None`) only in runs recorded before drift reports.
     pub drift_reference: Option<DriftReference>,
+    /// The scores digest (`audit::hash::scores_digest`): every scored row's
+    /// split, file and row, label and each candidate's score, whichever
+    /// way they are written (scores.csv in process, Parquet parts on an
+    /// engine). Always written; absent (read as `None`) only in runs
+    /// recorded before it.
+    #[serde(default)]
+    pub scores_digest: Option<String>,
     /// The engine the run's rows were read, split and summarised on
     /// (`--engine`: `local` or the cluster's `df://HOST:PORT`); absent for a
     /// run in this process. Every other field is the same on every engine.

@@ -69,6 +69,19 @@ impl SealedTest {
         self.rows.iter().map(|r| hashes[r.0 as usize]).collect()
     }
 
+    /// A test split whose rows stay on an engine, known by its counts and
+    /// its manifest; opened, it holds no rows (the engine scores them). A
+    /// ledger entry in the earlier manifest format is not recognised as an
+    /// opening of it (that format hashes every row's hash in one sequence).
+    pub fn summarised(counts: Counts, manifest: String) -> SealedTest {
+        SealedTest {
+            rows: Vec::new(),
+            counts,
+            manifest,
+            manifest_v1: String::new(),
+        }
+    }
+
     /// Opens the test split. Called from `protocol::open` only, after selection
     /// and after the opening is on the ledger.
     pub(crate) fn open(self) -> OpenedTest {
@@ -380,6 +393,19 @@ pub fn held(
             counts: report.counts[2],
             rows: test,
         },
+        report,
+    })
+}
+
+/// The splits of rows held elsewhere (an engine), from their counts and
+/// the test split's manifest: no row lists, the counts checked as for rows
+/// in memory.
+pub fn summarised(report: SplitReport, test_manifest: String) -> Result<Splits> {
+    check_counts(&report.counts)?;
+    Ok(Splits {
+        train: vec![],
+        validation: vec![],
+        test: SealedTest::summarised(report.counts[2], test_manifest),
         report,
     })
 }

@@ -23,7 +23,7 @@ use crate::spec::ThresholdPolicy;
 use crate::summary::Summary;
 
 /// A chosen operating point.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct Choice {
     /// Flag iff s(x) > τ.
     pub tau: f64,
@@ -289,6 +289,35 @@ pub fn choose_summary(
     choose_from(policy, scores, is_anomaly, || cuts_summary(s))
 }
 
+/// The τ a fixed policy declares (τ, or −ln ε); `None` for any other policy.
+pub fn fixed_tau(policy: ThresholdPolicy) -> Option<f64> {
+    match policy {
+        ThresholdPolicy::Fixed { tau, ln_epsilon } => {
+            Some(tau.or(ln_epsilon.map(|l| -l)).unwrap_or(0.0))
+        }
+        _ => None,
+    }
+}
+
+/// [`choose_summary`] from the summary alone, for the split's scores held
+/// elsewhere (an engine): every policy searches the summary's cut points,
+/// and a fixed τ is counted by it. `None` for the conformal policy (it reads
+/// the validation normals' sorted scores) and for a fixed τ the summary
+/// cannot count (make it with τ as a cut point).
+pub fn choose_on_summary(policy: ThresholdPolicy, s: &Summary) -> Option<Choice> {
+    match policy {
+        ThresholdPolicy::Conformal { .. } => None,
+        ThresholdPolicy::Fixed { .. } => {
+            let tau = fixed_tau(policy)?;
+            Some(chosen(Cut {
+                c: s.confusion_at(tau)?,
+                tau,
+            }))
+        }
+        _ => Some(choose_from(policy, &[], &[], || cuts_summary(s))),
+    }
+}
+
 /// [`choose`] with the scores' cut points made by `make_cuts`, which a fixed
 /// τ does not need (it reads only the scores).
 fn choose_from(
@@ -372,8 +401,8 @@ fn choose_from(
         ThresholdPolicy::Conformal {
             max_false_positive_rate: a,
         } => conformal(scores, is_anomaly, a),
-        ThresholdPolicy::Fixed { tau, ln_epsilon } => {
-            let tau = tau.or(ln_epsilon.map(|l| -l)).unwrap_or(0.0);
+        ThresholdPolicy::Fixed { .. } => {
+            let tau = fixed_tau(policy).unwrap_or(0.0);
             chosen(Cut {
                 c: Confusion::at(scores, is_anomaly, Threshold(tau)),
                 tau,
@@ -551,6 +580,56 @@ mod tests {
                     _ => unreachable!(),
                 }
             }
+        }
+    }
+
+    /// The choice from the summary alone (an engine's) is the choice from
+    /// the scores and the summary, for every policy but the conformal one;
+    /// a fixed τ that is no cut point is counted once the summary holds it,
+    /// as the fit stage makes it. Invented scores with ties, for this check.
+    #[test]
+    fn the_choice_on_the_summary_alone_is_the_choice_on_the_scores() {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(29);
+        let policies = [
+            ThresholdPolicy::MaxF1,
+            ThresholdPolicy::MaxFBeta { beta: 0.5 },
+            ThresholdPolicy::AlarmBudget {
+                max_false_positive_rate: 0.05,
+            },
+            ThresholdPolicy::RecallTarget { min_recall: 0.7 },
+            ThresholdPolicy::PrecisionTarget { min_precision: 0.8 },
+            ThresholdPolicy::MinCost {
+                missed_anomaly: 5.0,
+                false_alarm: 1.0,
+            },
+            ThresholdPolicy::Fixed {
+                tau: Some(1.3),
+                ln_epsilon: None,
+            },
+            ThresholdPolicy::Fixed {
+                tau: None,
+                ln_epsilon: Some(-1.5),
+            },
+        ];
+        for _ in 0..300 {
+            let n = 1 + (rng.next_u32() % 50) as usize;
+            let s: Vec<f64> = (0..n).map(|_| (rng.next_u32() % 12) as f64 / 4.0).collect();
+            let y: Vec<bool> = (0..n).map(|_| rng.next_u32() % 4 == 0).collect();
+            for p in policies {
+                let mut summary = Summary::new(&s, &y, &[]);
+                let want = choose_summary(p, &s, &y, &summary);
+                if let Some(t) = fixed_tau(p) {
+                    if summary.confusion_at(t).is_none() {
+                        assert!(choose_on_summary(p, &summary).is_none());
+                        summary = Summary::new(&s, &y, &[t]);
+                    }
+                }
+                assert_eq!(choose_on_summary(p, &summary), Some(want), "{p:?}");
+            }
+            let conformal = ThresholdPolicy::Conformal {
+                max_false_positive_rate: 0.1,
+            };
+            assert!(choose_on_summary(conformal, &Summary::new(&s, &y, &[])).is_none());
         }
     }
 

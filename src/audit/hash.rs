@@ -292,6 +292,42 @@ pub fn manifest_v1_of_sorted<'a>(hashes: impl Iterator<Item = &'a ContentHash>) 
     h.finalize().to_hex().to_string()
 }
 
+/// The tag of a scored row's hash in the scores digest.
+const SCORE_ROW_TAG: &[u8] = b"anomark/scores/v1\0";
+
+/// One scored row's hash in the scores digest: blake3 over the tag
+/// `anomark/scores/v1\0`, the split (one byte: 1 validation, 2 test), the
+/// row's file (its index among the inputs, `u32` little-endian) and its row
+/// in that file (from 0, `u64` little-endian), its label (one byte, 1 for an
+/// anomaly), then each candidate's score as its `f64` bits (little-endian),
+/// candidates in spec order.
+pub fn score_row(
+    split: u8,
+    file: u32,
+    row: u64,
+    anomaly: bool,
+    scores: impl IntoIterator<Item = f64>,
+) -> ContentHash {
+    let mut h = blake3::Hasher::new();
+    h.update(SCORE_ROW_TAG);
+    h.update(&[split]);
+    h.update(&file.to_le_bytes());
+    h.update(&row.to_le_bytes());
+    h.update(&[u8::from(anomaly)]);
+    for s in scores {
+        h.update(&s.to_bits().to_le_bytes());
+    }
+    ContentHash(*h.finalize().as_bytes())
+}
+
+/// The scores digest of a run: [`manifest`]'s definition (buckets of
+/// sorted hashes) over its scored rows' [`score_row`] hashes, so that it
+/// does not depend on the order the rows are met in (in process from
+/// scores.csv's rows; on an engine by bucket, as a split manifest).
+pub fn scores_digest(rows: &[ContentHash]) -> String {
+    manifest(rows)
+}
+
 /// One bucket's digest in a split manifest: blake3 over its rows' 32-byte
 /// content hashes, given in ascending byte order.
 pub fn manifest_bucket_digest<'a>(sorted: impl IntoIterator<Item = &'a ContentHash>) -> [u8; 32] {

@@ -50,6 +50,179 @@ pub struct SplitScores<'a> {
     pub cuts: &'a [threshold::Cut],
 }
 
+impl SplitScores<'_> {
+    /// What the figures read of these scores.
+    pub fn facts(&self) -> ScoreFacts {
+        ScoreFacts::of(self.scores, self.is_anomaly, self.tau)
+    }
+
+    /// The figures' view of these scores with their `facts`.
+    pub fn with<'b>(&'b self, facts: &'b ScoreFacts) -> SplitFigures<'b> {
+        SplitFigures {
+            split: self.split,
+            facts,
+            tau: self.tau,
+            cuts: self.cuts,
+        }
+    }
+}
+
+/// One split's score figures' input: what they read of the scores (made
+/// from the scores, or from an engine's summaries of them), τ and the cut
+/// points of its evaluation summary.
+#[derive(Debug, Clone, Copy)]
+pub struct SplitFigures<'a> {
+    /// "validation" or "test".
+    pub split: &'a str,
+    /// What the figures read of the split's scores.
+    pub facts: &'a ScoreFacts,
+    /// The chosen τ (fixed on validation).
+    pub tau: f64,
+    /// The cut points where the curves bend, from [`crate::summary::curve`].
+    pub cuts: &'a [threshold::Cut],
+}
+
+/// Bins of a score histogram.
+pub const SCORE_BINS: usize = 48;
+
+/// The ranks (from 0, in `f64::total_cmp` order among the `kept` scores
+/// within ±[`AXIS_LIMIT`]) whose values the score figures' axes read: the
+/// 0.1 % and 99.9 % quantiles (nearest rank) of the scores, then those of
+/// their negations (ln ε) as ranks of the scores (negation reverses the
+/// order exactly). Empty when no score is kept.
+pub fn axis_ranks(kept: usize) -> Vec<usize> {
+    if kept == 0 {
+        return vec![];
+    }
+    let (a, b) = (rank_of(kept, 0.001), rank_of(kept, 0.999));
+    vec![a, b, kept - 1 - a, kept - 1 - b]
+}
+
+/// The nearest rank of the `q`-quantile of `n` values.
+fn rank_of(n: usize, q: f64) -> usize {
+    ((n - 1) as f64 * q).round() as usize
+}
+
+/// Whether a value lies within a figure's axis limit (±[`AXIS_LIMIT`]).
+pub fn within_axis_limit(x: f64) -> bool {
+    x.abs() <= AXIS_LIMIT
+}
+
+/// The bin of `x` among `bins` equal bins over `r` (`None` outside it or
+/// when not finite): the score and feature histograms' one binning.
+pub fn bin_of(x: f64, r: &Range<f64>, bins: usize) -> Option<usize> {
+    let w = (r.end - r.start) / bins as f64;
+    if x < r.start || x > r.end || !x.is_finite() {
+        return None;
+    }
+    Some((((x - r.start) / w) as usize).min(bins - 1))
+}
+
+/// The two axes of a split's score figures (the scores', and ln ε's),
+/// fixed before the histogram counts on the first are taken.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ScoreAxes {
+    score: Axis,
+    ln_eps: Axis,
+}
+
+impl ScoreAxes {
+    /// The axes from the count of scores beyond ±[`AXIS_LIMIT`] (or not
+    /// finite) and the kept scores' values at [`axis_ranks`] (empty when
+    /// none is kept), with τ always in range when within the limit.
+    pub fn new(beyond: u64, values: &[f64], tau: f64) -> ScoreAxes {
+        let (score, ln_eps) = match values {
+            [a, b, c, d] => (Some((*a, *b)), Some((-*c, -*d))),
+            _ => (None, None),
+        };
+        ScoreAxes {
+            score: axis_of(score, beyond > 0, &[tau]),
+            ln_eps: axis_of(ln_eps, beyond > 0, &[-tau]),
+        }
+    }
+
+    /// The score histogram's range, on which its bins are counted.
+    pub fn score_range(&self) -> Range<f64> {
+        self.score.range.clone()
+    }
+}
+
+/// What a split's score figures read of its scores: the confusion matrix
+/// at τ (with the class sizes), the two axes, and the histogram counts per
+/// class on the score axis ([`SCORE_BINS`] bins, and the rows outside).
+/// Made from the scores ([`ScoreFacts::of`]) or from an engine's summaries
+/// ([`ScoreFacts::new`]): equal facts draw equal figures.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ScoreFacts {
+    at: Confusion,
+    axes: ScoreAxes,
+    normal: (Vec<u64>, u64),
+    anomalous: (Vec<u64>, u64),
+}
+
+impl ScoreFacts {
+    /// The facts of scores in memory.
+    pub fn of(scores: &[f64], is_anomaly: &[bool], tau: f64) -> ScoreFacts {
+        let kept: std::borrow::Cow<'_, [f64]> = if scores.iter().all(|&x| within_axis_limit(x)) {
+            std::borrow::Cow::Borrowed(scores)
+        } else {
+            std::borrow::Cow::Owned(
+                scores
+                    .iter()
+                    .copied()
+                    .filter(|&x| within_axis_limit(x))
+                    .collect(),
+            )
+        };
+        let values: Vec<f64> = axis_ranks(kept.len())
+            .into_iter()
+            .map(|k| order_statistic(&kept, k))
+            .collect();
+        let axes = ScoreAxes::new((scores.len() - kept.len()) as u64, &values, tau);
+        let r = axes.score_range();
+        let class = |anomalous: bool| -> Vec<f64> {
+            scores
+                .iter()
+                .zip(is_anomaly)
+                .filter(|(_, &a)| a == anomalous)
+                .map(|(v, _)| *v)
+                .collect()
+        };
+        let (normal, anomalous) = (
+            bin_counts(&class(false), &r, SCORE_BINS),
+            bin_counts(&class(true), &r, SCORE_BINS),
+        );
+        ScoreFacts {
+            at: Confusion::at(scores, is_anomaly, Threshold(tau)),
+            axes,
+            normal,
+            anomalous,
+        }
+    }
+
+    /// The facts from their parts: the confusion matrix at τ, the axes, and
+    /// the normal and anomalous rows per bin of the score range (and
+    /// outside it), [`SCORE_BINS`] bins each.
+    pub fn new(
+        at: Confusion,
+        axes: ScoreAxes,
+        normal: (Vec<u64>, u64),
+        anomalous: (Vec<u64>, u64),
+    ) -> Result<ScoreFacts> {
+        if normal.0.len() != SCORE_BINS || anomalous.0.len() != SCORE_BINS {
+            return Err(Error::internal(
+                "score histogram counts of another bin count",
+            ));
+        }
+        Ok(ScoreFacts {
+            at,
+            axes,
+            normal,
+            anomalous,
+        })
+    }
+}
+
 const NORMAL: RGBColor = RGBColor(37, 99, 235);
 const ANOMALY: RGBColor = RGBColor(217, 119, 6);
 const MARK: RGBColor = RGBColor(190, 18, 60);
@@ -141,8 +314,13 @@ fn thin(points: &[(f64, f64)], span: (f64, f64)) -> Vec<(f64, f64)> {
 /// any other by selection on a copy. Values equal in the total order have
 /// the same bits, so both give the same value.
 fn quantile(v: &[f64], q: f64) -> f64 {
+    order_statistic(v, rank_of(v.len(), q))
+}
+
+/// The `k`-th smallest of `v` (from 0, in `f64::total_cmp` order; O(n)),
+/// as [`quantile`] finds it.
+fn order_statistic(v: &[f64], k: usize) -> f64 {
     let n = v.len();
-    let k = ((n - 1) as f64 * q).round() as usize;
     if k < n / 16 {
         return f64_of_key(kth_smallest_key(v.iter().map(|&x| key_of_f64(x)), k));
     }
@@ -191,7 +369,7 @@ const AXIS_LIMIT: f64 = 1e150;
 
 /// A plotted range and whether values were left out of it beyond
 /// [`AXIS_LIMIT`] (infinite or huge), which the caption then says.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, PartialEq)]
 struct Axis {
     range: Range<f64>,
     clipped: bool,
@@ -214,18 +392,22 @@ impl Axis {
 /// widened to at least a millionth of its magnitude (or ±0.5) when it is
 /// (nearly) a single value, and padded by 3 %. Always finite, never empty.
 fn axis_range(v: &[f64], must: &[f64]) -> Axis {
-    let within = |x: &f64| x.abs() <= AXIS_LIMIT;
+    let within = |x: &f64| within_axis_limit(*x);
     let kept: std::borrow::Cow<'_, [f64]> = if v.iter().all(within) {
         std::borrow::Cow::Borrowed(v)
     } else {
         std::borrow::Cow::Owned(v.iter().copied().filter(within).collect())
     };
-    let mut clipped = kept.len() < v.len() || !must.iter().all(within);
-    let (mut lo, mut hi) = if kept.is_empty() {
-        (0.0, 1.0)
-    } else {
-        (quantile(&kept, 0.001), quantile(&kept, 0.999))
-    };
+    let quantiles = (!kept.is_empty()).then(|| (quantile(&kept, 0.001), quantile(&kept, 0.999)));
+    axis_of(quantiles, kept.len() < v.len(), must)
+}
+
+/// [`axis_range`] from the kept values' 0.1 % and 99.9 % quantiles (`None`
+/// when none is kept) and whether any value was beyond the limit.
+fn axis_of(quantiles: Option<(f64, f64)>, beyond: bool, must: &[f64]) -> Axis {
+    let within = |x: &f64| within_axis_limit(*x);
+    let clipped = beyond || !must.iter().all(within);
+    let (mut lo, mut hi) = quantiles.unwrap_or((0.0, 1.0));
     for m in must.iter().filter(|m| within(m)) {
         lo = lo.min(*m);
         hi = hi.max(*m);
@@ -237,7 +419,6 @@ fn axis_range(v: &[f64], must: &[f64]) -> Axis {
         hi += half;
     }
     let pad = 0.03 * (hi - lo);
-    clipped |= kept.is_empty() && !v.is_empty();
     Axis {
         range: (lo - pad)..(hi + pad),
         clipped,
@@ -252,7 +433,7 @@ fn fpr(c: &Confusion) -> f64 {
 }
 
 /// Precision against recall over every cut point, with the operating point at τ.
-pub fn precision_recall(s: SplitScores<'_>) -> Result<Plot> {
+pub fn precision_recall(s: SplitFigures<'_>) -> Result<Plot> {
     let cuts = s.cuts;
     let points: Vec<(f64, f64)> = cuts
         .iter()
@@ -261,10 +442,9 @@ pub fn precision_recall(s: SplitScores<'_>) -> Result<Plot> {
         .map(|c| (recall(c), c.tp as f64 / (c.tp + c.fp) as f64))
         .collect();
     let points = thin(&points, (1.0, 1.0));
-    let at = Confusion::at(s.scores, s.is_anomaly, Threshold(s.tau));
+    let at = s.facts.at;
     let op = (recall(&at), at.precision().unwrap_or(0.0));
-    let base =
-        s.is_anomaly.iter().filter(|&&a| a).count() as f64 / s.is_anomaly.len().max(1) as f64;
+    let base = (at.tp + at.fn_) as f64 / (at.tp + at.fn_ + at.fp + at.tn).max(1) as f64;
     let file = format!("plot-{}-precision-recall.svg", s.split);
     let svg = draw(&file, WIDE, |root| {
         let mut chart = frame(
@@ -314,14 +494,14 @@ pub fn precision_recall(s: SplitScores<'_>) -> Result<Plot> {
 }
 
 /// True-positive rate against false-positive rate, with the operating point.
-pub fn roc(s: SplitScores<'_>) -> Result<Plot> {
+pub fn roc(s: SplitFigures<'_>) -> Result<Plot> {
     let cuts = s.cuts;
     let points: Vec<(f64, f64)> = cuts
         .iter()
         .map(|cut| (fpr(&cut.c), recall(&cut.c)))
         .collect();
     let points = thin(&points, (1.0, 1.0));
-    let at = Confusion::at(s.scores, s.is_anomaly, Threshold(s.tau));
+    let at = s.facts.at;
     let op = (fpr(&at), recall(&at));
     let file = format!("plot-{}-roc.svg", s.split);
     let svg = draw(&file, WIDE, |root| {
@@ -367,11 +547,10 @@ pub fn roc(s: SplitScores<'_>) -> Result<Plot> {
 }
 
 /// The policy's objective at every validation cut point against ln ε = −τ.
-pub fn objective(policy: ThresholdPolicy, s: SplitScores<'_>) -> Result<Plot> {
+pub fn objective(policy: ThresholdPolicy, s: SplitFigures<'_>) -> Result<Plot> {
     let (name, value) = threshold::objective(policy);
     let cuts = s.cuts;
-    let ln_eps: Vec<f64> = s.scores.iter().map(|v| -v).collect();
-    let axis = axis_range(&ln_eps, &[-s.tau]);
+    let axis = &s.facts.axes.ln_eps;
     let xr = axis.range.clone();
     let mut points: Vec<(f64, f64)> = cuts
         .iter()
@@ -379,7 +558,7 @@ pub fn objective(policy: ThresholdPolicy, s: SplitScores<'_>) -> Result<Plot> {
         .filter(|(x, _)| xr.contains(x))
         .collect();
     points.sort_by(|a, b| a.0.total_cmp(&b.0));
-    let at = value(&Confusion::at(s.scores, s.is_anomaly, Threshold(s.tau)));
+    let at = value(&s.facts.at);
     // A cost objective grows with its costs: values beyond the axis limit
     // (or infinite) are left out of the value axis too, and the caption says so.
     let y_within = |y: f64| y.abs() <= AXIS_LIMIT;
@@ -441,48 +620,30 @@ pub fn objective(policy: ThresholdPolicy, s: SplitScores<'_>) -> Result<Plot> {
 
 /// Bin counts of `v` over `r` in `bins` equal bins; values outside are not counted.
 fn bin_counts(v: &[f64], r: &Range<f64>, bins: usize) -> (Vec<u64>, u64) {
-    let w = (r.end - r.start) / bins as f64;
     let mut counts = vec![0u64; bins];
     let mut outside = 0;
     for &x in v {
-        if x < r.start || x > r.end || !x.is_finite() {
-            outside += 1;
-            continue;
+        match bin_of(x, r, bins) {
+            Some(b) => counts[b] += 1,
+            None => outside += 1,
         }
-        let b = (((x - r.start) / w) as usize).min(bins - 1);
-        counts[b] += 1;
     }
     (counts, outside)
 }
 
 /// Score histograms of normal and anomalous rows with the threshold line.
 /// Counts are log-scaled when one class outnumbers the other more than 20 to 1.
-pub fn score_histogram(s: SplitScores<'_>) -> Result<Plot> {
-    let axis = axis_range(s.scores, &[s.tau]);
+pub fn score_histogram(s: SplitFigures<'_>) -> Result<Plot> {
+    let axis = &s.facts.axes.score;
     let xr = axis.range.clone();
-    let bins = 48;
-    let normal: Vec<f64> = s
-        .scores
-        .iter()
-        .zip(s.is_anomaly)
-        .filter(|(_, &a)| !a)
-        .map(|(v, _)| *v)
-        .collect();
-    let anomalous: Vec<f64> = s
-        .scores
-        .iter()
-        .zip(s.is_anomaly)
-        .filter(|(_, &a)| a)
-        .map(|(v, _)| *v)
-        .collect();
-    let (cn, on) = bin_counts(&normal, &xr, bins);
-    let (ca, oa) = bin_counts(&anomalous, &xr, bins);
-    let (big, small) = (
-        normal.len().max(anomalous.len()),
-        normal.len().min(anomalous.len()).max(1),
-    );
+    let bins = SCORE_BINS;
+    let ((cn, on), (ca, oa)) = (&s.facts.normal, &s.facts.anomalous);
+    let (on, oa) = (*on, *oa);
+    let at = s.facts.at;
+    let (normals, anomalies) = (at.fp + at.tn, at.tp + at.fn_);
+    let (big, small) = (normals.max(anomalies), normals.min(anomalies).max(1));
     let log = big > 20 * small;
-    let top = cn.iter().chain(&ca).copied().max().unwrap_or(1).max(1) as f64;
+    let top = cn.iter().chain(ca).copied().max().unwrap_or(1).max(1) as f64;
     let file = format!("plot-{}-scores.svg", s.split);
     let width = (xr.end - xr.start) / bins as f64;
     let svg = draw(&file, WIDE, |root| {
@@ -494,11 +655,11 @@ pub fn score_histogram(s: SplitScores<'_>) -> Result<Plot> {
                 (0.5f64..top * 2.0).log_scale(),
                 0.5,
                 width,
-                &cn,
-                &ca,
+                cn,
+                ca,
             )
         } else {
-            histogram_chart(root, s, xr.clone(), 0f64..top * 1.08, 0.0, width, &cn, &ca)
+            histogram_chart(root, s, xr.clone(), 0f64..top * 1.08, 0.0, width, cn, ca)
         }
     })?;
     let outside = if on + oa > 0 {
@@ -526,7 +687,7 @@ pub fn score_histogram(s: SplitScores<'_>) -> Result<Plot> {
 #[allow(clippy::too_many_arguments)]
 fn histogram_chart<Y>(
     root: &Area<'_>,
-    s: SplitScores<'_>,
+    s: SplitFigures<'_>,
     xr: Range<f64>,
     y: Y,
     floor: f64,
@@ -803,6 +964,61 @@ mod tests {
 
     use super::*;
 
+    /// The figures' facts made as an engine makes them (the kept scores'
+    /// values at the axis ranks, here by a full sort; the histogram counts
+    /// by [`bin_of`] on the range fixed first) equal those made from the
+    /// scores, and the ln ε axis equals the axis of the negated scores (the
+    /// objective's definition). Invented scores with repeats, both zeros,
+    /// infinities and values beyond the limit.
+    #[test]
+    fn facts_from_order_statistics_equal_facts_from_scores() {
+        use rand_chacha::rand_core::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(29);
+        for n in [0usize, 1, 2, 3, 17, 500, 5000] {
+            let v: Vec<f64> = (0..n)
+                .map(|_| match rng.next_u32() % 12 {
+                    0 => 0.0,
+                    1 => -0.0,
+                    2 => f64::INFINITY,
+                    3 => 1e200,
+                    4 => 2.5,
+                    _ => (rng.next_u64() >> 11) as f64 / 2f64.powi(45) - 20.0,
+                })
+                .collect();
+            let y: Vec<bool> = (0..n).map(|_| rng.next_u32() % 5 == 0).collect();
+            for tau in [2.5, 0.0, 1e300] {
+                let mut kept: Vec<f64> = v
+                    .iter()
+                    .copied()
+                    .filter(|&x| within_axis_limit(x))
+                    .collect();
+                kept.sort_by(f64::total_cmp);
+                let values: Vec<f64> = axis_ranks(kept.len()).iter().map(|&k| kept[k]).collect();
+                let axes = ScoreAxes::new((n - kept.len()) as u64, &values, tau);
+                let r = axes.score_range();
+                let mut bins = [
+                    (vec![0u64; SCORE_BINS], 0u64),
+                    (vec![0u64; SCORE_BINS], 0u64),
+                ];
+                for (x, a) in v.iter().zip(&y) {
+                    let class = &mut bins[usize::from(*a)];
+                    match bin_of(*x, &r, SCORE_BINS) {
+                        Some(b) => class.0[b] += 1,
+                        None => class.1 += 1,
+                    }
+                }
+                let [normal, anomalous] = bins;
+                let at = Confusion::at(&v, &y, Threshold(tau));
+                let engine = ScoreFacts::new(at, axes, normal, anomalous).unwrap();
+                let facts = ScoreFacts::of(&v, &y, tau);
+                assert_eq!(engine, facts, "n {n} tau {tau}");
+                let neg: Vec<f64> = v.iter().map(|x| -x).collect();
+                assert_eq!(facts.axes.ln_eps, axis_range(&neg, &[-tau]), "n {n}");
+                assert_eq!(facts.axes.score, axis_range(&v, &[tau]), "n {n}");
+            }
+        }
+    }
+
     #[test]
     fn thinning_keeps_ends_and_drops_crowded_points() {
         let pts: Vec<(f64, f64)> = (0..=10_000).map(|i| (i as f64 / 10_000.0, 0.5)).collect();
@@ -858,13 +1074,15 @@ mod tests {
             let handle = std::thread::spawn(move || {
                 let labels: Vec<bool> = (0..scores.len()).map(|i| i % 3 == 2).collect();
                 let cuts = threshold::cuts(&scores, &labels);
-                let s = SplitScores {
+                let raw = SplitScores {
                     split: "validation",
                     scores: &scores,
                     is_anomaly: &labels,
                     tau,
                     cuts: &cuts,
                 };
+                let facts = raw.facts();
+                let s = raw.with(&facts);
                 let mut captions = vec![
                     precision_recall(s).unwrap().caption,
                     roc(s).unwrap().caption,

@@ -50,6 +50,15 @@ pub const BUCKET_DIGEST: &str = "anomark_bucket_digest";
 pub const INTERVAL: &str = "anomark_interval";
 /// A score's `total_cmp` order as an integer: `anomark_order_key(score)`.
 pub const ORDER_KEY: &str = "anomark_order_key";
+/// `anomark_axis_prefix(s, shift)`: [`axis_prefix`] of each score.
+pub const AXIS_PREFIX: &str = "anomark_axis_prefix";
+/// `anomark_bin(range, s)`: [`score_bin`] of each score.
+pub const BIN: &str = "anomark_bin";
+/// `anomark_score_row(part, f, r, a, s1, …)`: `audit::hash::score_row`.
+pub const SCORE_ROW: &str = "anomark_score_row";
+/// `anomark_write_scores(dir, names, g, part, f, r, a, s1, …)`: writes a
+/// group's scored rows as one Parquet part (`engine::held::ScoresWriter`).
+pub const WRITE_SCORES: &str = "anomark_write_scores";
 
 /// A feature's value on a training row: `anomark_feature(feature, a, b)`,
 /// `features::FittedFeature::train_value` (NaN where a rule is broken;
@@ -72,11 +81,11 @@ pub const NOT_NUMBER: &str = "anomark_not_number";
 pub const VERSION_MISMATCH: &str = "anomark version mismatch";
 
 /// An execution error in DataFusion's type.
-fn fail(message: impl Into<String>) -> DataFusionError {
+pub(crate) fn fail(message: impl Into<String>) -> DataFusionError {
     DataFusionError::Execution(message.into())
 }
 
-fn f64s<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a Float64Array> {
+pub(crate) fn f64s<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a Float64Array> {
     let f = a
         .as_any()
         .downcast_ref::<Float64Array>()
@@ -87,7 +96,7 @@ fn f64s<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a Float64Array> {
     Ok(f)
 }
 
-fn bools<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a BooleanArray> {
+pub(crate) fn bools<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a BooleanArray> {
     let b = a
         .as_any()
         .downcast_ref::<BooleanArray>()
@@ -109,14 +118,14 @@ fn keys<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a FixedSizeBinaryArray> {
     Ok(k)
 }
 
-fn binaries<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a BinaryArray> {
+pub(crate) fn binaries<'a>(a: &'a ArrayRef, what: &str) -> Result<&'a BinaryArray> {
     a.as_any()
         .downcast_ref::<BinaryArray>()
         .ok_or_else(|| fail(format!("{what}: want Binary, got {}", a.data_type())))
 }
 
 /// A literal argument's bytes.
-fn literal_bytes<'a>(v: &'a ColumnarValue, what: &str) -> Result<&'a [u8]> {
+pub(crate) fn literal_bytes<'a>(v: &'a ColumnarValue, what: &str) -> Result<&'a [u8]> {
     match v {
         ColumnarValue::Scalar(ScalarValue::Binary(Some(b))) => Ok(b),
         _ => Err(fail(format!("{what}: want a Binary literal"))),
@@ -562,6 +571,7 @@ impl AggregateUDFImpl for Aggregate {
                 hashes: Vec::new(),
                 rows: Vec::new(),
             }),
+            WRITE_SCORES => Box::new(super::held::ScoresWriter::default()),
             _ => Box::new(HashesAcc(Vec::new())),
         })
     }
@@ -913,6 +923,134 @@ impl ScalarUDFImpl for NumberUdf {
     }
 }
 
+/// The leading `64 − shift` bits of a score's [`order_key`] (an
+/// arithmetic shift, so prefixes keep `f64::total_cmp` order), `None` for a
+/// score beyond the figures' axis limit (`card::plots::within_axis_limit`):
+/// the digits by which the figures' order statistics are found exactly, 16
+/// bits a pass.
+pub fn axis_prefix(v: f64, shift: u32) -> Option<i64> {
+    crate::card::plots::within_axis_limit(v).then(|| order_key(v) >> shift.min(63))
+}
+
+/// The score histogram's bin of a score on `range` (`card::plots::bin_of`
+/// with `card::plots::SCORE_BINS` bins), −1 outside it.
+pub fn score_bin(range: &std::ops::Range<f64>, v: f64) -> i64 {
+    crate::card::plots::bin_of(v, range, crate::card::plots::SCORE_BINS).map_or(-1, |b| b as i64)
+}
+
+/// An integer literal argument.
+fn literal_i64(v: &ColumnarValue, what: &str) -> Result<i64> {
+    match v {
+        ColumnarValue::Scalar(s) => match s {
+            ScalarValue::Int64(Some(x)) => Ok(*x),
+            ScalarValue::Int32(Some(x)) => Ok(i64::from(*x)),
+            ScalarValue::UInt64(Some(x)) => Ok(*x as i64),
+            _ => Err(fail(format!("{what}: want an integer literal"))),
+        },
+        _ => Err(fail(format!("{what}: want an integer literal"))),
+    }
+}
+
+/// `anomark_axis_prefix(s, shift)`: [`axis_prefix`] of each score.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct AxisPrefix {
+    signature: Signature,
+}
+
+impl ScalarUDFImpl for AxisPrefix {
+    scalar_udf_boilerplate!(AXIS_PREFIX);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::Int64)
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let shift = literal_i64(&args.args[1], AXIS_PREFIX)?;
+        let shift = u32::try_from(shift)
+            .ok()
+            .filter(|s| *s < 64)
+            .ok_or_else(|| fail(format!("{AXIS_PREFIX}: a shift of 0 to 63")))?;
+        let arrays = ColumnarValue::values_to_arrays(&args.args[..1])?;
+        let s = f64s(&arrays[0], AXIS_PREFIX)?;
+        let out: Int64Array = s.values().iter().map(|&v| axis_prefix(v, shift)).collect();
+        Ok(ColumnarValue::Array(Arc::new(out)))
+    }
+}
+
+/// `anomark_bin(range, s)`: [`score_bin`] of each score, the range's two
+/// ends carried in the plan.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct Bin {
+    signature: Signature,
+}
+
+impl ScalarUDFImpl for Bin {
+    scalar_udf_boilerplate!(BIN);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::Int64)
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let ends = from_le_bytes(literal_bytes(&args.args[0], BIN)?);
+        let [start, end] = ends[..] else {
+            return Err(fail(format!("{BIN}: want the range's two ends")));
+        };
+        let arrays = ColumnarValue::values_to_arrays(&args.args[1..])?;
+        let s = f64s(&arrays[0], BIN)?;
+        let out: Int64Array = s
+            .values()
+            .iter()
+            .map(|&v| Some(score_bin(&(start..end), v)))
+            .collect();
+        Ok(ColumnarValue::Array(Arc::new(out)))
+    }
+}
+
+/// `anomark_score_row(part, f, r, a, s1, …)`: each row's
+/// `audit::hash::score_row` (split, file, row in file, label, scores).
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct ScoreRow {
+    signature: Signature,
+}
+
+impl ScalarUDFImpl for ScoreRow {
+    scalar_udf_boilerplate!(SCORE_ROW);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::FixedSizeBinary(32))
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let n = args.number_rows;
+        let arrays = ColumnarValue::values_to_arrays(&args.args)?;
+        if arrays.len() < 4 {
+            return Err(fail(format!("{SCORE_ROW}: want part, f, r, a and scores")));
+        }
+        let int = |a: &ArrayRef| -> Result<Int64Array> {
+            let c = datafusion::arrow::compute::cast(a, &DataType::Int64)?;
+            c.as_any()
+                .downcast_ref::<Int64Array>()
+                .cloned()
+                .ok_or_else(|| fail(format!("{SCORE_ROW}: want integers")))
+        };
+        let (part, f, r) = (int(&arrays[0])?, int(&arrays[1])?, int(&arrays[2])?);
+        let a = bools(&arrays[3], SCORE_ROW)?;
+        let scores: Vec<&Float64Array> = arrays[4..]
+            .iter()
+            .map(|c| f64s(c, SCORE_ROW))
+            .collect::<Result<_>>()?;
+        let hashes: Vec<[u8; 32]> = (0..n)
+            .map(|i| {
+                crate::audit::hash::score_row(
+                    part.value(i) as u8,
+                    f.value(i) as u32,
+                    r.value(i) as u64,
+                    a.value(i),
+                    scores.iter().map(|s| s.value(i)),
+                )
+                .0
+            })
+            .collect();
+        let out = FixedSizeBinaryArray::try_from_iter(hashes.iter())?;
+        Ok(ColumnarValue::Array(Arc::new(out)))
+    }
+}
+
 /// Every scalar function, the version guard reporting `version`.
 pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
     let any = || Signature::variadic_any(Volatility::Immutable);
@@ -940,6 +1078,10 @@ pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
             signature: any(),
             name: FEATURE_CHECK,
         })),
+        Arc::new(ScalarUDF::from(AxisPrefix { signature: any() })),
+        Arc::new(ScalarUDF::from(Bin { signature: any() })),
+        Arc::new(ScalarUDF::from(ScoreRow { signature: any() })),
+        Arc::new(ScalarUDF::from(super::sample::Sampled::new())),
         Arc::new(ScalarUDF::from(VersionCheck {
             signature: Signature::variadic_any(Volatility::Volatile),
             version: version.to_string(),
@@ -949,7 +1091,7 @@ pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
 
 /// Every aggregate function.
 pub fn aggregate_functions() -> Vec<Arc<AggregateUDF>> {
-    [BUCKET_MOMENTS, BUCKET_DIGEST]
+    [BUCKET_MOMENTS, BUCKET_DIGEST, WRITE_SCORES]
         .into_iter()
         .map(|name| {
             Arc::new(AggregateUDF::from(Aggregate {

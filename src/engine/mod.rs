@@ -13,7 +13,9 @@
 
 pub mod cluster;
 pub mod functions;
+pub(crate) mod held;
 pub mod run;
+pub(crate) mod sample;
 
 use std::collections::BTreeMap;
 

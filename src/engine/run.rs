@@ -8,16 +8,13 @@
 //! leakage, counts the splits, and summarises the training rows: their
 //! moments by content-hash bucket per feature set, the train manifest by
 //! bucket digests, and a systematic sample (every k-th row in content-hash
-//! order) for the figures and the drift reference. The client then holds
-//! the validation and test rows only, read back from the engine, and every
-//! later stage runs as for a streamed run: the same numbers, to the bit.
+//! order) for the figures and the drift reference. The validation and test
+//! rows stay on the engine (`super::held`): the later stages ask it for the
+//! summaries they read, the same numbers, to the bit.
 
 use std::collections::BTreeMap;
 
-use datafusion::arrow::array::{
-    Array, ArrayRef, BooleanArray, FixedSizeBinaryArray, Float64Array, Int64Array, Int8Array,
-    StringArray,
-};
+use datafusion::arrow::array::{Array, ArrayRef, Int64Array, StringArray};
 use datafusion::arrow::compute::cast;
 use datafusion::arrow::datatypes::{DataType, Field, Schema};
 use datafusion::arrow::record_batch::RecordBatch;
@@ -26,13 +23,14 @@ use datafusion::execution::session_state::SessionStateBuilder;
 use datafusion::prelude::{CsvReadOptions, ParquetReadOptions, SessionConfig, SessionContext};
 use ndarray::Array2;
 
+use super::held::HeldOnEngine;
 use super::{collect, engine_error, functions, sql_bytes, sql_text, version};
-use crate::audit::hash::ContentHash;
-use crate::data::{self, Dataset, Dropped, Format, Origin, RowId, SourceFile, TextColumn};
+use crate::data::{self, Dataset, Dropped, Format, RowId, SourceFile};
 use crate::error::{Error, Result};
 use crate::features::{self, FittedFeatures};
 use crate::part::Part;
 use crate::progress::Progress;
+use crate::protocol::held::Held;
 use crate::protocol::ingest::{Ingest, Ingested, Training, SAMPLE_LIMITS};
 use crate::protocol::Engine;
 use crate::spec::{DetectorKind, FeatureInput, MissingPolicy, Plan, SplitPlan, TransformKind};
@@ -43,14 +41,37 @@ pub struct OnEngine(pub Engine);
 
 impl Ingest for OnEngine {
     fn ingest(&self, plan: &Plan, progress: &Progress) -> Result<Ingested> {
-        super::cluster::runtime()?.block_on(async {
+        let runtime = super::cluster::runtime()?;
+        let (ctx, mut ingested, held) = runtime.block_on(async {
             let stage = progress.stage("starting the engine session");
             let ctx = context(&self.0).await?;
             drop(stage);
-            let sorted_on_engine = matches!(self.0, Engine::Local { .. });
-            ingest(&ctx, plan, progress, sorted_on_engine).await
-        })
+            let (ingested, held) = ingest(&ctx, plan, progress).await?;
+            Ok::<_, Error>((ctx, ingested, held))
+        })?;
+        // The validation and test rows stay on the engine; the later
+        // stages ask it for their summaries in this session.
+        let (files, validation_manifest) = held;
+        ingested.rows.held = Held::Engine(Box::new(HeldOnEngine {
+            runtime,
+            ctx,
+            sets: feature_columns(plan)?,
+            files,
+            validation_manifest,
+            ids: plan.id_column.is_some(),
+        }));
+        Ok(ingested)
     }
+}
+
+/// Per feature set, the SQL of its features on the engine's views (a plain
+/// column as `x3`, anything else by [`feature_sql`]): what a candidate of
+/// the set is scored from, the values the training moments were made of.
+fn feature_columns(plan: &Plan) -> Result<Vec<Vec<String>>> {
+    features::fit_without_rows(plan)?
+        .iter()
+        .map(|set| set.features.iter().map(|f| feature_sql(f, false)).collect())
+        .collect()
 }
 
 /// Refuses, with the reason, a plan an engine does not run: anything but
@@ -98,6 +119,15 @@ pub fn check_scope(plan: &Plan) -> Result<()> {
         return Err(refuse(
             "data.missing-values",
             "an engine refuses missing values (`refuse`, the default); it does not drop rows"
+                .into(),
+        ));
+    }
+    if let crate::spec::ThresholdPolicy::Conformal { .. } = plan.threshold {
+        return Err(refuse(
+            "threshold",
+            "the conformal policy takes τ from every candidate's sorted validation-normal \
+             scores, which an engine does not send to the client (it sends summaries); \
+             choose another policy, or run in process"
                 .into(),
         ));
     }
@@ -205,17 +235,6 @@ async fn context(engine: &Engine) -> Result<SessionContext> {
     Ok(ctx)
 }
 
-/// A result column as Float64 (cast on the client when the engine chose
-/// another numeric type).
-fn f64s(b: &RecordBatch, j: usize) -> Result<Float64Array> {
-    let a: ArrayRef = cast(b.column(j), &DataType::Float64)
-        .map_err(|e| engine_error("reading the engine's result", e))?;
-    a.as_any()
-        .downcast_ref::<Float64Array>()
-        .cloned()
-        .ok_or_else(|| Error::internal("an engine result not castable to Float64"))
-}
-
 /// A result column as Int64.
 fn i64s(b: &RecordBatch, j: usize) -> Result<Int64Array> {
     let a: ArrayRef = cast(b.column(j), &DataType::Int64)
@@ -258,13 +277,14 @@ fn place(files: &[SourceFile], f: i64, r: i64) -> String {
 }
 
 /// Reads, checks, hashes and splits the plan's rows on the engine; returns
-/// the validation and test rows with the training rows' summaries.
+/// the splits' counts and manifests with the training rows' summaries (no
+/// rows), and the source's files with the validation manifest for the
+/// held splits' summaries.
 async fn ingest(
     ctx: &SessionContext,
     plan: &Plan,
     progress: &Progress,
-    sorted_on_engine: bool,
-) -> Result<Ingested> {
+) -> Result<(Ingested, (Vec<SourceFile>, String))> {
     let source = &plan.sources[0];
     let label = plan.label.as_ref().expect("checked by the scope");
     let paths = data::expand(source, plan)?;
@@ -477,11 +497,12 @@ async fn ingest(
     let moments = train_moments(ctx, &fitted, &files).await?;
     let manifest = super::manifest(ctx, "assigned", Part::Train as i8).await?;
     let train_rows = counts[0].normal + counts[0].anomaly;
-    let (sample, samples) = train_sample(ctx, nx, train_rows, columns, sorted_on_engine).await?;
+    let (sample, samples) = train_sample(ctx, nx, train_rows, columns).await?;
     drop(stage);
 
-    let stage = progress.stage("reading the validation and test rows");
-    let (data, hashes, parts) = held_rows(ctx, plan, files, nx).await?;
+    let stage = progress.stage("hashing the validation and test manifests");
+    let validation_manifest = super::manifest(ctx, "assigned", Part::Validation as i8).await?;
+    let test_manifest = super::manifest(ctx, "assigned", Part::Test as i8).await?;
     drop(stage);
 
     let stage = progress.stage("splitting and checking for leakage");
@@ -505,8 +526,19 @@ async fn ingest(
         report.rows_off_requested_counts = split::off_requested(&counts, &req);
         report.requested = Some(req);
     }
-    let splits = split::held(&data, &hashes, &parts, report)?;
+    let splits = split::summarised(report, test_manifest)?;
     drop(stage);
+    // No row on the client: the files read and the columns, for the record.
+    let data = Dataset {
+        files: files.clone(),
+        columns: plan.columns.iter().map(|c| c.name.clone()).collect(),
+        x: Array2::zeros((0, nx)),
+        is_anomaly: vec![],
+        origin: vec![],
+        ids: None,
+        text: BTreeMap::new(),
+        dropped: Dropped::default(),
+    };
     let training = Training::Moments {
         fitted,
         moments,
@@ -515,7 +547,10 @@ async fn ingest(
         sample: Box::new(sample),
         samples,
     };
-    Ok(Ingested::of(data, hashes, splits, training))
+    Ok((
+        Ingested::of(data, vec![], splits, training),
+        (files, validation_manifest),
+    ))
 }
 
 /// Refuses the first row rule broken anywhere, naming the rows (the first
@@ -782,62 +817,27 @@ async fn train_sample(
     nx: usize,
     train_rows: usize,
     columns: Vec<String>,
-    sorted_on_engine: bool,
 ) -> Result<(Dataset, Vec<Vec<RowId>>)> {
     let strides: Vec<usize> = SAMPLE_LIMITS
         .iter()
         .map(|&l| train_rows.div_ceil(l.max(1)).max(1))
         .collect();
-    let xl = (0..nx)
-        .map(|j| format!("x{j}"))
-        .collect::<Vec<_>>()
-        .join(", ");
-    // In process the engine sorts; on a cluster the client does (a full
-    // sort merged across partitions stalled Ballista 55 in the suite's
-    // cluster), then keeps every k-th row.
-    let order = if sorted_on_engine {
-        " ORDER BY h, f, r"
-    } else {
-        ""
-    };
-    let rows = collect(
-        ctx,
-        "sampling the training rows",
-        &format!("SELECT h, f, r, {xl} FROM assigned WHERE part = 0{order}"),
-    )
-    .await?;
-    // (content hash, file, row) and the row's values.
-    type Keyed = (([u8; 32], i64, i64), Vec<f64>);
-    let mut all: Vec<Keyed> = Vec::new();
-    let mut kept: Vec<(usize, Vec<f64>)> = Vec::new();
-    let mut k = 0usize;
-    for b in &rows {
-        let h = super::column::<FixedSizeBinaryArray>(b, 0)?;
-        let (f, r) = (i64s(b, 1)?, i64s(b, 2)?);
-        let cols: Vec<Float64Array> = (0..nx).map(|j| f64s(b, j + 3)).collect::<Result<_>>()?;
-        for i in 0..b.num_rows() {
-            let values = cols.iter().map(|c| c.value(i)).collect();
-            if !sorted_on_engine {
-                let key: [u8; 32] = h
-                    .value(i)
-                    .try_into()
-                    .map_err(|_| Error::internal("a content hash of other than 32 bytes"))?;
-                all.push(((key, f.value(i), r.value(i)), values));
-            } else if strides.iter().any(|s| k.is_multiple_of(*s)) {
-                kept.push((k, values));
-            }
-            k += 1;
-        }
-    }
-    if !sorted_on_engine {
-        all.sort_unstable_by_key(|row| row.0);
-        kept = all
-            .into_iter()
-            .enumerate()
-            .filter(|(k, _)| strides.iter().any(|s| k.is_multiple_of(*s)))
-            .map(|(k, (_, values))| (k, values))
-            .collect();
-    }
+    // Each content-hash bucket numbered on its own and every k-th row kept
+    // on the engine (`super::sample`): no sort merged across partitions (one
+    // stalled Ballista 55 in the suite's cluster), no training row sent to
+    // the client but the sampled ones.
+    let kept = super::sample::every_kth(ctx, nx, &strides).await?;
+    sample_of(kept, &strides, columns, nx)
+}
+
+/// The sampled training rows (their rank in content-hash order and their
+/// values, in rank order) as the sample dataset and, per stride, its rows.
+fn sample_of(
+    kept: Vec<(usize, Vec<f64>)>,
+    strides: &[usize],
+    columns: Vec<String>,
+    nx: usize,
+) -> Result<(Dataset, Vec<Vec<RowId>>)> {
     let mut samples: Vec<Vec<RowId>> = vec![Vec::new(); strides.len()];
     let mut x = Vec::with_capacity(kept.len() * nx);
     for (at, (k, values)) in kept.iter().enumerate() {
@@ -850,91 +850,4 @@ async fn train_sample(
     }
     let sample = Dataset::sample_of(columns, x)?;
     Ok((sample, samples))
-}
-
-/// The validation and test rows, read back from the engine in file order
-/// (file, then row in it), with their content hashes and splits.
-async fn held_rows(
-    ctx: &SessionContext,
-    plan: &Plan,
-    files: Vec<SourceFile>,
-    nx: usize,
-) -> Result<(Dataset, Vec<ContentHash>, Vec<Part>)> {
-    let xl = (0..nx)
-        .map(|j| format!("x{j}"))
-        .collect::<Vec<_>>()
-        .join(", ");
-    let id = if plan.id_column.is_some() { "id" } else { "''" };
-    let rows = collect(
-        ctx,
-        "reading the validation and test rows",
-        &format!("SELECT f, r, a, h, part, {id}, {xl} FROM assigned WHERE part > 0"),
-    )
-    .await?;
-    struct Row {
-        at: (i64, i64),
-        a: bool,
-        h: ContentHash,
-        part: i8,
-        id: String,
-        x: Vec<f64>,
-    }
-    let mut held = Vec::new();
-    for b in &rows {
-        let (f, r) = (i64s(b, 0)?, i64s(b, 1)?);
-        let a = super::column::<BooleanArray>(b, 2)?;
-        let h = super::column::<FixedSizeBinaryArray>(b, 3)?;
-        let part = super::column::<Int8Array>(b, 4)?;
-        let ids = texts(b, 5)?;
-        let cols: Vec<Float64Array> = (0..nx).map(|j| f64s(b, j + 6)).collect::<Result<_>>()?;
-        for i in 0..b.num_rows() {
-            held.push(Row {
-                at: (f.value(i), r.value(i)),
-                a: a.value(i),
-                h: ContentHash(
-                    h.value(i)
-                        .try_into()
-                        .map_err(|_| Error::internal("a content hash of other than 32 bytes"))?,
-                ),
-                part: part.value(i),
-                id: ids.value(i).to_string(),
-                x: cols.iter().map(|c| c.value(i)).collect(),
-            });
-        }
-    }
-    held.sort_unstable_by_key(|r| r.at);
-    let n = held.len();
-    let mut x = Vec::with_capacity(n * nx);
-    let mut ids = plan.id_column.as_ref().map(|_| TextColumn::default());
-    let (mut is_anomaly, mut origin, mut hashes, mut parts) = (
-        Vec::with_capacity(n),
-        Vec::with_capacity(n),
-        Vec::with_capacity(n),
-        Vec::with_capacity(n),
-    );
-    for r in held {
-        x.extend_from_slice(&r.x);
-        if let Some(ids) = ids.as_mut() {
-            ids.push(&r.id);
-        }
-        is_anomaly.push(r.a);
-        origin.push(Origin {
-            file: r.at.0 as u32,
-            row: r.at.1 as u64,
-        });
-        hashes.push(r.h);
-        parts.push(Part::ALL[r.part as usize]);
-    }
-    let data = Dataset {
-        files,
-        columns: plan.columns.iter().map(|c| c.name.clone()).collect(),
-        x: Array2::from_shape_vec((n, nx), x)
-            .map_err(|e| Error::internal(format!("the held rows: {e}")))?,
-        is_anomaly,
-        origin,
-        ids,
-        text: BTreeMap::new(),
-        dropped: Dropped::default(),
-    };
-    Ok((data, hashes, parts))
 }

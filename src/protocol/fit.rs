@@ -3,6 +3,7 @@
 //! threshold by the policy, with its validation metrics. Nothing here sees
 //! the test split.
 
+use super::held::Held;
 use super::ingest::Rows;
 use super::train::{self, SetTraining};
 use crate::detect::{self, Model};
@@ -30,7 +31,8 @@ pub(crate) struct Candidate {
     pub validation: Metrics,
     /// Its validation metrics' bootstrap intervals, running.
     pub validation_intervals: metrics::PendingIntervals,
-    /// Its validation scores, in the validation rows' order.
+    /// Its validation scores, in the validation rows' order (none when
+    /// the rows are on an engine).
     pub validation_scores: Vec<f64>,
     /// The validation scores' evaluation summary, for the threshold, the
     /// metrics, the bootstrap and the figures.
@@ -83,14 +85,17 @@ pub(crate) fn candidates(
             "fitting and thresholding {}",
             names_shown.join(", ")
         ));
-        let built: Vec<Result<Candidate>> = {
+        let one = |(&kind, name): (&DetectorKind, String)| {
+            candidate(plan, rows, &training, (si, kind, name), &val_y, beta)
+        };
+        let built: Vec<Result<Candidate>> = if rows.held.on_engine() {
+            plan.detectors.iter().zip(names_shown).map(one).collect()
+        } else {
             use rayon::prelude::*;
             plan.detectors
                 .par_iter()
                 .zip(names_shown)
-                .map(|(&kind, name)| {
-                    candidate(plan, rows, &training, (si, kind, name), &val_y, beta)
-                })
+                .map(one)
                 .collect()
         };
         drop(stage);
@@ -136,31 +141,55 @@ fn candidate(
         let model = training.fit(kind).map_err(|e| in_set(e, set))?;
         drop(t);
         let t = crate::progress::part("validation scores");
-        let validation_scores = train::checked_scores(
-            &name,
-            model.as_ref(),
-            (fitted, &training.validation),
-            &rows.validation,
-            &rows.data,
-        )?;
+        let validation_scores = match &rows.held {
+            Held::Rows => train::checked_scores(
+                &name,
+                model.as_ref(),
+                (fitted, &training.validation),
+                &rows.validation,
+                &rows.data,
+            )?,
+            Held::Engine(_) => Vec::new(),
+        };
         drop(t);
         (model, validation_scores)
     };
-    let t = crate::progress::part("summary");
-    let mut validation_summary = Summary::new(&validation_scores, val_y, &[]);
-    drop(t);
-    let t = crate::progress::part("threshold");
-    let choice = threshold::choose_summary(
-        plan.threshold,
-        &validation_scores,
-        val_y,
-        &validation_summary,
-    );
-    // A τ set in advance (a fixed policy) becomes a cut point.
-    if validation_summary.confusion_at(choice.tau).is_none() {
-        validation_summary = Summary::new(&validation_scores, val_y, &[choice.tau]);
-    }
-    drop(t);
+    let (validation_summary, choice) = match &rows.held {
+        Held::Rows => {
+            let t = crate::progress::part("summary");
+            let mut validation_summary = Summary::new(&validation_scores, val_y, &[]);
+            drop(t);
+            let t = crate::progress::part("threshold");
+            let choice = threshold::choose_summary(
+                plan.threshold,
+                &validation_scores,
+                val_y,
+                &validation_summary,
+            );
+            // A τ set in advance (a fixed policy) becomes a cut point.
+            if validation_summary.confusion_at(choice.tau).is_none() {
+                validation_summary = Summary::new(&validation_scores, val_y, &[choice.tau]);
+            }
+            drop(t);
+            (validation_summary, choice)
+        }
+        Held::Engine(e) => {
+            // The same summaries made where the rows are: the choice reads
+            // the summary alone (the conformal policy is refused at the scope).
+            let _t = crate::progress::part("summary on the engine");
+            let part = crate::part::Part::Validation;
+            let mut s = e.summary(&name, part, si, model.as_ref(), &[])?;
+            if let Some(tau) = threshold::fixed_tau(plan.threshold) {
+                if s.confusion_at(tau).is_none() {
+                    s = e.summary(&name, part, si, model.as_ref(), &[tau])?;
+                }
+            }
+            let choice = threshold::choose_on_summary(plan.threshold, &s).ok_or_else(|| {
+                Error::internal("a threshold policy an engine cannot choose from a summary")
+            })?;
+            (s, choice)
+        }
+    };
     let t = crate::progress::part("validation metrics");
     let (validation, validation_intervals) =
         metrics_of(&validation_summary, choice.tau, beta, plan)?;

@@ -64,6 +64,8 @@ pub struct Rows {
     pub report: SplitReport,
     /// How the training rows reach the fit.
     pub training: Training,
+    /// Where the validation and test rows are scored.
+    pub held: super::held::Held,
 }
 
 /// What the ingest stage returns: the rows and the sealed test split.
@@ -183,6 +185,7 @@ impl Ingested {
                 validation,
                 report,
                 training,
+                held: super::held::Held::Rows,
             },
             test,
         }
@@ -203,6 +206,12 @@ impl Ingested {
         manifests.insert(Part::Test.name().into(), self.test.manifest().to_string());
         if let Training::Moments { manifest, .. } = &r.training {
             manifests.insert(Part::Train.name().into(), manifest.clone());
+        }
+        if let super::held::Held::Engine(e) = &r.held {
+            manifests.insert(
+                Part::Validation.name().into(),
+                e.validation_manifest().to_string(),
+            );
         }
         manifests
     }

@@ -25,6 +25,7 @@ use crate::spec::{self, Plan};
 
 pub mod choose;
 pub mod fit;
+pub mod held;
 pub mod ingest;
 pub mod open;
 pub mod recompute;
@@ -267,7 +268,20 @@ fn execute(
     // scores.csv and the figures while the bootstrap intervals, started as
     // each summary was made, are computed beside them.
     let stage = progress.stage("scores.csv and figures");
-    let artifacts = report::artifacts(&plan, &rows, &opened)?;
+    // On an engine the scores are written where the rows are, into a
+    // folder beside the run directory until it is committed.
+    let staging = match &rows.held {
+        held::Held::Rows => None,
+        held::Held::Engine(_) => {
+            let target = opts
+                .out
+                .clone()
+                .or_else(|| plan.output.clone())
+                .ok_or_else(|| Error::internal("an engine run without an output directory"))?;
+            Some(output::Staging::beside(&target)?)
+        }
+    };
+    let artifacts = report::artifacts(&plan, &rows, &opened, staging)?;
     drop(stage);
     let stage = progress.stage("the record, once the intervals are in");
     let header = report::Header {

@@ -8,6 +8,7 @@
 use std::time::SystemTime;
 
 use super::choose::Chosen;
+use super::held::Held;
 use super::ingest::Rows;
 use super::train::{self, SplitFeatures};
 use crate::audit::ledger;
@@ -15,6 +16,7 @@ use crate::data::RowId;
 use crate::detect;
 use crate::error::Result;
 use crate::metrics::{Metrics, PendingIntervals};
+use crate::part::Part;
 use crate::record::{self, TestOpenings};
 use crate::spec::{DetectorKind, Plan};
 use crate::split::SealedTest;
@@ -35,7 +37,8 @@ pub(crate) struct Test {
     pub rows: Vec<RowId>,
     /// Their labels.
     pub labels: Vec<bool>,
-    /// Per candidate, its test scores in the rows' order.
+    /// Per candidate, its test scores in the rows' order (none when the
+    /// rows are on an engine).
     pub scores: Vec<Vec<f64>>,
     /// Per candidate, its test summary with its τ as a cut point.
     pub summaries: Vec<Summary>,
@@ -129,6 +132,28 @@ pub(crate) fn test(
     let test_rows = opened.rows();
     let labels = rows.labels(test_rows);
     let fitted = &mut chosen.fitted;
+    if let Held::Engine(e) = &rows.held {
+        // Each candidate's test summary made where the rows are, with its
+        // τ as a cut point, as below from the scores.
+        let _t = crate::progress::part("test summaries on the engine");
+        let summaries: Vec<Summary> = fitted
+            .candidates
+            .iter()
+            .map(|c| {
+                e.summary(
+                    &c.name,
+                    Part::Test,
+                    c.set,
+                    c.model.as_ref(),
+                    &[c.choice.tau],
+                )
+            })
+            .collect::<Result<_>>()?;
+        let scores = vec![Vec::new(); summaries.len()];
+        return finish(
+            plan, chosen, opened, labels, scores, summaries, openings, warnings,
+        );
+    }
     let test_x: Vec<SplitFeatures> = fitted
         .sets
         .iter()
@@ -174,6 +199,25 @@ pub(crate) fn test(
             .map(|(ts, c)| Summary::new(ts, &labels, &[c.choice.tau]))
             .collect()
     };
+    finish(
+        plan, chosen, opened, labels, scores, summaries, openings, warnings,
+    )
+}
+
+/// The opened test split's results from its summaries: the point metrics
+/// now, the intervals beside the report's files.
+#[allow(clippy::too_many_arguments)]
+fn finish(
+    plan: &Plan,
+    chosen: Chosen,
+    opened: crate::split::OpenedTest,
+    labels: Vec<bool>,
+    scores: Vec<Vec<f64>>,
+    summaries: Vec<Summary>,
+    openings: TestOpenings,
+    warnings: Vec<String>,
+) -> Result<Opened> {
+    let fitted = &chosen.fitted;
     // Their point metrics now; their intervals beside the report's files.
     let (metrics, intervals) = summaries
         .iter()

@@ -268,6 +268,96 @@ fn scores_line_difference(recorded: &str, recomputed: &str, line: usize) -> Stri
     }
 }
 
+/// The rows of the scores' Parquet parts an engine wrote (`names`,
+/// relative to the run directory `dir`), part after part.
+pub(crate) struct PartsRows {
+    /// The candidates' names, in the parts' column order.
+    pub candidates: Vec<String>,
+    /// The rows.
+    pub rows: Vec<PartRow>,
+}
+
+/// One row of the scores' parts: its id (when the run has an id column),
+/// split (1 validation, 2 test), file, row in file, label, and each
+/// candidate's score.
+pub(crate) type PartRow = (Option<String>, u8, u32, u64, bool, Vec<f64>);
+
+/// Reads the scores' Parquet parts `names` of the run directory `dir`.
+pub(crate) fn read_parts(dir: &Path, names: &[&String]) -> Result<PartsRows> {
+    use polars::prelude::*;
+    let mut out = PartsRows {
+        candidates: vec![],
+        rows: vec![],
+    };
+    for name in names {
+        let path = dir.join(name);
+        let bad = |e: &dyn std::fmt::Display| Error::Verify {
+            dir: dir.to_path_buf(),
+            problems: vec![format!("the scores part `{name}` does not read: {e}")],
+        };
+        let file = std::fs::File::open(&path).map_err(|e| Error::io(&path, "reading", e))?;
+        let df = ParquetReader::new(file).finish().map_err(|e| bad(&e))?;
+        let col = |n: &str| df.column(n).map_err(|e| bad(&e));
+        let ids = match df.column("id") {
+            Ok(c) => Some(c.str().map_err(|e| bad(&e))?.clone()),
+            Err(_) => None,
+        };
+        let split = col("split")?.str().map_err(|e| bad(&e))?.clone();
+        let f = col("file")?.i64().map_err(|e| bad(&e))?.clone();
+        let r = col("row")?.i64().map_err(|e| bad(&e))?.clone();
+        let label = col("label")?.i64().map_err(|e| bad(&e))?.clone();
+        let names: Vec<String> = df
+            .get_column_names()
+            .iter()
+            .map(|n| n.to_string())
+            .collect();
+        let first = names
+            .iter()
+            .position(|n| n == "label")
+            .map_or(names.len(), |k| k + 1);
+        let candidates = names[first..].to_vec();
+        if out.candidates.is_empty() {
+            out.candidates = candidates.clone();
+        } else if out.candidates != candidates {
+            return Err(bad(&"other score columns than the other parts"));
+        }
+        let scores: Vec<Float64Chunked> = candidates
+            .iter()
+            .map(|n| col(n).and_then(|c| c.f64().map_err(|e| bad(&e)).cloned()))
+            .collect::<Result<_>>()?;
+        for i in 0..df.height() {
+            let part = match split.get(i) {
+                Some("validation") => 1u8,
+                Some("test") => 2,
+                other => return Err(bad(&format!("a row of split {other:?}"))),
+            };
+            let (Some(f), Some(r), Some(a)) = (f.get(i), r.get(i), label.get(i)) else {
+                return Err(bad(&"a missing value"));
+            };
+            let s: Vec<f64> = scores
+                .iter()
+                .map(|c| c.get(i).ok_or_else(|| bad(&"a missing score")))
+                .collect::<Result<_>>()?;
+            let id = ids.as_ref().and_then(|c| c.get(i)).map(str::to_string);
+            out.rows.push((id, part, f as u32, r as u64, a == 1, s));
+        }
+    }
+    Ok(out)
+}
+
+/// The scores digest (`audit::hash::scores_digest`) of the Parquet parts
+/// an engine wrote (`names`, relative to `dir`): every row's split, file,
+/// row, label and the candidates' scores in the parts' column order.
+fn parts_digest(dir: &Path, names: &[&String]) -> Result<String> {
+    let parts = read_parts(dir, names)?;
+    let rows: Vec<hash::ContentHash> = parts
+        .rows
+        .iter()
+        .map(|(_, part, f, r, a, s)| hash::score_row(*part, *f, *r, *a, s.iter().copied()))
+        .collect();
+    Ok(hash::scores_digest(&rows))
+}
+
 /// Verifies a run directory, then recomputes it from `spec` and the data it
 /// names (refusing if the spec or an input's hash differs from the record)
 /// and confirms that every file matches, reporting the first difference.
@@ -319,7 +409,26 @@ pub fn verify_by_recomputation(
         progress: crate::progress::Progress::hidden(),
         engine: super::Engine::InProcess,
     };
-    let files = recompute(&opts, &replay)?;
+    let mut files = recompute(&opts, &replay)?;
+    let parts: Vec<&String> = manifest
+        .files
+        .keys()
+        .filter(|n| n.starts_with(&format!("{}/", super::report::SCORES_PARTS)))
+        .collect();
+    if run.engine.is_some() {
+        // A run on an engine wrote its scores as Parquet parts, scores.csv
+        // in process: both give the scores digest, which run.json records
+        // and the recomputed run.json (compared below) computes again.
+        files.remove("scores.csv");
+        let digest = parts_digest(dir, &parts)?;
+        if run.scores_digest.as_deref() != Some(digest.as_str()) {
+            return Err(fail(vec![format!(
+                "the scores' Parquet parts give the scores digest {digest}, but `run.json` \
+                 records {}",
+                run.scores_digest.as_deref().unwrap_or("none")
+            )]));
+        }
+    }
     // The scores first: a differing score (a program that is not
     // deterministic) is named by its row rather than by what it changed.
     let scores_first = manifest
@@ -328,6 +437,9 @@ pub fn verify_by_recomputation(
         .filter(|n| *n == "scores.csv")
         .chain(manifest.files.keys().filter(|n| *n != "scores.csv"));
     for name in scores_first {
+        if run.engine.is_some() && parts.contains(&name) {
+            continue;
+        }
         let recorded = read(dir.join(name))?;
         match files.get(name) {
             Some(b) if *b == *recorded.as_slice() => {}

@@ -6,6 +6,7 @@
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
+use super::held::Held;
 use super::ingest::{self, Rows};
 use super::open::Opened;
 use super::{choose, fit, wording};
@@ -169,15 +170,22 @@ pub(crate) fn record(
             chosen: best.name.clone(),
         },
         candidates: candidate_records,
-        calibration: Some(record::CalibrationRecord {
-            candidate: best.name.clone(),
-            validation_normals: val_y.iter().filter(|&&y| !y).count(),
-            sorted_scores: crate::conformal::Calibration::of_normals(
-                &best.validation_scores,
-                val_y,
-            )
-            .sorted()
-            .to_vec(),
+        calibration: Some(match &rows.held {
+            Held::Rows => record::CalibrationRecord {
+                candidate: best.name.clone(),
+                validation_normals: val_y.iter().filter(|&&y| !y).count(),
+                sorted_scores: crate::conformal::Calibration::of_normals(
+                    &best.validation_scores,
+                    val_y,
+                )
+                .sorted()
+                .to_vec(),
+            },
+            Held::Engine(e) => record::CalibrationRecord {
+                candidate: best.name.clone(),
+                validation_normals: splits.counts[Part::Validation as usize].normal,
+                sorted_scores: e.sorted_normals(Part::Validation, best.set, best.model.as_ref())?,
+            },
         }),
         drift_reference: Some({
             let (shown, sampled, stride) = rows.train_sample(ingest::DRIFT);
@@ -189,16 +197,56 @@ pub(crate) fn record(
                 best.validation.false_positive_rate,
             )?
         }),
+        scores_digest: Some(scores_digest(rows, opened)?),
         engine: header.engine,
         wall_clock: header.wall_clock,
     })
 }
 
+/// The scores digest of the scored rows (validation, and test once opened):
+/// from the scores in memory (scores.csv's rows), or computed on the engine
+/// that holds the rows.
+fn scores_digest(rows: &Rows, opened: &Opened) -> Result<String> {
+    let candidates = &opened.chosen.fitted.candidates;
+    let test = opened.test.as_ref();
+    if let Held::Engine(e) = &rows.held {
+        let models: Vec<(usize, &dyn detect::Model)> = candidates
+            .iter()
+            .map(|c| (c.set, c.model.as_ref()))
+            .collect();
+        return e.scores_digest(&models, test.is_some());
+    }
+    use rayon::prelude::*;
+    let data = &rows.data;
+    let hashed = |part: Part, list: &[RowId], score: &(dyn Fn(usize, usize) -> f64 + Sync)| {
+        list.par_iter()
+            .enumerate()
+            .map(|(k, r)| {
+                let o = data.origin[r.0 as usize];
+                crate::audit::hash::score_row(
+                    part as u8,
+                    o.file,
+                    o.row,
+                    data.is_anomaly[r.0 as usize],
+                    (0..candidates.len()).map(|ci| score(ci, k)),
+                )
+            })
+            .collect::<Vec<_>>()
+    };
+    let mut all = hashed(Part::Validation, &rows.validation, &|ci, k| {
+        candidates[ci].validation_scores[k]
+    });
+    if let Some(t) = test {
+        all.extend(hashed(Part::Test, &t.rows, &|ci, k| t.scores[ci][k]));
+    }
+    Ok(crate::audit::hash::scores_digest(&all))
+}
+
 /// The run directory's files that need no record: scores.csv and the
 /// figures, made while the bootstrap intervals are still being computed.
 pub(crate) struct Artifacts {
-    /// scores.csv, in parts.
-    scores: Vec<Vec<u8>>,
+    /// The scored rows: scores.csv, or the Parquet parts an engine wrote.
+    scores: ScoresOut,
     /// The validation figures.
     validation: Vec<plots::Plot>,
     /// The test figures (none while the test split stays sealed).
@@ -207,8 +255,25 @@ pub(crate) struct Artifacts {
     features: Vec<plots::Plot>,
 }
 
-/// scores.csv and the figures.
-pub(crate) fn artifacts(plan: &Plan, rows: &Rows, opened: &Opened) -> Result<Artifacts> {
+/// The scored rows as the run directory holds them.
+enum ScoresOut {
+    /// scores.csv, in parts (the rows in this process).
+    Csv(Vec<Vec<u8>>),
+    /// Parquet parts an engine wrote into the staging folder (their names).
+    Parts(crate::output::Staging, Vec<String>),
+}
+
+/// The run directory's folder of the scores' Parquet parts on an engine.
+pub const SCORES_PARTS: &str = "scores";
+
+/// scores.csv (or, on an engine, the scores' Parquet parts written into
+/// `staging`) and the figures.
+pub(crate) fn artifacts(
+    plan: &Plan,
+    rows: &Rows,
+    opened: &Opened,
+    staging: Option<crate::output::Staging>,
+) -> Result<Artifacts> {
     let data = &rows.data;
     let fitted = &opened.chosen.fitted;
     let candidates = &fitted.candidates;
@@ -222,12 +287,27 @@ pub(crate) fn artifacts(plan: &Plan, rows: &Rows, opened: &Opened) -> Result<Art
     // made side by side on all cores, each with the same bytes as alone.
     let score_figures = || -> Result<(Vec<plots::Plot>, Vec<plots::Plot>)> {
         let _t = crate::progress::part("score figures");
+        let tau = c.choice.tau;
+        // What the figures read of a split's scores: from the scores, or
+        // asked of the engine that holds the rows.
+        let facts =
+            |part: Part, scores: &[f64], labels: &[bool], summary: &crate::summary::Summary| {
+                match &rows.held {
+                    Held::Rows => Ok(plots::ScoreFacts::of(scores, labels, tau)),
+                    Held::Engine(e) => e.facts(part, c.set, c.model.as_ref(), summary, tau),
+                }
+            };
         let val_cuts = crate::summary::curve(&c.validation_summary);
-        let val = plots::SplitScores {
+        let val_facts = facts(
+            Part::Validation,
+            &c.validation_scores,
+            val_y,
+            &c.validation_summary,
+        )?;
+        let val = plots::SplitFigures {
             split: Part::Validation.name(),
-            scores: &c.validation_scores,
-            is_anomaly: val_y,
-            tau: c.choice.tau,
+            facts: &val_facts,
+            tau,
             cuts: &val_cuts,
         };
         let validation = vec![
@@ -239,11 +319,16 @@ pub(crate) fn artifacts(plan: &Plan, rows: &Rows, opened: &Opened) -> Result<Art
         let mut figures = vec![];
         if let Some(test) = test {
             let test_cuts = crate::summary::curve(&test.summaries[chosen]);
-            let t = plots::SplitScores {
+            let test_facts = facts(
+                Part::Test,
+                &test.scores[chosen],
+                &test.labels,
+                &test.summaries[chosen],
+            )?;
+            let t = plots::SplitFigures {
                 split: Part::Test.name(),
-                scores: &test.scores[chosen],
-                is_anomaly: &test.labels,
-                tau: c.choice.tau,
+                facts: &test_facts,
+                tau,
                 cuts: &test_cuts,
             };
             figures = vec![
@@ -282,21 +367,38 @@ pub(crate) fn artifacts(plan: &Plan, rows: &Rows, opened: &Opened) -> Result<Art
             .collect::<Result<_>>()
     };
     let no_test: Vec<Vec<f64>> = vec![vec![]; candidates.len()];
-    let scores = || {
+    let scores = move || -> Result<ScoresOut> {
         let _t = crate::progress::part("scores.csv");
-        scores_csv(
-            data,
-            candidates,
-            &rows.validation,
-            test.map_or(&[][..], |t| &t.rows),
-            test.map_or(&no_test, |t| &t.scores),
-        )
+        match &rows.held {
+            Held::Rows => Ok(ScoresOut::Csv(scores_csv(
+                data,
+                candidates,
+                &rows.validation,
+                test.map_or(&[][..], |t| &t.rows),
+                test.map_or(&no_test, |t| &t.scores),
+            ))),
+            Held::Engine(e) => {
+                let staging = staging
+                    .ok_or_else(|| Error::internal("an engine run without a staging folder"))?;
+                let models: Vec<(usize, &dyn detect::Model)> = candidates
+                    .iter()
+                    .map(|c| (c.set, c.model.as_ref()))
+                    .collect();
+                let names: Vec<String> = candidates.iter().map(|c| c.name.clone()).collect();
+                let parts = e.write_scores(staging.path(), &models, &names, test.is_some())?;
+                Ok(ScoresOut::Parts(staging, parts))
+            }
+        }
     };
-    let (scores, (by_score, by_feature)) =
-        rayon::join(scores, || rayon::join(score_figures, feature_figures));
+    let (scores, (by_score, by_feature)) = if rows.held.on_engine() {
+        // Asked of the engine from this thread (`Held::on_engine`).
+        (scores(), (score_figures(), feature_figures()))
+    } else {
+        rayon::join(scores, || rayon::join(score_figures, feature_figures))
+    };
     let (validation, test) = by_score?;
     Ok(Artifacts {
-        scores,
+        scores: scores?,
         validation,
         test,
         features: by_feature?,
@@ -319,7 +421,15 @@ pub(crate) fn files(
     files.add("run.json", run_json);
     files.add(SPEC_COPY, plan.spec_bytes.clone());
     let mut ctx = wording::card_context(plan, rec, &rec.spec.file, fingerprint)?;
-    files.add_parts("scores.csv", artifacts.scores);
+    match artifacts.scores {
+        ScoresOut::Csv(scores) => files.add_parts("scores.csv", scores),
+        ScoresOut::Parts(staging, parts) => {
+            for p in parts {
+                files.add_moved(&format!("{SCORES_PARTS}/{p}"), staging.path().join(&p));
+            }
+            files.keep_staging(staging);
+        }
+    }
     ctx.plots_validation = artifacts.validation;
     ctx.plots_test = artifacts.test;
     ctx.plots_features = artifacts.features;

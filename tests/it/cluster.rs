@@ -367,6 +367,93 @@ fn with_derived_features(dir: &Path) {
     std::fs::write(&path, spec.replace(plain, sets)).unwrap();
 }
 
+/// One scored row: id, split, label, each candidate's score's bits.
+type ScoredRow = (String, String, String, Vec<u64>);
+
+/// scores.csv's rows (plain ids), sorted.
+fn csv_rows(csv: &[u8]) -> Vec<ScoredRow> {
+    let text = String::from_utf8(csv.to_vec()).unwrap();
+    let mut rows: Vec<ScoredRow> = text
+        .lines()
+        .skip(1)
+        .map(|l| {
+            let f: Vec<&str> = l.split(',').collect();
+            (
+                f[0].to_string(),
+                f[1].to_string(),
+                f[2].to_string(),
+                f[3..]
+                    .iter()
+                    .map(|v| v.parse::<f64>().unwrap().to_bits())
+                    .collect(),
+            )
+        })
+        .collect();
+    rows.sort();
+    rows
+}
+
+/// The rows of the scores' Parquet parts of the run in `dir`, each named by
+/// its id (checked against the demo row at its file and row, the source
+/// having been the demo file in `files` parts).
+fn parts_rows(dir: &Path, parts: &[String], files: usize) -> Vec<ScoredRow> {
+    use datafusion::arrow::array::{Array, Int64Array};
+    use datafusion::parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let demo = std::fs::read_to_string(root.join("demo-data/pump-housings.csv")).unwrap();
+    let ids: Vec<&str> = demo
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').next().unwrap())
+        .collect();
+    let chunk = ids.len().div_ceil(files);
+    let mut rows = Vec::new();
+    for p in parts {
+        let file = std::fs::File::open(dir.join("out").join(p)).unwrap();
+        let reader = ParquetRecordBatchReaderBuilder::try_new(file)
+            .unwrap()
+            .build()
+            .unwrap();
+        for b in reader {
+            let b = b.unwrap();
+            let schema = b.schema();
+            let col = |n: &str| b.column(schema.index_of(n).unwrap()).clone();
+            let (id, split) = (col("id"), col("split"));
+            let id = id.as_any().downcast_ref::<StringArray>().unwrap();
+            let split = split.as_any().downcast_ref::<StringArray>().unwrap();
+            let (f, r, label) = (col("file"), col("row"), col("label"));
+            let f = f.as_any().downcast_ref::<Int64Array>().unwrap();
+            let r = r.as_any().downcast_ref::<Int64Array>().unwrap();
+            let label = label.as_any().downcast_ref::<Int64Array>().unwrap();
+            let first = schema.index_of("label").unwrap() + 1;
+            for i in 0..b.num_rows() {
+                let at = f.value(i) as usize * chunk + r.value(i) as usize;
+                assert_eq!(
+                    id.value(i),
+                    ids[at],
+                    "the id of file {} row {}",
+                    f.value(i),
+                    r.value(i)
+                );
+                rows.push((
+                    id.value(i).to_string(),
+                    split.value(i).to_string(),
+                    label.value(i).to_string(),
+                    (first..b.num_columns())
+                        .map(|j| {
+                            let c = b.column(j);
+                            let c = c.as_any().downcast_ref::<Float64Array>().unwrap();
+                            c.value(i).to_bits()
+                        })
+                        .collect(),
+                ));
+            }
+        }
+    }
+    rows.sort();
+    rows
+}
+
 /// Runs `anomark ARGS` in `dir`, returning (exit code, stderr).
 fn anomark(dir: &Path, args: &[&str]) -> (i32, String) {
     let out = Command::new(BIN)
@@ -520,8 +607,9 @@ fn an_example_on_parquet_parts_gives_the_same_run_on_every_engine() {
             written.iter().sum::<usize>(),
             "split rows on {engine}"
         );
-        // The validation and test rows read back (their row numbers in
-        // use): one line each in scores.csv, every housing id once.
+        // The validation and test rows scored on the engine (their row
+        // numbers in use): counted below, one row each in the scores' parts,
+        // every housing id once.
         let held: usize = ["validation", "test"]
             .iter()
             .map(|p| {
@@ -529,18 +617,6 @@ fn an_example_on_parquet_parts_gives_the_same_run_on_every_engine() {
                 (c["normal"].as_u64().unwrap() + c["anomaly"].as_u64().unwrap()) as usize
             })
             .sum();
-        let scores = std::fs::read_to_string(dir.join("out/scores.csv")).unwrap();
-        let ids: std::collections::BTreeSet<&str> = scores
-            .lines()
-            .skip(1)
-            .map(|l| l.split(',').next().unwrap())
-            .collect();
-        assert_eq!(
-            scores.lines().count() - 1,
-            held,
-            "scores.csv lines on {engine}"
-        );
-        assert_eq!(ids.len(), held, "distinct ids in scores.csv on {engine}");
         let want = run_files(&base.join("out"));
         assert!(want.contains_key("scores.csv") && want.contains_key("card.html"));
         let mut got = run_files(&dir.join("out"));
@@ -552,15 +628,63 @@ fn an_example_on_parquet_parts_gives_the_same_run_on_every_engine() {
             String::from_utf8(want["run.json"].clone()).unwrap(),
             "run.json on {engine}"
         );
+        // The engine wrote the scores as Parquet parts (no scores.csv):
+        // their rows are scores.csv's, value for value; every other file is
+        // the same.
+        assert!(!got.contains_key("scores.csv"), "scores.csv on {engine}");
+        let parts: Vec<String> = got
+            .keys()
+            .filter(|n| n.starts_with("scores/part-") && n.ends_with(".parquet"))
+            .cloned()
+            .collect();
+        assert!(!parts.is_empty(), "no scores parts on {engine}");
+        let scored = parts_rows(dir, &parts, written.len());
+        let ids: std::collections::BTreeSet<&str> = scored.iter().map(|r| r.0.as_str()).collect();
+        assert_eq!(scored.len(), held, "scored rows on {engine}");
+        assert_eq!(
+            ids.len(),
+            held,
+            "distinct ids among the scored rows on {engine}"
+        );
+        assert_eq!(scored, csv_rows(&want["scores.csv"]), "scores on {engine}");
         for (name, bytes) in &want {
-            if name != "run.json" {
+            if name != "run.json" && name != "scores.csv" {
                 assert!(got.get(name) == Some(bytes), "{name} differs on {engine}");
             }
         }
-        assert_eq!(got.len() + 1, want.len(), "files on {engine}");
+        assert_eq!(got.len() + 2, want.len() + parts.len(), "files on {engine}");
+        // Each part is listed with its hash in the signed manifest.
+        let manifest: serde_json::Value =
+            serde_json::from_slice(&std::fs::read(dir.join("out").join("manifest.json")).unwrap())
+                .unwrap();
+        for p in &parts {
+            let listed = manifest["files"][p]["blake3"].as_str().unwrap();
+            assert_eq!(listed, blake3::hash(&got[p]).to_hex().as_str(), "{p}");
+        }
         // The engine run recomputed in this process gives the same bytes.
         let (code, stderr) = anomark(dir, &["verify", "out", "--pubkey", "key.pub.pem", "--data"]);
         assert_eq!(code, 0, "verify --data of the run on {engine}: {stderr}");
+        // `diff` pairs the engine run's test rows, read from its parts, with
+        // the in-memory run's scores.csv: the same rows, no discordant pair.
+        let old = base.join("out");
+        let out = Command::new(BIN)
+            .current_dir(dir)
+            .args(["diff", old.to_str().unwrap(), "out", "--json"])
+            .output()
+            .unwrap();
+        assert!(
+            out.status.success(),
+            "diff on {engine}: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+        let tested = csv_rows(&want["scores.csv"])
+            .iter()
+            .filter(|r| r.1 == "test")
+            .count();
+        assert_eq!(v["paired"]["rows"], tested, "{v}");
+        assert_eq!(v["paired"]["old-right-new-wrong"], 0, "{v}");
+        assert_eq!(v["paired"]["old-wrong-new-right"], 0, "{v}");
     }
 }
 
@@ -608,6 +732,16 @@ fn specs_beyond_an_engines_scope_are_refused_with_nothing_written() {
         (
             spec.replace("  features:\n", "  missing-values: drop-row\n  features:\n"),
             vec!["`data.missing-values` cannot run on an engine"],
+        ),
+        (
+            spec.replace(
+                "threshold: max-f1\n",
+                "threshold:\n  conformal: {max-false-positive-rate: 0.05}\n",
+            ),
+            vec![
+                "`threshold` cannot run on an engine",
+                "sorted validation-normal",
+            ],
         ),
     ];
     for (text, words) in cases {
@@ -780,8 +914,16 @@ fn a_csv_on_an_engine_reads_numbers_as_in_memory() {
         record.replacen("  \"engine\": \"local\",\n", "", 1),
         String::from_utf8(want["run.json"].clone()).unwrap()
     );
+    // The scores are the engine's Parquet parts, scores.csv's rows value for
+    // value; every other file is the same.
+    let parts: Vec<String> = got
+        .keys()
+        .filter(|n| n.starts_with("scores/part-"))
+        .cloned()
+        .collect();
+    assert_eq!(parts_rows(&local, &parts, 1), csv_rows(&want["scores.csv"]));
     for (name, bytes) in &want {
-        if name != "run.json" {
+        if name != "run.json" && name != "scores.csv" {
             assert!(got.get(name) == Some(bytes), "{name} differs");
         }
     }

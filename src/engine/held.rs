@@ -1,0 +1,860 @@
+//! The held splits (validation and test) on an engine
+//! ([`crate::protocol::held::HeldSplits`]): their rows stay in the engine's
+//! `assigned` view; a candidate's scores are computed there by
+//! `anomark_score` with its fitted parameters carried in the plan, and the
+//! client receives only what a stage reads of them:
+//!
+//! - the evaluation summary (`engine::summary`: the anomaly scores, then the
+//!   rows per cut point and gap), with a score that is not a number refused
+//!   first, naming its row as in process;
+//! - the score figures' facts: the order statistics the axes need
+//!   (`card::plots::axis_ranks`), found exactly by four grouping passes of
+//!   16 bits each over the scores' order keys (`functions::axis_prefix`),
+//!   then the histogram counts per class on the bins those fix
+//!   (`functions::score_bin`), each at most 65,536 groups a pass;
+//! - for the chosen candidate, the validation normals' scores in ascending
+//!   order, which run.json records as the conformal calibration (one number
+//!   per validation normal, without place, id or label).
+//!
+//! Every number is the library's: the engine functions call it.
+
+use std::collections::BTreeMap;
+
+use datafusion::arrow::array::{Array, Int64Array};
+use datafusion::prelude::SessionContext;
+
+use super::{collect, functions, sql_bytes};
+use crate::card::plots::{self, ScoreAxes, ScoreFacts};
+use crate::data::SourceFile;
+use crate::detect::{Model, Params};
+use crate::error::{Error, Result};
+use crate::part::Part;
+use crate::protocol::held::HeldSplits;
+use crate::summary::Summary;
+
+/// The held splits of an engine run: the session (and the runtime that
+/// drives it) in which the `assigned` view holds every row with its split.
+pub(crate) struct HeldOnEngine {
+    /// Drives the session's queries (a cluster's connection lives in it).
+    pub runtime: tokio::runtime::Runtime,
+    /// The session with the `assigned` view.
+    pub ctx: SessionContext,
+    /// Per feature set, its columns in the view (`x0`, `x3`, …).
+    pub sets: Vec<Vec<String>>,
+    /// The source's files, to name a row.
+    pub files: Vec<SourceFile>,
+    /// The validation split's manifest.
+    pub validation_manifest: String,
+    /// Whether the view has the rows' ids (`id`).
+    pub ids: bool,
+}
+
+/// Bits of an order key resolved per pass of the order statistics.
+const DIGIT: u32 = 16;
+
+impl HeldOnEngine {
+    /// The SQL of `model`'s score of a row of the view (feature set `set`).
+    fn score_sql(&self, set: usize, model: &dyn Model) -> Result<String> {
+        let params = match model.params() {
+            Params::IndependentGaussian { mean, variance } => {
+                functions::ModelParams::Independent { mean, variance }
+            }
+            Params::MultivariateGaussian {
+                mean, covariance, ..
+            } => functions::ModelParams::Multivariate {
+                mean,
+                covariance: covariance.concat(),
+            },
+            _ => return Err(Error::internal("a detector an engine does not score")),
+        };
+        Ok(format!(
+            "{}({}, {})",
+            functions::SCORE,
+            sql_bytes(&params.to_bytes()),
+            self.sets[set].join(", ")
+        ))
+    }
+
+    /// The `k`-th smallest (from 0, in `f64::total_cmp` order) of the
+    /// scores `score` of split `part` within the figures' axis limit, for
+    /// each `k` of `ranks` (each below the count of such scores), found by
+    /// grouping on 16 more bits of the order key a pass; and that count.
+    async fn order_statistics(
+        &self,
+        part: Part,
+        score: &str,
+        ranks: impl FnOnce(u64) -> Vec<usize>,
+    ) -> Result<(u64, Vec<f64>)> {
+        let doing = "ordering the scores for the figures";
+        // Per wanted rank: the prefix found so far and the rank within it.
+        let mut targets: Vec<(i64, u64)> = Vec::new();
+        let mut kept = 0u64;
+        let mut ranks = Some(ranks);
+        for pass in 0..4u32 {
+            let shift = 64 - DIGIT * (pass + 1);
+            let prefix = format!("{}({score}, {shift})", functions::AXIS_PREFIX);
+            let within = if pass == 0 {
+                String::new()
+            } else {
+                let parents: std::collections::BTreeSet<i64> =
+                    targets.iter().map(|t| t.0).collect();
+                if parents.is_empty() {
+                    break;
+                }
+                let list: Vec<String> = parents.iter().map(|p| p.to_string()).collect();
+                format!(
+                    " AND {}({score}, {}) IN ({})",
+                    functions::AXIS_PREFIX,
+                    shift + DIGIT,
+                    list.join(", ")
+                )
+            };
+            let rows = collect(
+                &self.ctx,
+                doing,
+                &format!(
+                    "SELECT p, COUNT(*) FROM (SELECT {prefix} AS p FROM assigned WHERE part = \
+                     {part}{within}) WHERE p IS NOT NULL GROUP BY p",
+                    part = part as i8
+                ),
+            )
+            .await?;
+            let mut groups: BTreeMap<i64, u64> = BTreeMap::new();
+            for b in &rows {
+                let (p, n) = (super::column::<Int64Array>(b, 0)?, int64s(b, 1)?);
+                for i in 0..b.num_rows() {
+                    *groups.entry(p.value(i)).or_default() += n.value(i) as u64;
+                }
+            }
+            if pass == 0 {
+                kept = groups.values().sum();
+                let wanted = (ranks.take().expect("once"))(kept);
+                if wanted.iter().any(|&k| k as u64 >= kept) {
+                    return Err(Error::internal("an order statistic beyond the scores"));
+                }
+                targets = wanted.into_iter().map(|k| (0, k as u64)).collect();
+            }
+            for t in targets.iter_mut() {
+                // The groups under the target's prefix, in ascending order.
+                let mut rank = t.1;
+                let mut found = None;
+                for (&p, &n) in &groups {
+                    if pass > 0 && p >> DIGIT != t.0 {
+                        continue;
+                    }
+                    if rank < n {
+                        found = Some(p);
+                        break;
+                    }
+                    rank -= n;
+                }
+                let p = found.ok_or_else(|| {
+                    Error::internal("an order statistic not found in its prefix's groups")
+                })?;
+                *t = (p, rank);
+            }
+        }
+        Ok((
+            kept,
+            targets
+                .iter()
+                .map(|t| functions::from_order_key(t.0))
+                .collect(),
+        ))
+    }
+
+    async fn summary_async(
+        &self,
+        name: &str,
+        part: Part,
+        score: &str,
+        extra: &[f64],
+    ) -> Result<Summary> {
+        // A score that is not a number, refused as in process: the first in
+        // the split's canonical (content hash, row) order.
+        let nan = collect(
+            &self.ctx,
+            "checking the scores",
+            &format!(
+                "SELECT f, r FROM (SELECT h, f, r, {score} AS s FROM assigned WHERE part = {}) \
+                 WHERE isnan(s) ORDER BY h, f, r LIMIT 1",
+                part as i8
+            ),
+        )
+        .await?;
+        if let Some(b) = nan.iter().find(|b| b.num_rows() > 0) {
+            let (f, r) = (int64s(b, 0)?, int64s(b, 1)?);
+            let file = &self.files[f.value(0) as usize];
+            let at = format!(
+                "{} {} {}",
+                file.shown,
+                file.format.unit().word(),
+                file.format.place(r.value(0) as u64)
+            );
+            return Err(Error::Fit {
+                detector: String::new(),
+                message: format!("the score of {at} is not a number"),
+                features: vec![],
+            }
+            .in_candidate(name));
+        }
+        super::summary(&self.ctx, "assigned", score, part as i8, extra).await
+    }
+
+    async fn facts_async(
+        &self,
+        part: Part,
+        score: &str,
+        summary: &Summary,
+        tau: f64,
+    ) -> Result<ScoreFacts> {
+        let at = summary
+            .confusion_at(tau)
+            .ok_or_else(|| Error::internal("τ inside a gap of the figures' summary"))?;
+        let (kept, values) = self
+            .order_statistics(part, score, |kept| plots::axis_ranks(kept as usize))
+            .await?;
+        let axes = ScoreAxes::new(summary.rows() - kept, &values, tau);
+        let r = axes.score_range();
+        let rows = collect(
+            &self.ctx,
+            "counting the scores per histogram bin",
+            &format!(
+                "SELECT a, b, COUNT(*) FROM (SELECT a, {}({}, {score}) AS b FROM assigned WHERE \
+                 part = {}) GROUP BY a, b",
+                functions::BIN,
+                sql_bytes(&functions::le_bytes(&[r.start, r.end])),
+                part as i8
+            ),
+        )
+        .await?;
+        let mut classes = [
+            (vec![0u64; plots::SCORE_BINS], 0u64),
+            (vec![0u64; plots::SCORE_BINS], 0u64),
+        ];
+        for b in &rows {
+            let a = super::column::<datafusion::arrow::array::BooleanArray>(b, 0)?;
+            let (bin, n) = (super::column::<Int64Array>(b, 1)?, int64s(b, 2)?);
+            for i in 0..b.num_rows() {
+                let class = &mut classes[usize::from(a.value(i))];
+                let n = n.value(i) as u64;
+                match usize::try_from(bin.value(i)) {
+                    Ok(k) if k < plots::SCORE_BINS => class.0[k] += n,
+                    _ => class.1 += n,
+                }
+            }
+        }
+        let [normal, anomalous] = classes;
+        ScoreFacts::new(at, axes, normal, anomalous)
+    }
+
+    async fn scores_digest_async(&self, scores: &[String], test: bool) -> Result<String> {
+        // Each scored row's hash made on the engine, then the digest as a
+        // split manifest: bucket digests there, joined here.
+        let parts = if test { "1, 2" } else { "1" };
+        collect(
+            &self.ctx,
+            "hashing the scores",
+            &format!(
+                "CREATE OR REPLACE VIEW anomark_scored AS SELECT {}(part, f, r, a, {}) AS h, \
+                 CAST(0 AS TINYINT) AS part FROM assigned WHERE part IN ({parts})",
+                functions::SCORE_ROW,
+                scores.join(", ")
+            ),
+        )
+        .await?;
+        super::manifest(&self.ctx, "anomark_scored", 0).await
+    }
+
+    async fn write_scores_async(
+        &self,
+        dir: &std::path::Path,
+        scores: &[String],
+        names: &[String],
+        test: bool,
+    ) -> Result<Vec<String>> {
+        let parts = if test { "1, 2" } else { "1" };
+        let rows = collect(
+            &self.ctx,
+            "writing the scores",
+            &format!(
+                "SELECT {w}({dir}, {names}, g, part, f, r, a, {id}, {scores}) FROM (SELECT *, \
+                 CAST({p}(h) / {per} AS BIGINT) AS g FROM assigned WHERE part IN ({parts})) \
+                 GROUP BY g",
+                id = if self.ids {
+                    "id"
+                } else {
+                    "CAST(NULL AS VARCHAR)"
+                },
+                w = functions::WRITE_SCORES,
+                dir = sql_bytes(dir.to_string_lossy().as_bytes()),
+                names = sql_bytes(names.join("\n").as_bytes()),
+                scores = scores.join(", "),
+                p = functions::PREFIX16,
+                per = 65_536 / SCORE_PARTS,
+            ),
+        )
+        .await?;
+        let mut files = Vec::new();
+        for b in &rows {
+            let c = super::column::<datafusion::arrow::array::BinaryArray>(b, 0)?;
+            for i in 0..b.num_rows() {
+                if !c.value(i).is_empty() {
+                    files.push(String::from_utf8_lossy(c.value(i)).into_owned());
+                }
+            }
+        }
+        files.sort();
+        Ok(files)
+    }
+
+    async fn sorted_normals_async(&self, part: Part, score: &str) -> Result<Vec<f64>> {
+        let rows = collect(
+            &self.ctx,
+            "reading the calibration scores",
+            &format!(
+                "SELECT {}({score}) FROM assigned WHERE part = {} AND NOT a",
+                functions::ORDER_KEY,
+                part as i8
+            ),
+        )
+        .await?;
+        let mut keys = Vec::new();
+        for b in &rows {
+            keys.extend_from_slice(super::column::<Int64Array>(b, 0)?.values());
+        }
+        // Order keys sort as `f64::total_cmp` does; equal keys, equal bits.
+        keys.sort_unstable();
+        Ok(keys.into_iter().map(functions::from_order_key).collect())
+    }
+}
+
+/// Parts of the scores written by an engine: at most 256, one per first
+/// byte of the rows' content hashes (so a part's rows, and its bytes, do
+/// not depend on how the engine partitioned them).
+pub const SCORE_PARTS: usize = 256;
+
+/// `anomark_write_scores`'s accumulator: one group's scored rows (split,
+/// file, row in file, label, id, each candidate's score), kept encoded
+/// until the group is complete, then written as one Parquet file, rows in
+/// (split, file, row) order, into the folder named by the call.
+#[derive(Debug, Default)]
+pub(crate) struct ScoresWriter {
+    /// The group, the folder, the candidates' names (`\n`-joined) and
+    /// whether the rows have ids.
+    header: Option<(i64, Vec<u8>, Vec<u8>, bool)>,
+    /// Scores a row.
+    k: usize,
+    /// Rows: split (1 byte), file and row (i64 LE each), label (1 byte),
+    /// the id's length (u32 LE) and bytes, then `k` scores (f64 LE).
+    rows: Vec<u8>,
+}
+
+type DfResult<T> = datafusion::common::Result<T>;
+
+/// One decoded row of a [`ScoresWriter`].
+struct ScoredRow<'a> {
+    part: u8,
+    file: i64,
+    row: i64,
+    label: u8,
+    id: &'a [u8],
+    scores: &'a [u8],
+}
+
+impl ScoresWriter {
+    fn state_bytes(&self) -> Vec<u8> {
+        let mut v = Vec::new();
+        if let Some((g, dir, names, ids)) = &self.header {
+            v.extend_from_slice(&g.to_le_bytes());
+            for b in [dir, names] {
+                v.extend_from_slice(&(b.len() as u32).to_le_bytes());
+                v.extend_from_slice(b);
+            }
+            v.push(u8::from(*ids));
+            v.extend_from_slice(&(self.k as u32).to_le_bytes());
+            v.extend_from_slice(&self.rows);
+        }
+        v
+    }
+
+    /// The rows, decoded.
+    fn decoded(&self) -> DfResult<Vec<ScoredRow<'_>>> {
+        let bad = || functions::fail(format!("{}: a malformed row", functions::WRITE_SCORES));
+        let b = &self.rows;
+        let mut out = Vec::new();
+        let mut at = 0;
+        while at < b.len() {
+            let fixed = b.get(at..at + 22).ok_or_else(bad)?;
+            let n = u32::from_le_bytes(fixed[18..22].try_into().expect("4 bytes")) as usize;
+            let id = b.get(at + 22..at + 22 + n).ok_or_else(bad)?;
+            let end = at + 22 + n + 8 * self.k;
+            let scores = b.get(at + 22 + n..end).ok_or_else(bad)?;
+            out.push(ScoredRow {
+                part: fixed[0],
+                file: i64::from_le_bytes(fixed[1..9].try_into().expect("8 bytes")),
+                row: i64::from_le_bytes(fixed[9..17].try_into().expect("8 bytes")),
+                label: fixed[17],
+                id,
+                scores,
+            });
+            at = end;
+        }
+        Ok(out)
+    }
+}
+
+impl datafusion::logical_expr::Accumulator for ScoresWriter {
+    fn update_batch(&mut self, values: &[datafusion::arrow::array::ArrayRef]) -> DfResult<()> {
+        use datafusion::arrow::compute::cast;
+        use datafusion::arrow::datatypes::DataType;
+        const W: &str = functions::WRITE_SCORES;
+        if values.len() < 8 || values[0].is_empty() {
+            return Ok(());
+        }
+        let int = |a: &datafusion::arrow::array::ArrayRef| -> DfResult<Int64Array> {
+            cast(a, &DataType::Int64)?
+                .as_any()
+                .downcast_ref::<Int64Array>()
+                .cloned()
+                .ok_or_else(|| functions::fail(format!("{W}: want integers")))
+        };
+        let (dir, names) = (
+            functions::binaries(&values[0], W)?,
+            functions::binaries(&values[1], W)?,
+        );
+        let (g, part, f, r) = (
+            int(&values[2])?,
+            int(&values[3])?,
+            int(&values[4])?,
+            int(&values[5])?,
+        );
+        let a = functions::bools(&values[6], W)?;
+        let ids = cast(&values[7], &DataType::Utf8)?;
+        let ids = ids
+            .as_any()
+            .downcast_ref::<datafusion::arrow::array::StringArray>()
+            .ok_or_else(|| functions::fail(format!("{W}: want text ids")))?;
+        let scores: Vec<&datafusion::arrow::array::Float64Array> = values[8..]
+            .iter()
+            .map(|c| functions::f64s(c, W))
+            .collect::<DfResult<_>>()?;
+        if self.header.is_none() {
+            // A run without an id column passes NULL ids.
+            let with_ids = ids.null_count() < ids.len();
+            self.header = Some((
+                g.value(0),
+                dir.value(0).to_vec(),
+                names.value(0).to_vec(),
+                with_ids,
+            ));
+            self.k = scores.len();
+        }
+        for i in 0..part.len() {
+            self.rows.push(part.value(i) as u8);
+            self.rows.extend_from_slice(&f.value(i).to_le_bytes());
+            self.rows.extend_from_slice(&r.value(i).to_le_bytes());
+            self.rows.push(u8::from(a.value(i)));
+            let id = if ids.is_null(i) { "" } else { ids.value(i) };
+            self.rows
+                .extend_from_slice(&(id.len() as u32).to_le_bytes());
+            self.rows.extend_from_slice(id.as_bytes());
+            for s in &scores {
+                self.rows.extend_from_slice(&s.value(i).to_le_bytes());
+            }
+        }
+        Ok(())
+    }
+
+    fn evaluate(&mut self) -> DfResult<datafusion::common::ScalarValue> {
+        use datafusion::arrow::array::{ArrayRef, Float64Array, StringArray};
+        use datafusion::arrow::datatypes::{DataType, Field, Schema};
+        let Some((g, dir, names, with_ids)) = self.header.clone() else {
+            return Ok(datafusion::common::ScalarValue::Binary(Some(vec![])));
+        };
+        let mut rows = self.decoded()?;
+        rows.sort_unstable_by_key(|r| (r.part, r.file, r.row));
+        let names = String::from_utf8_lossy(&names).into_owned();
+        let names: Vec<&str> = names.split('\n').collect();
+        let mut fields = Vec::new();
+        let mut columns: Vec<ArrayRef> = Vec::new();
+        if with_ids {
+            fields.push(Field::new("id", DataType::Utf8, false));
+            columns.push(std::sync::Arc::new(StringArray::from(
+                rows.iter()
+                    .map(|r| String::from_utf8_lossy(r.id).into_owned())
+                    .collect::<Vec<_>>(),
+            )));
+        }
+        fields.extend([
+            Field::new("split", DataType::Utf8, false),
+            Field::new("file", DataType::Int64, false),
+            Field::new("row", DataType::Int64, false),
+            Field::new("label", DataType::Int64, false),
+        ]);
+        columns.extend([
+            std::sync::Arc::new(StringArray::from(
+                rows.iter()
+                    .map(|r| Part::ALL[usize::from(r.part).min(2)].name())
+                    .collect::<Vec<_>>(),
+            )) as ArrayRef,
+            std::sync::Arc::new(Int64Array::from(
+                rows.iter().map(|r| r.file).collect::<Vec<_>>(),
+            )),
+            std::sync::Arc::new(Int64Array::from(
+                rows.iter().map(|r| r.row).collect::<Vec<_>>(),
+            )),
+            std::sync::Arc::new(Int64Array::from(
+                rows.iter().map(|r| i64::from(r.label)).collect::<Vec<_>>(),
+            )),
+        ]);
+        for (c, name) in names.iter().enumerate().take(self.k) {
+            fields.push(Field::new(*name, DataType::Float64, false));
+            columns.push(std::sync::Arc::new(Float64Array::from(
+                rows.iter()
+                    .map(|r| {
+                        f64::from_le_bytes(r.scores[8 * c..8 * c + 8].try_into().expect("8 bytes"))
+                    })
+                    .collect::<Vec<_>>(),
+            )));
+        }
+        let schema = std::sync::Arc::new(Schema::new(fields));
+        let batch = datafusion::arrow::record_batch::RecordBatch::try_new(schema.clone(), columns)?;
+        let name = format!("part-{g:03}.parquet");
+        let path = std::path::Path::new(&*String::from_utf8_lossy(&dir)).join(&name);
+        let file = std::fs::File::create(&path)
+            .map_err(|e| functions::fail(format!("creating `{}`: {e}", path.display())))?;
+        let mut writer = datafusion::parquet::arrow::ArrowWriter::try_new(file, schema, None)?;
+        writer.write(&batch)?;
+        writer.close()?;
+        Ok(datafusion::common::ScalarValue::Binary(Some(
+            name.into_bytes(),
+        )))
+    }
+
+    fn size(&self) -> usize {
+        std::mem::size_of_val(self) + self.rows.capacity()
+    }
+
+    fn state(&mut self) -> DfResult<Vec<datafusion::common::ScalarValue>> {
+        Ok(vec![datafusion::common::ScalarValue::Binary(Some(
+            self.state_bytes(),
+        ))])
+    }
+
+    fn merge_batch(&mut self, states: &[datafusion::arrow::array::ArrayRef]) -> DfResult<()> {
+        let s = functions::binaries(&states[0], functions::WRITE_SCORES)?;
+        for i in 0..s.len() {
+            if s.is_null(i) || s.value(i).is_empty() {
+                continue;
+            }
+            let b = s.value(i);
+            let malformed =
+                || functions::fail(format!("{}: a malformed state", functions::WRITE_SCORES));
+            let u32_at = |at: usize| -> DfResult<usize> {
+                Ok(u32::from_le_bytes(
+                    b.get(at..at + 4)
+                        .ok_or_else(malformed)?
+                        .try_into()
+                        .expect("4 bytes"),
+                ) as usize)
+            };
+            let g = i64::from_le_bytes(b.get(..8).ok_or_else(malformed)?.try_into().expect("8"));
+            let dl = u32_at(8)?;
+            let dir = b.get(12..12 + dl).ok_or_else(malformed)?.to_vec();
+            let nl = u32_at(12 + dl)?;
+            let names = b.get(16 + dl..16 + dl + nl).ok_or_else(malformed)?.to_vec();
+            let with_ids = *b.get(16 + dl + nl).ok_or_else(malformed)? == 1;
+            let k = u32_at(17 + dl + nl)?;
+            if self.header.is_none() {
+                self.header = Some((g, dir, names, with_ids));
+                self.k = k;
+            }
+            self.rows
+                .extend_from_slice(b.get(21 + dl + nl..).ok_or_else(malformed)?);
+        }
+        Ok(())
+    }
+}
+
+/// A count column as Int64.
+fn int64s(b: &datafusion::arrow::record_batch::RecordBatch, j: usize) -> Result<Int64Array> {
+    let a = datafusion::arrow::compute::cast(
+        b.column(j),
+        &datafusion::arrow::datatypes::DataType::Int64,
+    )
+    .map_err(|e| super::engine_error("reading the engine's result", e))?;
+    a.as_any()
+        .downcast_ref::<Int64Array>()
+        .cloned()
+        .ok_or_else(|| Error::internal("an engine result not castable to Int64"))
+}
+
+impl HeldOnEngine {
+    /// Runs `f` on the engine and waits for it on this thread, which must
+    /// not be a thread of rayon's pool: the engine's functions use that pool
+    /// themselves (row hashes, summaries), so a pool thread waiting here
+    /// could leave none to run them, and both would wait for ever. The
+    /// protocol therefore asks an engine from one thread at a time
+    /// ([`crate::protocol::held::Held::on_engine`]).
+    fn wait<F: std::future::Future>(&self, f: F) -> F::Output {
+        debug_assert!(
+            rayon::current_thread_index().is_none(),
+            "an engine waited for on a thread of rayon's pool"
+        );
+        self.runtime.block_on(f)
+    }
+}
+
+impl HeldSplits for HeldOnEngine {
+    fn validation_manifest(&self) -> &str {
+        &self.validation_manifest
+    }
+
+    fn summary(
+        &self,
+        name: &str,
+        part: Part,
+        set: usize,
+        model: &dyn Model,
+        extra: &[f64],
+    ) -> Result<Summary> {
+        let score = self.score_sql(set, model)?;
+        self.wait(self.summary_async(name, part, &score, extra))
+    }
+
+    fn facts(
+        &self,
+        part: Part,
+        set: usize,
+        model: &dyn Model,
+        summary: &Summary,
+        tau: f64,
+    ) -> Result<ScoreFacts> {
+        let score = self.score_sql(set, model)?;
+        self.wait(self.facts_async(part, &score, summary, tau))
+    }
+
+    fn scores_digest(&self, candidates: &[(usize, &dyn Model)], test: bool) -> Result<String> {
+        let scores: Vec<String> = candidates
+            .iter()
+            .map(|(set, model)| self.score_sql(*set, *model))
+            .collect::<Result<_>>()?;
+        self.wait(self.scores_digest_async(&scores, test))
+    }
+
+    fn write_scores(
+        &self,
+        dir: &std::path::Path,
+        candidates: &[(usize, &dyn Model)],
+        names: &[String],
+        test: bool,
+    ) -> Result<Vec<String>> {
+        let scores: Vec<String> = candidates
+            .iter()
+            .map(|(set, model)| self.score_sql(*set, *model))
+            .collect::<Result<_>>()?;
+        self.wait(self.write_scores_async(dir, &scores, names, test))
+    }
+
+    fn sorted_normals(&self, part: Part, set: usize, model: &dyn Model) -> Result<Vec<f64>> {
+        let score = self.score_sql(set, model)?;
+        self.wait(self.sorted_normals_async(part, &score))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use std::sync::Arc;
+
+    use datafusion::arrow::array::{
+        ArrayRef, BooleanArray, FixedSizeBinaryArray, Float64Array, Int64Array, Int8Array,
+    };
+    use datafusion::arrow::datatypes::{DataType, Field, Schema};
+    use datafusion::arrow::record_batch::RecordBatch;
+    use datafusion::datasource::MemTable;
+
+    use super::*;
+
+    /// The held splits' summaries made on an engine (three partitions of
+    /// small batches) equal those made from the scores in memory, bit for
+    /// bit: the evaluation summary, the figures' facts (order statistics
+    /// found 16 bits a pass, then the bins) and the calibration's sorted
+    /// scores. Invented rows with ties, both zeros, scores beyond the axis
+    /// limit and infinite ones (squares that overflow), for this check only.
+    #[test]
+    fn the_held_summaries_on_an_engine_equal_those_from_the_scores() {
+        let n = 3000usize;
+        let mut state = 0x2929_u64;
+        let mut next = move || {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            state
+        };
+        let x: Vec<f64> = (0..n)
+            .map(|i| match i % 97 {
+                0 => 1e80,
+                1 => -1e200,
+                2 => 0.0,
+                3 => -0.0,
+                _ => (next() % 4000) as f64 / 64.0 - 30.0,
+            })
+            .collect();
+        let a: Vec<bool> = (0..n).map(|i| i % 11 == 5).collect();
+        let part: Vec<i8> = (0..n).map(|i| if i % 3 == 0 { 2 } else { 1 }).collect();
+        let params = functions::ModelParams::Independent {
+            mean: vec![1.25],
+            variance: vec![4.0],
+        };
+        let model = params.model(&["x0".to_string()]).unwrap();
+        let schema = Arc::new(Schema::new(vec![
+            Field::new("h", DataType::FixedSizeBinary(32), false),
+            Field::new("f", DataType::Int64, false),
+            Field::new("r", DataType::Int64, false),
+            Field::new("a", DataType::Boolean, false),
+            Field::new("part", DataType::Int8, false),
+            Field::new("x0", DataType::Float64, false),
+        ]));
+        let h: Vec<[u8; 32]> = (0..n).map(|i| [(i % 251) as u8; 32]).collect();
+        let columns: Vec<ArrayRef> = vec![
+            Arc::new(FixedSizeBinaryArray::try_from_iter(h.iter()).unwrap()),
+            Arc::new(Int64Array::from(vec![0i64; n])),
+            Arc::new(Int64Array::from((0..n as i64).collect::<Vec<_>>())),
+            Arc::new(BooleanArray::from(a.clone())),
+            Arc::new(Int8Array::from(part.clone())),
+            Arc::new(Float64Array::from(x.clone())),
+        ];
+        let batch = RecordBatch::try_new(schema.clone(), columns).unwrap();
+        let parts: Vec<Vec<RecordBatch>> = (0..3)
+            .map(|p| {
+                let (lo, hi) = (p * n / 3, (p + 1) * n / 3);
+                (lo..hi)
+                    .step_by(100)
+                    .map(|at| batch.slice(at, 100.min(hi - at)))
+                    .collect()
+            })
+            .collect();
+        let runtime = super::super::cluster::runtime().unwrap();
+        let ctx = super::super::local_context(3, 100).unwrap();
+        ctx.register_table(
+            "assigned",
+            Arc::new(MemTable::try_new(schema, parts).unwrap()),
+        )
+        .unwrap();
+        let held = HeldOnEngine {
+            runtime,
+            ctx,
+            sets: vec![vec!["x0".into()]],
+            files: vec![],
+            validation_manifest: String::new(),
+            ids: false,
+        };
+        for p in [Part::Validation, Part::Test] {
+            let rows: Vec<usize> = (0..n).filter(|&i| part[i] == p as i8).collect();
+            let xs = ndarray::Array2::from_shape_fn((rows.len(), 1), |(i, _)| x[rows[i]]);
+            let scores = crate::detect::score_in_blocks(model.as_ref(), xs.view(), 8192);
+            let labels: Vec<bool> = rows.iter().map(|&i| a[i]).collect();
+            assert!(scores.iter().any(|s| s.is_infinite()));
+            assert!(scores
+                .iter()
+                .any(|s| s.is_finite() && !plots::within_axis_limit(*s)));
+            let got = held.summary("c", p, 0, model.as_ref(), &[]).unwrap();
+            assert!(got == Summary::new(&scores, &labels, &[]), "{p:?}");
+            // τ a cut point, and a τ the summary must be told of.
+            for tau in [scores[labels.iter().position(|&y| y).unwrap()], 3.0] {
+                let s = held.summary("c", p, 0, model.as_ref(), &[tau]).unwrap();
+                assert!(s == Summary::new(&scores, &labels, &[tau]));
+                let facts = held.facts(p, 0, model.as_ref(), &s, tau).unwrap();
+                assert_eq!(
+                    facts,
+                    ScoreFacts::of(&scores, &labels, tau),
+                    "{p:?} τ {tau}"
+                );
+            }
+            let sorted = held.sorted_normals(p, 0, model.as_ref()).unwrap();
+            let want = crate::conformal::Calibration::of_normals(&scores, &labels);
+            let bits = |v: &[f64]| v.iter().map(|s| s.to_bits()).collect::<Vec<_>>();
+            assert_eq!(bits(&sorted), bits(want.sorted()));
+        }
+        // The scores digest over both splits, from each row's score in memory.
+        let xs = ndarray::Array2::from_shape_fn((n, 1), |(i, _)| x[i]);
+        let scores = crate::detect::score_in_blocks(model.as_ref(), xs.view(), 8192);
+        let rows: Vec<crate::audit::hash::ContentHash> = (0..n)
+            .map(|i| crate::audit::hash::score_row(part[i] as u8, 0, i as u64, a[i], [scores[i]]))
+            .collect();
+        let got = held.scores_digest(&[(0, model.as_ref())], true).unwrap();
+        assert_eq!(got, crate::audit::hash::scores_digest(&rows));
+    }
+
+    /// A score that is not a number is refused on the engine as in process:
+    /// the candidate named, and the first such row in the split's canonical
+    /// (content hash, file, row) order named by its file and line.
+    #[test]
+    fn a_score_that_is_not_a_number_is_refused_naming_its_row() {
+        let schema = Arc::new(Schema::new(vec![
+            Field::new("h", DataType::FixedSizeBinary(32), false),
+            Field::new("f", DataType::Int64, false),
+            Field::new("r", DataType::Int64, false),
+            Field::new("a", DataType::Boolean, false),
+            Field::new("part", DataType::Int8, false),
+            Field::new("x0", DataType::Float64, false),
+        ]));
+        // Rows 1 and 3 score NaN; row 3's content hash sorts first.
+        let h: Vec<[u8; 32]> = vec![[5; 32], [9; 32], [7; 32], [2; 32]];
+        let columns: Vec<ArrayRef> = vec![
+            Arc::new(FixedSizeBinaryArray::try_from_iter(h.iter()).unwrap()),
+            Arc::new(Int64Array::from(vec![0i64; 4])),
+            Arc::new(Int64Array::from(vec![0i64, 1, 2, 3])),
+            Arc::new(BooleanArray::from(vec![false, true, false, false])),
+            Arc::new(Int8Array::from(vec![1i8; 4])),
+            Arc::new(Float64Array::from(vec![1.0, f64::NAN, 2.0, f64::NAN])),
+        ];
+        let batch = RecordBatch::try_new(schema.clone(), columns).unwrap();
+        let ctx = super::super::local_context(2, 2).unwrap();
+        ctx.register_table(
+            "assigned",
+            Arc::new(MemTable::try_new(schema, vec![vec![batch]]).unwrap()),
+        )
+        .unwrap();
+        let held = HeldOnEngine {
+            runtime: super::super::cluster::runtime().unwrap(),
+            ctx,
+            sets: vec![vec!["x0".into()]],
+            files: vec![SourceFile {
+                path: "data.csv".into(),
+                shown: "data.csv".into(),
+                format: crate::data::Format::Csv,
+                digest: crate::audit::hash::FileDigest {
+                    bytes: 0,
+                    blake3: String::new(),
+                },
+                rows: 4,
+            }],
+            validation_manifest: String::new(),
+            ids: false,
+        };
+        let model = functions::ModelParams::Independent {
+            mean: vec![0.0],
+            variance: vec![1.0],
+        }
+        .model(&["x0".to_string()])
+        .unwrap();
+        let e = held
+            .summary(
+                "pumps/independent-gaussian",
+                Part::Validation,
+                0,
+                model.as_ref(),
+                &[],
+            )
+            .unwrap_err();
+        let text = e.to_string();
+        assert!(text.contains("pumps/independent-gaussian"), "{text}");
+        assert!(
+            text.contains("the score of data.csv line 5 is not a number"),
+            "{text}"
+        );
+        assert_eq!(e.code(), 3);
+    }
+}
