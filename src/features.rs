@@ -203,14 +203,7 @@ impl FittedFeature {
                 return crate::rules::beyond_train_limit(at, crate::rules::MOMENTS_OVERFLOW)
             }
         };
-        Error::Data {
-            path: at.path,
-            column: Some(at.column),
-            message,
-            lines: at.lines,
-            total: at.total,
-            unit: at.unit,
-        }
+        at.refuse(message)
     }
 }
 

@@ -35,8 +35,9 @@ pub struct At {
 }
 
 impl At {
-    /// The refusal of these rows with `message`.
-    fn refuse(self, message: String) -> Error {
+    /// The refusal of these rows with `message`: the one way a rule's
+    /// message becomes a data error naming the file, column and places.
+    pub fn refuse(self, message: String) -> Error {
         Error::Data {
             path: self.path,
             column: Some(self.column),

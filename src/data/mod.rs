@@ -200,15 +200,7 @@ impl Dataset {
     /// A data error about `rows` (all assumed from the first row's file, which
     /// is the one named; rows from other files are counted, not listed).
     pub fn error(&self, column: &str, message: String, rows: &[RowId]) -> Error {
-        let at = self.at(column, rows);
-        Error::Data {
-            path: at.path,
-            column: Some(at.column),
-            message,
-            lines: at.lines,
-            total: at.total,
-            unit: at.unit,
-        }
+        self.at(column, rows).refuse(message)
     }
 
     /// Where `rows` of `column` are, for a refusal by [`rules`] (the first

@@ -726,15 +726,7 @@ mod tests {
             Arc::new(Float64Array::from(x.clone())),
         ];
         let batch = RecordBatch::try_new(schema.clone(), columns).unwrap();
-        let parts: Vec<Vec<RecordBatch>> = (0..3)
-            .map(|p| {
-                let (lo, hi) = (p * n / 3, (p + 1) * n / 3);
-                (lo..hi)
-                    .step_by(100)
-                    .map(|at| batch.slice(at, 100.min(hi - at)))
-                    .collect()
-            })
-            .collect();
+        let parts = super::super::tests::partitions(&batch, 3, 100);
         let runtime = super::super::cluster::runtime().unwrap();
         let ctx = super::super::local_context(3, 100).unwrap();
         ctx.register_table(

@@ -80,6 +80,25 @@ async fn session(x: &Array2<f64>, a: &[bool], partitions: usize, batch: usize) -
     ctx
 }
 
+/// `batch` as `k` partitions of consecutive rows, each in batches of at
+/// most `rows` rows: a table the engine reads in several partitions.
+pub(super) fn partitions(
+    batch: &datafusion::arrow::record_batch::RecordBatch,
+    k: usize,
+    rows: usize,
+) -> Vec<Vec<datafusion::arrow::record_batch::RecordBatch>> {
+    let n = batch.num_rows();
+    (0..k)
+        .map(|p| {
+            let (lo, hi) = (p * n / k, (p + 1) * n / k);
+            (lo..hi)
+                .step_by(rows)
+                .map(|at| batch.slice(at, rows.min(hi - at)))
+                .collect()
+        })
+        .collect()
+}
+
 fn runtime() -> tokio::runtime::Runtime {
     super::cluster::runtime().unwrap()
 }
