@@ -1082,7 +1082,6 @@ pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
         Arc::new(ScalarUDF::from(Bin { signature: any() })),
         Arc::new(ScalarUDF::from(ScoreRow { signature: any() })),
         Arc::new(ScalarUDF::from(super::sample::Sampled::new())),
-        Arc::new(ScalarUDF::from(super::sample::Picked::new())),
         Arc::new(ScalarUDF::from(VersionCheck {
             signature: Signature::variadic_any(Volatility::Volatile),
             version: version.to_string(),

@@ -5,11 +5,9 @@
 //! buckets are the leading 16 bits of the hash, so bucket order is hash
 //! order), the client turns the counts into each bucket's first global
 //! rank, and the engine numbers each bucket's rows in (hash, file, row)
-//! order (a window partitioned by bucket, over the rows' keys alone) and
-//! returns the places of the rows whose global rank a stride divides
-//! ([`sampled`]); a second pass returns those rows' values, picked by their
-//! places ([`picked`]). The client receives the kept rows only (at most the
-//! sum of the sample limits, plus one a stride).
+//! order (a window partitioned by bucket) and keeps the rows whose global
+//! rank a stride divides ([`sampled`]). The client receives the kept rows
+//! only (at most the sum of the sample limits, plus one a stride).
 
 use std::collections::BTreeMap;
 use std::sync::Arc;
@@ -27,48 +25,6 @@ use crate::error::{Error, Result};
 
 /// `anomark_sampled(plan, bucket, rn)`: [`sampled`] of each row.
 pub const SAMPLED: &str = "anomark_sampled";
-
-/// `anomark_picked(plan, f, r)`: [`picked`] of each row.
-pub const PICKED: &str = "anomark_picked";
-
-/// Bytes of one record of [`picked`]'s plan: file and row (big-endian, so
-/// that byte order is their numeric order) and the row's rank.
-const PICK_RECORD: usize = 24;
-
-/// The rank of the row at file `f`, row `r` if it is among the picked
-/// `records` ([`pick_bytes`], sorted by file and row), found by a binary
-/// search on the bytes (no parse per batch).
-pub fn picked(records: &[u8], f: u64, r: u64) -> Option<u64> {
-    let mut key = [0u8; 16];
-    key[..8].copy_from_slice(&f.to_be_bytes());
-    key[8..].copy_from_slice(&r.to_be_bytes());
-    let (mut lo, mut hi) = (0usize, records.len() / PICK_RECORD);
-    while lo < hi {
-        let mid = (lo + hi) / 2;
-        let rec = &records[mid * PICK_RECORD..(mid + 1) * PICK_RECORD];
-        match rec[..16].cmp(&key) {
-            std::cmp::Ordering::Less => lo = mid + 1,
-            std::cmp::Ordering::Greater => hi = mid,
-            std::cmp::Ordering::Equal => {
-                return Some(u64::from_le_bytes(rec[16..].try_into().expect("8 bytes")))
-            }
-        }
-    }
-    None
-}
-
-/// The literal carrying [`picked`]'s plan: (file, row, rank) of each picked
-/// row, sorted by file and row.
-fn pick_bytes(mut picks: Vec<(u64, u64, u64)>) -> Vec<u8> {
-    picks.sort_unstable();
-    let mut v = Vec::with_capacity(picks.len() * PICK_RECORD);
-    for (f, r, k) in picks {
-        v.extend_from_slice(&f.to_be_bytes());
-        v.extend_from_slice(&r.to_be_bytes());
-        v.extend_from_slice(&k.to_le_bytes());
-    }
-    v
-}
 
 /// Whether the `rn`-th row (from 1) of `bucket` in (hash, file, row) order
 /// is sampled: its global rank (the bucket's first rank in `firsts`, sorted
@@ -171,55 +127,6 @@ impl ScalarUDFImpl for Sampled {
     }
 }
 
-/// `anomark_picked(plan, f, r)`: each row's rank when [`picked`], else null.
-#[derive(Debug, PartialEq, Eq, Hash)]
-pub(crate) struct Picked {
-    pub(crate) signature: Signature,
-}
-
-impl Picked {
-    pub(crate) fn new() -> Self {
-        Picked {
-            signature: Signature::variadic_any(Volatility::Immutable),
-        }
-    }
-}
-
-impl ScalarUDFImpl for Picked {
-    fn name(&self) -> &str {
-        PICKED
-    }
-    fn signature(&self) -> &Signature {
-        &self.signature
-    }
-    fn return_type(&self, _: &[DataType]) -> DfResult<DataType> {
-        Ok(DataType::Int64)
-    }
-    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> DfResult<ColumnarValue> {
-        let records = functions::literal_bytes(&args.args[0], PICKED)?;
-        if records.len() % PICK_RECORD != 0 {
-            return Err(functions::fail(format!("{PICKED}: a malformed plan")));
-        }
-        let arrays = ColumnarValue::values_to_arrays(&args.args[1..])?;
-        let int = |a: &datafusion::arrow::array::ArrayRef| -> DfResult<Int64Array> {
-            datafusion::arrow::compute::cast(a, &DataType::Int64)?
-                .as_any()
-                .downcast_ref::<Int64Array>()
-                .cloned()
-                .ok_or_else(|| functions::fail(format!("{PICKED}: want integers")))
-        };
-        let (f, r) = (int(&arrays[0])?, int(&arrays[1])?);
-        let out: Int64Array = (0..args.number_rows)
-            .map(|i| {
-                let f = u64::try_from(f.value(i)).ok()?;
-                let r = u64::try_from(r.value(i)).ok()?;
-                picked(records, f, r).map(|k| k as i64)
-            })
-            .collect();
-        Ok(ColumnarValue::Array(Arc::new(out)))
-    }
-}
-
 /// The training rows (`part = 0` of `assigned`) whose rank in (hash, file,
 /// row) order a stride of `strides` divides: (rank, the row's `nx` values),
 /// in rank order.
@@ -256,38 +163,15 @@ pub(crate) async fn every_kth(
         .map(|j| format!("x{j}"))
         .collect::<Vec<_>>()
         .join(", ");
-    // First the ranks, sorting only each training row's keys (bucket,
-    // hash, file, row) by bucket; then the picked rows' values by their
-    // places, so the sort never carries a row's values.
-    let picks = collect(
-        ctx,
-        doing,
-        &format!(
-            "SELECT k, f, r FROM (SELECT {SAMPLED}({plan}, b, rn) AS k, f, r FROM (SELECT \
-             {p}(h) AS b, f, r, ROW_NUMBER() OVER (PARTITION BY {p}(h) ORDER BY h, f, r ROWS \
-             BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW) AS rn \
-             FROM assigned WHERE part = 0)) WHERE k IS NOT NULL",
-            plan = sql_bytes(&plan_bytes(&firsts, &strides)),
-        ),
-    )
-    .await?;
-    let mut wanted = Vec::new();
-    for b in &picks {
-        let (k, f, r) = (int64s(b, 0)?, int64s(b, 1)?, int64s(b, 2)?);
-        for i in 0..b.num_rows() {
-            wanted.push((f.value(i) as u64, r.value(i) as u64, k.value(i) as u64));
-        }
-    }
-    if wanted.is_empty() {
-        return Ok(Vec::new());
-    }
     let rows = collect(
         ctx,
         doing,
         &format!(
-            "SELECT k, {xl} FROM (SELECT {PICKED}({plan}, f, r) AS k, {xl} FROM assigned \
-             WHERE part = 0) WHERE k IS NOT NULL",
-            plan = sql_bytes(&pick_bytes(wanted)),
+            "SELECT k, {xl} FROM (SELECT {SAMPLED}({plan}, b, rn) AS k, {xl} FROM (SELECT \
+             {p}(h) AS b, ROW_NUMBER() OVER (PARTITION BY {p}(h) ORDER BY h, f, r ROWS BETWEEN \
+             UNBOUNDED PRECEDING AND CURRENT ROW) AS rn, {xl} \
+             FROM assigned WHERE part = 0)) WHERE k IS NOT NULL",
+            plan = sql_bytes(&plan_bytes(&firsts, &strides)),
         ),
     )
     .await?;
@@ -339,26 +223,6 @@ mod tests {
 
     use super::*;
 
-    /// The binary search over the picked rows' bytes finds exactly the
-    /// listed (file, row) places, with their ranks, and no other.
-    #[test]
-    fn picked_finds_exactly_the_listed_places() {
-        let picks: Vec<(u64, u64, u64)> = (0..500u64)
-            .map(|i| (i % 3, (i * 7919) % 100_003 + (1 << 40) * (i % 2), i))
-            .collect();
-        let bytes = pick_bytes(picks.clone());
-        for &(f, r, k) in &picks {
-            assert_eq!(picked(&bytes, f, r), Some(k), "({f}, {r})");
-        }
-        for f in 0..4u64 {
-            for r in [0u64, 1, 5, 99_999, 100_003, 1 << 40, u64::MAX] {
-                let want = picks.iter().find(|p| p.0 == f && p.1 == r).map(|p| p.2);
-                assert_eq!(picked(&bytes, f, r), want, "({f}, {r})");
-            }
-        }
-        assert_eq!(picked(&[], 0, 0), None);
-    }
-
     /// The rows kept on the engine (three partitions of small batches,
     /// buckets numbered on their own) are the rows a sort of all training
     /// rows by (hash, file, row) keeps at every multiple of a stride, in
@@ -394,7 +258,15 @@ mod tests {
             Arc::new(Float64Array::from(x.clone())),
         ];
         let batch = RecordBatch::try_new(schema.clone(), columns).unwrap();
-        let parts = super::super::tests::partitions(&batch, 3, 64);
+        let parts: Vec<Vec<RecordBatch>> = (0..3)
+            .map(|p| {
+                let (lo, hi) = (p * n / 3, (p + 1) * n / 3);
+                (lo..hi)
+                    .step_by(64)
+                    .map(|at| batch.slice(at, 64.min(hi - at)))
+                    .collect()
+            })
+            .collect();
         let ctx = super::super::local_context(3, 64).unwrap();
         ctx.register_table(
             "assigned",
