@@ -676,6 +676,19 @@ mod tests {
 
     use super::*;
 
+    /// The columns of the `assigned` view the held splits' questions read
+    /// (one feature), for tables made in the tests.
+    fn assigned_schema() -> Arc<Schema> {
+        Arc::new(Schema::new(vec![
+            Field::new("h", DataType::FixedSizeBinary(32), false),
+            Field::new("f", DataType::Int64, false),
+            Field::new("r", DataType::Int64, false),
+            Field::new("a", DataType::Boolean, false),
+            Field::new("part", DataType::Int8, false),
+            Field::new("x0", DataType::Float64, false),
+        ]))
+    }
+
     /// The held splits' summaries made on an engine (three partitions of
     /// small batches) equal those made from the scores in memory, bit for
     /// bit: the evaluation summary, the figures' facts (order statistics
@@ -708,14 +721,7 @@ mod tests {
             variance: vec![4.0],
         };
         let model = params.model(&["x0".to_string()]).unwrap();
-        let schema = Arc::new(Schema::new(vec![
-            Field::new("h", DataType::FixedSizeBinary(32), false),
-            Field::new("f", DataType::Int64, false),
-            Field::new("r", DataType::Int64, false),
-            Field::new("a", DataType::Boolean, false),
-            Field::new("part", DataType::Int8, false),
-            Field::new("x0", DataType::Float64, false),
-        ]));
+        let schema = assigned_schema();
         let h: Vec<[u8; 32]> = (0..n).map(|i| [(i % 251) as u8; 32]).collect();
         let columns: Vec<ArrayRef> = vec![
             Arc::new(FixedSizeBinaryArray::try_from_iter(h.iter()).unwrap()),
@@ -784,14 +790,7 @@ mod tests {
     /// (content hash, file, row) order named by its file and line.
     #[test]
     fn a_score_that_is_not_a_number_is_refused_naming_its_row() {
-        let schema = Arc::new(Schema::new(vec![
-            Field::new("h", DataType::FixedSizeBinary(32), false),
-            Field::new("f", DataType::Int64, false),
-            Field::new("r", DataType::Int64, false),
-            Field::new("a", DataType::Boolean, false),
-            Field::new("part", DataType::Int8, false),
-            Field::new("x0", DataType::Float64, false),
-        ]));
+        let schema = assigned_schema();
         // Rows 1 and 3 score NaN; row 3's content hash sorts first.
         let h: Vec<[u8; 32]> = vec![[5; 32], [9; 32], [7; 32], [2; 32]];
         let columns: Vec<ArrayRef> = vec![

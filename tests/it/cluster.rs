@@ -334,17 +334,25 @@ fn pump_housing_on_parts(dir: &Path, files: usize) -> Vec<usize> {
         w.write(&batch).unwrap();
         w.close().unwrap();
     }
+    write_example_spec(dir, "parts");
+    written
+}
+
+/// The pump-housing example's spec written to `dir/spec.yaml`, reading
+/// `data` (relative to `dir`), with 50 bootstrap replicates and no output
+/// or ledger of its own.
+fn write_example_spec(dir: &Path, data: &str) {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
     let example =
         std::fs::read_to_string(root.join("specs-examples/pump-housing-leak-screen.yaml")).unwrap();
     let spec = example
-        .replace("../demo-data/pump-housings.csv", "parts")
+        .replace("../demo-data/pump-housings.csv", data)
         .lines()
         .filter(|l| !l.starts_with("output:") && !l.starts_with("ledger:"))
         .collect::<Vec<_>>()
         .join("\n")
         + "\nbootstrap:\n  replicates: 50\n";
     std::fs::write(dir.join("spec.yaml"), spec).unwrap();
-    written
 }
 
 /// The example's spec in `dir` with a second feature set of features
@@ -873,16 +881,7 @@ fn pump_housing_csv(dir: &Path, edit: impl Fn(String) -> String) {
     let root = Path::new(env!("CARGO_MANIFEST_DIR"));
     let demo = std::fs::read_to_string(root.join("demo-data/pump-housings.csv")).unwrap();
     std::fs::write(dir.join("housings.csv"), edit(demo)).unwrap();
-    let example =
-        std::fs::read_to_string(root.join("specs-examples/pump-housing-leak-screen.yaml")).unwrap();
-    let spec = example
-        .replace("../demo-data/pump-housings.csv", "housings.csv")
-        .lines()
-        .filter(|l| !l.starts_with("output:") && !l.starts_with("ledger:"))
-        .collect::<Vec<_>>()
-        .join("\n")
-        + "\nbootstrap:\n  replicates: 50\n";
-    std::fs::write(dir.join("spec.yaml"), spec).unwrap();
+    write_example_spec(dir, "housings.csv");
     let (code, stderr) = anomark(
         dir,
         &["keygen", "--private", "key.pem", "--public", "key.pub.pem"],
