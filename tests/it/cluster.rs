@@ -477,17 +477,8 @@ fn anomark(dir: &Path, args: &[&str]) -> (i32, String) {
 
 /// The arguments of a final run of `spec.yaml` into `out`, with `extra`.
 fn final_run_args<'a>(extra: &[&'a str]) -> Vec<&'a str> {
-    let mut args = vec![
-        "run",
-        "spec.yaml",
-        "--key",
-        "key.pem",
-        "--out",
-        "out",
-        "--no-wall-clock",
-        "--open-test",
-        "--quiet",
-    ];
+    let mut args = crate::util::SEALED_RUN.to_vec();
+    args.extend(["--open-test", "--quiet"]);
     args.extend(extra);
     args
 }

@@ -9,6 +9,18 @@ use rand_chacha::rand_core::{Rng, SeedableRng};
 
 pub const BIN: &str = env!("CARGO_BIN_EXE_anomark");
 
+/// The usual run's arguments, test split sealed: `run spec.yaml --key
+/// key.pem --out out --no-wall-clock` (the tests' one copy of them).
+pub const SEALED_RUN: [&str; 7] = [
+    "run",
+    "spec.yaml",
+    "--key",
+    "key.pem",
+    "--out",
+    "out",
+    "--no-wall-clock",
+];
+
 #[derive(Clone)]
 pub struct Case {
     pub dir: Rc<tempfile::TempDir>,
@@ -76,15 +88,7 @@ impl Case {
     /// The usual run, test split sealed: `run spec.yaml --key key.pem --out
     /// out --no-wall-clock`.
     pub fn run_sealed(self) -> Self {
-        self.args([
-            "run",
-            "spec.yaml",
-            "--key",
-            "key.pem",
-            "--out",
-            "out",
-            "--no-wall-clock",
-        ])
+        self.args(SEALED_RUN)
     }
 
     /// The usual final run: `run spec.yaml --key key.pem --out out
