@@ -13,10 +13,61 @@
 //! here is made on the integer j: the flag rule p ≤ A and the threshold rule
 //! s > τ are the same test (see [`Calibration::cut`]), ties included.
 
-/// The sorted calibration scores of one candidate (validation normals).
+/// The calibration scores of one candidate (validation normals), sorted:
+/// every one while there are at most [`Thinning::DEFAULT`]'s `tail + body`;
+/// beyond that the highest `tail` scores and `body` evenly spaced order
+/// statistics below them, each with its rank (see [`Thinning`]).
 #[derive(Debug, Clone, PartialEq)]
 pub struct Calibration {
+    /// n, the calibration rows.
+    n: usize,
+    /// The kept scores, ascending.
     sorted: Vec<f64>,
+    /// Their ranks (from 1, ascending, the last n) when some were left out.
+    ranks: Option<Vec<usize>>,
+}
+
+/// How many calibration scores run.json keeps when there are many: the
+/// highest `tail` exactly, and `body` order statistics at evenly spaced
+/// ranks below them. A p-value is then exact while fewer than `tail`
+/// calibration scores lie at or above the row's score (p below about
+/// tail / n: every p-value a screening or false-discovery rule looks at),
+/// and above that it errs high by less than n / body ranks, which keeps
+/// P(p ≤ a) ≤ a. The conformal cut is exact while its rank lies in the
+/// tail and otherwise sits at the next kept score (fewer false alarms,
+/// never more). Without this, run.json would hold one score per
+/// validation normal row: millions on a large run.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Thinning {
+    /// The highest scores kept exactly.
+    pub tail: usize,
+    /// The evenly spaced order statistics kept below the tail.
+    pub body: usize,
+}
+
+impl Thinning {
+    /// At most 30,000 scores in run.json (about 600 KB).
+    pub const DEFAULT: Thinning = Thinning {
+        tail: 20_000,
+        body: 10_000,
+    };
+
+    /// The ranks (from 1, ascending) of the kept scores of `n`, or `None`
+    /// when every score is kept (n ≤ tail + body): ⌈i·n / body⌉ for
+    /// i = 1, …, body below the tail, then n − tail + 1, …, n.
+    pub fn ranks(self, n: usize) -> Option<Vec<usize>> {
+        if n <= self.tail + self.body {
+            return None;
+        }
+        let first_tail = n - self.tail + 1;
+        let mut ranks: Vec<usize> = (1..=self.body)
+            .map(|i| (i * n).div_ceil(self.body))
+            .filter(|&r| r < first_tail)
+            .collect();
+        ranks.dedup();
+        ranks.extend(first_tail..=n);
+        Some(ranks)
+    }
 }
 
 /// The conformal operating point at a false-alarm level A.
@@ -41,18 +92,46 @@ pub struct TooFewNormals {
 }
 
 impl Calibration {
-    /// From the calibration scores in any order (sorted with `total_cmp`).
-    pub fn new(mut scores: Vec<f64>) -> Self {
-        scores.sort_by(f64::total_cmp);
-        Calibration { sorted: scores }
+    /// From the calibration scores in any order (sorted with `total_cmp`),
+    /// thinned by [`Thinning::DEFAULT`].
+    pub fn new(scores: Vec<f64>) -> Self {
+        Calibration::thinned(scores, Thinning::DEFAULT)
     }
 
-    /// From scores already sorted ascending (as run.json keeps them); `None`
-    /// when they are not sorted or hold a NaN.
-    pub fn from_sorted(sorted: Vec<f64>) -> Option<Self> {
+    /// From the calibration scores in any order, thinned by `thinning`.
+    pub fn thinned(mut scores: Vec<f64>, thinning: Thinning) -> Self {
+        scores.sort_by(f64::total_cmp);
+        let n = scores.len();
+        match thinning.ranks(n) {
+            None => Calibration {
+                n,
+                sorted: scores,
+                ranks: None,
+            },
+            Some(ranks) => Calibration {
+                n,
+                sorted: ranks.iter().map(|&r| scores[r - 1]).collect(),
+                ranks: Some(ranks),
+            },
+        }
+    }
+
+    /// From kept scores already sorted ascending and their ranks (as
+    /// run.json keeps them; `None`: every one of `n` kept); `None` when they
+    /// are not sorted, hold a NaN, or the ranks do not rise to n.
+    pub fn from_kept(n: usize, sorted: Vec<f64>, ranks: Option<Vec<usize>>) -> Option<Self> {
         let ok = sorted.iter().all(|v| !v.is_nan())
-            && sorted.windows(2).all(|w| w[0].total_cmp(&w[1]).is_le());
-        ok.then_some(Calibration { sorted })
+            && sorted.windows(2).all(|w| w[0].total_cmp(&w[1]).is_le())
+            && match &ranks {
+                None => sorted.len() == n,
+                Some(r) => {
+                    r.len() == sorted.len()
+                        && r.first().is_some_and(|&f| f >= 1)
+                        && r.windows(2).all(|w| w[0] < w[1])
+                        && r.last() == Some(&n)
+                }
+            };
+        ok.then_some(Calibration { n, sorted, ranks })
     }
 
     /// The calibration normals of `scores` (rows where `is_anomaly` is false).
@@ -67,24 +146,39 @@ impl Calibration {
         )
     }
 
-    /// n, the number of calibration scores.
+    /// n, the number of calibration rows (kept or not).
     pub fn len(&self) -> usize {
-        self.sorted.len()
+        self.n
     }
 
     /// Whether there are no calibration scores.
     pub fn is_empty(&self) -> bool {
-        self.sorted.is_empty()
+        self.n == 0
     }
 
-    /// The scores, ascending.
+    /// The kept scores, ascending.
     pub fn sorted(&self) -> &[f64] {
         &self.sorted
     }
 
-    /// #{calibration scores ≥ s}.
+    /// The kept scores' ranks (from 1), or `None` when every score is kept.
+    pub fn ranks(&self) -> Option<&[usize]> {
+        self.ranks.as_deref()
+    }
+
+    /// The rank (from 1) of the `i`-th kept score.
+    fn rank_of(&self, i: usize) -> usize {
+        self.ranks.as_ref().map_or(i + 1, |r| r[i])
+    }
+
+    /// #{calibration scores ≥ s}: n minus the highest rank of a kept score
+    /// below s. Exact when every score is kept, or while fewer than the
+    /// tail's scores are ≥ s; otherwise high by less than the ranks' spacing.
     pub fn at_or_above(&self, s: f64) -> usize {
-        self.sorted.len() - self.sorted.partition_point(|&v| v < s)
+        match self.sorted.partition_point(|&v| v < s) {
+            0 => self.n,
+            below => self.n - self.rank_of(below - 1),
+        }
     }
 
     /// j = 1 + #{calibration ≥ s}: p(s) = j / (n + 1).
@@ -94,20 +188,25 @@ impl Calibration {
 
     /// The conformal p-value of a score.
     pub fn p_value(&self, s: f64) -> f64 {
-        self.rank(s) as f64 / (self.sorted.len() + 1) as f64
+        self.rank(s) as f64 / (self.n + 1) as f64
     }
 
     /// The cut at level A: m, the largest j with j / (n + 1) ≤ A, and
     /// τ = the k-th smallest calibration score, k = n + 1 − m, which is
-    /// ⌈(1 − A)(n + 1)⌉ in exact arithmetic.
+    /// ⌈(1 − A)(n + 1)⌉ in exact arithmetic (when rank k was not kept, the
+    /// kept score of the next rank above it, and k that rank).
     ///
-    /// The two rules agree exactly. If s > τ = s₍ₖ₎, every score ≤ s₍ₖ₎ is
-    /// below s, so #{≥ s} ≤ n − k and j ≤ n − k + 1 = m. If s ≤ s₍ₖ₎, the
-    /// scores s₍ₖ₎ … s₍ₙ₎ are all ≥ s, so j ≥ n − k + 2 = m + 1. Since the
-    /// p-value is compared as the same double j / (n + 1), p ≤ A ⟺ j ≤ m
-    /// (division by a fixed n + 1 is monotone in j).
+    /// The two rules agree exactly, with [`Calibration::at_or_above`] as
+    /// defined. If s > τ = s₍ₖ₎, the kept scores up to rank k are below s,
+    /// so #{≥ s} ≤ n − k and j ≤ n − k + 1 = m. If s ≤ s₍ₖ₎, every kept
+    /// score from rank k on is ≥ s, so the highest kept rank below s is
+    /// below k, #{≥ s} ≥ n − k + 1 and j ≥ n − k + 2 = m + 1 (with a rank
+    /// moved up to a kept one, m here is n + 1 − k, at most the largest j
+    /// with j / (n + 1) ≤ A). Since the p-value is compared as the same
+    /// double j / (n + 1), p ≤ A ⟺ s > τ (division by a fixed n + 1 is
+    /// monotone in j).
     pub fn cut(&self, a: f64) -> Result<ConformalCut, TooFewNormals> {
-        let n = self.sorted.len();
+        let n = self.n;
         let m = largest_rank_at_most(a, n);
         if m == 0 {
             return Err(TooFewNormals {
@@ -117,12 +216,24 @@ impl Calibration {
         }
         let k = n + 1 - m;
         // m = n + 1 (A = 1, which the spec refuses) flags everything.
-        let tau = if k == 0 {
-            f64::NEG_INFINITY
-        } else {
-            self.sorted[k - 1]
+        if k == 0 {
+            return Ok(ConformalCut {
+                m,
+                k,
+                tau: f64::NEG_INFINITY,
+            });
+        }
+        // The first kept score of rank k or above (rank n is always kept).
+        let i = match &self.ranks {
+            None => k - 1,
+            Some(r) => r.partition_point(|&r| r < k),
         };
-        Ok(ConformalCut { m, k, tau })
+        let k = self.rank_of(i);
+        Ok(ConformalCut {
+            m: n + 1 - k,
+            k,
+            tau: self.sorted[i],
+        })
     }
 }
 
@@ -309,6 +420,91 @@ mod tests {
                         assert_eq!(e.have, n);
                         assert!(1.0 / (e.need + 1) as f64 <= a);
                         assert!(e.need == 0 || 1.0 / e.need as f64 > a);
+                    }
+                }
+            }
+        }
+    }
+
+    /// The kept ranks of a thinned calibration, worked by hand: n = 20,
+    /// tail 3, body 4 keeps ⌈20i/4⌉ = 5, 10, 15 (20 is in the tail) and
+    /// the tail 18, 19, 20; up to tail + body scores, every one.
+    #[test]
+    fn thinning_keeps_the_tail_and_evenly_spaced_ranks_below_it() {
+        let t = Thinning { tail: 3, body: 4 };
+        assert_eq!(t.ranks(7), None);
+        assert_eq!(t.ranks(20), Some(vec![5, 10, 15, 18, 19, 20]));
+        // A body rank that falls in the tail is kept once: ⌈9i/4⌉ = 3, 5, 7, 9.
+        assert_eq!(t.ranks(9), Some(vec![3, 5, 7, 8, 9]));
+        let c = Calibration::thinned((1..=20).rev().map(f64::from).collect(), t);
+        assert_eq!(c.len(), 20);
+        assert_eq!(c.sorted(), &[5.0, 10.0, 15.0, 18.0, 19.0, 20.0]);
+        // Exact while fewer than the tail's 3 scores are at or above.
+        assert_eq!(c.at_or_above(19.5), 1);
+        assert_eq!(c.at_or_above(18.5), 2);
+        // 18 has 3 (the tail's count): 16 and 17 were not kept, so it
+        // counts 20 − 15 = 5.
+        assert_eq!(c.at_or_above(18.0), 5);
+        // Below it, high by less than the spacing: 12 has 9 at or above it,
+        // counted as 20 − 10 = 10.
+        assert_eq!(c.at_or_above(12.0), 10);
+        assert_eq!(c.at_or_above(0.5), 20);
+        // A record's ranks must rise to n, one per kept score.
+        let kept = || c.sorted().to_vec();
+        let ranks = c.ranks().map(<[usize]>::to_vec);
+        assert_eq!(
+            Calibration::from_kept(20, kept(), ranks.clone()),
+            Some(c.clone())
+        );
+        assert_eq!(Calibration::from_kept(21, kept(), ranks.clone()), None);
+        assert_eq!(Calibration::from_kept(20, kept(), None), None);
+        assert_eq!(
+            Calibration::from_kept(20, kept(), Some(vec![5, 10, 10, 18, 19, 20])),
+            None
+        );
+        assert_eq!(
+            Calibration::from_kept(20, kept(), Some(vec![0, 10, 15, 18, 19, 20])),
+            None
+        );
+    }
+
+    /// A thinned calibration's p-values are never below the exact ones
+    /// (so P(p ≤ a) ≤ a still holds), are exact while fewer than `tail`
+    /// scores lie at or above, and are high by less than the ranks'
+    /// spacing; its cut flags exactly the rows whose p-value is ≤ A, and
+    /// never more than the exact cut. Ties and repeated values included.
+    #[test]
+    fn a_thinned_calibration_errs_high_within_its_spacing_and_keeps_the_cut_rule() {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(31);
+        for _ in 0..200 {
+            let n = 1 + (rng.next_u32() % 400) as usize;
+            let t = Thinning {
+                tail: 1 + (rng.next_u32() % 30) as usize,
+                body: 1 + (rng.next_u32() % 30) as usize,
+            };
+            let cal: Vec<f64> = (0..n).map(|_| (rng.next_u32() % 97) as f64 / 4.0).collect();
+            let exact = Calibration::thinned(cal.clone(), Thinning { tail: n, body: 0 });
+            let c = Calibration::thinned(cal.clone(), t);
+            assert_eq!(c.ranks().is_some(), n > t.tail + t.body);
+            let spacing = n.div_ceil(t.body);
+            for i in 0..60 {
+                let s = i as f64 / 2.5 - 0.5;
+                let (got, want) = (c.at_or_above(s), exact.at_or_above(s));
+                assert!(got >= want && got - want < spacing, "n {n} {t:?} s {s}");
+                if want < t.tail {
+                    assert_eq!(got, want, "n {n} {t:?} s {s}");
+                }
+            }
+            for i in 1..=100u64 {
+                let a = i as f64 / 100.0;
+                let (Ok(cut), Ok(full)) = (c.cut(a), exact.cut(a)) else {
+                    assert!(a < 1.0 / (n + 1) as f64);
+                    continue;
+                };
+                assert!(cut.m <= full.m && cut.tau >= full.tau, "n {n} {t:?} a {a}");
+                for &s in &cal {
+                    for s in [s - 0.125, s, s + 0.125] {
+                        assert_eq!(s > cut.tau, c.p_value(s) <= a, "n {n} {t:?} a {a} s {s}");
                     }
                 }
             }

@@ -216,7 +216,9 @@ pub struct CandidateRecord {
 
 /// The calibration set of conformal p-values: the chosen candidate's scores
 /// of the validation normal rows (never used to fit it), sorted ascending.
-/// p(x) = (1 + #{scores ≥ s(x)}) / (n + 1).
+/// p(x) = (1 + #{scores ≥ s(x)}) / (n + 1). Beyond 30,000 rows only the
+/// highest 20,000 and 10,000 evenly spaced order statistics below them are
+/// kept, with their ranks ([`crate::conformal::Thinning`]).
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub struct CalibrationRecord {
@@ -224,8 +226,34 @@ pub struct CalibrationRecord {
     pub candidate: String,
     /// n, the number of validation normal rows.
     pub validation_normals: usize,
-    /// Their scores, ascending (`total_cmp` order).
+    /// Their scores (the kept ones), ascending (`total_cmp` order).
     pub sorted_scores: Vec<f64>,
+    /// The kept scores' ranks (from 1, ascending, the last n); absent when
+    /// every score is kept.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub kept_ranks: Option<Vec<usize>>,
+}
+
+impl CalibrationRecord {
+    /// The record of `calibration`, the scores of candidate `candidate`.
+    pub fn of(candidate: &str, calibration: &crate::conformal::Calibration) -> Self {
+        CalibrationRecord {
+            candidate: candidate.to_string(),
+            validation_normals: calibration.len(),
+            sorted_scores: calibration.sorted().to_vec(),
+            kept_ranks: calibration.ranks().map(<[usize]>::to_vec),
+        }
+    }
+
+    /// The calibration this record keeps; `None` when its scores are not
+    /// sorted, hold a NaN, or its ranks do not fit its count.
+    pub fn calibration(&self) -> Option<crate::conformal::Calibration> {
+        crate::conformal::Calibration::from_kept(
+            self.validation_normals,
+            self.sorted_scores.clone(),
+            self.kept_ranks.clone(),
+        )
+    }
 }
 
 /// The chosen candidate's feature values on a bounded systematic sample of
@@ -497,5 +525,26 @@ mod tests {
         }
         // Ties are rare: a handful in 400,000 values.
         assert!(differ < 100, "{differ}");
+    }
+
+    /// A thinned calibration survives run.json: its kept scores, their
+    /// `kept-ranks` and n come back as the same calibration; a whole one
+    /// writes no `kept-ranks` (older records read unchanged).
+    #[test]
+    fn a_calibration_record_keeps_its_ranks_through_json() {
+        use crate::conformal::{Calibration, Thinning};
+        let scores: Vec<f64> = (0..500).map(|i| f64::from((i * 37) % 101) / 8.0).collect();
+        for (thinning, thinned) in [
+            (Thinning { tail: 30, body: 20 }, true),
+            (Thinning::DEFAULT, false),
+        ] {
+            let c = Calibration::thinned(scores.clone(), thinning);
+            let rec = CalibrationRecord::of("c1", &c);
+            let text = serde_json::to_string(&rec).unwrap();
+            assert_eq!(text.contains("\"kept-ranks\""), thinned, "{text}");
+            let back: CalibrationRecord = serde_json::from_str(&text).unwrap();
+            assert_eq!(back.validation_normals, 500);
+            assert_eq!(back.calibration(), Some(c));
+        }
     }
 }

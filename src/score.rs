@@ -218,14 +218,14 @@ fn recorded(dir: &Path, pubkey: Option<&Path>) -> Result<Recorded> {
                     "run.json: `calibration` is not the chosen candidate's".into(),
                 ));
             }
-            Some(
-                crate::conformal::Calibration::from_sorted(c.sorted_scores).ok_or_else(|| {
-                    bad_run(
-                        dir,
-                        "run.json: the calibration scores are not sorted".into(),
-                    )
-                })?,
-            )
+            Some(c.calibration().ok_or_else(|| {
+                bad_run(
+                    dir,
+                    "run.json: the calibration scores are not sorted, or their ranks do not \
+                     fit `validation-normals`"
+                        .into(),
+                )
+            })?)
         }
     };
     let drift_reference = run.drift_reference;

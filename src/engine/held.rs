@@ -25,6 +25,7 @@ use datafusion::prelude::SessionContext;
 
 use super::{collect, functions, sql_bytes};
 use crate::card::plots::{self, ScoreAxes, ScoreFacts};
+use crate::conformal::{Calibration, Thinning};
 use crate::data::SourceFile;
 use crate::detect::{Model, Params};
 use crate::error::{Error, Result};
@@ -76,23 +77,23 @@ impl HeldOnEngine {
     }
 
     /// The `k`-th smallest (from 0, in `f64::total_cmp` order) of the
-    /// scores `score` of split `part` within the figures' axis limit, for
-    /// each `k` of `ranks` (each below the count of such scores), found by
-    /// grouping on 16 more bits of the order key a pass; and that count.
+    /// scores of split `part` that `among` keeps, for each `k` of `ranks`
+    /// (each below the count of such scores), found by grouping on 16 more
+    /// bits of the order key a pass; and that count.
     async fn order_statistics(
         &self,
         part: Part,
-        score: &str,
+        among: Among<'_>,
         ranks: impl FnOnce(u64) -> Vec<usize>,
     ) -> Result<(u64, Vec<f64>)> {
-        let doing = "ordering the scores for the figures";
+        let doing = among.doing();
         // Per wanted rank: the prefix found so far and the rank within it.
         let mut targets: Vec<(i64, u64)> = Vec::new();
         let mut kept = 0u64;
         let mut ranks = Some(ranks);
         for pass in 0..4u32 {
             let shift = 64 - DIGIT * (pass + 1);
-            let prefix = format!("{}({score}, {shift})", functions::AXIS_PREFIX);
+            let prefix = among.prefix(shift);
             let within = if pass == 0 {
                 String::new()
             } else {
@@ -103,9 +104,8 @@ impl HeldOnEngine {
                 }
                 let list: Vec<String> = parents.iter().map(|p| p.to_string()).collect();
                 format!(
-                    " AND {}({score}, {}) IN ({})",
-                    functions::AXIS_PREFIX,
-                    shift + DIGIT,
+                    " AND {} IN ({})",
+                    among.prefix(shift + DIGIT),
                     list.join(", ")
                 )
             };
@@ -114,8 +114,9 @@ impl HeldOnEngine {
                 doing,
                 &format!(
                     "SELECT p, COUNT(*) FROM (SELECT {prefix} AS p FROM assigned WHERE part = \
-                     {part}{within}) WHERE p IS NOT NULL GROUP BY p",
-                    part = part as i8
+                     {part}{rows}{within}) WHERE p IS NOT NULL GROUP BY p",
+                    part = part as i8,
+                    rows = among.rows(),
                 ),
             )
             .await?;
@@ -212,7 +213,9 @@ impl HeldOnEngine {
             .confusion_at(tau)
             .ok_or_else(|| Error::internal("τ inside a gap of the figures' summary"))?;
         let (kept, values) = self
-            .order_statistics(part, score, |kept| plots::axis_ranks(kept as usize))
+            .order_statistics(part, Among::Axis(score), |kept| {
+                plots::axis_ranks(kept as usize)
+            })
             .await?;
         let axes = ScoreAxes::new(summary.rows() - kept, &values, tau);
         let r = axes.score_range();
@@ -308,24 +311,107 @@ impl HeldOnEngine {
         Ok(files)
     }
 
-    async fn sorted_normals_async(&self, part: Part, score: &str) -> Result<Vec<f64>> {
-        let rows = collect(
-            &self.ctx,
-            "reading the calibration scores",
-            &format!(
-                "SELECT {}({score}) FROM assigned WHERE part = {} AND NOT a",
-                functions::ORDER_KEY,
-                part as i8
-            ),
+    /// The calibration of `part`'s `n` normal rows, thinned as
+    /// [`Calibration::thinned`] thins them in memory: every score while
+    /// they are few; else the highest `tail` by a bounded top-k sort and
+    /// the order statistics below by [`HeldOnEngine::order_statistics`], so
+    /// the client receives at most `tail + body` scores whatever the rows.
+    async fn calibration_async(
+        &self,
+        part: Part,
+        score: &str,
+        n: usize,
+        thinning: Thinning,
+    ) -> Result<Calibration> {
+        let doing = "reading the calibration scores";
+        let key = format!("{}({score})", functions::ORDER_KEY);
+        let keys_of = |rows: &[datafusion::arrow::record_batch::RecordBatch]| -> Result<Vec<i64>> {
+            let mut keys = Vec::new();
+            for b in rows {
+                keys.extend_from_slice(super::column::<Int64Array>(b, 0)?.values());
+            }
+            // Order keys sort as `f64::total_cmp` does; equal keys, equal bits.
+            keys.sort_unstable();
+            Ok(keys)
+        };
+        let normals = format!("FROM assigned WHERE part = {} AND NOT a", part as i8);
+        let ranks = thinning.ranks(n);
+        let keys = match &ranks {
+            None => keys_of(&collect(&self.ctx, doing, &format!("SELECT {key} {normals}")).await?)?,
+            Some(ranks) => {
+                let tail = keys_of(
+                    &collect(
+                        &self.ctx,
+                        doing,
+                        &format!(
+                            "SELECT k FROM (SELECT {key} AS k {normals}) ORDER BY k DESC LIMIT {}",
+                            thinning.tail
+                        ),
+                    )
+                    .await?,
+                )?;
+                let body: Vec<usize> = ranks[..ranks.len() - thinning.tail]
+                    .iter()
+                    .map(|r| r - 1)
+                    .collect();
+                let (count, values) = self
+                    .order_statistics(part, Among::Normals(score), |_| body)
+                    .await?;
+                if count != n as u64 {
+                    return Err(Error::internal(
+                        "the calibration rows counted twice differently",
+                    ));
+                }
+                values
+                    .into_iter()
+                    .map(functions::order_key)
+                    .chain(tail)
+                    .collect()
+            }
+        };
+        Calibration::from_kept(
+            n,
+            keys.into_iter().map(functions::from_order_key).collect(),
+            ranks,
         )
-        .await?;
-        let mut keys = Vec::new();
-        for b in &rows {
-            keys.extend_from_slice(super::column::<Int64Array>(b, 0)?.values());
+        .ok_or_else(|| Error::internal("the engine's calibration scores do not fit their count"))
+    }
+}
+
+/// Which scores [`HeldOnEngine::order_statistics`] orders: those of a
+/// score expression within the figures' axis limit, or those of the
+/// normal rows, all of them.
+#[derive(Debug, Clone, Copy)]
+enum Among<'a> {
+    /// `score` within the figures' axis limit, every row.
+    Axis(&'a str),
+    /// `score` of the normal rows.
+    Normals(&'a str),
+}
+
+impl Among<'_> {
+    /// The leading `64 − shift` bits of a score's order key (null when not kept).
+    fn prefix(self, shift: u32) -> String {
+        match self {
+            Among::Axis(score) => format!("{}({score}, {shift})", functions::AXIS_PREFIX),
+            Among::Normals(score) => format!("({}({score}) >> {shift})", functions::ORDER_KEY),
         }
-        // Order keys sort as `f64::total_cmp` does; equal keys, equal bits.
-        keys.sort_unstable();
-        Ok(keys.into_iter().map(functions::from_order_key).collect())
+    }
+
+    /// The rows' condition beyond the split's.
+    fn rows(self) -> &'static str {
+        match self {
+            Among::Axis(_) => "",
+            Among::Normals(_) => " AND NOT a",
+        }
+    }
+
+    /// What the engine is doing, for its errors.
+    fn doing(self) -> &'static str {
+        match self {
+            Among::Axis(_) => "ordering the scores for the figures",
+            Among::Normals(_) => "ordering the calibration scores",
+        }
     }
 }
 
@@ -657,9 +743,15 @@ impl HeldSplits for HeldOnEngine {
         self.wait(self.write_scores_async(dir, &scores, names, test))
     }
 
-    fn sorted_normals(&self, part: Part, set: usize, model: &dyn Model) -> Result<Vec<f64>> {
+    fn calibration(
+        &self,
+        part: Part,
+        set: usize,
+        model: &dyn Model,
+        normals: usize,
+    ) -> Result<Calibration> {
         let score = self.score_sql(set, model)?;
-        self.wait(self.sorted_normals_async(part, &score))
+        self.wait(self.calibration_async(part, &score, normals, Thinning::DEFAULT))
     }
 }
 
@@ -770,10 +862,31 @@ mod tests {
                     "{p:?} τ {tau}"
                 );
             }
-            let sorted = held.sorted_normals(p, 0, model.as_ref()).unwrap();
-            let want = crate::conformal::Calibration::of_normals(&scores, &labels);
-            let bits = |v: &[f64]| v.iter().map(|s| s.to_bits()).collect::<Vec<_>>();
-            assert_eq!(bits(&sorted), bits(want.sorted()));
+            // The calibration, whole and thinned (infinities, ±0 and ties
+            // among the kept scores), as in memory bit for bit.
+            let normals: Vec<f64> = scores
+                .iter()
+                .zip(&labels)
+                .filter(|(_, &y)| !y)
+                .map(|(&s, _)| s)
+                .collect();
+            let score = held.score_sql(0, model.as_ref()).unwrap();
+            let bits = |c: &Calibration| {
+                let v: Vec<u64> = c.sorted().iter().map(|s| s.to_bits()).collect();
+                (c.len(), v, c.ranks().map(<[usize]>::to_vec))
+            };
+            for thinning in [
+                Thinning::DEFAULT,
+                Thinning { tail: 40, body: 25 },
+                Thinning { tail: 1, body: 1 },
+            ] {
+                let got = held
+                    .wait(held.calibration_async(p, &score, normals.len(), thinning))
+                    .unwrap();
+                let want = Calibration::thinned(normals.clone(), thinning);
+                assert_eq!(bits(&got), bits(&want), "{p:?} {thinning:?}");
+                assert_eq!(got.ranks().is_some(), thinning != Thinning::DEFAULT);
+            }
         }
         // The scores digest over both splits, from each row's score in memory.
         let xs = ndarray::Array2::from_shape_fn((n, 1), |(i, _)| x[i]);

@@ -93,7 +93,15 @@ pub trait HeldSplits: Send + Sync {
         test: bool,
     ) -> Result<Vec<String>>;
 
-    /// The scores of `part`'s normal rows under `model`, in ascending
-    /// `f64::total_cmp` order (no row identity: no place, id or label).
-    fn sorted_normals(&self, part: Part, set: usize, model: &dyn Model) -> Result<Vec<f64>>;
+    /// The conformal calibration of `part`'s `normals` normal rows under
+    /// `model`, thinned as in memory (`Calibration::new`): at most
+    /// `Thinning::DEFAULT`'s scores, with no row identity (no place, id or
+    /// label).
+    fn calibration(
+        &self,
+        part: Part,
+        set: usize,
+        model: &dyn Model,
+        normals: usize,
+    ) -> Result<crate::conformal::Calibration>;
 }

@@ -170,23 +170,20 @@ pub(crate) fn record(
             chosen: best.name.clone(),
         },
         candidates: candidate_records,
-        calibration: Some(match &rows.held {
-            Held::Rows => record::CalibrationRecord {
-                candidate: best.name.clone(),
-                validation_normals: val_y.iter().filter(|&&y| !y).count(),
-                sorted_scores: crate::conformal::Calibration::of_normals(
-                    &best.validation_scores,
-                    val_y,
-                )
-                .sorted()
-                .to_vec(),
+        calibration: Some(record::CalibrationRecord::of(
+            &best.name,
+            &match &rows.held {
+                Held::Rows => {
+                    crate::conformal::Calibration::of_normals(&best.validation_scores, val_y)
+                }
+                Held::Engine(e) => e.calibration(
+                    Part::Validation,
+                    best.set,
+                    best.model.as_ref(),
+                    splits.counts[Part::Validation as usize].normal,
+                )?,
             },
-            Held::Engine(e) => record::CalibrationRecord {
-                candidate: best.name.clone(),
-                validation_normals: splits.counts[Part::Validation as usize].normal,
-                sorted_scores: e.sorted_normals(Part::Validation, best.set, best.model.as_ref())?,
-            },
-        }),
+        )),
         drift_reference: Some({
             let (shown, sampled, stride) = rows.train_sample(ingest::DRIFT);
             drift_reference(

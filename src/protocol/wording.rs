@@ -223,9 +223,7 @@ fn conformal_card(plan: &Plan, rec: &RunRecord) -> Option<card::ConformalCard> {
         return None;
     };
     let chosen = rec.candidates.iter().find(|c| c.chosen)?;
-    let cal = crate::conformal::Calibration::from_sorted(
-        rec.calibration.as_ref()?.sorted_scores.clone(),
-    )?;
+    let cal = rec.calibration.as_ref()?.calibration()?;
     let rank = cal.cut(a).ok()?.k;
     let test = chosen.test.as_ref();
     Some(card::ConformalCard {
