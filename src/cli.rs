@@ -77,6 +77,12 @@ pub enum Command {
         /// with exit code 5 and writes nothing.
         #[arg(long, value_name = "SECONDS")]
         engine_deadline: Option<u64>,
+        /// With `--engine df://HOST:PORT`: the rows each task of a hash-partitioned
+        /// stage is planned to hold, 1000 to 100000000 (default 500000). The session's
+        /// partitions are the rows over this (at least the client's cores, at most
+        /// 4096); an executor's memory grows with it times its concurrent tasks.
+        #[arg(long, value_name = "ROWS")]
+        engine_task_rows: Option<u64>,
         /// Show no progress (progress is drawn only on a terminal anyway).
         #[arg(long, short)]
         quiet: bool,
@@ -223,10 +229,15 @@ pub enum ClusterRole {
         /// The directory for shuffle files (default: a new temporary directory).
         #[arg(long, value_name = "DIR")]
         work_dir: Option<PathBuf>,
-        /// The executor's memory pool, such as `4GiB` or `512MiB` (default: no limit);
-        /// operators that exceed it spill to the work directory.
+        /// The executor's memory pool, such as `4GiB` or `512MiB` (default: no limit),
+        /// shared evenly by its concurrent tasks; operators that exceed their share
+        /// spill to the work directory.
         #[arg(long, value_name = "SIZE", value_parser = memory_size)]
         memory_limit: Option<u64>,
+        /// Tasks run at once, 1 to 256 (default: the host's cores); fewer tasks
+        /// give each a larger share of `--memory-limit`.
+        #[arg(long, value_name = "N")]
+        concurrent_tasks: Option<usize>,
         /// Report this version instead of anomark's own (tests only).
         #[arg(long, hide = true)]
         report_version: Option<String>,
@@ -318,6 +329,7 @@ impl From<Args> for Request {
                 engine,
                 memory_limit,
                 engine_deadline,
+                engine_task_rows,
                 quiet,
                 json,
             } => Request::Run {
@@ -331,11 +343,12 @@ impl From<Args> for Request {
                     no_wall_clock,
                     open_test,
                     progress: Progress::new(quiet || json),
-                    engine: crate::protocol::Engine::parse(
-                        engine.as_deref(),
+                    engine: crate::protocol::Engine::parse(crate::protocol::EngineFlags {
+                        engine: engine.as_deref(),
                         memory_limit,
-                        engine_deadline,
-                    )
+                        deadline: engine_deadline,
+                        task_rows: engine_task_rows,
+                    })
                     .unwrap_or_else(|e| crate::protocol::Engine::Refused(e.to_string())),
                 },
                 json,

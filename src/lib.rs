@@ -379,6 +379,7 @@ fn cluster(role: &cli::ClusterRole) -> Result<()> {
             bind,
             work_dir,
             memory_limit,
+            concurrent_tasks,
             report_version,
             without_functions,
         } => executor(&ExecutorOptions {
@@ -386,6 +387,7 @@ fn cluster(role: &cli::ClusterRole) -> Result<()> {
             bind: bind.clone(),
             work_dir: work_dir.clone(),
             memory_limit: *memory_limit,
+            concurrent_tasks: *concurrent_tasks,
             without_functions: *without_functions,
             reported_version: report_version.clone().unwrap_or_else(own),
         }),

@@ -25,6 +25,10 @@ pub struct SchedulerOptions {
     pub executor_timeout_seconds: u64,
 }
 
+/// The most tasks an executor runs at once (`--concurrent-tasks`): each
+/// holds its share of the memory pool and its own buffers.
+pub const CONCURRENT_TASKS_MAX: usize = 256;
+
 /// Seconds between an executor's heartbeats to the scheduler.
 pub const HEARTBEAT_SECONDS: u64 = 2;
 
@@ -37,8 +41,12 @@ pub struct ExecutorOptions {
     pub bind: String,
     /// The directory for shuffle files (default: a temporary directory).
     pub work_dir: Option<PathBuf>,
-    /// The memory pool's limit in bytes (default: none).
+    /// The memory pool's limit in bytes (default: none), shared evenly by
+    /// the concurrent tasks.
     pub memory_limit: Option<u64>,
+    /// Tasks run at once (default: the host's cores), within
+    /// [`CONCURRENT_TASKS_MAX`].
+    pub concurrent_tasks: Option<usize>,
     /// Leave anomark's functions out (a test hook: such an executor must be refused).
     pub without_functions: bool,
     /// The version the process reports (a test hook; normally [`version`]).
@@ -114,6 +122,15 @@ pub fn executor(opts: &ExecutorOptions) -> Result<()> {
     let grpc_port = port.checked_add(1).ok_or_else(|| Error::Usage {
         message: format!("`--bind` port {port} leaves no next port for the executor's gRPC"),
     })?;
+    let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
+    let concurrent_tasks = opts.concurrent_tasks.unwrap_or(cores);
+    if !(1..=CONCURRENT_TASKS_MAX).contains(&concurrent_tasks) {
+        return Err(Error::Usage {
+            message: format!(
+                "`--concurrent-tasks` must be 1 to {CONCURRENT_TASKS_MAX}, not {concurrent_tasks}"
+            ),
+        });
+    }
     let registry = (!opts.without_functions).then(|| {
         let mut r = BallistaFunctionRegistry::default();
         for f in functions::scalar_functions(&opts.reported_version) {
@@ -137,6 +154,9 @@ pub fn executor(opts: &ExecutorOptions) -> Result<()> {
             .as_ref()
             .map(|p| p.to_string_lossy().into_owned()),
         memory_pool_size: opts.memory_limit,
+        // Ballista's task slots: the scheduler hands this executor at most
+        // this many tasks at once, and each task's pool is the limit over it.
+        vcores: concurrent_tasks,
         executor_heartbeat_interval_seconds: HEARTBEAT_SECONDS,
         override_function_registry: registry,
         ..Default::default()

@@ -147,6 +147,22 @@ impl Default for Deadline {
     }
 }
 
+/// The most partitions a cluster session plans ([`partitions_for`]).
+pub const PARTITIONS_MAX: usize = 4_096;
+
+/// The target partitions of a cluster session over `rows` rows: one per
+/// `task_rows` rows (rounded up), at least `cores`, at most
+/// [`PARTITIONS_MAX`]. A hash-partitioned stage (a GROUP BY of content
+/// hashes, a window partitioned by bucket) then gives each task about
+/// `task_rows` rows, so an executor's memory follows `task_rows` times its
+/// concurrent tasks, whatever the rows. The numbers never depend on it.
+pub fn partitions_for(rows: u64, task_rows: u64, cores: usize) -> usize {
+    let wanted = rows.div_ceil(task_rows.max(1));
+    usize::try_from(wanted)
+        .unwrap_or(usize::MAX)
+        .clamp(cores.clamp(1, PARTITIONS_MAX), PARTITIONS_MAX)
+}
+
 /// Runs a query and collects its batches, within the session's
 /// [`Deadline`]: past it the query is abandoned and the error names what
 /// was being done.

@@ -46,7 +46,11 @@ impl Ingest for OnEngine {
             let stage = progress.stage("starting the engine session");
             let ctx = context(&self.0).await?;
             drop(stage);
-            let (ingested, held) = ingest(&ctx, plan, progress).await?;
+            let task_rows = match &self.0 {
+                Engine::Cluster { task_rows, .. } => Some(*task_rows),
+                _ => None,
+            };
+            let (ingested, held) = ingest(&ctx, plan, task_rows, progress).await?;
             Ok::<_, Error>((ctx, ingested, held))
         })?;
         // The validation and test rows stay on the engine; the later
@@ -216,7 +220,7 @@ async fn context(engine: &Engine) -> Result<SessionContext> {
             super::register_state(&mut state, version())?;
             SessionContext::new_with_state(state)
         }
-        Engine::Cluster { url, deadline } => {
+        Engine::Cluster { url, deadline, .. } => {
             let opts = super::cluster::ConnectOptions {
                 partitions,
                 deadline: super::Deadline::seconds(*deadline)?,
@@ -283,6 +287,7 @@ fn place(files: &[SourceFile], f: i64, r: i64) -> String {
 async fn ingest(
     ctx: &SessionContext,
     plan: &Plan,
+    task_rows: Option<u64>,
     progress: &Progress,
 ) -> Result<(Ingested, (Vec<SourceFile>, String))> {
     let source = &plan.sources[0];
@@ -404,6 +409,19 @@ async fn ingest(
         for i in 0..b.num_rows() {
             files[f.value(i) as usize].rows = n.value(i) as usize;
         }
+    }
+    if let Some(task_rows) = task_rows {
+        // From here on a hash-partitioned stage gives each task about
+        // `task_rows` rows (`--engine-task-rows`).
+        let rows = files.iter().map(|f| f.rows as u64).sum();
+        let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
+        let partitions = super::partitions_for(rows, task_rows, cores);
+        collect(
+            ctx,
+            "configuring the session",
+            &format!("SET datafusion.execution.target_partitions = {partitions}"),
+        )
+        .await?;
     }
     drop(stage);
 

@@ -699,3 +699,17 @@ fn features_on_the_engine_equal_the_library() {
     ))
     .is_none());
 }
+
+/// A cluster session's partitions: the rows over the task rows, rounded up,
+/// within the client's cores and [`PARTITIONS_MAX`].
+#[test]
+fn partitions_follow_the_rows_within_their_bounds() {
+    assert_eq!(partitions_for(0, 500_000, 2), 2);
+    assert_eq!(partitions_for(1_000_000, 500_000, 2), 2);
+    assert_eq!(partitions_for(1_000_001, 500_000, 2), 3);
+    assert_eq!(partitions_for(20_000_000, 500_000, 2), 40);
+    assert_eq!(partitions_for(20_000_000, 500_000, 64), 64);
+    assert_eq!(partitions_for(u64::MAX, 1_000, 2), PARTITIONS_MAX);
+    assert_eq!(partitions_for(10, 1_000, 0), 1);
+    assert_eq!(partitions_for(10, 1_000, 10_000), PARTITIONS_MAX);
+}

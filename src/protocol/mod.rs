@@ -67,6 +67,26 @@ pub struct RunOptions {
 pub const ENGINE_DEADLINE_DEFAULT_SECONDS: u64 = 3_600;
 /// The longest `--engine-deadline`: seven days per query.
 pub const ENGINE_DEADLINE_MAX_SECONDS: u64 = 604_800;
+/// The rows a task of a cluster's hash-partitioned stage is planned to hold
+/// when `--engine-task-rows` is not given (an executor's memory grows with
+/// it times its concurrent tasks; README "Running on a cluster").
+pub const ENGINE_TASK_ROWS_DEFAULT: u64 = 500_000;
+/// The bounds of `--engine-task-rows`: fewer rows make more tasks (each with
+/// its own shuffle files), more rows make larger ones.
+pub const ENGINE_TASK_ROWS_BOUNDS: std::ops::RangeInclusive<u64> = 1_000..=100_000_000;
+
+/// The command line's engine options, as given (checked by [`Engine::parse`]).
+#[derive(Debug, Clone, Copy, Default)]
+pub struct EngineFlags<'a> {
+    /// `--engine`.
+    pub engine: Option<&'a str>,
+    /// `--memory-limit` in bytes.
+    pub memory_limit: Option<u64>,
+    /// `--engine-deadline` in seconds.
+    pub deadline: Option<u64>,
+    /// `--engine-task-rows`.
+    pub task_rows: Option<u64>,
+}
 
 /// Where a run's rows are read, split and summarised (`--engine`).
 #[derive(Debug, Clone, PartialEq, Eq, Default)]
@@ -90,6 +110,10 @@ pub enum Engine {
         /// Seconds the client waits for one query's answer, the handshake
         /// included (`--engine-deadline`).
         deadline: u64,
+        /// The rows each task of a hash-partitioned stage is planned to hold
+        /// (`--engine-task-rows`): the session's partitions are the rows over
+        /// this ([`crate::engine::partitions_for`]).
+        task_rows: u64,
     },
     /// An `--engine` / `--memory-limit` that [`Engine::parse`] refused, with
     /// its message: `run` stops with it (a usage error) before reading anything.
@@ -97,17 +121,36 @@ pub enum Engine {
 }
 
 impl Engine {
-    /// `--engine VALUE` with `--memory-limit` (only with `local`) and
-    /// `--engine-deadline` (1 to [`ENGINE_DEADLINE_MAX_SECONDS`]): `local` or
-    /// `df://HOST:PORT`; anything else refused by name.
-    pub fn parse(
-        value: Option<&str>,
-        memory_limit: Option<u64>,
-        deadline: Option<u64>,
-    ) -> Result<Engine> {
+    /// `--engine VALUE` with `--memory-limit` (only with `local`),
+    /// `--engine-deadline` (1 to [`ENGINE_DEADLINE_MAX_SECONDS`]) and
+    /// `--engine-task-rows` (only with a cluster, within
+    /// [`ENGINE_TASK_ROWS_BOUNDS`]): `local` or `df://HOST:PORT`; anything
+    /// else refused by name.
+    pub fn parse(flags: EngineFlags<'_>) -> Result<Engine> {
+        let EngineFlags {
+            engine: value,
+            memory_limit,
+            deadline,
+            task_rows,
+        } = flags;
         let usage = |message: String| Err(Error::Usage { message });
         if value.is_none() && deadline.is_some() {
             return usage("`--engine-deadline` needs `--engine`".into());
+        }
+        if task_rows.is_some() && !value.is_some_and(|v| v.starts_with("df://")) {
+            return usage(
+                "`--engine-task-rows` is for a cluster (`--engine df://HOST:PORT`): in one \
+                 process every partition runs at once, and `--memory-limit` bounds them"
+                    .into(),
+            );
+        }
+        let task_rows = task_rows.unwrap_or(ENGINE_TASK_ROWS_DEFAULT);
+        if !ENGINE_TASK_ROWS_BOUNDS.contains(&task_rows) {
+            return usage(format!(
+                "`--engine-task-rows` must be {} to {}, not {task_rows}",
+                ENGINE_TASK_ROWS_BOUNDS.start(),
+                ENGINE_TASK_ROWS_BOUNDS.end()
+            ));
         }
         let deadline = deadline.unwrap_or(ENGINE_DEADLINE_DEFAULT_SECONDS);
         if !(1..=ENGINE_DEADLINE_MAX_SECONDS).contains(&deadline) {
@@ -139,6 +182,7 @@ impl Engine {
                         Ok(Engine::Cluster {
                             url: url.into(),
                             deadline,
+                            task_rows,
                         })
                     }
                     _ => usage(format!(
@@ -360,9 +404,17 @@ mod tests {
     /// `--engine` and `--memory-limit` as the command line gives them.
     #[test]
     fn engines_parse_and_refuse_by_name() {
-        assert_eq!(Engine::parse(None, None, None).unwrap(), Engine::InProcess);
+        let parse = |engine, memory_limit, deadline| {
+            Engine::parse(EngineFlags {
+                engine,
+                memory_limit,
+                deadline,
+                task_rows: None,
+            })
+        };
+        assert_eq!(parse(None, None, None).unwrap(), Engine::InProcess);
         assert_eq!(
-            Engine::parse(Some("local"), Some(1 << 30), None).unwrap(),
+            parse(Some("local"), Some(1 << 30), None).unwrap(),
             Engine::Local {
                 memory_limit: Some(1 << 30),
                 deadline: ENGINE_DEADLINE_DEFAULT_SECONDS,
@@ -370,18 +422,19 @@ mod tests {
         );
         let url = "df://127.0.0.1:50050";
         assert_eq!(
-            Engine::parse(Some(url), None, Some(90)).unwrap(),
+            parse(Some(url), None, Some(90)).unwrap(),
             Engine::Cluster {
                 url: url.into(),
-                deadline: 90
+                deadline: 90,
+                task_rows: ENGINE_TASK_ROWS_DEFAULT,
             }
         );
         assert_eq!(
-            Engine::parse(Some(url), None, None).unwrap().recorded(),
+            parse(Some(url), None, None).unwrap().recorded(),
             Some(url.into())
         );
         let week = ENGINE_DEADLINE_MAX_SECONDS;
-        assert!(Engine::parse(Some(url), None, Some(week)).is_ok());
+        assert!(parse(Some(url), None, Some(week)).is_ok());
         for (engine, limit, deadline, words) in [
             (Some("spark://h:1"), None, None, "`--engine` must be"),
             (Some("df://h"), None, None, "df://HOST:PORT"),
@@ -412,7 +465,37 @@ mod tests {
                 "must be 1 to 604800 seconds",
             ),
         ] {
-            let e = Engine::parse(engine, limit, deadline).unwrap_err();
+            let e = parse(engine, limit, deadline).unwrap_err();
+            assert!(e.to_string().contains(words), "{e}");
+            assert_eq!(e.code(), 2);
+        }
+        // `--engine-task-rows`: a cluster's only, within its bounds.
+        let with_rows = |engine, task_rows| {
+            Engine::parse(EngineFlags {
+                engine,
+                task_rows: Some(task_rows),
+                ..EngineFlags::default()
+            })
+        };
+        assert_eq!(
+            with_rows(Some(url), 1_000).unwrap(),
+            Engine::Cluster {
+                url: url.into(),
+                deadline: ENGINE_DEADLINE_DEFAULT_SECONDS,
+                task_rows: 1_000,
+            }
+        );
+        for (engine, rows, words) in [
+            (Some(url), 999, "must be 1000 to 100000000, not 999"),
+            (Some(url), 100_000_001, "must be 1000 to 100000000"),
+            (
+                Some("local"),
+                5_000,
+                "`--engine-task-rows` is for a cluster",
+            ),
+            (None, 5_000, "`--engine-task-rows` is for a cluster"),
+        ] {
+            let e = with_rows(engine, rows).unwrap_err();
             assert!(e.to_string().contains(words), "{e}");
             assert_eq!(e.code(), 2);
         }

@@ -516,7 +516,8 @@ fn run_files(dir: &Path) -> std::collections::BTreeMap<String, Vec<u8>> {
 /// `engine` field; each engine reads every row of every part once; an
 /// engine run verifies by recomputation in memory. The spec has the
 /// example's feature set and one of ratios, differences, products and
-/// transforms without fitted parameters, computed on the engine.
+/// transforms without fitted parameters, computed on the engine. The
+/// cluster plans eleven partitions (`--engine-task-rows 1000`).
 #[test]
 fn an_example_on_parquet_parts_gives_the_same_run_on_every_engine() {
     let top = tempfile::tempdir().unwrap();
@@ -550,7 +551,14 @@ fn an_example_on_parquet_parts_gives_the_same_run_on_every_engine() {
     let outcome = ready.map(|_| {
         let mut child = Command::new(BIN)
             .current_dir(&remote)
-            .args(final_run_args(&["--engine", &url]))
+            // Eleven partitions for the 10,024 rows (the default would plan
+            // the client's cores): the numbers must not depend on them.
+            .args(final_run_args(&[
+                "--engine",
+                &url,
+                "--engine-task-rows",
+                "1000",
+            ]))
             .stdout(Stdio::null())
             .stderr(Stdio::piped())
             .spawn()
@@ -772,6 +780,8 @@ fn specs_beyond_an_engines_scope_are_refused_with_nothing_written() {
         &["--engine", "spark://h:1"][..],
         &["--engine", "df://127.0.0.1:9", "--memory-limit", "1GiB"][..],
         &["--memory-limit", "1GiB"][..],
+        &["--engine", "local", "--engine-task-rows", "5000"][..],
+        &["--engine", "df://127.0.0.1:9", "--engine-task-rows", "10"][..],
     ] {
         let mut all = vec!["run", "spec.yaml", "--key", "key.pem", "--out", "out"];
         all.extend(args);
@@ -779,6 +789,27 @@ fn specs_beyond_an_engines_scope_are_refused_with_nothing_written() {
         assert_eq!(code, 2, "{stderr}");
         assert!(stderr.contains("--"), "{stderr}");
         assert!(!dir.path().join("out").exists());
+    }
+    // An executor's concurrent tasks out of bounds: refused before it starts.
+    for n in ["0", "257"] {
+        let (code, stderr) = anomark(
+            dir.path(),
+            &[
+                "cluster",
+                "executor",
+                "--scheduler",
+                "127.0.0.1:9",
+                "--bind",
+                "127.0.0.1:9",
+                "--concurrent-tasks",
+                n,
+            ],
+        );
+        assert_eq!(code, 2, "{stderr}");
+        assert!(
+            stderr.contains(&format!("`--concurrent-tasks` must be 1 to 256, not {n}")),
+            "{stderr}"
+        );
     }
 }
 
@@ -883,7 +914,8 @@ fn pump_housing_csv(dir: &Path, edit: impl Fn(String) -> String) {
 /// A CSV source on `--engine local`: its numbers read by the library's
 /// parser give the in-memory run byte for byte; a value that is not a
 /// number is refused with the in-memory run's error and exit code (3, the
-/// file, the column, the value and its lines), nothing written.
+/// file, the column, the value and its lines), nothing written, on
+/// `--engine local` and on a cluster alike.
 #[test]
 fn a_csv_on_an_engine_reads_numbers_as_in_memory() {
     let top = tempfile::tempdir().unwrap();
@@ -960,4 +992,13 @@ fn a_csv_on_an_engine_reads_numbers_as_in_memory() {
     let (code, engine) = run(&["--engine", "local"]);
     assert_eq!(code, 3, "{engine}");
     assert_eq!(engine, in_memory);
+    // The same refusal, word for word, from a cluster of a scheduler and two
+    // executors (each query bounded, so a stalled cluster fails the test).
+    let (procs, url) = start(top.path(), &[], &[&[], &[]]);
+    let ready = runtime().block_on(connect(&url)).map(drop);
+    let outcome = ready.map(|_| run(&["--engine", &url, "--engine-deadline", "120"]));
+    drop(procs);
+    let (code, cluster) = outcome.unwrap();
+    assert_eq!(code, 3, "{cluster}");
+    assert_eq!(cluster, in_memory);
 }
