@@ -325,21 +325,25 @@ impl HeldOnEngine {
     ) -> Result<Calibration> {
         let doing = "reading the calibration scores";
         let key = format!("{}({score})", functions::ORDER_KEY);
-        let keys_of = |rows: &[datafusion::arrow::record_batch::RecordBatch]| -> Result<Vec<i64>> {
-            let mut keys = Vec::new();
-            for b in rows {
-                keys.extend_from_slice(super::column::<Int64Array>(b, 0)?.values());
-            }
-            // Order keys sort as `f64::total_cmp` does; equal keys, equal bits.
-            keys.sort_unstable();
-            Ok(keys)
-        };
+        // The scores of order keys, ascending (order keys sort as
+        // `f64::total_cmp` does; equal keys, equal bits).
+        let scores_of =
+            |rows: &[datafusion::arrow::record_batch::RecordBatch]| -> Result<Vec<f64>> {
+                let mut keys = Vec::new();
+                for b in rows {
+                    keys.extend_from_slice(super::column::<Int64Array>(b, 0)?.values());
+                }
+                keys.sort_unstable();
+                Ok(keys.into_iter().map(functions::from_order_key).collect())
+            };
         let normals = format!("FROM assigned WHERE part = {} AND NOT a", part as i8);
         let ranks = thinning.ranks(n);
-        let keys = match &ranks {
-            None => keys_of(&collect(&self.ctx, doing, &format!("SELECT {key} {normals}")).await?)?,
+        let sorted = match &ranks {
+            None => {
+                scores_of(&collect(&self.ctx, doing, &format!("SELECT {key} {normals}")).await?)?
+            }
             Some(ranks) => {
-                let tail = keys_of(
+                let tail = scores_of(
                     &collect(
                         &self.ctx,
                         doing,
@@ -362,19 +366,12 @@ impl HeldOnEngine {
                         "the calibration rows counted twice differently",
                     ));
                 }
-                values
-                    .into_iter()
-                    .map(functions::order_key)
-                    .chain(tail)
-                    .collect()
+                values.into_iter().chain(tail).collect()
             }
         };
-        Calibration::from_kept(
-            n,
-            keys.into_iter().map(functions::from_order_key).collect(),
-            ranks,
-        )
-        .ok_or_else(|| Error::internal("the engine's calibration scores do not fit their count"))
+        Calibration::from_kept(n, sorted, ranks).ok_or_else(|| {
+            Error::internal("the engine's calibration scores do not fit their count")
+        })
     }
 }
 
