@@ -122,8 +122,7 @@ pub fn executor(opts: &ExecutorOptions) -> Result<()> {
     let grpc_port = port.checked_add(1).ok_or_else(|| Error::Usage {
         message: format!("`--bind` port {port} leaves no next port for the executor's gRPC"),
     })?;
-    let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
-    let concurrent_tasks = opts.concurrent_tasks.unwrap_or(cores);
+    let concurrent_tasks = opts.concurrent_tasks.unwrap_or_else(super::cores);
     if !(1..=CONCURRENT_TASKS_MAX).contains(&concurrent_tasks) {
         return Err(Error::Usage {
             message: format!(

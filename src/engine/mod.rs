@@ -147,6 +147,12 @@ impl Default for Deadline {
     }
 }
 
+/// This host's cores (1 when unknown): an executor's default concurrent
+/// tasks, and a session's partitions before the rows are counted.
+pub fn cores() -> usize {
+    std::thread::available_parallelism().map_or(1, |n| n.get())
+}
+
 /// The most partitions a cluster session plans ([`partitions_for`]).
 pub const PARTITIONS_MAX: usize = 4_096;
 

@@ -196,7 +196,7 @@ const CLUSTER_SETTINGS: [&str; 1] = ["ballista.planner.adaptive.enabled = false"
 
 /// A session on `engine`, anomark's functions registered and versions checked.
 async fn context(engine: &Engine) -> Result<SessionContext> {
-    let partitions = std::thread::available_parallelism().map_or(1, |n| n.get());
+    let partitions = super::cores();
     let ctx = match engine {
         Engine::Local {
             memory_limit,
@@ -414,8 +414,7 @@ async fn ingest(
         // From here on a hash-partitioned stage gives each task about
         // `task_rows` rows (`--engine-task-rows`).
         let rows = files.iter().map(|f| f.rows as u64).sum();
-        let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
-        let partitions = super::partitions_for(rows, task_rows, cores);
+        let partitions = super::partitions_for(rows, task_rows, super::cores());
         collect(
             ctx,
             "configuring the session",
