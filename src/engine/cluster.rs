@@ -29,6 +29,13 @@ pub struct SchedulerOptions {
 /// holds its share of the memory pool and its own buffers.
 pub const CONCURRENT_TASKS_MAX: usize = 256;
 
+/// Seconds the scheduler keeps a finished job's state (its stages and
+/// tasks) before it forgets it (Ballista's default is an hour). A run asks
+/// tens of questions, each a job of as many tasks as partitions, and the
+/// client has its answer as soon as the job ends, so an hour of them only
+/// grows the scheduler's memory with the run's length.
+pub const FINISHED_JOB_STATE_SECONDS: u64 = 60;
+
 /// Seconds between an executor's heartbeats to the scheduler.
 pub const HEARTBEAT_SECONDS: u64 = 2;
 
@@ -97,6 +104,7 @@ pub fn scheduler(opts: &SchedulerOptions) -> Result<()> {
         executor_timeout_seconds: opts.executor_timeout_seconds,
         no_executors_grace_period_seconds: opts.executor_timeout_seconds,
         expire_dead_executor_interval_seconds: HEARTBEAT_SECONDS,
+        finished_job_state_clean_up_interval_seconds: FINISHED_JOB_STATE_SECONDS,
         override_session_builder: Some(Arc::new(move |config: SessionConfig| {
             state_with(config, &reported)
                 .map_err(|e| datafusion::error::DataFusionError::Execution(e.to_string()))
