@@ -1,6 +1,6 @@
 //! The command line end to end: what a run writes and prints.
 
-use crate::util::{csv, rows, spec, standard, Case, PROTOCOL};
+use crate::util::{csv, rows, spec, standard, Case, PROTOCOL, RUN};
 
 #[test]
 fn run_writes_the_signed_directory_and_a_summary() {
@@ -107,16 +107,7 @@ fn strings_from_the_data_are_escaped_in_the_card() {
 fn templates_directory_replaces_a_built_in_template() {
     let case = standard(&rows(200, 10, 14)).file("tpl/card.md", "# {{ title }} by {{ owner }}\n");
     let d = case
-        .args([
-            "run",
-            "spec.yaml",
-            "--key",
-            "key.pem",
-            "--out",
-            "out",
-            "--templates",
-            "tpl",
-        ])
+        .args(RUN.into_iter().chain(["--templates", "tpl"]))
         .success();
     assert_eq!(d.read("out/card.md"), "# Test card by Tests\n");
     assert!(d.read("out/card.html").contains("<h1>Test card</h1>"));

@@ -1,21 +1,13 @@
 //! The same spec and data give byte-identical outputs.
 
-use crate::util::{rows, standard};
+use crate::util::{rows, standard, RUN};
 
 #[test]
 fn two_runs_give_identical_scores_and_record_apart_from_the_clock() {
     let r = rows(800, 12, 9);
-    let args = [
-        "run",
-        "spec.yaml",
-        "--key",
-        "key.pem",
-        "--out",
-        "out",
-        "--open-test",
-    ];
-    let a = standard(&r).args(args).success();
-    let b = standard(&r).args(args).success();
+    let args = || RUN.into_iter().chain(["--open-test"]);
+    let a = standard(&r).args(args()).success();
+    let b = standard(&r).args(args()).success();
     assert_eq!(a.read("out/scores.csv"), b.read("out/scores.csv"));
     let strip = |mut v: serde_json::Value| {
         assert!(v["wall-clock"]["started-utc"].is_string());

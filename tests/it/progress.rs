@@ -10,16 +10,7 @@ fn no_terminal_no_progress_and_json_summary() {
     let case = standard(&rows(300, 16, 51));
     let d = case
         .clone()
-        .args([
-            "run",
-            "spec.yaml",
-            "--key",
-            "key.pem",
-            "--out",
-            "out",
-            "--open-test",
-            "--json",
-        ])
+        .args(RUN.into_iter().chain(["--open-test", "--json"]))
         .success();
     assert_eq!(d.stderr, "", "stderr is a pipe here: nothing may be drawn");
     let s: serde_json::Value = serde_json::from_str(&d.stdout).unwrap();

@@ -9,17 +9,21 @@ use rand_chacha::rand_core::{Rng, SeedableRng};
 
 pub const BIN: &str = env!("CARGO_BIN_EXE_anomark");
 
-/// The usual run's arguments, test split sealed: `run spec.yaml --key
-/// key.pem --out out --no-wall-clock` (the tests' one copy of them).
-pub const SEALED_RUN: [&str; 7] = [
-    "run",
-    "spec.yaml",
-    "--key",
-    "key.pem",
-    "--out",
-    "out",
-    "--no-wall-clock",
-];
+/// A run of the case's spec and key into `out`: `run spec.yaml --key
+/// key.pem --out out` (the tests' one copy of them).
+pub const RUN: [&str; 6] = ["run", "spec.yaml", "--key", "key.pem", "--out", "out"];
+
+/// The usual run's arguments, test split sealed: [`RUN`] `--no-wall-clock`.
+pub const SEALED_RUN: [&str; 7] = {
+    let mut args = [""; 7];
+    let mut i = 0;
+    while i < RUN.len() {
+        args[i] = RUN[i];
+        i += 1;
+    }
+    args[6] = "--no-wall-clock";
+    args
+};
 
 #[derive(Clone)]
 pub struct Case {
