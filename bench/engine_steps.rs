@@ -77,15 +77,11 @@ fn run() -> anomark::Result<()> {
             ),
         )
         .await?;
-        let counts = engine::counts(&ctx, "assigned").await?;
-        lap("counts", &mut times);
-        let leaks = engine::leakage(&ctx, "assigned").await?;
-        lap("leakage", &mut times);
+        let check = engine::split_check(&ctx, "assigned").await?;
+        lap("counts, repeats and leakage", &mut times);
         let moments = engine::moments(&ctx, "assigned", 0, &features).await?;
         lap("moments", &mut times);
-        for p in 0..3 {
-            engine::manifest(&ctx, "assigned", p).await?;
-        }
+        engine::manifests_of(&ctx, "assigned", [0, 1, 2]).await?;
         lap("manifests", &mut times);
         let model = functions::ModelParams::Multivariate {
             mean: moments.mean.clone(),
@@ -103,7 +99,9 @@ fn run() -> anomark::Result<()> {
             ),
         )
         .await?;
-        let summary = engine::summary(&ctx, "scored", "s", 1, &[]).await?;
+        let summary = engine::summary(&ctx, "scored", "s", 1, &[])
+            .await?
+            .ok_or_else(|| anomark::Error::internal("a validation score is not a number"))?;
         lap("validation summary", &mut times);
         let steps: Vec<String> = times
             .iter()
@@ -113,8 +111,8 @@ fn run() -> anomark::Result<()> {
             "{{\"steps\": {{{}}}, \"counts\": \"{:?}\", \"leaking-contents\": {}, \
              \"summary-cut-points\": {}}}",
             steps.join(", "),
-            counts,
-            leaks.map_or(0, |l| l.0),
+            check.counts,
+            check.leaked,
             summary.cut_points().len()
         );
         Ok(())

@@ -171,6 +171,9 @@ impl HeldOnEngine {
         score: &str,
         extra: &[f64],
     ) -> Result<Summary> {
+        if let Some(s) = super::summary(&self.ctx, "assigned", score, part as i8, extra).await? {
+            return Ok(s);
+        }
         // A score that is not a number, refused as in process: the first in
         // the split's canonical (content hash, row) order.
         let nan = collect(
@@ -199,7 +202,7 @@ impl HeldOnEngine {
             }
             .in_candidate(name));
         }
-        super::summary(&self.ctx, "assigned", score, part as i8, extra).await
+        Err(Error::internal("a score not a number, then not found"))
     }
 
     async fn facts_async(

@@ -173,6 +173,8 @@ pub fn partitions_for(rows: u64, task_rows: u64, cores: usize) -> usize {
 /// [`Deadline`]: past it the query is abandoned and the error names what
 /// was being done.
 pub async fn collect(ctx: &SessionContext, doing: &str, sql: &str) -> Result<Vec<RecordBatch>> {
+    // Each query timed on its own under `ANOMARK_STAGE_TIMES=1`.
+    let _t = crate::progress::part(&format!("query: {doing}"));
     let deadline = Deadline::of(ctx);
     let query = async {
         ctx.sql(sql)
@@ -400,32 +402,69 @@ pub async fn split_cuts(
     })
 }
 
-/// Rows per split and label of `table` (columns `part`, the part index,
-/// and `a`).
-pub async fn counts(ctx: &SessionContext, table: &str) -> Result<[Counts; 3]> {
+/// What one pass over `table` (columns `h`, `part` and `a`) tells of its
+/// splits: rows per split and label, rows whose content another row also
+/// holds, and how many contents sit in more than one split.
+pub struct SplitCheck {
+    /// Rows per split and label.
+    pub counts: [Counts; 3],
+    /// Rows sharing their content with another row.
+    pub rows_with_duplicates: usize,
+    /// Contents held in more than one split (leakage when not zero).
+    pub leaked: usize,
+}
+
+/// The [`SplitCheck`] of `table`: one grouping by content hash, summed on
+/// the engine (a content's rows per split and label, its row count and its
+/// lowest and highest split), so that one row comes back whatever the
+/// data, and the source is read once for all three answers.
+pub async fn split_check(ctx: &SessionContext, table: &str) -> Result<SplitCheck> {
+    let per_cell = |p: usize, a: bool| {
+        format!(
+            "SUM(CASE WHEN part = {p} AND {}a THEN 1 ELSE 0 END)",
+            if a { "" } else { "NOT " }
+        )
+    };
+    let cells: Vec<(usize, bool)> = (0..3).flat_map(|p| [(p, false), (p, true)]).collect();
+    let inner: Vec<String> = cells
+        .iter()
+        .enumerate()
+        .map(|(k, &(p, a))| format!("{} AS c{k}", per_cell(p, a)))
+        .collect();
+    let outer: Vec<String> = (0..cells.len())
+        .map(|k| format!("CAST(COALESCE(SUM(c{k}), 0) AS BIGINT)"))
+        .collect();
     let rows = collect(
         ctx,
-        "counting the splits",
-        &format!("SELECT part, a, COUNT(*) FROM {table} GROUP BY part, a"),
+        "counting the splits, repeated rows and leakage",
+        &format!(
+            "SELECT {}, CAST(COALESCE(SUM(CASE WHEN n > 1 THEN n ELSE 0 END), 0) AS BIGINT), \
+             CAST(COALESCE(SUM(CASE WHEN lo <> hi THEN 1 ELSE 0 END), 0) AS BIGINT) FROM \
+             (SELECT {}, COUNT(*) AS n, MIN(part) AS lo, MAX(part) AS hi FROM {table} GROUP BY h)",
+            outer.join(", "),
+            inner.join(", ")
+        ),
     )
     .await?;
-    let mut out = [Counts::default(); 3];
-    for b in &rows {
-        let (p, a, n) = (
-            column::<Int8Array>(b, 0)?,
-            column::<BooleanArray>(b, 1)?,
-            column::<Int64Array>(b, 2)?,
-        );
-        for i in 0..b.num_rows() {
-            let c = &mut out[p.value(i) as usize];
-            if a.value(i) {
-                c.anomaly += n.value(i) as usize;
-            } else {
-                c.normal += n.value(i) as usize;
-            }
+    let b = rows
+        .iter()
+        .find(|b| b.num_rows() > 0)
+        .ok_or_else(|| Error::internal("the split check gave no row"))?;
+    let value = |j: usize| -> Result<usize> { Ok(column::<Int64Array>(b, j)?.value(0) as usize) };
+    let mut counts = [Counts::default(); 3];
+    for (k, &(p, a)) in cells.iter().enumerate() {
+        let n = value(k)?;
+        if a {
+            counts[p].anomaly = n;
+        } else {
+            counts[p].normal = n;
         }
     }
-    Ok(out)
+    Ok(SplitCheck {
+        counts,
+        rows_with_duplicates: value(cells.len())?,
+        leaked: value(cells.len() + 1)?,
+    })
 }
 
 /// Contents that sit in more than one split of `table`: how many, and the
@@ -457,8 +496,7 @@ pub async fn leakage(
 }
 
 /// The training moments of the feature columns `features` of the rows of
-/// `table` in split `part`: each content-hash bucket's moments computed by
-/// the engine ([`functions::bucket_moments`]), folded on the client by
+/// `table` in split `part`: [`bucket_moments`] folded on the client by
 /// `moments::fold_buckets`, the library's one definition.
 pub async fn moments(
     ctx: &SessionContext,
@@ -466,6 +504,22 @@ pub async fn moments(
     part: i8,
     features: &[String],
 ) -> Result<Moments> {
+    crate::moments::fold_buckets(
+        features.len(),
+        bucket_moments(ctx, table, part, features).await?,
+    )
+}
+
+/// Each content-hash bucket's moments of the feature columns `features` of
+/// the rows of `table` in split `part`, computed by the engine
+/// ([`functions::bucket_moments`]), in no particular order; each holds its
+/// bucket's row count.
+pub async fn bucket_moments(
+    ctx: &SessionContext,
+    table: &str,
+    part: i8,
+    features: &[String],
+) -> Result<Vec<(u16, Moments)>> {
     let doing = "fitting on the training rows";
     let cols: Vec<String> = features.iter().map(|f| quote(f)).collect();
     let rows = collect(
@@ -495,66 +549,97 @@ pub async fn moments(
             buckets.push((bucket, moments));
         }
     }
-    crate::moments::fold_buckets(d, buckets)
+    Ok(buckets)
 }
 
-/// The manifest hash of split `part` of `table`: each content-hash bucket's
-/// digest computed by the engine (`audit::hash::manifest_bucket_digest` of
-/// its sorted hashes), joined on the client by
-/// `audit::hash::manifest_of_buckets`, the library's one definition.
+/// The manifest hash of split `part` of `table`: [`manifests_of`] for one split.
 pub async fn manifest(ctx: &SessionContext, table: &str, part: i8) -> Result<String> {
+    let [m] = manifests_of(ctx, table, [part]).await?;
+    Ok(m)
+}
+
+/// The manifest hashes of the splits `parts` of `table`, in one query: each
+/// (split, content-hash bucket) digest computed by the engine
+/// (`audit::hash::manifest_bucket_digest` of its sorted hashes), joined per
+/// split on the client by `audit::hash::manifest_of_buckets`, the library's
+/// one definition. A split without rows has the manifest of no rows.
+pub async fn manifests_of<const N: usize>(
+    ctx: &SessionContext,
+    table: &str,
+    parts: [i8; N],
+) -> Result<[String; N]> {
+    let list: Vec<String> = parts.iter().map(|p| p.to_string()).collect();
     let rows = collect(
         ctx,
-        "hashing the split manifest",
+        "hashing the split manifests",
         &format!(
-            "SELECT {p}(h) AS b, {dg}(h) AS dg FROM {table} WHERE part = {part} GROUP BY b",
+            "SELECT part, {p}(h) AS b, {dg}(h) AS dg FROM {table} WHERE part IN ({}) \
+             GROUP BY part, b",
+            list.join(", "),
             p = functions::PREFIX16,
             dg = functions::BUCKET_DIGEST
         ),
     )
     .await?;
-    let mut buckets = Vec::new();
+    let mut buckets: [Vec<(u16, [u8; 32])>; N] = std::array::from_fn(|_| Vec::new());
     for b in &rows {
-        let (id, dg) = (
-            column::<Int64Array>(b, 0)?,
-            column::<datafusion::arrow::array::BinaryArray>(b, 1)?,
+        let (part, id, dg) = (
+            column::<Int8Array>(b, 0)?,
+            column::<Int64Array>(b, 1)?,
+            column::<datafusion::arrow::array::BinaryArray>(b, 2)?,
         );
         for i in 0..b.num_rows() {
+            let k = parts
+                .iter()
+                .position(|&p| p == part.value(i))
+                .ok_or_else(|| Error::internal("a manifest of a split not asked for"))?;
             let bucket = u16::try_from(id.value(i))
                 .map_err(|_| Error::internal("a content-hash bucket beyond 16 bits"))?;
             let digest: [u8; 32] = dg
                 .value(i)
                 .try_into()
                 .map_err(|_| Error::internal("a bucket digest of other than 32 bytes"))?;
-            buckets.push((bucket, digest));
+            buckets[k].push((bucket, digest));
         }
     }
-    crate::audit::hash::manifest_of_buckets(buckets)
+    let mut out: [String; N] = std::array::from_fn(|_| String::new());
+    for (o, b) in out.iter_mut().zip(buckets) {
+        *o = crate::audit::hash::manifest_of_buckets(b)?;
+    }
+    Ok(out)
 }
 
 /// The evaluation summary of the scores in column `score` of the rows of
 /// `table` in split `part`, with the distinct anomaly scores and `extra`
 /// as cut points (`Summary::new`'s definition): one pass collects the
-/// anomaly scores, one counts the rows per cut point and gap (with each
-/// gap's lowest and highest score in `total_cmp` order).
+/// anomaly scores (and any score that is not a number), one counts the
+/// rows per cut point and gap (with each gap's lowest and highest score in
+/// `total_cmp` order). `None` when a score of the split is not a number:
+/// the caller names the row.
 pub async fn summary(
     ctx: &SessionContext,
     table: &str,
     score: &str,
     part: i8,
     extra: &[f64],
-) -> Result<Summary> {
+) -> Result<Option<Summary>> {
     let doing = "summarising the scores";
     let rows = collect(
         ctx,
         doing,
-        &format!("SELECT {score} FROM {table} WHERE part = {part} AND a"),
+        &format!(
+            "SELECT s FROM (SELECT a, {score} AS s FROM {table} WHERE part = {part}) \
+             WHERE a OR isnan(s)"
+        ),
     )
     .await?;
     let mut anomalies = Vec::new();
     for b in &rows {
         let s = column::<datafusion::arrow::array::Float64Array>(b, 0)?;
         anomalies.extend(s.values().iter().copied());
+    }
+    if anomalies.iter().any(|s| s.is_nan()) {
+        return Ok(None);
     }
     // The cut points exactly as `Summary::new` makes them.
     let flags = vec![true; anomalies.len()];
@@ -593,6 +678,7 @@ pub async fn summary(
         }
     }
     Summary::from_counts(cut_points, &counts)
+        .map(Some)
         .ok_or_else(|| Error::internal("an interval code beyond the summary's cut points"))
 }
 

@@ -397,18 +397,8 @@ async fn ingest(
     drop(stage);
 
     let stage = progress.stage("checking the rows");
-    check_rows(ctx, plan, &files, split_col.map(|c| c.name.as_str())).await?;
-    for b in collect(
-        ctx,
-        "counting the rows",
-        "SELECT f, COUNT(*) FROM src GROUP BY f",
-    )
-    .await?
-    {
-        let (f, n) = (i64s(&b, 0)?, i64s(&b, 1)?);
-        for i in 0..b.num_rows() {
-            files[f.value(i) as usize].rows = n.value(i) as usize;
-        }
+    for (f, n) in check_rows(ctx, plan, &files, split_col.map(|c| c.name.as_str())).await? {
+        files[f].rows = n;
     }
     if let Some(task_rows) = task_rows {
         // From here on a hash-partitioned stage gives each task about
@@ -466,8 +456,12 @@ async fn ingest(
         &format!("CREATE VIEW assigned AS SELECT *, {part} AS part FROM hashed"),
     )
     .await?;
-    let counts = super::counts(ctx, "assigned").await?;
-    if let Some((n, h, [lo, hi])) = super::leakage(ctx, "assigned").await? {
+    let check = super::split_check(ctx, "assigned").await?;
+    let counts = check.counts;
+    if check.leaked > 0 {
+        let (n, h, [lo, hi]) = super::leakage(ctx, "assigned")
+            .await?
+            .ok_or_else(|| Error::internal("leakage counted but not found"))?;
         let rows = collect(
             ctx,
             "checking for leakage",
@@ -495,31 +489,23 @@ async fn ingest(
             ),
         });
     }
-    let dup = collect(
-        ctx,
-        "counting repeated rows",
-        "SELECT COALESCE(SUM(n), 0) FROM (SELECT COUNT(*) AS n FROM assigned GROUP BY h \
-         HAVING COUNT(*) > 1)",
-    )
-    .await?;
-    let rows_with_duplicates = match dup.iter().find(|b| b.num_rows() > 0) {
-        Some(b) => i64s(b, 0)?.value(0) as usize,
-        None => 0,
-    };
+    let rows_with_duplicates = check.rows_with_duplicates;
     drop(stage);
 
     let stage = progress.stage("summarising the training rows on the engine");
     let fitted: Vec<FittedFeatures> = features::fit_without_rows(plan)?;
     let columns: Vec<String> = plan.columns.iter().map(|c| c.name.clone()).collect();
-    let moments = train_moments(ctx, &fitted, &files).await?;
-    let manifest = super::manifest(ctx, "assigned", Part::Train as i8).await?;
+    let (moments, per_bucket) = train_moments(ctx, &fitted, &files).await?;
+    // The three splits' manifests in one pass (the validation and test ones
+    // are recorded with the split).
+    let [manifest, validation_manifest, test_manifest] = super::manifests_of(
+        ctx,
+        "assigned",
+        [Part::Train as i8, Part::Validation as i8, Part::Test as i8],
+    )
+    .await?;
     let train_rows = counts[0].normal + counts[0].anomaly;
-    let (sample, samples) = train_sample(ctx, nx, train_rows, columns).await?;
-    drop(stage);
-
-    let stage = progress.stage("hashing the validation and test manifests");
-    let validation_manifest = super::manifest(ctx, "assigned", Part::Validation as i8).await?;
-    let test_manifest = super::manifest(ctx, "assigned", Part::Test as i8).await?;
+    let (sample, samples) = train_sample(ctx, nx, &per_bucket, columns).await?;
     drop(stage);
 
     let stage = progress.stage("splitting and checking for leakage");
@@ -571,13 +557,14 @@ async fn ingest(
 }
 
 /// Refuses the first row rule broken anywhere, naming the rows (the first
-/// file holding such a row, its first places, how many in all).
+/// file holding such a row, its first places, how many in all); else the
+/// rows of each file (by its index), counted in the same pass.
 async fn check_rows(
     ctx: &SessionContext,
     plan: &Plan,
     files: &[SourceFile],
     split_col: Option<&str>,
-) -> Result<()> {
+) -> Result<Vec<(usize, usize)>> {
     let label = plan.label.as_ref().expect("checked by the scope");
     let (normal, anomaly) = (sql_text(&label.normal), sql_text(&label.anomaly));
     // A CSV feature value that is not a number first, as in process.
@@ -638,26 +625,37 @@ async fn check_rows(
         .iter()
         .map(|r| format!("SUM(CASE WHEN {} THEN 1 ELSE 0 END)", r.cond))
         .collect();
+    // Per file: its rows, and the rows breaking each rule.
     let found = collect(
         ctx,
         "checking the rows",
         &format!(
-            "SELECT {} FROM src WHERE {}({})",
+            "SELECT f, COUNT(*), {} FROM src WHERE {}({}) GROUP BY f",
             sums.join(", "),
             functions::VERSION_CHECK,
             sql_text(version())
         ),
     )
     .await?;
-    let Some(b) = found.iter().find(|b| b.num_rows() > 0) else {
-        return Ok(());
-    };
-    for (k, rule) in rules.iter().enumerate() {
-        let total = i64s(b, k)?;
-        if total.is_null(0) || total.value(0) == 0 {
+    let mut rows = Vec::new();
+    let mut broken = vec![0usize; rules.len()];
+    for b in &found {
+        let (f, n) = (i64s(b, 0)?, i64s(b, 1)?);
+        for i in 0..b.num_rows() {
+            rows.push((f.value(i) as usize, n.value(i) as usize));
+        }
+        for (k, t) in broken.iter_mut().enumerate() {
+            let c = i64s(b, k + 2)?;
+            *t += (0..b.num_rows())
+                .filter(|&i| !c.is_null(i))
+                .map(|i| c.value(i) as usize)
+                .sum::<usize>();
+        }
+    }
+    for (rule, &total) in rules.iter().zip(&broken) {
+        if total == 0 {
             continue;
         }
-        let total = total.value(0) as usize;
         let value = rule.value.as_deref().unwrap_or("''");
         let first = collect(
             ctx,
@@ -693,7 +691,7 @@ async fn check_rows(
             plan,
         ));
     }
-    Ok(())
+    Ok(rows)
 }
 
 /// The SQL of feature `f` on the rows of `assigned`: a plain column as
@@ -728,12 +726,14 @@ fn feature_sql(f: &features::FittedFeature, check: bool) -> Result<String> {
 /// in its order (set by set, feature by feature, rule by rule), training
 /// rows whose feature is not finite, outside a transform's domain, or
 /// beyond ±`features::TRAIN_LIMIT`: one pass finds the first rule broken
-/// per feature, two more name the rows of the first feature refused.
+/// per feature, two more name the rows of the first feature refused. With
+/// them, the training rows per content-hash bucket (from the first set's
+/// bucket moments), for the samples.
 async fn train_moments(
     ctx: &SessionContext,
     fitted: &[FittedFeatures],
     files: &[SourceFile],
-) -> Result<Vec<crate::moments::Moments>> {
+) -> Result<(Vec<crate::moments::Moments>, BTreeMap<u16, u64>)> {
     let doing = "checking the training rows";
     let all: Vec<&features::FittedFeature> = fitted.iter().flat_map(|s| &s.features).collect();
     if !all.is_empty() {
@@ -803,6 +803,7 @@ async fn train_moments(
         }
     }
     let mut moments = Vec::with_capacity(fitted.len());
+    let mut rows = BTreeMap::new();
     for (si, set) in fitted.iter().enumerate() {
         let cols = set
             .features
@@ -821,9 +822,13 @@ async fn train_moments(
         )
         .await?;
         let names: Vec<String> = (0..set.features.len()).map(|j| format!("g{j}")).collect();
-        moments.push(super::moments(ctx, &view, Part::Train as i8, &names).await?);
+        let buckets = super::bucket_moments(ctx, &view, Part::Train as i8, &names).await?;
+        if si == 0 {
+            rows = buckets.iter().map(|(b, m)| (*b, m.n)).collect();
+        }
+        moments.push(crate::moments::fold_buckets(names.len(), buckets)?);
     }
-    Ok(moments)
+    Ok((moments, rows))
 }
 
 /// The systematic samples of the training rows for each of
@@ -832,9 +837,10 @@ async fn train_moments(
 async fn train_sample(
     ctx: &SessionContext,
     nx: usize,
-    train_rows: usize,
+    per_bucket: &BTreeMap<u16, u64>,
     columns: Vec<String>,
 ) -> Result<(Dataset, Vec<Vec<RowId>>)> {
+    let train_rows = per_bucket.values().sum::<u64>() as usize;
     let strides: Vec<usize> = SAMPLE_LIMITS
         .iter()
         .map(|&l| train_rows.div_ceil(l.max(1)).max(1))
@@ -843,7 +849,7 @@ async fn train_sample(
     // on the engine (`super::sample`): no sort merged across partitions (one
     // stalled Ballista 55 in the suite's cluster), no training row sent to
     // the client but the sampled ones.
-    let kept = super::sample::every_kth(ctx, nx, &strides).await?;
+    let kept = super::sample::every_kth(ctx, nx, per_bucket, &strides).await?;
     sample_of(kept, &strides, columns, nx)
 }
 

@@ -129,32 +129,18 @@ impl ScalarUDFImpl for Sampled {
 
 /// The training rows (`part = 0` of `assigned`) whose rank in (hash, file,
 /// row) order a stride of `strides` divides: (rank, the row's `nx` values),
-/// in rank order.
+/// in rank order. `per` holds the training rows per content-hash bucket.
 pub(crate) async fn every_kth(
     ctx: &SessionContext,
     nx: usize,
+    per: &BTreeMap<u16, u64>,
     strides: &[usize],
 ) -> Result<Vec<(usize, Vec<f64>)>> {
     let doing = "sampling the training rows";
     let p = functions::PREFIX16;
-    let counts = collect(
-        ctx,
-        doing,
-        &format!("SELECT {p}(h) AS b, COUNT(*) FROM assigned WHERE part = 0 GROUP BY b"),
-    )
-    .await?;
-    let mut per: BTreeMap<u16, u64> = BTreeMap::new();
-    for b in &counts {
-        let (k, n) = (int64s(b, 0)?, int64s(b, 1)?);
-        for i in 0..b.num_rows() {
-            let bucket = u16::try_from(k.value(i))
-                .map_err(|_| Error::internal("a content-hash bucket beyond 16 bits"))?;
-            *per.entry(bucket).or_default() += n.value(i) as u64;
-        }
-    }
     let mut firsts = Vec::with_capacity(per.len());
     let mut at = 0u64;
-    for (b, n) in per {
+    for (&b, &n) in per {
         firsts.push((b, at));
         at += n;
     }
@@ -275,10 +261,15 @@ mod tests {
         .unwrap();
         let mut train: Vec<usize> = (0..n).filter(|&i| part[i] == 0).collect();
         train.sort_by_key(|&i| (h[i], f[i], r[i]));
+        // The training rows per content-hash bucket.
+        let mut per: BTreeMap<u16, u64> = BTreeMap::new();
+        for &i in &train {
+            *per.entry(functions::bucket_of(&h[i])).or_default() += 1;
+        }
         for strides in [vec![1usize], vec![3, 7], vec![5000]] {
             let got = super::super::cluster::runtime()
                 .unwrap()
-                .block_on(every_kth(&ctx, 1, &strides))
+                .block_on(every_kth(&ctx, 1, &per, &strides))
                 .unwrap();
             let want: Vec<(usize, Vec<f64>)> = train
                 .iter()

@@ -167,6 +167,8 @@ fn row_hash_equals_the_library() {
 struct Outcome {
     parts: Vec<(Vec<u8>, i8)>,
     counts: [Counts; 3],
+    duplicates: usize,
+    leaked: usize,
     leaks: Option<(usize, ContentHash, [i8; 2])>,
     moments: Moments,
     manifests: Vec<String>,
@@ -214,13 +216,19 @@ async fn run_steps(x: &Array2<f64>, a: &[bool], seed: u64, p: usize, b: usize) -
     ))
     .await
     .unwrap();
+    let check = split_check(&ctx, "assigned").await.unwrap();
     Outcome {
         parts,
-        counts: counts(&ctx, "assigned").await.unwrap(),
+        counts: check.counts,
+        duplicates: check.rows_with_duplicates,
+        leaked: check.leaked,
         leaks: leakage(&ctx, "assigned").await.unwrap(),
         moments,
         manifests,
-        summary: summary(&ctx, "scored", "s", 1, &[1.5]).await.unwrap(),
+        summary: summary(&ctx, "scored", "s", 1, &[1.5])
+            .await
+            .unwrap()
+            .unwrap(),
     }
 }
 
@@ -273,7 +281,8 @@ fn every_step_equals_the_in_process_run_in_every_configuration() {
             let at = format!("{p} partitions, batches of {b}");
             assert!(got.parts == want_parts, "split, {at}");
             assert_eq!(got.counts, splits.report.counts, "{at}");
-            assert_eq!(got.leaks, None, "{at}");
+            assert_eq!(got.duplicates, splits.report.rows_with_duplicates, "{at}");
+            assert_eq!((got.leaks, got.leaked), (None, 0), "{at}");
             assert_eq!(got.moments.n, want_moments.n, "{at}");
             let bits = |m: &Moments| -> Vec<u64> {
                 m.mean.iter().chain(&m.m2).map(|v| v.to_bits()).collect()
@@ -297,7 +306,7 @@ fn the_split_is_exact_at_cuts_inside_duplicate_runs() {
             }
         }
         let hashes = hash::rows(&x, &a);
-        let (part, _) = in_process_parts(&x, &a, seed);
+        let (part, splits) = in_process_parts(&x, &a, seed);
         let mut want: Vec<(Vec<u8>, i8)> = hashes
             .iter()
             .zip(&part)
@@ -317,6 +326,22 @@ fn the_split_is_exact_at_cuts_inside_duplicate_runs() {
                     .collect();
                 got.sort();
                 assert!(got == want, "{n} rows, {p} partitions");
+                // The one-pass check of the assigned rows: the in-process
+                // counts and repeated rows, and no leakage.
+                ctx.sql(&format!(
+                    "CREATE VIEW assigned AS SELECT *, {}({}, h, a) AS part FROM hashed",
+                    functions::SPLIT,
+                    sql_bytes(&cuts.to_bytes())
+                ))
+                .await
+                .unwrap();
+                let check = split_check(&ctx, "assigned").await.unwrap();
+                assert!(splits.report.rows_with_duplicates > 0);
+                assert_eq!(
+                    (check.counts, check.rows_with_duplicates, check.leaked),
+                    (splits.report.counts, splits.report.rows_with_duplicates, 0),
+                    "{n} rows, {p} partitions"
+                );
             }
         });
     }
@@ -352,6 +377,15 @@ fn leakage_names_the_shared_content() {
             shared.sort();
             shared.dedup();
             assert_eq!((count, first, parts), (shared.len(), shared[0], [1, 2]));
+            // The one-pass check counts the same leaked contents, and every
+            // row of the leaky view that shares its content.
+            let check = split_check(&ctx, "leaky").await.unwrap();
+            assert_eq!(check.leaked, shared.len());
+            let mut all: Vec<ContentHash> = hashes.clone();
+            all.extend((0..a.len()).filter(|&i| x[[i, 2]] < 2.5).map(|i| hashes[i]));
+            let repeated: usize = hash::order(&all).repeats.iter().map(|r| r.len()).sum();
+            assert_eq!(check.rows_with_duplicates, repeated);
+            assert_eq!(split_check(&ctx, "assigned").await.unwrap().leaked, 0);
         }
     });
 }
@@ -389,12 +423,33 @@ fn the_summary_of_no_anomaly_and_extreme_scores() {
         )
         .unwrap();
         let (b1, b2) = (batch.slice(0, 4), batch.slice(4, 5));
-        let table = MemTable::try_new(schema, vec![vec![b1], vec![b2]]).unwrap();
+        let table = MemTable::try_new(schema.clone(), vec![vec![b1], vec![b2]]).unwrap();
         ctx.register_table("t", Arc::new(table)).unwrap();
-        let got = summary(&ctx, "t", "s", 1, &[0.5]).await.unwrap();
+        let got = summary(&ctx, "t", "s", 1, &[0.5]).await.unwrap().unwrap();
         assert!(got == want);
-        let empty = summary(&ctx, "t", "s", 2, &[0.5]).await.unwrap();
+        let empty = summary(&ctx, "t", "s", 2, &[0.5]).await.unwrap().unwrap();
         assert!(empty == Summary::new(&[], &[], &[0.5]));
+        // A score that is not a number, of a normal row or of an anomaly:
+        // no summary, for the caller to name the row.
+        for (k, anomaly) in [(0, false), (1, true)] {
+            let mut with_nan = scores.to_vec();
+            with_nan[k] = f64::NAN;
+            assert_eq!(labels[k], anomaly);
+            let batch = RecordBatch::try_new(
+                schema.clone(),
+                vec![
+                    Arc::new(Float64Array::from(with_nan)),
+                    Arc::new(BooleanArray::from(labels.to_vec())),
+                    Arc::new(Int8Array::from(vec![1i8; scores.len()])),
+                ],
+            )
+            .unwrap();
+            let table = MemTable::try_new(schema.clone(), vec![vec![batch]]).unwrap();
+            ctx.register_table(format!("nan{k}"), Arc::new(table))
+                .unwrap();
+            let got = summary(&ctx, &format!("nan{k}"), "s", 1, &[0.5]).await;
+            assert!(got.unwrap().is_none(), "NaN in row {k}");
+        }
     });
 }
 

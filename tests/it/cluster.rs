@@ -210,10 +210,15 @@ pub(crate) async fn steps(ctx: &SessionContext, parts: &Path) -> anomark::Result
         ),
     )
     .await?;
-    let summary = engine::summary(ctx, "scored", "s", 1, &[]).await?;
+    let summary = engine::summary(ctx, "scored", "s", 1, &[])
+        .await?
+        .expect("no score is NaN");
     Ok(Outcome {
         cuts: cuts.to_bytes(),
-        counts: format!("{:?}", engine::counts(ctx, "assigned").await?),
+        counts: {
+            let c = engine::split_check(ctx, "assigned").await?;
+            format!("{:?} {} {}", c.counts, c.rows_with_duplicates, c.leaked)
+        },
         leaks: engine::leakage(ctx, "assigned").await?.is_some(),
         moments: moments
             .mean
