@@ -135,24 +135,37 @@ impl HeldOnEngine {
                 }
                 targets = wanted.into_iter().map(|k| (0, k as u64)).collect();
             }
+            // The groups in ascending order, with the rows before each: a
+            // target's group is found by two binary searches (thousands of
+            // targets among as many groups, for the calibration).
+            let keys: Vec<i64> = groups.keys().copied().collect();
+            let mut before = Vec::with_capacity(keys.len() + 1);
+            before.push(0u64);
+            for n in groups.values() {
+                before.push(before[before.len() - 1] + n);
+            }
             for t in targets.iter_mut() {
-                // The groups under the target's prefix, in ascending order.
-                let mut rank = t.1;
-                let mut found = None;
-                for (&p, &n) in &groups {
-                    if pass > 0 && p >> DIGIT != t.0 {
-                        continue;
-                    }
-                    if rank < n {
-                        found = Some(p);
-                        break;
-                    }
-                    rank -= n;
+                // The groups under the target's prefix: all of them in the
+                // first pass, else those whose prefix one digit shorter is
+                // the target's.
+                let (lo, hi) = if pass == 0 {
+                    (0, keys.len())
+                } else {
+                    (
+                        keys.partition_point(|&p| p >> DIGIT < t.0),
+                        keys.partition_point(|&p| p >> DIGIT <= t.0),
+                    )
+                };
+                // The first group whose rows, counted from the range's
+                // start, pass the target's rank.
+                let want = before[lo] + t.1;
+                let k = lo + before[lo + 1..=hi].partition_point(|&b| b <= want);
+                if k >= hi {
+                    return Err(Error::internal(
+                        "an order statistic not found in its prefix's groups",
+                    ));
                 }
-                let p = found.ok_or_else(|| {
-                    Error::internal("an order statistic not found in its prefix's groups")
-                })?;
-                *t = (p, rank);
+                *t = (keys[k], want - before[k]);
             }
         }
         Ok((

@@ -406,7 +406,8 @@ pub async fn split_cuts(
 /// splits: rows per split and label, rows whose content another row also
 /// holds, and how many contents sit in more than one split.
 pub struct SplitCheck {
-    /// Rows per split and label.
+    /// Rows per split and label; exact when no content is leaked (when
+    /// one is, the run stops on the leakage).
     pub counts: [Counts; 3],
     /// Rows sharing their content with another row.
     pub rows_with_duplicates: usize,
@@ -414,57 +415,51 @@ pub struct SplitCheck {
     pub leaked: usize,
 }
 
-/// The [`SplitCheck`] of `table`: one grouping by content hash, summed on
-/// the engine (a content's rows per split and label, its row count and its
-/// lowest and highest split), so that one row comes back whatever the
-/// data, and the source is read once for all three answers.
+/// The [`SplitCheck`] of `table`: one grouping by content hash (each
+/// content's rows, lowest and highest split, and label: the label is part
+/// of the content, so one per content), then summed on the engine per
+/// lowest split and label, so that at most six rows come back whatever the
+/// data, the source is read once for all three answers, and each content
+/// holds four small values while it is grouped.
 pub async fn split_check(ctx: &SessionContext, table: &str) -> Result<SplitCheck> {
-    let per_cell = |p: usize, a: bool| {
-        format!(
-            "SUM(CASE WHEN part = {p} AND {}a THEN 1 ELSE 0 END)",
-            if a { "" } else { "NOT " }
-        )
-    };
-    let cells: Vec<(usize, bool)> = (0..3).flat_map(|p| [(p, false), (p, true)]).collect();
-    let inner: Vec<String> = cells
-        .iter()
-        .enumerate()
-        .map(|(k, &(p, a))| format!("{} AS c{k}", per_cell(p, a)))
-        .collect();
-    let outer: Vec<String> = (0..cells.len())
-        .map(|k| format!("CAST(COALESCE(SUM(c{k}), 0) AS BIGINT)"))
-        .collect();
     let rows = collect(
         ctx,
         "counting the splits, repeated rows and leakage",
         &format!(
-            "SELECT {}, CAST(COALESCE(SUM(CASE WHEN n > 1 THEN n ELSE 0 END), 0) AS BIGINT), \
-             CAST(COALESCE(SUM(CASE WHEN lo <> hi THEN 1 ELSE 0 END), 0) AS BIGINT) FROM \
-             (SELECT {}, COUNT(*) AS n, MIN(part) AS lo, MAX(part) AS hi FROM {table} GROUP BY h)",
-            outer.join(", "),
-            inner.join(", ")
+            "SELECT lo, a, CAST(SUM(n) AS BIGINT), CAST(SUM(CASE WHEN n > 1 THEN n ELSE 0 END) \
+             AS BIGINT), CAST(SUM(CASE WHEN lo <> hi THEN 1 ELSE 0 END) AS BIGINT) FROM \
+             (SELECT COUNT(*) AS n, MIN(part) AS lo, MAX(part) AS hi, BOOL_OR(a) AS a FROM \
+             {table} GROUP BY h) GROUP BY lo, a"
         ),
     )
     .await?;
-    let b = rows
-        .iter()
-        .find(|b| b.num_rows() > 0)
-        .ok_or_else(|| Error::internal("the split check gave no row"))?;
-    let value = |j: usize| -> Result<usize> { Ok(column::<Int64Array>(b, j)?.value(0) as usize) };
-    let mut counts = [Counts::default(); 3];
-    for (k, &(p, a)) in cells.iter().enumerate() {
-        let n = value(k)?;
-        if a {
-            counts[p].anomaly = n;
-        } else {
-            counts[p].normal = n;
+    let mut check = SplitCheck {
+        counts: [Counts::default(); 3],
+        rows_with_duplicates: 0,
+        leaked: 0,
+    };
+    for b in &rows {
+        let (lo, a) = (column::<Int8Array>(b, 0)?, column::<BooleanArray>(b, 1)?);
+        let (n, repeated, leaked) = (
+            column::<Int64Array>(b, 2)?,
+            column::<Int64Array>(b, 3)?,
+            column::<Int64Array>(b, 4)?,
+        );
+        for i in 0..b.num_rows() {
+            let c = usize::try_from(lo.value(i))
+                .ok()
+                .and_then(|p| check.counts.get_mut(p))
+                .ok_or_else(|| Error::internal("a split index out of range"))?;
+            if a.value(i) {
+                c.anomaly += n.value(i) as usize;
+            } else {
+                c.normal += n.value(i) as usize;
+            }
+            check.rows_with_duplicates += repeated.value(i) as usize;
+            check.leaked += leaked.value(i) as usize;
         }
     }
-    Ok(SplitCheck {
-        counts,
-        rows_with_duplicates: value(cells.len())?,
-        leaked: value(cells.len() + 1)?,
-    })
+    Ok(check)
 }
 
 /// Contents that sit in more than one split of `table`: how many, and the
