@@ -76,105 +76,96 @@ impl HeldOnEngine {
         ))
     }
 
-    /// The `k`-th smallest (from 0, in `f64::total_cmp` order) of the
-    /// scores of split `part` that `among` keeps, for each `k` of `ranks`
-    /// (each below the count of such scores), found by grouping on 16 more
-    /// bits of the order key a pass; and that count.
+    /// For each split of `parts`: the `k`-th smallest (from 0, in
+    /// `f64::total_cmp` order) of its scores that `among` keeps, for each
+    /// `k` of `ranks(split, count)` (each below the count of such scores),
+    /// and that count; found by grouping on 16 more bits of the order key a
+    /// pass, every split in the same pass over the rows.
     async fn order_statistics(
         &self,
-        part: Part,
+        parts: &[Part],
         among: Among<'_>,
-        ranks: impl FnOnce(u64) -> Vec<usize>,
-    ) -> Result<(u64, Vec<f64>)> {
+        ranks: impl Fn(Part, u64) -> Vec<usize>,
+    ) -> Result<Vec<(u64, Vec<f64>)>> {
         let doing = among.doing();
-        // Per wanted rank: the prefix found so far and the rank within it.
-        let mut targets: Vec<(i64, u64)> = Vec::new();
-        let mut kept = 0u64;
-        let mut ranks = Some(ranks);
+        // Per split, per wanted rank: the prefix found so far and the rank
+        // within it; and the split's count.
+        let mut targets: Vec<Vec<(i64, u64)>> = vec![Vec::new(); parts.len()];
+        let mut kept = vec![0u64; parts.len()];
         for pass in 0..4u32 {
             let shift = 64 - DIGIT * (pass + 1);
             let prefix = among.prefix(shift);
+            let asked = |k: usize| format!("part = {}", parts[k] as i8);
             let within = if pass == 0 {
-                String::new()
+                (0..parts.len()).map(asked).collect::<Vec<_>>()
             } else {
-                let parents: std::collections::BTreeSet<i64> =
-                    targets.iter().map(|t| t.0).collect();
-                if parents.is_empty() {
-                    break;
+                let mut within = Vec::new();
+                for (k, t) in targets.iter().enumerate() {
+                    let parents: std::collections::BTreeSet<i64> = t.iter().map(|t| t.0).collect();
+                    if !parents.is_empty() {
+                        let list: Vec<String> = parents.iter().map(|p| p.to_string()).collect();
+                        within.push(format!(
+                            "{} AND {} IN ({})",
+                            asked(k),
+                            among.prefix(shift + DIGIT),
+                            list.join(", ")
+                        ));
+                    }
                 }
-                let list: Vec<String> = parents.iter().map(|p| p.to_string()).collect();
-                format!(
-                    " AND {} IN ({})",
-                    among.prefix(shift + DIGIT),
-                    list.join(", ")
-                )
+                within
             };
+            if within.is_empty() {
+                break;
+            }
             let rows = collect(
                 &self.ctx,
                 doing,
                 &format!(
-                    "SELECT p, COUNT(*) FROM (SELECT {prefix} AS p FROM assigned WHERE part = \
-                     {part}{rows}{within}) WHERE p IS NOT NULL GROUP BY p",
-                    part = part as i8,
+                    "SELECT part, p, COUNT(*) FROM (SELECT part, {prefix} AS p FROM assigned \
+                     WHERE ({}){rows}) WHERE p IS NOT NULL GROUP BY part, p",
+                    within.join(") OR ("),
                     rows = among.rows(),
                 ),
             )
             .await?;
-            let mut groups: BTreeMap<i64, u64> = BTreeMap::new();
+            let mut groups: Vec<BTreeMap<i64, u64>> = vec![BTreeMap::new(); parts.len()];
             for b in &rows {
-                let (p, n) = (super::column::<Int64Array>(b, 0)?, int64s(b, 1)?);
+                let (part, p, n) = (
+                    super::column::<datafusion::arrow::array::Int8Array>(b, 0)?,
+                    super::column::<Int64Array>(b, 1)?,
+                    int64s(b, 2)?,
+                );
                 for i in 0..b.num_rows() {
-                    *groups.entry(p.value(i)).or_default() += n.value(i) as u64;
+                    let k = parts
+                        .iter()
+                        .position(|&q| q as i8 == part.value(i))
+                        .ok_or_else(|| Error::internal("order statistics of a split not asked"))?;
+                    *groups[k].entry(p.value(i)).or_default() += n.value(i) as u64;
                 }
             }
-            if pass == 0 {
-                kept = groups.values().sum();
-                let wanted = (ranks.take().expect("once"))(kept);
-                if wanted.iter().any(|&k| k as u64 >= kept) {
-                    return Err(Error::internal("an order statistic beyond the scores"));
+            for (k, (groups, targets)) in groups.iter().zip(targets.iter_mut()).enumerate() {
+                if pass == 0 {
+                    kept[k] = groups.values().sum();
+                    let wanted = ranks(parts[k], kept[k]);
+                    if wanted.iter().any(|&r| r as u64 >= kept[k]) {
+                        return Err(Error::internal("an order statistic beyond the scores"));
+                    }
+                    *targets = wanted.into_iter().map(|r| (0, r as u64)).collect();
                 }
-                targets = wanted.into_iter().map(|k| (0, k as u64)).collect();
-            }
-            // The groups in ascending order, with the rows before each: a
-            // target's group is found by two binary searches (thousands of
-            // targets among as many groups, for the calibration).
-            let keys: Vec<i64> = groups.keys().copied().collect();
-            let mut before = Vec::with_capacity(keys.len() + 1);
-            before.push(0u64);
-            for n in groups.values() {
-                before.push(before[before.len() - 1] + n);
-            }
-            for t in targets.iter_mut() {
-                // The groups under the target's prefix: all of them in the
-                // first pass, else those whose prefix one digit shorter is
-                // the target's.
-                let (lo, hi) = if pass == 0 {
-                    (0, keys.len())
-                } else {
-                    (
-                        keys.partition_point(|&p| p >> DIGIT < t.0),
-                        keys.partition_point(|&p| p >> DIGIT <= t.0),
-                    )
-                };
-                // The first group whose rows, counted from the range's
-                // start, pass the target's rank.
-                let want = before[lo] + t.1;
-                let k = lo + before[lo + 1..=hi].partition_point(|&b| b <= want);
-                if k >= hi {
-                    return Err(Error::internal(
-                        "an order statistic not found in its prefix's groups",
-                    ));
-                }
-                *t = (keys[k], want - before[k]);
+                narrow(groups, targets, pass)?;
             }
         }
-        Ok((
-            kept,
-            targets
-                .iter()
-                .map(|t| functions::from_order_key(t.0))
-                .collect(),
-        ))
+        Ok(kept
+            .into_iter()
+            .zip(targets)
+            .map(|(kept, targets)| {
+                let values = targets
+                    .iter()
+                    .map(|t| functions::from_order_key(t.0))
+                    .collect();
+                (kept, values)
+            })
+            .collect())
     }
 
     async fn summary_async(
@@ -218,44 +209,69 @@ impl HeldOnEngine {
         Err(Error::internal("a score not a number, then not found"))
     }
 
+    /// The score figures' facts of each split of `splits` (with its
+    /// evaluation summary, τ countable in it) under `score` at τ: the axes'
+    /// order statistics and then the histograms' bins, every split in the
+    /// same passes over the rows.
     async fn facts_async(
         &self,
-        part: Part,
+        splits: &[(Part, &Summary)],
         score: &str,
-        summary: &Summary,
         tau: f64,
-    ) -> Result<ScoreFacts> {
-        let at = summary
-            .confusion_at(tau)
-            .ok_or_else(|| Error::internal("τ inside a gap of the figures' summary"))?;
-        let (kept, values) = self
-            .order_statistics(part, Among::Axis(score), |kept| {
+    ) -> Result<Vec<ScoreFacts>> {
+        let at = splits
+            .iter()
+            .map(|(_, summary)| {
+                summary
+                    .confusion_at(tau)
+                    .ok_or_else(|| Error::internal("τ inside a gap of the figures' summary"))
+            })
+            .collect::<Result<Vec<_>>>()?;
+        let parts: Vec<Part> = splits.iter().map(|s| s.0).collect();
+        let ordered = self
+            .order_statistics(&parts, Among::Axis(score), |_, kept| {
                 plots::axis_ranks(kept as usize)
             })
             .await?;
-        let axes = ScoreAxes::new(summary.rows() - kept, &values, tau);
-        let r = axes.score_range();
+        let mut axes = Vec::with_capacity(splits.len());
+        let mut bins = Vec::with_capacity(splits.len());
+        for (&(part, summary), (kept, values)) in splits.iter().zip(&ordered) {
+            let a = ScoreAxes::new(summary.rows() - kept, values, tau);
+            let r = a.score_range();
+            bins.push(format!(
+                "WHEN {} THEN {}({}, {score})",
+                part as i8,
+                functions::BIN,
+                sql_bytes(&functions::le_bytes(&[r.start, r.end]))
+            ));
+            axes.push(a);
+        }
+        let list: Vec<String> = parts.iter().map(|&p| (p as i8).to_string()).collect();
         let rows = collect(
             &self.ctx,
             "counting the scores per histogram bin",
             &format!(
-                "SELECT a, b, COUNT(*) FROM (SELECT a, {}({}, {score}) AS b FROM assigned WHERE \
-                 part = {}) GROUP BY a, b",
-                functions::BIN,
-                sql_bytes(&functions::le_bytes(&[r.start, r.end])),
-                part as i8
+                "SELECT part, a, b, COUNT(*) FROM (SELECT part, a, CASE part {} END AS b FROM \
+                 assigned WHERE part IN ({})) GROUP BY part, a, b",
+                bins.join(" "),
+                list.join(", ")
             ),
         )
         .await?;
-        let mut classes = [
-            (vec![0u64; plots::SCORE_BINS], 0u64),
-            (vec![0u64; plots::SCORE_BINS], 0u64),
-        ];
+        // Per split and class: rows per bin, and rows in no bin.
+        let mut classes: Vec<[(Vec<u64>, u64); 2]> = (0..splits.len())
+            .map(|_| std::array::from_fn(|_| (vec![0u64; plots::SCORE_BINS], 0u64)))
+            .collect();
         for b in &rows {
-            let a = super::column::<datafusion::arrow::array::BooleanArray>(b, 0)?;
-            let (bin, n) = (super::column::<Int64Array>(b, 1)?, int64s(b, 2)?);
+            let part = super::column::<datafusion::arrow::array::Int8Array>(b, 0)?;
+            let a = super::column::<datafusion::arrow::array::BooleanArray>(b, 1)?;
+            let (bin, n) = (super::column::<Int64Array>(b, 2)?, int64s(b, 3)?);
             for i in 0..b.num_rows() {
-                let class = &mut classes[usize::from(a.value(i))];
+                let k = parts
+                    .iter()
+                    .position(|&q| q as i8 == part.value(i))
+                    .ok_or_else(|| Error::internal("histogram bins of a split not asked"))?;
+                let class = &mut classes[k][usize::from(a.value(i))];
                 let n = n.value(i) as u64;
                 match usize::try_from(bin.value(i)) {
                     Ok(k) if k < plots::SCORE_BINS => class.0[k] += n,
@@ -263,8 +279,11 @@ impl HeldOnEngine {
                 }
             }
         }
-        let [normal, anomalous] = classes;
-        ScoreFacts::new(at, axes, normal, anomalous)
+        at.into_iter()
+            .zip(axes)
+            .zip(classes)
+            .map(|((at, axes), [normal, anomalous])| ScoreFacts::new(at, axes, normal, anomalous))
+            .collect()
     }
 
     async fn scores_digest_async(&self, scores: &[String], test: bool) -> Result<String> {
@@ -375,8 +394,10 @@ impl HeldOnEngine {
                     .map(|r| r - 1)
                     .collect();
                 let (count, values) = self
-                    .order_statistics(part, Among::Normals(score), |_| body)
-                    .await?;
+                    .order_statistics(&[part], Among::Normals(score), |_, _| body.clone())
+                    .await?
+                    .pop()
+                    .ok_or_else(|| Error::internal("no order statistics of the calibration"))?;
                 if count != n as u64 {
                     return Err(Error::internal(
                         "the calibration rows counted twice differently",
@@ -389,6 +410,44 @@ impl HeldOnEngine {
             Error::internal("the engine's calibration scores do not fit their count")
         })
     }
+}
+
+/// One pass of [`HeldOnEngine::order_statistics`] for one split: each
+/// target (its prefix so far and its rank within it) moved to the group of
+/// this pass (`groups`: prefix one digit longer → rows) that holds its
+/// rank, and its rank within that group. The groups' running counts are
+/// searched twice per target (thousands of targets among as many groups,
+/// for the calibration), not walked.
+fn narrow(groups: &BTreeMap<i64, u64>, targets: &mut [(i64, u64)], pass: u32) -> Result<()> {
+    let keys: Vec<i64> = groups.keys().copied().collect();
+    let mut before = Vec::with_capacity(keys.len() + 1);
+    before.push(0u64);
+    for n in groups.values() {
+        before.push(before[before.len() - 1] + n);
+    }
+    for t in targets.iter_mut() {
+        // The groups under the target's prefix: all of them in the first
+        // pass, else those whose prefix one digit shorter is the target's.
+        let (lo, hi) = if pass == 0 {
+            (0, keys.len())
+        } else {
+            (
+                keys.partition_point(|&p| p >> DIGIT < t.0),
+                keys.partition_point(|&p| p >> DIGIT <= t.0),
+            )
+        };
+        // The first group whose rows, counted from the range's start, pass
+        // the target's rank.
+        let want = before[lo] + t.1;
+        let k = lo + before[lo + 1..=hi].partition_point(|&b| b <= want);
+        if k >= hi {
+            return Err(Error::internal(
+                "an order statistic not found in its prefix's groups",
+            ));
+        }
+        *t = (keys[k], want - before[k]);
+    }
+    Ok(())
 }
 
 /// Which scores [`HeldOnEngine::order_statistics`] orders: those of a
@@ -724,14 +783,13 @@ impl HeldSplits for HeldOnEngine {
 
     fn facts(
         &self,
-        part: Part,
+        splits: &[(Part, &Summary)],
         set: usize,
         model: &dyn Model,
-        summary: &Summary,
         tau: f64,
-    ) -> Result<ScoreFacts> {
+    ) -> Result<Vec<ScoreFacts>> {
         let score = self.score_sql(set, model)?;
-        self.wait(self.facts_async(part, &score, summary, tau))
+        self.wait(self.facts_async(splits, &score, tau))
     }
 
     fn scores_digest(&self, candidates: &[(usize, &dyn Model)], test: bool) -> Result<String> {
@@ -868,10 +926,10 @@ mod tests {
             for tau in [scores[labels.iter().position(|&y| y).unwrap()], 3.0] {
                 let s = held.summary("c", p, 0, model.as_ref(), &[tau]).unwrap();
                 assert!(s == Summary::new(&scores, &labels, &[tau]));
-                let facts = held.facts(p, 0, model.as_ref(), &s, tau).unwrap();
+                let facts = held.facts(&[(p, &s)], 0, model.as_ref(), tau).unwrap();
                 assert_eq!(
                     facts,
-                    ScoreFacts::of(&scores, &labels, tau),
+                    vec![ScoreFacts::of(&scores, &labels, tau)],
                     "{p:?} τ {tau}"
                 );
             }
@@ -901,6 +959,21 @@ mod tests {
                 assert_eq!(got.ranks().is_some(), thinning != Thinning::DEFAULT);
             }
         }
+        // Both splits' facts asked together (each pass over the rows serves
+        // both): each split's own, in the order asked.
+        let tau = 3.0;
+        let mut summaries = Vec::new();
+        let mut want = Vec::new();
+        for p in [Part::Test, Part::Validation] {
+            let rows: Vec<usize> = (0..n).filter(|&i| part[i] == p as i8).collect();
+            let xs = ndarray::Array2::from_shape_fn((rows.len(), 1), |(i, _)| x[rows[i]]);
+            let scores = crate::detect::score_in_blocks(model.as_ref(), xs.view(), 8192);
+            let labels: Vec<bool> = rows.iter().map(|&i| a[i]).collect();
+            summaries.push((p, held.summary("c", p, 0, model.as_ref(), &[tau]).unwrap()));
+            want.push(ScoreFacts::of(&scores, &labels, tau));
+        }
+        let asked: Vec<(Part, &Summary)> = summaries.iter().map(|(p, s)| (*p, s)).collect();
+        assert_eq!(held.facts(&asked, 0, model.as_ref(), tau).unwrap(), want);
         // The scores digest over both splits, from each row's score in memory.
         let xs = ndarray::Array2::from_shape_fn((n, 1), |(i, _)| x[i]);
         let scores = crate::detect::score_in_blocks(model.as_ref(), xs.view(), 8192);

@@ -64,16 +64,16 @@ pub trait HeldSplits: Send + Sync {
         extra: &[f64],
     ) -> Result<Summary>;
 
-    /// The score figures' facts of `part` under `model` at τ, whose
-    /// evaluation summary (with τ countable) is `summary`.
+    /// The score figures' facts of each split of `splits` under `model` at
+    /// τ, each with its evaluation summary (τ countable in it), in order:
+    /// the splits together, so that each question is one pass over the rows.
     fn facts(
         &self,
-        part: Part,
+        splits: &[(Part, &Summary)],
         set: usize,
         model: &dyn Model,
-        summary: &Summary,
         tau: f64,
-    ) -> Result<ScoreFacts>;
+    ) -> Result<Vec<ScoreFacts>>;
 
     /// The scores digest (`audit::hash::scores_digest`) of the validation
     /// rows, and the test rows when `test` (the test split was opened),

@@ -285,22 +285,38 @@ pub(crate) fn artifacts(
     let score_figures = || -> Result<(Vec<plots::Plot>, Vec<plots::Plot>)> {
         let _t = crate::progress::part("score figures");
         let tau = c.choice.tau;
-        // What the figures read of a split's scores: from the scores, or
-        // asked of the engine that holds the rows.
-        let facts =
-            |part: Part, scores: &[f64], labels: &[bool], summary: &crate::summary::Summary| {
-                match &rows.held {
-                    Held::Rows => Ok(plots::ScoreFacts::of(scores, labels, tau)),
-                    Held::Engine(e) => e.facts(part, c.set, c.model.as_ref(), summary, tau),
-                }
-            };
-        let val_cuts = crate::summary::curve(&c.validation_summary);
-        let val_facts = facts(
+        // What the figures read of each split's scores: from the scores, or
+        // asked of the engine that holds the rows (both splits at once).
+        let mut splits: Vec<(Part, &[f64], &[bool], &crate::summary::Summary)> = vec![(
             Part::Validation,
             &c.validation_scores,
             val_y,
             &c.validation_summary,
-        )?;
+        )];
+        if let Some(test) = test {
+            splits.push((
+                Part::Test,
+                &test.scores[chosen],
+                &test.labels,
+                &test.summaries[chosen],
+            ));
+        }
+        let mut facts = match &rows.held {
+            Held::Rows => splits
+                .iter()
+                .map(|&(_, scores, labels, _)| plots::ScoreFacts::of(scores, labels, tau))
+                .collect(),
+            Held::Engine(e) => {
+                let asked: Vec<(Part, &crate::summary::Summary)> =
+                    splits.iter().map(|&(p, _, _, s)| (p, s)).collect();
+                e.facts(&asked, c.set, c.model.as_ref(), tau)?
+            }
+        }
+        .into_iter();
+        let val_cuts = crate::summary::curve(&c.validation_summary);
+        let val_facts = facts
+            .next()
+            .ok_or_else(|| Error::internal("no validation figures' facts"))?;
         let val = plots::SplitFigures {
             split: Part::Validation.name(),
             facts: &val_facts,
@@ -316,12 +332,9 @@ pub(crate) fn artifacts(
         let mut figures = vec![];
         if let Some(test) = test {
             let test_cuts = crate::summary::curve(&test.summaries[chosen]);
-            let test_facts = facts(
-                Part::Test,
-                &test.scores[chosen],
-                &test.labels,
-                &test.summaries[chosen],
-            )?;
+            let test_facts = facts
+                .next()
+                .ok_or_else(|| Error::internal("no test figures' facts"))?;
             let t = plots::SplitFigures {
                 split: Part::Test.name(),
                 facts: &test_facts,
