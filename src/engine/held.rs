@@ -136,10 +136,7 @@ impl HeldOnEngine {
                     int64s(b, 2)?,
                 );
                 for i in 0..b.num_rows() {
-                    let k = parts
-                        .iter()
-                        .position(|&q| q as i8 == part.value(i))
-                        .ok_or_else(|| Error::internal("order statistics of a split not asked"))?;
+                    let k = index_of(parts, part.value(i))?;
                     *groups[k].entry(p.value(i)).or_default() += n.value(i) as u64;
                 }
             }
@@ -267,10 +264,7 @@ impl HeldOnEngine {
             let a = super::column::<datafusion::arrow::array::BooleanArray>(b, 1)?;
             let (bin, n) = (super::column::<Int64Array>(b, 2)?, int64s(b, 3)?);
             for i in 0..b.num_rows() {
-                let k = parts
-                    .iter()
-                    .position(|&q| q as i8 == part.value(i))
-                    .ok_or_else(|| Error::internal("histogram bins of a split not asked"))?;
+                let k = index_of(&parts, part.value(i))?;
                 let class = &mut classes[k][usize::from(a.value(i))];
                 let n = n.value(i) as u64;
                 match usize::try_from(bin.value(i)) {
@@ -410,6 +404,15 @@ impl HeldOnEngine {
             Error::internal("the engine's calibration scores do not fit their count")
         })
     }
+}
+
+/// Where the split of an engine's `part` value stands among `parts` (the
+/// splits a query asked about).
+fn index_of(parts: &[Part], part: i8) -> Result<usize> {
+    parts
+        .iter()
+        .position(|&p| p as i8 == part)
+        .ok_or_else(|| Error::internal(format!("an answer for split {part}, not asked for")))
 }
 
 /// One pass of [`HeldOnEngine::order_statistics`] for one split: each
@@ -911,11 +914,16 @@ mod tests {
             validation_manifest: String::new(),
             ids: false,
         };
-        for p in [Part::Validation, Part::Test] {
+        // Each split's scores and labels in memory.
+        let in_memory = |p: Part| {
             let rows: Vec<usize> = (0..n).filter(|&i| part[i] == p as i8).collect();
             let xs = ndarray::Array2::from_shape_fn((rows.len(), 1), |(i, _)| x[rows[i]]);
             let scores = crate::detect::score_in_blocks(model.as_ref(), xs.view(), 8192);
             let labels: Vec<bool> = rows.iter().map(|&i| a[i]).collect();
+            (scores, labels)
+        };
+        for p in [Part::Validation, Part::Test] {
+            let (scores, labels) = in_memory(p);
             assert!(scores.iter().any(|s| s.is_infinite()));
             assert!(scores
                 .iter()
@@ -965,10 +973,7 @@ mod tests {
         let mut summaries = Vec::new();
         let mut want = Vec::new();
         for p in [Part::Test, Part::Validation] {
-            let rows: Vec<usize> = (0..n).filter(|&i| part[i] == p as i8).collect();
-            let xs = ndarray::Array2::from_shape_fn((rows.len(), 1), |(i, _)| x[rows[i]]);
-            let scores = crate::detect::score_in_blocks(model.as_ref(), xs.view(), 8192);
-            let labels: Vec<bool> = rows.iter().map(|&i| a[i]).collect();
+            let (scores, labels) = in_memory(p);
             summaries.push((p, held.summary("c", p, 0, model.as_ref(), &[tau]).unwrap()));
             want.push(ScoreFacts::of(&scores, &labels, tau));
         }
