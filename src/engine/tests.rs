@@ -175,11 +175,8 @@ struct Outcome {
     summary: Summary,
 }
 
-async fn run_steps(x: &Array2<f64>, a: &[bool], seed: u64, p: usize, b: usize) -> Outcome {
-    let ctx = session(x, a, p, b).await;
-    let cuts = split_cuts(&ctx, "hashed", Seed(seed), &fractions())
-        .await
-        .unwrap();
+/// The view `assigned`: the rows of `hashed`, each with its split by `cuts`.
+async fn assign(ctx: &SessionContext, cuts: &SplitCuts) {
     ctx.sql(&format!(
         "CREATE VIEW assigned AS SELECT *, {}({}, h, a) AS part FROM hashed",
         functions::SPLIT,
@@ -187,6 +184,14 @@ async fn run_steps(x: &Array2<f64>, a: &[bool], seed: u64, p: usize, b: usize) -
     ))
     .await
     .unwrap();
+}
+
+async fn run_steps(x: &Array2<f64>, a: &[bool], seed: u64, p: usize, b: usize) -> Outcome {
+    let ctx = session(x, a, p, b).await;
+    let cuts = split_cuts(&ctx, "hashed", Seed(seed), &fractions())
+        .await
+        .unwrap();
+    assign(&ctx, &cuts).await;
     let mut parts = Vec::new();
     for batch in read(&ctx, "SELECT h, part FROM assigned").await {
         let h = column::<FixedSizeBinaryArray>(&batch, 0).unwrap();
@@ -328,13 +333,7 @@ fn the_split_is_exact_at_cuts_inside_duplicate_runs() {
                 assert!(got == want, "{n} rows, {p} partitions");
                 // The one-pass check of the assigned rows: the in-process
                 // counts and repeated rows, and no leakage.
-                ctx.sql(&format!(
-                    "CREATE VIEW assigned AS SELECT *, {}({}, h, a) AS part FROM hashed",
-                    functions::SPLIT,
-                    sql_bytes(&cuts.to_bytes())
-                ))
-                .await
-                .unwrap();
+                assign(&ctx, &cuts).await;
                 let check = split_check(&ctx, "assigned").await.unwrap();
                 assert!(splits.report.rows_with_duplicates > 0);
                 assert_eq!(
