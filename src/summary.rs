@@ -81,6 +81,11 @@ impl Gap {
     }
 }
 
+/// One row of an engine's counts for a summary: (interval code,
+/// is an anomaly, rows, lowest score, highest score), the input of
+/// [`Summary::from_counts`].
+pub type CodeCount = (i64, bool, u64, f64, f64);
+
 /// The evaluation summary of one split's scores and labels (module docs).
 #[derive(Debug, Clone)]
 pub struct Summary {
@@ -195,7 +200,7 @@ impl Summary {
     /// code beyond the cut points. Rows on a cut point count as anomalies or
     /// tied normal rows, rows in a gap in its count and extremes, as
     /// [`Summary::with_cut_points`] counts them.
-    pub fn from_counts(values: Vec<f64>, counts: &[(i64, bool, u64, f64, f64)]) -> Option<Self> {
+    pub fn from_counts(values: Vec<f64>, counts: &[CodeCount]) -> Option<Self> {
         let m = values.len();
         let mut s = Summary {
             values,

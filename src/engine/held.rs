@@ -30,7 +30,7 @@ use crate::data::SourceFile;
 use crate::detect::{Model, Params};
 use crate::error::{Error, Result};
 use crate::part::Part;
-use crate::protocol::held::HeldSplits;
+use crate::protocol::held::{Asked, HeldSplits};
 use crate::summary::Summary;
 
 /// The held splits of an engine run: the session (and the runtime that
@@ -165,18 +165,22 @@ impl HeldOnEngine {
             .collect())
     }
 
-    async fn summary_async(
+    /// The summaries of split `part` under each (candidate name, score
+    /// expression, extra cut points) of `asked`, in the same two passes; a
+    /// score that is not a number is refused as in process, for the first
+    /// candidate asked that has one, naming its first such row.
+    async fn summaries_async(
         &self,
-        name: &str,
         part: Part,
-        score: &str,
-        extra: &[f64],
-    ) -> Result<Summary> {
-        if let Some(s) = super::summary(&self.ctx, "assigned", score, part as i8, extra).await? {
-            return Ok(s);
-        }
-        // A score that is not a number, refused as in process: the first in
-        // the split's canonical (content hash, row) order.
+        asked: &[(&str, String, &[f64])],
+    ) -> Result<Vec<Summary>> {
+        let scores: Vec<(&str, &[f64])> = asked.iter().map(|(_, s, e)| (s.as_str(), *e)).collect();
+        let j = match super::summaries(&self.ctx, "assigned", part as i8, &scores).await? {
+            super::Summaries::All(all) => return Ok(all),
+            super::Summaries::NotANumber(j) => j,
+        };
+        let (name, score, _) = &asked[j];
+        // The first such row in the split's canonical (content hash, row) order.
         let nan = collect(
             &self.ctx,
             "checking the scores",
@@ -201,7 +205,7 @@ impl HeldOnEngine {
                 message: format!("the score of {at} is not a number"),
                 features: vec![],
             }
-            .in_candidate(name));
+            .in_candidate(*name));
         }
         Err(Error::internal("a score not a number, then not found"))
     }
@@ -772,16 +776,12 @@ impl HeldSplits for HeldOnEngine {
         &self.validation_manifest
     }
 
-    fn summary(
-        &self,
-        name: &str,
-        part: Part,
-        set: usize,
-        model: &dyn Model,
-        extra: &[f64],
-    ) -> Result<Summary> {
-        let score = self.score_sql(set, model)?;
-        self.wait(self.summary_async(name, part, &score, extra))
+    fn summaries(&self, part: Part, asked: &[Asked<'_>]) -> Result<Vec<Summary>> {
+        let scored: Vec<(&str, String, &[f64])> = asked
+            .iter()
+            .map(|a| Ok((a.name, self.score_sql(a.set, a.model)?, a.extra)))
+            .collect::<Result<_>>()?;
+        self.wait(self.summaries_async(part, &scored))
     }
 
     fn facts(
@@ -841,6 +841,17 @@ mod tests {
     use datafusion::datasource::MemTable;
 
     use super::*;
+
+    /// The summary of one candidate (named `c`, feature set 0) of `part`.
+    fn one(held: &HeldOnEngine, part: Part, model: &dyn Model, extra: &[f64]) -> Result<Summary> {
+        let asked = Asked {
+            name: "c",
+            set: 0,
+            model,
+            extra,
+        };
+        Ok(held.summaries(part, &[asked])?.remove(0))
+    }
 
     /// The columns of the `assigned` view the held splits' questions read
     /// (one feature), for tables made in the tests.
@@ -928,11 +939,11 @@ mod tests {
             assert!(scores
                 .iter()
                 .any(|s| s.is_finite() && !plots::within_axis_limit(*s)));
-            let got = held.summary("c", p, 0, model.as_ref(), &[]).unwrap();
+            let got = one(&held, p, model.as_ref(), &[]).unwrap();
             assert!(got == Summary::new(&scores, &labels, &[]), "{p:?}");
             // τ a cut point, and a τ the summary must be told of.
             for tau in [scores[labels.iter().position(|&y| y).unwrap()], 3.0] {
-                let s = held.summary("c", p, 0, model.as_ref(), &[tau]).unwrap();
+                let s = one(&held, p, model.as_ref(), &[tau]).unwrap();
                 assert!(s == Summary::new(&scores, &labels, &[tau]));
                 let facts = held.facts(&[(p, &s)], 0, model.as_ref(), tau).unwrap();
                 assert_eq!(
@@ -974,7 +985,7 @@ mod tests {
         let mut want = Vec::new();
         for p in [Part::Test, Part::Validation] {
             let (scores, labels) = in_memory(p);
-            summaries.push((p, held.summary("c", p, 0, model.as_ref(), &[tau]).unwrap()));
+            summaries.push((p, one(&held, p, model.as_ref(), &[tau]).unwrap()));
             want.push(ScoreFacts::of(&scores, &labels, tau));
         }
         let asked: Vec<(Part, &Summary)> = summaries.iter().map(|(p, s)| (*p, s)).collect();
@@ -1035,17 +1046,18 @@ mod tests {
         }
         .model(&["x0".to_string()])
         .unwrap();
-        let e = held
-            .summary(
-                "pumps/independent-gaussian",
-                Part::Validation,
-                0,
-                model.as_ref(),
-                &[],
-            )
-            .unwrap_err();
+        // Two candidates asked together, both meeting the row: the first
+        // in the order asked is named.
+        let asked = ["pumps/independent-gaussian", "pumps/second"].map(|name| Asked {
+            name,
+            set: 0,
+            model: model.as_ref(),
+            extra: &[],
+        });
+        let e = held.summaries(Part::Validation, &asked).unwrap_err();
         let text = e.to_string();
         assert!(text.contains("pumps/independent-gaussian"), "{text}");
+        assert!(!text.contains("pumps/second"), "{text}");
         assert!(
             text.contains("the score of data.csv line 5 is not a number"),
             "{text}"

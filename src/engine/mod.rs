@@ -606,11 +606,8 @@ pub async fn manifests_of<const N: usize>(
 
 /// The evaluation summary of the scores in column `score` of the rows of
 /// `table` in split `part`, with the distinct anomaly scores and `extra`
-/// as cut points (`Summary::new`'s definition): one pass collects the
-/// anomaly scores (and any score that is not a number), one counts the
-/// rows per cut point and gap (with each gap's lowest and highest score in
-/// `total_cmp` order). `None` when a score of the split is not a number:
-/// the caller names the row.
+/// as cut points: [`summaries`] of one score. `None` when a score of the
+/// split is not a number: the caller names the row.
 pub async fn summary(
     ctx: &SessionContext,
     table: &str,
@@ -618,53 +615,139 @@ pub async fn summary(
     part: i8,
     extra: &[f64],
 ) -> Result<Option<Summary>> {
+    Ok(
+        match summaries(ctx, table, part, &[(score, extra)]).await? {
+            Summaries::All(mut all) => all.pop(),
+            Summaries::NotANumber(_) => None,
+        },
+    )
+}
+
+/// What [`summaries`] found.
+#[derive(Debug)]
+pub enum Summaries {
+    /// Each score's summary, in the order asked.
+    All(Vec<Summary>),
+    /// The first score asked (by its index) with a value that is not a
+    /// number in the split: the caller names the row.
+    NotANumber(usize),
+}
+
+/// The evaluation summaries of the rows of `table` in split `part` under
+/// each score expression of `asked` (with its `extra` cut points beside the
+/// distinct anomaly scores: `Summary::new`'s definition), in two passes over
+/// the rows whatever the number of scores: one collects every score of the
+/// anomalies (and any score that is not a number), one counts the rows per
+/// cut point and gap of each score (with each gap's lowest and highest
+/// score in `total_cmp` order), one grouping set per score.
+pub async fn summaries(
+    ctx: &SessionContext,
+    table: &str,
+    part: i8,
+    asked: &[(&str, &[f64])],
+) -> Result<Summaries> {
     let doing = "summarising the scores";
+    if asked.is_empty() {
+        return Ok(Summaries::All(Vec::new()));
+    }
+    let k = asked.len();
+    let scores: Vec<String> = asked
+        .iter()
+        .enumerate()
+        .map(|(j, (score, _))| format!("{score} AS s{j}"))
+        .collect();
+    let s_list: Vec<String> = (0..k).map(|j| format!("s{j}")).collect();
+    let nan_any: Vec<String> = (0..k).map(|j| format!("isnan(s{j})")).collect();
+    let scored = format!(
+        "SELECT a, {} FROM {table} WHERE part = {part}",
+        scores.join(", ")
+    );
     let rows = collect(
         ctx,
         doing,
         &format!(
-            "SELECT s FROM (SELECT a, {score} AS s FROM {table} WHERE part = {part}) \
-             WHERE a OR isnan(s)"
+            "SELECT a, {} FROM ({scored}) WHERE a OR {}",
+            s_list.join(", "),
+            nan_any.join(" OR ")
         ),
     )
     .await?;
-    let mut anomalies = Vec::new();
+    let mut anomalies: Vec<Vec<f64>> = vec![Vec::new(); k];
+    let mut nan = vec![false; k];
     for b in &rows {
-        let s = column::<datafusion::arrow::array::Float64Array>(b, 0)?;
-        anomalies.extend(s.values().iter().copied());
+        let a = column::<BooleanArray>(b, 0)?;
+        for (j, (an, bad)) in anomalies.iter_mut().zip(nan.iter_mut()).enumerate() {
+            let s = column::<datafusion::arrow::array::Float64Array>(b, j + 1)?;
+            for i in 0..b.num_rows() {
+                let v = s.value(i);
+                *bad |= v.is_nan();
+                if a.value(i) {
+                    an.push(v);
+                }
+            }
+        }
     }
-    if anomalies.iter().any(|s| s.is_nan()) {
-        return Ok(None);
+    if let Some(j) = nan.iter().position(|&n| n) {
+        return Ok(Summaries::NotANumber(j));
     }
-    // The cut points exactly as `Summary::new` makes them.
-    let flags = vec![true; anomalies.len()];
-    let cut_points = Summary::new(&anomalies, &flags, extra)
-        .cut_points()
-        .to_vec();
+    // Each score's cut points exactly as `Summary::new` makes them.
+    let cut_points: Vec<Vec<f64>> = anomalies
+        .iter()
+        .zip(asked)
+        .map(|(an, (_, extra))| {
+            let flags = vec![true; an.len()];
+            Summary::new(an, &flags, extra).cut_points().to_vec()
+        })
+        .collect();
+    let coded: Vec<String> = cut_points
+        .iter()
+        .enumerate()
+        .map(|(j, cuts)| {
+            format!(
+                "{i}({cuts}, s{j}) AS c{j}, {o}(s{j}) AS k{j}",
+                i = functions::INTERVAL,
+                o = functions::ORDER_KEY,
+                cuts = sql_bytes(&functions::le_bytes(cuts))
+            )
+        })
+        .collect();
+    let aggregates: Vec<String> = (0..k).map(|j| format!("MIN(k{j}), MAX(k{j})")).collect();
+    let sets: Vec<String> = (0..k).map(|j| format!("(c{j}, a)")).collect();
+    let c_list: Vec<String> = (0..k).map(|j| format!("c{j}")).collect();
     let rows = collect(
         ctx,
         doing,
         &format!(
-            "SELECT c, a, COUNT(*), MIN(k), MAX(k) FROM (SELECT {i}({cuts}, {score}) AS c, a, \
-             {o}({score}) AS k FROM {table} WHERE part = {part}) GROUP BY c, a",
-            i = functions::INTERVAL,
-            o = functions::ORDER_KEY,
-            cuts = sql_bytes(&functions::le_bytes(&cut_points))
+            "SELECT {}, a, COUNT(*), {} FROM (SELECT a, {} FROM ({scored})) GROUP BY GROUPING \
+             SETS ({})",
+            c_list.join(", "),
+            aggregates.join(", "),
+            coded.join(", "),
+            sets.join(", ")
         ),
     )
     .await?;
-    let mut counts = Vec::new();
+    // A row of grouping set j has its code in column j and no other.
+    let mut counts: Vec<Vec<crate::summary::CodeCount>> = vec![Vec::new(); k];
     for b in &rows {
-        let (c, a, n, lo, hi) = (
-            column::<Int64Array>(b, 0)?,
-            column::<BooleanArray>(b, 1)?,
-            column::<Int64Array>(b, 2)?,
-            column::<Int64Array>(b, 3)?,
-            column::<Int64Array>(b, 4)?,
+        let codes: Vec<&Int64Array> = (0..k)
+            .map(|j| column::<Int64Array>(b, j))
+            .collect::<Result<_>>()?;
+        let (a, n) = (
+            column::<BooleanArray>(b, k)?,
+            column::<Int64Array>(b, k + 1)?,
         );
         for i in 0..b.num_rows() {
-            counts.push((
-                c.value(i),
+            let mut sets = (0..k).filter(|&j| !codes[j].is_null(i));
+            let (Some(j), None) = (sets.next(), sets.next()) else {
+                return Err(Error::internal("a summary row of no single grouping set"));
+            };
+            let (lo, hi) = (
+                column::<Int64Array>(b, k + 2 + 2 * j)?,
+                column::<Int64Array>(b, k + 3 + 2 * j)?,
+            );
+            counts[j].push((
+                codes[j].value(i),
                 a.value(i),
                 n.value(i) as u64,
                 functions::from_order_key(lo.value(i)),
@@ -672,9 +755,15 @@ pub async fn summary(
             ));
         }
     }
-    Summary::from_counts(cut_points, &counts)
-        .map(Some)
-        .ok_or_else(|| Error::internal("an interval code beyond the summary's cut points"))
+    cut_points
+        .into_iter()
+        .zip(counts)
+        .map(|(cuts, counts)| {
+            Summary::from_counts(cuts, &counts)
+                .ok_or_else(|| Error::internal("an interval code beyond the summary's cut points"))
+        })
+        .collect::<Result<_>>()
+        .map(Summaries::All)
 }
 
 /// Creates the view `name` over the table `source`: the column `a` (true

@@ -448,7 +448,26 @@ fn the_summary_of_no_anomaly_and_extreme_scores() {
                 .unwrap();
             let got = summary(&ctx, &format!("nan{k}"), "s", 1, &[0.5]).await;
             assert!(got.unwrap().is_none(), "NaN in row {k}");
+            // Among several scores, the first that holds it is named.
+            let asked: [(&str, &[f64]); 2] = [("CAST(1.0 AS DOUBLE)", &[]), ("s", &[])];
+            let got = summaries(&ctx, &format!("nan{k}"), 1, &asked)
+                .await
+                .unwrap();
+            assert!(matches!(got, Summaries::NotANumber(1)), "{got:?}");
         }
+        // Several scores in the same two passes: each its own summary, with
+        // its own extra cut points.
+        let twice: Vec<f64> = scores.iter().map(|x| x * 2.0).collect();
+        let negated: Vec<f64> = scores.iter().map(|x| 0.0 - x).collect();
+        let asked: [(&str, &[f64]); 3] =
+            [("s", &[0.5]), ("s * 2.0", &[]), ("0.0 - s", &[1.0, -7.0])];
+        let Summaries::All(got) = summaries(&ctx, "t", 1, &asked).await.unwrap() else {
+            panic!("no score here is NaN");
+        };
+        assert_eq!(got.len(), 3);
+        assert!(got[0] == want);
+        assert!(got[1] == Summary::new(&twice, &labels, &[]));
+        assert!(got[2] == Summary::new(&negated, &labels, &[1.0, -7.0]));
     });
 }
 

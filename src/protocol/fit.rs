@@ -3,7 +3,7 @@
 //! threshold by the policy, with its validation metrics. Nothing here sees
 //! the test split.
 
-use super::held::Held;
+use super::held::{Asked, Held};
 use super::ingest::Rows;
 use super::train::{self, SetTraining};
 use crate::detect::{self, Model};
@@ -85,18 +85,19 @@ pub(crate) fn candidates(
             "fitting and thresholding {}",
             names_shown.join(", ")
         ));
-        let one = |(&kind, name): (&DetectorKind, String)| {
-            candidate(plan, rows, &training, (si, kind, name), &val_y, beta)
-        };
-        let built: Vec<Result<Candidate>> = if rows.held.on_engine() {
-            plan.detectors.iter().zip(names_shown).map(one).collect()
-        } else {
-            use rayon::prelude::*;
-            plan.detectors
-                .par_iter()
-                .zip(names_shown)
-                .map(one)
-                .collect()
+        let built: Vec<Result<Candidate>> = match &rows.held {
+            Held::Engine(e) => on_engine(plan, e.as_ref(), &training, si, names_shown, beta)
+                .map_or_else(|e| vec![Err(e)], |all| all.into_iter().map(Ok).collect()),
+            Held::Rows => {
+                use rayon::prelude::*;
+                plan.detectors
+                    .par_iter()
+                    .zip(names_shown)
+                    .map(|(&kind, name)| {
+                        candidate(plan, rows, &training, (si, kind, name), &val_y, beta)
+                    })
+                    .collect()
+            }
         };
         drop(stage);
         for c in built {
@@ -112,8 +113,9 @@ pub(crate) fn candidates(
     })
 }
 
-/// One candidate: fitted (or, for an external command, run once on the
-/// training and validation rows), scored on validation, thresholded.
+/// One candidate of rows in memory: fitted (or, for an external command,
+/// run once on the training and validation rows), scored on validation,
+/// thresholded.
 fn candidate(
     plan: &Plan,
     rows: &Rows,
@@ -137,59 +139,130 @@ fn candidate(
         )
         .map_err(|e| in_set(e, set))?
     } else {
-        let t = crate::progress::part("fitting");
-        let model = training.fit(kind).map_err(|e| in_set(e, set))?;
-        drop(t);
+        let model = fit(plan, training, si, kind)?;
         let t = crate::progress::part("validation scores");
-        let validation_scores = match &rows.held {
-            Held::Rows => train::checked_scores(
-                &name,
-                model.as_ref(),
-                (fitted, &training.validation),
-                &rows.validation,
-                &rows.data,
-            )?,
-            Held::Engine(_) => Vec::new(),
-        };
+        let validation_scores = train::checked_scores(
+            &name,
+            model.as_ref(),
+            (fitted, &training.validation),
+            &rows.validation,
+            &rows.data,
+        )?;
         drop(t);
         (model, validation_scores)
     };
-    let (validation_summary, choice) = match &rows.held {
-        Held::Rows => {
-            let t = crate::progress::part("summary");
-            let mut validation_summary = Summary::new(&validation_scores, val_y, &[]);
-            drop(t);
-            let t = crate::progress::part("threshold");
-            let choice = threshold::choose_summary(
-                plan.threshold,
-                &validation_scores,
-                val_y,
-                &validation_summary,
-            );
-            // A τ set in advance (a fixed policy) becomes a cut point.
-            if validation_summary.confusion_at(choice.tau).is_none() {
-                validation_summary = Summary::new(&validation_scores, val_y, &[choice.tau]);
+    let t = crate::progress::part("summary");
+    let mut validation_summary = Summary::new(&validation_scores, val_y, &[]);
+    drop(t);
+    let t = crate::progress::part("threshold");
+    let choice = threshold::choose_summary(
+        plan.threshold,
+        &validation_scores,
+        val_y,
+        &validation_summary,
+    );
+    // A τ set in advance (a fixed policy) becomes a cut point.
+    if validation_summary.confusion_at(choice.tau).is_none() {
+        validation_summary = Summary::new(&validation_scores, val_y, &[choice.tau]);
+    }
+    drop(t);
+    let scored = (model, validation_scores, validation_summary);
+    finish((si, kind, name), scored, choice, beta, plan)
+}
+
+/// The candidate of detector `kind` on feature set `si`, fitted on the
+/// training data.
+fn fit(
+    plan: &Plan,
+    training: &SetTraining<'_>,
+    si: usize,
+    kind: DetectorKind,
+) -> Result<Box<dyn Model>> {
+    let _t = crate::progress::part("fitting");
+    training
+        .fit(kind)
+        .map_err(|e| in_set(e, &plan.feature_sets[si]))
+}
+
+/// The candidates of feature set `si` on an engine, in spec order: each
+/// fitted, then their validation summaries made where the rows are, all in
+/// the same passes (a fixed τ that no summary counts asked again, of those
+/// candidates together), and each thresholded from its summary alone (the
+/// conformal policy is refused at the scope). The first failure in spec
+/// order is the one reported, as in memory.
+fn on_engine(
+    plan: &Plan,
+    e: &dyn super::held::HeldSplits,
+    training: &SetTraining<'_>,
+    si: usize,
+    names: Vec<String>,
+    beta: Option<f64>,
+) -> Result<Vec<Candidate>> {
+    // Fitted up to the first that fails; those before it are summarised
+    // first, since a refusal of theirs comes first in spec order.
+    let mut models = Vec::new();
+    let mut failed = None;
+    for &kind in &plan.detectors {
+        match fit(plan, training, si, kind) {
+            Ok(m) => models.push(m),
+            Err(err) => {
+                failed = Some(err);
+                break;
             }
-            drop(t);
-            (validation_summary, choice)
         }
-        Held::Engine(e) => {
-            // The same summaries made where the rows are: the choice reads
-            // the summary alone (the conformal policy is refused at the scope).
-            let _t = crate::progress::part("summary on the engine");
-            let part = crate::part::Part::Validation;
-            let mut s = e.summary(&name, part, si, model.as_ref(), &[])?;
-            if let Some(tau) = threshold::fixed_tau(plan.threshold) {
-                if s.confusion_at(tau).is_none() {
-                    s = e.summary(&name, part, si, model.as_ref(), &[tau])?;
-                }
-            }
+    }
+    let _t = crate::progress::part("summary on the engine");
+    let part = crate::part::Part::Validation;
+    let ask = |which: &[usize], extra: &[f64]| -> Result<Vec<Summary>> {
+        let asked: Vec<Asked<'_>> = which
+            .iter()
+            .map(|&k| Asked {
+                name: &names[k],
+                set: si,
+                model: models[k].as_ref(),
+                extra,
+            })
+            .collect();
+        e.summaries(part, &asked)
+    };
+    let all: Vec<usize> = (0..models.len()).collect();
+    let mut summaries = ask(&all, &[])?;
+    if let Some(tau) = threshold::fixed_tau(plan.threshold) {
+        let again: Vec<usize> = all
+            .iter()
+            .copied()
+            .filter(|&k| summaries[k].confusion_at(tau).is_none())
+            .collect();
+        for (k, s) in again.iter().zip(ask(&again, &[tau])?) {
+            summaries[*k] = s;
+        }
+    }
+    if let Some(err) = failed {
+        return Err(err);
+    }
+    drop(_t);
+    models
+        .into_iter()
+        .zip(summaries)
+        .zip(plan.detectors.iter().zip(names))
+        .map(|((model, s), (&kind, name))| {
             let choice = threshold::choose_on_summary(plan.threshold, &s).ok_or_else(|| {
                 Error::internal("a threshold policy an engine cannot choose from a summary")
             })?;
-            (s, choice)
-        }
-    };
+            finish((si, kind, name), (model, Vec::new(), s), choice, beta, plan)
+        })
+        .collect()
+}
+
+/// A candidate from its model, validation scores (none on an engine),
+/// summary and threshold: its validation metrics, the bootstrap started.
+fn finish(
+    (si, kind, name): (usize, DetectorKind, String),
+    (model, validation_scores, validation_summary): (Box<dyn Model>, Vec<f64>, Summary),
+    choice: Choice,
+    beta: Option<f64>,
+    plan: &Plan,
+) -> Result<Candidate> {
     let t = crate::progress::part("validation metrics");
     let (validation, validation_intervals) =
         metrics_of(&validation_summary, choice.tau, beta, plan)?;

@@ -43,6 +43,19 @@ impl Held {
     }
 }
 
+/// One candidate whose summary is asked of [`HeldSplits::summaries`].
+#[derive(Clone, Copy)]
+pub struct Asked<'a> {
+    /// Its name, for a refusal.
+    pub name: &'a str,
+    /// Its feature set's index.
+    pub set: usize,
+    /// Its fitted model.
+    pub model: &'a dyn Model,
+    /// Cut points beside its distinct anomaly scores (a τ to count).
+    pub extra: &'a [f64],
+}
+
 /// The held splits on an engine: each method scores the rows of a split
 /// (validation or test) with a fitted candidate of feature set `set` (its
 /// parameters carried to the engine) and returns a summary of the scores.
@@ -50,19 +63,13 @@ pub trait HeldSplits: Send + Sync {
     /// The validation split's manifest hash (computed where its rows are).
     fn validation_manifest(&self) -> &str;
 
-    /// The evaluation summary of `part`'s scores under `model` (of the
-    /// candidate `name`, named in a refusal), with the
-    /// distinct anomaly scores and `extra` as cut points
-    /// (`Summary::new`'s definition); a score that is not a number is
-    /// refused, naming its row, as for rows in memory.
-    fn summary(
-        &self,
-        name: &str,
-        part: Part,
-        set: usize,
-        model: &dyn Model,
-        extra: &[f64],
-    ) -> Result<Summary>;
+    /// The evaluation summary of `part`'s scores under each candidate of
+    /// `asked`, with its distinct anomaly scores and its `extra` as cut
+    /// points (`Summary::new`'s definition), in order: the candidates
+    /// together, so that each question is one pass over the rows. A score
+    /// that is not a number is refused, naming its candidate (the first in
+    /// `asked` that has one) and its row, as for rows in memory.
+    fn summaries(&self, part: Part, asked: &[Asked<'_>]) -> Result<Vec<Summary>>;
 
     /// The score figures' facts of each split of `splits` under `model` at
     /// τ, each with its evaluation summary (τ countable in it), in order:

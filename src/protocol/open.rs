@@ -8,7 +8,7 @@
 use std::time::SystemTime;
 
 use super::choose::Chosen;
-use super::held::Held;
+use super::held::{Asked, Held};
 use super::ingest::Rows;
 use super::train::{self, SplitFeatures};
 use crate::audit::ledger;
@@ -136,19 +136,19 @@ pub(crate) fn test(
         // Each candidate's test summary made where the rows are, with its
         // τ as a cut point, as below from the scores.
         let _t = crate::progress::part("test summaries on the engine");
-        let summaries: Vec<Summary> = fitted
+        let taus: Vec<[f64; 1]> = fitted.candidates.iter().map(|c| [c.choice.tau]).collect();
+        let asked: Vec<Asked<'_>> = fitted
             .candidates
             .iter()
-            .map(|c| {
-                e.summary(
-                    &c.name,
-                    Part::Test,
-                    c.set,
-                    c.model.as_ref(),
-                    &[c.choice.tau],
-                )
+            .zip(&taus)
+            .map(|(c, tau)| Asked {
+                name: &c.name,
+                set: c.set,
+                model: c.model.as_ref(),
+                extra: tau,
             })
-            .collect::<Result<_>>()?;
+            .collect();
+        let summaries: Vec<Summary> = e.summaries(Part::Test, &asked)?;
         let scores = vec![Vec::new(); summaries.len()];
         return finish(
             plan, chosen, opened, labels, scores, summaries, openings, warnings,

@@ -916,18 +916,17 @@ fn pump_housing_csv(dir: &Path, edit: impl Fn(String) -> String) {
     assert_eq!(code, 0, "{stderr}");
 }
 
-/// A CSV source on `--engine local`: its numbers read by the library's
-/// parser give the in-memory run byte for byte; a value that is not a
-/// number is refused with the in-memory run's error and exit code (3, the
-/// file, the column, the value and its lines), nothing written, on
-/// `--engine local` and on a cluster alike.
-#[test]
-fn a_csv_on_an_engine_reads_numbers_as_in_memory() {
-    let top = tempfile::tempdir().unwrap();
-    let (memory, local) = (top.path().join("memory"), top.path().join("local"));
+/// The example on its CSV with its spec edited by `spec`, run in memory
+/// and on `--engine local` (in `top/memory` and `top/local`): the same run
+/// directory but for run.json's engine line, and the scores as the
+/// engine's Parquet parts holding scores.csv's rows value for value.
+fn same_run_in_memory_and_local(top: &Path, spec: impl Fn(String) -> String) {
+    let (memory, local) = (top.join("memory"), top.join("local"));
     for d in [&memory, &local] {
         std::fs::create_dir_all(d).unwrap();
         pump_housing_csv(d, |t| t);
+        let text = std::fs::read_to_string(d.join("spec.yaml")).unwrap();
+        std::fs::write(d.join("spec.yaml"), spec(text)).unwrap();
     }
     for f in ["key.pem", "key.pub.pem"] {
         std::fs::copy(memory.join(f), local.join(f)).unwrap();
@@ -954,7 +953,29 @@ fn a_csv_on_an_engine_reads_numbers_as_in_memory() {
             assert!(got.get(name) == Some(bytes), "{name} differs");
         }
     }
+}
 
+/// A fixed τ that no validation summary counts: the engine asks the
+/// candidates' summaries again with τ as a cut point, together, and the
+/// run is the in-memory one.
+#[test]
+fn a_fixed_threshold_on_an_engine_is_the_in_memory_run() {
+    let top = tempfile::tempdir().unwrap();
+    same_run_in_memory_and_local(top.path(), |spec| {
+        assert!(spec.contains("threshold: max-f1"));
+        spec.replace("threshold: max-f1", "threshold: {fixed: {tau: 21.37}}")
+    });
+}
+
+/// A CSV source on `--engine local`: its numbers read by the library's
+/// parser give the in-memory run byte for byte; a value that is not a
+/// number is refused with the in-memory run's error and exit code (3, the
+/// file, the column, the value and its lines), nothing written, on
+/// `--engine local` and on a cluster alike.
+#[test]
+fn a_csv_on_an_engine_reads_numbers_as_in_memory() {
+    let top = tempfile::tempdir().unwrap();
+    same_run_in_memory_and_local(top.path(), |spec| spec);
     // Two values of `die_temp_c` that are not numbers (lines 5 and 9; one
     // with spaces around it, shown trimmed), and one in another column
     // later (line 12): the first column's are named.
