@@ -211,7 +211,7 @@ fn on_engine(
             }
         }
     }
-    let _t = crate::progress::part("summary on the engine");
+    let t = crate::progress::part("summary on the engine");
     let part = crate::part::Part::Validation;
     let ask = |which: &[usize], extra: &[f64]| -> Result<Vec<Summary>> {
         let asked: Vec<Asked<'_>> = which
@@ -240,7 +240,7 @@ fn on_engine(
     if let Some(err) = failed {
         return Err(err);
     }
-    drop(_t);
+    drop(t);
     models
         .into_iter()
         .zip(summaries)
