@@ -54,6 +54,11 @@ pub const ORDER_KEY: &str = "anomark_order_key";
 pub const AXIS_PREFIX: &str = "anomark_axis_prefix";
 /// `anomark_bin(range, s)`: [`score_bin`] of each score.
 pub const BIN: &str = "anomark_bin";
+/// `anomark_among(set, x)`: whether each integer `x` is one of `set`
+/// ([`i64_le_bytes`] of integers sorted ascending; null for a null `x`):
+/// one literal however many integers, where `x IN (…)` carries one plan
+/// node per value to every task.
+pub const AMONG: &str = "anomark_among";
 /// `anomark_score_row(part, f, r, a, s1, …)`: `audit::hash::score_row`.
 pub const SCORE_ROW: &str = "anomark_score_row";
 /// `anomark_write_scores(dir, names, g, part, f, r, a, s1, …)`: writes a
@@ -135,6 +140,11 @@ pub(crate) fn literal_bytes<'a>(v: &'a ColumnarValue, what: &str) -> Result<&'a 
 /// The little-endian bytes of floats.
 pub(crate) fn le_bytes(v: &[f64]) -> Vec<u8> {
     v.iter().flat_map(|x| x.to_bits().to_le_bytes()).collect()
+}
+
+/// The little-endian bytes of integers.
+pub(crate) fn i64_le_bytes(v: &[i64]) -> Vec<u8> {
+    v.iter().flat_map(|x| x.to_le_bytes()).collect()
 }
 
 /// Floats from little-endian bytes.
@@ -951,6 +961,47 @@ fn literal_i64(v: &ColumnarValue, what: &str) -> Result<i64> {
     }
 }
 
+/// `anomark_among(set, x)`: membership in a sorted set, by binary search.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct AmongUdf {
+    signature: Signature,
+}
+
+impl ScalarUDFImpl for AmongUdf {
+    scalar_udf_boilerplate!(AMONG);
+    fn return_type(&self, _: &[DataType]) -> Result<DataType> {
+        Ok(DataType::Boolean)
+    }
+    fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
+        let bytes = literal_bytes(&args.args[0], AMONG)?;
+        if bytes.len() % 8 != 0 {
+            return Err(fail(format!("{AMONG}: want 8 bytes per integer")));
+        }
+        let set: Vec<i64> = bytes
+            .chunks_exact(8)
+            .map(|c| i64::from_le_bytes(c.try_into().expect("8 bytes")))
+            .collect();
+        if set.windows(2).any(|w| w[0] >= w[1]) {
+            return Err(fail(format!("{AMONG}: want integers sorted ascending")));
+        }
+        let arrays = ColumnarValue::values_to_arrays(&args.args[1..])?;
+        let x = arrays[0]
+            .as_any()
+            .downcast_ref::<Int64Array>()
+            .ok_or_else(|| {
+                fail(format!(
+                    "{AMONG}: want Int64, got {}",
+                    arrays[0].data_type()
+                ))
+            })?;
+        let out: BooleanArray = x
+            .iter()
+            .map(|v| v.map(|v| set.binary_search(&v).is_ok()))
+            .collect();
+        Ok(ColumnarValue::Array(Arc::new(out)))
+    }
+}
+
 /// `anomark_axis_prefix(s, shift)`: [`axis_prefix`] of each score.
 #[derive(Debug, PartialEq, Eq, Hash)]
 struct AxisPrefix {
@@ -1079,6 +1130,7 @@ pub fn scalar_functions(version: &str) -> Vec<Arc<ScalarUDF>> {
             name: FEATURE_CHECK,
         })),
         Arc::new(ScalarUDF::from(AxisPrefix { signature: any() })),
+        Arc::new(ScalarUDF::from(AmongUdf { signature: any() })),
         Arc::new(ScalarUDF::from(Bin { signature: any() })),
         Arc::new(ScalarUDF::from(ScoreRow { signature: any() })),
         Arc::new(ScalarUDF::from(super::sample::Sampled::new())),

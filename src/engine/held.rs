@@ -103,12 +103,13 @@ impl HeldOnEngine {
                 for (k, t) in targets.iter().enumerate() {
                     let parents: std::collections::BTreeSet<i64> = t.iter().map(|t| t.0).collect();
                     if !parents.is_empty() {
-                        let list: Vec<String> = parents.iter().map(|p| p.to_string()).collect();
+                        let set: Vec<i64> = parents.into_iter().collect();
                         within.push(format!(
-                            "{} AND {} IN ({})",
+                            "{} AND {}({}, {})",
                             asked(k),
-                            among.prefix(shift + DIGIT),
-                            list.join(", ")
+                            functions::AMONG,
+                            sql_bytes(&functions::i64_le_bytes(&set)),
+                            among.prefix(shift + DIGIT)
                         ));
                     }
                 }

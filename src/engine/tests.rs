@@ -556,6 +556,74 @@ fn interval_codes_and_order_keys_follow_the_summary() {
     }
 }
 
+/// `anomark_among` against `BTreeSet::contains`: integers of every sign
+/// and the extremes, a null, sets of none, one and many, over two
+/// partitions of small batches.
+#[test]
+fn among_is_membership_in_the_sorted_set() {
+    use datafusion::arrow::array::Int64Array;
+    let xs: Vec<Option<i64>> = (-40..40)
+        .map(|i| Some(i * 3))
+        .chain([Some(i64::MIN), Some(i64::MAX), None, Some(0)])
+        .collect();
+    let schema = Arc::new(Schema::new(vec![Field::new("x", DataType::Int64, true)]));
+    let batch = RecordBatch::try_new(
+        schema.clone(),
+        vec![Arc::new(Int64Array::from(xs.clone())) as ArrayRef],
+    )
+    .unwrap();
+    let half = xs.len() / 2;
+    let parts = vec![
+        vec![batch.slice(0, 10), batch.slice(10, half - 10)],
+        vec![batch.slice(half, xs.len() - half)],
+    ];
+    runtime().block_on(async {
+        let ctx = local_context(2, 8).unwrap();
+        ctx.register_table("t", Arc::new(MemTable::try_new(schema, parts).unwrap()))
+            .unwrap();
+        let sets: [Vec<i64>; 4] = [
+            vec![],
+            vec![0],
+            vec![i64::MIN, -9, 6, 7, 60, i64::MAX],
+            (-100..100).filter(|v| v % 2 == 0).collect(),
+        ];
+        for set in sets {
+            let rows = read(
+                &ctx,
+                &format!(
+                    "SELECT x, {}({}, x) FROM t",
+                    functions::AMONG,
+                    sql_bytes(&functions::i64_le_bytes(&set))
+                ),
+            )
+            .await;
+            let want: std::collections::BTreeSet<i64> = set.iter().copied().collect();
+            let mut seen = 0;
+            for b in &rows {
+                let x = column::<Int64Array>(b, 0).unwrap();
+                let got = column::<BooleanArray>(b, 1).unwrap();
+                for i in 0..b.num_rows() {
+                    let w = (!x.is_null(i)).then(|| want.contains(&x.value(i)));
+                    let g = (!got.is_null(i)).then(|| got.value(i));
+                    assert_eq!(g, w, "{set:?}");
+                    seen += 1;
+                }
+            }
+            assert_eq!(seen, xs.len());
+        }
+        // A set out of order, or not of whole integers, is refused.
+        for bytes in [functions::i64_le_bytes(&[5, 1]), vec![0u8; 7]] {
+            let sql = format!(
+                "SELECT {}({}, x) FROM t",
+                functions::AMONG,
+                sql_bytes(&bytes)
+            );
+            let got = ctx.sql(&sql).await.unwrap().collect().await;
+            assert!(got.is_err(), "{bytes:?}");
+        }
+    });
+}
+
 /// A table whose one partition never yields a batch (a stalled engine),
 /// holding no thread: the stream waits on a task that sleeps for an hour.
 #[derive(Debug)]
