@@ -505,7 +505,7 @@ async fn ingest(
     )
     .await?;
     let train_rows = counts[0].normal + counts[0].anomaly;
-    let (sample, samples) = train_sample(ctx, nx, &per_bucket, columns).await?;
+    let (sample, samples) = train_sample(ctx, nx, train_rows, &per_bucket, columns).await?;
     drop(stage);
 
     let stage = progress.stage("splitting and checking for leakage");
@@ -837,10 +837,10 @@ async fn train_moments(
 async fn train_sample(
     ctx: &SessionContext,
     nx: usize,
+    train_rows: usize,
     per_bucket: &BTreeMap<u16, u64>,
     columns: Vec<String>,
 ) -> Result<(Dataset, Vec<Vec<RowId>>)> {
-    let train_rows = per_bucket.values().sum::<u64>() as usize;
     let strides: Vec<usize> = SAMPLE_LIMITS
         .iter()
         .map(|&l| train_rows.div_ceil(l.max(1)).max(1))
