@@ -102,6 +102,7 @@ impl Moments {
 
     /// [`Moments::merge`] of moments given as parts, with a scratch vector
     /// of d values for δ.
+    #[inline(always)]
     fn merge_raw(&mut self, nb_rows: u64, mean_b: &[f64], m2_b: &[f64], delta: &mut [f64]) {
         if nb_rows == 0 {
             return;
@@ -218,6 +219,53 @@ fn buckets_into(xs: &[f64], d: usize, runs: &[std::ops::Range<usize>], out: &mut
     buckets_generic(xs, d, runs, out)
 }
 
+/// Folds buckets' moments (per run d mean values then d × d co-moments, as
+/// [`buckets_into`] writes them) into `acc` in run order by
+/// [`Moments::merge_raw`].
+#[inline(always)]
+fn fold_generic(
+    acc: &mut Moments,
+    runs: &[std::ops::Range<usize>],
+    out: &[f64],
+    delta: &mut [f64],
+) {
+    let d = acc.mean.len();
+    for (r, o) in runs.iter().zip(out.chunks_exact(d + d * d)) {
+        let (mean, m2) = o.split_at(d);
+        acc.merge_raw(r.len() as u64, mean, m2, delta);
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+fn fold_avx512(acc: &mut Moments, runs: &[std::ops::Range<usize>], out: &[f64], delta: &mut [f64]) {
+    fold_generic(acc, runs, out, delta)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+fn fold_avx2(acc: &mut Moments, runs: &[std::ops::Range<usize>], out: &[f64], delta: &mut [f64]) {
+    fold_generic(acc, runs, out, delta)
+}
+
+/// [`fold_generic`], compiled for the widest vectors the CPU has (the same
+/// operations lane by lane, none fused, so the same bits): the fold is the
+/// one sequential part of the training moments.
+fn fold_into(acc: &mut Moments, runs: &[std::ops::Range<usize>], out: &[f64], delta: &mut [f64]) {
+    #[cfg(target_arch = "x86_64")]
+    {
+        if std::is_x86_feature_detected!("avx512f") {
+            // SAFETY: the CPU has just been seen to support AVX-512F.
+            return unsafe { fold_avx512(acc, runs, out, delta) };
+        }
+        if std::is_x86_feature_detected!("avx2") {
+            // SAFETY: the CPU has just been seen to support AVX2.
+            return unsafe { fold_avx2(acc, runs, out, delta) };
+        }
+    }
+    fold_generic(acc, runs, out, delta)
+}
+
 /// The left fold of step 2 over buckets handed over in ascending order,
 /// for callers that meet the buckets a stretch at a time (the streamed
 /// reader, partition by partition).
@@ -321,11 +369,7 @@ impl Fold {
             out.par_chunks_mut(TASK * width)
                 .zip(stretch.par_chunks(TASK))
                 .for_each(|(o, rs)| buckets_into(xs, d, rs, o));
-            for (r, o) in stretch.iter().zip(out.chunks_exact(width)) {
-                let (mean, m2) = o.split_at(d);
-                self.acc
-                    .merge_raw(r.len() as u64, mean, m2, &mut self.delta);
-            }
+            fold_into(&mut self.acc, stretch, out, &mut self.delta);
             if let Some(r) = stretch.last() {
                 self.last = Some(buckets[r.start]);
             }
@@ -549,6 +593,21 @@ mod tests {
                 }
             }
         }
+        // The fold, compiled both ways, from a non-empty start.
+        let start = || {
+            let mut m = Moments::empty(d);
+            m.merge(&Moments::of_bucket(
+                ndarray::ArrayView2::from_shape((2, d), &xs[..2 * d]).unwrap(),
+            ));
+            m
+        };
+        let (mut by_plain, mut by_chosen) = (start(), start());
+        let mut delta = vec![0.0; d];
+        fold_generic(&mut by_plain, &runs, &plain, &mut delta);
+        fold_into(&mut by_chosen, &runs, &plain, &mut delta);
+        assert_eq!(by_plain.n, by_chosen.n);
+        assert_eq!(bits(&by_plain.mean), bits(&by_chosen.mean));
+        assert_eq!(bits(&by_plain.m2), bits(&by_chosen.m2));
     }
 
     #[test]

@@ -110,16 +110,34 @@ fn parse(
     text: &[&Column],
     label: Option<&LabelWant<'_>>,
 ) -> Option<Parsed> {
-    if bytes.starts_with(b"\xEF\xBB\xBF") || memchr::memchr2(b'"', b'\r', bytes).is_some() {
-        return None;
-    }
     let header_end = memchr::memchr(b'\n', bytes)?;
-    let slots = slots(&bytes[..header_end], numeric, text, label)?;
+    let slots = plain_header(&bytes[..header_end], numeric, text, label)?;
     let body = &bytes[header_end + 1..];
     if body.is_empty() {
         return None;
     }
     parse_body(body, &slots, numeric.len(), text.len(), label)
+}
+
+/// Whether `bytes` (a header line, or a block of lines) may be read as
+/// plain CSV: no quote and no carriage return anywhere (a quoted field may
+/// hold delimiters and line ends). Each block is checked by the task that
+/// parses it; a header must also not start with a byte-order mark.
+fn plain(bytes: &[u8]) -> bool {
+    memchr::memchr2(b'"', b'\r', bytes).is_none()
+}
+
+/// The slots of a plain header line (see [`plain`] and [`slots`]).
+fn plain_header(
+    header: &[u8],
+    numeric: &[&Column],
+    text: &[&Column],
+    label: Option<&LabelWant<'_>>,
+) -> Option<Vec<Slot>> {
+    if header.starts_with(b"\xEF\xBB\xBF") || !plain(header) {
+        return None;
+    }
+    slots(header, numeric, text, label)
 }
 
 /// Where each field of the header line goes, or `None` when a wanted column
@@ -300,11 +318,7 @@ impl<'a> Chunks<'a> {
             }
             carry.extend_from_slice(&buf[..got]);
         };
-        let header = &carry[..header_end];
-        if header.starts_with(b"\xEF\xBB\xBF") || memchr::memchr2(b'"', b'\r', header).is_some() {
-            return None;
-        }
-        let slots = slots(header, numeric, text, label.as_ref())?;
+        let slots = plain_header(&carry[..header_end], numeric, text, label.as_ref())?;
         carry.drain(..=header_end);
         // Test hook: smaller chunks, to exercise chunk boundaries and the
         // fall-back to polars after many chunks.
@@ -364,9 +378,6 @@ impl<'a> Chunks<'a> {
     }
 
     fn parse(&self, body: &[u8]) -> Result<Parsed, NotPlain> {
-        if memchr::memchr2(b'"', b'\r', body).is_some() {
-            return Err(NotPlain);
-        }
         parse_body(body, &self.slots, self.d, self.ntext, self.label.as_ref()).ok_or(NotPlain)
     }
 }
@@ -402,6 +413,9 @@ fn parse_block(
     label: Option<&LabelWant<'_>>,
     mut out: Out<'_>,
 ) -> Option<Vec<Vec<u8>>> {
+    if !plain(block) {
+        return None;
+    }
     let n = block.len();
     let mut texts: Vec<Vec<u8>> = vec![Vec::new(); ntext];
     let last = slots.len().checked_sub(1)?;
@@ -813,5 +827,44 @@ mod tests {
         for b in &blocks {
             assert!(b.ends_with(b"\n"));
         }
+    }
+
+    /// A quote or a carriage return anywhere, even in a column that is not
+    /// read and in the last of many blocks, sends the file to the general
+    /// reader, as does a byte-order mark or a quote in the header.
+    #[test]
+    fn anything_but_plain_csv_is_left_to_the_general_reader() {
+        let column = |name: &str| Column {
+            name: name.into(),
+            at: crate::error::Location {
+                file: "spec.yaml".into(),
+                line: 1,
+                column: 1,
+            },
+            field: "data.features".into(),
+        };
+        let (a, b) = (column("a"), column("b"));
+        let numeric = [&a, &b];
+        let line = b"1.5,abc,2.5\n";
+        let mut file = b"a,skip,b\n".to_vec();
+        for _ in 0..200_000 {
+            file.extend_from_slice(line);
+        }
+        assert!(split_blocks(&file).len() > 1);
+        let (values, _, _, height) = parse(&file, &numeric, &[], None).unwrap();
+        assert_eq!(height, 200_000);
+        assert_eq!(&values[values.len() - 2..], &[1.5, 2.5]);
+        let near_end = file.len() - 2 * line.len() + 5;
+        for (at, byte) in [(near_end, b'"'), (near_end, b'\r'), (3, b'"')] {
+            let mut changed = file.clone();
+            changed[at] = byte;
+            assert!(
+                parse(&changed, &numeric, &[], None).is_none(),
+                "{byte} at {at}"
+            );
+        }
+        let mut marked = b"\xEF\xBB\xBF".to_vec();
+        marked.extend_from_slice(&file);
+        assert!(parse(&marked, &numeric, &[], None).is_none());
     }
 }

@@ -1085,19 +1085,18 @@ impl ScalarUDFImpl for ScoreRow {
             .iter()
             .map(|c| f64s(c, SCORE_ROW))
             .collect::<Result<_>>()?;
-        let hashes: Vec<[u8; 32]> = (0..n)
-            .map(|i| {
-                crate::audit::hash::score_row(
-                    part.value(i) as u8,
-                    f.value(i) as u32,
-                    r.value(i) as u64,
-                    a.value(i),
-                    scores.iter().map(|s| s.value(i)),
-                )
-                .0
-            })
-            .collect();
-        let out = FixedSizeBinaryArray::try_from_iter(hashes.iter())?;
+        let hashes = crate::audit::hash::score_rows(
+            n,
+            scores.len(),
+            |i| crate::audit::hash::Scored {
+                split: part.value(i) as u8,
+                file: f.value(i) as u32,
+                row: r.value(i) as u64,
+                anomaly: a.value(i),
+            },
+            |i, c| scores[c].value(i),
+        );
+        let out = FixedSizeBinaryArray::try_from_iter(hashes.iter().map(|h| h.0))?;
         Ok(ColumnarValue::Array(Arc::new(out)))
     }
 }

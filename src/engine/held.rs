@@ -995,7 +995,15 @@ mod tests {
         let xs = ndarray::Array2::from_shape_fn((n, 1), |(i, _)| x[i]);
         let scores = crate::detect::score_in_blocks(model.as_ref(), xs.view(), 8192);
         let rows: Vec<crate::audit::hash::ContentHash> = (0..n)
-            .map(|i| crate::audit::hash::score_row(part[i] as u8, 0, i as u64, a[i], [scores[i]]))
+            .map(|i| {
+                let row = crate::audit::hash::Scored {
+                    split: part[i] as u8,
+                    file: 0,
+                    row: i as u64,
+                    anomaly: a[i],
+                };
+                crate::audit::hash::score_row(row, &[scores[i]])
+            })
             .collect();
         let got = held.scores_digest(&[(0, model.as_ref())], true).unwrap();
         assert_eq!(got, crate::audit::hash::scores_digest(&rows));

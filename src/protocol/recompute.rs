@@ -350,11 +350,26 @@ pub(crate) fn read_parts(dir: &Path, names: &[&String]) -> Result<PartsRows> {
 /// row, label and the candidates' scores in the parts' column order.
 fn parts_digest(dir: &Path, names: &[&String]) -> Result<String> {
     let parts = read_parts(dir, names)?;
-    let rows: Vec<hash::ContentHash> = parts
-        .rows
-        .iter()
-        .map(|(_, part, f, r, a, s)| hash::score_row(*part, *f, *r, *a, s.iter().copied()))
-        .collect();
+    let k = parts.rows.first().map_or(0, |row| row.5.len());
+    if parts.rows.iter().any(|row| row.5.len() != k) {
+        return Err(Error::internal(
+            "score parts with different numbers of scores",
+        ));
+    }
+    let rows = hash::score_rows(
+        parts.rows.len(),
+        k,
+        |i| {
+            let (_, split, file, row, anomaly, _) = &parts.rows[i];
+            hash::Scored {
+                split: *split,
+                file: *file,
+                row: *row,
+                anomaly: *anomaly,
+            }
+        },
+        |i, c| parts.rows[i].5[c],
+    );
     Ok(hash::scores_digest(&rows))
 }
 

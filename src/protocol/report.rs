@@ -82,6 +82,7 @@ pub(crate) fn record(
     let data = &rows.data;
     // The intervals started beside the run, waited for here (outside
     // rayon's pool).
+    let waiting = crate::progress::part("waiting for the intervals");
     let validation: Vec<Metrics> = candidates
         .iter()
         .map(|c| fit::with_intervals(&c.validation, &c.validation_intervals, c.choice.tau))
@@ -97,6 +98,7 @@ pub(crate) fn record(
                 .transpose()
         })
         .collect::<Result<_>>()?;
+    drop(waiting);
     let candidate_records: Vec<CandidateRecord> = {
         use rayon::prelude::*;
         candidates
@@ -125,6 +127,23 @@ pub(crate) fn record(
     let val_y = &fitted.validation_labels;
     let best = chosen.candidate();
     let splits = &rows.report;
+    let calibration = {
+        let _t = crate::progress::part("calibration");
+        record::CalibrationRecord::of(
+            &best.name,
+            &match &rows.held {
+                Held::Rows => {
+                    crate::conformal::Calibration::of_normals(&best.validation_scores, val_y)
+                }
+                Held::Engine(e) => e.calibration(
+                    Part::Validation,
+                    best.set,
+                    best.model.as_ref(),
+                    splits.counts[Part::Validation as usize].normal,
+                )?,
+            },
+        )
+    };
     Ok(RunRecord {
         format: record::FORMAT,
         tool: record::tool(),
@@ -170,21 +189,9 @@ pub(crate) fn record(
             chosen: best.name.clone(),
         },
         candidates: candidate_records,
-        calibration: Some(record::CalibrationRecord::of(
-            &best.name,
-            &match &rows.held {
-                Held::Rows => {
-                    crate::conformal::Calibration::of_normals(&best.validation_scores, val_y)
-                }
-                Held::Engine(e) => e.calibration(
-                    Part::Validation,
-                    best.set,
-                    best.model.as_ref(),
-                    splits.counts[Part::Validation as usize].normal,
-                )?,
-            },
-        )),
+        calibration: Some(calibration),
         drift_reference: Some({
+            let _t = crate::progress::part("drift reference");
             let (shown, sampled, stride) = rows.train_sample(ingest::DRIFT);
             drift_reference(
                 &fitted.sets[best.set],
@@ -204,6 +211,7 @@ pub(crate) fn record(
 /// from the scores in memory (scores.csv's rows), or computed on the engine
 /// that holds the rows.
 fn scores_digest(rows: &Rows, opened: &Opened) -> Result<String> {
+    let _t = crate::progress::part("scores digest");
     let candidates = &opened.chosen.fitted.candidates;
     let test = opened.test.as_ref();
     if let Held::Engine(e) = &rows.held {
@@ -213,28 +221,30 @@ fn scores_digest(rows: &Rows, opened: &Opened) -> Result<String> {
             .collect();
         return e.scores_digest(&models, test.is_some());
     }
-    use rayon::prelude::*;
     let data = &rows.data;
+    let k = candidates.len();
     let hashed = |part: Part, list: &[RowId], score: &(dyn Fn(usize, usize) -> f64 + Sync)| {
-        list.par_iter()
-            .enumerate()
-            .map(|(k, r)| {
-                let o = data.origin[r.0 as usize];
-                crate::audit::hash::score_row(
-                    part as u8,
-                    o.file,
-                    o.row,
-                    data.is_anomaly[r.0 as usize],
-                    (0..candidates.len()).map(|ci| score(ci, k)),
-                )
-            })
-            .collect::<Vec<_>>()
+        crate::audit::hash::score_rows(
+            list.len(),
+            k,
+            |i| {
+                let r = list[i].0 as usize;
+                let o = data.origin[r];
+                crate::audit::hash::Scored {
+                    split: part as u8,
+                    file: o.file,
+                    row: o.row,
+                    anomaly: data.is_anomaly[r],
+                }
+            },
+            score,
+        )
     };
-    let mut all = hashed(Part::Validation, &rows.validation, &|ci, k| {
+    let mut all = hashed(Part::Validation, &rows.validation, &|k, ci| {
         candidates[ci].validation_scores[k]
     });
     if let Some(t) = test {
-        all.extend(hashed(Part::Test, &t.rows, &|ci, k| t.scores[ci][k]));
+        all.extend(hashed(Part::Test, &t.rows, &|k, ci| t.scores[ci][k]));
     }
     Ok(crate::audit::hash::scores_digest(&all))
 }

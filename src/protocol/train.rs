@@ -71,9 +71,10 @@ pub(crate) fn of_set<'a>(plan: &Plan, rows: &'a Rows, si: usize) -> Result<SetTr
     let moments = match streamed {
         Some(m) => Some(Cow::Borrowed(m)),
         None if plan.detectors.iter().any(|&k| detect::fits_from_moments(k)) => {
+            use rayon::prelude::*;
             let buckets: Vec<u16> = rows
                 .train
-                .iter()
+                .par_iter()
                 .map(|r| rows.hashes[r.0 as usize].bucket())
                 .collect();
             Some(Cow::Owned(if direct {
