@@ -309,9 +309,9 @@ fn execute(
     });
     let opened = open::test(&plan, &rows, test, chosen, ledger)?;
 
-    // scores.csv and the figures while the bootstrap intervals, started as
-    // each summary was made, are computed beside them.
-    let stage = progress.stage("scores.csv and figures");
+    // scores.csv, the figures and the scores digest while the bootstrap
+    // intervals, started as each summary was made, are computed beside them.
+    let stage = progress.stage("scores.csv, figures and the scores digest");
     // On an engine the scores are written where the rows are, into a
     // folder beside the run directory until it is committed.
     let staging = match &rows.held {
@@ -343,6 +343,7 @@ fn execute(
         },
         manifests,
         test_counts,
+        scores_digest: artifacts.scores_digest.clone(),
     };
     let rec = report::record(&plan, &rows, &opened, header)?;
     drop(stage);

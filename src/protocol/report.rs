@@ -66,6 +66,8 @@ pub(crate) struct Header {
     pub manifests: BTreeMap<String, String>,
     /// The test split's counts.
     pub test_counts: split::Counts,
+    /// The scores digest, made with the artifacts ([`Artifacts::scores_digest`]).
+    pub scores_digest: String,
 }
 
 /// The run record: every candidate's results (test metrics computed here,
@@ -201,7 +203,7 @@ pub(crate) fn record(
                 best.validation.false_positive_rate,
             )?
         }),
-        scores_digest: Some(scores_digest(rows, opened)?),
+        scores_digest: Some(header.scores_digest),
         engine: header.engine,
         wall_clock: header.wall_clock,
     })
@@ -250,8 +252,11 @@ fn scores_digest(rows: &Rows, opened: &Opened) -> Result<String> {
 }
 
 /// The run directory's files that need no record: scores.csv and the
-/// figures, made while the bootstrap intervals are still being computed.
+/// figures, made while the bootstrap intervals are still being computed;
+/// and the record's scores digest, made beside them.
 pub(crate) struct Artifacts {
+    /// The scores digest of the scored rows (for the record).
+    pub scores_digest: String,
     /// The scored rows: scores.csv, or the Parquet parts an engine wrote.
     scores: ScoresOut,
     /// The validation figures.
@@ -410,14 +415,18 @@ pub(crate) fn artifacts(
             }
         }
     };
-    let (scores, (by_score, by_feature)) = if rows.held.on_engine() {
+    let digest = || scores_digest(rows, opened);
+    let (scores, (by_score, (by_feature, digest))) = if rows.held.on_engine() {
         // Asked of the engine from this thread (`Held::on_engine`).
-        (scores(), (score_figures(), feature_figures()))
+        (scores(), (score_figures(), (feature_figures(), digest())))
     } else {
-        rayon::join(scores, || rayon::join(score_figures, feature_figures))
+        rayon::join(scores, || {
+            rayon::join(score_figures, || rayon::join(feature_figures, digest))
+        })
     };
     let (validation, test) = by_score?;
     Ok(Artifacts {
+        scores_digest: digest?,
         scores: scores?,
         validation,
         test,
