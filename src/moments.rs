@@ -274,6 +274,8 @@ pub struct Fold {
     acc: Moments,
     last: Option<u16>,
     delta: Vec<f64>,
+    /// The bucket moments of a stretch, before they are folded.
+    out: Vec<f64>,
 }
 
 impl Fold {
@@ -283,6 +285,7 @@ impl Fold {
             acc: Moments::empty(d),
             last: None,
             delta: vec![0.0; d],
+            out: Vec::new(),
         }
     }
 
@@ -362,9 +365,14 @@ impl Fold {
         let x = x.as_standard_layout();
         let xs = x.as_slice().expect("a standard-layout array is contiguous");
         let width = d + d * d;
-        let mut out = vec![0.0; STRETCH * width];
+        // One buffer for every stretch of every call, grown once (each
+        // run's share is zeroed by its task as it is used).
+        let need = STRETCH.min(runs.len()) * width;
+        if self.out.len() < need {
+            self.out.resize(need, 0.0);
+        }
         for stretch in runs.chunks(STRETCH) {
-            let out = &mut out[..stretch.len() * width];
+            let out = &mut self.out[..stretch.len() * width];
             // Buckets side by side, each computed whole by one task.
             out.par_chunks_mut(TASK * width)
                 .zip(stretch.par_chunks(TASK))
