@@ -310,20 +310,9 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
         }
     };
 
-    let mut counts = [Counts::default(); 3];
-    for (i, p) in part_of.iter().enumerate().take(n) {
-        if data.is_anomaly[i] {
-            counts[*p as usize].anomaly += 1;
-        } else {
-            counts[*p as usize].normal += 1;
-        }
-    }
-    // Each list made at its final size (never regrown and copied).
-    let mut lists: [Vec<RowId>; 3] = counts.map(|c| Vec::with_capacity(c.normal + c.anomaly));
+    let counts = count_parts(&part_of[..n], &data.is_anomaly);
     // Taken in (content, row) order, each list is already in canonical order.
-    for &i in &order.rows {
-        lists[part_of[i as usize] as usize].push(RowId(u64::from(i)));
-    }
+    let lists = lists_in_order(&order.rows, &part_of);
     drop(t);
     let t = crate::progress::part("leakage check");
     crate::audit::leak::check_sorted(&order, &part_of, data)?;
@@ -336,16 +325,21 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
     }
 
     let [train, validation, test] = lists;
+    // The test split's hashes gathered once, in its canonical order.
+    let test_hashes: Vec<ContentHash> = {
+        use rayon::prelude::*;
+        test.par_iter().map(|r| hashes[r.0 as usize]).collect()
+    };
+    let (manifest, manifest_v1) = rayon::join(
+        || crate::audit::hash::manifest_of_sorted(test_hashes.iter()),
+        || crate::audit::hash::manifest_v1_of_sorted(test_hashes.iter()),
+    );
     Ok(Splits {
         train,
         validation,
         test: SealedTest {
-            manifest: crate::audit::hash::manifest_of_sorted(
-                test.iter().map(|r| &hashes[r.0 as usize]),
-            ),
-            manifest_v1: crate::audit::hash::manifest_v1_of_sorted(
-                test.iter().map(|r| &hashes[r.0 as usize]),
-            ),
+            manifest,
+            manifest_v1,
             rows: test,
             counts: counts[2],
         },
@@ -758,31 +752,117 @@ fn by_time(
 }
 
 fn from_column(data: &Dataset, column: &str) -> Result<Vec<Part>> {
+    use rayon::prelude::*;
     let values = &data.text[column];
-    let mut bad = Vec::new();
-    let mut parts = Vec::with_capacity(values.len());
-    for (i, v) in values.iter().enumerate() {
-        parts.push(crate::rules::part_of(v).unwrap_or_else(|| {
-            bad.push(RowId(i as u64));
-            Part::Train
-        }));
-    }
+    let read: Vec<Option<Part>> = (0..values.len())
+        .into_par_iter()
+        .map(|i| crate::rules::part_of(&values[i]))
+        .collect();
+    let bad = rows_where(read.len(), |i| read[i].is_none());
     if let Some(first) = bad.first() {
         return Err(crate::rules::unknown_split(
             data.at(column, &bad),
             &values[first.0 as usize],
         ));
     }
-    let known_in_train: Vec<RowId> = (0..data.len())
-        .filter(|&i| data.is_anomaly[i] && parts[i] == Part::Train)
-        .map(|i| RowId(i as u64))
+    // Every value names a split here.
+    let parts: Vec<Part> = read
+        .into_par_iter()
+        .map(|p| p.unwrap_or(Part::Train))
         .collect();
+    let known_in_train = rows_where(data.len(), |i| {
+        data.is_anomaly[i] && parts[i] == Part::Train
+    });
     if !known_in_train.is_empty() {
         return Err(crate::rules::anomaly_in_train(
             data.at(column, &known_in_train),
         ));
     }
     Ok(parts)
+}
+
+/// Each split's normal and anomalous rows, row `i` in split `parts[i]`,
+/// counted on all cores.
+fn count_parts(parts: &[Part], is_anomaly: &[bool]) -> [Counts; 3] {
+    use rayon::prelude::*;
+    let add = |mut a: [Counts; 3], b: [Counts; 3]| {
+        for (x, y) in a.iter_mut().zip(b) {
+            x.normal += y.normal;
+            x.anomaly += y.anomaly;
+        }
+        a
+    };
+    parts
+        .par_iter()
+        .zip(is_anomaly)
+        .fold(
+            || [Counts::default(); 3],
+            |mut c, (p, &a)| {
+                if a {
+                    c[*p as usize].anomaly += 1;
+                } else {
+                    c[*p as usize].normal += 1;
+                }
+                c
+            },
+        )
+        .reduce(|| [Counts::default(); 3], add)
+}
+
+/// The rows of `order` dealt to their splits (`parts[row]`), each list in
+/// `order`'s order: on all cores, each stretch of `order` writing its rows
+/// to its own share of every list (a counting pass gives the shares), each
+/// list made at its final size.
+fn lists_in_order(order: &[u32], parts: &[Part]) -> [Vec<RowId>; 3] {
+    use rayon::prelude::*;
+    const STRETCH: usize = 1 << 16;
+    let per: Vec<[usize; 3]> = order
+        .par_chunks(STRETCH)
+        .map(|rs| {
+            let mut c = [0usize; 3];
+            for &r in rs {
+                c[parts[r as usize] as usize] += 1;
+            }
+            c
+        })
+        .collect();
+    let mut lists: [Vec<RowId>; 3] =
+        std::array::from_fn(|p| vec![RowId(0); per.iter().map(|c| c[p]).sum()]);
+    // Every stretch's share of each list, in order.
+    let mut shares: Vec<[&mut [RowId]; 3]> = Vec::with_capacity(per.len());
+    let [a, b, c] = &mut lists;
+    let mut rest: [&mut [RowId]; 3] = [a, b, c];
+    for counts in &per {
+        let mut share: [&mut [RowId]; 3] = Default::default();
+        for p in 0..3 {
+            let (head, tail) = std::mem::take(&mut rest[p]).split_at_mut(counts[p]);
+            share[p] = head;
+            rest[p] = tail;
+        }
+        shares.push(share);
+    }
+    order
+        .par_chunks(STRETCH)
+        .zip(shares)
+        .for_each(|(rs, share)| {
+            let mut at = [0usize; 3];
+            for &r in rs {
+                let p = parts[r as usize] as usize;
+                share[p][at[p]] = RowId(u64::from(r));
+                at[p] += 1;
+            }
+        });
+    lists
+}
+
+/// The rows `0..n` for which `keep` holds, in order, on all cores.
+fn rows_where(n: usize, keep: impl Fn(usize) -> bool + Sync + Send) -> Vec<RowId> {
+    use rayon::prelude::*;
+    (0..n)
+        .into_par_iter()
+        .filter(|&i| keep(i))
+        .map(|i| RowId(i as u64))
+        .collect()
 }
 
 fn check_counts(counts: &[Counts; 3]) -> Result<()> {
@@ -819,6 +899,41 @@ mod tests {
     use crate::audit::hash;
     use crate::spec::Column;
     use proptest::prelude::*;
+
+    /// The counts and the lists dealt on all cores are those of one pass
+    /// row by row, over several stretches and a short last one.
+    #[test]
+    fn parts_dealt_on_all_cores_equal_one_pass() {
+        let n = 200_001usize;
+        let parts: Vec<Part> = (0..n)
+            .map(|i| match (i * 7919) % 10 {
+                0..=5 => Part::Train,
+                6 | 7 => Part::Validation,
+                _ => Part::Test,
+            })
+            .collect();
+        let is_anomaly: Vec<bool> = (0..n).map(|i| i % 97 == 0).collect();
+        // A permutation of the rows, as a content-hash order would be.
+        let order: Vec<u32> = (0..n as u64)
+            .map(|i| ((i * 65_537) % n as u64) as u32)
+            .collect();
+        let mut want_counts = [Counts::default(); 3];
+        let mut want_lists: [Vec<RowId>; 3] = Default::default();
+        for i in 0..n {
+            let c = &mut want_counts[parts[i] as usize];
+            if is_anomaly[i] {
+                c.anomaly += 1;
+            } else {
+                c.normal += 1;
+            }
+        }
+        for &r in &order {
+            want_lists[parts[r as usize] as usize].push(RowId(u64::from(r)));
+        }
+        assert_eq!(count_parts(&parts, &is_anomaly), want_counts);
+        assert_eq!(lists_in_order(&order, &parts), want_lists);
+        assert_eq!(lists_in_order(&[], &parts), <[Vec<RowId>; 3]>::default());
+    }
 
     #[test]
     fn largest_remainder_counts() {
