@@ -1055,7 +1055,8 @@ impl ScalarUDFImpl for Bin {
 }
 
 /// `anomark_score_row(part, f, r, a, s1, …)`: each row's
-/// `audit::hash::score_row` (split, file, row in file, label, scores).
+/// `audit::hash::score_row` (split, file, row in file, label, scores), a
+/// batch's rows sixteen at a time by `audit::hash::score_rows`.
 #[derive(Debug, PartialEq, Eq, Hash)]
 struct ScoreRow {
     signature: Signature,
