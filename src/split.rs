@@ -331,7 +331,7 @@ pub fn assign(plan: &SplitPlan, data: &Dataset, hashes: &[ContentHash]) -> Resul
         test.par_iter().map(|r| hashes[r.0 as usize]).collect()
     };
     let (manifest, manifest_v1) = rayon::join(
-        || crate::audit::hash::manifest_of_sorted(test_hashes.iter()),
+        || crate::audit::hash::manifest_of_sorted_slice(&test_hashes),
         || crate::audit::hash::manifest_v1_of_sorted(test_hashes.iter()),
     );
     Ok(Splits {

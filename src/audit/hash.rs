@@ -516,12 +516,17 @@ fn bucket_digests(hashes: &[ContentHash], runs: &[std::ops::Range<usize>]) -> Ve
 }
 
 /// [`manifest`] of hashes given in ascending order (a split's rows are kept
-/// in canonical order), not copied; the buckets' digests are made on all
-/// cores.
+/// in canonical order); the buckets' digests are made on all cores.
 pub fn manifest_of_sorted<'a>(hashes: impl Iterator<Item = &'a ContentHash>) -> String {
     // Copied once into one run of memory: a split's rows are read from all
     // over the table of hashes, and the digests then read them sequentially.
     let hashes: Vec<ContentHash> = hashes.copied().collect();
+    manifest_of_sorted_slice(&hashes)
+}
+
+/// [`manifest_of_sorted`] of hashes already held in one run of memory, in
+/// ascending order, not copied.
+pub fn manifest_of_sorted_slice(hashes: &[ContentHash]) -> String {
     let mut runs: Vec<std::ops::Range<usize>> = Vec::new();
     let mut start = 0;
     for i in 1..=hashes.len() {
@@ -532,7 +537,7 @@ pub fn manifest_of_sorted<'a>(hashes: impl Iterator<Item = &'a ContentHash>) -> 
             start = i;
         }
     }
-    of_runs(&hashes, &runs)
+    of_runs(hashes, &runs)
 }
 
 /// The manifest of `hashes` in ascending order, cut into `runs`, one per

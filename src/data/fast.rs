@@ -111,7 +111,7 @@ fn parse(
     label: Option<&LabelWant<'_>>,
 ) -> Option<Parsed> {
     let header_end = memchr::memchr(b'\n', bytes)?;
-    let slots = plain_header(&bytes[..header_end], numeric, text, label)?;
+    let slots = slots(&bytes[..header_end], numeric, text, label)?;
     let body = &bytes[header_end + 1..];
     if body.is_empty() {
         return None;
@@ -127,8 +127,10 @@ fn plain(bytes: &[u8]) -> bool {
     memchr::memchr2(b'"', b'\r', bytes).is_none()
 }
 
-/// The slots of a plain header line (see [`plain`] and [`slots`]).
-fn plain_header(
+/// Where each field of a plain header line goes, or `None` when the line
+/// is not plain (see [`plain`]; nor may it start with a byte-order mark) or
+/// a wanted column is missing or repeated.
+fn slots(
     header: &[u8],
     numeric: &[&Column],
     text: &[&Column],
@@ -137,17 +139,6 @@ fn plain_header(
     if header.starts_with(b"\xEF\xBB\xBF") || !plain(header) {
         return None;
     }
-    slots(header, numeric, text, label)
-}
-
-/// Where each field of the header line goes, or `None` when a wanted column
-/// is missing or repeated.
-fn slots(
-    header: &[u8],
-    numeric: &[&Column],
-    text: &[&Column],
-    label: Option<&LabelWant<'_>>,
-) -> Option<Vec<Slot>> {
     let header: Vec<&[u8]> = header.split(|&b| b == b',').collect();
     // Any repeated name, wanted or not: the general reader decides.
     let mut names = header.clone();
@@ -318,7 +309,7 @@ impl<'a> Chunks<'a> {
             }
             carry.extend_from_slice(&buf[..got]);
         };
-        let slots = plain_header(&carry[..header_end], numeric, text, label.as_ref())?;
+        let slots = slots(&carry[..header_end], numeric, text, label.as_ref())?;
         carry.drain(..=header_end);
         // Test hook: smaller chunks, to exercise chunk boundaries and the
         // fall-back to polars after many chunks.
