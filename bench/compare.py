@@ -269,7 +269,7 @@ def bench_one(n, args, use_gnu_time):
         # The bootstrap's own time: the parts named `bootstrap` (one per
         # candidate and split; they run side by side, so this is their sum).
         times = [float(m.group(1)) for m in
-                 re.finditer(r"anomark: stage ([0-9.]+) s\s+bootstrap$", r["stderr"], re.M)]
+                 re.finditer(r"anomark: stage ([0-9.]+) s\s+bootstrap(?: \(at [0-9.]+ s\))?$", r["stderr"], re.M)]
         r["bootstrap_s"] = sum(times) if times else None
         r["bootstrap_parts"] = len(times)
         return r

@@ -100,7 +100,12 @@ impl Calibration {
 
     /// From the calibration scores in any order, thinned by `thinning`.
     pub fn thinned(mut scores: Vec<f64>, thinning: Thinning) -> Self {
-        scores.sort_by(f64::total_cmp);
+        // Values equal under the total order have the same bits, so any
+        // sort gives the same vector: an unstable one on all cores.
+        {
+            use rayon::prelude::*;
+            scores.par_sort_unstable_by(f64::total_cmp);
+        }
         let n = scores.len();
         match thinning.ranks(n) {
             None => Calibration {

@@ -51,6 +51,7 @@ fn exit_now(code: u8) -> ExitCode {
 }
 
 fn main() -> ExitCode {
+    anomark::progress::start_clock();
     // First, before any thread starts: SIGINT and SIGTERM remove anomark's
     // own temporaries.
     anomark::cleanup::install();

@@ -73,6 +73,15 @@ pub fn part(name: &str) -> Stage {
     Stage::new(ProgressBar::hidden(), format!("  {name}"))
 }
 
+/// The process's start, for the stage lines' `at` (set by [`start_clock`]).
+static START: std::sync::OnceLock<std::time::Instant> = std::sync::OnceLock::new();
+
+/// Marks the process's start: the stage lines then also say when each stage
+/// ended, counted from here (the binary calls it first thing).
+pub fn start_clock() {
+    START.get_or_init(std::time::Instant::now);
+}
+
 /// With `ANOMARK_STAGE_TIMES=1`, every stage prints its wall time to stderr
 /// when it ends (for the benchmarks; never on by default).
 fn stage_times() -> bool {
@@ -110,8 +119,12 @@ impl Drop for Stage {
             self.bar.finish();
         }
         if stage_times() {
+            let at = START
+                .get()
+                .map(|t| format!(" (at {:.3} s)", t.elapsed().as_secs_f64()))
+                .unwrap_or_default();
             eprintln!(
-                "anomark: stage {:.3} s  {}",
+                "anomark: stage {:.3} s  {}{at}",
                 self.started.elapsed().as_secs_f64(),
                 self.name
             );

@@ -16,7 +16,7 @@ const ROW_TAG: &[u8] = b"anomark/row/v1\0";
 const MANIFEST_TAG: &[u8] = b"anomark/manifest/v2\0";
 
 /// The blake3 hash of one row's canonical content.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, PartialOrd, Ord, Hash)]
 pub struct ContentHash(pub [u8; 32]);
 
 impl ContentHash {
@@ -105,7 +105,10 @@ pub fn rows(x: &ndarray::Array2<f64>, is_anomaly: &[bool]) -> Vec<ContentHash> {
 fn messages(n: usize, len: usize, encode: impl Fn(usize, &mut [u8]) + Sync) -> Vec<ContentHash> {
     use super::lanes::{hash16, LANES, MAX_LEN};
     use rayon::prelude::*;
-    let mut out = vec![ContentHash([0; 32]); n];
+    // Zeroed (and its pages first touched) on all cores: 32 MB at a
+    // million rows, which one thread takes about 10 ms to fault in.
+    let mut out: Vec<ContentHash> = Vec::with_capacity(n);
+    out.par_extend(rayon::iter::repeat_n(ContentHash([0; 32]), n));
     if len > MAX_LEN {
         out.par_iter_mut().enumerate().for_each_init(
             || vec![0u8; len],
@@ -170,7 +173,7 @@ pub fn order(hashes: &[ContentHash]) -> Order {
         _ => 0,
     };
     let keys = sorted_keys(&prefixes, bits);
-    let mut out: Vec<u32> = keys.iter().map(|k| k.1).collect();
+    let mut out: Vec<u32> = keys.par_iter().map(|k| k.1).collect();
     let mut repeats = Vec::new();
     let mut i = 0;
     while i < keys.len() {
@@ -216,20 +219,10 @@ fn sorted_keys(prefixes: &[u64], bits: u32) -> Vec<(u64, u32)> {
     }
     let shift = 64 - bits;
     let buckets = 1usize << bits;
-    let mut start = vec![0usize; buckets + 1];
-    for &p in prefixes {
-        start[(p >> shift) as usize + 1] += 1;
-    }
-    for b in 1..=buckets {
-        start[b] += start[b - 1];
-    }
-    let mut keys = vec![(0u64, 0u32); prefixes.len()];
-    let mut next = start.clone();
-    for (i, &p) in prefixes.iter().enumerate() {
-        let b = (p >> shift) as usize;
-        keys[next[b]] = (p, i as u32);
-        next[b] += 1;
-    }
+    let (mut keys, start) = placed_by_bucket(prefixes.len(), buckets, |i| {
+        let p = prefixes[i];
+        ((p >> shift) as usize, (p, i as u32))
+    });
     let mut parts = Vec::with_capacity(buckets);
     let mut rest = keys.as_mut_slice();
     for b in 0..buckets {
@@ -242,6 +235,72 @@ fn sorted_keys(prefixes: &[u64], bits: u32) -> Vec<(u64, u32)> {
         .with_min_len(64)
         .for_each(|part| part.sort_unstable());
     keys
+}
+
+/// Items `0..n` placed by bucket, as one counting sort places them: buckets
+/// ascending, each bucket's items in input order; `item(i)` gives item i's
+/// bucket (below `buckets`) and value. Returns the placed values and where
+/// each bucket starts (`buckets + 1` offsets).
+///
+/// On all cores: each stretch of the input counts its items per bucket;
+/// the output is then cut into one piece per (bucket, stretch), in that
+/// order, and each stretch writes its items into its own pieces. The pieces
+/// are where a serial placement would put those items, so the result does
+/// not depend on the number of stretches.
+fn placed_by_bucket<T: Copy + Default + Send + Sync>(
+    n: usize,
+    buckets: usize,
+    item: impl Fn(usize) -> (usize, T) + Sync,
+) -> (Vec<T>, Vec<usize>) {
+    use rayon::prelude::*;
+    // A stretch per core and a few more for balance, none very short, and
+    // none with fewer than two items per bucket on average (each stretch
+    // holds a counter and a piece per bucket).
+    let stretches = (4 * rayon::current_num_threads())
+        .min(n >> 14)
+        .min(n / (2 * buckets.max(1)))
+        .max(1);
+    let per = n.div_ceil(stretches).max(1);
+    let ranges: Vec<std::ops::Range<usize>> =
+        (0..n).step_by(per).map(|a| a..(a + per).min(n)).collect();
+    let counts: Vec<Vec<usize>> = ranges
+        .par_iter()
+        .map(|r| {
+            let mut c = vec![0usize; buckets];
+            for i in r.clone() {
+                c[item(i).0] += 1;
+            }
+            c
+        })
+        .collect();
+    let mut start = vec![0usize; buckets + 1];
+    for b in 0..buckets {
+        start[b + 1] = start[b] + counts.iter().map(|c| c[b]).sum::<usize>();
+    }
+    let mut out: Vec<T> = Vec::with_capacity(n);
+    out.par_extend(rayon::iter::repeat_n(T::default(), n));
+    let mut pieces: Vec<Vec<&mut [T]>> =
+        ranges.iter().map(|_| Vec::with_capacity(buckets)).collect();
+    let mut rest = out.as_mut_slice();
+    for b in 0..buckets {
+        for (s, c) in counts.iter().enumerate() {
+            let (piece, tail) = std::mem::take(&mut rest).split_at_mut(c[b]);
+            pieces[s].push(piece);
+            rest = tail;
+        }
+    }
+    pieces
+        .into_par_iter()
+        .zip(ranges)
+        .for_each(|(mut pieces, r)| {
+            let mut next = vec![0usize; buckets];
+            for i in r {
+                let (b, v) = item(i);
+                pieces[b][next[b]] = v;
+                next[b] += 1;
+            }
+        });
+    (out, start)
 }
 
 /// A file's size and blake3 hash.
@@ -294,20 +353,10 @@ pub fn bytes(b: &[u8]) -> String {
 /// whole.
 pub fn manifest(hashes: &[ContentHash]) -> String {
     use rayon::prelude::*;
-    let mut starts = vec![0usize; (1 << 16) + 1];
-    for h in hashes {
-        starts[usize::from(h.bucket()) + 1] += 1;
-    }
-    for b in 1..starts.len() {
-        starts[b] += starts[b - 1];
-    }
-    let mut next = starts.clone();
-    let mut sorted = vec![ContentHash([0; 32]); hashes.len()];
-    for h in hashes {
-        let at = &mut next[usize::from(h.bucket())];
-        sorted[*at] = *h;
-        *at += 1;
-    }
+    let (mut sorted, starts) = placed_by_bucket(hashes.len(), 1 << 16, |i| {
+        let h = hashes[i];
+        (usize::from(h.bucket()), h)
+    });
     let runs: Vec<std::ops::Range<usize>> = starts
         .windows(2)
         .filter(|w| w[1] > w[0])
@@ -562,6 +611,51 @@ mod tests {
     /// Official BLAKE3 test vectors (test_vectors/test_vectors.json of the
     /// BLAKE3 reference repository; input byte i = i mod 251), as listed in
     /// REFERENCES.md section 3.
+    /// The placement on all cores equals one serial counting placement
+    /// (buckets ascending, input order within a bucket), whatever the
+    /// number of threads and so of stretches.
+    #[test]
+    fn placement_by_bucket_equals_the_serial_placement() {
+        let serial = |items: &[(usize, u64)], buckets: usize| {
+            let mut out = Vec::new();
+            let mut start = vec![0];
+            for b in 0..buckets {
+                out.extend(items.iter().filter(|x| x.0 == b).map(|x| x.1));
+                start.push(out.len());
+            }
+            (out, start)
+        };
+        for (n, buckets) in [
+            (0usize, 4usize),
+            (1, 1),
+            (70_000, 3),
+            (200_000, 64),
+            (40_000, 1 << 16),
+        ] {
+            // Skewed buckets, some empty: bucket from a scrambled index.
+            let items: Vec<(usize, u64)> = (0..n)
+                .map(|i| {
+                    let x = (i as u64)
+                        .wrapping_mul(0x9E37_79B9_7F4A_7C15)
+                        .rotate_left(17);
+                    (
+                        ((x % 1000) as usize * (x % 1000) as usize / 1000) % buckets,
+                        x,
+                    )
+                })
+                .collect();
+            let want = serial(&items, buckets);
+            for threads in [1, 2, 3, 8] {
+                let pool = rayon::ThreadPoolBuilder::new()
+                    .num_threads(threads)
+                    .build()
+                    .unwrap();
+                let got = pool.install(|| placed_by_bucket(n, buckets, |i| items[i]));
+                assert_eq!(got, want, "n {n}, buckets {buckets}, threads {threads}");
+            }
+        }
+    }
+
     #[test]
     fn blake3_official_vectors() {
         let input = |n: usize| (0..n).map(|i| (i % 251) as u8).collect::<Vec<u8>>();

@@ -299,7 +299,9 @@ fn execute(
     // Fit and choose on train and validation only.
     let fitted = fit::candidates(&plan, &ingested.rows, &progress)?;
     let chosen = choose::choose(&plan, fitted)?;
+    let t = crate::progress::part("train and validation manifests");
     let manifests = ingested.manifests();
+    drop(t);
     let test_counts = ingested.test_counts();
     let ingest::Ingested { rows, test } = ingested;
     // Every choice is fixed: only a final run opens the test split, once.
@@ -307,7 +309,9 @@ fn execute(
         Some(r) => open::Ledger::Replay(r.openings.as_ref()),
         None => open::Ledger::Append,
     });
+    let t = crate::progress::part("opening the test split");
     let opened = open::test(&plan, &rows, test, chosen, ledger)?;
+    drop(t);
 
     // scores.csv, the figures and the scores digest while the bootstrap
     // intervals, started as each summary was made, are computed beside them.
