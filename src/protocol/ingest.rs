@@ -194,15 +194,24 @@ impl Ingested {
     /// Each split's manifest hash by split name.
     pub fn manifests(&self) -> BTreeMap<String, String> {
         let r = &self.rows;
-        let mut manifests: BTreeMap<String, String> =
-            [(Part::Train, &r.train), (Part::Validation, &r.validation)]
-                .iter()
-                .map(|(p, rows)| {
-                    // Each list is in canonical (content hash, row) order.
-                    let hs = rows.iter().map(|r| &self.rows.hashes[r.0 as usize]);
-                    (p.name().to_string(), hash::manifest_of_sorted(hs))
-                })
+        // Each list is in canonical (content hash, row) order; its hashes
+        // are gathered on all cores into one run of memory, the two lists
+        // side by side.
+        let of = |rows: &[RowId]| {
+            use rayon::prelude::*;
+            let hs: Vec<ContentHash> = rows
+                .par_iter()
+                .map(|r| self.rows.hashes[r.0 as usize])
                 .collect();
+            hash::manifest_of_sorted_slice(&hs)
+        };
+        let (train, validation) = rayon::join(|| of(&r.train), || of(&r.validation));
+        let mut manifests: BTreeMap<String, String> = [
+            (Part::Train.name().to_string(), train),
+            (Part::Validation.name().to_string(), validation),
+        ]
+        .into_iter()
+        .collect();
         manifests.insert(Part::Test.name().into(), self.test.manifest().to_string());
         if let Training::Moments { manifest, .. } = &r.training {
             manifests.insert(Part::Train.name().into(), manifest.clone());

@@ -350,6 +350,19 @@ fn execute(
         scores_digest: artifacts.scores_digest.clone(),
     };
     let rec = report::record(&plan, &rows, &opened, header)?;
+    // The rows are not read again. Held in memory, theirs (the value
+    // matrix: 128 MB at a million rows of 16 features) is handed back by a
+    // thread of its own while the card is written and signed, not when the
+    // process ends. (Should no thread start, the closure and the rows are
+    // dropped here.) Rows on an engine are dropped here, in order: their
+    // drop may stop processes.
+    if matches!(rows.held, held::Held::Rows) {
+        let _ = std::thread::Builder::new()
+            .name("anomark-free".into())
+            .spawn(move || drop(rows));
+    } else {
+        drop(rows);
+    }
     drop(stage);
     let stage = progress.stage("writing the card");
     let files = report::files(
