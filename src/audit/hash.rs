@@ -608,9 +608,6 @@ fn of_runs(hashes: &[ContentHash], runs: &[std::ops::Range<usize>]) -> String {
 mod tests {
     use super::*;
 
-    /// Official BLAKE3 test vectors (test_vectors/test_vectors.json of the
-    /// BLAKE3 reference repository; input byte i = i mod 251), as listed in
-    /// REFERENCES.md section 3.
     /// The placement on all cores equals one serial counting placement
     /// (buckets ascending, input order within a bucket), whatever the
     /// number of threads and so of stretches.
@@ -656,6 +653,9 @@ mod tests {
         }
     }
 
+    /// Official BLAKE3 test vectors (test_vectors/test_vectors.json of the
+    /// BLAKE3 reference repository; input byte i = i mod 251), as listed in
+    /// REFERENCES.md section 3.
     #[test]
     fn blake3_official_vectors() {
         let input = |n: usize| (0..n).map(|i| (i % 251) as u8).collect::<Vec<u8>>();
