@@ -160,9 +160,11 @@ impl SplitFeatures {
             // reader refuse or leave out the rows with others), so no pass
             // over the rows is needed here; scoring still checks every value
             // it copies.
-            debug_assert!(rows
+            debug_assert!(rows.iter().all(|r| data
+                .x
+                .row(r.0 as usize)
                 .iter()
-                .all(|r| data.x.row(r.0 as usize).iter().all(|v| v.is_finite())));
+                .all(|v| v.is_finite())));
             Ok(SplitFeatures::Copied)
         } else {
             Ok(SplitFeatures::Held(fitted.apply(data, rows)?))
