@@ -62,3 +62,58 @@ fn a_terminal_shows_the_stages_unless_quiet() {
     let scored = on_a_terminal(&case, "score out1 data.csv --out s.csv").unwrap();
     assert!(scored.contains("scoring"), "{scored}");
 }
+
+/// `ANOMARK_STAGE_TIMES=1`: every stage and part prints one line, `anomark:
+/// stage T s  NAME (at S s)`, S counted from the process's start; the
+/// stages (not indented) end in order, each no earlier than it lasted; the
+/// bootstrap parts have the form `bench/compare.py` sums.
+#[test]
+fn stage_times_name_each_stage_with_its_end() {
+    let case = standard(&rows(300, 16, 53)).env("ANOMARK_STAGE_TIMES", "1");
+    let d = case
+        .clone()
+        .args(RUN.into_iter().chain(["--open-test"]))
+        .success();
+    let seconds = |s: &str| -> f64 {
+        let v = s
+            .strip_suffix(" s")
+            .unwrap_or_else(|| panic!("`{s}`: no ` s`"));
+        assert!(
+            v.len() > 4 && v.as_bytes()[v.len() - 4] == b'.',
+            "`{s}`: not three decimals"
+        );
+        v.parse().unwrap()
+    };
+    let mut last_end = 0.0;
+    let (mut stages, mut bootstraps) = (Vec::new(), 0);
+    for line in d.stderr.lines() {
+        let rest = line
+            .strip_prefix("anomark: stage ")
+            .unwrap_or_else(|| panic!("not a stage line: `{line}`"));
+        let (took, rest) = rest.split_once("  ").unwrap();
+        let (name, at) = rest.rsplit_once(" (at ").unwrap();
+        let (took, at) = (seconds(took), seconds(at.strip_suffix(')').unwrap()));
+        assert!(took <= at, "`{line}`: lasted longer than the process");
+        if name == "  bootstrap" {
+            bootstraps += 1;
+        }
+        if !name.starts_with(' ') {
+            assert!(at >= last_end, "`{line}` ends before the stage before it");
+            last_end = at;
+            stages.push(name.to_string());
+        }
+    }
+    // One bootstrap per candidate and split (two detectors, validation and test).
+    assert_eq!(bootstraps, 4, "{}", d.stderr);
+    for stage in [
+        "reading the data",
+        "splitting and checking for leakage",
+        "the record, once the intervals are in",
+        "signing and writing the run directory",
+    ] {
+        assert!(
+            stages.iter().any(|s| s == stage),
+            "no `{stage}`: {stages:?}"
+        );
+    }
+}
