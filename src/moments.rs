@@ -87,7 +87,13 @@ impl Moments {
         let x = x.as_standard_layout();
         let xs = x.as_slice().expect("a standard-layout array is contiguous");
         let mut c = vec![0.0; d];
-        bucket_generic(xs, d, &mut m.mean, &mut m.m2, &mut c);
+        bucket_generic(
+            &|i| &xs[i * d..(i + 1) * d],
+            0..n,
+            &mut m.mean,
+            &mut m.m2,
+            &mut c,
+        );
         m.n = n as u64;
         m
     }
@@ -144,8 +150,9 @@ impl Moments {
 }
 
 /// One bucket's mean and co-moment matrix (step 1 of the module's
-/// definition) from its rows, row-major in `xs` (d values each, at least
-/// one row), added to `mean` and `m2` (zero on entry); `c` is scratch (d).
+/// definition) from its rows `row(i)` for i in `run` (d values each, at
+/// least one row), added to `mean` and `m2` (zero on entry); `c` is scratch
+/// (d).
 ///
 /// The whole matrix is summed, M_ab and M_ba alike: cₐ·c_b and c_b·cₐ are
 /// the same product, so each pair's two sums have the same bits, and every
@@ -153,19 +160,26 @@ impl Moments {
 /// sum keeps its row order and no operation is fused, so the copies
 /// compiled for AVX2 and AVX-512F ([`buckets_into`]) give the same bits.
 #[inline(always)]
-fn bucket_generic(xs: &[f64], d: usize, mean: &mut [f64], m2: &mut [f64], c: &mut [f64]) {
-    let n = xs.len() / d;
-    let x0 = &xs[..d];
-    for row in xs.chunks_exact(d) {
-        for ((s, v), v0) in mean.iter_mut().zip(row).zip(x0) {
+fn bucket_generic<'r, F: Fn(usize) -> &'r [f64]>(
+    row: &F,
+    run: std::ops::Range<usize>,
+    mean: &mut [f64],
+    m2: &mut [f64],
+    c: &mut [f64],
+) {
+    let d = mean.len();
+    let n = run.len();
+    let x0 = row(run.start);
+    for i in run.clone() {
+        for ((s, v), v0) in mean.iter_mut().zip(row(i)).zip(x0) {
             *s += v - v0;
         }
     }
     for (s, v0) in mean.iter_mut().zip(x0) {
         *s = v0 + *s / n as f64;
     }
-    for row in xs.chunks_exact(d) {
-        for ((cj, v), mu) in c.iter_mut().zip(row).zip(mean.iter()) {
+    for i in run {
+        for ((cj, v), mu) in c.iter_mut().zip(row(i)).zip(mean.iter()) {
             *cj = v - mu;
         }
         for (a, entries) in m2.chunks_exact_mut(d).enumerate() {
@@ -177,46 +191,66 @@ fn bucket_generic(xs: &[f64], d: usize, mean: &mut [f64], m2: &mut [f64], c: &mu
     }
 }
 
-/// Each run's bucket moments (the runs index rows of the row-major `xs`),
-/// into `out`: per run d mean values then d × d co-moments (each run's
-/// share zeroed here, by the task, while it is about to be used).
+/// Each run's bucket moments (the runs index the rows `row(i)`, d values
+/// each), into `out`: per run d mean values then d × d co-moments (each
+/// run's share zeroed here, by the task, while it is about to be used).
 #[inline(always)]
-fn buckets_generic(xs: &[f64], d: usize, runs: &[std::ops::Range<usize>], out: &mut [f64]) {
+fn buckets_generic<'r, F: Fn(usize) -> &'r [f64]>(
+    row: &F,
+    d: usize,
+    runs: &[std::ops::Range<usize>],
+    out: &mut [f64],
+) {
     let mut c = vec![0.0; d];
     for (r, o) in runs.iter().zip(out.chunks_exact_mut(d + d * d)) {
         o.fill(0.0);
         let (mean, m2) = o.split_at_mut(d);
-        bucket_generic(&xs[r.start * d..r.end * d], d, mean, m2, &mut c);
+        bucket_generic(row, r.clone(), mean, m2, &mut c);
     }
 }
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
-fn buckets_avx512(xs: &[f64], d: usize, runs: &[std::ops::Range<usize>], out: &mut [f64]) {
-    buckets_generic(xs, d, runs, out)
+fn buckets_avx512<'r, F: Fn(usize) -> &'r [f64]>(
+    row: &F,
+    d: usize,
+    runs: &[std::ops::Range<usize>],
+    out: &mut [f64],
+) {
+    buckets_generic(row, d, runs, out)
 }
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2")]
-fn buckets_avx2(xs: &[f64], d: usize, runs: &[std::ops::Range<usize>], out: &mut [f64]) {
-    buckets_generic(xs, d, runs, out)
+fn buckets_avx2<'r, F: Fn(usize) -> &'r [f64]>(
+    row: &F,
+    d: usize,
+    runs: &[std::ops::Range<usize>],
+    out: &mut [f64],
+) {
+    buckets_generic(row, d, runs, out)
 }
 
 /// [`buckets_generic`], compiled for the widest vectors the CPU has (the
 /// same operations lane by lane, so the same bits).
-fn buckets_into(xs: &[f64], d: usize, runs: &[std::ops::Range<usize>], out: &mut [f64]) {
+fn buckets_into<'r, F: Fn(usize) -> &'r [f64]>(
+    row: &F,
+    d: usize,
+    runs: &[std::ops::Range<usize>],
+    out: &mut [f64],
+) {
     #[cfg(target_arch = "x86_64")]
     {
         if std::is_x86_feature_detected!("avx512f") {
             // SAFETY: the CPU has just been seen to support AVX-512F.
-            return unsafe { buckets_avx512(xs, d, runs, out) };
+            return unsafe { buckets_avx512(row, d, runs, out) };
         }
         if std::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been seen to support AVX2.
-            return unsafe { buckets_avx2(xs, d, runs, out) };
+            return unsafe { buckets_avx2(row, d, runs, out) };
         }
     }
-    buckets_generic(xs, d, runs, out)
+    buckets_generic(row, d, runs, out)
 }
 
 /// Folds buckets' moments (per run d mean values then d × d co-moments, as
@@ -274,8 +308,10 @@ pub struct Fold {
     acc: Moments,
     last: Option<u16>,
     delta: Vec<f64>,
-    /// The bucket moments of a stretch, before they are folded.
+    /// The bucket moments of a stretch, before they are folded, and of the
+    /// stretch after it, computed meanwhile.
     out: Vec<f64>,
+    next: Vec<f64>,
 }
 
 impl Fold {
@@ -286,6 +322,7 @@ impl Fold {
             last: None,
             delta: vec![0.0; d],
             out: Vec::new(),
+            next: Vec::new(),
         }
     }
 
@@ -327,12 +364,40 @@ impl Fold {
     /// [`Fold::add_sorted_rows`] given only each row's bucket (`buckets[i]`
     /// is row i's), the rows still in ascending content-hash order.
     pub fn add_sorted_buckets(&mut self, buckets: &[u16], x: ArrayView2<'_, f64>) -> Result<()> {
-        use rayon::prelude::*;
         if buckets.len() != x.nrows() {
             return Err(Error::internal(format!(
                 "{} buckets for {} training rows",
                 buckets.len(),
                 x.nrows()
+            )));
+        }
+        let d = x.ncols();
+        let x = x.as_standard_layout();
+        let xs = x.as_slice().expect("a standard-layout array is contiguous");
+        self.add_sorted_gathered(buckets, d, |i| &xs[i * d..(i + 1) * d])
+    }
+
+    /// [`Fold::add_sorted_buckets`] with row i's `d` values given by `row(i)`
+    /// instead of a matrix, so that rows held elsewhere (the source rows of a
+    /// set of untransformed columns) are read where they are: no matrix of
+    /// all the rows is made.
+    ///
+    /// The buckets are computed a stretch at a time on all cores, and each
+    /// stretch is folded while the next is computed: the fold is the one
+    /// sequential part, and the cores need not wait for it. The fold's order
+    /// and every operation are those of the definition, so the bits do not
+    /// depend on the thread count.
+    pub fn add_sorted_gathered<'r>(
+        &mut self,
+        buckets: &[u16],
+        d: usize,
+        row: impl Fn(usize) -> &'r [f64] + Sync,
+    ) -> Result<()> {
+        use rayon::prelude::*;
+        if d != self.acc.mean.len() {
+            return Err(Error::internal(format!(
+                "training rows of {d} features for moments of {}",
+                self.acc.mean.len()
             )));
         }
         // The runs of rows sharing a bucket, in bucket order.
@@ -357,31 +422,64 @@ impl Fold {
                 )));
             }
         }
-        let d = x.ncols();
         if d == 0 {
-            self.acc.n += x.nrows() as u64;
+            self.acc.n += buckets.len() as u64;
             return Ok(());
         }
-        let x = x.as_standard_layout();
-        let xs = x.as_slice().expect("a standard-layout array is contiguous");
         let width = d + d * d;
-        // One buffer for every stretch of every call, grown once (each
-        // run's share is zeroed by its task as it is used).
-        let need = STRETCH.min(runs.len()) * width;
-        if self.out.len() < need {
-            self.out.resize(need, 0.0);
-        }
-        for stretch in runs.chunks(STRETCH) {
-            let out = &mut self.out[..stretch.len() * width];
-            // Buckets side by side, each computed whole by one task.
-            out.par_chunks_mut(TASK * width)
+        // Each stretch's bucket moments, a task's buckets computed whole by
+        // it: their rows first copied next to each other (rows read from
+        // all over memory are fetched side by side by the copy, rather than
+        // one at a time as the arithmetic reaches them), the runs moved to
+        // start at zero.
+        let compute = |stretch: &[std::ops::Range<usize>], out: &mut Vec<f64>| {
+            if out.len() < stretch.len() * width {
+                out.resize(stretch.len() * width, 0.0);
+            }
+            out[..stretch.len() * width]
+                .par_chunks_mut(TASK * width)
                 .zip(stretch.par_chunks(TASK))
-                .for_each(|(o, rs)| buckets_into(xs, d, rs, o));
-            fold_into(&mut self.acc, stretch, out, &mut self.delta);
+                .for_each_init(
+                    || (Vec::new(), Vec::new()),
+                    |(rows, local), (o, rs)| {
+                        let base = rs[0].start;
+                        rows.clear();
+                        for i in base..rs[rs.len() - 1].end {
+                            rows.extend_from_slice(row(i));
+                        }
+                        local.clear();
+                        local.extend(rs.iter().map(|r| r.start - base..r.end - base));
+                        let rows: &[f64] = rows;
+                        buckets_into(&|i| &rows[i * d..(i + 1) * d], d, local, o);
+                    },
+                );
+        };
+        // Two buffers, reused for every stretch of every call: the one
+        // being folded and the one being computed.
+        let (mut ready, mut next) = (
+            std::mem::take(&mut self.out),
+            std::mem::take(&mut self.next),
+        );
+        let stretches: Vec<&[std::ops::Range<usize>]> = runs.chunks(STRETCH).collect();
+        if let Some(first) = stretches.first() {
+            compute(first, &mut ready);
+        }
+        for (k, stretch) in stretches.iter().enumerate() {
+            let (acc, delta) = (&mut self.acc, &mut self.delta);
+            rayon::join(
+                || fold_into(acc, stretch, &ready[..stretch.len() * width], delta),
+                || {
+                    if let Some(s) = stretches.get(k + 1) {
+                        compute(s, &mut next);
+                    }
+                },
+            );
+            std::mem::swap(&mut ready, &mut next);
             if let Some(r) = stretch.last() {
                 self.last = Some(buckets[r.start]);
             }
         }
+        (self.out, self.next) = (ready, next);
         Ok(())
     }
 
@@ -405,7 +503,8 @@ pub fn fold_buckets(d: usize, mut buckets: Vec<(u16, Moments)>) -> Result<Moment
     Ok(fold.finish())
 }
 
-/// Buckets computed side by side before each sequential stretch of the fold.
+/// Buckets per stretch: computed on all cores while the stretch before is
+/// folded.
 const STRETCH: usize = 4096;
 
 /// Buckets per task within a stretch.
@@ -590,8 +689,9 @@ mod tests {
         let width = d + d * d;
         let mut plain = vec![0.0; runs.len() * width];
         let mut chosen = vec![0.0; runs.len() * width];
-        buckets_generic(&xs, d, &runs, &mut plain);
-        buckets_into(&xs, d, &runs, &mut chosen);
+        let row = |i: usize| &xs[i * d..(i + 1) * d];
+        buckets_generic(&row, d, &runs, &mut plain);
+        buckets_into(&row, d, &runs, &mut chosen);
         assert_eq!(bits(&plain), bits(&chosen));
         for o in plain.chunks_exact(width) {
             let m2 = &o[d..];
@@ -616,6 +716,55 @@ mod tests {
         assert_eq!(by_plain.n, by_chosen.n);
         assert_eq!(bits(&by_plain.mean), bits(&by_chosen.mean));
         assert_eq!(bits(&by_plain.m2), bits(&by_chosen.m2));
+    }
+
+    /// Many stretches (each folded while the next is computed), rows given
+    /// in several calls and read through `row(i)`, on 1, 2 and 3 threads:
+    /// the bits of the definition written plainly, each bucket's moments by
+    /// [`Moments::of_bucket`] folded one by one in bucket order.
+    #[test]
+    fn pipelined_stretches_give_the_definition_s_bits() {
+        let d = 3;
+        let n = 3 * STRETCH * 2 + 123;
+        // Buckets ascending, one or two rows each.
+        let buckets: Vec<u16> = (0..n).map(|i| (i * 5 / 7) as u16).collect();
+        let xs: Vec<f64> = (0..n * d)
+            .map(|i| ((i * 7919 % 10_007) as f64 - 5000.0) / 37.0 + (i % 11) as f64 * 1e-7)
+            .collect();
+        let mut want = Moments::empty(d);
+        let mut lo = 0;
+        while lo < n {
+            let mut hi = lo + 1;
+            while hi < n && buckets[hi] == buckets[lo] {
+                hi += 1;
+            }
+            let x = ndarray::ArrayView2::from_shape((hi - lo, d), &xs[lo * d..hi * d]).unwrap();
+            want.merge(&Moments::of_bucket(x));
+            lo = hi;
+        }
+        // Calls end at bucket ends (a bucket is handed over whole).
+        let cut = (0..n)
+            .find(|&i| i > n / 3 && buckets[i] != buckets[i - 1])
+            .unwrap();
+        for threads in [1, 2, 3] {
+            let pool = rayon::ThreadPoolBuilder::new()
+                .num_threads(threads)
+                .build()
+                .unwrap();
+            let got = pool.install(|| {
+                let mut f = Fold::new(d);
+                f.add_sorted_gathered(&buckets[..cut], d, |i| &xs[i * d..(i + 1) * d])
+                    .unwrap();
+                f.add_sorted_gathered(&buckets[cut..], d, |i| {
+                    &xs[(cut + i) * d..(cut + i + 1) * d]
+                })
+                .unwrap();
+                f.finish()
+            });
+            assert_eq!(got.n, want.n);
+            assert_eq!(bits(&got.mean), bits(&want.mean), "{threads} threads");
+            assert_eq!(bits(&got.m2), bits(&want.m2), "{threads} threads");
+        }
     }
 
     #[test]

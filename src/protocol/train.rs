@@ -53,8 +53,8 @@ pub(crate) fn of_set<'a>(plan: &Plan, rows: &'a Rows, si: usize) -> Result<SetTr
     let t = crate::progress::part("feature matrices, train and validation");
     // When every detector fits from the moments and the features are the
     // source columns themselves, the training rows' matrix would only feed
-    // the moments: they are folded from the source rows a stretch of whole
-    // buckets at a time instead ([`moments_in_stretches`]), and no training
+    // the moments: they are read from the source rows instead
+    // ([`moments_of_source_rows`]), and no training
     // matrix is made.
     let from_moments = plan.detectors.iter().all(|&k| detect::fits_from_moments(k));
     let direct = streamed.is_none() && from_moments && fitted.is_identity(&rows.data);
@@ -78,13 +78,7 @@ pub(crate) fn of_set<'a>(plan: &Plan, rows: &'a Rows, si: usize) -> Result<SetTr
                 .map(|r| rows.hashes[r.0 as usize].bucket())
                 .collect();
             Some(Cow::Owned(if direct {
-                moments_in_stretches(
-                    &fitted,
-                    &rows.data,
-                    &rows.train,
-                    &buckets,
-                    MOMENT_STRETCH_ROWS,
-                )?
+                moments_of_source_rows(&rows.data, &rows.train, &buckets)?
             } else {
                 crate::moments::of_sorted_buckets(&buckets, train.view())?
             }))
@@ -101,33 +95,20 @@ pub(crate) fn of_set<'a>(plan: &Plan, rows: &'a Rows, si: usize) -> Result<SetTr
     })
 }
 
-/// Training rows copied per stretch by [`moments_in_stretches`] (at least;
-/// a stretch ends with its last bucket).
-const MOMENT_STRETCH_ROWS: usize = 1 << 16;
-
 /// The moments of the training rows `train` (in content-hash order, `buckets`
-/// their buckets) from their features copied a stretch of whole buckets (at
-/// least `stretch` rows) at a time: the same bits as [`crate::moments::of_sorted_buckets`] over the
-/// whole matrix, since each bucket is computed from all its rows and the
-/// buckets are folded in the same order; a stretch's copy stays in cache.
-fn moments_in_stretches(
-    fitted: &FittedFeatures,
-    data: &Dataset,
-    train: &[RowId],
-    buckets: &[u16],
-    stretch: usize,
-) -> Result<Moments> {
-    let mut fold = crate::moments::Fold::new(fitted.features.len());
-    let mut lo = 0;
-    while lo < train.len() {
-        let mut hi = (lo + stretch.max(1)).min(train.len());
-        while hi < train.len() && buckets[hi] == buckets[hi - 1] {
-            hi += 1;
-        }
-        let x = fitted.apply(data, &train[lo..hi])?;
-        fold.add_sorted_buckets(&buckets[lo..hi], x.view())?;
-        lo = hi;
-    }
+/// their buckets) of a set of untransformed content columns, read from the
+/// source rows themselves ([`crate::moments::Fold::add_sorted_gathered`]): the
+/// same bits as [`crate::moments::of_sorted_buckets`] over their feature
+/// matrix, which is never made.
+fn moments_of_source_rows(data: &Dataset, train: &[RowId], buckets: &[u16]) -> Result<Moments> {
+    let d = data.x.ncols();
+    let x = data.x.as_standard_layout();
+    let xs = x.as_slice().expect("a standard-layout array is contiguous");
+    let mut fold = crate::moments::Fold::new(d);
+    fold.add_sorted_gathered(buckets, d, |i| {
+        let r = train[i].0 as usize;
+        &xs[r * d..(r + 1) * d]
+    })?;
     Ok(fold.finish())
 }
 
@@ -202,12 +183,11 @@ mod tests {
     use crate::features::FittedFeature;
     use crate::spec::FeatureInput;
 
-    /// Folding the moments a few rows at a time, the stretches ending with
-    /// their last bucket, gives the bits of the moments of the whole
-    /// training matrix (rows in a scrambled source order, buckets repeated
-    /// across stretch ends).
+    /// The moments read from the source rows give the bits of the moments
+    /// of the training rows' feature matrix (rows in a scrambled source
+    /// order, one to five rows per bucket).
     #[test]
-    fn moments_in_stretches_equal_the_whole_matrix() {
+    fn moments_of_source_rows_equal_those_of_the_matrix() {
         let (n, d) = (300usize, 3usize);
         let x: Vec<f64> = (0..n * d)
             .map(|i| ((i * 7919 % 1009) as f64 - 500.0) / 37.0)
@@ -242,9 +222,7 @@ mod tests {
                     .collect::<Vec<_>>(),
             )
         };
-        for stretch in [1, 2, 7, 64, n, 10 * n] {
-            let got = moments_in_stretches(&fitted, &data, &train, &buckets, stretch).unwrap();
-            assert_eq!(bits(&got), bits(&want), "stretch {stretch}");
-        }
+        let got = moments_of_source_rows(&data, &train, &buckets).unwrap();
+        assert_eq!(bits(&got), bits(&want));
     }
 }
