@@ -86,6 +86,20 @@ fn copy_rows(values: &[f64], width: usize, rows: &[RowId]) -> Option<Array2<f64>
     finite.then(|| Array2::from_shape_vec((rows.len(), width), out).expect("rows × width values"))
 }
 
+/// [`copy_rows`] for one block of rows, by the task that holds it: the
+/// rows appended one after another, so no buffer is zeroed first and no
+/// task is split further.
+fn gather_block(values: &[f64], width: usize, rows: &[RowId]) -> Option<Array2<f64>> {
+    let mut out = Vec::with_capacity(rows.len() * width);
+    for r in rows {
+        let i = r.0 as usize;
+        out.extend_from_slice(&values[i * width..(i + 1) * width]);
+    }
+    out.iter()
+        .all(|v| v.is_finite())
+        .then(|| Array2::from_shape_vec((rows.len(), width), out).expect("rows × width values"))
+}
+
 fn describe(input: FeatureInput, cols: &[String]) -> String {
     match input {
         FeatureInput::Column(a) => format!("column {}", cols[a]),
@@ -725,7 +739,7 @@ impl FittedFeatures {
     /// [`Self::is_identity`]), or `None` when a value is refused.
     fn block_matrix(&self, data: &Dataset, identity: bool, rs: &[RowId]) -> Option<Array2<f64>> {
         let m = match (identity, data.x.as_slice()) {
-            (true, Some(values)) => copy_rows(values, data.x.ncols(), rs),
+            (true, Some(values)) => gather_block(values, data.x.ncols(), rs),
             _ => None,
         };
         m.or_else(|| self.apply_rows(data, rs))
@@ -964,6 +978,20 @@ mod tests {
         let e = set.apply(&holed, &rows).unwrap_err().to_string();
         assert!(e.contains("x1"), "{e}");
         assert_eq!(set.columns(&holed, &rows).unwrap_err().to_string(), e);
+        let by_blocks = set
+            .map_blocks(&holed, &rows, 97, |m| vec![m.nrows()])
+            .unwrap_err()
+            .to_string();
+        assert_eq!(by_blocks, e);
+        // Block by block, with a short last block: the rows' own values.
+        let blocks = set
+            .map_blocks(&data, &rows, 97, |m| m.iter().copied().collect())
+            .unwrap();
+        assert!(blocks
+            .iter()
+            .zip(copied.iter())
+            .all(|(a, b)| a.to_bits() == b.to_bits()));
+        assert_eq!(blocks.len(), copied.len());
         // Copied one feature at a time over blocks of 8,192 rows: each row
         // appears twice, 10,000 rows in all.
         let twice: Vec<RowId> = (0..2 * n as u64).map(|i| RowId(i % n as u64)).collect();
