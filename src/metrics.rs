@@ -382,19 +382,43 @@ impl PendingIntervals {
 /// Where a replicate's normal rows are counted: the summary's normal bins
 /// in walk order (bin 2j: the gap above cut point j; 2j + 1: the rows tied
 /// with it; 2m: the gap below the last), as prefix sums, and τ's boundary.
+///
+/// The bins above `top` (the top of the ranking, where anomalies are dense
+/// and normal rows few per bin) are drawn row by row; the rest by the chain
+/// of binomials. Given how many of the n₀ draws fall above `top`, K ~
+/// Binomial(n₀, rows above top / n₀), those K draws are uniform picks among
+/// the rows above `top` and the other n₀ − K among the rows below it, each
+/// part a multinomial of its own (a multinomial split into two groups of
+/// cells: exact). So a replicate costs one draw per row above `top` plus
+/// one binomial per segment below it.
 struct NormalBins {
     /// `prefix[t]`: normal rows in bins below `t` (2m + 2 entries).
     prefix: Vec<u64>,
     /// Normal rows in bins below this one are flagged at τ.
     tau_bin: usize,
-    /// When the rows are few next to the bins: each row's bin, for drawing
-    /// the rows themselves (as [`Multinomial`] does).
-    rows: Option<Vec<u32>>,
+    /// Bins below this one are drawn row by row.
+    top: usize,
+    /// Each row's bin, for the rows in bins below `top`.
+    rows: Vec<u32>,
 }
+
+/// A binomial draw of the chain costs about as much as this many rows drawn
+/// one by one (a uniform pick, a table read and a count): measured on the
+/// benchmark's summaries, where an inversion or BTRS draw takes 40 to 60 ns
+/// and a row 4 to 5 ns. The choice of `top` moves only the cost, never the
+/// distribution.
+const ROWS_PER_BINOMIAL: f64 = 10.0;
 
 impl NormalBins {
     /// The bins of summary `s`, with τ splitting it after `flagged` cut
     /// points (and the gap below them when `gap_flagged`).
+    ///
+    /// `top` is the bin boundary that minimises the expected cost of a
+    /// replicate: the rows above it, against the binomials the chain would
+    /// draw there, one per non-empty bin of a cut point drawn (with
+    /// probability 1 − e^(−a), a its anomalies, about that of one row among
+    /// many being drawn at least once in n₁ draws); the first boundary of
+    /// the least cost. Every boundary gives the same distribution.
     fn new(s: &Summary, flagged: usize, gap_flagged: bool) -> Self {
         let m = s.values.len();
         let mut prefix = Vec::with_capacity(2 * m + 2);
@@ -408,17 +432,35 @@ impl NormalBins {
                 prefix.push(acc);
             }
         }
-        let non_empty = prefix.windows(2).filter(|w| w[1] > w[0]).count() as u64;
+        // Saved binomials minus rows drawn, in rows, at each boundary t
+        // (bins below t drawn row by row); the gap below the last cut point
+        // is reached only as τ's bin or not at all, so it counts one draw.
+        let (mut top, mut best, mut saved) = (0, 0.0f64, 0.0f64);
+        for t in 1..prefix.len() {
+            let bin = t - 1;
+            if prefix[t] > prefix[bin] {
+                let drawn = if bin == 2 * m {
+                    1.0
+                } else {
+                    1.0 - libm::exp(-(s.pos[bin / 2] as f64))
+                };
+                saved += drawn * ROWS_PER_BINOMIAL;
+            }
+            let gain = saved - prefix[t] as f64;
+            if gain > best {
+                (top, best) = (t, gain);
+            }
+        }
+        let rows = prefix[..=top]
+            .windows(2)
+            .enumerate()
+            .flat_map(|(t, w)| std::iter::repeat_n(t as u32, (w[1] - w[0]) as usize))
+            .collect();
         NormalBins {
-            rows: (acc <= DIRECT_PER_BIN * non_empty).then(|| {
-                prefix
-                    .windows(2)
-                    .enumerate()
-                    .flat_map(|(t, w)| std::iter::repeat_n(t as u32, (w[1] - w[0]) as usize))
-                    .collect()
-            }),
             prefix,
             tau_bin: 2 * flagged + usize::from(gap_flagged),
+            top,
+            rows,
         }
     }
 }
@@ -480,21 +522,8 @@ fn replicates(s: &Summary, tau: f64, plan: BootstrapPlan) -> Option<Vec<(f64, f6
                     let mut rng = crate::rng::seeded(plan.seed, u64::from(b));
                     p_in.fill(0);
                     pos.draw(&mut rng, p_in);
-                    let drawn = match &normal.rows {
-                        Some(rows) => {
-                            // Few rows: draw them one by one into bins.
-                            let total = rows.len() as u64;
-                            n_in.clear();
-                            n_in.resize(normal.prefix.len() - 1, 0);
-                            for _ in 0..total {
-                                n_in[rows[crate::rng::below(&mut rng, total) as usize] as usize] +=
-                                    1;
-                            }
-                            Some(&n_in[..])
-                        }
-                        None => None,
-                    };
-                    replicate(&normal, flagged, p_in, drawn, &mut rng, p_total, n_total)
+                    let normals = Segments::draw(&normal, n_in, &mut rng);
+                    replicate(&normal, flagged, p_in, normals, &mut rng, p_total, n_total)
                 },
             )
             .collect(),
@@ -504,19 +533,17 @@ fn replicates(s: &Summary, tau: f64, plan: BootstrapPlan) -> Option<Vec<(f64, f6
 /// One replicate's F1 at τ, average precision and ROC AUC (NaN where
 /// undefined), given its anomalies per cut point: the walk of
 /// [`Summary::ap_auc`] over the drawn cut points, each segment's normal rows
-/// taken as it is reached (from `n_in`, the rows already drawn per bin, or
-/// else by the chain of conditional binomials). Below τ and the last drawn
+/// taken as it is reached from `normals`. Below τ, `top` and the last drawn
 /// cut point nothing is read, so nothing is drawn.
 fn replicate(
     bins: &NormalBins,
     flagged: usize,
     p_in: &[u64],
-    n_in: Option<&[u64]>,
+    mut normals: Segments<'_>,
     rng: &mut rand_chacha::ChaCha8Rng,
     p_total: u64,
     n_total: u64,
 ) -> (f64, f64, f64) {
-    let mut normals = Segments::new(bins, n_in);
     let mut walk = crate::summary::RankingWalk::new(p_total as f64, n_total as f64);
     let (mut tp, mut fp, mut tau_done) = (0u64, 0u64, false);
     for (j, &p) in p_in.iter().enumerate() {
@@ -563,46 +590,73 @@ fn replicate(
 /// the next.
 struct Segments<'a> {
     bins: &'a NormalBins,
-    /// Rows already drawn per bin, or `None` to draw them per segment.
-    n_in: Option<&'a [u64]>,
+    /// Rows already drawn per bin, for the bins below `drawn`.
+    n_in: &'a [u64],
+    drawn: usize,
     /// The next segment's first bin.
     start: usize,
-    /// Rows not yet placed, and the summary's rows in the bins left.
+    /// Rows not yet placed, and the summary's rows in the bins left, below
+    /// `drawn`.
     left: u64,
     mass: u64,
 }
 
 impl<'a> Segments<'a> {
-    fn new(bins: &'a NormalBins, n_in: Option<&'a [u64]>) -> Self {
+    /// A replicate's start: K ~ Binomial(n₀, rows above `top` / n₀) of its
+    /// n₀ draws fall above `top`, each a uniform pick among those rows,
+    /// counted into `n_in`; the other n₀ − K wait for the chain.
+    fn draw(
+        bins: &'a NormalBins,
+        n_in: &'a mut Vec<u64>,
+        rng: &mut rand_chacha::ChaCha8Rng,
+    ) -> Self {
         let total = bins.prefix[bins.prefix.len() - 1];
+        let above = bins.prefix[bins.top];
+        let k = if above == 0 {
+            0
+        } else {
+            crate::rng::binomial(rng, total, above as f64 / total as f64)
+        };
+        n_in.clear();
+        n_in.resize(bins.top, 0);
+        for _ in 0..k {
+            n_in[bins.rows[crate::rng::below(rng, above) as usize] as usize] += 1;
+        }
         Segments {
             bins,
             n_in,
+            drawn: bins.top,
             start: 0,
-            left: total,
-            mass: total,
+            left: total - k,
+            mass: total - above,
         }
     }
 
     /// The rows in bins `start..end` (none when `end` is not past `start`):
-    /// summed from the drawn bins, or drawn as the next link of the chain
-    /// X ~ Binomial(rows left, segment rows / rows in the bins left).
+    /// summed from the drawn bins above `drawn`, and below it drawn as the
+    /// next link of the chain X ~ Binomial(rows left, segment rows / rows in
+    /// the bins left).
     fn take(&mut self, end: usize, rng: &mut rand_chacha::ChaCha8Rng) -> u64 {
         let end = end.max(self.start);
         let start = std::mem::replace(&mut self.start, end);
-        if let Some(n_in) = self.n_in {
-            return n_in[start..end].iter().sum();
+        let mut x: u64 = self.n_in[start.min(self.drawn)..end.min(self.drawn)]
+            .iter()
+            .sum();
+        let lo = start.max(self.drawn);
+        if end <= lo {
+            return x;
         }
-        let c = self.bins.prefix[end] - self.bins.prefix[start];
-        let x = if c == 0 || self.left == 0 {
+        let c = self.bins.prefix[end] - self.bins.prefix[lo];
+        let y = if c == 0 || self.left == 0 {
             0
         } else if c >= self.mass {
             self.left
         } else {
             crate::rng::binomial(rng, self.left, c as f64 / self.mass as f64)
         };
-        self.left -= x;
+        self.left -= y;
         self.mass -= c;
+        x += y;
         x
     }
 }
@@ -1012,11 +1066,19 @@ mod tests {
             }
             let want = row_replicate(&r, &w, tau);
             let bins = NormalBins::new(&sum, flagged, gap_flagged);
+            let counted = Segments {
+                bins: &bins,
+                n_in: &n_in,
+                drawn: n_in.len(),
+                start: 0,
+                left: 0,
+                mass: 0,
+            };
             let got = replicate(
                 &bins,
                 flagged,
                 &p_in,
-                Some(&n_in),
+                counted,
                 &mut rng,
                 sum.positives(),
                 sum.negatives(),
@@ -1062,6 +1124,31 @@ mod tests {
         let s: Vec<f64> = (0..n)
             .map(|i| crate::rng::unit(&mut rng) + if y[i] { 0.6 } else { 0.0 })
             .collect();
+        same_distribution(&s, &y);
+        // Normal rows few between the top anomaly scores and many between
+        // the lowest: the top drawn row by row, the rest by the chain.
+        let n = 2_200;
+        let y: Vec<bool> = (0..n).map(|i| i % 11 == 0).collect();
+        let s: Vec<f64> = (0..n)
+            .map(|i| {
+                let u = crate::rng::unit(&mut rng);
+                if y[i] {
+                    u
+                } else {
+                    u * u * u
+                }
+            })
+            .collect();
+        let tau = crate::threshold::max_f1(&s, &y).tau;
+        let sum = Summary::new(&s, &y, &[tau]);
+        let (flagged, gap_flagged) = sum.split_at(tau).unwrap();
+        let bins = NormalBins::new(&sum, flagged, gap_flagged);
+        assert!(
+            bins.top > 0 && bins.top < bins.prefix.len() - 1 && bins.prefix[bins.top] > 0,
+            "top {} of {} bins",
+            bins.top,
+            bins.prefix.len() - 1
+        );
         same_distribution(&s, &y);
         // A head of anomalies above every normal row, a few among them.
         let n = 1_000;
