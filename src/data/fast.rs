@@ -125,10 +125,10 @@ fn parse(
     parse_body(body, &slots, numeric.len(), text.len(), label)
 }
 
-/// Whether `bytes` (a header line, or a block of lines) may be read as
-/// plain CSV: no quote and no carriage return anywhere (a quoted field may
-/// hold delimiters and line ends). Each block is checked by the task that
-/// parses it; a header must also not start with a byte-order mark.
+/// Whether `bytes` (a header line, or a field) may be read as plain CSV: no
+/// quote and no carriage return anywhere (a quoted field may hold delimiters
+/// and line ends). A block's fields are checked as they are parsed
+/// ([`field_end`]); a header must also not start with a byte-order mark.
 fn plain(bytes: &[u8]) -> bool {
     memchr::memchr2(b'"', b'\r', bytes).is_none()
 }
@@ -410,9 +410,10 @@ fn parse_block(
     label: Option<&LabelWant<'_>>,
     mut out: Out<'_>,
 ) -> Option<Vec<Vec<u8>>> {
-    if !plain(block) {
-        return None;
-    }
+    // No pass of its own looks for quotes and carriage returns: every byte
+    // is in a field or is its delimiter; a number's bytes are digits, a
+    // point, a sign or an exponent, and every other field is searched by
+    // `field_end`, which refuses them.
     let n = block.len();
     let mut texts: Vec<Vec<u8>> = vec![Vec::new(); ntext];
     let last = slots.len().checked_sub(1)?;
@@ -428,7 +429,7 @@ fn parse_block(
                     end
                 }
                 _ => {
-                    let end = field_end(block, p);
+                    let end = field_end(block, p)?;
                     let field = &block[p..end];
                     match *slot {
                         Slot::Text(k) => {
@@ -464,18 +465,25 @@ fn parse_block(
 }
 
 /// Where the field starting at `p` ends: the index of its comma or line end,
-/// or the block's end. Fields are short as a rule (ids, labels, split
-/// names): the first bytes are looked at one by one, which costs less than
-/// setting up a vector search; a longer field is searched by `memchr`.
+/// or the block's end; `None` when the field holds a quote or a carriage
+/// return (the file is then not plain, [`plain`]). Fields are short as a
+/// rule (ids, labels, split names): the first bytes are looked at one by
+/// one, which costs less than setting up a vector search; a longer field is
+/// searched by `memchr`.
 #[inline]
-fn field_end(block: &[u8], p: usize) -> usize {
+fn field_end(block: &[u8], p: usize) -> Option<usize> {
     const LOOKED_AT: usize = 16;
     let near = &block[p..block.len().min(p + LOOKED_AT)];
-    if let Some(k) = near.iter().position(|&c| c == b',' || c == b'\n') {
-        return p + k;
+    for (k, &c) in near.iter().enumerate() {
+        match c {
+            b',' | b'\n' => return Some(p + k),
+            b'"' | b'\r' => return None,
+            _ => {}
+        }
     }
     let from = p + near.len();
-    memchr::memchr2(b',', b'\n', &block[from..]).map_or(block.len(), |k| from + k)
+    let end = memchr::memchr2(b',', b'\n', &block[from..]).map_or(block.len(), |k| from + k);
+    plain(&block[from..end]).then_some(end)
 }
 
 /// The number that starts at `start`, and where it ends (the index of the
@@ -803,7 +811,15 @@ mod tests {
                 for p in 0..=block.len() {
                     let want =
                         memchr::memchr2(b',', b'\n', &block[p..]).map_or(block.len(), |k| p + k);
-                    assert_eq!(field_end(&block, p), want, "len {len} at {p}");
+                    assert_eq!(field_end(&block, p), Some(want), "len {len} at {p}");
+                    // A quote or a carriage return in the field: refused.
+                    for bad in [b'"', b'\r'] {
+                        if want > p {
+                            let mut changed = block.clone();
+                            changed[want - 1] = bad;
+                            assert_eq!(field_end(&changed, p), None, "len {len} at {p}");
+                        }
+                    }
                 }
             }
         }
@@ -859,6 +875,28 @@ mod tests {
                 parse(&changed, &numeric, &[], None).is_none(),
                 "{byte} at {at}"
             );
+        }
+        // At every byte of a line (numbers, a skipped field, a text field,
+        // the delimiters), in the first block and in the last.
+        let c = column("t");
+        let text = [&c];
+        let line = b"1.5,abc,2.5,xy\n";
+        let mut file = b"a,skip,b,t\n".to_vec();
+        for _ in 0..100_000 {
+            file.extend_from_slice(line);
+        }
+        assert!(parse(&file, &numeric, &text, None).is_some());
+        for start in [b"a,skip,b,t\n".len(), file.len() - line.len()] {
+            for k in 0..line.len() {
+                for byte in [b'"', b'\r'] {
+                    let mut changed = file.clone();
+                    changed[start + k] = byte;
+                    assert!(
+                        parse(&changed, &numeric, &text, None).is_none(),
+                        "{byte} at {k} of the line at {start}"
+                    );
+                }
+            }
         }
         let mut marked = b"\xEF\xBB\xBF".to_vec();
         marked.extend_from_slice(&file);
