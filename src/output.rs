@@ -156,24 +156,21 @@ impl RunFiles {
                 std::fs::create_dir_all(dir).map_err(|e| Error::io(dir, "creating", e))?;
             }
         }
-        // Files are written and hashed on all cores; the manifest lists them
-        // in name order whatever the order of completion.
+        // Files are written and hashed on all cores, each file hashed while
+        // it is written (scores.csv, the largest, would otherwise keep one
+        // core busy while the other waits); the manifest lists them in name
+        // order whatever the order of completion.
         use rayon::prelude::*;
         let mut written: Vec<(String, std::fs::File, crate::audit::hash::FileDigest)> = self
             .files
             .par_iter()
             .map(|(name, parts)| {
                 let path = tmp.path().join(name);
-                let file = write_unsynced(&path, parts)?;
-                let mut hasher = blake3::Hasher::new();
-                for p in parts {
-                    hasher.update(p);
-                }
-                let digest = crate::audit::hash::FileDigest {
-                    bytes: parts.iter().map(|p| p.len() as u64).sum(),
-                    blake3: hasher.finalize().to_hex().to_string(),
-                };
-                Ok((name.clone(), file, digest))
+                let (file, digest) = rayon::join(
+                    || write_unsynced(&path, parts),
+                    || crate::audit::hash::parts(parts),
+                );
+                Ok((name.clone(), file?, digest))
             })
             .collect::<Result<_>>()?;
         // Files an engine wrote: moved in, hashed as they are, and flushed
