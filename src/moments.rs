@@ -428,10 +428,7 @@ impl Fold {
         }
         let width = d + d * d;
         // Each stretch's bucket moments, a task's buckets computed whole by
-        // it: their rows first copied next to each other (rows read from
-        // all over memory are fetched side by side by the copy, rather than
-        // one at a time as the arithmetic reaches them), the runs moved to
-        // start at zero.
+        // it (each run's share of `out` is zeroed by the task).
         let compute = |stretch: &[std::ops::Range<usize>], out: &mut Vec<f64>| {
             if out.len() < stretch.len() * width {
                 out.resize(stretch.len() * width, 0.0);
@@ -439,20 +436,7 @@ impl Fold {
             out[..stretch.len() * width]
                 .par_chunks_mut(TASK * width)
                 .zip(stretch.par_chunks(TASK))
-                .for_each_init(
-                    || (Vec::new(), Vec::new()),
-                    |(rows, local), (o, rs)| {
-                        let base = rs[0].start;
-                        rows.clear();
-                        for i in base..rs[rs.len() - 1].end {
-                            rows.extend_from_slice(row(i));
-                        }
-                        local.clear();
-                        local.extend(rs.iter().map(|r| r.start - base..r.end - base));
-                        let rows: &[f64] = rows;
-                        buckets_into(&|i| &rows[i * d..(i + 1) * d], d, local, o);
-                    },
-                );
+                .for_each(|(o, rs)| buckets_into(&row, d, rs, o));
         };
         // Two buffers, reused for every stretch of every call: the one
         // being folded and the one being computed.
